@@ -1,0 +1,128 @@
+"""moerun inspect: what is in a model directory, where each byte lives, and (--check) digests."""
+
+from __future__ import annotations
+
+import sys
+
+from .. import cli
+from ..budget import minimum_cap, scratch_bytes
+from ..engine import default_model_dir
+from ..model import KVCache
+from ..modelfile import digest, recorded_digests
+from ..report import emit_json, table
+from ..store import ModelStore
+from ..units import fmt_bytes
+
+HELP = "show a model's config, tensors, expert sizes and file layout; --check verifies digests"
+
+
+def add_arguments(p) -> None:
+    cli.add_model(p)
+    p.add_argument("--all", action="store_true", help="list every tensor, experts included")
+    p.add_argument("--check", action="store_true", help="verify every tensor against the digests recorded in the file")
+    cli.add_json(p)
+
+
+def check_digests(store: ModelStore) -> tuple[list[str], int]:
+    """Names of tensors whose bytes differ from the recorded digest, and how many were checked."""
+    want = recorded_digests(store.header)
+    if want is None:
+        return [], 0
+    bad = []
+    for name, info in store.header.tensors.items():
+        expected = want.get(name)
+        got = digest(store._read(info.start, info.nbytes)) if info.nbytes else digest(b"")
+        if expected != got:
+            bad.append(name)
+    missing = [n for n in want if n not in store.header.tensors]
+    return bad + missing, len(store.header.tensors)
+
+
+def run(args) -> int:
+    store = ModelStore.open(args.model or default_model_dir())
+    with_check = args.check
+    try:
+        c = store.config
+        h = store.header
+        dense_file = sum(h.tensors[n].nbytes for n in c.dense_shapes())
+        expert_file = store.expert_total_nbytes
+        first = store.ranges[0][0].start
+        last = store.ranges[-1][-1]
+        kv = KVCache.nbytes_for(c)
+        scratch = scratch_bytes(c, store.codec.scratch_bytes())
+        doc = {
+            "model_dir": str(store.model_dir),
+            "config": c.to_json(),
+            "file_bytes": h.file_size,
+            "header_bytes": h.data_start,
+            "dense_file_bytes": dense_file,
+            "dense_memory_bytes": store.dense_nbytes,
+            "expert_bytes": store.expert_nbytes,
+            "expert_storage": store.codec.name,
+            "experts_total_bytes": expert_file,
+            "expert_share": expert_file / (expert_file + dense_file),
+            "kv_cache_bytes": kv,
+            "scratch_bytes": scratch,
+            "min_cap_even_bytes": minimum_cap(c, store.dense_nbytes, store.expert_nbytes, "even", store.codec.scratch_bytes()),
+            "min_cap_shared_bytes": minimum_cap(c, store.dense_nbytes, store.expert_nbytes, "shared", store.codec.scratch_bytes()),
+            "experts_region": [first, last.start + last.nbytes],
+            "synthetic": bool(c.extra.get("synthetic")),
+            "tensors": [
+                {"name": t.name, "dtype": t.dtype, "shape": list(t.shape), "offset": t.start, "bytes": t.nbytes}
+                for t in sorted(h.tensors.values(), key=lambda t: t.start)
+            ],
+        }
+        if c.extra.get("synthetic"):
+            doc["note"] = "random weights: routing is meaningless"
+        bad: list[str] = []
+        if with_check:
+            bad, checked = check_digests(store)
+            doc["check"] = {"checked": checked, "recorded": checked > 0, "differ": bad}
+    finally:
+        store.close()
+    if args.json:
+        emit_json(doc)
+    else:
+        out = sys.stdout
+        name = c.name or store.model_dir.name
+        out.write(f"model {name} ({doc['model_dir']})\n")
+        if doc.get("note"):
+            out.write(f"note: {doc['note']}\n")
+        out.write(
+            f"{c.n_layers} layers, d_model {c.d_model}, {c.n_heads} heads ({c.n_kv_heads} KV) of {c.head_dim}, "
+            f"{c.n_experts} experts top-{c.top_k}, d_expert {c.d_expert}, vocab {c.vocab_size}, context {c.max_seq_len}\n"
+        )
+        rows = [
+            ["file", fmt_bytes(h.file_size)],
+            ["header", fmt_bytes(h.data_start)],
+            ["dense tensors (file)", fmt_bytes(dense_file)],
+            ["dense weights (memory, float32)", fmt_bytes(store.dense_nbytes)],
+            [f"one expert ({store.codec.name})", f"{store.expert_nbytes:,} B"],
+            [f"all experts ({c.n_layers} x {c.n_experts})", f"{fmt_bytes(expert_file)} ({100 * doc['expert_share']:.1f}% of weights)"],
+            ["KV cache (full context)", fmt_bytes(kv)],
+            ["scratch", fmt_bytes(scratch)],
+            ["smallest cap, per-layer pools", f"{fmt_bytes(doc['min_cap_even_bytes'])} ({doc['min_cap_even_bytes']} B)"],
+            ["smallest cap, shared pool", f"{fmt_bytes(doc['min_cap_shared_bytes'])} ({doc['min_cap_shared_bytes']} B)"],
+        ]
+        out.write(table(["", "size"], rows) + "\n\n")
+        out.write(f"layout: header 0..{h.data_start}, dense tensors, then experts {first}..{last.start + last.nbytes} "
+                  f"in layer, expert order, each one contiguous range\n")
+        trows = []
+        for t in doc["tensors"]:
+            if not args.all and ".experts." in t["name"] and not t["name"].startswith("layers.0.experts.0."):
+                continue
+            trows.append([t["name"], t["dtype"], "x".join(map(str, t["shape"])), f"{t['offset']:,}", f"{t['bytes']:,}"])
+        out.write(table(["tensor", "dtype", "shape", "offset", "bytes"], trows, "lllrr") + "\n")
+        if not args.all:
+            out.write("(one expert shown; --all lists every tensor)\n")
+        if with_check:
+            chk = doc["check"]
+            if not chk["recorded"]:
+                out.write("check: the file records no digests; nothing to verify\n")
+            elif bad:
+                out.write(f"check: {len(bad)} tensor(s) differ from their recorded digest: {', '.join(bad[:10])}\n")
+            else:
+                out.write(f"check: all {chk['checked']} tensors match their recorded digests\n")
+    if with_check and (bad or not doc["check"]["recorded"]):
+        return 1
+    return 0

@@ -1,0 +1,105 @@
+"""moerun verify: prove that offloaded runs give bit-identical logits and tokens."""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+from .. import cli
+from ..engine import default_model_dir
+from ..errors import BadInput
+from ..report import Progress, emit_json, table
+from ..sampling import Sampling
+from ..store import ModelStore
+from ..tokenizer import Tokenizer, read_text_file
+from ..units import fmt_bytes, parse_rate, parse_size
+from ..verify import Setting, verify
+
+HELP = "run the same prompts fully resident and under several caps, policies and prefetch settings; compare bit for bit"
+
+
+def add_arguments(p) -> None:
+    cli.add_model(p)
+    cli.add_prompt(p, max_new_default=24)
+    cli.add_memory(p)
+    p.add_argument("--prompts", type=int, default=3, metavar="N", help="held-out prompts to use when no --prompt is given (default 3)")
+    cli.add_json(p)
+
+
+def default_prompts(model_dir: Path, tok: Tokenizer, n: int) -> list[list[int]]:
+    held = model_dir / "heldout.txt"
+    if held.exists():
+        text = read_text_file(held)
+        docs = [d for d in text.split("\n\n") if d.strip()]
+        picks = [docs[i * len(docs) // max(n, 1)] for i in range(n)] if docs else []
+        return [tok.encode(d[:160]) for d in picks]
+    return [tok.encode(s) for s in ("", "a", "hello")[:n]]
+
+
+def run(args) -> int:
+    model_dir = Path(args.model) if args.model else default_model_dir()
+    store = ModelStore.open(model_dir)
+    c = store.config
+    store.close()
+    tok = Tokenizer.load(model_dir, c.vocab_size, c.bos_token_id)
+    if args.prompt is not None or args.prompt_file:
+        prompts = [tok.encode(cli.read_prompt(args))]
+    else:
+        if args.prompts < 1:
+            raise BadInput("--prompts must be at least 1")
+        prompts = default_prompts(model_dir, tok, args.prompts)
+    prompts = [p[: max(1, c.max_seq_len - args.max_new)] for p in prompts]
+    settings = None
+    if args.mem_cap or args.slots or args.prefetch or args.link_speed or args.evict != "lru" or args.shared_pool:
+        kw = cli.engine_kwargs(args)
+        kw.pop("model_dir")
+        kw["mem_cap"] = parse_size(kw["mem_cap"], "memory cap") if kw["mem_cap"] else None
+        if kw["link_speed"]:
+            kw["link_speed"] = parse_rate(kw["link_speed"], "link speed")
+        settings = [Setting("as given", kw)]
+    sampling = Sampling(args.temperature, args.top_p, args.seed)
+    prog = Progress("verify", enabled=None if not args.json else False)
+    outcomes, info = verify(model_dir, prompts, settings, args.max_new, sampling,
+                            progress=lambda i, n, label: prog.update(i, f"{label}"))
+    prog.close()
+    ok = all(o.ok for o in outcomes)
+    if args.json:
+        emit_json(
+            {
+                "ok": ok,
+                "prompts": len(prompts),
+                "max_new": args.max_new,
+                **info,
+                "results": [
+                    {
+                        "setting": o.setting.label,
+                        "options": o.setting.kwargs,
+                        "slots": o.slots,
+                        "logits_equal": o.logits_equal,
+                        "tokens_equal": o.tokens_equal,
+                        "max_abs_diff": o.max_abs_diff,
+                        "hit_rate": o.hit_rate,
+                    }
+                    for o in outcomes
+                ],
+            }
+        )
+    else:
+        rows = []
+        for o in outcomes:
+            cap = o.setting.kwargs.get("mem_cap")
+            rows.append([
+                o.setting.label,
+                fmt_bytes(cap) if cap else "-",
+                ",".join(map(str, o.slots)),
+                "same" if o.logits_equal else f"DIFF {o.max_abs_diff:.2e}",
+                "same" if o.tokens_equal else "DIFF",
+                "-" if o.hit_rate is None else f"{100 * o.hit_rate:.1f}%",
+            ])
+        sys.stdout.write(
+            f"reference: every expert resident; {len(prompts)} prompt(s), {args.max_new} sampled tokens each, "
+            f"logits compared as raw float32 bits\n"
+        )
+        sys.stdout.write(table(["setting", "cap", "slots", "logits", "tokens", "hit rate"], rows, "llllll") + "\n")
+        sys.stdout.write("verify: all settings bit-identical\n" if ok else "verify: DIFFERENCES FOUND\n")
+    return 0 if ok else 1

@@ -1,0 +1,146 @@
+"""The model's ``config.json``: reading, validating and describing it."""
+
+from __future__ import annotations
+
+import json
+import math
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+from .errors import BadModelFile
+
+FORMAT_TAG = "moerun/1"
+
+_INT_FIELDS = (
+    "vocab_size",
+    "d_model",
+    "n_layers",
+    "n_heads",
+    "n_kv_heads",
+    "head_dim",
+    "n_experts",
+    "top_k",
+    "d_expert",
+    "max_seq_len",
+)
+
+
+@dataclass(frozen=True)
+class ModelConfig:
+    """Shape and hyper-parameters of a model (DESIGN section 3)."""
+
+    vocab_size: int
+    d_model: int
+    n_layers: int
+    n_heads: int
+    n_kv_heads: int
+    head_dim: int
+    n_experts: int
+    top_k: int
+    d_expert: int
+    max_seq_len: int
+    rope_theta: float
+    norm_eps: float
+    tied_embeddings: bool
+    format: str = FORMAT_TAG
+    name: str = ""
+    bos_token_id: int | None = None
+    dtype: str = "F32"
+    extra: dict = field(default_factory=dict, compare=False)
+
+    @property
+    def q_dim(self) -> int:
+        return self.n_heads * self.head_dim
+
+    @property
+    def kv_dim(self) -> int:
+        return self.n_kv_heads * self.head_dim
+
+    def to_json(self) -> dict:
+        d = asdict(self)
+        extra = d.pop("extra")
+        d.update(extra)
+        if d["bos_token_id"] is None:
+            d.pop("bos_token_id")
+        return d
+
+    @classmethod
+    def from_dict(cls, raw: object, where: str = "config.json") -> ModelConfig:
+        if not isinstance(raw, dict):
+            raise BadModelFile(f"{where}: expected a JSON object")
+        missing = [k for k in (*_INT_FIELDS, "rope_theta", "norm_eps", "tied_embeddings") if k not in raw]
+        if missing:
+            raise BadModelFile(f"{where}: missing field(s) {', '.join(missing)}")
+        vals: dict = {}
+        for k in _INT_FIELDS:
+            v = raw[k]
+            if isinstance(v, bool) or not isinstance(v, int) or v <= 0:
+                raise BadModelFile(f"{where}: {k} must be a positive integer, got {v!r}")
+            vals[k] = v
+        for k in ("rope_theta", "norm_eps"):
+            v = raw[k]
+            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or v <= 0:
+                raise BadModelFile(f"{where}: {k} must be a positive number, got {v!r}")
+            vals[k] = float(v)
+        if not isinstance(raw["tied_embeddings"], bool):
+            raise BadModelFile(f"{where}: tied_embeddings must be true or false")
+        vals["tied_embeddings"] = raw["tied_embeddings"]
+        fmt = raw.get("format", FORMAT_TAG)
+        if not isinstance(fmt, str) or not fmt.startswith("moerun/"):
+            raise BadModelFile(f"{where}: unknown format tag {fmt!r} (expected {FORMAT_TAG!r})")
+        if vals["n_heads"] % vals["n_kv_heads"]:
+            raise BadModelFile(f"{where}: n_heads ({vals['n_heads']}) must be a multiple of n_kv_heads ({vals['n_kv_heads']})")
+        if vals["head_dim"] % 2:
+            raise BadModelFile(f"{where}: head_dim must be even for rotary embeddings, got {vals['head_dim']}")
+        if vals["top_k"] > vals["n_experts"]:
+            raise BadModelFile(f"{where}: top_k ({vals['top_k']}) exceeds n_experts ({vals['n_experts']})")
+        bos = raw.get("bos_token_id")
+        if bos is not None and (isinstance(bos, bool) or not isinstance(bos, int) or not 0 <= bos < vals["vocab_size"]):
+            raise BadModelFile(f"{where}: bos_token_id must be a token id below vocab_size, got {bos!r}")
+        dtype = raw.get("dtype", "F32")
+        name = raw.get("name", "")
+        known = {*_INT_FIELDS, "rope_theta", "norm_eps", "tied_embeddings", "format", "name", "bos_token_id", "dtype"}
+        extra = {k: v for k, v in raw.items() if k not in known}
+        return cls(**vals, format=fmt, name=str(name), bos_token_id=bos, dtype=str(dtype), extra=extra)
+
+    @classmethod
+    def load(cls, model_dir: Path) -> ModelConfig:
+        path = Path(model_dir) / "config.json"
+        try:
+            raw = json.loads(path.read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            raise BadModelFile(f"{path}: missing (every model directory needs a config.json)") from None
+        except (UnicodeDecodeError, json.JSONDecodeError) as e:
+            raise BadModelFile(f"{path}: not valid JSON ({e})") from None
+        except OSError as e:
+            raise BadModelFile(f"{path}: cannot read ({e.strerror})") from None
+        return cls.from_dict(raw, where=str(path))
+
+    # Expected dense tensors and their shapes (DESIGN section 3).
+    def dense_shapes(self) -> dict[str, tuple[int, ...]]:
+        d = self.d_model
+        shapes: dict[str, tuple[int, ...]] = {"embed": (self.vocab_size, d), "final_norm": (d,)}
+        if not self.tied_embeddings:
+            shapes["lm_head"] = (d, self.vocab_size)
+        for layer in range(self.n_layers):
+            p = f"layers.{layer}."
+            shapes[p + "attn_norm"] = (d,)
+            shapes[p + "moe_norm"] = (d,)
+            shapes[p + "attn.wq"] = (d, self.q_dim)
+            shapes[p + "attn.wk"] = (d, self.kv_dim)
+            shapes[p + "attn.wv"] = (d, self.kv_dim)
+            shapes[p + "attn.wo"] = (self.q_dim, d)
+            shapes[p + "router"] = (d, self.n_experts)
+        return shapes
+
+    def expert_shapes(self) -> dict[str, tuple[int, int]]:
+        """Shapes of one expert's matrices, keyed by the suffix after ``experts.{e}.``."""
+        return {
+            "w_gate": (self.d_model, self.d_expert),
+            "w_up": (self.d_model, self.d_expert),
+            "w_down": (self.d_expert, self.d_model),
+        }
+
+
+def expert_tensor_name(layer: int, expert: int, part: str) -> str:
+    return f"layers.{layer}.experts.{expert}.{part}"

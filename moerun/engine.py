@@ -1,0 +1,304 @@
+"""The engine: a model with its store, pool, prefetcher and tokenizer; ``moerun.load``.
+
+``load(model_dir, mem_cap=...)`` sizes the budget, allocates the pool once,
+starts the prefetch thread if asked, and returns an ``Engine`` whose
+``logits`` and ``generate`` run the numpy transformer with experts served by
+the pool.  ``engine.stats`` holds the run's measured figures.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .budget import Budget, plan_budget
+from .errors import BadOption
+from .memwatch import MemWatch
+from .model import KVCache, Transformer, rmsnorm
+from .pool import BareExperts, ExpertPool
+from .prefetch import Prefetcher
+from .sampling import Sampler, Sampling
+from .store import ModelStore
+from .tokenizer import Tokenizer
+from .trace import TRACE_GUESSES, TRACE_LOOKAHEAD, Recorder, Trace
+from .units import parse_rate, parse_size
+
+BUNDLED_MODEL = Path(__file__).resolve().parent.parent / "tiny_models" / "pebble"
+
+
+def default_model_dir() -> Path:
+    env = os.environ.get("MOERUN_MODEL")
+    return Path(env) if env else BUNDLED_MODEL
+
+
+@dataclass
+class Generation:
+    prompt_ids: list[int]
+    new_ids: list[int]
+    text: str
+    stop: str  # "max-new" or "context-full"
+    prefill_ns: int
+    decode_ns: int
+    decode_steps: int
+    logits: list[np.ndarray] = field(default_factory=list)  # kept only when asked
+
+    @property
+    def prefill_tok_s(self) -> float:
+        return len(self.prompt_ids) / (self.prefill_ns / 1e9) if self.prefill_ns else 0.0
+
+    @property
+    def decode_tok_s(self) -> float:
+        return self.decode_steps / (self.decode_ns / 1e9) if self.decode_ns else 0.0
+
+
+class Engine:
+    def __init__(
+        self,
+        store: ModelStore,
+        tokenizer: Tokenizer | None,
+        budget: Budget,
+        experts,
+        prefetcher: Prefetcher | None,
+        memwatch: MemWatch,
+        options: dict,
+    ):
+        self.store = store
+        self.config = store.config
+        self.tokenizer = tokenizer
+        self.budget = budget
+        self.experts = experts
+        self.pool = experts if isinstance(experts, ExpertPool) else None
+        self.prefetcher = prefetcher
+        self.model = Transformer(store.config, store.dense)
+        self.cache = KVCache(store.config)
+        self.memwatch = memwatch
+        self.options = options
+        self.recorder: Recorder | None = None
+        experts.guess_hook = self._after_attention
+        if prefetcher is not None:
+            prefetcher.model = self.model
+
+    # ------------------------------------------------------------------ hooks
+    def _after_attention(self, layer: int, h: np.ndarray) -> None:
+        if self.prefetcher is not None and h.shape[0] == 1:
+            self.prefetcher.guess(layer, h)
+        if self.recorder is not None:
+            self.recorder.guessed(layer, self.guesses(layer, h, self.recorder.lookahead, self.recorder.n_guesses))
+
+    def guesses(self, layer: int, h: np.ndarray, lookahead: int, n: int) -> np.ndarray:
+        """The prefetch rule for every row of h: [T, lookahead, n] expert ids, -1 past the last layer."""
+        L = self.config.n_layers
+        out = np.full((h.shape[0], lookahead, n), -1, np.int16)
+        for j in range(1, lookahead + 1):
+            t = layer + j
+            if t >= L:
+                break
+            w = self.model.layers[t]
+            z = rmsnorm(h, w.moe_norm, self.model.eps) @ w.router
+            out[:, j - 1, :] = np.argsort(-z, axis=-1, kind="stable")[:, :n]
+        return out
+
+    # ------------------------------------------------------------------ passes
+    def _check_ids(self, ids) -> np.ndarray:
+        ids = np.asarray(ids, dtype=np.int64).reshape(-1)
+        if ids.size == 0:
+            raise BadOption("need at least one token")
+        if ids.size > self.config.max_seq_len:
+            raise BadOption(f"{ids.size} tokens exceed the model's context of {self.config.max_seq_len}")
+        if ids.min() < 0 or ids.max() >= self.config.vocab_size:
+            raise BadOption(f"token ids must lie in 0..{self.config.vocab_size - 1}")
+        return ids
+
+    def logits(self, token_ids) -> np.ndarray:
+        """Float32 logits [len, vocab_size] from one forward pass over the sequence."""
+        ids = self._check_ids(token_ids)
+        self.experts.begin_step(-1)
+        x = self.model.forward(ids, 0, self.cache, self.experts)
+        return self.model.logits(x)
+
+    def generate(
+        self,
+        prompt: str | None = None,
+        prompt_ids: list[int] | None = None,
+        max_new: int = 64,
+        sampling: Sampling | None = None,
+        on_token=None,
+        keep_logits: bool = False,
+    ) -> Generation:
+        """Prefill the prompt, then decode up to ``max_new`` tokens (stops early when the context is full)."""
+        if max_new < 0:
+            raise BadOption(f"--max-new must be zero or more, got {max_new}")
+        if prompt_ids is None:
+            if self.tokenizer is None:
+                raise BadOption("this engine has no tokenizer; pass prompt_ids")
+            prompt_ids = self.tokenizer.encode(prompt or "")
+        if not prompt_ids:
+            bos = self.config.bos_token_id
+            prompt_ids = [bos if bos is not None else 0]
+        ids = self._check_ids(prompt_ids)
+        sampler = Sampler(sampling or Sampling())
+        kept: list[np.ndarray] = []
+        t0 = time.monotonic_ns()
+        self.experts.begin_step(-1)
+        x = self.model.forward(ids, 0, self.cache, self.experts)
+        logits = self.model.logits(x[-1:])[0]
+        prefill_ns = time.monotonic_ns() - t0
+        self.memwatch.sample()
+        if keep_logits:
+            kept.append(logits.copy())
+        new: list[int] = []
+        pos = len(ids)
+        stop = "max-new"
+        decode_ns = 0
+        steps = 0
+        while len(new) < max_new:
+            tok = sampler(logits)
+            new.append(tok)
+            if on_token is not None:
+                on_token(tok)
+            if len(new) == max_new:
+                break
+            if pos >= self.config.max_seq_len:
+                stop = "context-full"
+                break
+            t1 = time.monotonic_ns()
+            self.experts.begin_step(steps)
+            x = self.model.forward(np.array([tok]), pos, self.cache, self.experts)
+            logits = self.model.logits(x)[0]
+            decode_ns += time.monotonic_ns() - t1
+            steps += 1
+            pos += 1
+            if keep_logits:
+                kept.append(logits.copy())
+            if steps % 32 == 0:
+                self.memwatch.sample()
+        self.memwatch.sample()
+        text = self.tokenizer.decode(new) if self.tokenizer is not None else ""
+        gen = Generation(list(map(int, ids)), new, text, stop, prefill_ns, decode_ns, steps, kept)
+        self.last = gen
+        return gen
+
+    # ------------------------------------------------------------------ tracing
+    def start_trace(self, lookahead: int = TRACE_LOOKAHEAD, n_guesses: int = TRACE_GUESSES) -> None:
+        self.recorder = Recorder(self.config.n_layers, self.config.top_k, lookahead, n_guesses)
+        self.experts.recorder = self.recorder
+
+    def finish_trace(self, partial: bool = False, extra: dict | None = None) -> Trace:
+        rec = self.recorder
+        self.recorder = None
+        self.experts.recorder = None
+        meta = {
+            "source": "moerun",
+            "model": self.config.name,
+            "n_experts": self.config.n_experts,
+            "top_k": self.config.top_k,
+            "expert_bytes": self.store.expert_nbytes,
+            "evict": self.options.get("evict"),
+            "slots": list(self.budget.slots),
+            "split": self.budget.split,
+            "prefetch": self.options.get("prefetch", 0),
+            "lookahead": self.options.get("lookahead", 1),
+            "link_speed_emulated": self.options.get("link_speed"),
+            "partial": partial,
+            **(extra or {}),
+        }
+        return rec.to_trace(meta)
+
+    # ------------------------------------------------------------------ stats
+    @property
+    def stats(self) -> dict:
+        out = {
+            "budget": self.budget.to_json(),
+            "peak_rss_growth_bytes": self.memwatch.peak_growth(),
+            "options": dict(self.options),
+        }
+        if self.pool is not None:
+            out["pool"] = self.pool.stats.to_json()
+        if self.prefetcher is not None:
+            out["prefetch_thread_alive"] = self.prefetcher.alive
+        return out
+
+    def close(self) -> None:
+        if self.prefetcher is not None:
+            self.prefetcher.close()
+            self.prefetcher = None
+        self.store.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+
+def load(
+    model_dir: str | os.PathLike | None = None,
+    mem_cap: int | str | None = None,
+    evict: str = "lru",
+    prefetch: int = 0,
+    lookahead: int = 1,
+    slots: list[int] | None = None,
+    split: str = "even",
+    link_speed: float | str | None = None,
+    cold: bool = False,
+    mechanism: str = "pread",
+    bare: bool = False,
+    tokenizer: bool = True,
+) -> Engine:
+    """Open a model and return an engine (DESIGN section 4).
+
+    mem_cap: bytes (or "48MiB") for dense weights + KV cache + scratch + expert
+    pool; None keeps every expert resident.  slots: explicit slots per layer
+    (overrides split).  split: "even" per-layer quotas or "shared".
+    prefetch: guesses per layer (0 = off), lookahead: layers ahead.
+    link_speed: bytes/s (or "2GB/s") of an emulated slower link.
+    """
+    from . import policies
+
+    policies.get(evict)
+    if prefetch < 0:
+        raise BadOption(f"--prefetch must be 0 (off) or a positive number of guesses, got {prefetch}")
+    if lookahead < 1:
+        raise BadOption(f"--lookahead must be at least 1, got {lookahead}")
+    cap = parse_size(mem_cap, "memory cap") if mem_cap is not None else None
+    rate = parse_rate(link_speed, "link speed") if link_speed is not None else None
+    watch = MemWatch()
+    store = ModelStore.open(model_dir if model_dir is not None else default_model_dir())
+    try:
+        c = store.config
+        tok = Tokenizer.load(store.model_dir, c.vocab_size, c.bos_token_id) if tokenizer else None
+        if cold:
+            store.drop_cache()
+        store.set_mechanism(mechanism)
+        chosen_split = list(slots) if slots is not None else split
+        budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, cap, chosen_split, store.codec.scratch_bytes())
+        store.link_rate = rate
+        prefetcher = None
+        if bare:
+            experts = BareExperts(store)
+        else:
+            experts = ExpertPool(store, budget, evict)
+            if cap is None:
+                experts.preload_all()
+                experts.stats.bytes_in = 0
+            if prefetch > 0:
+                prefetcher = Prefetcher(experts, None, prefetch, lookahead)
+                experts.prefetcher = prefetcher
+        options = {
+            "mem_cap": cap,
+            "evict": evict,
+            "prefetch": prefetch,
+            "lookahead": lookahead,
+            "link_speed": rate,
+            "cold": cold,
+            "mechanism": mechanism,
+            "bare": bare,
+        }
+        return Engine(store, tok, budget, experts, prefetcher, watch, options)
+    except BaseException:
+        store.close()
+        raise

@@ -1,0 +1,37 @@
+"""User-facing error families.
+
+Library code raises one of these with a message written for the person at the
+keyboard; ``moerun.cli`` turns any of them into one line on stderr and exit 2.
+"""
+
+from __future__ import annotations
+
+
+class MoerunError(Exception):
+    """Base of every error meant to be shown to the user as one line."""
+
+    exit_code = 2
+
+
+class BadModelFile(MoerunError):
+    """A model directory, config, weight file or tokenizer is missing or invalid."""
+
+
+class ImpossibleBudget(MoerunError):
+    """A memory cap or slot split that cannot run the model."""
+
+
+class BadTrace(MoerunError):
+    """A routing trace that cannot be read or does not match its model."""
+
+
+class BadOption(MoerunError):
+    """A command-line option or API argument with an unusable value."""
+
+
+class BadInput(MoerunError):
+    """Input text or data files that cannot be used (not UTF-8, empty, ...)."""
+
+
+class PageInError(MoerunError):
+    """Reading an expert from storage failed (I/O error, file changed under us)."""

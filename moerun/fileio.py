@@ -1,0 +1,41 @@
+"""Atomic file writes: write to a temporary file beside the target, fsync, rename."""
+
+from __future__ import annotations
+
+import contextlib
+import os
+import tempfile
+from collections.abc import Iterator
+from pathlib import Path
+
+
+@contextlib.contextmanager
+def atomic_path(path: str | os.PathLike, suffix: str = "") -> Iterator[Path]:
+    """Yield a temporary path beside ``path``; on success rename it into place, else remove it.
+
+    The temporary name starts with ``.moerun-tmp-`` so a crash leaves an obviously
+    disposable file, never a half-written file under the final name.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=".moerun-tmp-", suffix=suffix or path.suffix, dir=path.parent)
+    os.close(fd)
+    tmp_path = Path(tmp)
+    try:
+        yield tmp_path
+        with open(tmp_path, "rb+") as f:
+            os.fsync(f.fileno())
+        os.replace(tmp_path, path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            tmp_path.unlink()
+        raise
+
+
+def write_bytes_atomic(path: str | os.PathLike, data: bytes) -> None:
+    with atomic_path(path) as tmp:
+        tmp.write_bytes(data)
+
+
+def write_text_atomic(path: str | os.PathLike, text: str) -> None:
+    write_bytes_atomic(path, text.encode("utf-8"))

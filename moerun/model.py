@@ -1,0 +1,218 @@
+"""The transformer of DESIGN section 3 in numpy, float32 throughout.
+
+The layer reads like the math::
+
+    h = x + attention(rmsnorm(x, attn_norm))
+    u = rmsnorm(h, moe_norm)
+    x' = h + moe(u, route(u, router), experts)
+
+Expert weights come from an *expert source* (``experts``): the resident pool,
+or a plain list for the bare engine.  The math never knows whether an expert
+was resident, prefetched or just read; the compute schedule (which tokens go
+through which expert, and the order outputs are summed in) depends only on
+routing, so every memory setting gives bit-identical numbers.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from .config import ModelConfig
+
+F32 = np.float32
+
+
+# ---------------------------------------------------------------------------- math
+
+
+def rmsnorm(x: np.ndarray, w: np.ndarray, eps: np.float32) -> np.ndarray:
+    """x / sqrt(mean(x*x) + eps) * w, over the last axis."""
+    ms = np.mean(x * x, axis=-1, keepdims=True, dtype=F32)
+    return x / np.sqrt(ms + eps) * w
+
+
+def softmax(z: np.ndarray) -> np.ndarray:
+    e = np.exp(z - z.max(axis=-1, keepdims=True))
+    return e / e.sum(axis=-1, keepdims=True)
+
+
+def silu(z: np.ndarray) -> np.ndarray:
+    return z / (F32(1.0) + np.exp(-z))
+
+
+def rotary_tables(config: ModelConfig) -> tuple[np.ndarray, np.ndarray]:
+    """cos and sin tables [max_seq_len, head_dim/2], inv_freq_j = theta^(-2j/head_dim)."""
+    half = config.head_dim // 2
+    inv_freq = config.rope_theta ** (-(2.0 * np.arange(half, dtype=np.float64)) / config.head_dim)
+    angles = np.arange(config.max_seq_len, dtype=np.float64)[:, None] * inv_freq[None, :]
+    return np.cos(angles).astype(F32), np.sin(angles).astype(F32)
+
+
+def rotate(x: np.ndarray, cos: np.ndarray, sin: np.ndarray) -> np.ndarray:
+    """Rotate-half rotary embedding: [a*cos - b*sin, b*cos + a*sin] on the last axis."""
+    half = x.shape[-1] // 2
+    a = x[..., :half]
+    b = x[..., half:]
+    return np.concatenate((a * cos - b * sin, b * cos + a * sin), axis=-1)
+
+
+def route(u: np.ndarray, router: np.ndarray, top_k: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Top-k routing: probabilities p = softmax(u @ router); chosen experts in ascending id.
+
+    Ties go to the lower expert id (stable sort on -p).  Returns
+    ``(chosen [T, k] int64 ascending, weights [T, k] float32, p [T, E])``, where
+    weights are p_chosen / sum(p_chosen).
+    """
+    p = softmax(u @ router)
+    order = np.argsort(-p, axis=-1, kind="stable")[:, :top_k]
+    chosen = np.sort(order, axis=-1)
+    pc = np.take_along_axis(p, chosen, axis=-1)
+    return chosen, pc / pc.sum(axis=-1, keepdims=True), p
+
+
+def expert(u: np.ndarray, w_gate: np.ndarray, w_up: np.ndarray, w_down: np.ndarray) -> np.ndarray:
+    """(silu(u @ w_gate) * (u @ w_up)) @ w_down"""
+    return (silu(u @ w_gate) * (u @ w_up)) @ w_down
+
+
+def moe(u: np.ndarray, layer: int, chosen: np.ndarray, weights: np.ndarray, experts) -> np.ndarray:
+    """Sum over chosen experts, in ascending expert id, of weight * expert(u).
+
+    For one token the outputs may be computed in any order (resident experts
+    first, while missing ones arrive) but are summed in ascending id.  For many
+    tokens each needed expert runs once over the tokens routed to it, experts
+    in ascending id, accumulating into the output.
+    """
+    T, k = chosen.shape
+    if T == 1:
+        ids = chosen[0].tolist()
+        ys: list = [None] * k
+        for j in experts.compute_order(layer, ids):
+            ys[j] = weights[0, j] * expert(u, *experts.weights(layer, ids[j]))
+            experts.done(layer, ids[j])
+        out = ys[0]
+        for y in ys[1:]:
+            out = out + y
+        return out
+    out = np.zeros_like(u)
+    needed = np.unique(chosen).tolist()
+    experts.begin_prefill_layer(layer, needed)
+    for e in needed:
+        rows, slot = np.nonzero(chosen == e)
+        y = expert(u[rows], *experts.weights(layer, e))
+        out[rows] += weights[rows, slot][:, None] * y
+        experts.done(layer, e)
+    return out
+
+
+# ---------------------------------------------------------------------------- weights and cache
+
+
+@dataclass
+class LayerWeights:
+    attn_norm: np.ndarray
+    moe_norm: np.ndarray
+    wqkv: np.ndarray  # [d_model, q_dim + 2*kv_dim]: wq | wk | wv fused for one matmul
+    wo: np.ndarray
+    router: np.ndarray
+
+
+class KVCache:
+    """Preallocated keys and values for every layer up to max_seq_len positions."""
+
+    def __init__(self, config: ModelConfig):
+        shape = (config.n_layers, config.n_kv_heads, config.max_seq_len, config.head_dim)
+        self.k = np.zeros(shape, F32)
+        self.v = np.zeros(shape, F32)
+        self.length = 0
+
+    @staticmethod
+    def nbytes_for(config: ModelConfig) -> int:
+        return 2 * 4 * config.n_layers * config.n_kv_heads * config.max_seq_len * config.head_dim
+
+
+class Transformer:
+    """Dense weights and the forward passes (prefill over a prompt, decode one token)."""
+
+    def __init__(self, config: ModelConfig, dense: dict[str, np.ndarray]):
+        self.config = config
+        c = config
+        self.eps = F32(c.norm_eps)
+        self.scale = F32(1.0 / np.sqrt(c.head_dim))
+        self.embed = dense["embed"]
+        self.final_norm = dense["final_norm"]
+        self.lm_head = dense["embed"].T if c.tied_embeddings else dense["lm_head"]
+        self.layers = []
+        for layer in range(c.n_layers):
+            p = f"layers.{layer}."
+            wqkv = np.ascontiguousarray(
+                np.concatenate([dense[p + "attn.wq"], dense[p + "attn.wk"], dense[p + "attn.wv"]], axis=1)
+            )
+            self.layers.append(
+                LayerWeights(dense[p + "attn_norm"], dense[p + "moe_norm"], wqkv, dense[p + "attn.wo"], dense[p + "router"])
+            )
+        self.cos, self.sin = rotary_tables(c)
+        self.group = c.n_heads // c.n_kv_heads
+
+    # -------------------------------------------------------------- attention
+    def attention(self, x: np.ndarray, layer: int, start: int, cache: KVCache) -> np.ndarray:
+        c = self.config
+        T = x.shape[0]
+        H, Hkv, hd, G = c.n_heads, c.n_kv_heads, c.head_dim, self.group
+        qkv = x @ self.layers[layer].wqkv
+        q = qkv[:, : c.q_dim].reshape(T, H, hd)
+        k = qkv[:, c.q_dim : c.q_dim + c.kv_dim].reshape(T, Hkv, hd)
+        v = qkv[:, c.q_dim + c.kv_dim :].reshape(T, Hkv, hd)
+        cos = self.cos[start : start + T, None, :]
+        sin = self.sin[start : start + T, None, :]
+        q = rotate(q, cos, sin)
+        k = rotate(k, cos, sin)
+        end = start + T
+        cache.k[layer, :, start:end] = k.transpose(1, 0, 2)
+        cache.v[layer, :, start:end] = v.transpose(1, 0, 2)
+        keys = cache.k[layer, :, :end]  # [Hkv, end, hd]
+        vals = cache.v[layer, :, :end]
+        # query head i reads kv head i // G: group queries as [Hkv, G*T, hd]
+        qg = q.reshape(T, Hkv, G, hd).transpose(1, 2, 0, 3).reshape(Hkv, G * T, hd)
+        scores = (qg @ keys.transpose(0, 2, 1)) * self.scale  # [Hkv, G*T, end]
+        if T > 1:
+            pos_q = np.tile(np.arange(start, end), G)
+            mask = np.arange(end)[None, :] > pos_q[:, None]
+            scores = np.where(mask[None], F32(-np.inf), scores)
+        out = softmax(scores) @ vals  # [Hkv, G*T, hd]
+        out = out.reshape(Hkv, G, T, hd).transpose(2, 0, 1, 3).reshape(T, H * hd)
+        return out @ self.layers[layer].wo
+
+    # -------------------------------------------------------------- layers
+    def layer(self, x: np.ndarray, layer: int, start: int, cache: KVCache, experts) -> np.ndarray:
+        w = self.layers[layer]
+        experts.begin_layer(layer)
+        h = x + self.attention(rmsnorm(x, w.attn_norm, self.eps), layer, start, cache)
+        experts.after_attention(layer, h)
+        u = rmsnorm(h, w.moe_norm, self.eps)
+        chosen, weights, probs = route(u, w.router, self.config.top_k)
+        experts.routed(layer, chosen, weights, probs)
+        out = h + moe(u, layer, chosen, weights, experts)
+        experts.end_layer(layer)
+        return out
+
+    def forward(self, ids: np.ndarray, start: int, cache: KVCache, experts) -> np.ndarray:
+        """Hidden states leaving the last layer for tokens at positions start.. (not yet normed)."""
+        x = self.embed[ids]
+        for layer in range(self.config.n_layers):
+            x = self.layer(x, layer, start, cache, experts)
+        cache.length = start + len(ids)
+        return x
+
+    def logits(self, x: np.ndarray) -> np.ndarray:
+        return rmsnorm(x, self.final_norm, self.eps) @ self.lm_head
+
+    def guess(self, h: np.ndarray, layer: int, n: int) -> list[int]:
+        """The speculative rule: layer's router applied to hidden state h (one token); top-n ids."""
+        w = self.layers[layer]
+        z = (rmsnorm(h, w.moe_norm, self.eps) @ w.router)[0]
+        if n >= len(z):
+            return np.argsort(-z, kind="stable").tolist()
+        return np.argsort(-z, kind="stable")[:n].tolist()

@@ -1,0 +1,436 @@
+"""The resident expert pool: preallocated slots under the cap, pinning, page-in, timings.
+
+The pool is also the *expert source* the model asks for weights
+(``moerun.model.moe``): ``routed`` does the residency bookkeeping for a
+layer's chosen experts in ascending id (the same order the replay uses),
+``compute_order`` lists resident experts first, ``weights`` returns an
+expert's float32 matrices once its bytes are in a slot (waiting for an
+in-flight prefetch, or reading synchronously), and ``done`` unpins it.
+
+Slots are one preallocated, page-aligned block, written only by page-in.
+Shared state is guarded by one condition variable; reads happen outside it.
+"""
+
+from __future__ import annotations
+
+import threading
+import time
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from . import policies
+from .budget import Budget
+from .residency import NoVictim, Residency
+from .store import ModelStore
+
+EMPTY, LOADING, READY = 0, 1, 2
+HIT, PREFETCHED, MISS = 0, 1, 2
+KIND_NAMES = {HIT: "hit", PREFETCHED: "prefetched", MISS: "miss"}
+
+
+@dataclass
+class PoolStats:
+    n_layers: int
+    accesses: np.ndarray = field(init=False)
+    hits: np.ndarray = field(init=False)  # resident without a pending guess
+    prefetch_hits: np.ndarray = field(init=False)  # resident or in flight thanks to a guess
+    misses: np.ndarray = field(init=False)
+    stall_ns: np.ndarray = field(init=False)
+    pagein_ns: np.ndarray = field(init=False)  # synchronous page-in time on the compute thread
+    bytes_in: int = 0  # all bytes paged in (demand + prefetch)
+    demand_loads: int = 0
+    prefill_loads: int = 0
+    prefetch_guesses: int = 0  # guesses made
+    prefetch_loads: int = 0  # guesses that needed a page-in
+    prefetch_used: int = 0  # prefetched experts that a layer then used
+    prefetch_wasted_bytes: int = 0  # prefetched bytes evicted before any use
+    prefetch_failed: int = 0
+    prefetch_ns: int = 0  # page-in time on the prefetch thread
+    hidden_ns: int = 0  # prefetch page-in time of used guesses not waited for
+
+    def __post_init__(self):
+        L = self.n_layers
+        for name in ("accesses", "hits", "prefetch_hits", "misses", "stall_ns", "pagein_ns"):
+            setattr(self, name, np.zeros(L, np.int64))
+
+    def to_json(self) -> dict:
+        acc = self.accesses.sum()
+        return {
+            "accesses": int(acc),
+            "hits": int(self.hits.sum()),
+            "prefetch_hits": int(self.prefetch_hits.sum()),
+            "misses": int(self.misses.sum()),
+            "hit_rate": float((acc - self.misses.sum()) / acc) if acc else None,
+            "per_layer": [
+                {
+                    "layer": i,
+                    "accesses": int(self.accesses[i]),
+                    "hits": int(self.hits[i]),
+                    "prefetch_hits": int(self.prefetch_hits[i]),
+                    "misses": int(self.misses[i]),
+                    "hit_rate": float(1 - self.misses[i] / self.accesses[i]) if self.accesses[i] else None,
+                }
+                for i in range(self.n_layers)
+            ],
+            "stall_ns": int(self.stall_ns.sum()),
+            "pagein_ns": int(self.pagein_ns.sum()),
+            "bytes_paged_in": int(self.bytes_in),
+            "demand_loads": self.demand_loads,
+            "prefill_loads": self.prefill_loads,
+            "prefetch": {
+                "guesses": self.prefetch_guesses,
+                "loads": self.prefetch_loads,
+                "used": self.prefetch_used,
+                "accuracy": (self.prefetch_used / self.prefetch_loads) if self.prefetch_loads else None,
+                "wasted_bytes": self.prefetch_wasted_bytes,
+                "failed": self.prefetch_failed,
+                "pagein_ns": self.prefetch_ns,
+                "hidden_ns": self.hidden_ns,
+            },
+        }
+
+
+class ExpertPool:
+    """Slots, residency per layer (or shared), and the expert-source interface for the model."""
+
+    def __init__(self, store: ModelStore, budget: Budget, evict: str = "lru"):
+        self.store = store
+        self.budget = budget
+        self.config = store.config
+        L = self.config.n_layers
+        self.shared = budget.split == "shared"
+        n_slots = budget.n_slots
+        self.slot_size = budget.slot
+        raw = np.empty(n_slots * self.slot_size + 4096, np.uint8)
+        off = (-raw.ctypes.data) % 4096
+        self.block = raw[off : off + n_slots * self.slot_size]
+        self.block.fill(0)  # allocated once and touched now, so the cap is real from the start
+        self._raw = raw
+        self.slots = [self.block[i * self.slot_size : (i + 1) * self.slot_size] for i in range(n_slots)]
+        self.bound = [store.codec.bind(s) for s in self.slots]
+        self.state = [EMPTY] * n_slots
+        self.key_of: list = [None] * n_slots
+        self.prefetched = [False] * n_slots  # loaded by a guess and not used yet
+        self.load_ns = [0] * n_slots
+        policy_cls = policies.get(evict)
+        if not getattr(policy_cls, "online", True):
+            from .errors import BadOption
+
+            raise BadOption(f"policy {evict!r} needs the future of the trace; use it with 'moerun replay' only")
+        self.evict = evict
+        if self.shared:
+            self.res = [Residency(n_slots, policy_cls())] * 1
+        else:
+            self.res = []
+            start = 0
+            for n in budget.slots:
+                self.res.append(Residency(n, policy_cls(), list(range(start, start + n))))
+                start += n
+        self.cond = threading.Condition()
+        self.pinned: set = set()
+        self.stats = PoolStats(L)
+        self.step = -1  # decode step (token index), -1 in prefill
+        self.progress = -1  # step * n_layers + layer of the layer being computed
+        self.recorder = None
+        self.prefetcher = None
+        self._prefill = False
+        self._layer_events: dict = {}
+        self.guess_hook = None  # set by the engine: callable(layer, h) at the prefetch point
+
+    # ------------------------------------------------------------------ keys
+    def key(self, layer: int, expert: int):
+        return (layer, expert) if self.shared else expert
+
+    def residency(self, layer: int) -> Residency:
+        return self.res[0] if self.shared else self.res[layer]
+
+    def _busy(self, layer: int) -> set:
+        return {self.key(*self.key_of[s]) for s in self._slot_range(layer) if self.state[s] == LOADING}
+
+    def _slot_range(self, layer: int):
+        r = self.residency(layer)
+        return list(r.slot_of.values())
+
+    # ------------------------------------------------------------------ loading
+    def preload_all(self) -> None:
+        """Fill every slot in layer, expert order (the fully resident configuration)."""
+        for layer in range(self.config.n_layers):
+            for e in range(self.config.n_experts):
+                r = self.residency(layer)
+                if len(r.slot_of) >= r.capacity:
+                    break
+                slot, _ = r.insert(self.key(layer, e))
+                self._load_into(slot, layer, e)
+                self.key_of[slot] = (layer, e)
+                self.state[slot] = READY
+
+    def _load_into(self, slot: int, layer: int, expert: int) -> int:
+        ns = self.store.page_in(layer, expert, self.slots[slot])
+        self.stats.bytes_in += self.store.expert_nbytes
+        return ns
+
+    def _evicted(self, slot: int) -> None:
+        """Bookkeeping when a READY slot's key is evicted (caller holds the lock)."""
+        if self.prefetched[slot]:
+            self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
+            self.prefetched[slot] = False
+        self.state[slot] = EMPTY
+        self.key_of[slot] = None
+
+    def _access(self, layer: int, expert: int, pinned_keys) -> tuple[int, int]:
+        """Residency bookkeeping for one access; returns (kind, slot). Caller holds the lock."""
+        r = self.residency(layer)
+        key = self.key(layer, expert)
+        while True:
+            try:
+                hit, slot, victim = r.access(key, pinned_keys, self._busy(layer))
+                break
+            except NoVictim:
+                self.cond.wait(0.05)  # a prefetch is in flight in every free slot; it will finish
+        if hit:
+            kind = PREFETCHED if self.prefetched[slot] else HIT
+            if kind == PREFETCHED:
+                self.prefetched[slot] = False
+                self.stats.prefetch_used += 1
+        else:
+            if victim is not None:
+                self._evicted(slot)
+            self.key_of[slot] = (layer, expert)
+            self.state[slot] = EMPTY  # to be read synchronously by weights()
+            kind = MISS
+        return kind, slot
+
+    # ------------------------------------------------------------------ expert source
+    def after_attention(self, layer: int, h: np.ndarray) -> None:
+        if self.guess_hook is not None:
+            self.guess_hook(layer, h)
+
+    def begin_step(self, step: int) -> None:
+        self.step = step
+        self._prefill = step < 0
+
+    def routed(self, layer: int, chosen: np.ndarray, weights: np.ndarray, probs: np.ndarray) -> None:
+        if self.recorder is not None:
+            self.recorder.routed(self.step, layer, chosen, weights, probs)
+        if chosen.shape[0] != 1:
+            return
+        ids = chosen[0].tolist()
+        keys = [self.key(layer, e) for e in ids]
+        st = self.stats
+        with self.cond:
+            self.progress = self.step * self.config.n_layers + layer
+            self.pinned = set(keys)
+            events = {}
+            for e in ids:
+                kind, slot = self._access(layer, e, self.pinned)
+                events[e] = [kind, slot, 0, 0]  # kind, slot, pagein ns, stall ns
+                st.accesses[layer] += 1
+                if kind == MISS:
+                    st.misses[layer] += 1
+                elif kind == PREFETCHED:
+                    st.prefetch_hits[layer] += 1
+                else:
+                    st.hits[layer] += 1
+        self._layer_events = events
+
+    def compute_order(self, layer: int, ids: list[int]) -> list[int]:
+        ev = self._layer_events
+        ready = [j for j, e in enumerate(ids) if self.state[ev[e][1]] == READY]
+        if len(ready) == len(ids):
+            return range(len(ids))
+        return ready + [j for j in range(len(ids)) if j not in ready]
+
+    def begin_prefill_layer(self, layer: int, needed: list[int]) -> None:
+        self._prefill_layer = layer
+
+    def weights(self, layer: int, expert: int):
+        if self._prefill or expert not in self._layer_events:
+            return self._prefill_weights(layer, expert)
+        ev = self._layer_events[expert]
+        slot = ev[1]
+        state = self.state[slot]
+        if state == READY:
+            return self.store.codec.weights(self.bound[slot])
+        t0 = time.monotonic_ns()
+        with self.cond:
+            while self.state[slot] == LOADING:
+                self.cond.wait()
+            state = self.state[slot]
+            if state == EMPTY:
+                self.state[slot] = LOADING  # ours: a demand read
+        if state == EMPTY:
+            ns = self._demand_load(slot, layer, expert)
+            ev[2] = ns
+        else:  # a prefetch finished while we waited
+            waited = time.monotonic_ns() - t0
+            self.stats.hidden_ns += max(0, self.load_ns[slot] - waited)
+        stall = time.monotonic_ns() - t0
+        ev[3] = stall
+        self.stats.stall_ns[layer] += stall
+        return self.store.codec.weights(self.bound[slot])
+
+    def _demand_load(self, slot: int, layer: int, expert: int) -> int:
+        try:
+            ns = self._load_into(slot, layer, expert)
+        except BaseException:
+            with self.cond:
+                self.residency(layer).remove(self.key(layer, expert))
+                self.state[slot] = EMPTY
+                self.key_of[slot] = None
+                self.cond.notify_all()
+            raise
+        with self.cond:
+            self.state[slot] = READY
+            self.load_ns[slot] = ns
+            self.cond.notify_all()
+        self.stats.pagein_ns[layer] += ns
+        self.stats.demand_loads += 1
+        return ns
+
+    def _prefill_weights(self, layer: int, expert: int):
+        """Prefill: each needed expert is accessed (and paged in) once per layer, pinned alone."""
+        key = self.key(layer, expert)
+        with self.cond:
+            self.progress = max(self.progress, -1)
+            self.pinned = {key}
+            r = self.residency(layer)
+            while True:
+                try:
+                    hit, slot, victim = r.access(key, self.pinned, self._busy(layer))
+                    break
+                except NoVictim:
+                    self.cond.wait(0.05)
+            if hit:
+                self.prefetched[slot] = False
+                while self.state[slot] == LOADING:
+                    self.cond.wait()
+                need = self.state[slot] != READY
+            else:
+                if victim is not None:
+                    self._evicted(slot)
+                self.key_of[slot] = (layer, expert)
+                need = True
+            if need:
+                self.state[slot] = LOADING
+        if need:
+            t0 = time.monotonic_ns()
+            ns = self._demand_load(slot, layer, expert)
+            self.stats.prefill_loads += 1
+            self.stats.demand_loads -= 1
+            self.stats.stall_ns[layer] += time.monotonic_ns() - t0
+            _ = ns
+        return self.store.codec.weights(self.bound[slot])
+
+    def done(self, layer: int, expert: int) -> None:
+        if self._prefill:
+            self.pinned = set()
+
+    def begin_layer(self, layer: int) -> None:
+        self._layer_t0 = time.monotonic_ns()
+
+    def end_layer(self, layer: int) -> None:
+        if self.recorder is not None and not self._prefill:
+            stall = sum(ev[3] for ev in self._layer_events.values())
+            compute = time.monotonic_ns() - self._layer_t0 - stall
+            self.recorder.events(self.step, layer, self._layer_events, compute)
+        self.pinned = set()
+
+    # ------------------------------------------------------------------ prefetch side
+    def prefetch(self, layer: int, expert: int, target: int, hook=None) -> None:
+        """Called on the prefetch thread: load a guess unless stale, resident or unplaceable."""
+        key = self.key(layer, expert)
+        r = self.residency(layer)
+        with self.cond:
+            if target <= self.progress or key in r:
+                return
+            try:
+                slot, victim = r.insert(key, self.pinned, self._busy(layer))
+            except NoVictim:
+                return
+            if victim is not None:
+                self._evicted(slot)
+            self.key_of[slot] = (layer, expert)
+            self.state[slot] = LOADING
+            self.prefetched[slot] = True
+            self.stats.prefetch_loads += 1
+        ok = False
+        ns = 0
+        try:
+            if hook is not None:
+                hook(layer, expert)
+            ns = self._load_into(slot, layer, expert)
+            ok = True
+        except Exception:
+            self.stats.prefetch_failed += 1
+        finally:
+            with self.cond:
+                if ok:
+                    self.state[slot] = READY
+                    self.load_ns[slot] = ns
+                    self.stats.prefetch_ns += ns
+                elif self.prefetched[slot]:  # unclaimed: forget the guess
+                    self.prefetched[slot] = False
+                    r.remove(key)
+                    self.state[slot] = EMPTY
+                    self.key_of[slot] = None
+                else:  # a layer already claimed it: leave it EMPTY, weights() reads it on demand
+                    self.state[slot] = EMPTY
+                self.cond.notify_all()
+
+
+class BareExperts:
+    """Every expert resident in page-aligned buffers, no bookkeeping (the benchmark's baseline)."""
+
+    def __init__(self, store: ModelStore):
+        c = store.config
+        from .budget import slot_bytes
+
+        size = slot_bytes(store.expert_nbytes)
+        n = c.n_layers * c.n_experts
+        raw = np.empty(n * size + 4096, np.uint8)
+        off = (-raw.ctypes.data) % 4096
+        block = raw[off : off + n * size]
+        self._raw = raw
+        self.table = []
+        for layer in range(c.n_layers):
+            row = []
+            for e in range(c.n_experts):
+                i = layer * c.n_experts + e
+                slot = block[i * size : (i + 1) * size]
+                store.page_in(layer, e, slot)
+                row.append(store.codec.bind(slot))
+            self.table.append(row)
+        self.codec = store.codec
+        self.recorder = None
+        self.guess_hook = None
+        self.step = -1
+
+    def after_attention(self, layer, h):
+        if self.guess_hook is not None:
+            self.guess_hook(layer, h)
+
+    def routed(self, layer, chosen, weights, probs):
+        if self.recorder is not None:
+            self.recorder.routed(-1 if chosen.shape[0] > 1 else self.step, layer, chosen, weights, probs)
+
+    def compute_order(self, layer, ids):
+        return range(len(ids))
+
+    def begin_prefill_layer(self, layer, needed):
+        pass
+
+    def weights(self, layer, expert):
+        return self.codec.weights(self.table[layer][expert])
+
+    def done(self, layer, expert):
+        pass
+
+    def begin_step(self, step):
+        self.step = step
+
+    def begin_layer(self, layer):
+        pass
+
+    def end_layer(self, layer):
+        pass

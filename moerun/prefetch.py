@@ -1,0 +1,79 @@
+"""Speculative prefetch: guess the next layers' experts and page them in on a background thread.
+
+The prefetch point is right after layer l's attention (before its experts
+run): the routers of layers l+1..l+L are applied to that hidden state, and
+each layer's top-N guesses are queued.  The thread pages guesses into the
+pool, never evicting pinned experts; a guess for a layer that has already
+started is dropped as stale.  Guesses are advisory: a wrong one costs
+bandwidth, a failed one is forgotten and the layer reads the expert itself.
+The thread is a daemon, stops on ``close()`` and never holds the pool lock
+while it reads.
+"""
+
+from __future__ import annotations
+
+import collections
+import threading
+
+from .pool import ExpertPool
+
+
+class Prefetcher:
+    def __init__(self, pool: ExpertPool, model, n_guesses: int, lookahead: int = 1):
+        self.pool = pool
+        self.model = model
+        self.n = n_guesses
+        self.lookahead = lookahead
+        self.queue: collections.deque = collections.deque()
+        self.cv = threading.Condition()
+        self.stopping = False
+        self.hook = None  # test hook: callable(layer, expert) run before each prefetch read
+        self.loop_hook = None  # test hook: callable() run at each loop turn (may raise to kill the thread)
+        self.error: BaseException | None = None
+        self.thread = threading.Thread(target=self._run, name="moerun-prefetch", daemon=True)
+        self.thread.start()
+
+    def guess(self, layer: int, h) -> None:
+        """Prefetch point of layer ``layer`` (compute thread): queue guesses for the next layers."""
+        L = self.pool.config.n_layers
+        step = self.pool.step
+        reqs = []
+        for j in range(1, self.lookahead + 1):
+            target_layer = layer + j
+            if target_layer >= L:
+                break
+            target = step * L + target_layer
+            for e in self.model.guess(h, target_layer, self.n):
+                reqs.append((target_layer, e, target))
+        self.pool.stats.prefetch_guesses += len(reqs)
+        if not reqs or not self.thread.is_alive():
+            return
+        with self.cv:
+            self.queue.extend(reqs)
+            self.cv.notify()
+
+    def _run(self) -> None:
+        try:
+            while True:
+                with self.cv:
+                    while not self.queue and not self.stopping:
+                        self.cv.wait()
+                    if self.stopping:
+                        return
+                    layer, e, target = self.queue.popleft()
+                if self.loop_hook is not None:
+                    self.loop_hook()
+                self.pool.prefetch(layer, e, target, self.hook)
+        except BaseException as exc:  # the thread dies; the compute thread carries on without it
+            self.error = exc
+
+    @property
+    def alive(self) -> bool:
+        return self.thread.is_alive()
+
+    def close(self, timeout: float = 2.0) -> None:
+        with self.cv:
+            self.stopping = True
+            self.queue.clear()
+            self.cv.notify_all()
+        self.thread.join(timeout)

@@ -1,0 +1,241 @@
+"""The opened model file: validated tensors, dense weights, expert byte ranges, page-in.
+
+``ModelStore.open(dir)`` checks the config and every tensor against it before
+anything is used.  Dense weights are read once into float32 arrays.  Experts
+stay in the file: each is one contiguous byte range, and ``page_in`` copies
+one into a caller's buffer (a pool slot) and returns the real time it took in
+nanoseconds.
+
+Page-in mechanisms (measured by ``scripts/bench_pagein.py``, see docs/offload.md):
+``pread`` (default) reads exactly the expert's bytes with ``os.preadv`` into
+the slot; nothing of the file is mapped into the process, so copied pages
+never count towards its resident set.  ``mmap`` copies from a read-only map
+of the file and then releases the copied range of the map with
+``madvise(MADV_DONTNEED)`` so the mapped pages do not stay resident either.
+"""
+
+from __future__ import annotations
+
+import mmap
+import os
+import threading
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .codec import Codec, codec_for
+from .config import ModelConfig, expert_tensor_name
+from .errors import BadModelFile, PageInError
+from .modelfile import NUMPY_DTYPES, Header, TensorInfo, read_header
+
+PAGE = mmap.PAGESIZE
+MECHANISMS = ("pread", "mmap")
+
+
+@dataclass(frozen=True)
+class ExpertRange:
+    layer: int
+    expert: int
+    start: int
+    nbytes: int
+
+
+class ModelStore:
+    """A validated, opened model directory (weights file, config, paths)."""
+
+    def __init__(self, model_dir: Path, config: ModelConfig, header: Header, codec: Codec, ranges, expert_nbytes: int):
+        self.model_dir = model_dir
+        self.config = config
+        self.header = header
+        self.codec = codec
+        self.ranges: list[list[ExpertRange]] = ranges
+        self.expert_nbytes = expert_nbytes
+        self.path = header.path
+        self.mechanism = "pread"
+        self.link_rate: float | None = None  # bytes/s of an emulated link, None = real speed
+        self.fault_hook = None  # test hook: called as hook(layer, expert) before each read
+        self._fd = os.open(self.path, os.O_RDONLY)
+        self._map: mmap.mmap | None = None
+        self._lock = threading.Lock()
+        self.dense: dict[str, np.ndarray] = {}
+
+    # ---------------------------------------------------------------- opening
+    @classmethod
+    def open(cls, model_dir: str | os.PathLike) -> ModelStore:
+        model_dir = Path(model_dir)
+        if not model_dir.exists():
+            raise BadModelFile(f"{model_dir}: no such model directory")
+        if not model_dir.is_dir():
+            raise BadModelFile(f"{model_dir}: not a directory (--model takes a model directory)")
+        config = ModelConfig.load(model_dir)
+        header = read_header(model_dir / "model.safetensors")
+        tensors = header.tensors
+        problems = []
+        for name, shape in config.dense_shapes().items():
+            t = tensors.get(name)
+            if t is None:
+                problems.append(f"missing tensor {name!r}")
+            elif t.shape != shape:
+                problems.append(f"tensor {name!r} has shape {list(t.shape)}, config.json implies {list(shape)}")
+            elif t.dtype not in ("F32", "F16"):
+                problems.append(f"tensor {name!r} has dtype {t.dtype}; dense weights must be F32 or F16")
+            if problems:
+                raise BadModelFile(f"{header.path}: {problems[0]}")
+        first = [tensors.get(expert_tensor_name(0, 0, s)) for s in ("w_gate",)]
+        expert_dtype = first[0].dtype if first[0] is not None else "F32"
+        if expert_dtype not in ("F32", "F16"):
+            expert_dtype = "F32"
+        codec = codec_for(config, expert_dtype)
+        ranges: list[list[ExpertRange]] = []
+        layout: dict[str, int] | None = None
+        nbytes = sum(p.nbytes for p in codec.parts)
+        for layer in range(config.n_layers):
+            row = []
+            for e in range(config.n_experts):
+                infos: list[tuple[TensorInfo, object]] = []
+                for part in codec.parts:
+                    name = expert_tensor_name(layer, e, part.suffix)
+                    t = tensors.get(name)
+                    if t is None:
+                        raise BadModelFile(f"{header.path}: missing tensor {name!r}")
+                    if t.shape != part.shape or t.dtype != part.dtype:
+                        raise BadModelFile(
+                            f"{header.path}: tensor {name!r} is {t.dtype} {list(t.shape)}, expected {part.dtype} {list(part.shape)}"
+                        )
+                    infos.append((t, part))
+                start = min(t.start for t, _ in infos)
+                end = max(t.end for t, _ in infos)
+                if end - start != nbytes:
+                    raise BadModelFile(
+                        f"{header.path}: expert {e} of layer {layer} is not stored as one contiguous byte range"
+                    )
+                rel = {p.suffix: t.start - start for t, p in infos}
+                if layout is None:
+                    layout = rel
+                elif rel != layout:
+                    raise BadModelFile(f"{header.path}: experts are not all stored in the same layout (layer {layer}, expert {e})")
+                row.append(ExpertRange(layer, e, start, nbytes))
+            ranges.append(row)
+        codec = codec.with_offsets(layout or {})
+        store = cls(model_dir, config, header, codec, ranges, nbytes)
+        try:
+            store._load_dense()
+        except BaseException:
+            store.close()
+            raise
+        return store
+
+    def _read(self, start: int, nbytes: int) -> bytes:
+        data = os.pread(self._fd, nbytes, start)
+        if len(data) != nbytes:
+            raise BadModelFile(f"{self.path}: file ended early (changed while open?)")
+        return data
+
+    def _load_dense(self) -> None:
+        for name in self.config.dense_shapes():
+            t = self.header.tensors[name]
+            raw = self._read(t.start, t.nbytes)
+            arr = np.frombuffer(raw, dtype=np.dtype(NUMPY_DTYPES[t.dtype]).newbyteorder("<")).reshape(t.shape)
+            self.dense[name] = np.ascontiguousarray(arr, dtype=np.float32)
+            if not np.all(np.isfinite(self.dense[name])):
+                raise BadModelFile(f"{self.path}: tensor {name!r} holds NaN or infinite values")
+
+    # ---------------------------------------------------------------- sizes
+    @property
+    def dense_nbytes(self) -> int:
+        """Bytes the dense weights take in memory (as float32)."""
+        return sum(a.nbytes for a in self.dense.values())
+
+    @property
+    def expert_total_nbytes(self) -> int:
+        return self.expert_nbytes * self.config.n_layers * self.config.n_experts
+
+    def expert_range(self, layer: int, expert: int) -> ExpertRange:
+        return self.ranges[layer][expert]
+
+    def read_tensor(self, name: str) -> np.ndarray:
+        """Any tensor of the file as a numpy array (a copy), for inspection and tests."""
+        t = self.header.tensors[name]
+        raw = self._read(t.start, t.nbytes)
+        return np.frombuffer(raw, dtype=np.dtype(NUMPY_DTYPES[t.dtype]).newbyteorder("<")).reshape(t.shape).copy()
+
+    # ---------------------------------------------------------------- page-in
+    def set_mechanism(self, mechanism: str) -> None:
+        if mechanism not in MECHANISMS:
+            raise ValueError(f"unknown page-in mechanism {mechanism!r}")
+        if mechanism == "mmap" and self._map is None:
+            self._map = mmap.mmap(self._fd, 0, prot=mmap.PROT_READ)
+        self.mechanism = mechanism
+
+    def page_in(self, layer: int, expert: int, dst: np.ndarray) -> int:
+        """Copy one expert's bytes into ``dst`` (uint8, at least expert_nbytes); return real ns.
+
+        With an emulated link the call lasts at least nbytes / link_rate
+        (sleeping, so the GIL is free while it waits).
+        """
+        r = self.ranges[layer][expert]
+        t0 = time.monotonic_ns()
+        if self.fault_hook is not None:
+            self.fault_hook(layer, expert)
+        try:
+            if self.mechanism == "pread":
+                view = memoryview(dst)[: r.nbytes]
+                got = os.preadv(self._fd, [view], r.start)
+                while got < r.nbytes:  # short reads are legal; finish or fail
+                    n = os.preadv(self._fd, [view[got:]], r.start + got)
+                    if n == 0:
+                        raise PageInError(
+                            f"{self.path}: file ended while reading expert {expert} of layer {layer} (file changed while open?)"
+                        )
+                    got += n
+            else:
+                m = self._map
+                if m is None or r.start + r.nbytes > len(m):
+                    raise PageInError(f"{self.path}: expert {expert} of layer {layer} lies outside the mapped file")
+                np.copyto(dst[: r.nbytes], np.frombuffer(m, np.uint8, r.nbytes, r.start))
+                lo = r.start - r.start % PAGE
+                hi = r.start + r.nbytes
+                try:
+                    m.madvise(mmap.MADV_DONTNEED, lo, hi - lo)
+                except (OSError, ValueError):
+                    pass
+        except OSError as e:
+            raise PageInError(f"{self.path}: reading expert {expert} of layer {layer} failed ({e.strerror or e})") from None
+        elapsed = time.monotonic_ns() - t0
+        if self.link_rate:
+            target = int(r.nbytes / self.link_rate * 1e9)
+            if target > elapsed:
+                time.sleep((target - elapsed) / 1e9)
+                elapsed = time.monotonic_ns() - t0
+        return elapsed
+
+    def drop_cache(self) -> bool:
+        """Ask the OS to drop this file's pages from its cache (for cold runs). True if advised."""
+        if not hasattr(os, "posix_fadvise"):
+            return False
+        if self._map is not None:
+            try:
+                self._map.madvise(mmap.MADV_DONTNEED)
+            except (OSError, ValueError):
+                pass
+        os.posix_fadvise(self._fd, 0, 0, os.POSIX_FADV_DONTNEED)
+        return True
+
+    def close(self) -> None:
+        if self._map is not None:
+            try:
+                self._map.close()
+            except (BufferError, ValueError):
+                pass
+            self._map = None
+        if self._fd >= 0:
+            os.close(self._fd)
+            self._fd = -1
+
+    def __del__(self):
+        try:
+            self.close()
+        except Exception:
+            pass

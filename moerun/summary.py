@@ -1,0 +1,75 @@
+"""The end-of-run summary shown by generate (and score): speed, budget, pool behaviour, memory."""
+
+from __future__ import annotations
+
+from .report import pct, table
+from .units import fmt_bytes, fmt_rate
+
+NOT_ADVICE = "text from a tiny model trained on invented data; not advice"
+
+
+def run_json(engine, gen=None) -> dict:
+    st = engine.stats
+    doc: dict = {}
+    if gen is not None:
+        doc.update(
+            {
+                "prompt_tokens": len(gen.prompt_ids),
+                "new_tokens": len(gen.new_ids),
+                "stop": gen.stop,
+                "prefill_ms": gen.prefill_ns / 1e6,
+                "prefill_tok_s": gen.prefill_tok_s,
+                "decode_steps": gen.decode_steps,
+                "decode_ms": gen.decode_ns / 1e6,
+                "decode_tok_s": gen.decode_tok_s,
+            }
+        )
+    doc.update(st)
+    link = engine.options.get("link_speed")
+    doc["link_emulated"] = link is not None
+    if gen is not None and "pool" in st and gen.decode_ns + gen.prefill_ns:
+        doc["stall_share"] = st["pool"]["stall_ns"] / (gen.decode_ns + gen.prefill_ns)
+    return doc
+
+
+def run_text(engine, gen=None) -> str:
+    doc = run_json(engine, gen)
+    lines = []
+    if gen is not None:
+        lines.append(
+            f"prompt {doc['prompt_tokens']} tok, prefill {doc['prefill_tok_s']:.0f} tok/s | "
+            f"new {doc['new_tokens']} tok, decode {doc['decode_tok_s']:.0f} tok/s"
+            + (" | stopped: context full" if gen.stop == "context-full" else "")
+        )
+    b = engine.budget
+    link = engine.options.get("link_speed")
+    if link is not None:
+        lines.append(f"link: {fmt_rate(link)} (emulated)")
+    if b.cap is not None:
+        rows = [[name, fmt_bytes(n)] for name, n in b.rows()]
+        rows.append(["total / cap", f"{fmt_bytes(b.total)} / {fmt_bytes(b.cap)}"])
+        lines.append(table(["budget", "size"], rows))
+        lines.append(f"slots per layer: {','.join(map(str, b.slots))}" + (" (one shared pool)" if b.split == "shared" else ""))
+    pool = doc.get("pool")
+    if pool and b.cap is not None:
+        rows = [
+            [str(p["layer"]), p["accesses"], p["hits"], p["prefetch_hits"], p["misses"], pct(p["hit_rate"])]
+            for p in pool["per_layer"]
+        ]
+        rows.append(["all", pool["accesses"], pool["hits"], pool["prefetch_hits"], pool["misses"], pct(pool["hit_rate"])])
+        lines.append(table(["layer", "accesses", "hits", "prefetched", "misses", "hit rate"], rows))
+        pf = pool["prefetch"]
+        if engine.options.get("prefetch"):
+            lines.append(
+                f"prefetch: {pf['guesses']} guesses, {pf['loads']} loads, {pf['used']} used "
+                f"({pct(pf['accuracy'])} accurate), {fmt_bytes(pf['wasted_bytes'])} wasted, "
+                f"{pf['hidden_ns'] / 1e6:.1f} ms of page-in hidden"
+            )
+        stall = doc.get("stall_share")
+        lines.append(
+            f"paged in {fmt_bytes(pool['bytes_paged_in'])}; stalled {pool['stall_ns'] / 1e6:.1f} ms"
+            + (f" ({pct(stall)} of run time)" if stall is not None else "")
+        )
+    cap = f" (cap {fmt_bytes(b.cap)})" if b.cap is not None else ""
+    lines.append(f"peak resident-set growth {fmt_bytes(doc['peak_rss_growth_bytes'])}{cap}")
+    return "\n".join(lines)

@@ -1,0 +1,222 @@
+"""Routing traces: recording them from a run, and the ``.npz`` file format (docs/traces.md).
+
+A trace file is a numpy ``.npz`` archive:
+
+- ``experts``  int  [tokens, layers, top_k]  chosen expert ids per token and layer
+  (ascending within a row); ``-1`` is padding (no access).
+- ``weights``  float32, same shape, optional: the routing weights.
+- ``guesses``  int  [tokens, layers, lookahead, n], optional: for token t and
+  layer l, entry [t, l, j-1] holds the top-n experts that layer l+j's router
+  picks from the hidden state after layer l's attention (the prefetch rule);
+  ``-1`` where l+j is past the last layer.
+- ``meta``     0-d string array holding a JSON object, optional (``n_experts``,
+  ``top_k``, ``expert_bytes``, ``prefill_tokens``, ``source``, ``partial``, ...).
+
+Traces written by the live engine add per-access events: ``kind`` int8
+(0 hit, 1 prefetched, 2 miss, -1 prefill), ``pagein_ns`` and ``stall_ns``
+int64 [tokens, layers, top_k], and ``compute_ns`` int64 [tokens, layers].
+"""
+
+from __future__ import annotations
+
+import io
+import json
+import zipfile
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .errors import BadTrace
+from .fileio import atomic_path
+
+PAD = -1
+TRACE_LOOKAHEAD = 3
+TRACE_GUESSES = 4
+
+
+@dataclass
+class Trace:
+    experts: np.ndarray
+    weights: np.ndarray | None = None
+    guesses: np.ndarray | None = None
+    meta: dict = field(default_factory=dict)
+    events: dict = field(default_factory=dict)
+
+    @property
+    def n_tokens(self) -> int:
+        return self.experts.shape[0]
+
+    @property
+    def n_layers(self) -> int:
+        return self.experts.shape[1]
+
+    @property
+    def top_k(self) -> int:
+        return self.experts.shape[2]
+
+    @property
+    def n_experts(self) -> int:
+        n = self.meta.get("n_experts")
+        return int(n) if n is not None else int(self.experts.max(initial=-1)) + 1
+
+
+class Recorder:
+    """Collects routing, guesses and events per layer while the engine runs."""
+
+    def __init__(self, n_layers: int, top_k: int, lookahead: int = TRACE_LOOKAHEAD, n_guesses: int = TRACE_GUESSES):
+        self.L = n_layers
+        self.k = top_k
+        self.lookahead = lookahead
+        self.n_guesses = n_guesses
+        self.experts: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
+        self.weights: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
+        self.guesses: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
+        self.kind: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
+        self.pagein: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
+        self.stall: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
+        self.compute: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
+        self.prefill_tokens = 0
+
+    def routed(self, step: int, layer: int, chosen: np.ndarray, weights: np.ndarray, probs: np.ndarray) -> None:
+        T = chosen.shape[0]
+        self.experts[layer].append(chosen.astype(np.int16))
+        self.weights[layer].append(weights.astype(np.float32))
+        if T > 1 or step < 0:
+            self.kind[layer].append(np.full((T, self.k), -1, np.int8))
+            self.pagein[layer].append(np.zeros((T, self.k), np.int64))
+            self.stall[layer].append(np.zeros((T, self.k), np.int64))
+            self.compute[layer].append(np.zeros(T, np.int64))
+            if layer == 0:
+                self.prefill_tokens += T
+
+    def guessed(self, layer: int, g: np.ndarray) -> None:
+        """g: [T, lookahead, n] guesses made at layer's prefetch point."""
+        self.guesses[layer].append(g.astype(np.int16))
+
+    def events(self, step: int, layer: int, events: dict, compute_ns: int) -> None:
+        """Per-access events of one decode layer: {expert: [kind, slot, pagein_ns, stall_ns]}."""
+        last = self.experts[layer][-1][0].tolist()
+        self.kind[layer].append(np.array([[events[e][0] for e in last]], np.int8))
+        self.pagein[layer].append(np.array([[events[e][2] for e in last]], np.int64))
+        self.stall[layer].append(np.array([[events[e][3] for e in last]], np.int64))
+        self.compute[layer].append(np.array([compute_ns], np.int64))
+
+    def to_trace(self, meta: dict) -> Trace:
+        n = min(sum(a.shape[0] for a in rows) for rows in self.experts) if self.L else 0
+
+        def stack(rows, tail, dtype, fill=0):
+            out = []
+            for layer_rows in rows:
+                a = np.concatenate(layer_rows, axis=0) if layer_rows else np.zeros((0, *tail), dtype)
+                if a.shape[0] < n:
+                    return None
+                out.append(a[:n])
+            return np.stack(out, axis=1) if out else np.zeros((n, 0, *tail), dtype)
+
+        experts = stack(self.experts, (self.k,), np.int16)
+        weights = stack(self.weights, (self.k,), np.float32)
+        guesses = stack(self.guesses, (self.lookahead, self.n_guesses), np.int16)
+        events = {}
+        for name, rows, tail, dt in (
+            ("kind", self.kind, (self.k,), np.int8),
+            ("pagein_ns", self.pagein, (self.k,), np.int64),
+            ("stall_ns", self.stall, (self.k,), np.int64),
+            ("compute_ns", self.compute, (), np.int64),
+        ):
+            a = stack(rows, tail, dt)
+            if a is not None and a.shape[0] == n:
+                events[name] = a
+        meta = {"prefill_tokens": self.prefill_tokens, **meta}
+        return Trace(experts, weights, guesses, meta, events)
+
+
+def write_trace(path: str | Path, trace: Trace) -> None:
+    arrays = {"experts": trace.experts, "meta": np.array(json.dumps(trace.meta))}
+    if trace.weights is not None:
+        arrays["weights"] = trace.weights
+    if trace.guesses is not None:
+        arrays["guesses"] = trace.guesses
+    arrays.update(trace.events)
+    with atomic_path(path, suffix=".npz") as tmp:
+        with open(tmp, "wb") as f:
+            np.savez_compressed(f, **arrays)
+
+
+_INT_KINDS = "iu"
+
+
+def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
+    """Read and validate a trace file; raise BadTrace with one clear line."""
+    path = Path(path)
+    try:
+        data = path.read_bytes()
+    except FileNotFoundError:
+        raise BadTrace(f"{path}: no such trace file") from None
+    except OSError as e:
+        raise BadTrace(f"{path}: cannot read ({e.strerror})") from None
+    try:
+        z = np.load(io.BytesIO(data), allow_pickle=False)
+        if not isinstance(z, np.lib.npyio.NpzFile):
+            raise BadTrace(f"{path}: not an .npz archive (a trace holds named arrays)")
+        with z:
+            names = set(z.files)
+            if "experts" not in names:
+                raise BadTrace(f"{path}: missing the 'experts' array [tokens, layers, top_k]")
+            arrays = {name: z[name] for name in names}
+    except BadTrace:
+        raise
+    except (ValueError, OSError, zipfile.BadZipFile, EOFError, KeyError) as e:
+        raise BadTrace(f"{path}: not a readable .npz trace ({str(e).splitlines()[0][:120] if str(e) else type(e).__name__})") from None
+    experts = arrays["experts"]
+    if experts.ndim != 3 or experts.dtype.kind not in _INT_KINDS:
+        raise BadTrace(f"{path}: 'experts' must be an integer array [tokens, layers, top_k], got {experts.dtype} {list(experts.shape)}")
+    if 0 in experts.shape[1:]:
+        raise BadTrace(f"{path}: 'experts' has no layers or no top_k column")
+    meta: dict = {}
+    if "meta" in arrays:
+        m = arrays["meta"]
+        try:
+            meta = json.loads(str(m.item())) if m.shape == () else None
+        except (ValueError, TypeError):
+            meta = None
+        if not isinstance(meta, dict):
+            raise BadTrace(f"{path}: 'meta' must be a 0-d string holding a JSON object")
+    experts = experts.astype(np.int64)
+    if (experts < PAD).any():
+        raise BadTrace(f"{path}: 'experts' holds negative ids other than the padding value {PAD}")
+    declared = meta.get("n_experts")
+    if declared is not None and (isinstance(declared, bool) or not isinstance(declared, int) or declared <= 0):
+        raise BadTrace(f"{path}: meta n_experts must be a positive integer")
+    limit = n_experts if n_experts is not None else declared
+    if limit is not None and (experts >= limit).any():
+        raise BadTrace(f"{path}: 'experts' holds ids >= n_experts ({limit})")
+    if limit is not None:
+        meta["n_experts"] = int(limit)
+    if experts.size and experts.max() > 1_000_000:
+        raise BadTrace(f"{path}: expert ids up to {experts.max()} are implausible")
+    rows = np.sort(np.where(experts < 0, np.iinfo(np.int64).max, experts), axis=-1)
+    dup = (rows[..., 1:] == rows[..., :-1]) & (rows[..., 1:] != np.iinfo(np.int64).max)
+    if dup.any():
+        raise BadTrace(f"{path}: an expert appears twice in one token's top_k row")
+    weights = arrays.get("weights")
+    if weights is not None:
+        if weights.shape != experts.shape or weights.dtype.kind != "f":
+            raise BadTrace(f"{path}: 'weights' must be a float array shaped like 'experts' {list(experts.shape)}")
+        weights = weights.astype(np.float32)
+    guesses = arrays.get("guesses")
+    if guesses is not None:
+        if guesses.ndim != 4 or guesses.shape[:2] != experts.shape[:2] or guesses.dtype.kind not in _INT_KINDS:
+            raise BadTrace(f"{path}: 'guesses' must be an integer array [tokens, layers, lookahead, n] matching 'experts'")
+        guesses = guesses.astype(np.int64)
+        if (guesses < PAD).any() or (limit is not None and (guesses >= limit).any()):
+            raise BadTrace(f"{path}: 'guesses' holds ids outside 0..n_experts-1 (or -1 padding)")
+    events = {}
+    for name in ("kind", "pagein_ns", "stall_ns", "compute_ns"):
+        if name in arrays:
+            a = arrays[name]
+            want = experts.shape[:2] if name == "compute_ns" else experts.shape
+            if a.shape != want:
+                raise BadTrace(f"{path}: '{name}' must have shape {list(want)}")
+            events[name] = a
+    return Trace(experts, weights, guesses, meta, events)
