@@ -42,6 +42,22 @@ class ExpertRange:
     nbytes: int
 
 
+def pread_into(fd: int, offset: int, dst) -> None:
+    """Read exactly len(dst) bytes at ``offset`` into the writable buffer ``dst`` (os.preadv; releases the GIL).
+
+    This is the engine's page-in read; ``moerun probe`` times the same function.
+    Raises EOFError if the file ends first.
+    """
+    view = memoryview(dst).cast("B")
+    n = len(view)
+    got = os.preadv(fd, [view], offset)
+    while got < n:  # short reads are legal; finish or fail
+        more = os.preadv(fd, [view[got:]], offset + got)
+        if more == 0:
+            raise EOFError
+        got += more
+
+
 class ModelStore:
     """A validated, opened model directory (weights file, config, paths)."""
 
@@ -181,15 +197,12 @@ class ModelStore:
             self.fault_hook(layer, expert)
         try:
             if self.mechanism == "pread":
-                view = memoryview(dst)[: r.nbytes]
-                got = os.preadv(self._fd, [view], r.start)
-                while got < r.nbytes:  # short reads are legal; finish or fail
-                    n = os.preadv(self._fd, [view[got:]], r.start + got)
-                    if n == 0:
-                        raise PageInError(
-                            f"{self.path}: file ended while reading expert {expert} of layer {layer} (file changed while open?)"
-                        )
-                    got += n
+                try:
+                    pread_into(self._fd, r.start, dst[: r.nbytes])
+                except EOFError:
+                    raise PageInError(
+                        f"{self.path}: file ended while reading expert {expert} of layer {layer} (file changed while open?)"
+                    ) from None
             else:
                 m = self._map
                 if m is None or r.start + r.nbytes > len(m):
