@@ -89,6 +89,15 @@ class FloatCodec(Codec):
         return 0 if self._scratch is None else sum(s.nbytes for s in self._scratch)
 
 
+def packed_dense_tensors(config: ModelConfig) -> dict[str, str]:
+    """Dense tensors stored as packed blobs (quantized attention): ``{dense name: blob tensor name}``."""
+    if config.extra.get("quant"):
+        from .quant import packed_dense_names  # validates the quant entry
+
+        return packed_dense_names(config)
+    return {}
+
+
 def codec_for(config: ModelConfig, expert_dtype: str) -> Codec:
     if config.extra.get("quant"):
         from .quant import codec_from_config  # packed low-bit experts

@@ -19,9 +19,10 @@ from .budget import Budget, plan_budget
 from .errors import BadOption
 from .memwatch import MemWatch
 from .model import KVCache, Transformer, rmsnorm
-from .pool import BareExperts, ExpertPool
+from .pool import ExpertPool
 from .prefetch import Prefetcher
 from .sampling import Sampler, Sampling
+from .sources import BareExperts, NoReuseExperts, WholeLayerExperts
 from .store import ModelStore
 from .tokenizer import Tokenizer
 from .trace import TRACE_GUESSES, TRACE_LOOKAHEAD, Recorder, Trace
@@ -78,6 +79,7 @@ class Engine:
         self.memwatch = memwatch
         self.options = options
         self.recorder: Recorder | None = None
+        self._step_clock = 0
         experts.guess_hook = self._after_attention
         if prefetcher is not None:
             prefetcher.model = self.model
@@ -166,7 +168,8 @@ class Engine:
                 stop = "context-full"
                 break
             t1 = time.monotonic_ns()
-            self.experts.begin_step(steps)
+            self.experts.begin_step(self._step_clock)
+            self._step_clock += 1  # never repeats across generations, so stale guesses stay stale
             x = self.model.forward(np.array([tok]), pos, self.cache, self.experts)
             logits = self.model.logits(x)[0]
             decode_ns += time.monotonic_ns() - t1
@@ -248,6 +251,7 @@ def load(
     mechanism: str = "pread",
     bare: bool = False,
     tokenizer: bool = True,
+    baseline: str | None = None,
 ) -> Engine:
     """Open a model and return an engine (DESIGN section 4).
 
@@ -256,6 +260,8 @@ def load(
     (overrides split).  split: "even" per-layer quotas or "shared".
     prefetch: guesses per layer (0 = off), lookahead: layers ahead.
     link_speed: bytes/s (or "2GB/s") of an emulated slower link.
+    bare: every expert resident in plain buffers, no pool (speed reference).
+    baseline: "whole-layer" or "no-reuse", the naive offloading baselines of the benchmarks.
     """
     from . import policies
 
@@ -280,6 +286,11 @@ def load(
         prefetcher = None
         if bare:
             experts = BareExperts(store)
+        elif baseline is not None:
+            kinds = {"whole-layer": WholeLayerExperts, "no-reuse": NoReuseExperts}
+            if baseline not in kinds:
+                raise BadOption(f"unknown baseline {baseline!r}; known: {', '.join(kinds)}")
+            experts = kinds[baseline](store)
         else:
             experts = ExpertPool(store, budget, evict)
             if cap is None:
@@ -297,6 +308,7 @@ def load(
             "cold": cold,
             "mechanism": mechanism,
             "bare": bare,
+            "baseline": baseline,
         }
         return Engine(store, tok, budget, experts, prefetcher, watch, options)
     except BaseException:

@@ -25,12 +25,15 @@ from pathlib import Path
 
 import numpy as np
 
-from .codec import Codec, codec_for
+from .codec import Codec, codec_for, packed_dense_tensors
 from .config import ModelConfig, expert_tensor_name
 from .errors import BadModelFile, PageInError
 from .modelfile import NUMPY_DTYPES, Header, TensorInfo, read_header
 
 PAGE = mmap.PAGESIZE
+# Linux maps up to this many bytes of already-cached file pages around a read fault
+# (fault_around_bytes, default 64 KiB; a multiple of the page size).
+FAULT_AROUND = max(PAGE, 64 * 1024)
 MECHANISMS = ("pread", "mmap")
 
 
@@ -75,6 +78,7 @@ class ModelStore:
         self._fd = os.open(self.path, os.O_RDONLY)
         self._map: mmap.mmap | None = None
         self._lock = threading.Lock()
+        self._link_free_ns = 0  # when the emulated link finishes its queued transfers
         self.dense: dict[str, np.ndarray] = {}
 
     # ---------------------------------------------------------------- opening
@@ -89,7 +93,10 @@ class ModelStore:
         header = read_header(model_dir / "model.safetensors")
         tensors = header.tensors
         problems = []
+        packed = packed_dense_tensors(config)  # quantized attention: validated when decoded in _load_dense
         for name, shape in config.dense_shapes().items():
+            if name in packed:
+                continue
             t = tensors.get(name)
             if t is None:
                 problems.append(f"missing tensor {name!r}")
@@ -150,7 +157,13 @@ class ModelStore:
         return data
 
     def _load_dense(self) -> None:
+        packed = packed_dense_tensors(self.config)
         for name in self.config.dense_shapes():
+            if name in packed:  # a quantized attention matrix, dequantized once here
+                from .quant import read_packed_dense
+
+                self.dense[name] = read_packed_dense(self, name, packed[name])
+                continue
             t = self.header.tensors[name]
             raw = self._read(t.start, t.nbytes)
             arr = np.frombuffer(raw, dtype=np.dtype(NUMPY_DTYPES[t.dtype]).newbyteorder("<")).reshape(t.shape)
@@ -188,8 +201,9 @@ class ModelStore:
     def page_in(self, layer: int, expert: int, dst: np.ndarray) -> int:
         """Copy one expert's bytes into ``dst`` (uint8, at least expert_nbytes); return real ns.
 
-        With an emulated link the call lasts at least nbytes / link_rate
-        (sleeping, so the GIL is free while it waits).
+        With an emulated link (``link_rate`` bytes/s) the transfer takes nbytes /
+        link_rate on a single channel shared by all threads: concurrent page-ins
+        queue behind each other.  The wait is a sleep, so the GIL is free.
         """
         r = self.ranges[layer][expert]
         t0 = time.monotonic_ns()
@@ -208,21 +222,27 @@ class ModelStore:
                 if m is None or r.start + r.nbytes > len(m):
                     raise PageInError(f"{self.path}: expert {expert} of layer {layer} lies outside the mapped file")
                 np.copyto(dst[: r.nbytes], np.frombuffer(m, np.uint8, r.nbytes, r.start))
-                lo = r.start - r.start % PAGE
-                hi = r.start + r.nbytes
+                # Release the copied range, widened to the kernel's fault-around windows:
+                # a read fault maps the cached pages of the whole aligned window around it,
+                # and those would otherwise stay in the resident set, one window per expert.
+                lo = r.start - r.start % FAULT_AROUND
+                hi = min(len(m), -(-(r.start + r.nbytes) // FAULT_AROUND) * FAULT_AROUND)
                 try:
                     m.madvise(mmap.MADV_DONTNEED, lo, hi - lo)
                 except (OSError, ValueError):
                     pass
         except OSError as e:
             raise PageInError(f"{self.path}: reading expert {expert} of layer {layer} failed ({e.strerror or e})") from None
-        elapsed = time.monotonic_ns() - t0
         if self.link_rate:
-            target = int(r.nbytes / self.link_rate * 1e9)
-            if target > elapsed:
-                time.sleep((target - elapsed) / 1e9)
-                elapsed = time.monotonic_ns() - t0
-        return elapsed
+            # One emulated link shared by every reader: transfers queue behind each other.
+            with self._lock:
+                start = max(t0, self._link_free_ns)
+                end = start + int(r.nbytes / self.link_rate * 1e9)
+                self._link_free_ns = end
+            wait = end - time.monotonic_ns()
+            if wait > 0:
+                time.sleep(wait / 1e9)
+        return time.monotonic_ns() - t0
 
     def drop_cache(self) -> bool:
         """Ask the OS to drop this file's pages from its cache (for cold runs). True if advised."""
