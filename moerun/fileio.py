@@ -9,6 +9,12 @@ from collections.abc import Iterator
 from pathlib import Path
 
 
+def _umask() -> int:
+    mask = os.umask(0o022)
+    os.umask(mask)
+    return mask
+
+
 @contextlib.contextmanager
 def atomic_path(path: str | os.PathLike, suffix: str = "") -> Iterator[Path]:
     """Yield a temporary path beside ``path``; on success rename it into place, else remove it.
@@ -19,6 +25,7 @@ def atomic_path(path: str | os.PathLike, suffix: str = "") -> Iterator[Path]:
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(prefix=".moerun-tmp-", suffix=suffix or path.suffix, dir=path.parent)
+    os.fchmod(fd, 0o666 & ~_umask())  # mkstemp makes 0600; give the final file ordinary permissions
     os.close(fd)
     tmp_path = Path(tmp)
     try:
