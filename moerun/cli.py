@@ -33,12 +33,23 @@ def add_model(p) -> None:
     p.add_argument("--model", metavar="DIR", help="model directory (default: the bundled tiny model)")
 
 
+def seed_value(text: str) -> int:
+    """argparse type for --seed: a whole number, 0 or more (numpy's generators refuse negative seeds)."""
+    try:
+        seed = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"--seed takes a whole number, got {text!r}") from None
+    if seed < 0:
+        raise argparse.ArgumentTypeError(f"--seed must be 0 or more, got {seed}")
+    return seed
+
+
 def add_prompt(p, max_new_default: int = 80) -> None:
     g = p.add_mutually_exclusive_group()
     g.add_argument("--prompt", metavar="TEXT", help="prompt text")
     g.add_argument("--prompt-file", metavar="FILE", help="read the prompt from a UTF-8 file")
     p.add_argument("--max-new", type=int, default=max_new_default, metavar="N", help=f"tokens to generate (default {max_new_default})")
-    p.add_argument("--seed", type=int, default=0, metavar="N", help="sampling seed (default 0)")
+    p.add_argument("--seed", type=seed_value, default=0, metavar="N", help="sampling seed, 0 or more (default 0)")
     p.add_argument("--temperature", type=float, default=0.8, metavar="T", help="0 = greedy (default 0.8)")
     p.add_argument("--top-p", type=float, default=0.95, metavar="P", help="nucleus sampling mass (default 0.95)")
 

@@ -112,6 +112,8 @@ class ModelConfig:
             raise BadModelFile(f"{path}: missing (every model directory needs a config.json)") from None
         except (UnicodeDecodeError, json.JSONDecodeError) as e:
             raise BadModelFile(f"{path}: not valid JSON ({e})") from None
+        except RecursionError:
+            raise BadModelFile(f"{path}: not valid JSON (nested too deeply)") from None
         except OSError as e:
             raise BadModelFile(f"{path}: cannot read ({e.strerror})") from None
         return cls.from_dict(raw, where=str(path))

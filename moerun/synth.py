@@ -1,22 +1,45 @@
 """Models with random weights in moerun's format, for studying page-in and planning at any size.
 
 Routing in such a model is meaningless (random weights route by token
-identity, not by content); every output about one says so.  Weights are
-written layer by layer so memory stays bounded for large models.
+identity, not by content); every output about one says so.
+
+Two writers:
+
+* ``write_model`` keeps every tensor in memory (``random_tensors``) and saves
+  with ``moerun.modelfile.save_model_file``: small test models.
+* ``synthesize`` streams: each tensor is generated in chunks of about
+  ``CHUNK_BYTES`` from its own seeded generator, hashed and written as it
+  goes, so a multi-GB model needs only a few chunks of memory.  The file has
+  the same layout as ``save_model_file`` writes (``write_tensors_streaming``
+  produces the identical bytes for the same tensors): dense tensors first in
+  natural order, then experts by layer, expert, part, and the per-tensor
+  digests in the ``moerun.digests`` metadata.  The model directory appears
+  under its final name only when complete (built in a hidden temporary
+  directory beside it, then renamed), and the free disk space is checked
+  before anything is written.
 """
 
 from __future__ import annotations
 
+import contextlib
+import errno
+import hashlib
 import json
+import os
 import shutil
+import struct
+import tempfile
+import time
+import zlib
+from collections.abc import Callable, Iterable
 from pathlib import Path
 
 import numpy as np
 
 from .config import FORMAT_TAG, ModelConfig
 from .errors import BadOption
-from .fileio import write_text_atomic
-from .modelfile import save_model_file
+from .fileio import atomic_path, write_text_atomic
+from .modelfile import DIGEST_ALGO, DIGEST_KEY, DTYPE_SIZES, digest, save_model_file, storage_order
 
 RANDOM_NOTE = "random weights: routing is meaningless"
 
@@ -48,6 +71,9 @@ def synth_config(
     max_seq_len: int = 64,
     vocab_size: int = 257,
     name: str = "synthetic",
+    dtype: str = "F32",
+    tied_embeddings: bool = True,
+    seed: int | None = None,
 ) -> ModelConfig:
     raw = {
         "format": FORMAT_TAG,
@@ -64,12 +90,14 @@ def synth_config(
         "max_seq_len": max_seq_len,
         "rope_theta": 10000.0,
         "norm_eps": 1e-5,
-        "tied_embeddings": True,
+        "tied_embeddings": tied_embeddings,
         "bos_token_id": 0,
-        "dtype": "F32",
+        "dtype": dtype,
         "synthetic": True,
         "note": RANDOM_NOTE,
     }
+    if seed is not None:
+        raw["seed"] = seed
     return ModelConfig.from_dict(raw)
 
 
@@ -108,3 +136,273 @@ def write_model(out_dir: str | Path, config: ModelConfig, seed: int = 0, tensors
     write_text_atomic(out / "config.json", json.dumps(config.to_json(), indent=2) + "\n")
     write_text_atomic(out / "tokenizer.json", byte_tokenizer_json())
     return out
+
+
+# ---------------------------------------------------------------------- streaming writer
+
+CHUNK_BYTES = 8 * 1024 * 1024  # generation and write granularity of the streaming writer
+NUMPY_OF = {"F32": np.dtype("<f4"), "F16": np.dtype("<f2")}
+BITS = {32: "F32", 16: "F16"}
+_DIGEST_HEX = len(digest(b""))
+
+Progress = Callable[[int, int], None]  # (bytes written, bytes in all)
+
+
+def tensor_layout(config: ModelConfig, dtype: str = "F32") -> list[tuple[str, str, tuple[int, ...]]]:
+    """(name, dtype, shape) of every tensor in file order (moerun.modelfile.storage_order)."""
+    shapes = dict(config.dense_shapes())
+    for layer in range(config.n_layers):
+        for e in range(config.n_experts):
+            for part, shape in config.expert_shapes().items():
+                shapes[f"layers.{layer}.experts.{e}.{part}"] = shape
+    return [(name, dtype, tuple(shapes[name])) for name in storage_order(shapes)]
+
+
+def _header_blob(layout, digests: dict[str, str], metadata: dict[str, str] | None) -> bytes:
+    """The safetensors header exactly as moerun.modelfile.save_model_file builds it."""
+    meta = {"format": "moerun/1", **(metadata or {})}
+    header: dict = {}
+    offset = 0
+    for name, tag, shape in layout:
+        n = DTYPE_SIZES[tag] * int(np.prod(shape, dtype=np.int64))
+        header[name] = {"dtype": tag, "shape": list(shape), "data_offsets": [offset, offset + n]}
+        offset += n
+    meta[DIGEST_KEY] = json.dumps({"algo": DIGEST_ALGO, "tensors": digests}, separators=(",", ":"))
+    blob = json.dumps({"__metadata__": meta, **header}, separators=(",", ":")).encode("utf-8")
+    return blob + b" " * (-len(blob) % 8)
+
+
+def weights_file_bytes(layout, metadata: dict[str, str] | None = None) -> int:
+    """Exact size of the weights file for ``layout`` (digests have a fixed length)."""
+    blob = _header_blob(layout, {name: "0" * _DIGEST_HEX for name, _, _ in layout}, metadata)
+    return 8 + len(blob) + sum(DTYPE_SIZES[t] * int(np.prod(s, dtype=np.int64)) for _, t, s in layout)
+
+
+def _hasher():
+    # moerun.modelfile.digest hashes a whole tensor with blake2b-128; hashing the
+    # same bytes chunk by chunk gives the same digest.
+    if DIGEST_ALGO != "blake2b-128":
+        raise RuntimeError(f"streaming writer does not know digest {DIGEST_ALGO!r}")
+    return hashlib.blake2b(digest_size=16)
+
+
+def write_tensors_streaming(
+    path: str | os.PathLike,
+    layout: list[tuple[str, str, tuple[int, ...]]],
+    produce: Callable[[str], Iterable[np.ndarray]],
+    metadata: dict[str, str] | None = None,
+    progress: Progress | None = None,
+) -> int:
+    """Write a safetensors file tensor by tensor, ``produce(name)`` yielding each tensor's bytes in C order.
+
+    The header is written first with placeholder digests of the right length,
+    then the data (hashed as it goes), then the real header over the
+    placeholder; the result is the same file ``save_model_file`` writes.  The
+    space is reserved up front (posix_fallocate), so a full disk fails early.
+    Atomic (moerun.fileio.atomic_path).  Returns the file size.
+    """
+    placeholder = _header_blob(layout, {name: "0" * _DIGEST_HEX for name, _, _ in layout}, metadata)
+    total = weights_file_bytes(layout, metadata)
+    with atomic_path(path) as tmp:
+        fd = os.open(tmp, os.O_WRONLY)
+        try:
+            if hasattr(os, "posix_fallocate"):
+                try:
+                    os.posix_fallocate(fd, 0, total)
+                except OSError as e:
+                    if e.errno in (errno.ENOSPC, errno.EDQUOT):
+                        raise
+                    # a file system without fallocate: the space is taken as we write
+            _write_all(fd, struct.pack("<Q", len(placeholder)) + placeholder)
+            done = 8 + len(placeholder)
+            digests: dict[str, str] = {}
+            for name, tag, shape in layout:
+                want = DTYPE_SIZES[tag] * int(np.prod(shape, dtype=np.int64))
+                h = _hasher()
+                got = 0
+                for chunk in produce(name):
+                    a = np.ascontiguousarray(chunk)
+                    if a.dtype != NUMPY_OF.get(tag, a.dtype) or a.dtype.byteorder == ">":
+                        raise ValueError(f"tensor {name!r}: chunk dtype {a.dtype} is not {tag}")
+                    mv = memoryview(a).cast("B")
+                    h.update(mv)
+                    _write_all(fd, mv)
+                    got += len(mv)
+                    done += len(mv)
+                    if progress:
+                        progress(done, total)
+                if got != want:
+                    raise ValueError(f"tensor {name!r}: produced {got} bytes, its shape needs {want}")
+                digests[name] = h.hexdigest()
+            blob = _header_blob(layout, digests, metadata)
+            if len(blob) != len(placeholder):  # digests are fixed-length hex; cannot happen
+                raise RuntimeError("header length changed while writing")
+            os.pwrite(fd, blob, 8)
+        finally:
+            os.close(fd)
+    return total
+
+
+def _write_all(fd: int, data) -> None:
+    view = memoryview(data).cast("B")
+    while view:
+        n = os.write(fd, view)
+        view = view[n:]
+
+
+def tensor_chunks(name: str, shape: tuple[int, ...], dtype: str, seed: int, d_model: int,
+                  chunk_bytes: int | None = None) -> Iterable[np.ndarray]:
+    """Random values for one tensor, in row chunks, from a generator seeded by (seed, name).
+
+    Same scales as random_tensors: norms 1 + 0.1 N(0,1), the embedding
+    N(0,1)/sqrt(d_model), every other matrix N(0,1)/sqrt(rows).  Each tensor
+    has its own stream, so the values do not depend on the writing order.
+    """
+    rng = np.random.default_rng([seed, zlib.crc32(name.encode("utf-8"))])
+    out_dtype = NUMPY_OF[dtype]
+    rows = shape[0]
+    row = int(np.prod(shape[1:], dtype=np.int64)) if len(shape) > 1 else 1
+    per_chunk = max(1, (chunk_bytes or CHUNK_BYTES) // (4 * row))
+    if len(shape) == 1:
+        per_chunk = rows
+    if name.endswith("norm"):
+        offset, scale = np.float32(1.0), np.float32(0.1)
+    else:
+        offset, scale = np.float32(0.0), np.float32(1.0 / np.sqrt(d_model if name == "embed" else rows))
+    for r0 in range(0, rows, per_chunk):
+        n = min(per_chunk, rows - r0)
+        a = rng.standard_normal((n, *shape[1:]), dtype=np.float32)
+        a *= scale
+        a += offset
+        yield a.astype(out_dtype, copy=False)
+
+
+def card_text(config: ModelConfig, seed: int, file_bytes: int, command: str | None = None) -> str:
+    c = config
+    lines = [
+        f"# {c.name or 'synthetic model'}",
+        "",
+        f"**{RANDOM_NOTE}.** Written by `moerun synth` with random weights for studying page-in,",
+        "memory budgets and planning at a chosen size. Its text is noise and its routing follows",
+        "token identity, not content: do not study eviction or prefetch policies on it.",
+        "",
+        f"- {c.n_layers} layers, d_model {c.d_model}, {c.n_heads} heads ({c.n_kv_heads} KV) of {c.head_dim}",
+        f"- {c.n_experts} experts per layer, top-{c.top_k}, d_expert {c.d_expert}",
+        f"- vocabulary {c.vocab_size} (byte tokenizer), context {c.max_seq_len}, "
+        f"{'tied' if c.tied_embeddings else 'separate'} embeddings, weights {c.dtype}",
+        f"- seed {seed}; weights file {file_bytes:,} bytes",
+        "- held-out perplexity: not applicable (untrained)",
+    ]
+    if command:
+        lines += ["", f"Command: `{command}`"]
+    return "\n".join(lines) + "\n"
+
+
+def _umask() -> int:
+    try:
+        for line in Path("/proc/self/status").read_text().splitlines():
+            if line.startswith("Umask:"):
+                return int(line.split()[1], 8)
+    except (OSError, ValueError, IndexError):
+        pass
+    return 0o022
+
+
+def _ordinary_modes(d: Path) -> None:
+    """Temporary names are created private (0700/0600); give the finished model the modes of ordinary files."""
+    mask = _umask()
+    for f in d.iterdir():
+        os.chmod(f, 0o666 & ~mask)
+    os.chmod(d, 0o777 & ~mask)
+
+
+def _existing_ancestor(p: Path) -> Path:
+    p = p.absolute()
+    while not p.exists():
+        p = p.parent
+    return p
+
+
+def synthesize(out_dir: str | os.PathLike, config: ModelConfig, seed: int = 0,
+               progress: Progress | None = None, command: str | None = None) -> dict:
+    """Write a complete model directory at ``out_dir`` with streamed random weights; return a summary.
+
+    Refuses (BadOption) when ``out_dir`` exists and is not empty, or when the
+    disk lacks the space, before writing anything.  On any failure or
+    interruption nothing is left under ``out_dir``.
+    """
+    out = Path(out_dir)
+    if out.exists() and (not out.is_dir() or any(out.iterdir())):
+        raise BadOption(f"{out}: already exists and is not an empty directory; choose a new directory")
+    dtype = config.dtype
+    if dtype not in NUMPY_OF:
+        raise BadOption(f"weights dtype {dtype!r} cannot be synthesized (F32 or F16)")
+    layout = tensor_layout(config, dtype)
+    metadata = {"note": RANDOM_NOTE}
+    file_bytes = weights_file_bytes(layout, metadata)
+    tokenizer = byte_tokenizer_json()
+    config_text = json.dumps(config.to_json(), indent=2) + "\n"
+    card = card_text(config, seed, file_bytes, command)
+    need = file_bytes + len(tokenizer) + len(config_text) + len(card) + (1 << 20)
+    anchor = _existing_ancestor(out.parent)
+    free = shutil.disk_usage(anchor).free
+    if need > free:
+        raise BadOption(
+            f"{out}: the model needs {need:,} bytes ({need / 2**30:.2f} GiB) but only {free:,} bytes "
+            f"({free / 2**30:.2f} GiB) are free on that disk; nothing was written"
+        )
+    made: list[Path] = []
+    p = out.absolute().parent
+    while not p.exists():
+        made.append(p)
+        p = p.parent
+    t0 = time.monotonic()
+    tmp: Path | None = None
+    try:
+        out.absolute().parent.mkdir(parents=True, exist_ok=True)
+        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.moerun-tmp-", dir=out.absolute().parent))
+
+        shapes = {n: s for n, _, s in layout}
+
+        def produce(name: str):
+            return tensor_chunks(name, shapes[name], dtype, seed, config.d_model)
+
+        try:
+            write_tensors_streaming(tmp / "model.safetensors", layout, produce, metadata, progress)
+        except OSError as e:
+            if e.errno in (errno.ENOSPC, errno.EDQUOT):
+                raise BadOption(f"{out}: the disk filled up while writing the model; nothing was kept") from None
+            raise
+        write_text_atomic(tmp / "config.json", config_text)
+        write_text_atomic(tmp / "tokenizer.json", tokenizer)
+        write_text_atomic(tmp / "CARD.md", card)
+        _ordinary_modes(tmp)
+        if out.exists():
+            out.rmdir()  # empty, checked above
+        os.rename(tmp, out)
+        tmp = None
+        with contextlib.suppress(OSError):
+            dfd = os.open(out.absolute().parent, os.O_RDONLY)
+            try:
+                os.fsync(dfd)
+            finally:
+                os.close(dfd)
+    except BaseException:
+        if tmp is not None:
+            shutil.rmtree(tmp, ignore_errors=True)
+        for d in made:
+            with contextlib.suppress(OSError):
+                d.rmdir()
+        raise
+    expert_nbytes = DTYPE_SIZES[dtype] * sum(int(np.prod(s)) for s in config.expert_shapes().values())
+    return {
+        "model_dir": str(out),
+        "file_bytes": file_bytes,
+        "expert_bytes": expert_nbytes,
+        "experts_total_bytes": expert_nbytes * config.n_layers * config.n_experts,
+        "seconds": time.monotonic() - t0,
+        "seed": seed,
+        "dtype": dtype,
+        "config": config.to_json(),
+        "note": RANDOM_NOTE,
+    }

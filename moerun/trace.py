@@ -22,6 +22,7 @@ from __future__ import annotations
 import io
 import json
 import zipfile
+import zlib
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -146,6 +147,21 @@ def write_trace(path: str | Path, trace: Trace) -> None:
 _INT_KINDS = "iu"
 
 
+def _not_a_zip(data: bytes) -> str | None:
+    """Why ``data`` cannot be an .npz archive, or None if it starts like a zip file."""
+    if data.startswith(b"PK"):
+        return None
+    if not data:
+        return "the file is empty"
+    if data.startswith(b"\x93NUMPY"):
+        return "it is a single .npy array; save with numpy.savez(path, experts=...)"
+    try:
+        data[:4096].decode("utf-8")
+        return "it looks like a text file"
+    except UnicodeDecodeError:
+        return "it does not start like a zip file"
+
+
 def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
     """Read and validate a trace file; raise BadTrace with one clear line."""
     path = Path(path)
@@ -155,6 +171,9 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
         raise BadTrace(f"{path}: no such trace file") from None
     except OSError as e:
         raise BadTrace(f"{path}: cannot read ({e.strerror})") from None
+    kind = _not_a_zip(data)
+    if kind is not None:
+        raise BadTrace(f"{path}: not an .npz archive ({kind}); a trace is a zip of named numpy arrays, see docs/traces.md")
     try:
         z = np.load(io.BytesIO(data), allow_pickle=False)
         if not isinstance(z, np.lib.npyio.NpzFile):
@@ -166,7 +185,9 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
             arrays = {name: z[name] for name in names}
     except BadTrace:
         raise
-    except (ValueError, OSError, zipfile.BadZipFile, EOFError, KeyError) as e:
+    except (zipfile.BadZipFile, EOFError, zlib.error):
+        raise BadTrace(f"{path}: damaged or truncated .npz archive (the zip cannot be read to the end)") from None
+    except (ValueError, OSError, KeyError) as e:
         raise BadTrace(f"{path}: not a readable .npz trace ({str(e).splitlines()[0][:120] if str(e) else type(e).__name__})") from None
     experts = arrays["experts"]
     if experts.ndim != 3 or experts.dtype.kind not in _INT_KINDS:
@@ -193,6 +214,12 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
         raise BadTrace(f"{path}: 'experts' holds ids >= n_experts ({limit})")
     if limit is not None:
         meta["n_experts"] = int(limit)
+    for key, low in (("prefill_tokens", 0), ("expert_bytes", 1)):
+        v = meta.get(key)
+        if v is not None and (isinstance(v, bool) or not isinstance(v, int) or v < low):
+            raise BadTrace(f"{path}: meta {key} must be a whole number of at least {low}, got {v!r}")
+    if meta.get("prefill_tokens") is not None and meta["prefill_tokens"] > experts.shape[0]:
+        raise BadTrace(f"{path}: meta prefill_tokens {meta['prefill_tokens']} exceeds the trace's {experts.shape[0]} tokens")
     if experts.size and experts.max() > 1_000_000:
         raise BadTrace(f"{path}: expert ids up to {experts.max()} are implausible")
     rows = np.sort(np.where(experts < 0, np.iinfo(np.int64).max, experts), axis=-1)

@@ -16,8 +16,6 @@ import time
 
 import _bench
 
-import numpy as np
-
 import moerun
 from moerun.sampling import Sampling
 

@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import argparse
 import json
-import time
 
 import _bench  # noqa: F401  (pins BLAS to one thread)
 
@@ -129,7 +128,7 @@ def main() -> int:
           f"(experts total {fmt_bytes(expert_total)}); link {rate / 1e9:.3f} GB/s (emulated); {_bench.BLAS_NOTE}")
     print(f"{'configuration':<14}{'decode tok/s':>14}{'stall share':>13}{'hit rate':>10}")
     for key, label in (("bare", "bare"), ("resident", "resident"), ("whole_layer", "whole-layer"), ("no_reuse", "no-reuse"),
-                       ("lru", "lru"), ("prefetch", f"lru+prefetch")):
+                       ("lru", "lru"), ("prefetch", "lru+prefetch")):
         r = runs[key]
         hr = r["stats"].get("pool", {}).get("hit_rate") if key in ("lru", "prefetch") else None
         share = r["stall_s"] / r["total_s"] if r["total_s"] else 0

@@ -19,7 +19,6 @@ import os
 import time
 
 import _bench  # noqa: F401
-
 import numpy as np
 import psutil
 

@@ -36,7 +36,7 @@ from tokenizers import Tokenizer, decoders, models, pre_tokenizers, trainers
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from moerun.torch_ref import TorchMoE
+from moerun.torch_ref import TorchMoE  # noqa: E402  (after the sys.path insert above)
 
 DOC = "<doc>"
 

@@ -3,9 +3,11 @@
 from __future__ import annotations
 
 import sys
+from pathlib import Path
 
 from .. import cli
 from ..engine import load
+from ..errors import BadInput, BadOption
 from ..report import emit_json
 from ..sampling import Sampling
 from ..summary import NOT_ADVICE, run_json, run_text
@@ -23,6 +25,10 @@ def add_arguments(p) -> None:
 
 
 def run(args) -> int:
+    if args.max_new < 0:  # refuse before loading the model or echoing the prompt
+        raise BadOption(f"--max-new must be zero or more, got {args.max_new}")
+    if args.trace and Path(args.trace).is_dir():
+        raise BadInput(f"--trace {args.trace}: is a directory, expected a file name")
     prompt = cli.read_prompt(args)
     sampling = Sampling(args.temperature, args.top_p, args.seed)
     engine = load(**cli.engine_kwargs(args))
@@ -53,7 +59,10 @@ def run(args) -> int:
             partial = False
         finally:
             if args.trace and engine.recorder is not None:
-                write_trace(args.trace, engine.finish_trace(partial=partial, extra={"text": "generate"}))
+                try:
+                    write_trace(args.trace, engine.finish_trace(partial=partial, extra={"text": "generate"}))
+                except OSError as e:
+                    raise BadInput(f"--trace {args.trace}: cannot write ({e.strerror or e})") from None
         if args.json:
             doc = {"prompt": prompt, "text": gen.text, "note": NOT_ADVICE, **run_json(engine, gen)}
             if args.trace:
