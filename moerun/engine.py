@@ -207,6 +207,7 @@ class Engine:
             "lookahead": self.options.get("lookahead", 1),
             "link_speed_emulated": self.options.get("link_speed"),
             "partial": partial,
+            **({"synthetic": True, "note": "random weights: routing is meaningless"} if self.config.extra.get("synthetic") else {}),
             **(extra or {}),
         }
         return rec.to_trace(meta)

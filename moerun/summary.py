@@ -6,6 +6,12 @@ from .report import pct, table
 from .units import fmt_bytes, fmt_rate
 
 NOT_ADVICE = "text from a tiny model trained on invented data; not advice"
+RANDOM_NOTE = "random weights: routing is meaningless and the text is noise"
+
+
+def model_note(config) -> str:
+    """The caveat printed with any output of this model."""
+    return RANDOM_NOTE if config.extra.get("synthetic") else NOT_ADVICE
 
 
 def run_json(engine, gen=None) -> dict:

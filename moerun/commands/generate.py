@@ -10,7 +10,7 @@ from ..engine import load
 from ..errors import BadInput, BadOption
 from ..report import emit_json
 from ..sampling import Sampling
-from ..summary import NOT_ADVICE, run_json, run_text
+from ..summary import model_note, run_json, run_text
 from ..trace import write_trace
 
 HELP = "generate text under a memory cap and report speed, hits, stalls and memory"
@@ -62,16 +62,17 @@ def run(args) -> int:
                 try:
                     write_trace(args.trace, engine.finish_trace(partial=partial, extra={"text": "generate"}))
                 except OSError as e:
-                    raise BadInput(f"--trace {args.trace}: cannot write ({e.strerror or e})") from None
+                    where = f": {e.filename}" if e.filename else ""
+                    raise BadInput(f"--trace {args.trace}: cannot write ({e.strerror or e}{where})") from None
         if args.json:
-            doc = {"prompt": prompt, "text": gen.text, "note": NOT_ADVICE, **run_json(engine, gen)}
+            doc = {"prompt": prompt, "text": gen.text, "note": model_note(engine.config), **run_json(engine, gen)}
             if args.trace:
                 doc["trace"] = args.trace
             emit_json(doc)
         else:
             if stream:
                 sys.stdout.write(gen.text[len(printed) :])
-            sys.stdout.write(f"\n\n[{NOT_ADVICE}]\n")
+            sys.stdout.write(f"\n\n[{model_note(engine.config)}]\n")
             sys.stdout.write(run_text(engine, gen) + "\n")
             if args.trace:
                 sys.stdout.write(f"trace written to {args.trace}\n")

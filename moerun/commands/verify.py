@@ -11,6 +11,7 @@ from ..errors import BadInput
 from ..report import Progress, emit_json, table
 from ..sampling import Sampling
 from ..store import ModelStore
+from ..summary import RANDOM_NOTE
 from ..tokenizer import Tokenizer, read_text_file
 from ..units import fmt_bytes, parse_rate, parse_size
 from ..verify import Setting, verify
@@ -63,10 +64,12 @@ def run(args) -> int:
                             progress=lambda i, n, label: prog.update(i, f"{label}"))
     prog.close()
     ok = all(o.ok for o in outcomes)
+    synthetic = bool(c.extra.get("synthetic"))
     if args.json:
         emit_json(
             {
                 "ok": ok,
+                **({"note": RANDOM_NOTE} if synthetic else {}),
                 "prompts": len(prompts),
                 "max_new": args.max_new,
                 **info,
@@ -96,6 +99,8 @@ def run(args) -> int:
                 "same" if o.tokens_equal else "DIFF",
                 "-" if o.hit_rate is None else f"{100 * o.hit_rate:.1f}%",
             ])
+        if synthetic:
+            sys.stdout.write(f"note: {RANDOM_NOTE}\n")
         sys.stdout.write(
             f"reference: every expert resident; {len(prompts)} prompt(s), {args.max_new} sampled tokens each, "
             f"logits compared as raw float32 bits\n"
