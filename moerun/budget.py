@@ -39,6 +39,7 @@ def scratch_bytes(config: ModelConfig, codec_scratch: int = 0) -> int:
         + 3 * c.n_heads * T * T
         + 3 * T * c.d_expert
         + T * c.vocab_size
+        + T * c.head_dim  # rotary cos and sin tables
     )
     return 4 * floats + codec_scratch
 
@@ -116,7 +117,7 @@ def plan_budget(
     d, kv, s = fixed_bytes(config, dense, codec_scratch)
     per = slot_bytes(expert_nbytes)
     L, E, k = config.n_layers, config.n_experts, config.top_k
-    if mem_cap is None:
+    if mem_cap is None and not isinstance(split, (list, tuple)):
         return Budget(None, d, kv, s, per, expert_nbytes, "resident", [E] * L)
     if isinstance(split, (list, tuple)):
         slots = [int(n) for n in split]
@@ -128,6 +129,8 @@ def plan_budget(
                 f"layer {bad[0]} gets {slots[bad[0]]} slots; each layer needs between top_k={k} and n_experts={E}"
             )
         b = Budget(mem_cap, d, kv, s, per, expert_nbytes, "list", slots)
+        if mem_cap is None:  # an explicit split with no cap: the cap is whatever it needs
+            return b
         if b.total > mem_cap:
             raise ImpossibleBudget(
                 f"memory cap {fmt_bytes(mem_cap)} cannot hold that slot list; it needs at least {fmt_bytes(b.total)} ({b.total} bytes)"

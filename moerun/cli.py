@@ -136,6 +136,10 @@ def main(argv: list[str] | None = None) -> int:
     except MoerunError as e:
         sys.stderr.write(f"moerun {args.command}: {e}\n")
         return e.exit_code
+    except MemoryError as e:  # e.g. a config whose context needs a KV cache larger than the machine
+        detail = str(e).splitlines()[0][:200] if str(e) else "allocation failed"
+        sys.stderr.write(f"moerun {args.command}: out of memory ({detail}); --mem-cap checks the budget before the run\n")
+        return 2
     except KeyboardInterrupt:
         sys.stderr.write(f"\nmoerun {args.command}: interrupted\n")
         return 130

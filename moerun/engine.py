@@ -75,6 +75,9 @@ class Engine:
         self.pool = experts if isinstance(experts, ExpertPool) else None
         self.prefetcher = prefetcher
         self.model = Transformer(store.config, store.dense)
+        for layer in range(store.config.n_layers):  # now held once, fused as wqkv
+            for part in ("attn.wq", "attn.wk", "attn.wv"):
+                store.dense.pop(f"layers.{layer}.{part}", None)
         self.cache = KVCache(store.config)
         self.memwatch = memwatch
         self.options = options
@@ -229,7 +232,11 @@ class Engine:
     def close(self) -> None:
         if self.prefetcher is not None:
             self.prefetcher.close()
+            self.prefetcher.model = None
             self.prefetcher = None
+        self.experts.guess_hook = None  # break the engine <-> pool <-> prefetcher cycles so memory is freed at once
+        if self.pool is not None:
+            self.pool.prefetcher = None
         self.store.close()
 
     def __enter__(self):

@@ -52,6 +52,9 @@ class MemWatch:
     """Baseline RSS at creation; ``peak_growth()`` is the highest RSS since then, minus it."""
 
     def __init__(self):
+        import gc
+
+        gc.collect()  # earlier engines' garbage must not be freed mid-run and hide growth
         warm_runtime()
         self.proc = psutil.Process(os.getpid())
         self.kernel_peak = _reset_peak()

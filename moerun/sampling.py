@@ -18,6 +18,8 @@ class Sampling:
     def __post_init__(self):
         if not (self.temperature >= 0 and np.isfinite(self.temperature)):
             raise BadOption(f"temperature must be 0 (greedy) or positive, got {self.temperature}")
+        if isinstance(self.seed, bool) or not isinstance(self.seed, int) or self.seed < 0:
+            raise BadOption(f"seed must be a whole number, 0 or more, got {self.seed!r}")
         if not 0 < self.top_p <= 1:
             raise BadOption(f"top-p must be in (0, 1], got {self.top_p}")
 

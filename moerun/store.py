@@ -80,6 +80,7 @@ class ModelStore:
         self._lock = threading.Lock()
         self._link_free_ns = 0  # when the emulated link finishes its queued transfers
         self.dense: dict[str, np.ndarray] = {}
+        self._dense_nbytes = 0
 
     # ---------------------------------------------------------------- opening
     @classmethod
@@ -170,12 +171,13 @@ class ModelStore:
             self.dense[name] = np.ascontiguousarray(arr, dtype=np.float32)
             if not np.all(np.isfinite(self.dense[name])):
                 raise BadModelFile(f"{self.path}: tensor {name!r} holds NaN or infinite values")
+        self._dense_nbytes = sum(a.nbytes for a in self.dense.values())
 
     # ---------------------------------------------------------------- sizes
     @property
     def dense_nbytes(self) -> int:
-        """Bytes the dense weights take in memory (as float32)."""
-        return sum(a.nbytes for a in self.dense.values())
+        """Bytes the dense weights take in memory (as float32), fixed at load."""
+        return self._dense_nbytes
 
     @property
     def expert_total_nbytes(self) -> int:

@@ -17,9 +17,6 @@ _SIZE_UNITS = {
     "mib": 1024**2,
     "gib": 1024**3,
     "tib": 1024**4,
-    "k": 1024,
-    "m": 1024**2,
-    "g": 1024**3,
 }
 
 _SIZE_RE = re.compile(r"^\s*([0-9]*\.?[0-9]+(?:[eE][+-]?[0-9]+)?)\s*([a-zA-Z]*)\s*$")
@@ -36,6 +33,8 @@ def parse_size(text: str | int, what: str = "size") -> int:
         raise BadOption(f"cannot read {what} {text!r}: use forms like 48MiB, 1.5GB or 1048576")
     number, unit = m.groups()
     factor = _SIZE_UNITS.get(unit.lower())
+    if factor is None and unit.lower() in ("k", "m", "g", "t"):
+        raise BadOption(f"ambiguous unit {unit!r} in {what} {text!r}: write {unit.upper()}B (powers of 1000) or {unit.upper()}iB (powers of 1024)")
     if factor is None:
         raise BadOption(f"unknown unit {unit!r} in {what} {text!r}: use B, kB, MB, GB, KiB, MiB or GiB")
     value = float(number) * factor

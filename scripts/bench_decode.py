@@ -22,12 +22,18 @@ from moerun.sampling import Sampling
 
 def active_bytes_per_token(store) -> int:
     """Weight bytes one decode step reads: attention, norms, routers, the output projection, top_k experts per layer."""
+    import math
+
     c = store.config
-    d = store.dense
-    per_layer = sum(d[f"layers.0.{n}"].nbytes for n in ("attn_norm", "moe_norm", "attn.wq", "attn.wk", "attn.wv", "attn.wo", "router"))
-    head = d["embed"].nbytes if c.tied_embeddings else d["lm_head"].nbytes
+    shapes = c.dense_shapes()  # float32 in memory
+
+    def nbytes(name):
+        return 4 * math.prod(shapes[name])
+
+    per_layer = sum(nbytes(f"layers.0.{n}") for n in ("attn_norm", "moe_norm", "attn.wq", "attn.wk", "attn.wv", "attn.wo", "router"))
+    head = nbytes("embed") if c.tied_embeddings else nbytes("lm_head")
     row = c.d_model * 4
-    return c.n_layers * (per_layer + c.top_k * store.expert_nbytes) + head + d["final_norm"].nbytes + row
+    return c.n_layers * (per_layer + c.top_k * store.expert_nbytes) + head + nbytes("final_norm") + row
 
 
 def numpy_decode(model, prompt_ids, n, repeats, **kw):

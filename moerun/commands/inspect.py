@@ -46,8 +46,13 @@ def run(args) -> int:
         h = store.header
         dense_file = sum(h.tensors[n].nbytes for n in c.dense_shapes())
         expert_file = store.expert_total_nbytes
-        first = store.ranges[0][0].start
-        last = store.ranges[-1][-1]
+        flat = [r for row in store.ranges for r in row]
+        first = min(r.start for r in flat)
+        end = max(r.start + r.nbytes for r in flat)
+        dense_end = max(h.tensors[n].end for n in c.dense_shapes())
+        # moerun's writer puts dense tensors first, then experts in layer, expert order;
+        # other writers (the safetensors library sorts by name) interleave them
+        in_order = dense_end <= first and all(a.start + a.nbytes <= b.start for a, b in zip(flat, flat[1:]))
         kv = KVCache.nbytes_for(c)
         scratch = scratch_bytes(c, store.codec.scratch_bytes())
         doc = {
@@ -65,7 +70,8 @@ def run(args) -> int:
             "scratch_bytes": scratch,
             "min_cap_even_bytes": minimum_cap(c, store.dense_nbytes, store.expert_nbytes, "even", store.codec.scratch_bytes()),
             "min_cap_shared_bytes": minimum_cap(c, store.dense_nbytes, store.expert_nbytes, "shared", store.codec.scratch_bytes()),
-            "experts_region": [first, last.start + last.nbytes],
+            "experts_region": [first, end],
+            "experts_in_layer_order": in_order,
             "synthetic": bool(c.extra.get("synthetic")),
             "tensors": [
                 {"name": t.name, "dtype": t.dtype, "shape": list(t.shape), "offset": t.start, "bytes": t.nbytes}
@@ -105,8 +111,12 @@ def run(args) -> int:
             ["smallest cap, shared pool", f"{fmt_bytes(doc['min_cap_shared_bytes'])} ({doc['min_cap_shared_bytes']} B)"],
         ]
         out.write(table(["", "size"], rows) + "\n\n")
-        out.write(f"layout: header 0..{h.data_start}, dense tensors, then experts {first}..{last.start + last.nbytes} "
-                  f"in layer, expert order, each one contiguous range\n")
+        if in_order:
+            out.write(f"layout: header 0..{h.data_start}, dense tensors, then experts {first}..{end} "
+                      f"in layer, expert order, each one contiguous range\n")
+        else:
+            out.write(f"layout: header 0..{h.data_start}, then dense tensors and experts interleaved in the writer's "
+                      f"order (experts within {first}..{end}), each expert one contiguous range\n")
         trows = []
         for t in doc["tensors"]:
             if not args.all and ".experts." in t["name"] and not t["name"].startswith("layers.0.experts.0."):

@@ -1,0 +1,104 @@
+"""Shared fixtures: tiny synthetic models written into temporary directories, the bundled model, header surgery.
+
+The repository root goes first on sys.path so the suite runs without installing moerun.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import struct
+import sys
+from pathlib import Path
+
+# One BLAS thread, as DESIGN section 6 prescribes for decode: small matmuls are
+# faster and steadier that way on the shared 2-core machines.
+for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    os.environ.setdefault(_var, "1")
+
+ROOT = Path(__file__).resolve().parent.parent
+if str(ROOT) not in sys.path:
+    sys.path.insert(0, str(ROOT))
+
+import pytest  # noqa: E402
+
+from moerun.synth import synth_config, write_model  # noqa: E402
+
+PEBBLE = ROOT / "tiny_models" / "pebble"
+
+
+# ---------------------------------------------------------------------------- models
+
+
+@pytest.fixture(scope="session")
+def synth_models(tmp_path_factory):
+    """Factory: ``make(seed=0, **synth_config kwargs)`` -> directory of a synthetic model (cached, read-only use)."""
+    cache: dict = {}
+
+    def make(seed: int = 0, **kw) -> Path:
+        key = (seed, tuple(sorted(kw.items())))
+        if key not in cache:
+            d = tmp_path_factory.mktemp("synth")
+            write_model(d, synth_config(**kw), seed=seed)
+            cache[key] = d
+        return cache[key]
+
+    return make
+
+
+@pytest.fixture(scope="session")
+def small_model(synth_models) -> Path:
+    """3 layers, 8 experts, top-2, d_model 32: the workhorse for offloading checks (do not modify)."""
+    return synth_models(layers=3, experts=8, top_k=2)
+
+
+@pytest.fixture
+def fresh_model(tmp_path) -> Path:
+    """A synthetic model of our own (2 layers, 4 experts) that a test may corrupt."""
+    d = tmp_path / "model"
+    write_model(d, synth_config(layers=2, experts=4, top_k=2), seed=3)
+    return d
+
+
+@pytest.fixture(scope="session")
+def pebble() -> Path:
+    """The bundled tiny model, or skip when it has not been trained into the tree yet."""
+    if not (PEBBLE / "model.safetensors").is_file() or not (PEBBLE / "config.json").is_file():
+        pytest.skip("bundled model tiny_models/pebble/model.safetensors is absent (not trained yet)")
+    return PEBBLE
+
+
+def copy_model(src: Path, dst: Path) -> Path:
+    shutil.copytree(src, dst)
+    return dst
+
+
+# ---------------------------------------------------------------------------- header surgery
+
+
+def read_raw(path: Path) -> tuple[dict, bytes]:
+    """(header document, data bytes) of a safetensors file."""
+    blob = Path(path).read_bytes()
+    (n,) = struct.unpack("<Q", blob[:8])
+    return json.loads(blob[8 : 8 + n]), blob[8 + n :]
+
+
+def write_raw(path: Path, doc: dict | bytes, data: bytes) -> None:
+    """Write a safetensors file from a header (dict or raw bytes) and the data bytes."""
+    head = doc if isinstance(doc, bytes) else json.dumps(doc).encode()
+    Path(path).write_bytes(struct.pack("<Q", len(head)) + head + data)
+
+
+def edit_header(path: Path, edit) -> None:
+    """Apply ``edit(doc)`` to the header of a safetensors file, keeping its data bytes."""
+    doc, data = read_raw(path)
+    edit(doc)
+    write_raw(path, doc, data)
+
+
+def edit_config(model_dir: Path, edit) -> None:
+    path = Path(model_dir) / "config.json"
+    doc = json.loads(path.read_text())
+    edit(doc)
+    path.write_text(json.dumps(doc))
