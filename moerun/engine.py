@@ -83,15 +83,17 @@ class Engine:
         self.options = options
         self.recorder: Recorder | None = None
         self._step_clock = 0
-        experts.guess_hook = self._after_attention
+        self.prefetch_from = options.get("prefetch_from", "attention")
+        experts.guess_hook = self._prefetch_point
         if prefetcher is not None:
             prefetcher.model = self.model
 
     # ------------------------------------------------------------------ hooks
-    def _after_attention(self, layer: int, h: np.ndarray) -> None:
-        if self.prefetcher is not None and h.shape[0] == 1:
+    def _prefetch_point(self, layer: int, h: np.ndarray, point: str) -> None:
+        """Called after layer's attention ("attention") and after the whole layer ("output")."""
+        if self.prefetcher is not None and h.shape[0] == 1 and point == self.prefetch_from:
             self.prefetcher.guess(layer, h)
-        if self.recorder is not None:
+        if self.recorder is not None and point == "attention":
             self.recorder.guessed(layer, self.guesses(layer, h, self.recorder.lookahead, self.recorder.n_guesses))
 
     def guesses(self, layer: int, h: np.ndarray, lookahead: int, n: int) -> np.ndarray:
@@ -252,6 +254,7 @@ def load(
     evict: str = "lru",
     prefetch: int = 0,
     lookahead: int = 1,
+    prefetch_from: str = "attention",
     slots: list[int] | None = None,
     split: str = "even",
     link_speed: float | str | None = None,
@@ -276,6 +279,8 @@ def load(
     policies.get(evict)
     if prefetch < 0:
         raise BadOption(f"--prefetch must be 0 (off) or a positive number of guesses, got {prefetch}")
+    if prefetch_from not in ("attention", "output"):
+        raise BadOption(f"prefetch point must be 'attention' or 'output', got {prefetch_from!r}")
     if lookahead < 1:
         raise BadOption(f"--lookahead must be at least 1, got {lookahead}")
     cap = parse_size(mem_cap, "memory cap") if mem_cap is not None else None
@@ -312,6 +317,7 @@ def load(
             "evict": evict,
             "prefetch": prefetch,
             "lookahead": lookahead,
+            "prefetch_from": prefetch_from,
             "link_speed": rate,
             "cold": cold,
             "mechanism": mechanism,

@@ -196,6 +196,7 @@ class Transformer:
         experts.routed(layer, chosen, weights, probs)
         out = h + moe(u, layer, chosen, weights, experts)
         experts.end_layer(layer)
+        experts.after_layer(layer, out)
         return out
 
     def forward(self, ids: np.ndarray, start: int, cache: KVCache, experts) -> np.ndarray:

@@ -24,7 +24,7 @@ from .budget import Budget
 from .residency import NoVictim, Residency
 from .store import ModelStore
 
-EMPTY, LOADING, READY = 0, 1, 2
+EMPTY, LOADING, READY, QUEUED = 0, 1, 2, 3  # QUEUED: a demand read handed to the loader thread
 HIT, PREFETCHED, MISS = 0, 1, 2
 KIND_NAMES = {HIT: "hit", PREFETCHED: "prefetched", MISS: "miss"}
 
@@ -204,7 +204,11 @@ class ExpertPool:
     # ------------------------------------------------------------------ expert source
     def after_attention(self, layer: int, h: np.ndarray) -> None:
         if self.guess_hook is not None:
-            self.guess_hook(layer, h)
+            self.guess_hook(layer, h, "attention")
+
+    def after_layer(self, layer: int, x: np.ndarray) -> None:
+        if self.guess_hook is not None:
+            self.guess_hook(layer, x, "output")
 
     def begin_step(self, step: int) -> None:
         self.step = step
@@ -232,9 +236,17 @@ class ExpertPool:
                     st.prefetch_hits[layer] += 1
                 else:
                     st.hits[layer] += 1
+            pf = self.prefetcher
+            if pf is not None and pf.alive:
+                misses = [(e, ev[1]) for e, ev in events.items() if ev[0] == MISS]
+                for e, slot in misses:
+                    self.state[slot] = QUEUED
+                if misses:
+                    pf.demand(layer, misses)
         self._layer_events = events
 
     def compute_order(self, layer: int, ids: list[int]) -> list[int]:
+        """Resident experts first, then those in flight or still to read (outputs are summed in id order anyway)."""
         ev = self._layer_events
         ready = [j for j, e in enumerate(ids) if self.state[ev[e][1]] == READY]
         if len(ready) == len(ids):
@@ -257,11 +269,13 @@ class ExpertPool:
             while self.state[slot] == LOADING:
                 self.cond.wait()
             state = self.state[slot]
-            if state == EMPTY:
-                self.state[slot] = LOADING  # ours: a demand read
-        if state == EMPTY:
+            if state in (EMPTY, QUEUED):  # not started by the loader thread: read it here
+                self.state[slot] = LOADING
+        if state in (EMPTY, QUEUED):
             ns = self._demand_load(slot, layer, expert)
             ev[2] = ns
+        elif ev[0] == MISS:  # the loader thread read it while this layer computed other experts
+            ev[2] = self.load_ns[slot]
         else:  # a prefetch finished while we waited
             waited = time.monotonic_ns() - t0
             self.stats.hidden_ns += max(0, self.load_ns[slot] - waited)
@@ -335,6 +349,27 @@ class ExpertPool:
             compute = time.monotonic_ns() - self._layer_t0 - stall
             self.recorder.events(self.step, layer, self._layer_events, compute)
         self.pinned = set()
+
+    # ------------------------------------------------------------------ loader thread side
+    def serve_demand(self, layer: int, expert: int, slot: int) -> None:
+        """Called on the loader thread: read a queued demand miss unless the layer already took it."""
+        with self.cond:
+            if self.state[slot] != QUEUED or self.key_of[slot] != (layer, expert):
+                return
+            self.state[slot] = LOADING
+        try:
+            ns = self._load_into(slot, layer, expert)
+        except Exception:
+            with self.cond:  # the layer will read it itself
+                self.state[slot] = EMPTY
+                self.cond.notify_all()
+            return
+        with self.cond:
+            self.state[slot] = READY
+            self.load_ns[slot] = ns
+            self.cond.notify_all()
+        self.stats.pagein_ns[layer] += ns
+        self.stats.demand_loads += 1
 
     # ------------------------------------------------------------------ prefetch side
     def prefetch(self, layer: int, expert: int, target: int, hook=None) -> None:

@@ -6,6 +6,9 @@ each layer's top-N guesses are queued.  The thread pages guesses into the
 pool, never evicting pinned experts; a guess for a layer that has already
 started is dropped as stale.  Guesses are advisory: a wrong one costs
 bandwidth, a failed one is forgotten and the layer reads the expert itself.
+The same thread also reads a layer's demand misses (queued ahead of every
+guess) while the layer computes the experts it already has; a miss the thread
+has not started when the layer needs it, the layer reads itself.
 The thread is a daemon, stops on ``close()`` and never holds the pool lock
 while it reads.
 """
@@ -38,18 +41,33 @@ class Prefetcher:
         L = self.pool.config.n_layers
         step = self.pool.step
         reqs = []
+        made = 0
         for j in range(1, self.lookahead + 1):
             target_layer = layer + j
             if target_layer >= L:
                 break
             target = step * L + target_layer
+            res = self.pool.residency(target_layer)
             for e in self.model.guess(h, target_layer, self.n):
-                reqs.append((target_layer, e, target))
-        self.pool.stats.prefetch_guesses += len(reqs)
+                made += 1
+                if self.pool.key(target_layer, e) not in res:  # resident guesses need no wake-up
+                    reqs.append((target_layer, e, target))
+        self.pool.stats.prefetch_guesses += made
         if not reqs or not self.thread.is_alive():
             return
         with self.cv:
             self.queue.extend(reqs)
+            self.cv.notify()
+
+    def demand(self, layer: int, misses: list[tuple[int, int]]) -> None:
+        """Queue a layer's demand misses ahead of every guess (compute thread).
+
+        The layer computes its resident experts meanwhile; whatever the thread
+        has not started by the time the layer needs it, the layer reads itself.
+        """
+        with self.cv:
+            for e, slot in reversed(misses):
+                self.queue.appendleft((layer, e, -1 - slot))
             self.cv.notify()
 
     def _run(self) -> None:
@@ -63,7 +81,10 @@ class Prefetcher:
                     layer, e, target = self.queue.popleft()
                 if self.loop_hook is not None:
                     self.loop_hook()
-                self.pool.prefetch(layer, e, target, self.hook)
+                if target < 0:  # a demand miss, encoded as -1 - slot
+                    self.pool.serve_demand(layer, e, -1 - target)
+                else:
+                    self.pool.prefetch(layer, e, target, self.hook)
         except BaseException as exc:  # the thread dies; the compute thread carries on without it
             self.error = exc
 

@@ -49,7 +49,11 @@ class ExpertSource:
 
     def after_attention(self, layer: int, h: np.ndarray) -> None:
         if self.guess_hook is not None:
-            self.guess_hook(layer, h)
+            self.guess_hook(layer, h, "attention")
+
+    def after_layer(self, layer: int, x: np.ndarray) -> None:
+        if self.guess_hook is not None:
+            self.guess_hook(layer, x, "output")
 
     def routed(self, layer, chosen, weights, probs) -> None:
         if self.recorder is not None:
