@@ -217,7 +217,7 @@ class ExpertPool:
     def routed(self, layer: int, chosen: np.ndarray, weights: np.ndarray, probs: np.ndarray) -> None:
         if self.recorder is not None:
             self.recorder.routed(self.step, layer, chosen, weights, probs)
-        if chosen.shape[0] != 1:
+        if chosen.shape[0] != 1 or self._prefill:  # prefill accesses happen per expert in weights()
             return
         ids = chosen[0].tolist()
         keys = [self.key(layer, e) for e in ids]
@@ -247,6 +247,8 @@ class ExpertPool:
 
     def compute_order(self, layer: int, ids: list[int]) -> list[int]:
         """Resident experts first, then those in flight or still to read (outputs are summed in id order anyway)."""
+        if self._prefill:
+            return range(len(ids))
         ev = self._layer_events
         ready = [j for j, e in enumerate(ids) if self.state[ev[e][1]] == READY]
         if len(ready) == len(ids):
@@ -372,15 +374,20 @@ class ExpertPool:
         self.stats.demand_loads += 1
 
     # ------------------------------------------------------------------ prefetch side
-    def prefetch(self, layer: int, expert: int, target: int, hook=None) -> None:
-        """Called on the prefetch thread: load a guess unless stale, resident or unplaceable."""
+    def prefetch(self, layer: int, expert: int, target: int, hook=None, protect=frozenset()) -> None:
+        """Called on the prefetch thread: load a guess unless stale, resident or unplaceable.
+
+        It never evicts an expert pinned by the layer being computed (shared
+        pool), a slot being read, or another guess of the same round (``protect``).
+        """
         key = self.key(layer, expert)
         r = self.residency(layer)
         with self.cond:
             if target <= self.progress or key in r:
                 return
+            keep = (protect | self.pinned) if self.shared else protect
             try:
-                slot, victim = r.insert(key, self.pinned, self._busy(layer))
+                slot, victim = r.insert(key, keep, self._busy(layer))
             except NoVictim:
                 return
             if victim is not None:

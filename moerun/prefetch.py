@@ -3,7 +3,7 @@
 The prefetch point is right after layer l's attention (before its experts
 run): the routers of layers l+1..l+L are applied to that hidden state, and
 each layer's top-N guesses are queued.  The thread pages guesses into the
-pool, never evicting pinned experts; a guess for a layer that has already
+pool, never evicting pinned experts nor another guess of the same round; a guess for a layer that has already
 started is dropped as stale.  Guesses are advisory: a wrong one costs
 bandwidth, a failed one is forgotten and the layer reads the expert itself.
 The same thread also reads a layer's demand misses (queued ahead of every
@@ -48,10 +48,12 @@ class Prefetcher:
                 break
             target = step * L + target_layer
             res = self.pool.residency(target_layer)
-            for e in self.model.guess(h, target_layer, self.n):
+            guesses = self.model.guess(h, target_layer, self.n)
+            protect = frozenset(self.pool.key(target_layer, e) for e in guesses)  # loading one never evicts another
+            for e in guesses:
                 made += 1
                 if self.pool.key(target_layer, e) not in res:  # resident guesses need no wake-up
-                    reqs.append((target_layer, e, target))
+                    reqs.append((target_layer, e, target, protect))
         self.pool.stats.prefetch_guesses += made
         if not reqs or not self.thread.is_alive():
             return
@@ -67,7 +69,7 @@ class Prefetcher:
         """
         with self.cv:
             for e, slot in reversed(misses):
-                self.queue.appendleft((layer, e, -1 - slot))
+                self.queue.appendleft((layer, e, -1 - slot, None))
             self.cv.notify()
 
     def _run(self) -> None:
@@ -78,13 +80,13 @@ class Prefetcher:
                         self.cv.wait()
                     if self.stopping:
                         return
-                    layer, e, target = self.queue.popleft()
+                    layer, e, target, protect = self.queue.popleft()
                 if self.loop_hook is not None:
                     self.loop_hook()
                 if target < 0:  # a demand miss, encoded as -1 - slot
                     self.pool.serve_demand(layer, e, -1 - target)
                 else:
-                    self.pool.prefetch(layer, e, target, self.hook)
+                    self.pool.prefetch(layer, e, target, self.hook, protect)
         except BaseException as exc:  # the thread dies; the compute thread carries on without it
             self.error = exc
 

@@ -1,0 +1,137 @@
+"""moerun record: route a text through the model (teacher-forced) and write the routing trace."""
+
+from __future__ import annotations
+
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+from .. import cli
+from ..engine import default_model_dir, load
+from ..errors import BadInput, BadOption
+from ..report import Progress, emit_json
+from ..tokenizer import read_text_file
+from ..trace import write_trace
+from ..units import fmt_bytes
+
+HELP = "route a text through the model, window by window, and write every token's experts and guesses to a trace"
+
+# Keys of the engine's trace metadata that describe a live pool, not a teacher-forced pass.
+_LIVE_ONLY = ("evict", "slots", "split", "prefetch", "lookahead", "link_speed_emulated")
+
+
+def add_arguments(p) -> None:
+    cli.add_model(p)
+    p.add_argument("--text", metavar="FILE", help="UTF-8 text to route (default: the model directory's heldout.txt)")
+    p.add_argument("--trace", metavar="OUT", required=True, help="trace file to write (.npz)")
+    p.add_argument("--max-tokens", type=int, metavar="N", help="route at most N tokens of the text")
+    cli.add_json(p)
+
+
+def windows(ids: list[int], max_seq_len: int, bos: int | None) -> list[list[int]]:
+    """Split text tokens into model-sized windows, each starting with bos when the model has one."""
+    body = max_seq_len - 1 if bos is not None else max_seq_len
+    if body < 1:
+        raise BadOption(f"the model's context of {max_seq_len} tokens leaves no room for text after the bos token")
+    head = [bos] if bos is not None else []
+    return [head + ids[i : i + body] for i in range(0, len(ids), body)]
+
+
+def _cross_entropy(logits: np.ndarray, targets: np.ndarray) -> float:
+    """Sum of -log p(target) over rows (float64)."""
+    z = logits.astype(np.float64)
+    z -= z.max(axis=-1, keepdims=True)
+    logp = z[np.arange(len(targets)), targets] - np.log(np.exp(z).sum(axis=-1))
+    return float(-logp.sum())
+
+
+def run(args) -> int:
+    model_dir = Path(args.model) if args.model else default_model_dir()
+    text_path = Path(args.text) if args.text else model_dir / "heldout.txt"
+    if args.text is None and not text_path.exists():
+        raise BadInput(f"{model_dir} has no heldout.txt; name a text with --text FILE")
+    if args.max_tokens is not None and args.max_tokens < 1:
+        raise BadOption(f"--max-tokens must be 1 or more, got {args.max_tokens}")
+    text = read_text_file(text_path)
+    engine = load(model_dir)
+    with engine:
+        c = engine.config
+        ids = engine.tokenizer.encode(text, bos=False)
+        if args.max_tokens is not None:
+            ids = ids[: args.max_tokens]
+        if not ids:
+            raise BadInput(f"{text_path}: no tokens to route (the text is empty)")
+        wins = windows(ids, c.max_seq_len, c.bos_token_id)
+        prog = Progress("record", total=len(wins), enabled=None if not args.json else False)
+        engine.start_trace()
+        t0 = time.monotonic_ns()
+        nll = 0.0
+        predicted = 0
+        done = 0
+        routed = 0
+        try:
+            for w in wins:
+                logits = engine.logits(w)
+                nll += _cross_entropy(logits[:-1], np.asarray(w[1:]))
+                predicted += len(w) - 1
+                done += 1
+                routed += len(w)
+                prog.update(done, f"{routed} tokens")
+        finally:
+            prog.close()
+            if engine.recorder is not None and done:
+                trace = engine.finish_trace(
+                    partial=done < len(wins),
+                    extra={
+                        "source": "record",
+                        "text": str(text_path),
+                        "text_tokens": sum(len(w) for w in wins[:done]) - (done if c.bos_token_id is not None else 0),
+                        "windows": done,
+                        "window_tokens": c.max_seq_len,
+                        "bos_per_window": c.bos_token_id is not None,
+                        # a teacher-forced pass routes each token as decoding the text would: replay
+                        # every token as a decode step (no prefill block)
+                        "prefill_tokens": 0,
+                    },
+                )
+                for key in _LIVE_ONLY:
+                    trace.meta.pop(key, None)
+                trace.events = {}
+                write_trace(args.trace, trace)
+        elapsed = (time.monotonic_ns() - t0) / 1e9
+        n_tokens = trace.n_tokens
+        accesses = int((trace.experts >= 0).sum())
+        size = Path(args.trace).stat().st_size
+        ce = nll / predicted if predicted else None
+        doc = {
+            "trace": args.trace,
+            "model": c.name,
+            "text": str(text_path),
+            "text_tokens": trace.meta["text_tokens"],
+            "tokens": n_tokens,
+            "windows": len(wins),
+            "layers": c.n_layers,
+            "top_k": c.top_k,
+            "n_experts": c.n_experts,
+            "expert_accesses": accesses,
+            "lookahead": int(trace.guesses.shape[2]) if trace.guesses is not None else 0,
+            "guesses": int(trace.guesses.shape[3]) if trace.guesses is not None else 0,
+            "cross_entropy_nats_per_token": ce,
+            "seconds": elapsed,
+            "tokens_per_s": n_tokens / elapsed if elapsed else None,
+            "file_bytes": size,
+        }
+        if args.json:
+            emit_json(doc)
+        else:
+            sys.stdout.write(
+                f"routed {n_tokens} tokens ({doc['text_tokens']} of text in {len(wins)} windows of up to {c.max_seq_len}, "
+                f"each opened by the bos token) through {c.n_layers} layers in {elapsed:.1f} s ({doc['tokens_per_s']:.0f} tok/s)\n"
+                f"{accesses} expert accesses (top-{c.top_k} of {c.n_experts}); guesses for {doc['lookahead']} layers ahead, "
+                f"top {doc['guesses']} each\n"
+                + (f"cross-entropy on this text {ce:.4f} nats/token\n" if ce is not None else "")
+                + f"trace written to {args.trace} ({fmt_bytes(size)})\n"
+            )
+    return 0
