@@ -10,6 +10,9 @@ from pathlib import Path
 from .errors import BadModelFile
 
 FORMAT_TAG = "moerun/1"
+# Upper bound on the tensors a config may imply (7 dense + 3 per expert, per layer).  Large
+# published mixture-of-experts checkpoints hold tens of thousands; a million is implausible.
+MAX_TENSORS = 1 << 20
 
 _INT_FIELDS = (
     "vocab_size",
@@ -75,12 +78,16 @@ class ModelConfig:
         for k in _INT_FIELDS:
             v = raw[k]
             if isinstance(v, bool) or not isinstance(v, int) or v <= 0:
-                raise BadModelFile(f"{where}: {k} must be a positive integer, got {v!r}")
+                raise BadModelFile(f"{where}: {k} must be a positive integer, got {v!r:.40}")
             vals[k] = v
         for k in ("rope_theta", "norm_eps"):
             v = raw[k]
-            if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v) or v <= 0:
-                raise BadModelFile(f"{where}: {k} must be a positive number, got {v!r}")
+            try:
+                ok = not isinstance(v, bool) and isinstance(v, (int, float)) and math.isfinite(float(v)) and v > 0
+            except OverflowError:  # an integer too large for a float
+                ok = False
+            if not ok:
+                raise BadModelFile(f"{where}: {k} must be a positive number, got {v!r:.40}")
             vals[k] = float(v)
         if not isinstance(raw["tied_embeddings"], bool):
             raise BadModelFile(f"{where}: tied_embeddings must be true or false")
@@ -92,6 +99,12 @@ class ModelConfig:
             raise BadModelFile(f"{where}: n_heads ({vals['n_heads']}) must be a multiple of n_kv_heads ({vals['n_kv_heads']})")
         if vals["head_dim"] % 2:
             raise BadModelFile(f"{where}: head_dim must be even for rotary embeddings, got {vals['head_dim']}")
+        implied = vals["n_layers"] * (7 + 3 * vals["n_experts"])
+        if implied > MAX_TENSORS:  # refuse before anything enumerates them (a 200-byte config could ask for billions)
+            raise BadModelFile(
+                f"{where}: n_layers {vals['n_layers']} x n_experts {vals['n_experts']} implies {implied:,} tensors, "
+                f"more than any plausible model (limit {MAX_TENSORS:,})"
+            )
         if vals["top_k"] > vals["n_experts"]:
             raise BadModelFile(f"{where}: top_k ({vals['top_k']}) exceeds n_experts ({vals['n_experts']})")
         bos = raw.get("bos_token_id")
@@ -110,8 +123,8 @@ class ModelConfig:
             raw = json.loads(path.read_text(encoding="utf-8"))
         except FileNotFoundError:
             raise BadModelFile(f"{path}: missing (every model directory needs a config.json)") from None
-        except (UnicodeDecodeError, json.JSONDecodeError) as e:
-            raise BadModelFile(f"{path}: not valid JSON ({e})") from None
+        except ValueError as e:  # JSONDecodeError, UnicodeDecodeError, integers past Python's digit limit
+            raise BadModelFile(f"{path}: not valid JSON ({str(e).splitlines()[0][:160]})") from None
         except RecursionError:
             raise BadModelFile(f"{path}: not valid JSON (nested too deeply)") from None
         except OSError as e:

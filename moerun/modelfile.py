@@ -112,7 +112,7 @@ def read_header(path: str | os.PathLike) -> Header:
         raise BadModelFile(f"{path}: cannot read ({e.strerror})") from None
     try:
         doc = json.loads(raw.decode("utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError, RecursionError):
+    except (ValueError, RecursionError):  # also integers too long to convert (Python's 4300-digit limit)
         raise BadModelFile(f"{path}: header is not valid JSON") from None
     if not isinstance(doc, dict):
         raise BadModelFile(f"{path}: header is not a JSON object")
@@ -227,5 +227,5 @@ def recorded_digests(header: Header) -> dict[str, str] | None:
         if doc.get("algo") != DIGEST_ALGO or not isinstance(doc.get("tensors"), dict):
             raise ValueError
         return {str(k): str(v) for k, v in doc["tensors"].items()}
-    except (ValueError, AttributeError):
+    except (ValueError, AttributeError, RecursionError):
         raise BadModelFile(f"{header.path}: metadata {DIGEST_KEY!r} is malformed") from None

@@ -239,7 +239,7 @@ class ExpertPool:
             pf = self.prefetcher
             if pf is not None and pf.alive:
                 misses = [(e, ev[1]) for e, ev in events.items() if ev[0] == MISS]
-                for e, slot in misses:
+                for _, slot in misses:
                     self.state[slot] = QUEUED
                 if misses:
                     pf.demand(layer, misses)

@@ -511,7 +511,6 @@ def simulate_prefetch(
         raise BadOption(f"policy {policy_cls.name!r} reads the future; prefetch is simulated for online policies only")
     plans = plans if plans is not None else layer_plans(trace)
     gl = g[:, :, :, :n_guesses].tolist()
-    ex = trace.experts.tolist()
     out = []
     for m, plan in enumerate(plans):
         keys = plan.keys.tolist()
