@@ -1,0 +1,184 @@
+"""The planner: the time model against hand-computed values, monotone curves, splits, and bad inputs."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from moerun.cli import main
+from moerun.errors import BadInput
+from moerun.plan import Costs, best_split, even_split, hit_curves, load_shape, predict
+from moerun.trace import Trace, write_trace
+
+US = 1e-6
+
+
+def _trace(experts, guesses=None, n_experts=None, prefill=0) -> Trace:
+    e = np.asarray(experts, np.int64)
+    if e.ndim == 1:
+        e = e[:, None, None]
+    meta = {"n_experts": n_experts or int(e.max()) + 1, "prefill_tokens": prefill}
+    g = None if guesses is None else np.asarray(guesses, np.int64)
+    return Trace(e, guesses=g, meta=meta)
+
+
+def _costs(L=1, attn=10, expert=2, head=3, page=100, wait=0) -> Costs:
+    return Costs([attn * US] * L, expert * US, head * US, page * US, "test", wait * US)
+
+
+# ---------------------------------------------------------------------------- hand-computed
+
+
+def test_every_access_a_miss_costs_compute_plus_one_page_in_per_token():
+    # one layer, top-1, one slot, alternating experts: every access misses.
+    # per token: attention 10 + page-in 100 + expert 2 + head 3 = 115 us (worked by hand)
+    p = predict(_trace([0, 1, 0, 1]), [1], "lru", 0, 1, _costs())
+    assert p.misses == 4 and p.accesses == 4
+    assert p.step_s == pytest.approx(115 * US)
+    assert p.tok_s == pytest.approx(1 / (115 * US))
+    assert p.stall_s == pytest.approx(100 * US)
+
+
+def test_two_slots_pay_only_the_first_two_page_ins():
+    # slots 2: misses on the first 0 and the first 1 only: (4 * 15 + 2 * 100) / 4 = 65 us per token
+    p = predict(_trace([0, 1, 0, 1]), [2], "lru", 0, 1, _costs())
+    assert p.misses == 2
+    assert p.step_s == pytest.approx(65 * US)
+
+
+def test_a_blocking_wait_adds_the_measured_wake_up_cost():
+    # as the first case, plus 7 us for each blocking read: 122 us per token
+    p = predict(_trace([0, 1, 0, 1]), [1], "lru", 0, 1, _costs(wait=7))
+    assert p.step_s == pytest.approx(122 * US)
+
+
+def test_prefill_tokens_warm_the_pool_and_are_not_timed():
+    # the first token is a prefill: it loads expert 0 without being timed; then 0, 0, 0 all hit
+    p = predict(_trace([0, 0, 0, 0], prefill=1), [1], "lru", 0, 1, _costs())
+    assert p.accesses == 3 and p.misses == 0
+    assert p.step_s == pytest.approx(15 * US)
+
+
+def test_perfect_guesses_faster_than_the_window_hide_every_page_in():
+    # Two layers, top-1, one slot each.  Layer 1 uses 0, 1, 0, 1 ...; layer 0 always uses 5 and
+    # guesses layer 1 perfectly at its prefetch point.  The page-in (5 us) is shorter than what
+    # follows the prefetch point before layer 1 routes (layer 0's expert 2 + layer 1's attention 10),
+    # so after the first token nothing waits: per token 2 * (10 + 2) + 3 = 27 us.  The first token
+    # also waits 10 us at layer 0: its demand read queues behind the guess already on the link
+    # (5 us) and then takes 5 us itself.
+    n = 8
+    experts = np.zeros((n, 2, 1), np.int64)
+    experts[:, 0, 0] = 5
+    experts[:, 1, 0] = np.arange(n) % 2
+    guesses = np.full((n, 2, 1, 1), -1, np.int64)
+    guesses[:, 0, 0, 0] = experts[:, 1, 0]
+    trace = Trace(experts, guesses=guesses, meta={"n_experts": 6, "prefill_tokens": 0})
+    p = predict(trace, [1, 1], "lru", 1, 1, _costs(L=2, page=5))
+    assert p.misses == 1  # layer 0's first access only
+    assert p.prefetch_loads == n
+    assert p.step_s == pytest.approx(27 * US + 10 * US / n)
+
+
+# ---------------------------------------------------------------------------- properties
+
+
+def _random_trace(rng, tokens=120, layers=3, experts=8, k=2):
+    ex = np.stack([np.sort(rng.choice(experts, (k,), replace=False)) for _ in range(tokens * layers)]).reshape(tokens, layers, k)
+    return Trace(ex.astype(np.int64), meta={"n_experts": experts, "prefill_tokens": 0})
+
+
+@settings(max_examples=15, deadline=None)
+@given(st.integers(0, 10_000))
+def test_predicted_speed_never_falls_as_the_cap_grows_for_lru(seed):
+    # LRU is a stack algorithm (Mattson, Gecsei, Slutz and Traiger, "Evaluation techniques for
+    # storage hierarchies", IBM Systems Journal 9(2), 1970): more slots never add misses, so with
+    # no prefetch the predicted time per token can only fall.
+    trace = _random_trace(np.random.default_rng(seed))
+    costs = _costs(L=3)
+    speeds = [predict(trace, even_split(total, 3, 8), "lru", 0, 1, costs).tok_s for total in range(6, 25)]
+    assert all(b >= a - 1e-9 for a, b in zip(speeds, speeds[1:]))
+
+
+@settings(max_examples=20, deadline=None)
+@given(st.integers(0, 10_000), st.integers(6, 24))
+def test_the_uneven_split_never_has_more_misses_than_the_even_one(seed, total):
+    trace = _random_trace(np.random.default_rng(seed))
+    curves = hit_curves(trace, "lru", 8)
+    even = even_split(total, 3, 8)
+    uneven = best_split(curves, total, 2, 8)
+    assert sum(uneven) <= total
+    assert all(2 <= s <= 8 for s in uneven)
+    misses = lambda split: sum(curves[layer][s - 1] for layer, s in enumerate(split))  # noqa: E731
+    assert misses(uneven) <= misses(even)
+
+
+def test_best_split_matches_exhaustive_search_on_a_small_case():
+    curves = [[9, 5, 4, 4], [9, 8, 2, 1], [9, 6, 5, 0]]
+    import itertools
+
+    brute = min((sum(c[s - 1] for c, s in zip(curves, split)), split)
+                for split in itertools.product(range(1, 5), repeat=3) if sum(split) <= 7)
+    got = best_split(curves, 7, 1, 4)
+    assert sum(c[s - 1] for c, s in zip(curves, got)) == brute[0]
+
+
+# ---------------------------------------------------------------------------- bad inputs
+
+
+def _run(args, capsys):
+    code = main(args)
+    captured = capsys.readouterr()
+    return code, captured.out, captured.err
+
+
+def test_a_cap_below_the_minimum_is_refused_naming_the_smallest_cap(small_model, tmp_path, capsys):
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(0), layers=3, experts=8))
+    code, out, err = _run(["plan", "--model", str(small_model), "--mem-cap", "1000", "--link-speed", "1GB/s",
+                           "--trace", str(trace)], capsys)
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1 and "smallest cap that works is" in err
+
+
+@pytest.mark.parametrize("rate", ["0", "0GB/s", "-1GB/s", "fast"])
+def test_a_zero_negative_or_unreadable_link_speed_is_refused(small_model, rate, capsys):
+    code, out, err = _run(["plan", "--model", str(small_model), "--mem-cap", "1GiB", f"--link-speed={rate}"], capsys)
+    assert code == 2 and out == "" and len(err.strip().splitlines()) == 1
+
+
+def _shape(tmp_path, **over):
+    doc = {"layers": 2, "experts": 4, "top_k": 2, "expert_bytes": 1 << 20, "dense_bytes": 1 << 22,
+           "expert_us": 50.0, "dense_layer_us": 100.0}
+    doc.update(over)
+    p = tmp_path / "shape.json"
+    p.write_text(json.dumps(doc))
+    return p
+
+
+def test_a_shape_file_whose_top_k_exceeds_its_experts_is_refused(tmp_path):
+    with pytest.raises(BadInput, match="contradicts itself"):
+        load_shape(_shape(tmp_path, top_k=5))
+
+
+def test_a_trace_that_disagrees_with_the_shape_file_is_refused(tmp_path, capsys):
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(0), layers=3, experts=4))  # 3 layers, shape says 2
+    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path)), "--trace", str(trace), "--mem-cap", "64MiB",
+                           "--link-speed", "1GB/s"], capsys)
+    assert code == 2 and out == "" and "layers" in err
+
+
+def test_a_shape_file_plans_a_model_too_big_to_run_here(tmp_path, capsys):
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(1), layers=2, experts=4))
+    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path)), "--trace", str(trace), "--mem-cap", "12MiB",
+                           "--link-speed", "1GB/s", "--json"], capsys)
+    assert code == 0, err
+    doc = json.loads(out)
+    assert doc["recommended"]["tok_s"] > 0
+    pts = [p["tok_s"] for p in doc["curve"]["points"]]
+    assert all(b >= a for a, b in zip(pts, pts[1:]))
