@@ -6,6 +6,7 @@ import sys
 
 from .. import cli
 from ..budget import minimum_cap, scratch_bytes
+from ..codec import packed_dense_tensors
 from ..engine import default_model_dir
 from ..model import KVCache
 from ..modelfile import digest, recorded_digests
@@ -44,12 +45,14 @@ def run(args) -> int:
     try:
         c = store.config
         h = store.header
-        dense_file = sum(h.tensors[n].nbytes for n in c.dense_shapes())
+        packed = packed_dense_tensors(c)  # quantized attention is stored under its blob's name
+        dense_names = [packed.get(n, n) for n in c.dense_shapes()]
+        dense_file = sum(h.tensors[n].nbytes for n in dense_names)
         expert_file = store.expert_total_nbytes
         flat = [r for row in store.ranges for r in row]
         first = min(r.start for r in flat)
         end = max(r.start + r.nbytes for r in flat)
-        dense_end = max(h.tensors[n].end for n in c.dense_shapes())
+        dense_end = max(h.tensors[n].end for n in dense_names)
         # moerun's writer puts dense tensors first, then experts in layer, expert order;
         # other writers (the safetensors library sorts by name) interleave them
         in_order = dense_end <= first and all(a.start + a.nbytes <= b.start for a, b in zip(flat, flat[1:]))

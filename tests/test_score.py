@@ -1,0 +1,132 @@
+"""Perplexity scoring (moerun/score.py, moerun score)."""
+
+from __future__ import annotations
+
+import json
+import math
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+import moerun
+from moerun.budget import minimum_cap
+from moerun.cli import main
+from moerun.score import score_text, score_windows, text_windows, window_nll
+
+TEXT = "Fog came in over the ridge at dawn; the nets dripped and the cistern rose by a finger.\n" * 6
+
+
+@settings(max_examples=100, deadline=None)
+@given(n=st.integers(0, 700), context=st.integers(2, 64), bos=st.sampled_from([None, 0, 5]))
+def test_windows_fit_the_context_and_predict_every_token_once(n, context, bos):
+    ids = np.arange(1000, 1000 + n)
+    wins = text_windows(ids, context, bos)
+    assert all(2 <= w.size <= context for w in wins)
+    if bos is not None:
+        assert all(w[0] == bos for w in wins)
+        targets = np.concatenate([w[1:] for w in wins]) if wins else np.array([], int)
+        assert np.array_equal(targets, ids)  # every token of the text predicted exactly once, in order
+    else:
+        runs = np.concatenate([w for w in wins]) if wins else np.array([], int)
+        assert np.array_equal(runs, ids[: runs.size])
+
+
+def test_uniform_logits_give_log_vocab_per_token():
+    # Cross-entropy of a uniform distribution over V outcomes is ln V (common practice, no source).
+    v = 37
+    nll, n = window_nll(np.zeros((10, v), np.float32), np.arange(10) % v)
+    assert n == 9
+    assert nll / n == pytest.approx(math.log(v), rel=1e-12)
+
+
+def test_window_nll_is_minus_log_softmax_of_the_next_token():
+    rng = np.random.default_rng(0)
+    logits = rng.standard_normal((6, 11)).astype(np.float32) * 40  # large: needs the max shift
+    ids = rng.integers(0, 11, 6)
+    nll, n = window_nll(logits, ids)
+    z = logits.astype(np.float64)
+    want = sum(np.log(np.sum(np.exp(z[i] - z[i].max()))) + z[i].max() - z[i, ids[i + 1]] for i in range(5))
+    assert n == 5 and nll == pytest.approx(want, rel=1e-12)
+
+
+def test_perplexity_matches_torch_reference_logits(pebble):
+    # Outside reference: tiny_models/pebble/reference.npz, logits of the PyTorch
+    # implementation (moerun/torch_ref.py, float32; torch version recorded in the file).
+    ref = np.load(pebble / "reference.npz")
+    windows, logits = ref["token_ids"], ref["logits"]
+    nll, n = 0.0, 0
+    for ids, z in zip(windows, logits):
+        z = z.astype(np.float64)[:-1]
+        lse = np.log(np.exp(z - z.max(-1, keepdims=True)).sum(-1)) + z.max(-1)
+        nll += float(np.sum(lse - z[np.arange(len(ids) - 1), ids[1:]]))
+        n += len(ids) - 1
+    want = math.exp(nll / n)
+    with moerun.load(pebble, tokenizer=False) as eng:
+        got = score_windows(eng, windows)
+    assert got.predicted == n and got.windows == len(windows)
+    assert got.perplexity == pytest.approx(want, rel=1e-4)
+
+
+def test_plain_windows_reproduce_the_bundled_card(pebble):
+    # pebble's CARD.md (written by scripts/train_tiny.py from the PyTorch model) gives the
+    # held-out cross-entropy of its heldout.txt under the plain-window rule to 3 decimals,
+    # and the number of predicted tokens.
+    import re
+
+    card = (pebble / "CARD.md").read_text(encoding="utf-8")
+    m = re.search(r"bundled heldout\.txt \(\d+ KB, ([\d,]+) predicted tokens\) \| \*\*([\d.]+) nats/token", card)
+    if m is None:
+        pytest.skip("the bundled card does not state its held-out cross-entropy in the expected form")
+    n_card, ce_card = int(m.group(1).replace(",", "")), float(m.group(2))
+    with moerun.load(pebble) as eng:
+        got = score_text(eng, (pebble / "heldout.txt").read_text(encoding="utf-8"), plain=True)
+    assert got.predicted == n_card
+    assert abs(got.cross_entropy - ce_card) <= 0.0005 + 1e-9
+
+
+def test_capped_score_equals_resident_score_exactly(small_model):
+    with moerun.load(small_model) as eng:
+        s = eng.store
+        cap = minimum_cap(s.config, s.dense_nbytes, s.expert_nbytes, "even", s.codec.scratch_bytes())
+        full = score_text(eng, TEXT)
+    with moerun.load(small_model, mem_cap=cap, evict="fifo") as eng:
+        capped = score_text(eng, TEXT)
+        assert eng.pool.stats.prefill_loads > eng.budget.n_slots  # experts really came and went
+    assert capped.nll_sum == full.nll_sum and capped.predicted == full.predicted
+
+
+def test_score_command_json(small_model, tmp_path, capsys):
+    text = tmp_path / "t.txt"
+    text.write_text(TEXT, encoding="utf-8")
+    code = main(["score", "--model", str(small_model), "--text", str(text), "--max-tokens", "100", "--json"])
+    doc = json.loads(capsys.readouterr().out)
+    assert code == 0
+    with moerun.load(small_model) as eng:
+        want = score_text(eng, TEXT, 100)
+    assert doc["predicted_tokens"] == 100 == want.predicted
+    assert doc["perplexity"] == pytest.approx(want.perplexity, rel=1e-12)
+    assert doc["tok_s"] > 0
+
+
+def test_score_command_rejects_text_that_is_not_utf8(small_model, tmp_path, capsys):
+    bad = tmp_path / "latin1.txt"
+    bad.write_bytes("caf\u00e9 cr\u00e8me".encode("latin-1"))
+    code = main(["score", "--model", str(small_model), "--text", str(bad)])
+    err = capsys.readouterr().err
+    assert code == 2 and "UTF-8" in err and len(err.strip().splitlines()) == 1
+
+
+def test_score_command_needs_a_text_when_the_model_has_no_heldout(small_model, capsys):
+    code = main(["score", "--model", str(small_model)])
+    err = capsys.readouterr().err
+    assert code == 2 and "heldout.txt" in err
+
+
+def test_score_command_default_text_is_the_bundled_heldout(pebble, capsys):
+    code = main(["score", "--model", str(pebble), "--max-tokens", "300", "--mem-cap", "13MiB", "--json"])
+    doc = json.loads(capsys.readouterr().out)
+    assert code == 0
+    assert doc["text"].endswith("heldout.txt") and doc["predicted_tokens"] == 300
+    assert doc["budget"]["cap_bytes"] == 13 * 2**20
