@@ -149,11 +149,58 @@ def main(argv: list[str] | None = None) -> int:
         except OSError:
             pass
         return 1
+    except Exception as e:
+        # Ctrl-C landing inside a library call can surface as another error raised while the
+        # KeyboardInterrupt unwound (numpy's savez closing a half-written zip raises ValueError):
+        # that is still an interruption, not a crash
+        if not _raised_while_interrupted(e):
+            raise
+        sys.stderr.write(f"\nmoerun {args.command}: interrupted\n")
+        return 130
+
+
+def _raised_while_interrupted(e: BaseException) -> bool:
+    seen = set()
+    cur: BaseException | None = e
+    while cur is not None and id(cur) not in seen:
+        if isinstance(cur, KeyboardInterrupt):
+            return True
+        seen.add(id(cur))
+        cur = cur.__cause__ or cur.__context__
+    return False
+
+
+def _first_ctrl_c_only(interrupted: list) -> None:
+    """SIGINT raises KeyboardInterrupt once; later ones are ignored while that one unwinds.
+
+    The first Ctrl-C stops the command, whose clean-up (closing the prefetch thread, at most a
+    couple of seconds; writing a partial trace; removing temporary files) must run to the end: a
+    second Ctrl-C landing inside it would leave temporary files or print a traceback from inside a
+    library.  Only the process entry point installs this, never ``main()`` (which tests call).
+    """
+
+    def on_sigint(signum, frame):
+        if interrupted:
+            return
+        interrupted.append(signum)
+        raise KeyboardInterrupt
+
+    signal.signal(signal.SIGINT, on_sigint)
 
 
 def entry() -> None:
     if hasattr(signal, "SIGPIPE"):
         pass
-    code = main()
+    interrupted: list = []
+    try:
+        _first_ctrl_c_only(interrupted)
+        code = main()
+    except KeyboardInterrupt:  # Ctrl-C before a command started
+        sys.stderr.write("\nmoerun: interrupted\n")
+        code = 130
+    if code == 130 or interrupted:
+        # the command has stopped; a Ctrl-C now would only interrupt the interpreter's shutdown:
+        # let it end the process at once, as SIGINT does by default
+        signal.signal(signal.SIGINT, signal.SIG_DFL)
     sys.stdout.flush()
     raise SystemExit(code)

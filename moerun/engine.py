@@ -106,7 +106,8 @@ class Engine:
                 break
             w = self.model.layers[t]
             z = rmsnorm(h, w.moe_norm, self.model.eps) @ w.router
-            out[:, j - 1, :] = np.argsort(-z, axis=-1, kind="stable")[:, :n]
+            top = np.argsort(-z, axis=-1, kind="stable")[:, :n]  # fewer than n when the model has fewer experts
+            out[:, j - 1, : top.shape[1]] = top
         return out
 
     # ------------------------------------------------------------------ passes
@@ -119,6 +120,15 @@ class Engine:
         if ids.min() < 0 or ids.max() >= self.config.vocab_size:
             raise BadOption(f"token ids must lie in 0..{self.config.vocab_size - 1}")
         return ids
+
+    def _finite(self, logits: np.ndarray) -> np.ndarray:
+        if not np.isfinite(logits).all():
+            from .errors import BadModelFile
+
+            raise BadModelFile(
+                f"{self.store.path}: the model computed non-finite logits; its weights are damaged or overflow float32"
+            )
+        return logits
 
     def logits(self, token_ids) -> np.ndarray:
         """Float32 logits [len, vocab_size] from one forward pass over the sequence."""
@@ -152,7 +162,7 @@ class Engine:
         t0 = time.monotonic_ns()
         self.experts.begin_step(-1)
         x = self.model.forward(ids, 0, self.cache, self.experts)
-        logits = self.model.logits(x[-1:])[0]
+        logits = self._finite(self.model.logits(x[-1:])[0])
         prefill_ns = time.monotonic_ns() - t0
         self.memwatch.sample()
         if keep_logits:
@@ -176,7 +186,7 @@ class Engine:
             self.experts.begin_step(self._step_clock)
             self._step_clock += 1  # never repeats across generations, so stale guesses stay stale
             x = self.model.forward(np.array([tok]), pos, self.cache, self.experts)
-            logits = self.model.logits(x)[0]
+            logits = self._finite(self.model.logits(x)[0])
             decode_ns += time.monotonic_ns() - t1
             steps += 1
             pos += 1
@@ -192,6 +202,7 @@ class Engine:
 
     # ------------------------------------------------------------------ tracing
     def start_trace(self, lookahead: int = TRACE_LOOKAHEAD, n_guesses: int = TRACE_GUESSES) -> None:
+        n_guesses = min(n_guesses, self.config.n_experts)  # a model with fewer experts has fewer guesses to give
         self.recorder = Recorder(self.config.n_layers, self.config.top_k, lookahead, n_guesses)
         self.experts.recorder = self.recorder
 

@@ -128,7 +128,7 @@ def read_header(path: str | os.PathLike) -> Header:
         dtype = entry.get("dtype")
         shape = entry.get("shape")
         offsets = entry.get("data_offsets")
-        if dtype not in DTYPE_SIZES:
+        if not isinstance(dtype, str) or dtype not in DTYPE_SIZES:  # a list or object is unhashable: no TypeError
             raise BadModelFile(f"{path}: tensor {name!r} has unknown dtype {dtype!r}")
         if not isinstance(shape, list) or not all(isinstance(s, int) and not isinstance(s, bool) and s >= 0 for s in shape):
             raise BadModelFile(f"{path}: tensor {name!r} has an invalid shape {shape!r}")

@@ -225,6 +225,8 @@ class ExpertPool:
         with self.cond:
             self.progress = self.step * self.config.n_layers + layer
             self.pinned = set(keys)
+            r = self.residency(layer)
+            r.policy.routed(layer, ids, probs[0], r.now)  # optional per-step signal (Policy.routed); a no-op by default
             events = {}
             for e in ids:
                 kind, slot = self._access(layer, e, self.pinned)
@@ -359,17 +361,20 @@ class ExpertPool:
             if self.state[slot] != QUEUED or self.key_of[slot] != (layer, expert):
                 return
             self.state[slot] = LOADING
+        ok = False
         try:
             ns = self._load_into(slot, layer, expert)
+            ok = True
         except Exception:
-            with self.cond:  # the layer will read it itself
-                self.state[slot] = EMPTY
+            pass  # the layer will read it itself
+        finally:  # whatever happened, never leave the slot LOADING: a layer may be waiting on it
+            with self.cond:
+                self.state[slot] = READY if ok else EMPTY
+                if ok:
+                    self.load_ns[slot] = ns
                 self.cond.notify_all()
+        if not ok:
             return
-        with self.cond:
-            self.state[slot] = READY
-            self.load_ns[slot] = ns
-            self.cond.notify_all()
         self.stats.pagein_ns[layer] += ns
         self.stats.demand_loads += 1
 

@@ -225,9 +225,9 @@ class ModelStore:
         """
         r = self.ranges[layer][expert]
         t0 = time.monotonic_ns()
-        if self.fault_hook is not None:
-            self.fault_hook(layer, expert)
         try:
+            if self.fault_hook is not None:
+                self.fault_hook(layer, expert)
             if self.mechanism == "pread":
                 try:
                     pread_into(self._fd, r.start, dst[: r.nbytes])
@@ -237,8 +237,9 @@ class ModelStore:
                     ) from None
             else:
                 m = self._map
-                if m is None or r.start + r.nbytes > len(m):
-                    raise PageInError(f"{self.path}: expert {expert} of layer {layer} lies outside the mapped file")
+                if m is None or r.start + r.nbytes > len(m) or r.start + r.nbytes > os.fstat(self._fd).st_size:
+                    # touching mapped pages past the end of a file that shrank would kill the process (SIGBUS)
+                    raise PageInError(f"{self.path}: expert {expert} of layer {layer} lies outside the file (file changed while open?)")
                 np.copyto(dst[: r.nbytes], np.frombuffer(m, np.uint8, r.nbytes, r.start))
                 # Release the copied range, widened to the kernel's fault-around windows:
                 # a read fault maps the cached pages of the whole aligned window around it,

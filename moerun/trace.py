@@ -9,6 +9,9 @@ A trace file is a numpy ``.npz`` archive:
   layer l, entry [t, l, j-1] holds the top-n experts that layer l+j's router
   picks from the hidden state after layer l's attention (the prefetch rule);
   ``-1`` where l+j is past the last layer.
+- ``probs``    float32 [tokens, layers, n_experts], optional: the router
+  probabilities (softmax over every expert) per token and layer, for policies
+  that read them (``Policy.routed``).
 - ``meta``     0-d string array holding a JSON object, optional (``n_experts``,
   ``top_k``, ``expert_bytes``, ``prefill_tokens``, ``source``, ``partial``, ...).
 
@@ -43,6 +46,7 @@ class Trace:
     guesses: np.ndarray | None = None
     meta: dict = field(default_factory=dict)
     events: dict = field(default_factory=dict)
+    probs: np.ndarray | None = None  # float32 [tokens, layers, n_experts]: router probabilities, optional
 
     @property
     def n_tokens(self) -> int:
@@ -72,6 +76,7 @@ class Recorder:
         self.n_guesses = n_guesses
         self.experts: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
         self.weights: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
+        self.probs: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
         self.guesses: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
         self.kind: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
         self.pagein: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
@@ -83,6 +88,7 @@ class Recorder:
         T = chosen.shape[0]
         self.experts[layer].append(chosen.astype(np.int16))
         self.weights[layer].append(weights.astype(np.float32))
+        self.probs[layer].append(np.asarray(probs, np.float32))
         if T > 1 or step < 0:
             self.kind[layer].append(np.full((T, self.k), -1, np.int8))
             self.pagein[layer].append(np.zeros((T, self.k), np.int64))
@@ -118,6 +124,7 @@ class Recorder:
         experts = stack(self.experts, (self.k,), np.int16)
         weights = stack(self.weights, (self.k,), np.float32)
         guesses = stack(self.guesses, (self.lookahead, self.n_guesses), np.int16)
+        probs = stack(self.probs, (self.probs[0][0].shape[-1],), np.float32) if self.L and self.probs[0] else None
         events = {}
         for name, rows, tail, dt in (
             ("kind", self.kind, (self.k,), np.int8),
@@ -129,7 +136,7 @@ class Recorder:
             if a is not None and a.shape[0] == n:
                 events[name] = a
         meta = {"prefill_tokens": self.prefill_tokens, **meta}
-        return Trace(experts, weights, guesses, meta, events)
+        return Trace(experts, weights, guesses, meta, events, probs)
 
 
 def write_trace(path: str | Path, trace: Trace) -> None:
@@ -138,6 +145,8 @@ def write_trace(path: str | Path, trace: Trace) -> None:
         arrays["weights"] = trace.weights
     if trace.guesses is not None:
         arrays["guesses"] = trace.guesses
+    if trace.probs is not None:
+        arrays["probs"] = trace.probs
     arrays.update(trace.events)
     with atomic_path(path, suffix=".npz") as tmp:
         with open(tmp, "wb") as f:
@@ -162,6 +171,38 @@ def _not_a_zip(data: bytes) -> str | None:
         return "it does not start like a zip file"
 
 
+MAX_EXPERTS = 1 << 20  # more experts per layer than any model has; a guard against absurd metadata
+
+
+def _check_member_sizes(path: Path, data: bytes) -> None:
+    """Refuse members whose array header claims more bytes than the member holds, before numpy allocates them."""
+    try:
+        zf = zipfile.ZipFile(io.BytesIO(data))
+    except (zipfile.BadZipFile, ValueError):
+        return  # np.load reports it
+    with zf:
+        for info in zf.infolist():
+            if not info.filename.endswith(".npy"):
+                continue
+            try:
+                with zf.open(info) as f:
+                    version = np.lib.format.read_magic(f)
+                    if version == (1, 0):
+                        shape, _, dtype = np.lib.format.read_array_header_1_0(f)
+                    else:
+                        shape, _, dtype = np.lib.format.read_array_header_2_0(f)
+            except Exception:  # noqa: BLE001 - a member numpy cannot even describe; np.load reports it
+                continue
+            count = 1
+            for n in shape:
+                count *= int(n)
+            if count * max(dtype.itemsize, 1) > info.file_size:
+                raise BadTrace(
+                    f"{path}: array {info.filename[:-4]!r} claims shape {list(shape)} of {dtype}, "
+                    f"more than the {info.file_size} bytes the archive holds for it"
+                )
+
+
 def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
     """Read and validate a trace file; raise BadTrace with one clear line."""
     path = Path(path)
@@ -174,6 +215,7 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
     kind = _not_a_zip(data)
     if kind is not None:
         raise BadTrace(f"{path}: not an .npz archive ({kind}); a trace is a zip of named numpy arrays, see docs/traces.md")
+    _check_member_sizes(path, data)
     try:
         z = np.load(io.BytesIO(data), allow_pickle=False)
         if not isinstance(z, np.lib.npyio.NpzFile):
@@ -199,7 +241,7 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
         m = arrays["meta"]
         try:
             meta = json.loads(str(m.item())) if m.shape == () else None
-        except (ValueError, TypeError):
+        except (ValueError, TypeError, RecursionError):
             meta = None
         if not isinstance(meta, dict):
             raise BadTrace(f"{path}: 'meta' must be a 0-d string holding a JSON object")
@@ -207,8 +249,8 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
     if (experts < PAD).any():
         raise BadTrace(f"{path}: 'experts' holds negative ids other than the padding value {PAD}")
     declared = meta.get("n_experts")
-    if declared is not None and (isinstance(declared, bool) or not isinstance(declared, int) or declared <= 0):
-        raise BadTrace(f"{path}: meta n_experts must be a positive integer")
+    if declared is not None and (isinstance(declared, bool) or not isinstance(declared, int) or not 0 < declared <= MAX_EXPERTS):
+        raise BadTrace(f"{path}: meta n_experts must be a whole number from 1 to {MAX_EXPERTS}")
     limit = n_experts if n_experts is not None else declared
     if limit is not None and (experts >= limit).any():
         raise BadTrace(f"{path}: 'experts' holds ids >= n_experts ({limit})")
@@ -238,6 +280,13 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
         guesses = guesses.astype(np.int64)
         if (guesses < PAD).any() or (limit is not None and (guesses >= limit).any()):
             raise BadTrace(f"{path}: 'guesses' holds ids outside 0..n_experts-1 (or -1 padding)")
+    probs = arrays.get("probs")
+    if probs is not None:
+        if probs.ndim != 3 or probs.shape[:2] != experts.shape[:2] or probs.dtype.kind != "f":
+            raise BadTrace(f"{path}: 'probs' must be a float array [tokens, layers, n_experts] matching 'experts'")
+        if (limit is not None and probs.shape[2] != limit) or (experts.size and probs.shape[2] <= experts.max()):
+            raise BadTrace(f"{path}: 'probs' has {probs.shape[2]} columns; it needs one per expert")
+        probs = probs.astype(np.float32)
     events = {}
     for name in ("kind", "pagein_ns", "stall_ns", "compute_ns"):
         if name in arrays:
@@ -246,4 +295,4 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
             if a.shape != want:
                 raise BadTrace(f"{path}: '{name}' must have shape {list(want)}")
             events[name] = a
-    return Trace(experts, weights, guesses, meta, events)
+    return Trace(experts, weights, guesses, meta, events, probs)
