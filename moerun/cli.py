@@ -61,6 +61,8 @@ def add_memory(p) -> None:
     p.add_argument("--evict", default="lru", metavar="POLICY", help="eviction policy: lru (default), lfu, fifo, ...")
     p.add_argument("--prefetch", type=int, default=0, metavar="N", help="speculative guesses per layer (0 = off)")
     p.add_argument("--lookahead", type=int, default=1, metavar="L", help="layers ahead to guess (default 1)")
+    p.add_argument("--prefetch-from", choices=("attention", "output"), default="attention",
+                   help="prefetch point: after a layer's attention (default; more time to hide a read) or after the whole layer (better guesses)")
     p.add_argument("--link-speed", metavar="RATE", help="emulate a slower link for page-in, e.g. 2GB/s (labelled emulated)")
     p.add_argument("--cold", action="store_true", help="drop the model file from the OS page cache first")
 
@@ -88,6 +90,7 @@ def engine_kwargs(args) -> dict:
         "evict": args.evict,
         "prefetch": args.prefetch,
         "lookahead": args.lookahead,
+        "prefetch_from": args.prefetch_from,
         "slots": parse_slots(args.slots),
         "split": "shared" if args.shared_pool else "even",
         "link_speed": args.link_speed,

@@ -113,6 +113,11 @@ class ExpertPool:
         self.key_of: list = [None] * n_slots
         self.prefetched = [False] * n_slots  # loaded by a guess and not used yet
         self.load_ns = [0] * n_slots
+        # when a background read's bytes are in the slot and its (emulated) transfer is done;
+        # 0 while unknown.  Lets a layer use a slot without waiting for the loader to wake up.
+        self.usable_at = [0] * n_slots
+        self.load_t0 = [0] * n_slots  # when the slot's current read started
+        self.gen = [0] * n_slots  # bumped by every new read, so a late loader never touches a reused slot
         policy_cls = policies.get(evict)
         if not getattr(policy_cls, "online", True):
             from .errors import BadOption
@@ -165,13 +170,37 @@ class ExpertPool:
                 self.key_of[slot] = (layer, e)
                 self.state[slot] = READY
 
-    def _load_into(self, slot: int, layer: int, expert: int) -> int:
-        ns = self.store.page_in(layer, expert, self.slots[slot])
+    def _load_into(self, slot: int, layer: int, expert: int, background: bool = False) -> int:
+        if background:  # publish READY as soon as the bytes are in, before the loader wakes up again
+            ns = self.store.page_in(layer, expert, self.slots[slot], self._publisher(slot, self.gen[slot]))
+        else:
+            ns = self.store.page_in(layer, expert, self.slots[slot])
         self.stats.bytes_in += self.store.expert_nbytes
         return ns
 
+    def _publisher(self, slot: int, gen: int):
+        """on_data callback of a background read: the slot is READY, usable from ``done_ns``."""
+
+        def on_data(done_ns: int) -> None:
+            with self.cond:
+                if self.gen[slot] == gen and self.state[slot] == LOADING:
+                    self.usable_at[slot] = done_ns
+                    self.state[slot] = READY
+                    self.cond.notify_all()
+
+        return on_data
+
+    def _claim(self, slot: int) -> int:
+        """Mark a slot LOADING for a new read (caller holds the lock); returns its new generation."""
+        self.gen[slot] += 1
+        self.state[slot] = LOADING
+        self.usable_at[slot] = 0
+        self.load_t0[slot] = time.monotonic_ns()
+        return self.gen[slot]
+
     def _evicted(self, slot: int) -> None:
         """Bookkeeping when a READY slot's key is evicted (caller holds the lock)."""
+        self.gen[slot] += 1  # a loader still finishing its (emulated) transfer must not touch the slot now
         if self.prefetched[slot]:
             self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
             self.prefetched[slot] = False
@@ -193,6 +222,8 @@ class ExpertPool:
             if kind == PREFETCHED:
                 self.prefetched[slot] = False
                 self.stats.prefetch_used += 1
+                if self.state[slot] == READY and self.usable_at[slot] <= time.monotonic_ns():  # read entirely behind compute
+                    self.stats.hidden_ns += max(0, self.usable_at[slot] - self.load_t0[slot])
         else:
             if victim is not None:
                 self._evicted(slot)
@@ -252,7 +283,8 @@ class ExpertPool:
         if self._prefill:
             return range(len(ids))
         ev = self._layer_events
-        ready = [j for j, e in enumerate(ids) if self.state[ev[e][1]] == READY]
+        now = time.monotonic_ns()
+        ready = [j for j, e in enumerate(ids) if self.state[ev[e][1]] == READY and self.usable_at[ev[e][1]] <= now]
         if len(ready) == len(ids):
             return range(len(ids))
         return ready + [j for j in range(len(ids)) if j not in ready]
@@ -265,8 +297,7 @@ class ExpertPool:
             return self._prefill_weights(layer, expert)
         ev = self._layer_events[expert]
         slot = ev[1]
-        state = self.state[slot]
-        if state == READY:
+        if self.state[slot] == READY and self.usable_at[slot] <= time.monotonic_ns():
             return self.store.codec.weights(self.bound[slot])
         t0 = time.monotonic_ns()
         with self.cond:
@@ -274,15 +305,18 @@ class ExpertPool:
                 self.cond.wait()
             state = self.state[slot]
             if state in (EMPTY, QUEUED):  # not started by the loader thread: read it here
-                self.state[slot] = LOADING
+                self._claim(slot)
         if state in (EMPTY, QUEUED):
-            ns = self._demand_load(slot, layer, expert)
-            ev[2] = ns
-        elif ev[0] == MISS:  # the loader thread read it while this layer computed other experts
-            ev[2] = self.load_ns[slot]
-        else:  # a prefetch finished while we waited
-            waited = time.monotonic_ns() - t0
-            self.stats.hidden_ns += max(0, self.load_ns[slot] - waited)
+            ev[2] = self._demand_load(slot, layer, expert)
+        else:  # READY: a background read whose (emulated) transfer may still be running
+            wait = self.usable_at[slot] - time.monotonic_ns()
+            if wait > 0:
+                time.sleep(wait / 1e9)
+            done = max(self.usable_at[slot], self.load_t0[slot])
+            if ev[0] == MISS:  # the loader read it while this layer computed other experts
+                ev[2] = done - self.load_t0[slot]
+            else:  # a guess: the part of its read not waited for was hidden behind compute
+                self.stats.hidden_ns += max(0, done - self.load_t0[slot] - (time.monotonic_ns() - t0))
         stall = time.monotonic_ns() - t0
         ev[3] = stall
         self.stats.stall_ns[layer] += stall
@@ -330,7 +364,10 @@ class ExpertPool:
                 self.key_of[slot] = (layer, expert)
                 need = True
             if need:
-                self.state[slot] = LOADING
+                self._claim(slot)
+        wait = self.usable_at[slot] - time.monotonic_ns() if not need else 0
+        if wait > 0:  # a background read whose emulated transfer is still running
+            time.sleep(wait / 1e9)
         if need:
             t0 = time.monotonic_ns()
             ns = self._demand_load(slot, layer, expert)
@@ -360,23 +397,24 @@ class ExpertPool:
         with self.cond:
             if self.state[slot] != QUEUED or self.key_of[slot] != (layer, expert):
                 return
-            self.state[slot] = LOADING
+            gen = self._claim(slot)
         ok = False
+        ns = 0
         try:
-            ns = self._load_into(slot, layer, expert)
+            ns = self._load_into(slot, layer, expert, background=True)
             ok = True
         except Exception:
             pass  # the layer will read it itself
         finally:  # whatever happened, never leave the slot LOADING: a layer may be waiting on it
             with self.cond:
-                self.state[slot] = READY if ok else EMPTY
-                if ok:
-                    self.load_ns[slot] = ns
+                if self.gen[slot] == gen:
+                    self.state[slot] = READY if ok else EMPTY
+                    if ok:
+                        self.load_ns[slot] = ns
                 self.cond.notify_all()
-        if not ok:
-            return
-        self.stats.pagein_ns[layer] += ns
-        self.stats.demand_loads += 1
+        if ok:
+            self.stats.pagein_ns[layer] += ns
+            self.stats.demand_loads += 1
 
     # ------------------------------------------------------------------ prefetch side
     def prefetch(self, layer: int, expert: int, target: int, hook=None, protect=frozenset()) -> None:
@@ -398,7 +436,7 @@ class ExpertPool:
             if victim is not None:
                 self._evicted(slot)
             self.key_of[slot] = (layer, expert)
-            self.state[slot] = LOADING
+            gen = self._claim(slot)
             self.prefetched[slot] = True
             self.stats.prefetch_loads += 1
         ok = False
@@ -406,16 +444,19 @@ class ExpertPool:
         try:
             if hook is not None:
                 hook(layer, expert)
-            ns = self._load_into(slot, layer, expert)
+            ns = self._load_into(slot, layer, expert, background=True)
             ok = True
         except Exception:
             self.stats.prefetch_failed += 1
         finally:
             with self.cond:
                 if ok:
+                    self.stats.prefetch_ns += ns
+                if self.gen[slot] != gen:
+                    pass  # published READY, then evicted and reused: nothing of ours is left in it
+                elif ok:
                     self.state[slot] = READY
                     self.load_ns[slot] = ns
-                    self.stats.prefetch_ns += ns
                 elif self.prefetched[slot]:  # unclaimed: forget the guess
                     self.prefetched[slot] = False
                     r.remove(key)

@@ -216,12 +216,16 @@ class ModelStore:
             self._map = mmap.mmap(self._fd, 0, prot=mmap.PROT_READ)
         self.mechanism = mechanism
 
-    def page_in(self, layer: int, expert: int, dst: np.ndarray) -> int:
+    def page_in(self, layer: int, expert: int, dst: np.ndarray, on_data=None) -> int:
         """Copy one expert's bytes into ``dst`` (uint8, at least expert_nbytes); return real ns.
 
         With an emulated link (``link_rate`` bytes/s) the transfer takes nbytes /
         link_rate on a single channel shared by all threads: concurrent page-ins
         queue behind each other.  The wait is a sleep, so the GIL is free.
+        ``on_data(done_ns)``, if given, is called once the bytes are in ``dst``
+        with the monotonic time at which the (emulated) transfer completes, so
+        another thread may use them from then on without waiting for this one
+        to wake up.
         """
         r = self.ranges[layer][expert]
         t0 = time.monotonic_ns()
@@ -259,9 +263,13 @@ class ModelStore:
                 start = max(t0, self._link_free_ns)
                 end = start + int(r.nbytes / self.link_rate * 1e9)
                 self._link_free_ns = end
+            if on_data is not None:
+                on_data(end)
             wait = end - time.monotonic_ns()
             if wait > 0:
                 time.sleep(wait / 1e9)
+        elif on_data is not None:
+            on_data(time.monotonic_ns())
         return time.monotonic_ns() - t0
 
     def drop_cache(self) -> bool:
