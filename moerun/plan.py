@@ -39,7 +39,7 @@ from .replay import layer_plans, make_policy, prefill_tokens, replay_counts
 from .residency import NoVictim, Residency
 from .trace import Trace
 
-CALIBRATION_SCHEMA = "moerun-calibration/2"
+CALIBRATION_SCHEMA = "moerun-calibration/3"
 CALIBRATION_LINK = 2e9  # bytes/s of the emulated link used to measure the cost of a blocking read
 SHAPE_KEYS = ("layers", "experts", "top_k", "expert_bytes", "dense_bytes", "expert_us", "dense_layer_us")
 
@@ -54,6 +54,7 @@ class Costs:
     page: float
     page_source: str = ""
     wait: float = 0.0  # added to every blocking wait on a read: wake-up and miss bookkeeping, measured
+    loader: float = 0.0  # compute-thread time lost per background read (the loader thread's share of the GIL), measured
 
     def to_json(self) -> dict:
         return {
@@ -63,6 +64,7 @@ class Costs:
             "page_us": self.page * 1e6,
             "page_source": self.page_source,
             "wait_us": self.wait * 1e6,
+            "loader_us": self.loader * 1e6,
         }
 
 
@@ -153,6 +155,8 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
             loads += 1
 
     t_begin = 0.0
+    background = 0  # demand reads handed to the loader this token
+    loads_before = 0
     for t in range(P, T):
         if t == P:
             t_begin = now
@@ -201,6 +205,7 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
                     layer_miss[layer] += 1
                     demand.append(e)
             if prefetch and demand:  # the loader reads them ahead of queued guesses
+                background += len(demand)
                 for e in demand:
                     start = max(link_free, now)
                     link_free = start + costs.page
@@ -218,7 +223,9 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
                 stall += link_free + costs.wait - now
                 now = link_free + costs.wait + costs.expert
                 ready_at[layer][e] = link_free
-        now += costs.head
+        now += costs.head + costs.loader * (background + loads - loads_before)
+        background = 0
+        loads_before = loads
     n = T - P
     total = now - t_begin
     step_s = total / n if n else 0.0
@@ -355,9 +362,24 @@ def calibrate(model_dir, tokens: int = 96, repeats: int = 3, recalibrate: bool =
             step = gen.decode_ns / 1e9 / gen.decode_steps
             if misses > 0:
                 over.append((step - best["step_s"] - misses * page) / misses)
+    wait_s = max(0.0, min(over)) if over else 0.0
     k = best["top_k"]
     attn = [max(0.0, ls - k * best["expert_s"]) for ls in best["layer_s"]]
     head = max(0.0, best["step_s"] - sum(best["layer_s"]))
+    # what each background read costs the compute thread: the same run with prefetch, against the model
+    base = Costs(attn, best["expert_s"], head, page, "calibration", wait_s)
+    per_read = []
+    for _ in range(repeats):
+        with load(model_dir, mem_cap=cap, link_speed=rate, prefetch=2) as eng:
+            eng.start_trace()
+            gen = eng.generate("", max_new=tokens + 1, sampling=Sampling(temperature=0.8, seed=0))
+            trace = eng.finish_trace()
+            slots = list(eng.budget.slots)
+        step = gen.decode_ns / 1e9 / gen.decode_steps
+        pred = predict(trace, slots, "lru", 2, 1, base)
+        reads = (pred.prefetch_loads + pred.misses) / max(1, gen.decode_steps)
+        if reads > 0:
+            per_read.append((step - pred.step_s) / reads)
     doc = {
         "schema": CALIBRATION_SCHEMA,
         "model_dir": str(model_dir.resolve()),
@@ -366,7 +388,8 @@ def calibrate(model_dir, tokens: int = 96, repeats: int = 3, recalibrate: bool =
         "expert_s": best["expert_s"],
         "head_s": head,
         "resident_step_s": best["step_s"],
-        "wait_s": max(0.0, min(over)) if over else 0.0,
+        "wait_s": wait_s,
+        "loader_s": max(0.0, min(per_read)) if per_read else 0.0,
         "note": "measured on this machine, fully resident, one decode thread",
     }
     if cache:
@@ -408,7 +431,7 @@ def load_shape(path: str | os.PathLike) -> dict:
 
 
 def costs_from_calibration(cal: dict, page: float, page_source: str) -> Costs:
-    return Costs(list(cal["attn_s"]), cal["expert_s"], cal["head_s"], page, page_source, cal.get("wait_s", 0.0))
+    return Costs(list(cal["attn_s"]), cal["expert_s"], cal["head_s"], page, page_source, cal.get("wait_s", 0.0), cal.get("loader_s", 0.0))
 
 
 def costs_from_shape(shape: dict, page: float, page_source: str) -> Costs:

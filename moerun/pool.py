@@ -142,6 +142,7 @@ class ExpertPool:
         self._prefill = False
         self._layer_events: dict = {}
         self.guess_hook = None  # set by the engine: callable(layer, h) at the prefetch point
+        self._resident_events = None  # set by preload_all when every expert is resident
 
     # ------------------------------------------------------------------ keys
     def key(self, layer: int, expert: int):
@@ -159,7 +160,11 @@ class ExpertPool:
 
     # ------------------------------------------------------------------ loading
     def preload_all(self) -> None:
-        """Fill every slot in layer, expert order (the fully resident configuration)."""
+        """Fill every slot in layer, expert order (the fully resident configuration).
+
+        When every expert fits, decode takes a fast path with no residency bookkeeping
+        (an access can only hit); a policy is still told nothing it could act on.
+        """
         for layer in range(self.config.n_layers):
             for e in range(self.config.n_experts):
                 r = self.residency(layer)
@@ -169,6 +174,11 @@ class ExpertPool:
                 self._load_into(slot, layer, e)
                 self.key_of[slot] = (layer, e)
                 self.state[slot] = READY
+        L, E = self.config.n_layers, self.config.n_experts
+        if all(len(self.residency(layer).slot_of) == (E if not self.shared else L * E) for layer in range(L)):
+            self._resident_events = [
+                {e: [HIT, self.residency(layer).slot_of[self.key(layer, e)], 0, 0] for e in range(E)} for layer in range(L)
+            ]
 
     def _load_into(self, slot: int, layer: int, expert: int, background: bool = False) -> int:
         if background:  # publish READY as soon as the bytes are in, before the loader wakes up again
@@ -249,6 +259,13 @@ class ExpertPool:
         if self.recorder is not None:
             self.recorder.routed(self.step, layer, chosen, weights, probs)
         if chosen.shape[0] != 1 or self._prefill:  # prefill accesses happen per expert in weights()
+            return
+        if self._resident_events is not None and self.recorder is None:
+            # every expert is resident and nothing is ever evicted: every access is a hit
+            k = chosen.shape[1]
+            self.stats.accesses[layer] += k
+            self.stats.hits[layer] += k
+            self._layer_events = self._resident_events[layer]
             return
         ids = chosen[0].tolist()
         keys = [self.key(layer, e) for e in ids]

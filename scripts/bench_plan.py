@@ -63,7 +63,7 @@ def main() -> int:
                 rows.append({"link_bytes_s": link, "link_emulated": True, "cap_bytes": cap, "slots": slots, "prefetch": pf,
                              "predicted_tok_s": pred.tok_s, "measured_tok_s": best,
                              "rel_error": abs(pred.tok_s - best) / best, "predicted_hit_rate": pred.hit_rate})
-    doc = {"model": str(model), "blas_threads": 1, "calibration": {k: cal[k] for k in ("attn_s", "expert_s", "head_s", "wait_s")},
+    doc = {"model": str(model), "blas_threads": 1, "calibration": {k: cal[k] for k in ("attn_s", "expert_s", "head_s", "wait_s", "loader_s")},
            "trace_tokens": trace.n_tokens, "rows": rows, "max_rel_error": max(r["rel_error"] for r in rows)}
     if a.json:
         print(json.dumps(doc, indent=2))
