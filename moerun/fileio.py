@@ -46,3 +46,16 @@ def write_bytes_atomic(path: str | os.PathLike, data: bytes) -> None:
 
 def write_text_atomic(path: str | os.PathLike, text: str) -> None:
     write_bytes_atomic(path, text.encode("utf-8"))
+
+
+def read_user_file(path: str | os.PathLike, error: type[Exception], what: str = "file", missing_hint: str = "") -> bytes:
+    """The bytes of a file the user named; ``error`` (a MoerunError) with one clear line otherwise."""
+    path = Path(path)
+    try:
+        return path.read_bytes()
+    except FileNotFoundError:
+        raise error(f"{path}: no such {what}{missing_hint}") from None
+    except IsADirectoryError:
+        raise error(f"{path}: is a directory, expected a {what}") from None
+    except OSError as e:
+        raise error(f"{path}: cannot read ({e.strerror})") from None

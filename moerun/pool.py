@@ -22,6 +22,7 @@ import numpy as np
 from . import policies
 from .budget import Budget
 from .residency import NoVictim, Residency
+from .sources import ExpertSource
 from .store import ModelStore
 
 EMPTY, LOADING, READY, QUEUED = 0, 1, 2, 3  # QUEUED: a demand read handed to the loader thread
@@ -91,8 +92,11 @@ class PoolStats:
         }
 
 
-class ExpertPool:
-    """Slots, residency per layer (or shared), and the expert-source interface for the model."""
+class ExpertPool(ExpertSource):
+    """Slots, residency per layer (or shared), and the expert-source interface for the model.
+
+    The prefetch-point hooks (``after_attention``, ``after_layer``) come from ``ExpertSource``.
+    """
 
     def __init__(self, store: ModelStore, budget: Budget, evict: str = "lru"):
         self.store = store
@@ -243,14 +247,6 @@ class ExpertPool:
         return kind, slot
 
     # ------------------------------------------------------------------ expert source
-    def after_attention(self, layer: int, h: np.ndarray) -> None:
-        if self.guess_hook is not None:
-            self.guess_hook(layer, h, "attention")
-
-    def after_layer(self, layer: int, x: np.ndarray) -> None:
-        if self.guess_hook is not None:
-            self.guess_hook(layer, x, "output")
-
     def begin_step(self, step: int) -> None:
         self.step = step
         self._prefill = step < 0

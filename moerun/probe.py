@@ -674,15 +674,10 @@ def load_probe(path: str | os.PathLike) -> dict:
     BadOption if the path is not a readable file (it came from an option),
     BadInput if its content is not a valid moerun-probe/1 document.
     """
+    from .fileio import read_user_file
+
     p = Path(path)
-    try:
-        raw = p.read_bytes()
-    except FileNotFoundError:
-        raise BadOption(f"{p}: no such probe file (write one with 'moerun probe --save {p}')") from None
-    except IsADirectoryError:
-        raise BadOption(f"{p}: is a directory, expected a file written by 'moerun probe --save'") from None
-    except OSError as e:
-        raise BadOption(f"{p}: cannot read ({e.strerror})") from None
+    raw = read_user_file(p, BadOption, "probe file", f" (write one with 'moerun probe --save {p}')")
     try:
         doc = json.loads(raw.decode("utf-8"))
     except (UnicodeDecodeError, json.JSONDecodeError, RecursionError):

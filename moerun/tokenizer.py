@@ -39,15 +39,10 @@ class Tokenizer:
 
 def read_text_file(path: str | Path) -> str:
     """Read a UTF-8 text file for the user; one clear error otherwise."""
+    from .fileio import read_user_file
+
     path = Path(path)
-    try:
-        data = path.read_bytes()
-    except FileNotFoundError:
-        raise BadInput(f"{path}: no such file") from None
-    except IsADirectoryError:
-        raise BadInput(f"{path}: is a directory, expected a text file") from None
-    except OSError as e:
-        raise BadInput(f"{path}: cannot read ({e.strerror})") from None
+    data = read_user_file(path, BadInput, "file")
     try:
         return data.decode("utf-8")
     except UnicodeDecodeError as e:
