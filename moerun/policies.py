@@ -26,9 +26,14 @@ Writing a policy::
 
 from __future__ import annotations
 
+import array
+import math
 from collections.abc import Callable, Hashable, Sequence
 
+import numpy as np
+
 Key = Hashable
+LN2 = math.log(2.0)
 
 
 class Policy:
@@ -49,6 +54,13 @@ class Policy:
     def victim(self, candidates: Sequence[Key], now: int) -> Key:
         """Pick one of ``candidates`` (resident, evictable; never empty) to evict."""
         raise NotImplementedError
+
+    def routed(self, layer: int, chosen: Sequence[int], probs: np.ndarray | None, now: int) -> None:
+        """Optional per-step signal, before a decode step's accesses: the layer, its chosen expert ids
+        (ascending) and the router probabilities of the current token for that layer (float32
+        [n_experts]; None when a replayed trace holds no ``probs``).  ``now`` is the clock of the
+        step's first access.  The live pool and the replay both call it; prefill is not signalled.
+        The arrays belong to the caller: copy what you keep."""
 
 
 class LRU(Policy):
@@ -147,6 +159,218 @@ class Optimal(Policy):
         return max(candidates, key=self.upcoming.__getitem__)
 
 
+class LRFU(Policy):
+    """Least recently/frequently used: evict the key with the smallest decayed access count.
+
+    Each access adds 1 to a key's count, and counts halve every ``1 / lam`` accesses, so
+    ``lam`` slides from LFU (0) towards LRU (1).  Unlike ``lfu``, a key's history survives its
+    eviction, so an expert that is used often but was pushed out is recognised when it returns.
+    Source: Lee, Choi, Kim, Noh, Min, Cho and Kim, "LRFU: a spectrum of policies that subsumes the
+    least recently used and least frequently used policies", IEEE Transactions on Computers
+    50(12), 2001 (the combined recency and frequency value, CRF, with F(x) = (1/2)^(lam x)).
+    """
+
+    name = "lrfu"
+    lam = 0.01  # per access; chosen on tuning traces (docs/policy_research.md)
+
+    def __init__(self):
+        self.count: dict[Key, float] = {}  # decayed count at the key's last access
+        self.last: dict[Key, int] = {}
+
+    def inserted(self, key, now):
+        c = self.count.get(key)
+        self.count[key] = 1.0 if c is None else 1.0 + c * 2.0 ** (-self.lam * (now - self.last[key]))
+        self.last[key] = now
+
+    hit = inserted
+
+    def log_crf(self, key: Key, now: int) -> float:
+        """log2 of the key's decayed count at ``now`` (its combined recency and frequency value)."""
+        return math.log2(self.count[key]) - self.lam * (now - self.last[key])
+
+    def victim(self, candidates, now):
+        return min(candidates, key=lambda k: self.log_crf(k, now))
+
+
+class _RoutingModel:
+    """One layer's online predictor of its next routing decisions (used by ``Markov``).
+
+    A context of order o is the layer's last o routing decisions (the sets of chosen experts).
+    The *follow-up* of a past step gives expert e the sum of gamma**(d-1) over the steps
+    d = 1..horizon after it (those seen so far) that chose e.  For every context the model
+    remembers where its last ``memory`` (1 or 2) occurrences ended; the estimate for e comes from
+    the longest current context that occurred before: the follow-ups of those occurrences,
+    pulled towards e's overall rate by ``kappa`` pseudo-counts (prediction by the longest match,
+    as in Cleary and Witten's PPM, IEEE Transactions on Communications 32(4), 1984).  Everything
+    comes from steps already seen.
+
+    Memory is fixed: a direct-mapped table of ``2**table_bits`` contexts (a newer context takes the
+    bucket of an older one with the same hash bits) and a ring of the last ``2**ring_bits``
+    decisions, 4-byte integers (about 270 KiB per layer with the defaults and ``memory`` 2);
+    occurrences older than the ring are forgotten.  Work per step: about ``order`` hash and
+    table operations; per step that asks for an estimate, about ``memory * horizon * top_k`` more.
+    """
+
+    __slots__ = ("order", "horizon", "kappa", "weights", "mask", "ring_mask", "keys", "end0", "end1", "ring", "ids", "sets",
+                 "steps", "seen", "current", "follow", "cache")
+
+    def __init__(self, order: int, gamma: float, horizon: int, kappa: float, memory: int, table_bits: int = 14, ring_bits: int = 14):
+        if memory not in (1, 2):
+            raise ValueError(f"memory must be 1 or 2, got {memory}")
+        self.order = order
+        self.horizon = horizon
+        self.kappa = kappa
+        self.weights = [gamma**d for d in range(horizon)]
+        self.mask = (1 << table_bits) - 1
+        self.ring_mask = (1 << ring_bits) - 1
+        n = 1 << table_bits
+        self.keys = array.array("i", bytes(4 * n))  # 31 bits of the context hash per bucket (0: empty)
+        self.end0 = array.array("i", [-1]) * n  # step where the context last ended (-1: never)
+        self.end1 = array.array("i", [-1]) * n if memory == 2 else None  # ... and the time before
+        self.ring = array.array("i", bytes(4 << ring_bits))  # decision id of each recent step
+        self.ids: dict[tuple, int] = {}  # decision -> small int
+        self.sets: list[tuple] = []  # small int -> decision
+        self.steps = 0
+        self.seen: dict[int, int] = {}  # expert -> steps that chose it
+        self.current: list[int] = []  # hashes of the contexts ending at the last step, short to long
+        self.follow: dict | None = None  # see _follow (None: not looked up yet at this step)
+        self.cache: dict[int, float] = {}
+
+    def step(self, chosen: tuple) -> None:
+        """The layer chose ``chosen`` at a new step."""
+        t = self.steps
+        keys, end0, end1, mask = self.keys, self.end0, self.end1, self.mask
+        for key in self.current:  # the contexts ending at the previous step occurred there
+            b = key & mask
+            if keys[b] == key:
+                if end1 is not None:
+                    end1[b] = end0[b]
+            else:
+                keys[b] = key
+                if end1 is not None:
+                    end1[b] = -1
+            end0[b] = t - 1
+        d = self.ids.get(chosen)
+        if d is None:
+            d = self.ids[chosen] = len(self.sets)
+            self.sets.append(chosen)
+        self.ring[t & self.ring_mask] = d
+        self.current = [hash((d, -1)) & 0x7FFFFFFF | 1] + [hash((d, k)) & 0x7FFFFFFF | 1 for k in self.current[: self.order - 1]]
+        self.steps = t + 1
+        seen = self.seen
+        for e in chosen:
+            seen[e] = seen.get(e, 0) + 1
+        self.follow = None
+        self.cache = {}
+
+    def _follow(self) -> dict:
+        """Follow-up weights of the longest current context seen before, summed over its remembered
+        occurrences, with their weight total under the key None ({} when no context was seen)."""
+        keys, mask, t = self.keys, self.mask, self.steps - 1
+        oldest = max(0, t - self.ring_mask)  # earlier steps have left the ring (and -1 means never)
+        ring, sets, rm, weights, horizon = self.ring, self.sets, self.ring_mask, self.weights, self.horizon
+        follow: dict = {}
+        for key in reversed(self.current):  # longest first
+            b = key & mask
+            if keys[b] != key:
+                continue
+            total = 0.0
+            for ends in (self.end0, self.end1):
+                if ends is None:
+                    break
+                p = ends[b]
+                if p < oldest:
+                    break
+                for i in range(min(horizon, t - p)):  # p < t: contexts are registered one step late
+                    wt = weights[i]
+                    total += wt
+                    for e in sets[ring[(p + 1 + i) & rm]]:
+                        follow[e] = follow.get(e, 0.0) + wt
+            if total > 0.0:
+                follow[None] = total
+                break
+        self.follow = follow
+        return follow
+
+    def p(self, e: int) -> float:
+        """Estimated (discounted) rate at which the coming steps choose expert ``e``."""
+        p = self.cache.get(e)
+        if p is None:
+            follow = self.follow if self.follow is not None else self._follow()
+            p = (self.seen.get(e, 0) + 1.0) / (self.steps + 2.0)
+            if follow:
+                p = (follow.get(e, 0.0) + self.kappa * p) / (follow[None] + self.kappa)
+            self.cache[e] = p
+        return p
+
+
+class Markov(LRFU):
+    """Evict the expert least likely to be needed soon, by an online model of the layer's routing.
+
+    The chance that an expert is chosen in the next few steps is estimated from what followed
+    the last times the layer's recent routing decisions occurred (``_RoutingModel``, learned
+    online from this run alone), and combined with the expert's decayed access count
+    (``LRFU``): evict the candidate with the smallest ``log p + w * ln crf``.  It reads the
+    chosen experts of each step through ``routed`` (the live pool and the replay both call it);
+    without those calls (or in prefill) the model has no context and the rule reduces to LRFU.
+
+    Keys are expert ids (one policy per layer) or ``(layer, expert)`` pairs (one pool shared by
+    all layers: one routing model per layer).  Parameters were chosen on tuning traces and
+    checked on traces never used for tuning (docs/policy_research.md, scripts/tune_policy.py).
+    """
+
+    name = "markov"
+    # chosen by scripts/tune_policy.py on traces of training text (docs/policy_research.md)
+    order = 4  # context length, in steps
+    gamma = 0.5  # weight of an outcome d steps after its context: gamma ** (d - 1)
+    horizon = 8  # outcomes are counted up to this many steps after the context
+    kappa = 0.5  # pseudo-counts pulling the context's estimate towards the expert's overall rate
+    memory = 2  # occurrences remembered per context: 1 or 2
+    lam = 0.01  # LRFU decay per access
+    w = 0.5  # weight of the frequency term
+
+    def __init__(self):
+        super().__init__()
+        self.models: dict = {}
+        self.layer = None  # the layer of plain (non-tuple) keys: the last one routed
+
+    def _model(self, layer) -> _RoutingModel:
+        m = self.models.get(layer)
+        if m is None:
+            m = self.models[layer] = _RoutingModel(self.order, self.gamma, self.horizon, self.kappa, self.memory)
+        return m
+
+    def routed(self, layer, chosen, probs, now):
+        self.layer = layer
+        self._model(layer).step(tuple(chosen))
+
+    def score(self, key: Key, now: int) -> float:
+        """log p(key needed soon) + w * ln crf(key); the smallest is evicted."""
+        layer, e = key if isinstance(key, tuple) else (self.layer, key)
+        return math.log(self._model(layer).p(e)) + self.w * (math.log(self.count[key]) - self.lam * LN2 * (now - self.last[key]))
+
+    def victim(self, candidates, now):
+        if isinstance(candidates[0], tuple):  # a shared pool: each key scored by its layer's model
+            return min(candidates, key=lambda k: self.score(k, now))
+        p, count, last = self._model(self.layer).p, self.count, self.last  # the same rule as score(), inlined
+        w, c, log = self.w, self.lam * LN2, math.log
+        best, low = None, math.inf
+        for k in candidates:
+            s = log(p(k)) + w * (log(count[k]) - c * (now - last[k]))
+            if s < low:
+                best, low = k, s
+        return best
+
+    @classmethod
+    def with_params(cls, **params) -> type[Markov]:
+        """A subclass with other parameter values (for tuning; not registered)."""
+        unknown = set(params) - {"order", "gamma", "horizon", "kappa", "memory", "lam", "w"}
+        if unknown:
+            raise TypeError(f"unknown parameters {sorted(unknown)}")
+        label = ",".join(f"{k}={v}" for k, v in sorted(params.items()))
+        return type(f"Markov[{label}]", (cls,), dict(params, name=f"markov[{label}]"))
+
+
 _REGISTRY: dict[str, Callable[..., Policy]] = {}
 
 
@@ -156,7 +380,7 @@ def register(cls: type[Policy]) -> type[Policy]:
     return cls
 
 
-for _cls in (LRU, LFU, FIFO, Optimal):
+for _cls in (LRU, LFU, FIFO, Optimal, LRFU, Markov):
     register(_cls)
 
 

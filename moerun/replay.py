@@ -62,6 +62,8 @@ class LayerPlan:
     sizes: np.ndarray  # int [n_steps] accesses per step
     counted: np.ndarray  # bool [n_steps]: a decode access (counted) or a prefill load (not counted)
     token: np.ndarray  # int [n_steps] token index of each step
+    layer: int = 0  # the layer these accesses belong to (for ``Policy.routed``)
+    probs: np.ndarray | None = None  # float32 [tokens, n_experts]: the layer's router probabilities, if the trace has them
 
     @property
     def n(self) -> int:
@@ -95,7 +97,7 @@ class LayerPlan:
             return self
         n_each = np.where(big, self.sizes, 1)
         sizes = np.where(np.repeat(big, n_each), 1, np.repeat(self.sizes, n_each))
-        return LayerPlan(self.keys, sizes, np.repeat(self.counted, n_each), np.repeat(self.token, n_each))
+        return LayerPlan(self.keys, sizes, np.repeat(self.counted, n_each), np.repeat(self.token, n_each), self.layer, self.probs)
 
 
 def prefill_tokens(trace: Trace) -> int:
@@ -150,7 +152,11 @@ def _layer_plan(experts: np.ndarray, P: int, dt=np.int64) -> LayerPlan:
 def layer_plans(trace: Trace) -> list[LayerPlan]:
     P = prefill_tokens(trace)
     dt = _key_dtype(trace.experts)
-    return [_layer_plan(trace.experts[:, layer, :], P, dt) for layer in range(trace.n_layers)]
+    plans = [_layer_plan(trace.experts[:, layer, :], P, dt) for layer in range(trace.n_layers)]
+    for layer, plan in enumerate(plans):
+        plan.layer = layer
+        plan.probs = trace.probs[:, layer, :] if trace.probs is not None else None
+    return plans
 
 
 # ---------------------------------------------------------------------------- the generic path (source of truth)
@@ -161,14 +167,35 @@ def make_policy(cls: type[Policy], future: Sequence) -> Policy:
     return cls() if getattr(cls, "online", True) else cls(future)
 
 
+def routed_hook(policy: Policy, plan: LayerPlan) -> Callable[[int, int, int, int], None] | None:
+    """``hook(s, a, b, now)`` telling ``policy.routed`` about decode step s (accesses a..b-1), or None.
+
+    None when the policy does not override ``Policy.routed`` (nothing to tell).  As in the live
+    pool, only decode steps are signalled, before their accesses, with the token's router
+    probabilities for the plan's layer (None when the trace holds no ``probs``).
+    """
+    if type(policy).routed is Policy.routed:
+        return None
+    keys, counted, token, probs, layer = plan.keys, plan.counted, plan.token, plan.probs, plan.layer
+
+    def hook(s: int, a: int, b: int, now: int) -> None:
+        if counted[s]:
+            policy.routed(layer, keys[a:b].tolist(), probs[token[s]] if probs is not None else None, now)
+
+    return hook
+
+
 def generic_misses(plan: LayerPlan, policy_cls: type[Policy], capacity: int) -> np.ndarray:
     """Miss flag per access, from ``Residency`` and a policy object (the live pool's code path)."""
     keys = plan.keys.tolist()
     res = Residency(capacity, make_policy(policy_cls, keys))
+    hook = routed_hook(res.policy, plan)
     starts = plan.starts.tolist()
     miss = np.zeros(len(keys), bool)
     for s in range(len(starts) - 1):
         a, b = starts[s], starts[s + 1]
+        if hook is not None:
+            hook(s, a, b, res.now)
         pinned = frozenset(keys[a:b]) if b - a <= capacity else None
         for i in range(a, b):
             hit, _, _ = res.access(keys[i], pinned if pinned is not None else (keys[i],))
@@ -414,7 +441,8 @@ def shuffled_trace(trace: Trace, seed: int = 0) -> Trace:
     rng = np.random.default_rng(seed)
     perm = P + rng.permutation(trace.n_tokens - P)
     experts = np.concatenate([trace.experts[:P], trace.experts[perm]])
-    return Trace(experts, meta=dict(trace.meta))
+    probs = np.concatenate([trace.probs[:P], trace.probs[perm]]) if trace.probs is not None else None
+    return Trace(experts, meta=dict(trace.meta), probs=probs)
 
 
 def random_routing_trace(trace: Trace, n_experts: int, seed: int = 0) -> Trace:
@@ -515,6 +543,7 @@ def simulate_prefetch(
     for m, plan in enumerate(plans):
         keys = plan.keys.tolist()
         res = Residency(capacity, make_policy(policy_cls, keys))
+        hook = routed_hook(res.policy, plan)
         starts = plan.starts.tolist()
         counted = plan.counted.tolist()
         tokens = plan.token.tolist()
@@ -542,6 +571,8 @@ def simulate_prefetch(
                         if victim in fresh:
                             fresh.discard(victim)
                             pc.wasted += 1
+            if hook is not None:
+                hook(s, a, b, res.now)
             pinned = frozenset(keys[a:b]) if b - a <= capacity else None
             for i in range(a, b):
                 x = keys[i]
@@ -756,6 +787,7 @@ def residency_picture(trace: Trace, layer: int, policy: str, capacity: int, t0: 
     cls = policies.get(policy)
     keys = plan.keys.tolist()
     res = Residency(capacity, make_policy(cls, keys))
+    hook = routed_hook(res.policy, plan)
     starts = plan.starts.tolist()
     tokens = plan.token.tolist()
     counted = plan.counted.tolist()
@@ -766,6 +798,8 @@ def residency_picture(trace: Trace, layer: int, policy: str, capacity: int, t0: 
         if t >= t1:
             break
         a, b = starts[s], starts[s + 1]
+        if hook is not None:
+            hook(s, a, b, res.now)
         pinned = frozenset(keys[a:b]) if b - a <= capacity else None
         codes = {}
         for i in range(a, b):

@@ -11,6 +11,13 @@ One run, same prompt, seed and cap for every configuration:
 The cap is about a third of the expert bytes (plus dense weights, KV cache and
 scratch).  The link speed is emulated (sleeping page-ins) and chosen from a
 calibration run so that LRU alone spends about half of its decode time stalled.
+
+With ``--evict lru,markov`` it compares eviction policies instead, live: a cap of
+``--slots-per-layer`` experts per layer, one session per run (one engine, every
+``--session-prompts`` prompt generated in turn, so the pool and the policy carry over
+as in a server), the link calibrated so that LRU stalls about half the time, each
+policy with prefetch off and on, runs interleaved over ``--repeats``; best and median
+decode tok/s per configuration, and the tokens checked against a resident session.
 """
 
 from __future__ import annotations
@@ -43,6 +50,96 @@ def decode(model, prompt, max_new, seed, repeats=1, **kw):
     return best
 
 
+SESSION_PROMPTS = [
+    "<doc>",
+    "<doc>Field notes — ",
+    "<doc>[radio, channel 4, cycle 19 day 132, 05:47]\n",
+    "<doc>== log TF-14",
+    "<doc>TICKET #",
+    "<doc>## Daily ledger",
+    "<doc>## Cart runs",
+    "<doc>## Weekly yield",
+]
+
+
+def session(model, prompts, max_new, seed, **kw):
+    """One engine, the prompts generated one after another (pool and policy carry over): decode tok/s and pool figures."""
+    with moerun.load(model, **kw) as eng:
+        steps = decode_ns = total_ns = 0
+        tokens = []
+        for i, prompt in enumerate(prompts):
+            gen = eng.generate(prompt, max_new=max_new, sampling=Sampling(temperature=0.8, seed=seed + i))
+            steps += gen.decode_steps
+            decode_ns += gen.decode_ns
+            total_ns += gen.decode_ns + gen.prefill_ns
+            tokens.append(gen.new_ids)
+        pool = eng.stats.get("pool", {})
+    return {"tok_s": steps / (decode_ns / 1e9), "decode_s": decode_ns / 1e9, "total_s": total_ns / 1e9, "steps": steps,
+            "tokens": tokens, "hit_rate": pool.get("hit_rate"), "misses": pool.get("misses", 0),
+            "stall_s": pool.get("stall_ns", 0) / 1e9}
+
+
+def compare_policies(a, model) -> int:
+    """Live decode speed of eviction policies at one cap and one emulated link (see the module docstring)."""
+    import statistics
+
+    names = [n.strip() for n in a.evict.split(",") if n.strip()]
+    if "lru" not in names:
+        names.insert(0, "lru")
+    prompts = SESSION_PROMPTS[: a.session_prompts]
+    with moerun.load(model, tokenizer=False) as eng:
+        st = eng.store
+        c = st.config
+        d, kv, s = fixed_bytes(c, st.dense_nbytes, st.codec.scratch_bytes())
+        per = slot_bytes(st.expert_nbytes)
+    n = a.slots_per_layer
+    slots = [n] * c.n_layers
+    cap = d + kv + s + n * c.n_layers * per
+    ref = session(model, prompts, a.max_new, a.seed)
+    if a.link_speed:
+        rate = parse_rate(a.link_speed)
+    else:  # LRU at real speed, then the rate at which its page-in time equals its compute time
+        cal = session(model, prompts, a.max_new, a.seed, mem_cap=cap, slots=slots)
+        rate = cal["misses"] * st.expert_nbytes / max(cal["total_s"] - cal["stall_s"], 1e-6)
+    configs = [(name, pf) for name in names for pf in (0, a.prefetch)]
+    runs: dict = {cfg: [] for cfg in configs}
+    for _ in range(a.repeats):  # interleaved, so every configuration sees the same background load
+        for name, pf in configs:
+            runs[(name, pf)].append(session(model, prompts, a.max_new, a.seed, mem_cap=cap, slots=slots, evict=name,
+                                            prefetch=pf, lookahead=a.lookahead, link_speed=rate))
+    rows = []
+    for (name, pf), rs in runs.items():
+        tok = [r["tok_s"] for r in rs]
+        rows.append({"policy": name, "prefetch": pf, "best_tok_s": max(tok), "median_tok_s": statistics.median(tok), "tok_s": tok,
+                     "hit_rate": rs[0]["hit_rate"], "misses": rs[0]["misses"],
+                     "stall_share": statistics.median(r["stall_s"] / r["total_s"] for r in rs),
+                     "same_tokens_as_resident": all(r["tokens"] == ref["tokens"] for r in rs)})
+    base = {r["prefetch"]: r for r in rows if r["policy"] == "lru"}
+    for r in rows:
+        b = base[r["prefetch"]]
+        r["best_vs_lru"] = r["best_tok_s"] / b["best_tok_s"]
+        r["median_vs_lru"] = r["median_tok_s"] / b["median_tok_s"]
+    doc = {"model": str(model), "blas_threads": 1, "prompts": prompts, "max_new": a.max_new, "seed": a.seed, "cap_bytes": cap,
+           "slots": slots, "expert_bytes": st.expert_nbytes, "link_speed_bytes_s": rate, "link_emulated": True,
+           "prefetch": a.prefetch, "lookahead": a.lookahead, "repeats": a.repeats, "resident_tok_s": ref["tok_s"],
+           "decode_steps_per_session": ref["steps"], "results": rows,
+           "note": "shared 2-vCPU machine: runs interleaved; best and median of the repeats"}
+    if a.json:
+        print(json.dumps(doc, indent=2))
+        return 0
+    print(f"model {model}; {n} slots per layer, cap {fmt_bytes(cap)}; link {rate / 1e9:.3f} GB/s (emulated, LRU stalls about half "
+          f"the time); {len(prompts)} prompts x {a.max_new} tokens per session ({ref['steps']} decode steps); "
+          f"{a.repeats} interleaved repeats; {_bench.BLAS_NOTE}")
+    print(f"resident (no cap, no link) {ref['tok_s']:.0f} tok/s")
+    print(f"{'policy':<10}{'prefetch':>9}{'best tok/s':>12}{'median tok/s':>14}{'vs lru (best/median)':>22}{'hit rate':>10}"
+          f"{'stall share':>13}{'tokens same':>13}")
+    for r in rows:
+        print(f"{r['policy']:<10}{r['prefetch']:>9}{r['best_tok_s']:>12.0f}{r['median_tok_s']:>14.0f}"
+              f"{r['best_vs_lru']:>12.2f}x/{r['median_vs_lru']:.2f}x{100 * r['hit_rate']:>9.1f}%{100 * r['stall_share']:>12.1f}%"
+              f"{str(r['same_tokens_as_resident']):>13}")
+    return 0
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--model", default=None, help="model directory (default: the bundled model)")
@@ -53,9 +150,14 @@ def main() -> int:
     ap.add_argument("--lookahead", type=int, default=1)
     ap.add_argument("--link-speed", default=None, help="fix the emulated link instead of calibrating it")
     ap.add_argument("--repeats", type=int, default=3, help="runs per configuration; the best is kept")
+    ap.add_argument("--evict", default=None, help="compare these eviction policies live instead, e.g. lru,markov")
+    ap.add_argument("--slots-per-layer", type=int, default=4, help="with --evict: expert slots per layer (default 4)")
+    ap.add_argument("--session-prompts", type=int, default=len(SESSION_PROMPTS), help="with --evict: prompts per session")
     ap.add_argument("--json", action="store_true")
     a = ap.parse_args()
     model = a.model or moerun.default_model_dir()
+    if a.evict:
+        return compare_policies(a, model)
     prompt = "" if a.prompt == "<doc>" else a.prompt
 
     with moerun.load(model, tokenizer=False) as eng:

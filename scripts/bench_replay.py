@@ -10,10 +10,12 @@ building the access schedule from the trace arrays, divided into the number of d
 - fast LRU, every quota 1..n_experts in one call (reported as accesses x quotas per second)
 - fast optimum (Belady's MIN with the pool's pinning), one quota
 - reference path (Residency + policy objects) for LRU, on a prefix of the trace
+- reference path for each policy in ``--evict`` (default ``markov``), on the same prefix, with its
+  cost in ns per access (router probabilities from the trace, when it has them, reach the policy)
 - baseline: one ``collections.OrderedDict`` per layer, plain LRU without pinning, over the same
   token rows (``move_to_end`` on a hit, ``popitem(last=False)`` when over the quota)
 
-Usage: python scripts/bench_replay.py [--trace FILE] [--min-accesses N] [--slots N] [--repeat N] [--json]
+Usage: python scripts/bench_replay.py [--trace FILE] [--min-accesses N] [--slots N] [--repeat N] [--evict P,P] [--json]
 """
 
 from __future__ import annotations
@@ -74,6 +76,7 @@ def main() -> int:
     ap.add_argument("--slots", type=int, default=4, help="quota per layer for the one-quota runs (default 4)")
     ap.add_argument("--repeat", type=int, default=3, help="best of N runs per figure (default 3)")
     ap.add_argument("--reference-accesses", type=int, default=200_000, help="prefix replayed by the reference path")
+    ap.add_argument("--evict", default="markov", help="policies also timed on the reference path, e.g. markov,lrfu (default markov)")
     ap.add_argument("--json", action="store_true")
     args = ap.parse_args()
 
@@ -91,7 +94,8 @@ def main() -> int:
     per_copy = int((base.experts >= 0).sum())
     copies = -(-args.min_accesses // per_copy)
     experts = np.concatenate([base.experts] * copies)
-    trace = Trace(experts, meta={"n_experts": base.n_experts, "prefill_tokens": 0})
+    probs = np.concatenate([base.probs] * copies) if base.probs is not None else None
+    trace = Trace(experts, meta={"n_experts": base.n_experts, "prefill_tokens": 0}, probs=probs)
     n = int((experts >= 0).sum())
     E = trace.n_experts
     C = args.slots
@@ -108,11 +112,21 @@ def main() -> int:
     t_opt, opt = best_of(lambda: replay.replay_counts(trace, "optimal", [C]), max(1, args.repeat - 1))
 
     tokens_ref = max(1, args.reference_accesses * trace.n_tokens // n)
-    ref_trace = Trace(experts[:tokens_ref], meta=trace.meta)
+    ref_trace = Trace(experts[:tokens_ref], meta=trace.meta, probs=probs[:tokens_ref] if probs is not None else None)
     n_ref = int((ref_trace.experts >= 0).sum())
     t_ref, ref = best_of(lambda: replay.replay_counts(ref_trace, "lru", [C], fast=False), 1)
     fast_prefix = replay.replay_counts(ref_trace, "lru", [C])
     same_prefix = [c.misses for c in ref[C]] == [c.misses for c in fast_prefix[C]]
+
+    extra = [name for name in replay.parse_policies(args.evict) if name != "lru"]
+    t_pol = dict.fromkeys(extra, float("inf"))
+    for _ in range(max(1, args.repeat - 1)):  # interleaved with the lru reference path, same load on a shared machine
+        t, _ = best_of(lambda: replay.replay_counts(ref_trace, "lru", [C], fast=False), 1)
+        t_ref = min(t_ref, t)
+        for name in extra:
+            t, _ = best_of(lambda name=name: replay.replay_counts(ref_trace, name, [C], fast=False), 1)
+            t_pol[name] = min(t_pol[name], t)
+    ns_per_access = {"lru": 1e9 * t_ref / n_ref, **{name: 1e9 * t / n_ref for name, t in t_pol.items()}}
 
     lru_misses = sum(c.misses for c in lru[C])
     rows = {
@@ -120,6 +134,7 @@ def main() -> int:
         f"fast lru, quotas 1..{E} in one call": n * E / t_all,
         "fast optimum, one quota": n / t_opt,
         "reference path (Residency + LRU)": n_ref / t_ref,
+        **{f"reference path (Residency + {name})": n_ref / t for name, t in t_pol.items()},
         "OrderedDict lru (plain, no pinning)": n_base / t_base,
     }
     doc = {
@@ -134,6 +149,9 @@ def main() -> int:
         "accesses_per_s": rows,
         "seconds": {"fast_lru": t_lru, "fast_lru_all_quotas": t_all, "fast_optimal": t_opt, "reference_lru_prefix": t_ref, "ordered_dict_lru": t_base},
         "reference_prefix_accesses": n_ref,
+        "reference_ns_per_access": ns_per_access,
+        "policy_ns_per_access_over_lru": {name: v - ns_per_access["lru"] for name, v in ns_per_access.items() if name != "lru"},
+        "trace_has_probs": probs is not None,
         "speedup_fast_lru_over_ordered_dict": t_base / t_lru,
         "misses": {
             "fast_lru": lru_misses,
@@ -155,6 +173,9 @@ def main() -> int:
     for k, v in rows.items():
         print(f"  {k:<{w}}  {v / 1e6:8.2f} M accesses/s")
     print(f"fast lru is {t_base / t_lru:.1f}x the OrderedDict baseline")
+    for name, v in ns_per_access.items():
+        over = f" ({v - ns_per_access['lru']:+.0f} ns over lru)" if name != "lru" else ""
+        print(f"reference path with {name}: {v:.0f} ns per access{over}")
     print(
         f"misses at {C} slots: fast lru {lru_misses}, optimum {doc['misses']['fast_optimal']}, "
         f"OrderedDict lru without pinning {base_misses}; fast = reference on the {n_ref}-access prefix: {same_prefix}"
