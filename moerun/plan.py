@@ -124,6 +124,8 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
         for e in sorted({e for t in range(P) for e in ex[t][layer] if e >= 0}):
             res[layer].access(e, (e,))
     g = trace.guesses.tolist() if prefetch else None
+    probs = trace.probs
+    signals = [type(r.policy).routed is not policies.Policy.routed for r in res]
     ready_at: list[dict] = [{} for _ in range(L)]  # key -> time its read finishes
     link_free = 0.0
     queue: list = []  # pending guesses: (enqueued, layer, expert, target progress, protect)
@@ -175,6 +177,8 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
                             queue.append((now, tl, e, t * L + tl, protect))
                 serve(now, step - 1)
             chosen = sorted(e for e in ex[t][layer] if e >= 0)
+            if signals[layer]:  # the per-step signal the live pool gives a policy (Policy.routed)
+                res[layer].policy.routed(layer, chosen, probs[t, layer] if probs is not None else None, res[layer].now)
             if prefetch:
                 serve(now, step - 1)
             busy = {x for x, r in ready_at[layer].items() if r > now}
