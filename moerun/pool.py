@@ -227,7 +227,8 @@ class ExpertPool(ExpertSource):
         key = self.key(layer, expert)
         while True:
             try:
-                hit, slot, victim = r.access(key, pinned_keys, self._busy(layer))
+                busy = () if key in r else self._busy(layer)  # only a miss looks for a victim
+                hit, slot, victim = r.access(key, pinned_keys, busy)
                 break
             except NoVictim:
                 self.cond.wait(0.05)  # a prefetch is in flight in every free slot; it will finish
@@ -302,9 +303,6 @@ class ExpertPool(ExpertSource):
             return range(len(ids))
         return ready + [j for j in range(len(ids)) if j not in ready]
 
-    def begin_prefill_layer(self, layer: int, needed: list[int]) -> None:
-        self._prefill_layer = layer
-
     def weights(self, layer: int, expert: int):
         if self._prefill or expert not in self._layer_events:
             return self._prefill_weights(layer, expert)
@@ -362,7 +360,7 @@ class ExpertPool(ExpertSource):
             r = self.residency(layer)
             while True:
                 try:
-                    hit, slot, victim = r.access(key, self.pinned, self._busy(layer))
+                    hit, slot, victim = r.access(key, self.pinned, () if key in r else self._busy(layer))
                     break
                 except NoVictim:
                     self.cond.wait(0.05)

@@ -5,8 +5,9 @@ For each mechanism, every expert of the model is paged into one preallocated,
 page-aligned slot (warm: the file is in the OS page cache), and the process's
 resident-set growth (psutil) and copy bandwidth are measured side by side:
 
-  pread          os.preadv into the slot (the engine's default)
-  mmap+madvise   copy from a read-only map, then madvise(MADV_DONTNEED) on the copied range
+  pread          os.preadv into the slot (the engine's default: ModelStore.page_in)
+  mmap+madvise   the engine's mmap mechanism: copy from a read-only map, then release the
+                 copied range, widened to the kernel's fault-around window (ModelStore.page_in)
   mmap           copy from a read-only map and leave it (for contrast)
 """
 
@@ -15,7 +16,6 @@ from __future__ import annotations
 import argparse
 import json
 import mmap
-import os
 import time
 
 import _bench  # noqa: F401
@@ -24,34 +24,34 @@ import psutil
 
 import moerun
 from moerun.sources import aligned_block
-from moerun.store import ModelStore, pread_into
+from moerun.store import ModelStore
 
 
 def run(store: ModelStore, mechanism: str, rounds: int) -> dict:
+    """Page every expert into one slot ``rounds`` times; the first two mechanisms are the engine's own page_in."""
     proc = psutil.Process()
     slot, _raw = aligned_block(store.expert_nbytes)
-    fd = os.open(store.path, os.O_RDONLY)
-    m = mmap.mmap(fd, 0, prot=mmap.PROT_READ) if mechanism != "pread" else None
-    ranges = [r for row in store.ranges for r in row]
-    for r in ranges:  # warm the page cache
-        pread_into(fd, r.start, slot[: r.nbytes])
+    ranges = [(r.layer, r.expert, r.start, r.nbytes) for row in store.ranges for r in row]
+    plain = None
+    if mechanism == "mmap":  # for contrast only: copy from a map and never release it
+        plain = mmap.mmap(store._fd, 0, prot=mmap.PROT_READ)
+    else:
+        store.set_mechanism("pread" if mechanism == "pread" else "mmap")
+    for layer, e, _, _ in ranges:  # warm the page cache
+        store._read(store.ranges[layer][e].start, store.expert_nbytes)
     base = proc.memory_info().rss
     peak = base
     t0 = time.perf_counter()
     for _ in range(rounds):
-        for r in ranges:
-            if m is None:
-                pread_into(fd, r.start, slot[: r.nbytes])
+        for layer, e, start, nbytes in ranges:
+            if plain is None:
+                store.page_in(layer, e, slot)
             else:
-                np.copyto(slot[: r.nbytes], np.frombuffer(m, np.uint8, r.nbytes, r.start))
-                if mechanism == "mmap+madvise":
-                    lo = r.start - r.start % mmap.PAGESIZE
-                    m.madvise(mmap.MADV_DONTNEED, lo, r.start + r.nbytes - lo)
+                np.copyto(slot[:nbytes], np.frombuffer(plain, np.uint8, nbytes, start))
         peak = max(peak, proc.memory_info().rss)
     dt = time.perf_counter() - t0
-    if m is not None:
-        m.close()
-    os.close(fd)
+    if plain is not None:
+        plain.close()
     moved = rounds * len(ranges) * store.expert_nbytes
     return {"mechanism": mechanism, "rss_growth_bytes": peak - base, "gb_s": moved / dt / 1e9,
             "expert_bytes": store.expert_nbytes, "pageins": rounds * len(ranges)}

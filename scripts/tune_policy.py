@@ -46,6 +46,7 @@ from pathlib import Path
 
 import _bench  # noqa: F401  (one BLAS thread, repo on sys.path)
 import numpy as np
+from bench_offload import SESSION_PROMPTS
 
 from moerun import cli, replay
 from moerun.engine import default_model_dir
@@ -56,16 +57,7 @@ from moerun.trace import Trace, read_trace
 ROOT = Path(__file__).resolve().parent.parent
 CORPUS_TRAIN = ROOT / "data" / "corpus" / "train.txt"
 DOC = "<doc>"
-PROMPTS = [
-    "<doc>",
-    "<doc>Field notes — ",
-    "<doc>[radio, channel 4, cycle 19 day 132, 05:47]\n",
-    "<doc>== log TF-14",
-    "<doc>TICKET #",
-    "<doc>## Daily ledger",
-    "<doc>## Cart runs",
-    "<doc>## Weekly yield",
-]
+PROMPTS = SESSION_PROMPTS  # one opener per register, and an empty document
 # The grid the search walks (values per parameter); the class defaults are the starting point.
 GRID = {
     "order": [1, 2, 3, 4, 5, 6],
