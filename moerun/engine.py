@@ -1,7 +1,7 @@
 """The engine: a model with its store, pool, prefetcher and tokenizer; ``moerun.load``.
 
 ``load(model_dir, mem_cap=...)`` sizes the budget, allocates the pool once,
-starts the prefetch thread if asked, and returns an ``Engine`` whose
+starts the prefetch reader process if asked, and returns an ``Engine`` whose
 ``logits`` and ``generate`` run the numpy transformer with experts served by
 the pool.  ``engine.stats`` holds the run's measured figures.
 """
@@ -21,6 +21,7 @@ from .memwatch import MemWatch
 from .model import KVCache, Transformer, rmsnorm
 from .pool import ExpertPool
 from .prefetch import Prefetcher
+from .reader import Reader
 from .sampling import Sampler, Sampling
 from .sources import BareExperts, NoReuseExperts, WholeLayerExperts
 from .store import ModelStore
@@ -239,7 +240,8 @@ class Engine:
         if self.pool is not None:
             out["pool"] = self.pool.stats.to_json()
         if self.prefetcher is not None:
-            out["prefetch_thread_alive"] = self.prefetcher.alive
+            out["reader_alive"] = self.prefetcher.alive
+            out["reader_rss_bytes"] = self.prefetcher.reader.rss_bytes()
         return out
 
     def close(self) -> None:
@@ -298,6 +300,7 @@ def load(
     rate = parse_rate(link_speed, "link speed") if link_speed is not None else None
     watch = MemWatch()
     store = ModelStore.open(model_dir if model_dir is not None else default_model_dir())
+    reader = None
     try:
         c = store.config
         tok = Tokenizer.load(store.model_dir, c.vocab_size, c.bos_token_id) if tokenizer else None
@@ -316,12 +319,15 @@ def load(
                 raise BadOption(f"unknown baseline {baseline!r}; known: {', '.join(kinds)}")
             experts = kinds[baseline](store)
         else:
-            experts = ExpertPool(store, budget, evict)
+            if prefetch > 0:  # every page-in of the run then goes through the reader process
+                reader = Reader(store, budget.n_slots, budget.slot)
+            experts = ExpertPool(store, budget, evict, block=reader.block if reader is not None else None)
             if cap is None:
                 experts.preload_all()
                 experts.stats.bytes_in = 0
-            if prefetch > 0:
-                prefetcher = Prefetcher(experts, None, prefetch, lookahead)
+            if reader is not None:
+                experts.reader = reader
+                prefetcher = Prefetcher(experts, None, prefetch, lookahead, reader)
                 experts.prefetcher = prefetcher
         options = {
             "mem_cap": cap,
@@ -337,5 +343,7 @@ def load(
         }
         return Engine(store, tok, budget, experts, prefetcher, watch, options)
     except BaseException:
+        if reader is not None:
+            reader.close()
         store.close()
         raise

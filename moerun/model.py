@@ -190,10 +190,11 @@ class Transformer:
         w = self.layers[layer]
         experts.begin_layer(layer)
         h = x + self.attention(rmsnorm(x, w.attn_norm, self.eps), layer, start, cache)
-        experts.after_attention(layer, h)
         u = rmsnorm(h, w.moe_norm, self.eps)
         chosen, weights, probs = route(u, w.router, self.config.top_k)
         experts.routed(layer, chosen, weights, probs)
+        # the prefetch point on the state after attention, once this layer's own misses are asked for
+        experts.after_attention(layer, h)
         out = h + moe(u, layer, chosen, weights, experts)
         experts.end_layer(layer)
         experts.after_layer(layer, out)

@@ -8,24 +8,25 @@ expert's float32 matrices once its bytes are in a slot (waiting for an
 in-flight prefetch, or reading synchronously), and ``done`` unpins it.
 
 Slots are one preallocated, page-aligned block, written only by page-in.
-Shared state is guarded by one condition variable; reads happen outside it.
+Everything here runs on the compute thread.  With prefetch on, reads are
+handed to the reader process (``moerun.reader``): the slot stays LOADING,
+and so cannot be evicted or reused, until the reader publishes its result.
 """
 
 from __future__ import annotations
 
-import threading
 import time
 from dataclasses import dataclass, field
 
 import numpy as np
 
-from . import policies
+from . import policies, reader_child
 from .budget import Budget
 from .residency import NoVictim, Residency
 from .sources import ExpertSource
-from .store import ModelStore
+from .store import ModelStore, wait_until
 
-EMPTY, LOADING, READY, QUEUED = 0, 1, 2, 3  # QUEUED: a demand read handed to the loader thread
+EMPTY, LOADING, READY = 0, 1, 2  # LOADING: a background read is outstanding in the reader process
 HIT, PREFETCHED, MISS = 0, 1, 2
 KIND_NAMES = {HIT: "hit", PREFETCHED: "prefetched", MISS: "miss"}
 
@@ -96,9 +97,11 @@ class ExpertPool(ExpertSource):
     """Slots, residency per layer (or shared), and the expert-source interface for the model.
 
     The prefetch-point hooks (``after_attention``, ``after_layer``) come from ``ExpertSource``.
+    Everything here runs on the compute thread; with prefetch on, background reads
+    go to the reader process (``moerun.reader``) and come back through shared memory.
     """
 
-    def __init__(self, store: ModelStore, budget: Budget, evict: str = "lru"):
+    def __init__(self, store: ModelStore, budget: Budget, evict: str = "lru", block: np.ndarray | None = None):
         self.store = store
         self.budget = budget
         self.config = store.config
@@ -106,22 +109,24 @@ class ExpertPool(ExpertSource):
         self.shared = budget.split == "shared"
         n_slots = budget.n_slots
         self.slot_size = budget.slot
-        raw = np.empty(n_slots * self.slot_size + 4096, np.uint8)
-        off = (-raw.ctypes.data) % 4096
-        self.block = raw[off : off + n_slots * self.slot_size]
+        if block is None:
+            raw = np.empty(n_slots * self.slot_size + 4096, np.uint8)
+            off = (-raw.ctypes.data) % 4096
+            block = raw[off : off + n_slots * self.slot_size]
+            self._raw = raw
+        self.block = block
         self.block.fill(0)  # allocated once and touched now, so the cap is real from the start
-        self._raw = raw
         self.slots = [self.block[i * self.slot_size : (i + 1) * self.slot_size] for i in range(n_slots)]
         self.bound = [store.codec.bind(s) for s in self.slots]
         self.state = [EMPTY] * n_slots
         self.key_of: list = [None] * n_slots
         self.prefetched = [False] * n_slots  # loaded by a guess and not used yet
+        self.by_guess = [False] * n_slots  # the slot's current background read was asked for by a guess
         self.load_ns = [0] * n_slots
-        # when a background read's bytes are in the slot and its (emulated) transfer is done;
-        # 0 while unknown.  Lets a layer use a slot without waiting for the loader to wake up.
+        # when a background read's (emulated) transfer is done; a layer may use the slot from then on
         self.usable_at = [0] * n_slots
         self.load_t0 = [0] * n_slots  # when the slot's current read started
-        self.gen = [0] * n_slots  # bumped by every new read, so a late loader never touches a reused slot
+        self.gen = [0] * n_slots  # bumped by every new read, so a result for an earlier read is never taken
         policy_cls = policies.get(evict)
         if not getattr(policy_cls, "online", True):
             from .errors import BadOption
@@ -136,13 +141,13 @@ class ExpertPool(ExpertSource):
             for n in budget.slots:
                 self.res.append(Residency(n, policy_cls(), list(range(start, start + n))))
                 start += n
-        self.cond = threading.Condition()
         self.pinned: set = set()
         self.stats = PoolStats(L)
         self.step = -1  # decode step (token index), -1 in prefill
         self.progress = -1  # step * n_layers + layer of the layer being computed
         self.recorder = None
         self.prefetcher = None
+        self.reader = None  # set by the engine with prefetch on: every page-in then goes through it
         self._prefill = False
         self._layer_events: dict = {}
         self.guess_hook = None  # set by the engine: callable(layer, h) at the prefetch point
@@ -156,11 +161,21 @@ class ExpertPool(ExpertSource):
         return self.res[0] if self.shared else self.res[layer]
 
     def _busy(self, layer: int) -> set:
-        return {self.key(*self.key_of[s]) for s in self._slot_range(layer) if self.state[s] == LOADING}
+        """Keys of this layer's slots (or the shared pool's) with a background read outstanding."""
+        busy = set()
+        for s in self._slot_range(layer):
+            if self.state[s] == LOADING:
+                self._settle(s)
+                if self.state[s] == LOADING:
+                    busy.add(self.key(*self.key_of[s]))
+        return busy
 
     def _slot_range(self, layer: int):
         r = self.residency(layer)
         return list(r.slot_of.values())
+
+    def _reading(self) -> bool:
+        return self.reader is not None and self.reader.alive
 
     # ------------------------------------------------------------------ loading
     def preload_all(self) -> None:
@@ -184,37 +199,67 @@ class ExpertPool(ExpertSource):
                 {e: [HIT, self.residency(layer).slot_of[self.key(layer, e)], 0, 0] for e in range(E)} for layer in range(L)
             ]
 
-    def _load_into(self, slot: int, layer: int, expert: int, background: bool = False) -> int:
-        if background:  # publish READY as soon as the bytes are in, before the loader wakes up again
-            ns = self.store.page_in(layer, expert, self.slots[slot], self._publisher(slot, self.gen[slot]))
-        else:
-            ns = self.store.page_in(layer, expert, self.slots[slot])
+    def _load_into(self, slot: int, layer: int, expert: int) -> int:
+        ns = self.store.page_in(layer, expert, self.slots[slot])
         self.stats.bytes_in += self.store.expert_nbytes
         return ns
 
-    def _publisher(self, slot: int, gen: int):
-        """on_data callback of a background read: the slot is READY, usable from ``done_ns``."""
-
-        def on_data(done_ns: int) -> None:
-            with self.cond:
-                if self.gen[slot] == gen and self.state[slot] == LOADING:
-                    self.usable_at[slot] = done_ns
-                    self.state[slot] = READY
-                    self.cond.notify_all()
-
-        return on_data
-
     def _claim(self, slot: int) -> int:
-        """Mark a slot LOADING for a new read (caller holds the lock); returns its new generation."""
+        """Mark a slot LOADING for a new read; returns its new generation."""
         self.gen[slot] += 1
         self.state[slot] = LOADING
         self.usable_at[slot] = 0
         self.load_t0[slot] = time.monotonic_ns()
         return self.gen[slot]
 
+    def _submit(self, slot: int, layer: int, expert: int, demand: bool, target: int) -> bool:
+        """Hand a read to the reader process; False (slot left as it was) if the fault hook refused it."""
+        hook = self.store.fault_hook
+        if hook is not None:
+            try:
+                hook(layer, expert)  # runs before every expert read, as in ModelStore.page_in
+            except Exception:
+                return False
+        gen = self._claim(slot)
+        self.by_guess[slot] = not demand
+        self.reader.submit(slot, gen, layer, expert, demand, target)
+        return True
+
+    def _settle(self, slot: int, wait: bool = False) -> None:
+        """Take in the result of a LOADING slot's background read, if it is there (or once it is, with ``wait``)."""
+        if self.state[slot] != LOADING or self.reader is None:
+            return
+        got = self.reader.wait(slot, self.gen[slot]) if wait else self.reader.poll(slot, self.gen[slot])
+        if got is None:
+            if self.reader.alive:
+                return
+            got = (reader_child.FAILED, 0, 0, 0)  # the reader died with this read outstanding
+        result, usable_at, start, ns = got
+        layer, expert = self.key_of[slot]
+        st = self.stats
+        if result == reader_child.OK:
+            self.state[slot] = READY
+            self.usable_at[slot] = usable_at
+            self.load_t0[slot] = start
+            self.load_ns[slot] = ns
+            st.bytes_in += self.store.expert_nbytes
+            if self.by_guess[slot]:
+                st.prefetch_ns += ns
+            else:
+                st.pagein_ns[layer] += ns
+                st.demand_loads += 1
+            return
+        if result == reader_child.FAILED and self.by_guess[slot]:
+            st.prefetch_failed += 1
+        if self.prefetched[slot]:  # a guess no layer has claimed: forget it
+            self.prefetched[slot] = False
+            self.residency(layer).remove(self.key(layer, expert))
+            self.key_of[slot] = None
+        self.state[slot] = EMPTY  # a layer that claimed it reads it itself
+
     def _evicted(self, slot: int) -> None:
-        """Bookkeeping when a READY slot's key is evicted (caller holds the lock)."""
-        self.gen[slot] += 1  # a loader still finishing its (emulated) transfer must not touch the slot now
+        """Bookkeeping when a READY slot's key is evicted."""
+        self.gen[slot] += 1
         if self.prefetched[slot]:
             self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
             self.prefetched[slot] = False
@@ -222,7 +267,7 @@ class ExpertPool(ExpertSource):
         self.key_of[slot] = None
 
     def _access(self, layer: int, expert: int, pinned_keys) -> tuple[int, int]:
-        """Residency bookkeeping for one access; returns (kind, slot). Caller holds the lock."""
+        """Residency bookkeeping for one access; returns (kind, slot)."""
         r = self.residency(layer)
         key = self.key(layer, expert)
         while True:
@@ -230,20 +275,24 @@ class ExpertPool(ExpertSource):
                 busy = () if key in r else self._busy(layer)  # only a miss looks for a victim
                 hit, slot, victim = r.access(key, pinned_keys, busy)
                 break
-            except NoVictim:
-                self.cond.wait(0.05)  # a prefetch is in flight in every free slot; it will finish
+            except NoVictim:  # a background read is outstanding in every free slot; one will finish
+                time.sleep(0)
         if hit:
             kind = PREFETCHED if self.prefetched[slot] else HIT
             if kind == PREFETCHED:
                 self.prefetched[slot] = False
                 self.stats.prefetch_used += 1
-                if self.state[slot] == READY and self.usable_at[slot] <= time.monotonic_ns():  # read entirely behind compute
+                if self.state[slot] == LOADING:
+                    self._settle(slot)
+                if self.state[slot] == LOADING:
+                    self.reader.promote(slot, self.gen[slot])
+                elif self.state[slot] == READY and self.usable_at[slot] <= time.monotonic_ns():  # read entirely behind compute
                     self.stats.hidden_ns += max(0, self.usable_at[slot] - self.load_t0[slot])
         else:
             if victim is not None:
                 self._evicted(slot)
             self.key_of[slot] = (layer, expert)
-            self.state[slot] = EMPTY  # to be read synchronously by weights()
+            self.state[slot] = EMPTY  # to be read by weights() (or by the reader, handed over below)
             kind = MISS
         return kind, slot
 
@@ -267,29 +316,29 @@ class ExpertPool(ExpertSource):
         ids = chosen[0].tolist()
         keys = [self.key(layer, e) for e in ids]
         st = self.stats
-        with self.cond:
-            self.progress = self.step * self.config.n_layers + layer
-            self.pinned = set(keys)
-            r = self.residency(layer)
-            r.policy.routed(layer, ids, probs[0], r.now)  # optional per-step signal (Policy.routed); a no-op by default
-            events = {}
+        self.progress = self.step * self.config.n_layers + layer
+        reading = self._reading()
+        if reading:
+            self.reader.set_progress(self.progress)  # guesses for this layer not used now are stale
+        self.pinned = set(keys)
+        r = self.residency(layer)
+        r.policy.routed(layer, ids, probs[0], r.now)  # optional per-step signal (Policy.routed); a no-op by default
+        events = {}
+        for e in ids:
+            kind, slot = self._access(layer, e, self.pinned)
+            events[e] = [kind, slot, 0, 0]  # kind, slot, pagein ns, stall ns
+            st.accesses[layer] += 1
+            if kind == MISS:
+                st.misses[layer] += 1
+            elif kind == PREFETCHED:
+                st.prefetch_hits[layer] += 1
+            else:
+                st.hits[layer] += 1
+        if reading:  # the reader fetches the misses while the layer computes the experts it has
             for e in ids:
-                kind, slot = self._access(layer, e, self.pinned)
-                events[e] = [kind, slot, 0, 0]  # kind, slot, pagein ns, stall ns
-                st.accesses[layer] += 1
+                kind, slot = events[e][0], events[e][1]
                 if kind == MISS:
-                    st.misses[layer] += 1
-                elif kind == PREFETCHED:
-                    st.prefetch_hits[layer] += 1
-                else:
-                    st.hits[layer] += 1
-            pf = self.prefetcher
-            if pf is not None and pf.alive:
-                misses = [(e, ev[1]) for e, ev in events.items() if ev[0] == MISS]
-                for _, slot in misses:
-                    self.state[slot] = QUEUED
-                if misses:
-                    pf.demand(layer, misses)
+                    self._submit(slot, layer, e, True, self.progress)
         self._layer_events = events
 
     def compute_order(self, layer: int, ids: list[int]) -> list[int]:
@@ -298,7 +347,13 @@ class ExpertPool(ExpertSource):
             return range(len(ids))
         ev = self._layer_events
         now = time.monotonic_ns()
-        ready = [j for j, e in enumerate(ids) if self.state[ev[e][1]] == READY and self.usable_at[ev[e][1]] <= now]
+        ready = []
+        for j, e in enumerate(ids):
+            s = ev[e][1]
+            if self.state[s] == LOADING:
+                self._settle(s)
+            if self.state[s] == READY and self.usable_at[s] <= now:
+                ready.append(j)
         if len(ready) == len(ids):
             return range(len(ids))
         return ready + [j for j in range(len(ids)) if j not in ready]
@@ -311,20 +366,13 @@ class ExpertPool(ExpertSource):
         if self.state[slot] == READY and self.usable_at[slot] <= time.monotonic_ns():
             return self.store.codec.weights(self.bound[slot])
         t0 = time.monotonic_ns()
-        with self.cond:
-            while self.state[slot] == LOADING:
-                self.cond.wait()
-            state = self.state[slot]
-            if state in (EMPTY, QUEUED):  # not started by the loader thread: read it here
-                self._claim(slot)
-        if state in (EMPTY, QUEUED):
-            ev[2] = self._demand_load(slot, layer, expert)
+        self._settle(slot, wait=True)
+        if self.state[slot] == EMPTY:  # never handed over, or the background read failed: read it here
+            ev[2] = self._demand_read(slot, layer, expert)
         else:  # READY: a background read whose (emulated) transfer may still be running
-            wait = self.usable_at[slot] - time.monotonic_ns()
-            if wait > 0:
-                time.sleep(wait / 1e9)
+            wait_until(self.usable_at[slot])
             done = max(self.usable_at[slot], self.load_t0[slot])
-            if ev[0] == MISS:  # the loader read it while this layer computed other experts
+            if ev[0] == MISS:  # the reader read it while this layer computed other experts
                 ev[2] = done - self.load_t0[slot]
             else:  # a guess: the part of its read not waited for was hidden behind compute
                 self.stats.hidden_ns += max(0, done - self.load_t0[slot] - (time.monotonic_ns() - t0))
@@ -333,20 +381,26 @@ class ExpertPool(ExpertSource):
         self.stats.stall_ns[layer] += stall
         return self.store.codec.weights(self.bound[slot])
 
+    def _demand_read(self, slot: int, layer: int, expert: int) -> int:
+        """Read an EMPTY claimed slot now: through the reader when it runs (one link for all reads), else here."""
+        if self._reading() and self._submit(slot, layer, expert, True, self.progress):
+            self._settle(slot, wait=True)
+            if self.state[slot] == READY:
+                wait_until(self.usable_at[slot])
+                return self.load_ns[slot]
+        return self._demand_load(slot, layer, expert)  # the reader failed or is gone: read it on this thread
+
     def _demand_load(self, slot: int, layer: int, expert: int) -> int:
+        self._claim(slot)
         try:
             ns = self._load_into(slot, layer, expert)
         except BaseException:
-            with self.cond:
-                self.residency(layer).remove(self.key(layer, expert))
-                self.state[slot] = EMPTY
-                self.key_of[slot] = None
-                self.cond.notify_all()
+            self.residency(layer).remove(self.key(layer, expert))
+            self.state[slot] = EMPTY
+            self.key_of[slot] = None
             raise
-        with self.cond:
-            self.state[slot] = READY
-            self.load_ns[slot] = ns
-            self.cond.notify_all()
+        self.state[slot] = READY
+        self.load_ns[slot] = ns
         self.stats.pagein_ns[layer] += ns
         self.stats.demand_loads += 1
         return ns
@@ -354,38 +408,35 @@ class ExpertPool(ExpertSource):
     def _prefill_weights(self, layer: int, expert: int):
         """Prefill: each needed expert is accessed (and paged in) once per layer, pinned alone."""
         key = self.key(layer, expert)
-        with self.cond:
-            self.progress = max(self.progress, -1)
-            self.pinned = {key}
-            r = self.residency(layer)
-            while True:
-                try:
-                    hit, slot, victim = r.access(key, self.pinned, () if key in r else self._busy(layer))
-                    break
-                except NoVictim:
-                    self.cond.wait(0.05)
-            if hit:
-                self.prefetched[slot] = False
-                while self.state[slot] == LOADING:
-                    self.cond.wait()
-                need = self.state[slot] != READY
-            else:
-                if victim is not None:
-                    self._evicted(slot)
-                self.key_of[slot] = (layer, expert)
-                need = True
-            if need:
-                self._claim(slot)
-        wait = self.usable_at[slot] - time.monotonic_ns() if not need else 0
-        if wait > 0:  # a background read whose emulated transfer is still running
-            time.sleep(wait / 1e9)
+        self.progress = max(self.progress, -1)
+        self.pinned = {key}
+        r = self.residency(layer)
+        while True:
+            try:
+                hit, slot, victim = r.access(key, self.pinned, () if key in r else self._busy(layer))
+                break
+            except NoVictim:
+                time.sleep(0)
+        t0 = time.monotonic_ns()
+        if hit:
+            self.prefetched[slot] = False
+            if self.state[slot] == LOADING:
+                self.reader.promote(slot, self.gen[slot])
+            self._settle(slot, wait=True)
+            need = self.state[slot] != READY
+        else:
+            if victim is not None:
+                self._evicted(slot)
+            self.key_of[slot] = (layer, expert)
+            self.state[slot] = EMPTY
+            need = True
         if need:
-            t0 = time.monotonic_ns()
-            ns = self._demand_load(slot, layer, expert)
+            self._demand_read(slot, layer, expert)
             self.stats.prefill_loads += 1
             self.stats.demand_loads -= 1
-            self.stats.stall_ns[layer] += time.monotonic_ns() - t0
-            _ = ns
+        else:
+            wait_until(self.usable_at[slot])  # a background read whose emulated transfer is still running
+        self.stats.stall_ns[layer] += time.monotonic_ns() - t0
         return self.store.codec.weights(self.bound[slot])
 
     def done(self, layer: int, expert: int) -> None:
@@ -402,77 +453,36 @@ class ExpertPool(ExpertSource):
             self.recorder.events(self.step, layer, self._layer_events, compute)
         self.pinned = set()
 
-    # ------------------------------------------------------------------ loader thread side
-    def serve_demand(self, layer: int, expert: int, slot: int) -> None:
-        """Called on the loader thread: read a queued demand miss unless the layer already took it."""
-        with self.cond:
-            if self.state[slot] != QUEUED or self.key_of[slot] != (layer, expert):
-                return
-            gen = self._claim(slot)
-        ok = False
-        ns = 0
-        try:
-            ns = self._load_into(slot, layer, expert, background=True)
-            ok = True
-        except Exception:
-            pass  # the layer will read it itself
-        finally:  # whatever happened, never leave the slot LOADING: a layer may be waiting on it
-            with self.cond:
-                if self.gen[slot] == gen:
-                    self.state[slot] = READY if ok else EMPTY
-                    if ok:
-                        self.load_ns[slot] = ns
-                self.cond.notify_all()
-        if ok:
-            self.stats.pagein_ns[layer] += ns
-            self.stats.demand_loads += 1
-
-    # ------------------------------------------------------------------ prefetch side
+    # ------------------------------------------------------------------ prefetch
     def prefetch(self, layer: int, expert: int, target: int, hook=None, protect=frozenset()) -> None:
-        """Called on the prefetch thread: load a guess unless stale, resident or unplaceable.
+        """Start a guess's background read unless it is resident or unplaceable (compute thread).
 
         It never evicts an expert pinned by the layer being computed (shared
         pool), a slot being read, or another guess of the same round (``protect``).
         """
         key = self.key(layer, expert)
         r = self.residency(layer)
-        with self.cond:
-            if target <= self.progress or key in r:
-                return
-            keep = (protect | self.pinned) if self.shared else protect
-            try:
-                slot, victim = r.insert(key, keep, self._busy(layer))
-            except NoVictim:
-                return
-            if victim is not None:
-                self._evicted(slot)
-            self.key_of[slot] = (layer, expert)
-            gen = self._claim(slot)
-            self.prefetched[slot] = True
-            self.stats.prefetch_loads += 1
-        ok = False
-        ns = 0
+        if key in r or not self._reading():
+            return
+        keep = (protect | self.pinned) if self.shared else protect
         try:
-            if hook is not None:
+            slot, victim = r.insert(key, keep, self._busy(layer))
+        except NoVictim:
+            return
+        if victim is not None:
+            self._evicted(slot)
+        self.key_of[slot] = (layer, expert)
+        self.prefetched[slot] = True
+        self.stats.prefetch_loads += 1
+        ok = True
+        if hook is not None:
+            try:
                 hook(layer, expert)
-            ns = self._load_into(slot, layer, expert, background=True)
-            ok = True
-        except Exception:
-            self.stats.prefetch_failed += 1
-        finally:
-            with self.cond:
-                if ok:
-                    self.stats.prefetch_ns += ns
-                if self.gen[slot] != gen:
-                    pass  # published READY, then evicted and reused: nothing of ours is left in it
-                elif ok:
-                    self.state[slot] = READY
-                    self.load_ns[slot] = ns
-                elif self.prefetched[slot]:  # unclaimed: forget the guess
-                    self.prefetched[slot] = False
-                    r.remove(key)
-                    self.state[slot] = EMPTY
-                    self.key_of[slot] = None
-                else:  # a layer already claimed it: leave it EMPTY, weights() reads it on demand
-                    self.state[slot] = EMPTY
-                self.cond.notify_all()
+            except Exception:
+                ok = False
+        if not ok or not self._submit(slot, layer, expert, False, target):
+            self.stats.prefetch_failed += 1  # forget the guess; its layer reads the expert if it needs it
+            self.prefetched[slot] = False
+            r.remove(key)
+            self.key_of[slot] = None
+            self.state[slot] = EMPTY

@@ -61,6 +61,24 @@ def _fine_timer() -> None:
         pass
 
 
+SPIN_NS = 200_000  # the last part of an emulated wait is spun: a sleep here wakes 50-100 us late
+
+
+def wait_until(deadline_ns: int) -> None:
+    """Wait until monotonic time ``deadline_ns``: sleep for all but the last ``SPIN_NS``, then spin.
+
+    Emulated transfers end at a computed time; a plain sleep on this kind of
+    VM overshoots by tens of microseconds even with 1 ns timer slack, which
+    would add a wake-up delay to every emulated read that no link has.
+    """
+    left = deadline_ns - time.monotonic_ns()
+    if left > SPIN_NS:
+        _fine_timer()
+        time.sleep((left - SPIN_NS) / 1e9)
+    while time.monotonic_ns() < deadline_ns:
+        pass
+
+
 def pread_into(fd: int, offset: int, dst) -> None:
     """Read exactly len(dst) bytes at ``offset`` into the writable buffer ``dst`` (os.preadv; releases the GIL).
 
@@ -216,16 +234,13 @@ class ModelStore:
             self._map = mmap.mmap(self._fd, 0, prot=mmap.PROT_READ)
         self.mechanism = mechanism
 
-    def page_in(self, layer: int, expert: int, dst: np.ndarray, on_data=None) -> int:
+    def page_in(self, layer: int, expert: int, dst: np.ndarray) -> int:
         """Copy one expert's bytes into ``dst`` (uint8, at least expert_nbytes); return real ns.
 
         With an emulated link (``link_rate`` bytes/s) the transfer takes nbytes /
-        link_rate on a single channel shared by all threads: concurrent page-ins
-        queue behind each other.  The wait is a sleep, so the GIL is free.
-        ``on_data(done_ns)``, if given, is called once the bytes are in ``dst``
-        with the monotonic time at which the (emulated) transfer completes, so
-        another thread may use them from then on without waiting for this one
-        to wake up.
+        link_rate from the start of the read, on one channel: page-ins queue
+        behind each other (``wait_until``).  With prefetch on, the reader process
+        (``moerun/reader_child.py``) emulates the same channel for every read.
         """
         r = self.ranges[layer][expert]
         t0 = time.monotonic_ns()
@@ -257,19 +272,12 @@ class ModelStore:
         except OSError as e:
             raise PageInError(f"{self.path}: reading expert {expert} of layer {layer} failed ({e.strerror or e})") from None
         if self.link_rate:
-            _fine_timer()
             # One emulated link shared by every reader: transfers queue behind each other.
             with self._lock:
                 start = max(t0, self._link_free_ns)
                 end = start + int(r.nbytes / self.link_rate * 1e9)
                 self._link_free_ns = end
-            if on_data is not None:
-                on_data(end)
-            wait = end - time.monotonic_ns()
-            if wait > 0:
-                time.sleep(wait / 1e9)
-        elif on_data is not None:
-            on_data(time.monotonic_ns())
+            wait_until(end)
         return time.monotonic_ns() - t0
 
     def drop_cache(self) -> bool:

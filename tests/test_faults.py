@@ -2,10 +2,11 @@
 
 Faults are injected through the documented test hooks (docs/hardening.md):
 
-- ``store.fault_hook(layer, expert)``: runs before every expert read, on whichever thread reads
-  (the compute thread's demand reads and the prefetch thread's guesses alike);
-- ``prefetcher.hook(layer, expert)``: runs before each prefetch read, on the prefetch thread;
-- ``prefetcher.loop_hook()``: runs at each turn of the prefetch loop; raising there kills the thread.
+- ``store.fault_hook(layer, expert)``: runs before every expert read, on the compute thread (for a read
+  handed to the reader process, when it is handed over; raising there fails that hand-over);
+- ``prefetcher.hook(layer, expert)``: runs before each guess is handed to the reader; raising fails the guess;
+- ``prefetcher.reader.set_faults(...)``: random delays before the reader's reads, reported failures of
+  every n-th read, or the reader process exiting abruptly with a read outstanding.
 
 A run with a fault ends in one of two ways (DESIGN invariants 1 and 4): a correct finish whose tokens
 and logits are bit-identical to the fully resident engine's, or one clear error (``PageInError``, exit 2
@@ -33,6 +34,7 @@ import threading
 import time
 
 import numpy as np
+import psutil
 import pytest
 from conftest import ROOT, copy_model, edit_config
 
@@ -77,12 +79,16 @@ def _within(seconds: float, fn, *args, dump: bool = True, **kw):
     return box.get("value")
 
 
-def _prefetch_threads() -> list[threading.Thread]:
-    return [t for t in threading.enumerate() if t.name == "moerun-prefetch" and t.is_alive()]
-
-
-def _on_prefetch_thread() -> bool:
-    return threading.current_thread().name == "moerun-prefetch"
+def _reader_processes() -> list:
+    """Reader processes (moerun/reader_child.py) this test process has running."""
+    out = []
+    for p in psutil.Process().children():
+        try:
+            if any(a.endswith("reader_child.py") for a in p.cmdline()) and p.status() != psutil.STATUS_ZOMBIE:
+                out.append(p)
+        except psutil.Error:
+            pass
+    return out
 
 
 def _min_cap(model_dir, split="even") -> int:
@@ -140,63 +146,44 @@ def _prefetch_hook_raising(exc):
     return setup
 
 
-def _store_hook_failing_on_the_prefetch_thread(eng):
-    def hook(layer, expert):
-        if _on_prefetch_thread():
-            raise OSError(errno.EIO, "injected I/O error")
-
-    eng.store.fault_hook = hook
+def _reader_fails_every_read(eng):
+    # guesses and demand reads alike report a failure: the layers read every expert themselves
+    eng.prefetcher.reader.set_faults(fail_every=1, demand_too=True)
 
 
-def _prefetch_reads_slow_then_failing(eng):
+def _reader_slow_then_failing(eng):
     # the compute thread may be waiting for exactly this expert; it must take over the read, not wait forever
-    def hook(layer, expert):
-        time.sleep(0.003)
-        raise OSError(errno.EIO, "injected I/O error after a slow start")
-
-    eng.prefetcher.hook = hook
+    eng.prefetcher.reader.set_faults(jitter_us=3000, seed=1, fail_every=1, demand_too=True)
 
 
-def _loop_killed_mid_run(exc_type):
+def _reader_dies_after(n):
     def setup(eng):
-        turns = [0]
-
-        def loop_hook():
-            turns[0] += 1
-            if turns[0] == 5:
-                raise exc_type("injected: the prefetch loop dies")
-
-        eng.prefetcher.loop_hook = loop_hook
+        eng.prefetcher.reader.set_faults(die_after=n)
 
     return setup
 
 
 def _slow_page_in(eng):
-    def hook(layer, expert):  # every read, on both threads, takes 1 ms longer
+    def hook(layer, expert):  # every read (or hand-over to the reader) takes 1 ms longer
         time.sleep(0.001)
 
     eng.store.fault_hook = hook
 
 
-def _random_prefetch_delays(eng):
-    rng = np.random.default_rng(7)
-
-    def hook(layer, expert):
-        time.sleep(float(rng.uniform(0, 0.002)))
-
-    eng.prefetcher.hook = hook
+def _random_reader_delays(eng):
+    eng.prefetcher.reader.set_faults(jitter_us=2000, seed=7)
 
 
 HARMLESS_FAULTS = {
     "every prefetch read raises OSError": _prefetch_hook_raising(OSError(errno.EIO, "injected")),
     "every prefetch read raises PageInError": _prefetch_hook_raising(PageInError("injected")),
     "every prefetch read raises RuntimeError": _prefetch_hook_raising(RuntimeError("injected")),
-    "store hook fails on the prefetch thread": _store_hook_failing_on_the_prefetch_thread,
-    "prefetch reads slow, then failing": _prefetch_reads_slow_then_failing,
-    "prefetch loop raises at its 5th turn": _loop_killed_mid_run(RuntimeError),
-    "prefetch loop raises SystemExit at its 5th turn": _loop_killed_mid_run(SystemExit),
+    "the reader fails every read": _reader_fails_every_read,
+    "reader reads slow, then failing": _reader_slow_then_failing,
+    "reader process dies at its 5th read": _reader_dies_after(5),
+    "reader process dies at its first read": _reader_dies_after(1),
     "every page-in 1 ms slower": _slow_page_in,
-    "random prefetch delays of 0-2 ms": _random_prefetch_delays,
+    "random reader delays of 0-2 ms": _random_reader_delays,
 }
 
 
@@ -204,18 +191,18 @@ HARMLESS_FAULTS = {
 @pytest.mark.parametrize("split", ["even", "shared"])
 def test_fault_on_the_prefetch_side_or_a_slow_read_leaves_output_bit_identical(model, reference, fault, split):
     cap = _min_cap(model, split)
-    before = len(_prefetch_threads())
+    before = len(_reader_processes())
 
     def run():
         with moerun.load(model, tokenizer=False, mem_cap=cap, split=split, prefetch=3, lookahead=2) as eng:
             HARMLESS_FAULTS[fault](eng)
             gen = _generate(eng)
-            return gen, eng.stats, eng.prefetcher.thread
+            return gen, eng.stats, eng.prefetcher.reader.proc
 
-    gen, stats, thread = _within(WATCHDOG_S, run)
+    gen, stats, proc = _within(WATCHDOG_S, run)
     _assert_bit_identical(reference, gen)
     assert stats["pool"]["misses"] > 0  # the cap really made the run read experts
-    assert not thread.is_alive() and len(_prefetch_threads()) == before  # close() stopped the thread
+    assert proc.poll() is not None and len(_reader_processes()) == before  # close() stopped the reader
 
 
 def test_failing_prefetch_reads_are_counted_and_fall_back_to_demand_reads(model, reference):
@@ -223,57 +210,56 @@ def test_failing_prefetch_reads_are_counted_and_fall_back_to_demand_reads(model,
         with moerun.load(model, tokenizer=False, mem_cap=reference["cap"], prefetch=3, lookahead=2, link_speed="300MB/s") as eng:
             _prefetch_hook_raising(OSError(errno.EIO, "injected"))(eng)
             gen = _generate(eng)
-            alive = eng.stats["prefetch_thread_alive"]
-        return gen, alive, eng.pool.stats.to_json()  # counted once close() has stopped the thread
+            alive = eng.stats["reader_alive"]
+        return gen, alive, eng.pool.stats.to_json()
 
     gen, alive, stats = _within(WATCHDOG_S, run)
     _assert_bit_identical(reference, gen)
     pf = stats["prefetch"]
     assert pf["failed"] >= 1 and pf["failed"] == pf["loads"]  # every attempted guess failed ...
     assert pf["used"] == 0 and stats["demand_loads"] > 0  # ... and the layers read for themselves
-    assert alive  # a failing read does not kill the thread
+    assert alive  # a failing guess does not stop the reader
 
 
-def test_prefetch_thread_killed_mid_run_is_reported_and_the_run_goes_on(model, reference):
+def test_guess_reads_the_reader_reports_failed_are_counted_and_the_output_is_unchanged(model, reference):
     def run():
-        with moerun.load(model, tokenizer=False, mem_cap=reference["cap"], prefetch=2) as eng:
-            _loop_killed_mid_run(RuntimeError)(eng)
+        with moerun.load(model, tokenizer=False, mem_cap=reference["cap"], prefetch=3, lookahead=2, link_speed="300MB/s") as eng:
+            eng.prefetcher.reader.set_faults(fail_every=2)  # every other guess read fails inside the reader
             gen = _generate(eng)
-            eng.prefetcher.thread.join(WATCHDOG_S)
-            return gen, eng.stats, eng.prefetcher.error
+            return gen, eng.stats
 
-    gen, stats, error = _within(WATCHDOG_S, run)
+    gen, stats = _within(WATCHDOG_S, run)
     _assert_bit_identical(reference, gen)
-    assert isinstance(error, RuntimeError)
-    assert stats["prefetch_thread_alive"] is False
+    assert stats["pool"]["prefetch"]["failed"] >= 1
+    assert stats["reader_alive"]
 
 
-def test_prefetch_thread_dying_inside_a_queued_demand_read_does_not_hang_the_layer(model, reference):
+def test_reader_process_killed_mid_run_is_reported_and_the_run_goes_on(model, reference):
     def run():
         with moerun.load(model, tokenizer=False, mem_cap=reference["cap"], prefetch=2) as eng:
-            def guess_fails(layer, expert):  # guesses fail harmlessly, so the first read there is a queued miss
+            _reader_dies_after(5)(eng)
+            gen = _generate(eng)
+            eng.prefetcher.reader.proc.wait(WATCHDOG_S)
+            return gen, eng.stats, eng.prefetcher.reader.proc.returncode
+
+    gen, stats, code = _within(WATCHDOG_S, run)
+    _assert_bit_identical(reference, gen)
+    assert code == 70  # the injected abrupt exit
+    assert stats["reader_alive"] is False
+
+
+def test_reader_dying_with_a_demand_read_outstanding_does_not_hang_the_layer(model, reference):
+    def run():
+        with moerun.load(model, tokenizer=False, mem_cap=reference["cap"], prefetch=2) as eng:
+            def guess_fails(layer, expert):  # guesses fail harmlessly, so the reader's reads are demand misses
                 raise RuntimeError("injected")
 
-            def dies(layer, expert):
-                if _on_prefetch_thread():
-                    raise SystemExit("injected: the thread dies inside a read")
-
-            real_order = eng.pool.compute_order
-
-            def slow_layer(layer, ids):  # the prefetch thread reaches the queued misses before the layer does
-                time.sleep(0.02)
-                return real_order(layer, ids)
-
             eng.prefetcher.hook = guess_fails
-            eng.store.fault_hook = dies
-            eng.pool.compute_order = slow_layer
+            eng.prefetcher.reader.set_faults(die_after=1)  # it dies holding its second read
             return _generate(eng)
 
-    # a short watchdog: the run takes well under a second, and today it hangs (the stuck worker is a daemon)
+    # a short watchdog: the run takes well under a second; a hang means the layer waits on a dead reader
     _assert_bit_identical(reference, _within(10, run, dump=False))
-
-
-# ---------------------------------------------------------------------------- faults that must stop the run clearly
 
 
 def _failing_reads_from(at_step: int, how: str):
@@ -294,6 +280,8 @@ def _failing_reads_from(at_step: int, how: str):
             fired[0] = True
             if how == "EISDIR":
                 _break_reads(store)
+                if eng.prefetcher is not None:  # the reader process holds its own descriptor: make it fail too
+                    eng.prefetcher.reader.set_faults(fail_every=1, demand_too=True)
             elif how == "truncate":
                 os.truncate(store.path, _first_expert_offset(store))
             else:  # the hook itself raises, as a failing device would make the read
@@ -308,7 +296,7 @@ def _failing_reads_from(at_step: int, how: str):
 @pytest.mark.parametrize(("how", "phrase"), [("EISDIR", "failed"), ("truncate", "file ended")])
 def test_read_that_fails_mid_run_raises_page_in_error_and_stops_cleanly(model, reference, tmp_path, how, phrase):
     d = copy_model(model, tmp_path / "m")
-    before = len(_prefetch_threads())
+    before = len(_reader_processes())
 
     def run():
         eng = moerun.load(d, tokenizer=False, mem_cap=reference["cap"], prefetch=2, lookahead=2)
@@ -318,12 +306,12 @@ def test_read_that_fails_mid_run_raises_page_in_error_and_stops_cleanly(model, r
             with pytest.raises(PageInError) as err:
                 _generate(eng)
             trace = eng.finish_trace(partial=True)
-            return err.value, fired[0], trace, eng.prefetcher.thread
+            return err.value, fired[0], trace, eng.prefetcher.reader.proc
 
-    err, fired, trace, thread = _within(WATCHDOG_S, run)
+    err, fired, trace, proc = _within(WATCHDOG_S, run)
     assert fired
     assert phrase in str(err) and "expert" in str(err) and "layer" in str(err)
-    assert not thread.is_alive() and len(_prefetch_threads()) == before
+    assert proc.poll() is not None and len(_reader_processes()) == before
     # the routing recorded before the failure is the start of the complete run's routing
     assert trace.meta["partial"] is True
     assert len(PROMPT_IDS) + 3 <= trace.n_tokens < len(PROMPT_IDS) + MAX_NEW
@@ -445,8 +433,8 @@ def cli_reference(model, reference, tmp_path_factory):
     return {"doc": json.loads(out.getvalue()), "trace": read_trace(trace_path)}
 
 
-CLI_HARMLESS = ["every prefetch read raises OSError", "prefetch loop raises at its 5th turn", "every page-in 1 ms slower",
-                "store hook fails on the prefetch thread"]
+CLI_HARMLESS = ["every prefetch read raises OSError", "reader process dies at its 5th read", "every page-in 1 ms slower",
+                "the reader fails every read"]
 
 
 @pytest.mark.parametrize("fault", CLI_HARMLESS)

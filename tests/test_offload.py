@@ -10,14 +10,12 @@ from __future__ import annotations
 import gc
 import json
 import os
-import random
 import subprocess
 import sys
-import threading
-import time
 import weakref
 
 import numpy as np
+import psutil
 import pytest
 from conftest import ROOT
 from hypothesis import given, settings
@@ -109,19 +107,14 @@ def test_capped_logits_and_tokens_equal_resident_bit_for_bit(property_models, ca
     key = (tuple(prompt), seed)
     if key not in m["ref"]:
         m["ref"][key] = _run(m["dir"], prompt, sampling)
-    delays = random.Random(seed)
-
-    def jitter(layer, expert):  # runs on the prefetch thread: random 0-2 ms before each read
-        time.sleep(delays.uniform(0, 0.002))
-
     def setup(eng):
-        if eng.prefetcher is not None:
-            eng.prefetcher.hook = jitter
+        if eng.prefetcher is not None:  # random 0-2 ms before each of the reader process's reads
+            eng.prefetcher.reader.set_faults(jitter_us=2000, seed=seed)
 
     got = _run(m["dir"], prompt, sampling, setup=setup, **kw)
     _assert_same(m["ref"][key], got)
     if kw.get("prefetch"):
-        assert got[3]["prefetch_thread_alive"]
+        assert got[3]["reader_alive"]
 
 
 def test_smallest_cap_with_every_policy_equals_resident_on_a_long_generation(small_model):
@@ -184,68 +177,91 @@ def test_explicit_slot_list_out_of_range_is_refused_without_a_cap(small_model):
         moerun.load(small_model, slots=[1, 1, 1]).close()
 
 
-# ---------------------------------------------------------------------------- the prefetch thread
+# ---------------------------------------------------------------------------- the prefetch reader process
 
 
-def _prefetch_threads():
-    return [t for t in threading.enumerate() if t.name == "moerun-prefetch"]
+def _reader_processes():
+    out = []
+    for p in psutil.Process().children():
+        try:
+            if any(a.endswith("reader_child.py") for a in p.cmdline()) and p.status() != psutil.STATUS_ZOMBIE:
+                out.append(p)
+        except psutil.Error:
+            pass
+    return out
 
 
-def test_prefetch_thread_survives_failing_reads_and_output_stays_identical(small_model):
+def test_prefetch_survives_failing_reads_and_output_stays_identical(small_model):
     lo, _ = _caps(small_model)
     prompt = list(range(3, 15))
     ref = _run(small_model, prompt, max_new=40)
     calls = []
 
-    def flaky(layer, expert):  # every other prefetch read fails
+    def flaky(layer, expert):  # every other guess fails before it reaches the reader
         calls.append((layer, expert))
         if len(calls) % 2:
             raise OSError("injected prefetch failure")
 
     def setup(eng):
         eng.prefetcher.hook = flaky
+        eng.prefetcher.reader.set_faults(fail_every=3)  # and every third guess read fails in the reader
 
-    # an emulated link makes demand reads wait, which gives the prefetch thread its turns
     got = _run(small_model, prompt, max_new=40, setup=setup, mem_cap=lo, prefetch=3, lookahead=2, link_speed="200MB/s")
     _assert_same(ref, got)
-    assert got[3]["pool"]["prefetch"]["failed"] >= 1
-    assert got[3]["prefetch_thread_alive"]
+    assert got[3]["pool"]["prefetch"]["failed"] >= 2
+    assert got[3]["reader_alive"]
 
 
-def test_prefetch_loop_that_dies_leaves_the_run_correct_and_the_engine_closes(small_model):
+def test_reader_process_that_dies_leaves_the_run_correct_and_the_engine_closes(small_model):
     lo, _ = _caps(small_model)
     prompt = list(range(3, 15))
     ref = _run(small_model, prompt, max_new=30)
     with moerun.load(small_model, tokenizer=False, mem_cap=lo, prefetch=2) as eng:
-        pf = eng.prefetcher
-        thread = pf.thread
-
-        def die():
-            raise RuntimeError("injected prefetch loop failure")
-
-        pf.loop_hook = die
+        reader = eng.prefetcher.reader
+        reader.set_faults(die_after=3)
         full = eng.logits(prompt)
         gen = eng.generate(prompt_ids=prompt, max_new=30, sampling=SAMPLING, keep_logits=True)
-        thread.join(5.0)  # the first queued guess kills the loop; give the thread its turn to die
-        assert not thread.is_alive()
-        assert isinstance(pf.error, RuntimeError)
-        assert not eng.stats["prefetch_thread_alive"]
+        assert reader.proc.wait(5.0) == 70  # it died abruptly with a read outstanding
+        assert not eng.stats["reader_alive"]
         # the engine goes on without it
         more = eng.generate(prompt_ids=prompt, max_new=30, sampling=SAMPLING, keep_logits=True)
     _assert_same(ref, (full, gen.new_ids, np.stack(gen.logits)))
     assert more.new_ids == gen.new_ids
-    assert thread not in threading.enumerate()
 
 
-def test_close_stops_the_prefetch_thread(small_model):
+def test_reader_process_killed_from_outside_mid_run_leaves_the_output_identical(small_model):
     lo, _ = _caps(small_model)
+    prompt = list(range(3, 15))
+    ref = _run(small_model, prompt, max_new=30)
+
+    def setup(eng):
+        reader = eng.prefetcher.reader
+        steps = [0]
+        real = eng.pool.begin_step
+
+        def begin_step(step):  # SIGKILL the reader at the 10th decode step, as an OOM killer would
+            steps[0] += 1
+            if steps[0] == 10:
+                reader.kill()
+            real(step)
+
+        eng.pool.begin_step = begin_step
+
+    got = _run(small_model, prompt, max_new=30, setup=setup, mem_cap=lo, prefetch=2, link_speed="500MB/s")
+    _assert_same(ref, got)
+    assert got[3]["reader_alive"] is False
+
+
+def test_close_stops_the_reader_process(small_model):
+    lo, _ = _caps(small_model)
+    before = len(_reader_processes())
     eng = moerun.load(small_model, tokenizer=False, mem_cap=lo, prefetch=2, lookahead=2)
-    thread = eng.prefetcher.thread
-    assert thread in _prefetch_threads()
+    proc = eng.prefetcher.reader.proc
+    assert len(_reader_processes()) == before + 1
     eng.generate(prompt_ids=[1, 2, 3], max_new=12)
     eng.close()
-    assert not thread.is_alive()
-    assert thread not in threading.enumerate()
+    assert proc.poll() is not None
+    assert len(_reader_processes()) == before
 
 
 # ---------------------------------------------------------------------------- the cap is real

@@ -279,7 +279,7 @@ def test_capped_run_with_a_learned_policy_equals_resident_bit_for_bit(small_mode
         assert np.array_equal(_bits(ref[2]), _bits(got[2]))
         assert got[3]["pool"]["misses"] > 0  # the cap made the policy work
         if prefetch:
-            assert got[3]["prefetch_thread_alive"]
+            assert got[3]["reader_alive"]
 
 
 @pytest.mark.parametrize("prompt_len", [7, 1], ids=["prompt-7", "prompt-1"])

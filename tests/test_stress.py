@@ -19,7 +19,6 @@ from __future__ import annotations
 import gc
 import random
 import threading
-import time
 
 import numpy as np
 import psutil
@@ -98,11 +97,8 @@ def _stress(model_dir, rounds: int, seed: int) -> None:
         delays = random.Random(rng.random())
         eng = moerun.load(model_dir, tokenizer=False, **kw)
         try:
-            if eng.prefetcher is not None:
-                def jitter(layer, expert, delays=delays):  # runs on the prefetch thread
-                    time.sleep(delays.uniform(0, 0.001))
-
-                eng.prefetcher.hook = jitter
+            if eng.prefetcher is not None:  # random 0-1 ms delays before the reader process's reads
+                eng.prefetcher.reader.set_faults(jitter_us=1000, seed=delays.randrange(2**31))
             gen = eng.generate(prompt_ids=PROMPTS[p], max_new=n, sampling=Sampling(0.9, 0.95, s), keep_logits=True)
         finally:
             eng.close()
