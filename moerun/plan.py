@@ -11,14 +11,16 @@ measured costs:
 - ``page``: one expert page-in (from ``--link-speed``, or a ``probe --save``
   file), on one link shared by every reader.
 
-Per layer: attention runs; at the prefetch point the next layers' guesses (from
-the trace) are queued for the loader, which serves them one at a time,
-dropping guesses whose layer has already started; then the layer's chosen
-experts are accessed in ascending id.  Without prefetch a miss is read by the
-compute thread after it has computed the resident experts; with prefetch the
-loader reads demand misses ahead of queued guesses, while the layer computes
-what it has.  The step's time is the compute plus every wait.  With prefetch
-off this reduces to ``sum(attn) + L*k*expert + head + misses*page`` per token.
+Per layer: attention runs, then the layer's chosen experts are accessed in
+ascending id.  Without prefetch a miss is read by the compute thread after it
+has computed the resident experts.  With prefetch every read goes to the
+reader (one at a time): the layer's misses, and the guesses it uses that have
+not started, come first; then, at the prefetch point, the next layers' guesses
+(from the trace) take their slots at once and queue behind; a queued guess
+whose layer has started without it is skipped and its slot given back.  The
+layer computes what it has while its reads arrive.  The step's time is the
+compute plus every wait.  With prefetch off this reduces to
+``sum(attn) + L*k*expert + head + misses*page`` per token.
 """
 
 from __future__ import annotations
@@ -39,7 +41,7 @@ from .replay import layer_plans, make_policy, prefill_tokens, replay_counts
 from .residency import NoVictim, Residency
 from .trace import Trace
 
-CALIBRATION_SCHEMA = "moerun-calibration/3"
+CALIBRATION_SCHEMA = "moerun-calibration/4"
 CALIBRATION_LINK = 2e9  # bytes/s of the emulated link used to measure the cost of a blocking read
 SHAPE_KEYS = ("layers", "experts", "top_k", "expert_bytes", "dense_bytes", "expert_us", "dense_layer_us")
 
@@ -54,7 +56,7 @@ class Costs:
     page: float
     page_source: str = ""
     wait: float = 0.0  # added to every blocking wait on a read: wake-up and miss bookkeeping, measured
-    loader: float = 0.0  # compute-thread time lost per background read (the loader thread's share of the GIL), measured
+    loader: float = 0.0  # compute-thread time lost per read handed to the reader process, measured
 
     def to_json(self) -> dict:
         return {
@@ -128,7 +130,8 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
     signals = [type(r.policy).routed is not policies.Policy.routed for r in res]
     ready_at: list[dict] = [{} for _ in range(L)]  # key -> time its read finishes
     link_free = 0.0
-    queue: list = []  # pending guesses: (enqueued, layer, expert, target progress, protect)
+    # requests the reader has not started: [submitted, layer, expert, target progress, urgent]
+    pending: list[list] = []
     now = 0.0
     stall = 0.0
     accesses = misses = loads = 0
@@ -136,28 +139,37 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
     layer_miss = [0] * L
     T = trace.n_tokens
 
-    def serve(until: float, progress: int) -> None:
-        """Let the loader work through queued guesses that start before ``until``."""
+    def drop(req) -> None:
+        """A guess the reader skips: its slot is given back."""
+        pending.remove(req)
+        res[req[1]].remove(req[2])
+
+    def serve(until: float, progress: int, need: bool = False) -> None:
+        """The reader: urgent requests first, then guesses in order; a guess whose layer has started
+        without it is skipped.  Serves what starts before ``until`` (and, with ``need``, every urgent one)."""
         nonlocal link_free, loads
-        while queue:
-            enq, tl, e, target, protect = queue[0]
-            start = max(link_free, enq)
-            if start > until:
+        while pending:
+            t0 = max(link_free, min(r[0] for r in pending))
+            if t0 > until and not (need and any(r[4] for r in pending)):
                 return
-            queue.pop(0)
-            if target <= progress or e in res[tl]:
-                continue  # stale, or already there: costs nothing
-            busy = {x for x, r in ready_at[tl].items() if r > start}
-            try:
-                res[tl].insert(e, protect, busy)
-            except NoVictim:
-                continue
-            ready_at[tl][e] = start + costs.page
-            link_free = start + costs.page
-            loads += 1
+            avail = [r for r in pending if r[0] <= t0]
+            req = next((r for r in avail if r[4]), None)
+            if req is None:
+                req = avail[0]
+                if req[3] <= progress:
+                    drop(req)
+                    continue
+                loads += 1
+            pending.remove(req)
+            link_free = t0 + costs.page
+            ready_at[req[1]][req[2]] = link_free
+
+    def outstanding(layer: int, t: float) -> set:
+        started = {x for x, r in ready_at[layer].items() if r > t}
+        return started | {r[2] for r in pending if r[1] == layer}
 
     t_begin = 0.0
-    background = 0  # demand reads handed to the loader this token
+    background = 0  # reads handed to the reader this token
     loads_before = 0
     for t in range(P, T):
         if t == P:
@@ -165,23 +177,14 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
         for layer in range(L):
             step = t * L + layer
             now += costs.attn[layer]
-            if prefetch:
-                for j in range(1, lookahead + 1):
-                    tl = layer + j
-                    if tl >= L:
-                        break
-                    guesses = [e for e in g[t][layer][j - 1][:prefetch] if e >= 0]
-                    protect = frozenset(guesses)
-                    for e in guesses:
-                        if e not in res[tl]:
-                            queue.append((now, tl, e, t * L + tl, protect))
-                serve(now, step - 1)
             chosen = sorted(e for e in ex[t][layer] if e >= 0)
             if signals[layer]:  # the per-step signal the live pool gives a policy (Policy.routed)
                 res[layer].policy.routed(layer, chosen, probs[t, layer] if probs is not None else None, res[layer].now)
             if prefetch:
                 serve(now, step - 1)
-            busy = {x for x, r in ready_at[layer].items() if r > now}
+                for req in [r for r in pending if r[1] == layer and not r[4] and r[2] not in chosen]:
+                    drop(req)  # guesses for this layer it does not use: skipped when the reader reaches them
+            busy = outstanding(layer, now) if prefetch else {x for x, r in ready_at[layer].items() if r > now}
             pinned = frozenset(chosen)
             waiting = []  # (time the expert's bytes are there)
             n_ready = 0
@@ -189,16 +192,27 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
             for e in chosen:
                 while True:
                     try:
-                        hit, _, _ = res[layer].access(e, pinned if len(chosen) <= slots[layer] else (e,), busy)
+                        hit, _, _ = res[layer].access(e, pinned if len(chosen) <= slots[layer] else (e,), busy - {e})
                         break
                     except NoVictim:  # every other slot is being read: wait for the first to finish
-                        r = min(ready_at[layer][x] for x in busy)
+                        serve(now, step, need=True)
+                        known = [ready_at[layer][x] for x in busy if ready_at[layer].get(x, 0.0) > now]
+                        if not known:  # only reads the reader has not started: let it work through its queue
+                            serve(float("inf"), step)
+                            known = [ready_at[layer][x] for x in busy if ready_at[layer].get(x, 0.0) > now] or [now]
+                        r = min(known)
                         stall += max(0.0, r - now)
                         now = max(now, r)
-                        busy = {x for x in busy if ready_at[layer][x] > now}
+                        busy = outstanding(layer, now) if prefetch else {x for x in busy if ready_at[layer][x] > now}
                 accesses += 1
                 layer_acc[layer] += 1
                 if hit:
+                    req = next((r for r in pending if r[1] == layer and r[2] == e), None)
+                    if req is not None:  # a guess not started yet: the reader now serves it first
+                        req[4] = True
+                        loads += 1
+                        demand.append(e)
+                        continue
                     r = ready_at[layer].get(e, 0.0)
                     if r > now:
                         waiting.append(r)
@@ -208,13 +222,27 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
                     misses += 1
                     layer_miss[layer] += 1
                     demand.append(e)
-            if prefetch and demand:  # the loader reads them ahead of queued guesses
-                background += len(demand)
-                for e in demand:
-                    start = max(link_free, now)
-                    link_free = start + costs.page
-                    ready_at[layer][e] = link_free
-                    waiting.append(link_free)
+                    if prefetch:
+                        pending.append([now, layer, e, step, True])
+                        background += 1
+            if prefetch:
+                # the prefetch point: the next layers' guesses take their slots now, behind this layer's reads
+                for j in range(1, lookahead + 1):
+                    tl = layer + j
+                    if tl >= L:
+                        break
+                    guesses = [e for e in g[t][layer][j - 1][:prefetch] if e >= 0]
+                    protect = frozenset(guesses)
+                    for e in guesses:
+                        if e in res[tl]:
+                            continue
+                        try:
+                            res[tl].insert(e, protect, outstanding(tl, now))
+                        except NoVictim:
+                            continue
+                        pending.append([now, tl, e, t * L + tl, False])
+                serve(now, step, need=True)
+                waiting += [ready_at[layer][e] for e in demand]
             now += n_ready * costs.expert  # resident experts first
             for r in sorted(waiting):
                 if r > now:

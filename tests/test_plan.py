@@ -68,8 +68,8 @@ def test_perfect_guesses_faster_than_the_window_hide_every_page_in():
     # guesses layer 1 perfectly at its prefetch point.  The page-in (5 us) is shorter than what
     # follows the prefetch point before layer 1 routes (layer 0's expert 2 + layer 1's attention 10),
     # so after the first token nothing waits: per token 2 * (10 + 2) + 3 = 27 us.  The first token
-    # also waits 10 us at layer 0: its demand read queues behind the guess already on the link
-    # (5 us) and then takes 5 us itself.
+    # also waits 5 us at layer 0 for its own demand read, which goes to the reader before the
+    # guess for layer 1 (the prefetch point follows the layer's routing).
     n = 8
     experts = np.zeros((n, 2, 1), np.int64)
     experts[:, 0, 0] = 5
@@ -80,7 +80,7 @@ def test_perfect_guesses_faster_than_the_window_hide_every_page_in():
     p = predict(trace, [1, 1], "lru", 1, 1, _costs(L=2, page=5))
     assert p.misses == 1  # layer 0's first access only
     assert p.prefetch_loads == n
-    assert p.step_s == pytest.approx(27 * US + 10 * US / n)
+    assert p.step_s == pytest.approx(27 * US + 5 * US / n)
 
 
 # ---------------------------------------------------------------------------- properties
