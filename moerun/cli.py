@@ -176,7 +176,7 @@ def _raised_while_interrupted(e: BaseException) -> bool:
 def _first_ctrl_c_only(interrupted: list) -> None:
     """SIGINT raises KeyboardInterrupt once; later ones are ignored while that one unwinds.
 
-    The first Ctrl-C stops the command, whose clean-up (closing the prefetch thread, at most a
+    The first Ctrl-C stops the command, whose clean-up (stopping the prefetch reader process, at most a
     couple of seconds; writing a partial trace; removing temporary files) must run to the end: a
     second Ctrl-C landing inside it would leave temporary files or print a traceback from inside a
     library.  Only the process entry point installs this, never ``main()`` (which tests call).

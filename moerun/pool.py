@@ -48,7 +48,7 @@ class PoolStats:
     prefetch_used: int = 0  # prefetched experts that a layer then used
     prefetch_wasted_bytes: int = 0  # prefetched bytes evicted before any use
     prefetch_failed: int = 0
-    prefetch_ns: int = 0  # page-in time on the prefetch thread
+    prefetch_ns: int = 0  # page-in time of guesses in the reader process
     hidden_ns: int = 0  # prefetch page-in time of used guesses not waited for
 
     def __post_init__(self):

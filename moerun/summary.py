@@ -70,6 +70,7 @@ def run_text(engine, gen=None) -> str:
                 f"prefetch: {pf['guesses']} guesses, {pf['loads']} loads, {pf['used']} used "
                 f"({pct(pf['accuracy'])} accurate), {fmt_bytes(pf['wasted_bytes'])} wasted, "
                 f"{pf['hidden_ns'] / 1e6:.1f} ms of page-in hidden"
+                + ("" if doc.get("reader_alive", True) else "; the reader process exited, so the engine read for itself")
             )
         stall = doc.get("stall_share")
         lines.append(
@@ -77,5 +78,9 @@ def run_text(engine, gen=None) -> str:
             + (f" ({pct(stall)} of run time)" if stall is not None else "")
         )
     cap = f" (cap {fmt_bytes(b.cap)})" if b.cap is not None else ""
-    lines.append(f"peak resident-set growth {fmt_bytes(doc['peak_rss_growth_bytes'])}{cap}")
+    reader = doc.get("reader_rss_bytes")
+    lines.append(
+        f"peak resident-set growth {fmt_bytes(doc['peak_rss_growth_bytes'])}{cap}"
+        + (f"; prefetch reader process {fmt_bytes(reader)} (outside the cap, like the interpreter)" if reader else "")
+    )
     return "\n".join(lines)
