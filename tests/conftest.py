@@ -102,3 +102,17 @@ def edit_config(model_dir: Path, edit) -> None:
     doc = json.loads(path.read_text())
     edit(doc)
     path.write_text(json.dumps(doc))
+
+
+def reader_processes() -> list:
+    """Prefetch reader processes (moerun/reader_child.py) this test process has running."""
+    import psutil
+
+    out = []
+    for p in psutil.Process().children():
+        try:
+            if any(a.endswith("reader_child.py") for a in p.cmdline()) and p.status() != psutil.STATUS_ZOMBIE:
+                out.append(p)
+        except psutil.Error:
+            pass
+    return out

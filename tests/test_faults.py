@@ -34,9 +34,8 @@ import threading
 import time
 
 import numpy as np
-import psutil
 import pytest
-from conftest import ROOT, copy_model, edit_config
+from conftest import ROOT, copy_model, edit_config, reader_processes
 
 import moerun
 from moerun import cli
@@ -77,18 +76,6 @@ def _within(seconds: float, fn, *args, dump: bool = True, **kw):
     if "error" in box:
         raise box["error"]
     return box.get("value")
-
-
-def _reader_processes() -> list:
-    """Reader processes (moerun/reader_child.py) this test process has running."""
-    out = []
-    for p in psutil.Process().children():
-        try:
-            if any(a.endswith("reader_child.py") for a in p.cmdline()) and p.status() != psutil.STATUS_ZOMBIE:
-                out.append(p)
-        except psutil.Error:
-            pass
-    return out
 
 
 def _min_cap(model_dir, split="even") -> int:
@@ -191,7 +178,7 @@ HARMLESS_FAULTS = {
 @pytest.mark.parametrize("split", ["even", "shared"])
 def test_fault_on_the_prefetch_side_or_a_slow_read_leaves_output_bit_identical(model, reference, fault, split):
     cap = _min_cap(model, split)
-    before = len(_reader_processes())
+    before = len(reader_processes())
 
     def run():
         with moerun.load(model, tokenizer=False, mem_cap=cap, split=split, prefetch=3, lookahead=2) as eng:
@@ -202,7 +189,7 @@ def test_fault_on_the_prefetch_side_or_a_slow_read_leaves_output_bit_identical(m
     gen, stats, proc = _within(WATCHDOG_S, run)
     _assert_bit_identical(reference, gen)
     assert stats["pool"]["misses"] > 0  # the cap really made the run read experts
-    assert proc.poll() is not None and len(_reader_processes()) == before  # close() stopped the reader
+    assert proc.poll() is not None and len(reader_processes()) == before  # close() stopped the reader
 
 
 def test_failing_prefetch_reads_are_counted_and_fall_back_to_demand_reads(model, reference):
@@ -296,7 +283,7 @@ def _failing_reads_from(at_step: int, how: str):
 @pytest.mark.parametrize(("how", "phrase"), [("EISDIR", "failed"), ("truncate", "file ended")])
 def test_read_that_fails_mid_run_raises_page_in_error_and_stops_cleanly(model, reference, tmp_path, how, phrase):
     d = copy_model(model, tmp_path / "m")
-    before = len(_reader_processes())
+    before = len(reader_processes())
 
     def run():
         eng = moerun.load(d, tokenizer=False, mem_cap=reference["cap"], prefetch=2, lookahead=2)
@@ -311,7 +298,7 @@ def test_read_that_fails_mid_run_raises_page_in_error_and_stops_cleanly(model, r
     err, fired, trace, proc = _within(WATCHDOG_S, run)
     assert fired
     assert phrase in str(err) and "expert" in str(err) and "layer" in str(err)
-    assert proc.poll() is not None and len(_reader_processes()) == before
+    assert proc.poll() is not None and len(reader_processes()) == before
     # the routing recorded before the failure is the start of the complete run's routing
     assert trace.meta["partial"] is True
     assert len(PROMPT_IDS) + 3 <= trace.n_tokens < len(PROMPT_IDS) + MAX_NEW

@@ -15,9 +15,8 @@ import sys
 import weakref
 
 import numpy as np
-import psutil
 import pytest
-from conftest import ROOT
+from conftest import ROOT, reader_processes
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -180,17 +179,6 @@ def test_explicit_slot_list_out_of_range_is_refused_without_a_cap(small_model):
 # ---------------------------------------------------------------------------- the prefetch reader process
 
 
-def _reader_processes():
-    out = []
-    for p in psutil.Process().children():
-        try:
-            if any(a.endswith("reader_child.py") for a in p.cmdline()) and p.status() != psutil.STATUS_ZOMBIE:
-                out.append(p)
-        except psutil.Error:
-            pass
-    return out
-
-
 def test_prefetch_survives_failing_reads_and_output_stays_identical(small_model):
     lo, _ = _caps(small_model)
     prompt = list(range(3, 15))
@@ -254,14 +242,14 @@ def test_reader_process_killed_from_outside_mid_run_leaves_the_output_identical(
 
 def test_close_stops_the_reader_process(small_model):
     lo, _ = _caps(small_model)
-    before = len(_reader_processes())
+    before = len(reader_processes())
     eng = moerun.load(small_model, tokenizer=False, mem_cap=lo, prefetch=2, lookahead=2)
     proc = eng.prefetcher.reader.proc
-    assert len(_reader_processes()) == before + 1
+    assert len(reader_processes()) == before + 1
     eng.generate(prompt_ids=[1, 2, 3], max_new=12)
     eng.close()
     assert proc.poll() is not None
-    assert len(_reader_processes()) == before
+    assert len(reader_processes()) == before
 
 
 # ---------------------------------------------------------------------------- the cap is real
