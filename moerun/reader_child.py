@@ -200,10 +200,12 @@ class Server:
         """The emulated channel is busy until ``end`` (as ``moerun.store.wait_until``)."""
         if not self.rate:
             return
-        while True:  # long waits (a slow emulated link) in slices, so a stop request is seen quickly
+        while True:  # long waits (a slow emulated link) in slices, so a stop request or a dead engine is seen quickly
             left = end - time.monotonic_ns()
             if left <= SPIN_TAIL_NS or self.c[STOP]:
                 break
+            if left > 20_000_000 and not self.alive_parent():
+                os._exit(0)
             time.sleep(min(left - SPIN_TAIL_NS, 20_000_000) / 1e9)
         while time.monotonic_ns() < end and not self.c[STOP]:
             pass
