@@ -11,7 +11,8 @@ emulated link, for:
   oracle NxL     a guesser that names exactly the experts layer l+j will choose
 
 The oracle is the ceiling for every guess rule at this prefetch point: what is left between it and
-no prefetch is all that better guesses could win.  The cap defaults to a third of the expert bytes,
+no prefetch is all that better guesses could win.  Oracles that are wrong 10% or 20% of the time
+(``--wrong``) show how precise a rule must be to get near it.  The cap defaults to a third of the expert bytes,
 as in bench_offload.py.
 """
 
@@ -31,13 +32,23 @@ from moerun.trace import Trace
 from moerun.units import parse_rate, parse_size
 
 
-def oracle(trace: Trace) -> Trace:
-    """The same trace whose guesses for layer l+j are layer l+j's chosen experts (then -1)."""
+def oracle(trace: Trace, wrong: float = 0.0, seed: int = 0) -> Trace:
+    """The same trace whose guesses for layer l+j are layer l+j's chosen experts (then -1).
+
+    With ``wrong`` > 0 each guess is replaced, with that probability, by an expert the layer
+    does not choose (uniformly among them): an oracle with a given precision.
+    """
     ex = trace.experts
     g = np.full_like(trace.guesses, -1)
-    _, L, k = ex.shape
+    T, L, k = ex.shape
+    E = int(trace.meta["n_experts"])
+    rng = np.random.default_rng(seed)
     for j in range(1, g.shape[2] + 1):
         g[:, : L - j, j - 1, :k] = ex[:, j:, :]
+    if wrong > 0:
+        for t, layer, j, r in zip(*np.nonzero((g[..., :k] >= 0) & (rng.random(g[..., :k].shape) < wrong))):
+            others = np.setdiff1d(np.arange(E), ex[t, layer + j + 1])
+            g[t, layer, j, r] = rng.choice(others)
     return Trace(ex, trace.weights, g, dict(trace.meta), probs=trace.probs)
 
 
@@ -48,8 +59,10 @@ def main() -> int:
     ap.add_argument("--link-speed", default="2.4GB/s", help="emulated link (default 2.4GB/s)")
     ap.add_argument("--generations", type=int, default=3)
     ap.add_argument("--max-new", type=int, default=300)
+    ap.add_argument("--wrong", default="0.1,0.2", help="also oracles whose guesses are wrong this often (default 0.1,0.2)")
     ap.add_argument("--json", action="store_true")
     a = ap.parse_args()
+    a.wrong = [float(x) for x in a.wrong.split(",") if x.strip()]
     model = a.model or moerun.default_model_dir()
     rate = parse_rate(a.link_speed)
     with moerun.load(model) as eng:
@@ -74,6 +87,10 @@ def main() -> int:
         rows.append(("router", n, la, predict(trace, slots, "lru", n, la, costs)))
     for n, la in ((2, 1), (2, 2)):
         rows.append(("oracle", n, la, predict(exact, slots, "lru", n, la, costs)))
+    for wrong in a.wrong:
+        noisy = oracle(trace, wrong, seed=1)
+        for n, la in ((2, 1), (2, 2)):
+            rows.append((f"oracle {100 * wrong:.0f}% wrong", n, la, predict(noisy, slots, "lru", n, la, costs)))
     base = rows[0][3].tok_s
     doc = {
         "model": str(model), "cap_bytes": cap, "slots": slots, "link_speed_bytes_s": rate, "link_emulated": True,
@@ -86,10 +103,10 @@ def main() -> int:
         return 0
     print(f"model {model}; cap {cap} bytes, slots {','.join(map(str, slots))}; link {rate / 1e9:.2f} GB/s (emulated); "
           f"{trace.n_tokens} tokens of routing; predicted by the planner; {_bench.BLAS_NOTE}")
-    print(f"{'guesses':<9}{'prefetch':>9}{'tok/s':>8}{'vs lru':>8}{'hit rate':>10}{'stall':>8}")
+    print(f"{'guesses':<19}{'prefetch':>9}{'tok/s':>8}{'vs lru':>8}{'hit rate':>10}{'stall':>8}")
     for kind, n, la, p in rows:
         pf = f"{n}x{la}" if n else "off"
-        print(f"{kind:<9}{pf:>9}{p.tok_s:>8.0f}{p.tok_s / base:>7.2f}x{100 * p.hit_rate:>9.1f}%{100 * p.stall_share:>7.1f}%")
+        print(f"{kind:<19}{pf:>9}{p.tok_s:>8.0f}{p.tok_s / base:>7.2f}x{100 * p.hit_rate:>9.1f}%{100 * p.stall_share:>7.1f}%")
     return 0
 
 
