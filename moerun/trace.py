@@ -178,7 +178,7 @@ def _check_member_sizes(path: Path, data: bytes) -> None:
     """Refuse members whose array header claims more bytes than the member holds, before numpy allocates them."""
     try:
         zf = zipfile.ZipFile(io.BytesIO(data))
-    except (zipfile.BadZipFile, ValueError):
+    except (zipfile.BadZipFile, ValueError, NotImplementedError):
         return  # np.load reports it
     with zf:
         for info in zf.infolist():
@@ -229,6 +229,8 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
         raise
     except (zipfile.BadZipFile, EOFError, zlib.error):
         raise BadTrace(f"{path}: damaged or truncated .npz archive (the zip cannot be read to the end)") from None
+    except NotImplementedError as e:  # zipfile: a zip version or compression method it does not read
+        raise BadTrace(f"{path}: damaged .npz archive or one Python cannot read ({e})") from None
     except (ValueError, OSError, KeyError) as e:
         raise BadTrace(f"{path}: not a readable .npz trace ({str(e).splitlines()[0][:120] if str(e) else type(e).__name__})") from None
     experts = arrays["experts"]

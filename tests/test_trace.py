@@ -91,6 +91,22 @@ def _damaged_member(tmp_path: Path) -> Path:
     return bad
 
 
+def _unreadable_zip_version(tmp_path: Path) -> Path:
+    """A trace whose central directory says it needs zip version 10.9 to extract (found by the long fuzz run).
+
+    The field is "version needed to extract" at offset 6 of a central directory header (signature
+    PK\\x01\\x02), APPNOTE.TXT 4.3.12 (PKWARE's published .ZIP specification); Python's zipfile
+    raises NotImplementedError for a version above the one it supports.
+    """
+    good = _save(tmp_path / "good.npz", experts=_good_experts())
+    blob = bytearray(good.read_bytes())
+    at = blob.index(b"PK\x01\x02")
+    blob[at + 6 : at + 8] = (109).to_bytes(2, "little")
+    bad = tmp_path / "version.npz"
+    bad.write_bytes(bytes(blob))
+    return bad
+
+
 BAD_TRACES = {
     "experts 2-d": (lambda d: _save(d / "t.npz", experts=np.zeros((5, 2), np.int64)), "integer array [tokens, layers, top_k]"),
     "experts float": (lambda d: _save(d / "t.npz", experts=np.zeros((5, 2, 2), np.float32)), "integer array"),
@@ -114,6 +130,7 @@ BAD_TRACES = {
     "empty file": (lambda d: (d / "t.npz").write_bytes(b"") or d / "t.npz", "empty"),
     "truncated zip": (_truncated, "damaged or truncated"),
     "damaged member": (_damaged_member, "damaged or truncated"),
+    "zip version 10.9": (_unreadable_zip_version, "Python cannot read"),
     "missing file": (lambda d: d / "absent.npz", "no such trace file"),
     "object array": (lambda d: _save(d / "t.npz", experts=np.array([[[None]]], dtype=object)), "not a readable .npz trace"),
 }
