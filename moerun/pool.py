@@ -318,8 +318,6 @@ class ExpertPool(ExpertSource):
         st = self.stats
         self.progress = self.step * self.config.n_layers + layer
         reading = self._reading()
-        if reading:
-            self.reader.set_progress(self.progress)  # guesses for this layer not used now are stale
         self.pinned = set(keys)
         r = self.residency(layer)
         r.policy.routed(layer, ids, probs[0], r.now)  # optional per-step signal (Policy.routed); a no-op by default
@@ -334,7 +332,10 @@ class ExpertPool(ExpertSource):
                 st.prefetch_hits[layer] += 1
             else:
                 st.hits[layer] += 1
-        if reading:  # the reader fetches the misses while the layer computes the experts it has
+        if reading:
+            # after the accesses, which promoted the guesses this layer uses: the others are stale now
+            self.reader.set_progress(self.progress)
+            # the reader fetches the misses while the layer computes the experts it has
             for e in ids:
                 kind, slot = events[e][0], events[e][1]
                 if kind == MISS:
