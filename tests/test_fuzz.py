@@ -674,6 +674,8 @@ def trace_array_edits(draw, base: BaseTrace) -> dict[str, np.ndarray]:
             idx = draw(st.integers(0, a.size - 1))
             info = np.iinfo(a.dtype) if a.dtype.kind in "iu" else np.finfo(a.dtype)
             value = draw(st.one_of(st.integers(-3, 9), st.sampled_from([int(info.min), int(info.max)] if a.dtype.kind in "iu" else [np.nan, np.inf, -np.inf])))
+            if a.dtype.kind in "iu":  # numpy 2 refuses an out-of-range Python int (a small negative into uint8)
+                value = min(max(value, int(info.min)), int(info.max))
             a.reshape(-1)[idx] = value
             arrays[name] = a
         elif kind == "meta":
