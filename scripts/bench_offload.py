@@ -236,7 +236,8 @@ def main() -> int:
         print(json.dumps(doc, indent=2))
         return 0
     print(f"model {model}; cap {fmt_bytes(cap)} = fixed {fmt_bytes(d + kv + s)} + {n_slots} slots of {fmt_bytes(per)} "
-          f"(experts total {fmt_bytes(expert_total)}); link {rate / 1e9:.3f} GB/s (emulated); {_bench.BLAS_NOTE}")
+          f"(experts total {fmt_bytes(expert_total)}); link {rate / 1e9:.3f} GB/s (emulated); prefetch {a.prefetch} guesses, "
+          f"lookahead {a.lookahead}, from {a.prefetch_from}; configurations interleaved, best of {a.repeats}; {_bench.BLAS_NOTE}")
     print(f"{'configuration':<14}{'decode tok/s':>14}{'stall share':>13}{'hit rate':>10}")
     for key, label in (("bare", "bare"), ("resident", "resident"), ("whole_layer", "whole-layer"), ("no_reuse", "no-reuse"),
                        ("lru", "lru"), ("prefetch", "lru+prefetch")):
