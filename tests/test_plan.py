@@ -182,3 +182,25 @@ def test_a_shape_file_plans_a_model_too_big_to_run_here(tmp_path, capsys):
     assert doc["recommended"]["tok_s"] > 0
     pts = [p["tok_s"] for p in doc["curve"]["points"]]
     assert all(b >= a for a, b in zip(pts, pts[1:]))
+
+
+def test_target_answers_the_smallest_cap_whose_plan_reaches_it(tmp_path, capsys):
+    # a model too big to run here (shape file), 4 layers of 8 experts: the curve steps 2 slots at a time,
+    # so the answer must come from a one-slot search; a plan at that cap reaches the target and a plan
+    # one slot below does not (the planner checked against itself: no outside value exists for this)
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(2), layers=4, experts=8))
+    shape = _shape(tmp_path, layers=4, experts=8)
+    common = ["plan", "--shape", str(shape), "--trace", str(trace), "--link-speed", "1GB/s", "--evict", "lru", "--json"]
+    code, out, err = _run([*common, "--mem-cap", "64MiB"], capsys)
+    assert code == 0, err
+    pts = json.loads(out)["curve"]["points"]
+    mid = [(a, b) for a, b in zip(pts, pts[1:]) if b["tok_s"] > a["tok_s"]][len(pts) // 3]
+    target = (mid[0]["tok_s"] + mid[1]["tok_s"]) / 2  # between two curve points
+    code, out, err = _run([*common, "--target", f"{target:.3f}"], capsys)
+    assert code == 0, err
+    cap = json.loads(out)["target"]["smallest_cap_bytes"]
+    assert mid[0]["cap_bytes"] < cap <= mid[1]["cap_bytes"]
+    best = lambda c: json.loads(_run([*common, "--mem-cap", str(c)], capsys)[1])["recommended"]["tok_s"]  # noqa: E731
+    assert best(cap) >= target
+    assert best(cap - (1 << 20)) < target  # one slot (expert_bytes = 1 MiB) less

@@ -192,7 +192,13 @@ def run(args) -> int:
     doc["curve"] = {"policy": curve_policy, "points": curve}
     code = 0
     if args.target is not None:
-        hit = next((p for p in curve if p["tok_s"] >= args.target), None)
+        i = next((i for i, p in enumerate(curve) if p["tok_s"] >= args.target), None)
+        hit = curve[i] if i is not None else None
+        if i:  # the curve steps several slots at a time: look at the totals in between, one slot at a time
+            for total in range(curve[i - 1]["slots_total"] + 1, hit["slots_total"]):
+                if max(pr.tok_s for _, pr in candidates(total, [curve_policy], curve_pf)) >= args.target:
+                    hit = {"cap_bytes": fixed + total * slot}
+                    break
         doc["target"] = {"tok_s": args.target, "smallest_cap_bytes": hit["cap_bytes"] if hit else None,
                          "reachable": hit is not None, "best_tok_s": curve[-1]["tok_s"]}
         if hit is None:
