@@ -160,10 +160,6 @@ class Reader:
             self._dead = True
         return not self._dead
 
-    @property
-    def reads(self) -> int:
-        return int(self.c[rc.READS]) if not self._closed else 0
-
     def rss_bytes(self) -> int | None:
         """The reader process's own resident memory (the shared pool excluded), None if unknown."""
         if not self.alive:

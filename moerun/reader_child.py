@@ -34,7 +34,6 @@ import time
 
 # control words (int64) at the start of the shared memory
 HEAD = 0  # requests written by the engine
-TAIL = 1  # requests taken in by the reader
 STOP = 2  # the engine asks the reader to exit
 PROGRESS = 3  # step * n_layers + layer of the layer the engine is computing
 SLEEPING = 4  # the reader is blocked on the doorbell
@@ -43,9 +42,8 @@ SEED = 6  # test hook: seed of those delays
 FAIL_EVERY = 7  # test hook: every FAIL_EVERY-th guess read reports a failure
 READS = 8  # reads done
 PID = 9  # the reader's pid, written once it is serving
-BUSY_NS = 10  # time the (emulated) channel spent transferring
-FAIL_DEMAND = 11  # test hook: FAIL_EVERY counts demand reads too
-DIE_AFTER = 12  # test hook: the process exits abruptly when it takes a request after this many reads
+FAIL_DEMAND = 10  # test hook: FAIL_EVERY counts demand reads too
+DIE_AFTER = 11  # test hook: the process exits abruptly when it takes a request after this many reads
 SLOT0 = 16  # per-slot words start here
 PER_SLOT = 8
 DONE, RESULT, USABLE, START, NS, PROMOTE = range(6)  # offsets within a slot's words
@@ -103,7 +101,6 @@ class Server:
             b = self.r0 + ENTRY * (self.seen % self.ring)
             self.pending.append(c[b : b + 6].tolist() + [0, 0])  # + bytes done, start ns
             self.seen += 1
-        c[TAIL] = self.seen
 
     def urgent(self, r) -> bool:
         return bool(r[4]) or self.c[SLOT0 + PER_SLOT * r[0] + PROMOTE] == r[1]
@@ -180,7 +177,6 @@ class Server:
         now = time.monotonic_ns()
         end = max(now, start + int(k / self.rate * 1e9)) if self.rate else now
         self.link_free = end
-        c[BUSY_NS] += end - start
         r[6] = done = done + k
         if ok and done < n:
             self.wait(end)

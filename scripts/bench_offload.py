@@ -33,21 +33,16 @@ from moerun.sampling import Sampling
 from moerun.units import fmt_bytes, parse_rate
 
 
-def decode(model, prompt, max_new, seed, repeats=1, **kw):
-    """Best decode tok/s over ``repeats`` generations, plus the engine's stats of the best one."""
-    best = None
-    for _ in range(repeats):
-        with moerun.load(model, **kw) as eng:
-            gen = eng.generate(prompt, max_new=max_new, sampling=Sampling(temperature=0.8, seed=seed))
-            stats = eng.stats
-            stall = getattr(eng.experts, "stall_ns", None)
-            if stall is None and "pool" in stats:
-                stall = stats["pool"]["stall_ns"]
-            row = {"tok_s": gen.decode_tok_s, "decode_s": gen.decode_ns / 1e9, "tokens": gen.new_ids, "stats": stats,
-                   "stall_s": (stall or 0) / 1e9, "total_s": (gen.decode_ns + gen.prefill_ns) / 1e9}
-        if best is None or row["tok_s"] > best["tok_s"]:
-            best = row
-    return best
+def decode(model, prompt, max_new, seed, **kw):
+    """Decode tok/s of one generation, with the engine's stats."""
+    with moerun.load(model, **kw) as eng:
+        gen = eng.generate(prompt, max_new=max_new, sampling=Sampling(temperature=0.8, seed=seed))
+        stats = eng.stats
+        stall = getattr(eng.experts, "stall_ns", None)
+        if stall is None and "pool" in stats:
+            stall = stats["pool"]["stall_ns"]
+    return {"tok_s": gen.decode_tok_s, "decode_s": gen.decode_ns / 1e9, "tokens": gen.new_ids, "stats": stats,
+            "stall_s": (stall or 0) / 1e9, "total_s": (gen.decode_ns + gen.prefill_ns) / 1e9}
 
 
 SESSION_PROMPTS = [
@@ -174,7 +169,7 @@ def main() -> int:
     if a.link_speed:
         rate = parse_rate(a.link_speed)
     else:  # calibrate: LRU at real speed, then the rate at which page-in time equals compute time
-        cal = decode(model, prompt, a.max_new, a.seed, 1, mem_cap=cap)
+        cal = decode(model, prompt, a.max_new, a.seed, mem_cap=cap)
         misses = cal["stats"]["pool"]["misses"]
         compute_s = cal["decode_s"] - cal["stall_s"]
         rate = misses * st.expert_nbytes / max(compute_s, 1e-6)
@@ -190,7 +185,7 @@ def main() -> int:
     runs = {}
     for _ in range(a.repeats):  # interleaved, so a slow spell of a shared machine hits every configuration alike
         for key, kw in configs.items():
-            row = decode(model, prompt, a.max_new, a.seed, 1, **kw)
+            row = decode(model, prompt, a.max_new, a.seed, **kw)
             if key not in runs or row["tok_s"] > runs[key]["tok_s"]:
                 runs[key] = row
     same = all(r["tokens"] == runs["bare"]["tokens"] for r in runs.values())
