@@ -18,10 +18,10 @@ import numpy as np
 from .budget import Budget, plan_budget
 from .errors import BadOption
 from .memwatch import MemWatch
-from .model import KVCache, Transformer, rmsnorm
+from .model import KVCache, Transformer
 from .pool import ExpertPool
-from .prefetch import Prefetcher
-from .reader import Reader
+from .prefetch import GuessRule, Prefetcher
+from .reader import STALL_TIMEOUT_S, Reader
 from .sampling import Sampler, Sampling
 from .sources import BareExperts, NoReuseExperts, WholeLayerExperts
 from .store import ModelStore
@@ -64,7 +64,7 @@ class Engine:
         tokenizer: Tokenizer | None,
         budget: Budget,
         experts,
-        prefetcher: Prefetcher | None,
+        reader: Reader | None,
         memwatch: MemWatch,
         options: dict,
     ):
@@ -74,7 +74,6 @@ class Engine:
         self.budget = budget
         self.experts = experts
         self.pool = experts if isinstance(experts, ExpertPool) else None
-        self.prefetcher = prefetcher
         self.model = Transformer(store.config, store.dense)
         for layer in range(store.config.n_layers):  # now held once, fused as wqkv
             for part in ("attn.wq", "attn.wk", "attn.wv"):
@@ -83,33 +82,36 @@ class Engine:
         self.memwatch = memwatch
         self.options = options
         self.recorder: Recorder | None = None
+        self._recorder_rule: GuessRule | None = None
         self._step_clock = 0
         self.prefetch_from = options.get("prefetch_from", "attention")
-        experts.guess_hook = self._prefetch_point
-        if prefetcher is not None:
-            prefetcher.model = self.model
+        self.prefetcher = None
+        if reader is not None:
+            rule = GuessRule(self.model, options["lookahead"])
+            self.prefetcher = Prefetcher(self.pool, rule, options["prefetch"], options["lookahead"], reader)
 
-    # ------------------------------------------------------------------ hooks
-    def _prefetch_point(self, layer: int, h: np.ndarray, point: str) -> None:
-        """Called after layer's attention ("attention") and after the whole layer ("output")."""
-        if self.prefetcher is not None and h.shape[0] == 1 and point == self.prefetch_from:
-            self.prefetcher.guess(layer, h)
-        if self.recorder is not None and point == "attention":
+    # ------------------------------------------------------------------ the prefetch point
+    def _seen(self):
+        """The callback the model shows its hidden states to (None when nothing needs them)."""
+        if self.recorder is not None:
+            return self._point
+        if self.prefetcher is not None and self.pool._all_resident is None:  # with every expert resident, nothing to fetch
+            return self._point
+        return None
+
+    def _point(self, layer: int, where: str, h: np.ndarray) -> None:
+        """After layer's attention ("attention") and after the whole layer ("output")."""
+        if self.prefetcher is not None and where == self.prefetch_from and h.shape[0] == 1:
+            self.prefetcher(layer, h)
+        if self.recorder is not None and where == "attention":
             self.recorder.guessed(layer, self.guesses(layer, h, self.recorder.lookahead, self.recorder.n_guesses))
 
     def guesses(self, layer: int, h: np.ndarray, lookahead: int, n: int) -> np.ndarray:
         """The prefetch rule for every row of h: [T, lookahead, n] expert ids, -1 past the last layer."""
-        L = self.config.n_layers
-        out = np.full((h.shape[0], lookahead, n), -1, np.int16)
-        for j in range(1, lookahead + 1):
-            t = layer + j
-            if t >= L:
-                break
-            w = self.model.layers[t]
-            z = rmsnorm(h, w.moe_norm, self.model.eps) @ w.router
-            top = np.argsort(-z, axis=-1, kind="stable")[:, :n]  # fewer than n when the model has fewer experts
-            out[:, j - 1, : top.shape[1]] = top
-        return out
+        rule = self._recorder_rule
+        if rule is None or rule.lookahead < lookahead:
+            rule = self._recorder_rule = GuessRule(self.model, lookahead)
+        return rule.table(layer, h, lookahead, n)
 
     # ------------------------------------------------------------------ passes
     def _check_ids(self, ids) -> np.ndarray:
@@ -135,7 +137,7 @@ class Engine:
         """Float32 logits [len, vocab_size] from one forward pass over the sequence."""
         ids = self._check_ids(token_ids)
         self.experts.begin_step(-1)
-        x = self.model.forward(ids, 0, self.cache, self.experts)
+        x = self.model.forward(ids, 0, self.cache, self.experts, self._seen())
         return self.model.logits(x)
 
     def generate(
@@ -161,8 +163,9 @@ class Engine:
         sampler = Sampler(sampling or Sampling())
         kept: list[np.ndarray] = []
         t0 = time.monotonic_ns()
+        seen = self._seen()
         self.experts.begin_step(-1)
-        x = self.model.forward(ids, 0, self.cache, self.experts)
+        x = self.model.forward(ids, 0, self.cache, self.experts, seen)
         logits = self._finite(self.model.logits(x[-1:])[0])
         prefill_ns = time.monotonic_ns() - t0
         self.memwatch.sample()
@@ -186,7 +189,7 @@ class Engine:
             t1 = time.monotonic_ns()
             self.experts.begin_step(self._step_clock)
             self._step_clock += 1  # never repeats across generations, so stale guesses stay stale
-            x = self.model.forward(np.array([tok]), pos, self.cache, self.experts)
+            x = self.model.forward(np.array([tok]), pos, self.cache, self.experts, seen)
             logits = self._finite(self.model.logits(x)[0])
             decode_ns += time.monotonic_ns() - t1
             steps += 1
@@ -247,11 +250,7 @@ class Engine:
     def close(self) -> None:
         if self.prefetcher is not None:
             self.prefetcher.close()
-            self.prefetcher.model = None
             self.prefetcher = None
-        self.experts.guess_hook = None  # break the engine <-> pool <-> prefetcher cycles so memory is freed at once
-        if self.pool is not None:
-            self.pool.prefetcher = None
         self.store.close()
 
     def __enter__(self):
@@ -276,6 +275,7 @@ def load(
     bare: bool = False,
     tokenizer: bool = True,
     baseline: str | None = None,
+    reader_timeout: float = STALL_TIMEOUT_S,
 ) -> Engine:
     """Open a model and return an engine (DESIGN section 4).
 
@@ -286,6 +286,8 @@ def load(
     link_speed: bytes/s (or "2GB/s") of an emulated slower link.
     bare: every expert resident in plain buffers, no pool (speed reference).
     baseline: "whole-layer" or "no-reuse", the naive offloading baselines of the benchmarks.
+    reader_timeout: seconds the prefetch reader may go without progress while the engine waits
+    before the engine stops it and reads every expert itself (docs/offload.md).
     """
     from . import policies
 
@@ -310,7 +312,6 @@ def load(
         chosen_split = list(slots) if slots is not None else split
         budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, cap, chosen_split, store.codec.scratch_bytes())
         store.link_rate = rate
-        prefetcher = None
         if bare:
             experts = BareExperts(store)
         elif baseline is not None:
@@ -320,15 +321,10 @@ def load(
             experts = kinds[baseline](store)
         else:
             if prefetch > 0:  # every page-in of the run then goes through the reader process
-                reader = Reader(store, budget.n_slots, budget.slot)
-            experts = ExpertPool(store, budget, evict, block=reader.block if reader is not None else None)
+                reader = Reader(store, budget.n_slots, budget.slot, reader_timeout)
+            experts = ExpertPool(store, budget, evict, reader)
             if cap is None:
                 experts.preload_all()
-                experts.stats.bytes_in = 0
-            if reader is not None:
-                experts.reader = reader
-                prefetcher = Prefetcher(experts, None, prefetch, lookahead, reader)
-                experts.prefetcher = prefetcher
         options = {
             "mem_cap": cap,
             "evict": evict,
@@ -341,7 +337,7 @@ def load(
             "bare": bare,
             "baseline": baseline,
         }
-        return Engine(store, tok, budget, experts, prefetcher, watch, options)
+        return Engine(store, tok, budget, experts, reader, watch, options)
     except BaseException:
         if reader is not None:
             reader.close()

@@ -35,3 +35,11 @@ class BadInput(MoerunError):
 
 class PageInError(MoerunError):
     """Reading an expert from storage failed (I/O error, file changed under us)."""
+
+
+class ReaderError(MoerunError):
+    """The prefetch reader process could not be started."""
+
+
+class ReaderStalled(UserWarning):
+    """Warning: the prefetch reader stopped making progress; the engine read experts itself from then on."""

@@ -91,19 +91,15 @@ def moe(u: np.ndarray, layer: int, chosen: np.ndarray, weights: np.ndarray, expe
         ys: list = [None] * k
         for j in experts.compute_order(layer, ids):
             ys[j] = weights[0, j] * expert(u, *experts.weights(layer, ids[j]))
-            experts.done(layer, ids[j])
         out = ys[0]
         for y in ys[1:]:
             out = out + y
         return out
     out = np.zeros_like(u)
-    needed = np.unique(chosen).tolist()
-    experts.begin_prefill_layer(layer, needed)
-    for e in needed:
+    for e in np.unique(chosen).tolist():
         rows, slot = np.nonzero(chosen == e)
         y = expert(u[rows], *experts.weights(layer, e))
         out[rows] += weights[rows, slot][:, None] * y
-        experts.done(layer, e)
     return out
 
 
@@ -186,35 +182,31 @@ class Transformer:
         return out @ self.layers[layer].wo
 
     # -------------------------------------------------------------- layers
-    def layer(self, x: np.ndarray, layer: int, start: int, cache: KVCache, experts) -> np.ndarray:
+    def layer(self, x: np.ndarray, layer: int, start: int, cache: KVCache, experts, seen=None) -> np.ndarray:
+        """One layer.  ``seen(layer, where, state)``, if given, is shown the hidden state after attention
+        (once the layer has routed, so its own misses are already asked for) and after the layer:
+        the engine's prefetch points."""
         w = self.layers[layer]
         experts.begin_layer(layer)
         h = x + self.attention(rmsnorm(x, w.attn_norm, self.eps), layer, start, cache)
         u = rmsnorm(h, w.moe_norm, self.eps)
         chosen, weights, probs = route(u, w.router, self.config.top_k)
         experts.routed(layer, chosen, weights, probs)
-        # the prefetch point on the state after attention, once this layer's own misses are asked for
-        experts.after_attention(layer, h)
+        if seen is not None:
+            seen(layer, "attention", h)
         out = h + moe(u, layer, chosen, weights, experts)
         experts.end_layer(layer)
-        experts.after_layer(layer, out)
+        if seen is not None:
+            seen(layer, "output", out)
         return out
 
-    def forward(self, ids: np.ndarray, start: int, cache: KVCache, experts) -> np.ndarray:
+    def forward(self, ids: np.ndarray, start: int, cache: KVCache, experts, seen=None) -> np.ndarray:
         """Hidden states leaving the last layer for tokens at positions start.. (not yet normed)."""
         x = self.embed[ids]
         for layer in range(self.config.n_layers):
-            x = self.layer(x, layer, start, cache, experts)
+            x = self.layer(x, layer, start, cache, experts, seen)
         cache.length = start + len(ids)
         return x
 
     def logits(self, x: np.ndarray) -> np.ndarray:
         return rmsnorm(x, self.final_norm, self.eps) @ self.lm_head
-
-    def guess(self, h: np.ndarray, layer: int, n: int) -> list[int]:
-        """The speculative rule: layer's router applied to hidden state h (one token); top-n ids."""
-        w = self.layers[layer]
-        z = (rmsnorm(h, w.moe_norm, self.eps) @ w.router)[0]
-        if n >= len(z):
-            return np.argsort(-z, kind="stable").tolist()
-        return np.argsort(-z, kind="stable")[:n].tolist()

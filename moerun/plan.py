@@ -37,7 +37,7 @@ import numpy as np
 from . import policies
 from .errors import BadInput, BadOption, ImpossibleBudget
 from .fileio import write_text_atomic
-from .replay import layer_plans, make_policy, prefill_tokens, replay_counts
+from .replay import layer_plans, plan_policy, prefill_tokens, replay_counts
 from .residency import NoVictim, Residency
 from .trace import Trace
 
@@ -120,7 +120,7 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
     P = prefill_tokens(trace)
     ex = trace.experts.tolist()
     plans = layer_plans(trace)
-    res = [Residency(max(s, 1), make_policy(cls, plans[layer].keys.tolist())) for layer, s in enumerate(slots)]
+    res = [Residency(max(s, 1), plan_policy(cls, plans[layer])) for layer, s in enumerate(slots)]
     # prefill: each layer's distinct experts once, ascending, pinned alone (as the pool does)
     for layer in range(L):
         for e in sorted({e for t in range(P) for e in ex[t][layer] if e >= 0}):
@@ -192,7 +192,8 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
             for e in chosen:
                 while True:
                     try:
-                        hit, _, _ = res[layer].access(e, pinned if len(chosen) <= slots[layer] else (e,), busy - {e})
+                        res[layer].busy = busy - {e}
+                        hit, _, _ = res[layer].access(e, pinned if len(chosen) <= slots[layer] else (e,))
                         break
                     except NoVictim:  # every other slot is being read: wait for the first to finish
                         serve(now, step, need=True)
@@ -237,7 +238,8 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
                         if e in res[tl]:
                             continue
                         try:
-                            res[tl].insert(e, protect, outstanding(tl, now))
+                            res[tl].busy = outstanding(tl, now)
+                            res[tl].insert(e, protect)
                         except NoVictim:
                             continue
                         pending.append([now, tl, e, t * L + tl, False])
@@ -370,7 +372,7 @@ def calibrate(model_dir, tokens: int = 96, repeats: int = 3, recalibrate: bool =
             step = gen.decode_ns / 1e9 / gen.decode_steps
             layer_s = comp.mean(axis=0) / 1e9
             u = np.random.default_rng(0).standard_normal((1, eng.config.d_model)).astype(np.float32)
-            w = eng.experts.store.codec.weights(eng.experts.bound[0])
+            w = eng.experts.codec.weights(eng.experts.slots[0].bound)
             ts = []
             for _ in range(200):
                 t0 = time.perf_counter_ns()

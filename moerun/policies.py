@@ -1,23 +1,29 @@
 """Eviction policies, shared by the live pool and the trace replay simulator.
 
-A policy sees the keys of one pool (expert ids of a layer, or (layer, expert)
-pairs for a pool shared by all layers) and a clock ``now`` that counts
-accesses.  The pool tells it what was inserted, hit and evicted, and asks it
-to pick a victim among the resident keys that may be evicted (never the
-experts pinned by the layer being computed).  See docs/policies.md.
+A policy sees the keys of one pool as small integers: the expert ids of a
+layer (one pool per layer), or ``layer * n_experts + expert`` (one pool shared
+by all layers), and a clock ``now`` that counts accesses.  The pool tells it
+what was inserted, hit and evicted, and asks it to pick a victim among the
+resident keys that may be evicted (never the experts pinned by the layer being
+computed).  See docs/policies.md.
+
+State lives in plain lists indexed by key, so a notification is a list store
+and a victim is one ``min`` over the candidates: no per-access allocation.
+Lists grow on insertion (a hit is always on an inserted key), so a policy made
+without ``n_keys`` works for any small non-negative keys.
 
 Writing a policy::
 
     class MostRecent(Policy):
         name = "mru"
-        def __init__(self):
-            self.last = {}
+        def __init__(self, n_keys=0, shared_experts=0):
+            super().__init__(n_keys, shared_experts)
+            self.last = [0] * n_keys
         def inserted(self, key, now):
+            grow(self.last, key)
             self.last[key] = now
         def hit(self, key, now):
             self.last[key] = now
-        def evicted(self, key):
-            del self.last[key]
         def victim(self, candidates, now):
             return max(candidates, key=self.last.__getitem__)
 
@@ -27,20 +33,36 @@ Writing a policy::
 from __future__ import annotations
 
 import array
+import inspect
 import math
-from collections.abc import Callable, Hashable, Sequence
+from collections.abc import Callable, Sequence
 
 import numpy as np
 
-Key = Hashable
+Key = int
 LN2 = math.log(2.0)
 
 
+def grow(values: list, key: int, fill=0) -> None:
+    """Extend ``values`` with ``fill`` so that ``values[key]`` exists (the policies' per-key lists)."""
+    if key >= len(values):
+        values.extend([fill] * (key + 1 - len(values)))
+
+
 class Policy:
-    """Base class: override ``victim`` and whichever notifications you need."""
+    """Base class: override ``victim`` and whichever notifications you need.
+
+    ``n_keys`` is the size of the key space when known (0: keys are small ints, lists grow as they
+    come).  ``shared_experts`` is set for a pool shared by all layers: the experts per layer, so a
+    key splits into ``divmod(key, shared_experts)`` = (layer, expert); 0 for a pool of one layer.
+    """
 
     name = "base"
     online = True  # False only for policies that read the future (the offline optimum)
+
+    def __init__(self, n_keys: int = 0, shared_experts: int = 0):
+        self.n_keys = n_keys
+        self.shared_experts = shared_experts
 
     def inserted(self, key: Key, now: int) -> None:
         """``key`` was just loaded into the pool (by demand or by prefetch)."""
@@ -62,22 +84,41 @@ class Policy:
         step's first access.  The live pool and the replay both call it; prefill is not signalled.
         The arrays belong to the caller: copy what you keep."""
 
+    def admits(self, key: Key, victim: Key, now: int) -> bool:
+        """Would the policy rather hold ``key`` (a guess about to be prefetched) than ``victim`` (the
+        resident it would evict for it)?  The pool asks before every prefetch that evicts.  The
+        default says yes: a guess is for the coming step, sooner than any other use."""
+        return True
+
+
+def make_policy(cls: type[Policy], n_keys: int = 0, shared_experts: int = 0, future: Sequence[Key] | None = None) -> Policy:
+    """A policy object for a pool of ``n_keys`` keys; an offline one (``online = False``) gets the access sequence.
+
+    Policies written before keys were counted (an ``__init__`` without parameters) still work."""
+    if not getattr(cls, "online", True):
+        return cls(future if future is not None else [])
+    try:
+        params = inspect.signature(cls).parameters
+    except (TypeError, ValueError):
+        params = {"n_keys": None}
+    return cls(n_keys, shared_experts) if len(params) >= 2 else cls(n_keys) if params else cls()
+
 
 class LRU(Policy):
     """Least recently used: evict the key whose last access is oldest."""
 
     name = "lru"
 
-    def __init__(self):
-        self.last: dict[Key, int] = {}
+    def __init__(self, n_keys: int = 0, shared_experts: int = 0):
+        super().__init__(n_keys, shared_experts)
+        self.last = [0] * n_keys
 
     def inserted(self, key, now):
+        grow(self.last, key)
         self.last[key] = now
 
-    hit = inserted
-
-    def evicted(self, key):
-        self.last.pop(key, None)
+    def hit(self, key, now):
+        self.last[key] = now
 
     def victim(self, candidates, now):
         return min(candidates, key=self.last.__getitem__)
@@ -88,14 +129,13 @@ class FIFO(Policy):
 
     name = "fifo"
 
-    def __init__(self):
-        self.loaded: dict[Key, int] = {}
+    def __init__(self, n_keys: int = 0, shared_experts: int = 0):
+        super().__init__(n_keys, shared_experts)
+        self.loaded = [0] * n_keys
 
     def inserted(self, key, now):
+        grow(self.loaded, key)
         self.loaded[key] = now
-
-    def evicted(self, key):
-        self.loaded.pop(key, None)
 
     def victim(self, candidates, now):
         return min(candidates, key=self.loaded.__getitem__)
@@ -106,11 +146,14 @@ class LFU(Policy):
 
     name = "lfu"
 
-    def __init__(self):
-        self.count: dict[Key, int] = {}
-        self.last: dict[Key, int] = {}
+    def __init__(self, n_keys: int = 0, shared_experts: int = 0):
+        super().__init__(n_keys, shared_experts)
+        self.count = [0] * n_keys
+        self.last = [0] * n_keys
 
     def inserted(self, key, now):
+        grow(self.count, key)
+        grow(self.last, key)
         self.count[key] = 1
         self.last[key] = now
 
@@ -118,12 +161,9 @@ class LFU(Policy):
         self.count[key] += 1
         self.last[key] = now
 
-    def evicted(self, key):
-        self.count.pop(key, None)
-        self.last.pop(key, None)
-
     def victim(self, candidates, now):
-        return min(candidates, key=lambda k: (self.count[k], self.last[k]))
+        count, last = self.count, self.last
+        return min(candidates, key=lambda k: (count[k], last[k]))
 
 
 class Optimal(Policy):
@@ -138,22 +178,20 @@ class Optimal(Policy):
     online = False
 
     def __init__(self, future: Sequence[Key]):
+        super().__init__(0, 0)
         n = len(future)
         self.next_use = [n] * n  # next_use[i] = index of the next access to future[i] after i
         seen: dict[Key, int] = {}
         for i in range(n - 1, -1, -1):
             self.next_use[i] = seen.get(future[i], n + 1)
             seen[future[i]] = i
-        self.upcoming: dict[Key, int] = {}
+        self.upcoming = [0] * (max(future, default=-1) + 1)
         self.n = n
 
     def inserted(self, key, now):
         self.upcoming[key] = self.next_use[now]
 
     hit = inserted
-
-    def evicted(self, key):
-        self.upcoming.pop(key, None)
 
     def victim(self, candidates, now):
         return max(candidates, key=self.upcoming.__getitem__)
@@ -173,13 +211,18 @@ class LRFU(Policy):
     name = "lrfu"
     lam = 0.01  # per access; chosen on tuning traces (docs/policy_research.md)
 
-    def __init__(self):
-        self.count: dict[Key, float] = {}  # decayed count at the key's last access
-        self.last: dict[Key, int] = {}
+    def __init__(self, n_keys: int = 0, shared_experts: int = 0):
+        super().__init__(n_keys, shared_experts)
+        self.count = [0.0] * n_keys  # decayed count at the key's last access (0: never seen)
+        self.last = [0] * n_keys
 
     def inserted(self, key, now):
-        c = self.count.get(key)
-        self.count[key] = 1.0 if c is None else 1.0 + c * 2.0 ** (-self.lam * (now - self.last[key]))
+        count = self.count
+        if key >= len(count):
+            grow(count, key, 0.0)
+            grow(self.last, key)
+        c = count[key]
+        count[key] = 1.0 if c == 0.0 else 1.0 + c * 2.0 ** (-self.lam * (now - self.last[key]))
         self.last[key] = now
 
     hit = inserted
@@ -314,8 +357,8 @@ class Markov(LRFU):
     chosen experts of each step through ``routed`` (the live pool and the replay both call it);
     without those calls (or in prefill) the model has no context and the rule reduces to LRFU.
 
-    Keys are expert ids (one policy per layer) or ``(layer, expert)`` pairs (one pool shared by
-    all layers: one routing model per layer).  Parameters were chosen on tuning traces and
+    Keys are expert ids (one policy per layer) or ``layer * shared_experts + expert`` (one pool
+    shared by all layers: one routing model per layer).  Parameters were chosen on tuning traces and
     checked on traces never used for tuning (docs/policy_research.md, scripts/tune_policy.py).
     """
 
@@ -329,10 +372,10 @@ class Markov(LRFU):
     lam = 0.01  # LRFU decay per access
     w = 0.5  # weight of the frequency term
 
-    def __init__(self):
-        super().__init__()
+    def __init__(self, n_keys: int = 0, shared_experts: int = 0):
+        super().__init__(n_keys, shared_experts)
         self.models: dict = {}
-        self.layer = None  # the layer of plain (non-tuple) keys: the last one routed
+        self.layer = None  # the layer of a per-layer pool's keys: the last one routed
 
     def _model(self, layer) -> _RoutingModel:
         m = self.models.get(layer)
@@ -346,11 +389,11 @@ class Markov(LRFU):
 
     def score(self, key: Key, now: int) -> float:
         """log p(key needed soon) + w * ln crf(key); the smallest is evicted."""
-        layer, e = key if isinstance(key, tuple) else (self.layer, key)
+        layer, e = divmod(key, self.shared_experts) if self.shared_experts else (self.layer, key)
         return math.log(self._model(layer).p(e)) + self.w * (math.log(self.count[key]) - self.lam * LN2 * (now - self.last[key]))
 
     def victim(self, candidates, now):
-        if isinstance(candidates[0], tuple):  # a shared pool: each key scored by its layer's model
+        if self.shared_experts:  # a shared pool: each key scored by its layer's model
             return min(candidates, key=lambda k: self.score(k, now))
         p, count, last = self._model(self.layer).p, self.count, self.last  # the same rule as score(), inlined
         w, c, log = self.w, self.lam * LN2, math.log

@@ -1,16 +1,19 @@
 """The resident expert pool: preallocated slots under the cap, pinning, page-in, timings.
 
-The pool is also the *expert source* the model asks for weights
-(``moerun.model.moe``): ``routed`` does the residency bookkeeping for a
-layer's chosen experts in ascending id (the same order the replay uses),
-``compute_order`` lists resident experts first, ``weights`` returns an
-expert's float32 matrices once its bytes are in a slot (waiting for an
-in-flight prefetch, or reading synchronously), and ``done`` unpins it.
+The pool is the *expert source* the model asks for weights (``moerun.sources.ExpertSource``):
+``routed`` does the residency bookkeeping for a layer's chosen experts in
+ascending id (the same order the replay uses), ``compute_order`` lists
+resident experts first, and ``weights`` returns an expert's float32 matrices
+once its bytes are in a slot (waiting for an in-flight read, or reading
+synchronously).
 
-Slots are one preallocated, page-aligned block, written only by page-in.
-Everything here runs on the compute thread.  With prefetch on, reads are
-handed to the reader process (``moerun.reader``): the slot stays LOADING,
-and so cannot be evicted or reused, until the reader publishes its result.
+Slots are one preallocated, page-aligned block, written only by page-in; each
+has one ``Slot`` record.  Everything here runs on the compute thread.  With
+prefetch on, reads are handed to the reader process (``moerun.reader``): the
+slot stays LOADING, and so cannot be evicted or reused, until the reader
+publishes its result.  ``prefetch`` places a guess: it is read only if it can
+arrive about when its layer needs it and the policy would rather hold it than
+the expert it evicts (``Policy.admits``).
 """
 
 from __future__ import annotations
@@ -22,66 +25,92 @@ import numpy as np
 
 from . import policies, reader_child
 from .budget import Budget
+from .clock import wait_until
+from .errors import BadOption
 from .residency import NoVictim, Residency
-from .sources import ExpertSource
-from .store import ModelStore, wait_until
+from .sources import ExpertSource, aligned_block
+from .store import ModelStore
 
 EMPTY, LOADING, READY = 0, 1, 2  # LOADING: a background read is outstanding in the reader process
 HIT, PREFETCHED, MISS = 0, 1, 2
+DEMAND, GUESS, PREFILL = 0, 1, 2  # why a slot is being read
 KIND_NAMES = {HIT: "hit", PREFETCHED: "prefetched", MISS: "miss"}
+
+
+@dataclass(eq=False, slots=True)
+class Slot:
+    """One expert-sized buffer of the pool and what it holds."""
+
+    index: int
+    buf: np.ndarray
+    bound: object  # the codec's views of buf
+    state: int = EMPTY
+    layer: int = -1  # the expert it holds or is being read into (-1: none)
+    expert: int = -1
+    gen: int = 0  # bumped by every new read, so a result for an earlier read is never taken
+    guess: bool = False  # loaded by a guess that no layer has used yet
+    why: int = 0  # who asked for its current read: DEMAND, GUESS or PREFILL
+    usable_at: int = 0  # when its (emulated) transfer is done; a layer may use it from then on
+    start_ns: int = 0  # when its current read started
+    read_ns: int = 0
 
 
 @dataclass
 class PoolStats:
     n_layers: int
-    accesses: np.ndarray = field(init=False)
-    hits: np.ndarray = field(init=False)  # resident without a pending guess
-    prefetch_hits: np.ndarray = field(init=False)  # resident or in flight thanks to a guess
-    misses: np.ndarray = field(init=False)
-    stall_ns: np.ndarray = field(init=False)
-    pagein_ns: np.ndarray = field(init=False)  # synchronous page-in time on the compute thread
+    accesses: list = field(init=False)
+    hits: list = field(init=False)  # resident without a pending guess
+    prefetch_hits: list = field(init=False)  # resident or in flight thanks to a guess
+    misses: list = field(init=False)
+    stall_ns: list = field(init=False)
+    pagein_ns: list = field(init=False)  # synchronous page-in time of demand reads
     bytes_in: int = 0  # all bytes paged in (demand + prefetch)
     demand_loads: int = 0
     prefill_loads: int = 0
     prefetch_guesses: int = 0  # guesses made
+    prefetch_resident: int = 0  # guesses already resident or in flight: nothing to do
+    prefetch_declined: int = 0  # guesses not read: too late to arrive in time, or the policy kept its victim
     prefetch_loads: int = 0  # guesses that needed a page-in
     prefetch_used: int = 0  # prefetched experts that a layer then used
     prefetch_wasted_bytes: int = 0  # prefetched bytes evicted before any use
     prefetch_failed: int = 0
     prefetch_ns: int = 0  # page-in time of guesses in the reader process
     hidden_ns: int = 0  # prefetch page-in time of used guesses not waited for
+    reader_stalled: bool = False
 
     def __post_init__(self):
-        L = self.n_layers
         for name in ("accesses", "hits", "prefetch_hits", "misses", "stall_ns", "pagein_ns"):
-            setattr(self, name, np.zeros(L, np.int64))
+            setattr(self, name, [0] * self.n_layers)
 
     def to_json(self) -> dict:
-        acc = self.accesses.sum()
+        acc = sum(self.accesses)
+        misses = sum(self.misses)
         return {
-            "accesses": int(acc),
-            "hits": int(self.hits.sum()),
-            "prefetch_hits": int(self.prefetch_hits.sum()),
-            "misses": int(self.misses.sum()),
-            "hit_rate": float((acc - self.misses.sum()) / acc) if acc else None,
+            "accesses": acc,
+            "hits": sum(self.hits),
+            "prefetch_hits": sum(self.prefetch_hits),
+            "misses": misses,
+            "hit_rate": (acc - misses) / acc if acc else None,
             "per_layer": [
                 {
                     "layer": i,
-                    "accesses": int(self.accesses[i]),
-                    "hits": int(self.hits[i]),
-                    "prefetch_hits": int(self.prefetch_hits[i]),
-                    "misses": int(self.misses[i]),
-                    "hit_rate": float(1 - self.misses[i] / self.accesses[i]) if self.accesses[i] else None,
+                    "accesses": self.accesses[i],
+                    "hits": self.hits[i],
+                    "prefetch_hits": self.prefetch_hits[i],
+                    "misses": self.misses[i],
+                    "hit_rate": 1 - self.misses[i] / self.accesses[i] if self.accesses[i] else None,
                 }
                 for i in range(self.n_layers)
             ],
-            "stall_ns": int(self.stall_ns.sum()),
-            "pagein_ns": int(self.pagein_ns.sum()),
-            "bytes_paged_in": int(self.bytes_in),
+            "stall_ns": sum(self.stall_ns),
+            "pagein_ns": sum(self.pagein_ns),
+            "bytes_paged_in": self.bytes_in,
             "demand_loads": self.demand_loads,
             "prefill_loads": self.prefill_loads,
             "prefetch": {
                 "guesses": self.prefetch_guesses,
+                "already_resident": self.prefetch_resident,
+                "declined": self.prefetch_declined,
                 "loads": self.prefetch_loads,
                 "used": self.prefetch_used,
                 "accuracy": (self.prefetch_used / self.prefetch_loads) if self.prefetch_loads else None,
@@ -89,93 +118,106 @@ class PoolStats:
                 "failed": self.prefetch_failed,
                 "pagein_ns": self.prefetch_ns,
                 "hidden_ns": self.hidden_ns,
+                "reader_stalled": self.reader_stalled,
             },
         }
+
+
+class LinkForecast:
+    """The compute thread's forecast of the link: when it frees, and how long a read takes.
+
+    It is told of every read handed to the reader and of every result, and of the time between a
+    layer's prefetch point and the next layer's routing, so that a guess can be judged by when it
+    would arrive against when its layer will need it.  Figures are running averages (1/8 weight).
+    """
+
+    __slots__ = ("read_ns", "free_at", "gap_ns", "mark")
+
+    def __init__(self, read_ns: float):
+        self.read_ns = read_ns  # one expert's read, as the reader reports it
+        self.free_at = 0  # when the reads handed over so far should be done
+        self.gap_ns = 0.0  # prefetch point of layer l to the routing of layer l + 1
+        self.mark = 0  # time of the last prefetch point
+
+    def queued(self, now: int) -> int:
+        """A read handed over now: returns when it should end."""
+        self.free_at = max(self.free_at, now) + int(self.read_ns)
+        return self.free_at
+
+    def observed(self, read_ns: int) -> None:
+        self.read_ns += (read_ns - self.read_ns) / 8
+
+    def layer_started(self, now: int) -> None:
+        if self.mark:
+            self.gap_ns += (now - self.mark - self.gap_ns) / 8
+            self.mark = 0
 
 
 class ExpertPool(ExpertSource):
     """Slots, residency per layer (or shared), and the expert-source interface for the model.
 
-    The prefetch-point hooks (``after_attention``, ``after_layer``) come from ``ExpertSource``.
-    Everything here runs on the compute thread; with prefetch on, background reads
-    go to the reader process (``moerun.reader``) and come back through shared memory.
+    Everything here runs on the compute thread; with a reader (prefetch on), every read goes
+    to the reader process (``moerun.reader``) and comes back through shared memory.
     """
 
-    def __init__(self, store: ModelStore, budget: Budget, evict: str = "lru", block: np.ndarray | None = None):
-        self.store = store
+    # A guess is read only if it should arrive no later than this share of one read after its
+    # layer starts routing (chosen by measurement: docs/offload.md, "Admission").
+    late_share = 0.5
+
+    def __init__(self, store: ModelStore, budget: Budget, evict: str = "lru", reader=None):
+        super().__init__(store)
         self.budget = budget
-        self.config = store.config
-        L = self.config.n_layers
+        self.config = c = store.config
+        L, E = c.n_layers, c.n_experts
         self.shared = budget.split == "shared"
         n_slots = budget.n_slots
         self.slot_size = budget.slot
-        if block is None:
-            raw = np.empty(n_slots * self.slot_size + 4096, np.uint8)
-            off = (-raw.ctypes.data) % 4096
-            block = raw[off : off + n_slots * self.slot_size]
-            self._raw = raw
-        self.block = block
-        self.block.fill(0)  # allocated once and touched now, so the cap is real from the start
-        self.slots = [self.block[i * self.slot_size : (i + 1) * self.slot_size] for i in range(n_slots)]
-        self.bound = [store.codec.bind(s) for s in self.slots]
-        self.state = [EMPTY] * n_slots
-        self.key_of: list = [None] * n_slots
-        self.prefetched = [False] * n_slots  # loaded by a guess and not used yet
-        self.by_guess = [False] * n_slots  # the slot's current background read was asked for by a guess
-        self.load_ns = [0] * n_slots
-        # when a background read's (emulated) transfer is done; a layer may use the slot from then on
-        self.usable_at = [0] * n_slots
-        self.load_t0 = [0] * n_slots  # when the slot's current read started
-        self.gen = [0] * n_slots  # bumped by every new read, so a result for an earlier read is never taken
+        if reader is not None:
+            block = reader.block
+        else:
+            block, self._raw = aligned_block(n_slots * self.slot_size)
+        block.fill(0)  # allocated once and touched now, so the cap is real from the start
+        bufs = [block[i * self.slot_size : (i + 1) * self.slot_size] for i in range(n_slots)]
+        self.slots = [Slot(i, b, store.codec.bind(b)) for i, b in enumerate(bufs)]
         policy_cls = policies.get(evict)
         if not getattr(policy_cls, "online", True):
-            from .errors import BadOption
-
             raise BadOption(f"policy {evict!r} needs the future of the trace; use it with 'moerun replay' only")
         self.evict = evict
         if self.shared:
-            self.res = [Residency(n_slots, policy_cls())] * 1
+            r = Residency(n_slots, policies.make_policy(policy_cls, L * E, E))
+            self.res_of = [r] * L
+            self.base = [layer * E for layer in range(L)]  # key of (layer, expert): base[layer] + expert
         else:
-            self.res = []
+            self.res_of = []
             start = 0
             for n in budget.slots:
-                self.res.append(Residency(n, policy_cls(), list(range(start, start + n))))
+                self.res_of.append(Residency(n, policies.make_policy(policy_cls, E), list(range(start, start + n))))
                 start += n
-        self.pinned: set = set()
+            self.base = [0] * L
+        self.signals = type(self.res_of[0].policy).routed is not policies.Policy.routed
+        self.pinned: tuple = ()
         self.stats = PoolStats(L)
-        self.step = -1  # decode step (token index), -1 in prefill
         self.progress = -1  # step * n_layers + layer of the layer being computed
-        self.recorder = None
-        self.prefetcher = None
-        self.reader = None  # set by the engine with prefetch on: every page-in then goes through it
+        self.reader = reader  # every page-in goes through it while it is alive
+        rate = store.link_rate
+        self.link = LinkForecast(store.expert_nbytes / rate * 1e9 if rate else 100_000.0)
         self._prefill = False
-        self._layer_events: dict = {}
-        self.guess_hook = None  # set by the engine: callable(layer, h) at the prefetch point
-        self._resident_events = None  # set by preload_all when every expert is resident
+        self._events: dict = {}
+        self._all_resident = None  # set by preload_all when every expert is resident
 
     # ------------------------------------------------------------------ keys
-    def key(self, layer: int, expert: int):
-        return (layer, expert) if self.shared else expert
+    def key(self, layer: int, expert: int) -> int:
+        return self.base[layer] + expert
 
     def residency(self, layer: int) -> Residency:
-        return self.res[0] if self.shared else self.res[layer]
-
-    def _busy(self, layer: int) -> set:
-        """Keys of this layer's slots (or the shared pool's) with a background read outstanding."""
-        busy = set()
-        for s in self._slot_range(layer):
-            if self.state[s] == LOADING:
-                self._settle(s)
-                if self.state[s] == LOADING:
-                    busy.add(self.key(*self.key_of[s]))
-        return busy
-
-    def _slot_range(self, layer: int):
-        r = self.residency(layer)
-        return list(r.slot_of.values())
+        return self.res_of[layer]
 
     def _reading(self) -> bool:
         return self.reader is not None and self.reader.alive
+
+    def resident(self, layer: int, expert: int) -> bool:
+        """Is the expert resident or on its way (no read needed)?"""
+        return self.base[layer] + expert in self.res_of[layer].slot_of
 
     # ------------------------------------------------------------------ loading
     def preload_all(self) -> None:
@@ -184,117 +226,118 @@ class ExpertPool(ExpertSource):
         When every expert fits, decode takes a fast path with no residency bookkeeping
         (an access can only hit); a policy is still told nothing it could act on.
         """
-        for layer in range(self.config.n_layers):
-            for e in range(self.config.n_experts):
-                r = self.residency(layer)
+        c = self.config
+        for layer in range(c.n_layers):
+            r = self.res_of[layer]
+            for e in range(c.n_experts):
                 if len(r.slot_of) >= r.capacity:
                     break
                 slot, _ = r.insert(self.key(layer, e))
-                self._load_into(slot, layer, e)
-                self.key_of[slot] = (layer, e)
-                self.state[slot] = READY
-        L, E = self.config.n_layers, self.config.n_experts
-        if all(len(self.residency(layer).slot_of) == (E if not self.shared else L * E) for layer in range(L)):
-            self._resident_events = [
-                {e: [HIT, self.residency(layer).slot_of[self.key(layer, e)], 0, 0] for e in range(E)} for layer in range(L)
+                s = self.slots[slot]
+                self._load_into(s, layer, e)
+                s.layer, s.expert, s.state = layer, e, READY
+        self.stats.bytes_in = 0
+        E = c.n_experts
+        if all(all(self.resident(layer, e) for e in range(E)) for layer in range(c.n_layers)):
+            self._all_resident = [
+                {e: [HIT, self.res_of[layer].slot_of[self.key(layer, e)], 0, 0] for e in range(E)} for layer in range(c.n_layers)
             ]
 
-    def _load_into(self, slot: int, layer: int, expert: int) -> int:
-        ns = self.store.page_in(layer, expert, self.slots[slot])
+    def _load_into(self, s: Slot, layer: int, expert: int) -> int:
+        ns = self.store.page_in(layer, expert, s.buf)
         self.stats.bytes_in += self.store.expert_nbytes
         return ns
 
-    def _claim(self, slot: int) -> int:
+    def _claim(self, s: Slot) -> int:
         """Mark a slot LOADING for a new read; returns its new generation."""
-        self.gen[slot] += 1
-        self.state[slot] = LOADING
-        self.usable_at[slot] = 0
-        self.load_t0[slot] = time.monotonic_ns()
-        return self.gen[slot]
+        s.gen += 1
+        s.state = LOADING
+        s.usable_at = 0
+        s.start_ns = time.monotonic_ns()
+        return s.gen
 
-    def _submit(self, slot: int, layer: int, expert: int, demand: bool, target: int) -> bool:
+    def _submit(self, s: Slot, why: int, target: int) -> bool:
         """Hand a read to the reader process; False (slot left as it was) if the fault hook refused it."""
         hook = self.store.fault_hook
         if hook is not None:
             try:
-                hook(layer, expert)  # runs before every expert read, as in ModelStore.page_in
+                hook(s.layer, s.expert)  # runs before every expert read, as in ModelStore.page_in
             except Exception:
                 return False
-        gen = self._claim(slot)
-        self.by_guess[slot] = not demand
-        self.reader.submit(slot, gen, layer, expert, demand, target)
+        gen = self._claim(s)
+        s.why = why
+        self.res_of[s.layer].busy.add(self.key(s.layer, s.expert))
+        self.reader.submit(s.index, gen, s.layer, s.expert, why != GUESS, target)
+        self.link.queued(s.start_ns)
         return True
 
-    def _settle(self, slot: int, wait: bool = False) -> None:
+    def _settle(self, s: Slot, wait: bool = False) -> None:
         """Take in the result of a LOADING slot's background read, if it is there (or once it is, with ``wait``)."""
-        if self.state[slot] != LOADING or self.reader is None:
+        if s.state != LOADING or self.reader is None:
             return
-        got = self.reader.wait(slot, self.gen[slot]) if wait else self.reader.poll(slot, self.gen[slot])
+        rd = self.reader
+        got = rd.wait(s.index, s.gen) if wait else rd.poll(s.index, s.gen)
         if got is None:
-            if self.reader.alive:
+            if rd.alive:
                 return
             got = (reader_child.FAILED, 0, 0, 0)  # the reader died with this read outstanding
+        if rd.stalled:
+            self.stats.reader_stalled = True
         result, usable_at, start, ns = got
-        layer, expert = self.key_of[slot]
+        layer, expert = s.layer, s.expert
+        r = self.res_of[layer]
+        r.busy.discard(self.key(layer, expert))
         st = self.stats
         if result == reader_child.OK:
-            self.state[slot] = READY
-            self.usable_at[slot] = usable_at
-            self.load_t0[slot] = start
-            self.load_ns[slot] = ns
+            s.state = READY
+            s.usable_at = usable_at
+            s.start_ns = start
+            s.read_ns = ns
+            self.link.observed(ns)
             st.bytes_in += self.store.expert_nbytes
-            if self.by_guess[slot]:
+            if s.why == GUESS:
                 st.prefetch_ns += ns
             else:
                 st.pagein_ns[layer] += ns
-                st.demand_loads += 1
+                if s.why == PREFILL:
+                    st.prefill_loads += 1
+                else:
+                    st.demand_loads += 1
             return
-        if result == reader_child.FAILED and self.by_guess[slot]:
+        if result == reader_child.FAILED and s.why == GUESS:
             st.prefetch_failed += 1
-        if self.prefetched[slot]:  # a guess no layer has claimed: forget it
-            self.prefetched[slot] = False
-            self.residency(layer).remove(self.key(layer, expert))
-            self.key_of[slot] = None
-        self.state[slot] = EMPTY  # a layer that claimed it reads it itself
+        if s.guess:  # a guess no layer has claimed: forget it
+            s.guess = False
+            r.remove(self.key(layer, expert))
+            s.layer = s.expert = -1
+        s.state = EMPTY  # a layer that claimed it reads it itself
 
-    def _evicted(self, slot: int) -> None:
-        """Bookkeeping when a READY slot's key is evicted."""
-        self.gen[slot] += 1
-        if self.prefetched[slot]:
+    def _settle_busy(self, r: Residency) -> None:
+        for key in list(r.busy):
+            self._settle(self.slots[r.slot_of[key]])
+
+    def _evicted(self, s: Slot) -> None:
+        """Bookkeeping when a READY slot's expert is evicted."""
+        s.gen += 1
+        if s.guess:
             self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
-            self.prefetched[slot] = False
-        self.state[slot] = EMPTY
-        self.key_of[slot] = None
+            s.guess = False
+        s.state = EMPTY
+        s.layer = s.expert = -1
 
-    def _access(self, layer: int, expert: int, pinned_keys) -> tuple[int, int]:
-        """Residency bookkeeping for one access; returns (kind, slot)."""
-        r = self.residency(layer)
-        key = self.key(layer, expert)
+    def _access(self, r: Residency, key: int, pinned) -> tuple[bool, int]:
+        """``Residency.access``, waiting while every evictable slot has a read outstanding."""
         while True:
             try:
-                busy = () if key in r else self._busy(layer)  # only a miss looks for a victim
-                hit, slot, victim = r.access(key, pinned_keys, busy)
+                hit, slot, victim = r.access(key, pinned)
                 break
             except NoVictim:  # a background read is outstanding in every free slot; one will finish
-                time.sleep(0)
-        if hit:
-            kind = PREFETCHED if self.prefetched[slot] else HIT
-            if kind == PREFETCHED:
-                self.prefetched[slot] = False
-                self.stats.prefetch_used += 1
-                if self.state[slot] == LOADING:
-                    self._settle(slot)
-                if self.state[slot] == LOADING:
-                    self.reader.promote(slot, self.gen[slot])
-                elif self.state[slot] == READY and self.usable_at[slot] <= time.monotonic_ns():  # read entirely behind compute
-                    self.stats.hidden_ns += max(0, self.usable_at[slot] - self.load_t0[slot])
-        else:
-            if victim is not None:
-                self._evicted(slot)
-            self.key_of[slot] = (layer, expert)
-            self.state[slot] = EMPTY  # to be read by weights() (or by the reader, handed over below)
-            kind = MISS
-        return kind, slot
+                self._settle_busy(r)
+                if r.busy and not r.candidates(pinned):
+                    self.reader.wait_any()
+        if victim is not None:
+            self._evicted(self.slots[slot])
+        return hit, slot
 
     # ------------------------------------------------------------------ expert source
     def begin_step(self, step: int) -> None:
@@ -306,184 +349,217 @@ class ExpertPool(ExpertSource):
             self.recorder.routed(self.step, layer, chosen, weights, probs)
         if chosen.shape[0] != 1 or self._prefill:  # prefill accesses happen per expert in weights()
             return
-        if self._resident_events is not None and self.recorder is None:
+        st = self.stats
+        if self._all_resident is not None and self.recorder is None:
             # every expert is resident and nothing is ever evicted: every access is a hit
             k = chosen.shape[1]
-            self.stats.accesses[layer] += k
-            self.stats.hits[layer] += k
-            self._layer_events = self._resident_events[layer]
+            st.accesses[layer] += k
+            st.hits[layer] += k
+            self._events = self._all_resident[layer]
             return
         ids = chosen[0].tolist()
-        keys = [self.key(layer, e) for e in ids]
-        st = self.stats
+        base = self.base[layer]
+        r = self.res_of[layer]
+        now = time.monotonic_ns()
+        self.link.layer_started(now)
         self.progress = self.step * self.config.n_layers + layer
-        reading = self._reading()
-        self.pinned = set(keys)
-        r = self.residency(layer)
-        r.policy.routed(layer, ids, probs[0], r.now)  # optional per-step signal (Policy.routed); a no-op by default
+        pinned = self.pinned = tuple(base + e for e in ids)
+        if self.signals:
+            r.policy.routed(layer, ids, probs[0], r.now)  # optional per-step signal (Policy.routed)
+        slots = self.slots
         events = {}
-        for e in ids:
-            kind, slot = self._access(layer, e, self.pinned)
-            events[e] = [kind, slot, 0, 0]  # kind, slot, pagein ns, stall ns
-            st.accesses[layer] += 1
-            if kind == MISS:
-                st.misses[layer] += 1
-            elif kind == PREFETCHED:
+        misses = []
+        for e, key in zip(ids, pinned):
+            hit, slot = self._access(r, key, pinned)
+            s = slots[slot]
+            if not hit:
+                s.layer, s.expert, s.state = layer, e, EMPTY  # to be read by weights() or by the reader, below
+                events[e] = [MISS, slot, 0, 0]  # kind, slot, pagein ns, stall ns
+                misses.append(s)
+                continue
+            if s.guess:
+                s.guess = False
+                st.prefetch_used += 1
                 st.prefetch_hits[layer] += 1
+                events[e] = [PREFETCHED, slot, 0, 0]
+                if s.state == LOADING:
+                    self._settle(s)
+                if s.state == LOADING:
+                    self.reader.promote(s.index, s.gen)
+                elif s.state == READY and s.usable_at <= now:  # read entirely behind compute
+                    st.hidden_ns += max(0, s.usable_at - s.start_ns)
             else:
                 st.hits[layer] += 1
-        if reading:
+                events[e] = [HIT, slot, 0, 0]
+        st.accesses[layer] += len(ids)
+        st.misses[layer] += len(misses)
+        if self._reading():
             # after the accesses, which promoted the guesses this layer uses: the others are stale now
             self.reader.set_progress(self.progress)
-            # the reader fetches the misses while the layer computes the experts it has
-            for e in ids:
-                kind, slot = events[e][0], events[e][1]
-                if kind == MISS:
-                    self._submit(slot, layer, e, True, self.progress)
-        self._layer_events = events
+            for s in misses:  # the reader fetches them while the layer computes the experts it has
+                self._submit(s, DEMAND, self.progress)
+        self._events = events
 
-    def compute_order(self, layer: int, ids: list[int]) -> list[int]:
+    def compute_order(self, layer: int, ids: list[int]):
         """Resident experts first, then those in flight or still to read (outputs are summed in id order anyway)."""
         if self._prefill:
             return range(len(ids))
-        ev = self._layer_events
+        ev = self._events
         now = time.monotonic_ns()
         ready = []
+        slots = self.slots
         for j, e in enumerate(ids):
-            s = ev[e][1]
-            if self.state[s] == LOADING:
+            s = slots[ev[e][1]]
+            if s.state == LOADING:
                 self._settle(s)
-            if self.state[s] == READY and self.usable_at[s] <= now:
+            if s.state == READY and s.usable_at <= now:
                 ready.append(j)
         if len(ready) == len(ids):
             return range(len(ids))
         return ready + [j for j in range(len(ids)) if j not in ready]
 
     def weights(self, layer: int, expert: int):
-        if self._prefill or expert not in self._layer_events:
+        ev = self._events.get(expert)
+        if self._prefill or ev is None:
             return self._prefill_weights(layer, expert)
-        ev = self._layer_events[expert]
-        slot = ev[1]
-        if self.state[slot] == READY and self.usable_at[slot] <= time.monotonic_ns():
-            return self.store.codec.weights(self.bound[slot])
+        s = self.slots[ev[1]]
+        if s.state == READY and s.usable_at <= time.monotonic_ns():
+            return self.codec.weights(s.bound)
         t0 = time.monotonic_ns()
-        self._settle(slot, wait=True)
-        if self.state[slot] == EMPTY:  # never handed over, or the background read failed: read it here
-            ev[2] = self._demand_read(slot, layer, expert)
+        self._settle(s, wait=True)
+        if s.state == EMPTY:  # never handed over, or the background read failed: read it here
+            ev[2] = self._read(s, layer, expert, DEMAND)
         else:  # READY: a background read whose (emulated) transfer may still be running
-            wait_until(self.usable_at[slot])
-            done = max(self.usable_at[slot], self.load_t0[slot])
+            wait_until(s.usable_at)
+            done = max(s.usable_at, s.start_ns)
             if ev[0] == MISS:  # the reader read it while this layer computed other experts
-                ev[2] = done - self.load_t0[slot]
+                ev[2] = done - s.start_ns
             else:  # a guess: the part of its read not waited for was hidden behind compute
-                self.stats.hidden_ns += max(0, done - self.load_t0[slot] - (time.monotonic_ns() - t0))
+                self.stats.hidden_ns += max(0, done - s.start_ns - (time.monotonic_ns() - t0))
         stall = time.monotonic_ns() - t0
         ev[3] = stall
         self.stats.stall_ns[layer] += stall
-        return self.store.codec.weights(self.bound[slot])
+        return self.codec.weights(s.bound)
 
-    def _demand_read(self, slot: int, layer: int, expert: int) -> int:
-        """Read an EMPTY claimed slot now: through the reader when it runs (one link for all reads), else here."""
-        if self._reading() and self._submit(slot, layer, expert, True, self.progress):
-            self._settle(slot, wait=True)
-            if self.state[slot] == READY:
-                wait_until(self.usable_at[slot])
-                return self.load_ns[slot]
-        return self._demand_load(slot, layer, expert)  # the reader failed or is gone: read it on this thread
+    def _read(self, s: Slot, layer: int, expert: int, why: int) -> int:
+        """Read an EMPTY claimed slot now and wait for it: through the reader while it runs (one link
+        for every read of the run), else on this thread.  Returns the read's ns."""
+        if self._reading() and self._submit(s, why, self.progress):
+            self._settle(s, wait=True)
+            if s.state == READY:
+                wait_until(s.usable_at)
+                return s.read_ns
+        return self._load_here(s, layer, expert, why)  # the reader failed or is gone: read it on this thread
 
-    def _demand_load(self, slot: int, layer: int, expert: int) -> int:
-        self._claim(slot)
+    def _load_here(self, s: Slot, layer: int, expert: int, why: int) -> int:
+        self._claim(s)
         try:
-            ns = self._load_into(slot, layer, expert)
+            ns = self._load_into(s, layer, expert)
         except BaseException:
-            self.residency(layer).remove(self.key(layer, expert))
-            self.state[slot] = EMPTY
-            self.key_of[slot] = None
+            self.res_of[layer].remove(self.key(layer, expert))
+            s.state = EMPTY
+            s.layer = s.expert = -1
             raise
-        self.state[slot] = READY
-        self.load_ns[slot] = ns
+        s.state = READY
+        s.read_ns = ns
         self.stats.pagein_ns[layer] += ns
-        self.stats.demand_loads += 1
+        if why == PREFILL:
+            self.stats.prefill_loads += 1
+        else:
+            self.stats.demand_loads += 1
         return ns
 
     def _prefill_weights(self, layer: int, expert: int):
         """Prefill: each needed expert is accessed (and paged in) once per layer, pinned alone."""
         key = self.key(layer, expert)
         self.progress = max(self.progress, -1)
-        self.pinned = {key}
-        r = self.residency(layer)
-        while True:
-            try:
-                hit, slot, victim = r.access(key, self.pinned, () if key in r else self._busy(layer))
-                break
-            except NoVictim:
-                time.sleep(0)
+        pinned = self.pinned = (key,)
+        r = self.res_of[layer]
         t0 = time.monotonic_ns()
+        hit, slot = self._access(r, key, pinned)
+        s = self.slots[slot]
         if hit:
-            self.prefetched[slot] = False
-            if self.state[slot] == LOADING:
-                self.reader.promote(slot, self.gen[slot])
-            self._settle(slot, wait=True)
-            need = self.state[slot] != READY
+            s.guess = False
+            if s.state == LOADING:
+                self.reader.promote(s.index, s.gen)
+            self._settle(s, wait=True)
+            wait_until(s.usable_at)  # a background read whose emulated transfer is still running
         else:
-            if victim is not None:
-                self._evicted(slot)
-            self.key_of[slot] = (layer, expert)
-            self.state[slot] = EMPTY
-            need = True
-        if need:
-            self._demand_read(slot, layer, expert)
-            self.stats.prefill_loads += 1
-            self.stats.demand_loads -= 1
-        else:
-            wait_until(self.usable_at[slot])  # a background read whose emulated transfer is still running
+            s.layer, s.expert, s.state = layer, expert, EMPTY
+        if s.state != READY:
+            self._read(s, layer, expert, PREFILL)
         self.stats.stall_ns[layer] += time.monotonic_ns() - t0
-        return self.store.codec.weights(self.bound[slot])
-
-    def done(self, layer: int, expert: int) -> None:
-        if self._prefill:
-            self.pinned = set()
+        return self.codec.weights(s.bound)
 
     def begin_layer(self, layer: int) -> None:
-        self._layer_t0 = time.monotonic_ns()
+        if self.recorder is not None:
+            self._layer_t0 = time.monotonic_ns()
 
     def end_layer(self, layer: int) -> None:
         if self.recorder is not None and not self._prefill:
-            stall = sum(ev[3] for ev in self._layer_events.values())
+            stall = sum(ev[3] for ev in self._events.values())
             compute = time.monotonic_ns() - self._layer_t0 - stall
-            self.recorder.events(self.step, layer, self._layer_events, compute)
-        self.pinned = set()
+            self.recorder.events(self.step, layer, self._events, compute)
+        self.pinned = ()
 
     # ------------------------------------------------------------------ prefetch
-    def prefetch(self, layer: int, expert: int, target: int, hook=None, protect=frozenset()) -> None:
-        """Start a guess's background read unless it is resident or unplaceable (compute thread).
-
-        It never evicts an expert pinned by the layer being computed (shared
-        pool), a slot being read, or another guess of the same round (``protect``).
-        """
-        key = self.key(layer, expert)
-        r = self.residency(layer)
-        if key in r or not self._reading():
-            return
-        keep = (protect | self.pinned) if self.shared else protect
+    @staticmethod
+    def _hook_allows(hook, layer: int, expert: int) -> bool:
+        if hook is None:
+            return True
         try:
-            slot, victim = r.insert(key, keep, self._busy(layer))
-        except NoVictim:
+            hook(layer, expert)
+        except Exception:
+            return False
+        return True
+
+    def prefetch(self, layer: int, guesses: list[int], target: int, hook=None) -> None:
+        """Place the guesses for ``layer`` (best first) and hand their reads to the reader (compute thread).
+
+        A guess already resident or in flight costs nothing more.  Another is read only if it can
+        arrive about when its layer needs it (``late_share``) and the policy would rather hold it
+        than its victim (``Policy.admits``).  It never evicts an expert pinned by the layer being
+        computed (shared pool), a slot being read, or another guess of the same round.
+        ``hook(layer, expert)`` (a test hook) runs before a read is handed over; raising fails it.
+        """
+        st = self.stats
+        st.prefetch_guesses += len(guesses)
+        if not self._reading():
             return
-        if victim is not None:
-            self._evicted(slot)
-        self.key_of[slot] = (layer, expert)
-        self.prefetched[slot] = True
-        self.stats.prefetch_loads += 1
-        ok = True
-        if hook is not None:
+        r = self.res_of[layer]
+        base = self.base[layer]
+        keep = tuple(base + e for e in guesses)
+        if self.shared:
+            keep += self.pinned
+        now = time.monotonic_ns()
+        link = self.link
+        link.mark = now
+        need_at = now + link.gap_ns * (target - self.progress) + link.read_ns * self.late_share
+        for e in guesses:
+            key = base + e
+            if key in r.slot_of:
+                st.prefetch_resident += 1
+                continue
+            if max(link.free_at, now) + link.read_ns > need_at:
+                st.prefetch_declined += 1
+                continue
             try:
-                hook(layer, expert)
-            except Exception:
-                ok = False
-        if not ok or not self._submit(slot, layer, expert, False, target):
-            self.stats.prefetch_failed += 1  # forget the guess; its layer reads the expert if it needs it
-            self.prefetched[slot] = False
-            r.remove(key)
-            self.key_of[slot] = None
-            self.state[slot] = EMPTY
+                victim = r.victim(keep)
+            except NoVictim:
+                st.prefetch_declined += 1
+                continue
+            if victim is not None and not r.policy.admits(key, victim, r.now):
+                st.prefetch_declined += 1
+                continue
+            slot, victim = r.place(key, victim)
+            s = self.slots[slot]
+            if victim is not None:
+                self._evicted(s)
+            s.layer, s.expert, s.guess = layer, e, True
+            st.prefetch_loads += 1
+            if not self._hook_allows(hook, layer, e) or not self._submit(s, GUESS, target):
+                st.prefetch_failed += 1  # forget the guess; its layer reads the expert if it needs it
+                s.guess = False
+                r.remove(key)
+                s.layer = s.expert = -1
+                s.state = EMPTY

@@ -1,79 +1,95 @@
-"""The engine's side of the reader process: shared pool memory, a request ring, result words.
+"""The engine's side of the reader process: shared pool memory, a request ring, result words, doorbells.
 
 With prefetch on, every page-in of a run goes through one reader process
 (``moerun/reader_child.py``): the pool's slots live in shared memory (a
 ``memfd``), the compute thread writes a request (slot, generation, file range,
-demand or guess, target layer) into a ring in that memory and carries on, and
-the reader publishes each result in the slot's words.  Nothing is shared but
-memory, so background reads cost the compute thread a few microseconds
-instead of the interpreter-lock hand-offs a reader thread would need.
+demand or guess, target layer, time asked) into a ring in that memory, rings
+the reader's doorbell and carries on; the reader publishes each result in the
+slot's words and rings the engine's doorbell.  Both doorbells are eventfds and
+both sides block on them when they have nothing to do: nothing spins.  Nothing
+is shared but memory, so a background read costs the compute thread a few
+microseconds (docs/offload.md has the measured figures).
 
 A slot with a request outstanding belongs to the reader until its result is
 published (``poll``/``wait``); the pool never evicts or reuses it before.  If
 the reader dies, every outstanding request is reported ``FAILED`` and the pool
-reads the expert itself.  Linux only (``memfd_create``).
+reads the expert itself.  If it lives but stops making progress for
+``timeout_s`` (no chunk transferred while the engine waits), the engine stops
+it, says so once (a ``ReaderStalled`` warning), and reads every expert itself
+from then on.  Linux only (``memfd_create``, ``eventfd``).
 """
 
 from __future__ import annotations
 
 import mmap
 import os
+import select
 import signal
 import subprocess
 import sys
 import time
+import warnings
 from pathlib import Path
 
 import numpy as np
 
 from . import reader_child as rc
-from .errors import BadOption
+from .errors import BadOption, ReaderError, ReaderStalled
 
 CHILD = Path(__file__).resolve().parent / "reader_child.py"
 START_TIMEOUT_S = 10.0
+# A reader that transfers nothing for this long while the engine waits is taken for stuck.
+# Chunks are at most 1 MiB, so this allows a storage path slower than 1 MiB per 2 s.
+STALL_TIMEOUT_S = 2.0
+NAP_S = 0.05  # longest single block while waiting, so a dead reader is noticed
 
 
 class Reader:
-    def __init__(self, store, n_slots: int, slot_size: int):
-        if not hasattr(os, "memfd_create"):
-            raise BadOption("--prefetch needs Linux (memfd_create) for its reader process; run without --prefetch")
+    def __init__(self, store, n_slots: int, slot_size: int, timeout_s: float = STALL_TIMEOUT_S):
+        if not (hasattr(os, "memfd_create") and hasattr(os, "eventfd")):
+            raise BadOption("--prefetch needs Linux (memfd_create, eventfd) for its reader process; run without --prefetch")
         self.n_slots = n_slots
         self.slot_size = slot_size
         self.nbytes = store.expert_nbytes
         self.ranges = store.ranges
+        self.timeout_ns = int(timeout_s * 1e9)
         self.ring = n_slots + 8  # a slot has at most one request outstanding, so the ring never fills
         self.r0 = rc.ring_base(n_slots)
         cb = rc.ctrl_bytes(n_slots, self.ring)
         total = cb + n_slots * slot_size
         self._fd = os.memfd_create("moerun-pool", os.MFD_CLOEXEC)
-        self._wake_r = self._wake_w = -1
+        self._wake = self._done = -1
         self.proc = None
         self._closed = False
         self._dead = False
         self._check_at = 0
+        self.stalled = False  # set once the engine has stopped a reader that made no progress
         try:
             os.ftruncate(self._fd, total)
             self._map = mmap.mmap(self._fd, total)
             self.c = memoryview(self._map)[:cb].cast("q")
             self.block = np.frombuffer(self._map, np.uint8, n_slots * slot_size, cb)
-            self._wake_r, self._wake_w = os.pipe()
-            os.set_blocking(self._wake_w, False)
-            args = [self._fd, store._fd, self._wake_r, n_slots, slot_size, self.ring, store.link_rate or 0.0, store.mechanism, os.getpid()]
+            flags = os.EFD_NONBLOCK | os.EFD_CLOEXEC
+            self._wake = os.eventfd(0, flags)  # the engine rings it after each request
+            self._done = os.eventfd(0, flags)  # the reader rings it after each result
+            args = [self._fd, store._fd, self._wake, self._done, n_slots, slot_size, self.ring, store.link_rate or 0.0,
+                    store.mechanism, os.getpid()]
             self.proc = subprocess.Popen(
                 [sys.executable, "-I", "-S", str(CHILD), *map(str, args)],
-                pass_fds=(self._fd, store._fd, self._wake_r),
+                pass_fds=(self._fd, store._fd, self._wake, self._done),
                 stdin=subprocess.DEVNULL,
                 stdout=subprocess.DEVNULL,
                 stderr=subprocess.DEVNULL,
                 start_new_session=True,  # Ctrl-C at a terminal reaches the engine only; the engine stops the reader
             )
-            os.close(self._wake_r)
-            self._wake_r = -1
             deadline = time.monotonic() + START_TIMEOUT_S
             while self.c[rc.PID] == 0:  # serving before the first request, so start-up never counts as a stall
                 if self.proc.poll() is not None or time.monotonic() > deadline:
-                    raise BadOption(f"the prefetch reader process did not start (exit code {self.proc.poll()})")
+                    raise ReaderError(f"the prefetch reader process did not start (exit code {self.proc.poll()})")
                 time.sleep(0.001)
+        except OSError as e:
+            self.close()
+            raise ReaderError(f"the prefetch reader process could not be started ({e.strerror or e})") from None
         except BaseException:
             self.close()
             raise
@@ -90,12 +106,12 @@ class Reader:
         c[b + 3] = r.nbytes
         c[b + 4] = 1 if demand else 0
         c[b + 5] = target
+        c[b + 6] = time.monotonic_ns()
         c[rc.HEAD] = h + 1  # last: the reader takes entries up to HEAD
-        if c[rc.SLEEPING]:
-            try:
-                os.write(self._wake_w, b"\0")
-            except (BlockingIOError, OSError):
-                pass
+        try:
+            os.write(self._wake, b"\1\0\0\0\0\0\0\0")  # wakes the reader if it is blocked; a counter bump otherwise
+        except OSError:
+            pass
 
     def promote(self, slot: int, gen: int) -> None:
         """A layer now needs this guess: the reader serves it before other guesses."""
@@ -113,19 +129,52 @@ class Reader:
         return c[b + rc.RESULT], c[b + rc.USABLE], c[b + rc.START], c[b + rc.NS]
 
     def wait(self, slot: int, gen: int):
-        """Wait until the request is done (spinning for the first millisecond, then in 0.2 ms naps);
-        a dead reader reports FAILED."""
+        """Block until the request is done (``poll``'s tuple).  A dead reader reports FAILED; so does
+        one that transfers nothing for ``timeout_s``: it is stopped first, so it never writes again."""
         got = self.poll(slot, gen)
         if got is not None:
             return got
-        nap_from = time.monotonic_ns() + 1_000_000
-        while got is None:
+        return self._block(lambda: self.poll(slot, gen))
+
+    def wait_any(self) -> None:
+        """Block until the reader publishes some result (or is gone): a slot may have come free."""
+        seen = self._done_count()
+        self._block(lambda: True if self._done_count() != seen else None)
+
+    def _done_count(self) -> int:
+        return int(self.c[rc.PUBLISHED])
+
+    def _block(self, check):
+        beat, beat_at = self.c[rc.BEAT], time.monotonic_ns()
+        while True:
+            rc.drain(self._done)
+            got = check()  # after the drain: a result published before it is seen here, a later one rings
+            if got is not None:
+                return got
             if not self.alive:
                 return rc.FAILED, 0, 0, 0
-            if time.monotonic_ns() > nap_from:
-                time.sleep(0.0002)
-            got = self.poll(slot, gen)
-        return got
+            now = time.monotonic_ns()
+            if self.c[rc.BEAT] != beat:
+                beat, beat_at = self.c[rc.BEAT], now
+            elif now - beat_at > self.timeout_ns:
+                self._stop_stalled()
+                return rc.FAILED, 0, 0, 0
+            try:
+                select.select([self._done], [], [], NAP_S)
+            except (OSError, ValueError):
+                return rc.FAILED, 0, 0, 0
+
+    def _stop_stalled(self) -> None:
+        self.stalled = True
+        self.kill()
+        self._dead = True
+        warnings.warn(
+            ReaderStalled(
+                f"the prefetch reader made no progress for {self.timeout_ns / 1e9:g} s; it was stopped and the rest "
+                "of the run reads experts on the compute thread (output is unaffected)"
+            ),
+            stacklevel=4,
+        )
 
     # ------------------------------------------------------------------ test hooks
     def set_faults(self, jitter_us: int = 0, seed: int = 0, fail_every: int = 0, demand_too: bool = False,
@@ -140,8 +189,13 @@ class Reader:
         c[rc.JITTER_US] = jitter_us
         c[rc.DIE_AFTER] = die_after
 
+    def freeze(self) -> None:
+        """Test hook: stop the reader process where it stands (SIGSTOP), alive but answering nothing."""
+        if self.proc is not None and self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGSTOP)
+
     def kill(self) -> None:
-        """Test hook: kill the reader process now, as a crash would."""
+        """Test hook (and the stall fallback): kill the reader process now, as a crash would."""
         if self.proc is not None and self.proc.poll() is None:
             self.proc.send_signal(signal.SIGKILL)
             self.proc.wait()
@@ -172,6 +226,18 @@ class Reader:
         except Exception:
             return None
 
+    def cpu_seconds(self) -> float | None:
+        """CPU time (user + system) the reader process has used so far, None if unknown."""
+        if self.proc is None or self.proc.poll() is not None:
+            return None
+        try:
+            import psutil
+
+            t = psutil.Process(self.proc.pid).cpu_times()
+            return t.user + t.system
+        except Exception:
+            return None
+
     def close(self, timeout: float = 2.0) -> None:
         if self._closed:
             return
@@ -180,7 +246,7 @@ class Reader:
         if self.proc is not None:
             try:
                 self.c[rc.STOP] = 1
-                os.write(self._wake_w, b"\0")
+                os.write(self._wake, b"\1\0\0\0\0\0\0\0")
             except (OSError, ValueError):
                 pass
             try:
@@ -188,13 +254,13 @@ class Reader:
             except subprocess.TimeoutExpired:
                 self.proc.kill()
                 self.proc.wait()
-        for fd in (self._wake_r, self._wake_w, self._fd):
+        for fd in (self._wake, self._done, self._fd):
             if fd >= 0:
                 try:
                     os.close(fd)
                 except OSError:
                     pass
-        self._wake_r = self._wake_w = self._fd = -1
+        self._wake = self._done = self._fd = -1
         # the mapping itself goes with the last view of it (the pool's slots)
 
     def __del__(self):

@@ -42,7 +42,7 @@ import numpy as np
 
 from . import policies
 from .errors import BadOption, BadTrace
-from .policies import FIFO, LFU, LRU, Optimal, Policy
+from .policies import FIFO, LFU, LRU, Optimal, Policy, make_policy
 from .residency import NoVictim, Residency
 from .trace import Trace
 
@@ -162,9 +162,9 @@ def layer_plans(trace: Trace) -> list[LayerPlan]:
 # ---------------------------------------------------------------------------- the generic path (source of truth)
 
 
-def make_policy(cls: type[Policy], future: Sequence) -> Policy:
-    """An online policy takes no arguments; an offline one (``online = False``) gets the access sequence."""
-    return cls() if getattr(cls, "online", True) else cls(future)
+def plan_policy(cls: type[Policy], plan: LayerPlan) -> Policy:
+    """A policy object for replaying one layer: keys are its expert ids; an offline one gets the access sequence."""
+    return make_policy(cls, int(plan.keys.max(initial=-1)) + 1, 0, plan.keys.tolist())
 
 
 def routed_hook(policy: Policy, plan: LayerPlan) -> Callable[[int, int, int, int], None] | None:
@@ -188,7 +188,7 @@ def routed_hook(policy: Policy, plan: LayerPlan) -> Callable[[int, int, int, int
 def generic_misses(plan: LayerPlan, policy_cls: type[Policy], capacity: int) -> np.ndarray:
     """Miss flag per access, from ``Residency`` and a policy object (the live pool's code path)."""
     keys = plan.keys.tolist()
-    res = Residency(capacity, make_policy(policy_cls, keys))
+    res = Residency(capacity, plan_policy(policy_cls, plan))
     hook = routed_hook(res.policy, plan)
     starts = plan.starts.tolist()
     miss = np.zeros(len(keys), bool)
@@ -542,7 +542,7 @@ def simulate_prefetch(
     out = []
     for m, plan in enumerate(plans):
         keys = plan.keys.tolist()
-        res = Residency(capacity, make_policy(policy_cls, keys))
+        res = Residency(capacity, plan_policy(policy_cls, plan))
         hook = routed_hook(res.policy, plan)
         starts = plan.starts.tolist()
         counted = plan.counted.tolist()
@@ -786,7 +786,7 @@ def residency_picture(trace: Trace, layer: int, policy: str, capacity: int, t0: 
     plan = layer_plans(trace)[layer]
     cls = policies.get(policy)
     keys = plan.keys.tolist()
-    res = Residency(capacity, make_policy(cls, keys))
+    res = Residency(capacity, plan_policy(cls, plan))
     hook = routed_hook(res.policy, plan)
     starts = plan.starts.tolist()
     tokens = plan.token.tolist()

@@ -2,19 +2,24 @@
 
 ``Residency`` holds the key -> slot map of one pool (one layer's quota, or
 the whole shared pool), a clock that counts accesses, and an eviction policy.
-The live pool wraps it with real buffers and locking; ``moerun.replay`` drives
-it with recorded routing.  Because both call the same ``access`` method with
-the same pinning, a replay of a live run with prefetch off reproduces the
+The live pool wraps it with real buffers; ``moerun.replay`` and the planner
+drive it with recorded routing.  Because both call the same ``access`` method
+with the same pinning, a replay of a live run with prefetch off reproduces the
 live hit and miss counts exactly.
+
+Keys are small integers (see ``moerun.policies``).  Residents are kept in
+insertion order, which is the order ties between equal scores are broken in.
+``busy`` holds the keys whose slot has a background read outstanding: like
+pinned keys, they are never victims.
 """
 
 from __future__ import annotations
 
-from collections.abc import Collection, Hashable
+from collections.abc import Collection
 
 from .policies import Policy
 
-Key = Hashable
+Key = int
 
 
 class NoVictim(Exception):
@@ -28,23 +33,36 @@ class Residency:
         self.slot_of: dict[Key, int] = {}
         self.free: list[int] = list(reversed(slots if slots is not None else range(capacity)))
         self.now = 0
+        self.busy: set[Key] = set()
 
     def __contains__(self, key: Key) -> bool:
         return key in self.slot_of
 
-    def _make_room(self, pinned: Collection[Key], busy: Collection[Key]) -> tuple[int, Key | None]:
+    def candidates(self, pinned: Collection[Key]) -> list[Key]:
+        """Resident keys that may be evicted now (neither pinned nor busy), in insertion order."""
+        busy = self.busy
+        return [k for k in self.slot_of if k not in pinned and k not in busy]
+
+    def victim(self, pinned: Collection[Key]) -> Key | None:
+        """The key the policy would evict to make room (None while a slot is free). Raises NoVictim."""
         if self.free:
-            return self.free.pop(), None
-        candidates = [k for k in self.slot_of if k not in pinned and k not in busy]
+            return None
+        candidates = self.candidates(pinned)
         if not candidates:
             raise NoVictim
         victim = self.policy.victim(candidates, self.now)
-        if victim not in self.slot_of or victim in pinned or victim in busy:
+        if victim not in self.slot_of or victim in pinned or victim in self.busy:
             raise RuntimeError(f"policy {self.policy.name!r} chose {victim!r}, which is not an evictable resident")
+        return victim
+
+    def _take_slot(self, victim: Key | None) -> tuple[int, Key | None]:
+        """A slot for a new key: a free one (``victim`` None) or the victim's."""
+        if victim is None:
+            return self.free.pop(), None
         self.policy.evicted(victim)
         return self.slot_of.pop(victim), victim
 
-    def access(self, key: Key, pinned: Collection[Key] = (), busy: Collection[Key] = ()) -> tuple[bool, int, Key | None]:
+    def access(self, key: Key, pinned: Collection[Key] = ()) -> tuple[bool, int, Key | None]:
         """Serve one access: ``(hit, slot, evicted key or None)``; the clock advances by one."""
         now = self.now
         slot = self.slot_of.get(key)
@@ -52,22 +70,27 @@ class Residency:
             self.policy.hit(key, now)
             self.now = now + 1
             return True, slot, None
-        slot, victim = self._make_room(pinned, busy)
+        slot, victim = self._take_slot(self.victim(pinned))
         self.slot_of[key] = slot
         self.policy.inserted(key, now)
         self.now = now + 1
         return False, slot, victim
 
-    def insert(self, key: Key, pinned: Collection[Key] = (), busy: Collection[Key] = ()) -> tuple[int, Key | None]:
+    def insert(self, key: Key, pinned: Collection[Key] = ()) -> tuple[int, Key | None]:
         """Insert without an access (a prefetch); the clock does not advance. Raises NoVictim."""
-        slot, victim = self._make_room(pinned, busy)
+        return self.place(key, self.victim(pinned))
+
+    def place(self, key: Key, victim: Key | None) -> tuple[int, Key | None]:
+        """Insert without an access in place of ``victim``, a key ``victim()`` chose (None: a free slot)."""
+        slot, victim = self._take_slot(victim)
         self.slot_of[key] = slot
         self.policy.inserted(key, self.now)
         return slot, victim
 
     def remove(self, key: Key) -> int:
-        """Forget ``key`` (a failed load); its slot becomes free."""
+        """Forget ``key`` (a failed or skipped load); its slot becomes free."""
         slot = self.slot_of.pop(key)
+        self.busy.discard(key)
         self.policy.evicted(key)
         self.free.append(slot)
         return slot

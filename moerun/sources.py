@@ -1,12 +1,26 @@
-"""Expert sources other than the pool: the bare all-resident table and the benchmark baselines.
+"""The expert-source protocol, and the sources other than the pool: bare (all resident) and the baselines.
 
-An expert source is what ``moerun.model`` asks for expert weights (see
-``moerun.pool.ExpertPool`` for the full contract).  ``BareExperts`` holds
-every expert in page-aligned buffers with no bookkeeping at all: the speed
-reference for the pool's overhead.  ``WholeLayerExperts`` and
-``NoReuseExperts`` are the naive offloading baselines of
+An expert source is how ``moerun.model`` gets expert weights.  Per layer, the
+model calls, in this order::
+
+    begin_layer(layer)
+    routed(layer, chosen, weights, probs)   # the layer's routing decision, [T, k] ascending ids
+    compute_order(layer, ids)               # one token: the order to compute ids[j] in
+    weights(layer, expert)                  # float32 (w_gate, w_up, w_down), once per chosen expert
+    end_layer(layer)
+
+and the engine calls ``begin_step(step)`` before each forward pass (-1 for a
+prefill).  The math never asks whether an expert was resident, prefetched or
+just read; the outputs are summed in ascending id whatever ``compute_order``
+says, so a source can only change speed, never numbers.  ``recorder``, when
+set, receives each routing decision.
+
+``BareExperts`` holds every expert in page-aligned buffers with no bookkeeping
+at all: the speed reference for the pool's overhead.  ``WholeLayerExperts``
+and ``NoReuseExperts`` are the naive offloading baselines of
 ``scripts/bench_offload.py``: page in every expert of a layer each time it
 runs, or page in just the chosen experts every time with no cache.
+``moerun.pool.ExpertPool`` is the real thing.
 """
 
 from __future__ import annotations
@@ -29,10 +43,10 @@ def aligned_block(nbytes: int) -> tuple[np.ndarray, np.ndarray]:
 
 
 class ExpertSource:
-    """No-op hooks of the expert-source contract; subclasses override what they need."""
+    """The expert-source protocol (module docstring), with the hooks a simple source does not need
+    implemented as no-ops; a source overrides ``weights`` and whatever else it needs."""
 
     recorder = None
-    guess_hook = None
     step = -1
 
     def __init__(self, store: ModelStore):
@@ -47,26 +61,15 @@ class ExpertSource:
     def begin_layer(self, layer: int) -> None:
         pass
 
-    def after_attention(self, layer: int, h: np.ndarray) -> None:
-        if self.guess_hook is not None:
-            self.guess_hook(layer, h, "attention")
-
-    def after_layer(self, layer: int, x: np.ndarray) -> None:
-        if self.guess_hook is not None:
-            self.guess_hook(layer, x, "output")
-
-    def routed(self, layer, chosen, weights, probs) -> None:
+    def routed(self, layer: int, chosen: np.ndarray, weights: np.ndarray, probs: np.ndarray) -> None:
         if self.recorder is not None:
             self.recorder.routed(-1 if chosen.shape[0] > 1 else self.step, layer, chosen, weights, probs)
 
     def compute_order(self, layer: int, ids: list[int]):
         return range(len(ids))
 
-    def begin_prefill_layer(self, layer: int, needed: list[int]) -> None:
-        pass
-
-    def done(self, layer: int, expert: int) -> None:
-        pass
+    def weights(self, layer: int, expert: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        raise NotImplementedError
 
     def end_layer(self, layer: int) -> None:
         pass

@@ -18,13 +18,13 @@ from __future__ import annotations
 
 import mmap
 import os
-import threading
 import time
 from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
 
+from .clock import wait_until
 from .codec import Codec, codec_for, packed_dense_tensors
 from .config import ModelConfig, expert_tensor_name
 from .errors import BadModelFile, PageInError
@@ -43,40 +43,6 @@ class ExpertRange:
     expert: int
     start: int
     nbytes: int
-
-
-_timer = threading.local()
-
-
-def _fine_timer() -> None:
-    """Ask Linux for 1 ns timer slack on this thread (default 50 us), so emulated waits end on time."""
-    if getattr(_timer, "done", False):
-        return
-    _timer.done = True
-    try:
-        import ctypes
-
-        ctypes.CDLL(None).prctl(29, 1, 0, 0, 0)  # PR_SET_TIMERSLACK
-    except (OSError, AttributeError):
-        pass
-
-
-SPIN_NS = 200_000  # the last part of an emulated wait is spun: a sleep here wakes 50-100 us late
-
-
-def wait_until(deadline_ns: int) -> None:
-    """Wait until monotonic time ``deadline_ns``: sleep for all but the last ``SPIN_NS``, then spin.
-
-    Emulated transfers end at a computed time; a plain sleep on this kind of
-    VM overshoots by tens of microseconds even with 1 ns timer slack, which
-    would add a wake-up delay to every emulated read that no link has.
-    """
-    left = deadline_ns - time.monotonic_ns()
-    if left > SPIN_NS:
-        _fine_timer()
-        time.sleep((left - SPIN_NS) / 1e9)
-    while time.monotonic_ns() < deadline_ns:
-        pass
 
 
 def pread_into(fd: int, offset: int, dst) -> None:
@@ -111,7 +77,6 @@ class ModelStore:
         self.fault_hook = None  # test hook: called as hook(layer, expert) before each read
         self._fd = os.open(self.path, os.O_RDONLY)
         self._map: mmap.mmap | None = None
-        self._lock = threading.Lock()
         self._link_free_ns = 0  # when the emulated link finishes its queued transfers
         self.dense: dict[str, np.ndarray] = {}
         self._dense_nbytes = 0
@@ -272,11 +237,11 @@ class ModelStore:
         except OSError as e:
             raise PageInError(f"{self.path}: reading expert {expert} of layer {layer} failed ({e.strerror or e})") from None
         if self.link_rate:
-            # One emulated link shared by every reader: transfers queue behind each other.
-            with self._lock:
-                start = max(t0, self._link_free_ns)
-                end = start + int(r.nbytes / self.link_rate * 1e9)
-                self._link_free_ns = end
+            # One emulated link on a virtual clock: transfers queue behind each other, and one
+            # whose real read took longer than its emulated time ends when the read did.
+            start = max(t0, self._link_free_ns)
+            end = max(start + int(r.nbytes / self.link_rate * 1e9), time.monotonic_ns())
+            self._link_free_ns = end
             wait_until(end)
         return time.monotonic_ns() - t0
 

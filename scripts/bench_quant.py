@@ -190,7 +190,7 @@ def dequant_costs(src: Path, quantized: dict[int, Path]) -> dict:
         s = eng.store
         rng = np.random.default_rng(0)
         u = rng.standard_normal((1, s.config.d_model)).astype(np.float32)
-        w = [x.copy() for x in s.codec.weights(s.codec.bind(eng.pool.slots[0]))]
+        w = [x.copy() for x in s.codec.weights(eng.pool.slots[0].bound)]
         out["fp32_matmul_ns"] = _best_ns(lambda: expert(u, *w))
         out["fp32_pagein_ns"] = _pagein_ns(s)
         out["fp32_expert_bytes"] = s.expert_nbytes
@@ -198,7 +198,7 @@ def dequant_costs(src: Path, quantized: dict[int, Path]) -> dict:
     for bits, d in sorted(quantized.items(), reverse=True):
         with moerun.load(d, tokenizer=False) as eng:
             codec: QuantCodec = eng.store.codec
-            ring = Ring(eng.pool.bound)  # every resident expert in turn, as decode meets them
+            ring = Ring([slot.bound for slot in eng.pool.slots])  # every resident expert in turn, as decode meets them
             dq = _best_ns(lambda codec=codec, ring=ring: codec.weights(ring.next()))
             both = _best_ns(lambda codec=codec, ring=ring: expert(u, *codec.weights(ring.next())))
             pin = _pagein_ns(eng.store)

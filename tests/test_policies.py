@@ -230,17 +230,18 @@ def test_the_routing_model_keeps_a_fixed_amount_of_memory():
 
 
 def test_a_shared_pool_keys_layer_expert_pairs_and_models_each_layer():
-    p = Markov()
+    E = 8  # a shared pool's key is layer * E + expert
+    p = Markov(2 * E, shared_experts=E)
     res = Residency(3, p)
     for t in range(30):
         for layer in (0, 1):
             chosen = [t % 3, (t + 1) % 3] if layer == 0 else [5, 6 + t % 2]
             p.routed(layer, chosen, None, res.now)
-            keys = [(layer, e) for e in chosen]
+            keys = [layer * E + e for e in chosen]
             for key in keys:
                 res.access(key, keys)
     assert set(p.models) == {0, 1}
-    assert all(isinstance(k, tuple) for k in res.slot_of)
+    assert {divmod(k, E)[0] for k in res.slot_of} <= {0, 1} and any(k >= E for k in res.slot_of)
 
 
 # ---------------------------------------------------------------------------- live: exact, and reproduced by replay

@@ -44,7 +44,6 @@ def _drive(pool: ExpertPool, pages, store: ModelStore):
         for j in pool.compute_order(0, [page]):
             w_gate, w_up, w_down = pool.weights(0, [page][j])
             assert np.array_equal(w_down, store.read_tensor(f"layers.0.experts.{page}.w_down"))
-            pool.done(0, page)
         pool.end_layer(0)
 
 
