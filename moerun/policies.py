@@ -206,6 +206,11 @@ class LRFU(Policy):
     Source: Lee, Choi, Kim, Noh, Min, Cho and Kim, "LRFU: a spectrum of policies that subsumes the
     least recently used and least frequently used policies", IEEE Transactions on Computers
     50(12), 2001 (the combined recency and frequency value, CRF, with F(x) = (1/2)^(lam x)).
+
+    Kept cheaply: ``count[key]`` is the key's CRF times ``2 ** (lam * (now - origin))``, the same
+    factor for every key, so an access adds ``2 ** (lam * (now - origin))`` (one power per clock
+    tick, shared by the tick's accesses) and the victim is the smallest ``count``.  With lam 0
+    it is the plain count.  The origin moves forward before the factor can overflow.
     """
 
     name = "lrfu"
@@ -213,26 +218,38 @@ class LRFU(Policy):
 
     def __init__(self, n_keys: int = 0, shared_experts: int = 0):
         super().__init__(n_keys, shared_experts)
-        self.count = [0.0] * n_keys  # decayed count at the key's last access (0: never seen)
-        self.last = [0] * n_keys
+        self.count = [0.0] * n_keys  # CRF * 2 ** (lam * (now - origin)); 0: never seen
+        self.origin = 0
+        self._tick = -1
+        self._add = 1.0
+
+    def _weight(self, now: int) -> float:
+        """2 ** (lam * (now - origin)), computed once per clock tick."""
+        if now != self._tick:
+            x = self.lam * (now - self.origin)
+            if x > 512.0:  # rescale everything before the factor overflows a float
+                scale = 2.0**-x
+                self.count = [c * scale for c in self.count]
+                self.origin = now
+                x = 0.0
+            self._tick = now
+            self._add = 2.0**x
+        return self._add
 
     def inserted(self, key, now):
         count = self.count
         if key >= len(count):
             grow(count, key, 0.0)
-            grow(self.last, key)
-        c = count[key]
-        count[key] = 1.0 if c == 0.0 else 1.0 + c * 2.0 ** (-self.lam * (now - self.last[key]))
-        self.last[key] = now
+        count[key] += self._weight(now)
 
     hit = inserted
 
     def log_crf(self, key: Key, now: int) -> float:
         """log2 of the key's decayed count at ``now`` (its combined recency and frequency value)."""
-        return math.log2(self.count[key]) - self.lam * (now - self.last[key])
+        return math.log2(self.count[key]) - self.lam * (now - self.origin)
 
     def victim(self, candidates, now):
-        return min(candidates, key=lambda k: self.log_crf(k, now))
+        return min(candidates, key=self.count.__getitem__)
 
 
 class _RoutingModel:
@@ -250,12 +267,13 @@ class _RoutingModel:
     Memory is fixed: a direct-mapped table of ``2**table_bits`` contexts (a newer context takes the
     bucket of an older one with the same hash bits) and a ring of the last ``2**ring_bits``
     decisions, 4-byte integers (about 270 KiB per layer with the defaults and ``memory`` 2);
-    occurrences older than the ring are forgotten.  Work per step: about ``order`` hash and
-    table operations; per step that asks for an estimate, about ``memory * horizon * top_k`` more.
+    occurrences older than the ring are forgotten.  Work per step: about ``order`` integer hash
+    and table operations; per step that asks for an estimate, about ``memory * horizon`` more
+    (the follow-up is summed per decision, then spread over the decision's experts).
     """
 
     __slots__ = ("order", "horizon", "kappa", "weights", "mask", "ring_mask", "keys", "end0", "end1", "ring", "ids", "sets",
-                 "steps", "seen", "current", "follow", "cache")
+                 "steps", "seen", "current", "follow", "total", "cache")
 
     def __init__(self, order: int, gamma: float, horizon: int, kappa: float, memory: int, table_bits: int = 14, ring_bits: int = 14):
         if memory not in (1, 2):
@@ -274,9 +292,10 @@ class _RoutingModel:
         self.ids: dict[tuple, int] = {}  # decision -> small int
         self.sets: list[tuple] = []  # small int -> decision
         self.steps = 0
-        self.seen: dict[int, int] = {}  # expert -> steps that chose it
+        self.seen: list[int] = []  # expert -> steps that chose it
         self.current: list[int] = []  # hashes of the contexts ending at the last step, short to long
         self.follow: dict | None = None  # see _follow (None: not looked up yet at this step)
+        self.total = 0.0
         self.cache: dict[int, float] = {}
 
     def step(self, chosen: tuple) -> None:
@@ -298,26 +317,33 @@ class _RoutingModel:
             d = self.ids[chosen] = len(self.sets)
             self.sets.append(chosen)
         self.ring[t & self.ring_mask] = d
-        self.current = [hash((d, -1)) & 0x7FFFFFFF | 1] + [hash((d, k)) & 0x7FFFFFFF | 1 for k in self.current[: self.order - 1]]
+        # context hashes: order 1 from d alone, order o + 1 from d and the order-o context of the step before
+        mix = (d + 1) * 0x9E3779B1
+        cur = [mix & 0x7FFFFFFF | 1]
+        for k in self.current[: self.order - 1]:
+            cur.append(((k * 0x85EBCA6B) ^ mix) & 0x7FFFFFFF | 1)
+        self.current = cur
         self.steps = t + 1
         seen = self.seen
         for e in chosen:
-            seen[e] = seen.get(e, 0) + 1
+            if e >= len(seen):
+                grow(seen, e)
+            seen[e] += 1
         self.follow = None
         self.cache = {}
 
     def _follow(self) -> dict:
-        """Follow-up weights of the longest current context seen before, summed over its remembered
-        occurrences, with their weight total under the key None ({} when no context was seen)."""
+        """Follow-up weight per expert of the longest current context seen before, summed over its
+        remembered occurrences; its weight total goes to ``self.total`` ({} when no context was seen)."""
         keys, mask, t = self.keys, self.mask, self.steps - 1
         oldest = max(0, t - self.ring_mask)  # earlier steps have left the ring (and -1 means never)
-        ring, sets, rm, weights, horizon = self.ring, self.sets, self.ring_mask, self.weights, self.horizon
-        follow: dict = {}
+        ring, rm, weights, horizon = self.ring, self.ring_mask, self.weights, self.horizon
+        per_decision: dict = {}
+        total = 0.0
         for key in reversed(self.current):  # longest first
             b = key & mask
             if keys[b] != key:
                 continue
-            total = 0.0
             for ends in (self.end0, self.end1):
                 if ends is None:
                     break
@@ -327,12 +353,17 @@ class _RoutingModel:
                 for i in range(min(horizon, t - p)):  # p < t: contexts are registered one step late
                     wt = weights[i]
                     total += wt
-                    for e in sets[ring[(p + 1 + i) & rm]]:
-                        follow[e] = follow.get(e, 0.0) + wt
+                    d = ring[(p + 1 + i) & rm]
+                    per_decision[d] = per_decision.get(d, 0.0) + wt
             if total > 0.0:
-                follow[None] = total
                 break
+        follow: dict = {}
+        sets = self.sets
+        for d, wt in per_decision.items():
+            for e in sets[d]:
+                follow[e] = follow.get(e, 0.0) + wt
         self.follow = follow
+        self.total = total
         return follow
 
     def p(self, e: int) -> float:
@@ -340,9 +371,10 @@ class _RoutingModel:
         p = self.cache.get(e)
         if p is None:
             follow = self.follow if self.follow is not None else self._follow()
-            p = (self.seen.get(e, 0) + 1.0) / (self.steps + 2.0)
+            seen = self.seen
+            p = ((seen[e] if e < len(seen) else 0) + 1.0) / (self.steps + 2.0)
             if follow:
-                p = (follow.get(e, 0.0) + self.kappa * p) / (follow[None] + self.kappa)
+                p = (follow.get(e, 0.0) + self.kappa * p) / (self.total + self.kappa)
             self.cache[e] = p
         return p
 
@@ -358,8 +390,8 @@ class Markov(LRFU):
     without those calls (or in prefill) the model has no context and the rule reduces to LRFU.
 
     Keys are expert ids (one policy per layer) or ``layer * shared_experts + expert`` (one pool
-    shared by all layers: one routing model per layer).  Parameters were chosen on tuning traces and
-    checked on traces never used for tuning (docs/policy_research.md, scripts/tune_policy.py).
+    shared by all layers: one routing model per layer).  Parameters were chosen on tuning traces
+    and checked on traces never used for tuning (docs/policy_research.md, scripts/tune_policy.py).
     """
 
     name = "markov"
@@ -385,21 +417,28 @@ class Markov(LRFU):
 
     def routed(self, layer, chosen, probs, now):
         self.layer = layer
-        self._model(layer).step(tuple(chosen))
+        m = self.models.get(layer)
+        if m is None:
+            m = self._model(layer)
+        m.step(tuple(chosen))
 
     def score(self, key: Key, now: int) -> float:
         """log p(key needed soon) + w * ln crf(key); the smallest is evicted."""
         layer, e = divmod(key, self.shared_experts) if self.shared_experts else (self.layer, key)
-        return math.log(self._model(layer).p(e)) + self.w * (math.log(self.count[key]) - self.lam * LN2 * (now - self.last[key]))
+        return math.log(self._model(layer).p(e)) + self.w * LN2 * self.log_crf(key, now)
 
     def victim(self, candidates, now):
+        if len(candidates) == 1:
+            return candidates[0]
+        # score() up to a term common to every candidate (w * lam * ln 2 * (now - origin)), inlined
+        count, w, log = self.count, self.w, math.log
         if self.shared_experts:  # a shared pool: each key scored by its layer's model
-            return min(candidates, key=lambda k: self.score(k, now))
-        p, count, last = self._model(self.layer).p, self.count, self.last  # the same rule as score(), inlined
-        w, c, log = self.w, self.lam * LN2, math.log
+            E, model = self.shared_experts, self._model
+            return min(candidates, key=lambda k: log(model(k // E).p(k % E)) + w * log(count[k]))
+        p = self._model(self.layer).p
         best, low = None, math.inf
         for k in candidates:
-            s = log(p(k)) + w * (log(count[k]) - c * (now - last[k]))
+            s = log(p(k)) + w * log(count[k])
             if s < low:
                 best, low = k, s
         return best

@@ -8,9 +8,12 @@ One run, same prompt, seed and cap for every configuration:
   no-reuse     only the chosen experts are paged in, every time, no cache
   lru          the pool under the cap, LRU eviction
   prefetch     the pool under the cap, LRU + speculative prefetch
+  markov       the pool under the cap, markov eviction (with and without prefetch)
 The cap is about a third of the expert bytes (plus dense weights, KV cache and
 scratch).  The link speed is emulated (sleeping page-ins) and chosen from a
 calibration run so that LRU alone spends about half of its decode time stalled.
+Then LRU and LRU + prefetch again with ``--busy N`` CPU-bound processes of our own
+running beside them, and a table of both at other links (``--links``).
 
 With ``--evict lru,markov`` it compares eviction policies instead, live: a cap of
 ``--slots-per-layer`` experts per layer, one session per run (one engine, every
@@ -135,17 +138,38 @@ def compare_policies(a, model) -> int:
     return 0
 
 
+def busy_processes(n: int) -> list:
+    """Start n plain CPU-bound busy loops (a competing program on the machine); stop them with stop_busy."""
+    import subprocess
+    import sys
+
+    return [subprocess.Popen([sys.executable, "-c", "while True: pass"]) for _ in range(n)]
+
+
+def stop_busy(procs: list) -> None:
+    for p in procs:
+        p.kill()
+        p.wait()
+
+
+def spread(rows: list[dict]) -> dict:
+    tok = [r["tok_s"] for r in rows]
+    return {"best": max(tok), "worst": min(tok), "runs": tok, "spread": (max(tok) - min(tok)) / max(tok) if max(tok) else 0.0}
+
+
 def main() -> int:
     ap = argparse.ArgumentParser(description=__doc__, formatter_class=argparse.RawDescriptionHelpFormatter)
     ap.add_argument("--model", default=None, help="model directory (default: the bundled model)")
     ap.add_argument("--prompt", default="<doc>")
-    ap.add_argument("--max-new", type=int, default=160)
+    ap.add_argument("--max-new", type=int, default=240)
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--prefetch", type=int, default=2)
     ap.add_argument("--lookahead", type=int, default=1)
     ap.add_argument("--prefetch-from", default="attention", choices=("attention", "output"))
     ap.add_argument("--link-speed", default=None, help="fix the emulated link instead of calibrating it")
-    ap.add_argument("--repeats", type=int, default=3, help="runs per configuration, interleaved; the best is kept")
+    ap.add_argument("--links", default="1GB/s,2GB/s,3GB/s,6GB/s", help="links of the per-link table ('' for none)")
+    ap.add_argument("--busy", type=int, default=1, help="CPU-bound processes of our own beside the busy rows (0: no busy rows)")
+    ap.add_argument("--repeats", type=int, default=5, help="runs per configuration, interleaved; best and spread are kept")
     ap.add_argument("--evict", default=None, help="compare these eviction policies live instead, e.g. lru,markov")
     ap.add_argument("--slots-per-layer", type=int, default=4, help="with --evict: expert slots per layer (default 4)")
     ap.add_argument("--session-prompts", type=int, default=len(SESSION_PROMPTS), help="with --evict: prompts per session")
@@ -168,29 +192,47 @@ def main() -> int:
 
     if a.link_speed:
         rate = parse_rate(a.link_speed)
-    else:  # calibrate: LRU at real speed, then the rate at which page-in time equals compute time
-        cal = decode(model, prompt, a.max_new, a.seed, mem_cap=cap)
-        misses = cal["stats"]["pool"]["misses"]
-        compute_s = cal["decode_s"] - cal["stall_s"]
-        rate = misses * st.expert_nbytes / max(compute_s, 1e-6)
+    else:  # calibrate: LRU at real speed, then the rate at which page-in time equals compute time (best of 3)
+        rates = []
+        for _ in range(3):
+            cal = decode(model, prompt, a.max_new, a.seed, mem_cap=cap)
+            misses = cal["stats"]["pool"]["misses"]
+            compute_s = cal["decode_s"] - cal["stall_s"]
+            rates.append(misses * st.expert_nbytes / max(compute_s, 1e-6))
+        rate = max(rates)
+    pf = {"prefetch": a.prefetch, "lookahead": a.lookahead, "prefetch_from": a.prefetch_from}
     link = {"link_speed": rate}
     configs = {
         "bare": {"bare": True},
         "resident": {},
+        "resident_prefetch": dict(pf),
         "whole_layer": {"baseline": "whole-layer", **link},
         "no_reuse": {"baseline": "no-reuse", **link},
         "lru": {"mem_cap": cap, **link},
-        "prefetch": {"mem_cap": cap, "prefetch": a.prefetch, "lookahead": a.lookahead, "prefetch_from": a.prefetch_from, **link},
+        "prefetch": {"mem_cap": cap, **pf, **link},
+        "markov": {"mem_cap": cap, "evict": "markov", **link},
+        "markov_prefetch": {"mem_cap": cap, "evict": "markov", **pf, **link},
     }
-    runs = {}
+    links = [parse_rate(x) for x in a.links.split(",") if x.strip()]
+    for r in links:
+        configs[f"lru@{r:g}"] = {"mem_cap": cap, "link_speed": r}
+        configs[f"prefetch@{r:g}"] = {"mem_cap": cap, **pf, "link_speed": r}
+    runs: dict = {k: [] for k in configs}
+    busy_runs: dict = {"lru": [], "prefetch": []}
     for _ in range(a.repeats):  # interleaved, so a slow spell of a shared machine hits every configuration alike
         for key, kw in configs.items():
-            row = decode(model, prompt, a.max_new, a.seed, **kw)
-            if key not in runs or row["tok_s"] > runs[key]["tok_s"]:
-                runs[key] = row
-    same = all(r["tokens"] == runs["bare"]["tokens"] for r in runs.values())
-    lru_pool = runs["lru"]["stats"]["pool"]
-    pf_pool = runs["prefetch"]["stats"]["pool"]
+            runs[key].append(decode(model, prompt, a.max_new, a.seed, **kw))
+        if a.busy:
+            procs = busy_processes(a.busy)
+            try:
+                for key in busy_runs:
+                    busy_runs[key].append(decode(model, prompt, a.max_new, a.seed, **configs[key]))
+            finally:
+                stop_busy(procs)
+    best = {k: max(v, key=lambda r: r["tok_s"]) for k, v in runs.items()}
+    same = all(r["tokens"] == best["bare"]["tokens"] for v in list(runs.values()) + list(busy_runs.values()) for r in v)
+    lru_pool = best["lru"]["stats"]["pool"]
+    pf_pool = best["prefetch"]["stats"]["pool"]
     doc = {
         "model": str(model),
         "blas_threads": 1,
@@ -198,7 +240,7 @@ def main() -> int:
         "max_new": a.max_new,
         "seed": a.seed,
         "cap_bytes": cap,
-        "slots": runs["lru"]["stats"]["budget"]["slots"],
+        "slots": best["lru"]["stats"]["budget"]["slots"],
         "expert_bytes": st.expert_nbytes,
         "experts_total_bytes": expert_total,
         "link_speed_bytes_s": rate,
@@ -207,45 +249,75 @@ def main() -> int:
         "lookahead": a.lookahead,
         "prefetch_from": a.prefetch_from,
         "repeats_interleaved": a.repeats,
-        "bare_tok_s": runs["bare"]["tok_s"],
-        "resident_tok_s": runs["resident"]["tok_s"],
-        "whole_layer_tok_s": runs["whole_layer"]["tok_s"],
-        "no_reuse_tok_s": runs["no_reuse"]["tok_s"],
-        "lru_tok_s": runs["lru"]["tok_s"],
-        "prefetch_tok_s": runs["prefetch"]["tok_s"],
-        "lru_stall_share": runs["lru"]["stall_s"] / runs["lru"]["total_s"],
-        "prefetch_stall_share": runs["prefetch"]["stall_s"] / runs["prefetch"]["total_s"],
+        "busy_processes": a.busy,
+        "lru_stall_share": best["lru"]["stall_s"] / best["lru"]["total_s"],
+        "prefetch_stall_share": best["prefetch"]["stall_s"] / best["prefetch"]["total_s"],
         "lru_hit_rate": lru_pool["hit_rate"],
         "prefetch_hit_rate": pf_pool["hit_rate"],
+        "markov_hit_rate": best["markov"]["stats"]["pool"]["hit_rate"],
         "prefetch_accuracy": pf_pool["prefetch"]["accuracy"],
+        "prefetch_declined": pf_pool["prefetch"]["declined"],
         "prefetch_hidden_ms": pf_pool["prefetch"]["hidden_ns"] / 1e6,
         "same_tokens_everywhere": same,
+        "spread": {k: spread(v) for k, v in runs.items()},
     }
+    for key in configs:
+        if "@" not in key:
+            doc[f"{key}_tok_s"] = best[key]["tok_s"]
+    if a.busy:
+        for key, rows in busy_runs.items():
+            doc[f"{key}_busy_tok_s"] = max(r["tok_s"] for r in rows)
+            doc["spread"][f"{key}_busy"] = spread(rows)
+    doc["per_link"] = [
+        {"link_bytes_s": r, "lru_tok_s": best[f"lru@{r:g}"]["tok_s"], "prefetch_tok_s": best[f"prefetch@{r:g}"]["tok_s"],
+         "lru_stall_share": best[f"lru@{r:g}"]["stall_s"] / best[f"lru@{r:g}"]["total_s"],
+         "prefetch_vs_lru": best[f"prefetch@{r:g}"]["tok_s"] / best[f"lru@{r:g}"]["tok_s"]}
+        for r in links
+    ]
     doc["ratios"] = {
+        "prefetch_vs_lru": doc["prefetch_tok_s"] / doc["lru_tok_s"],
+        "markov_vs_lru": doc["markov_tok_s"] / doc["lru_tok_s"],
+        "markov_prefetch_vs_lru": doc["markov_prefetch_tok_s"] / doc["lru_tok_s"],
         "prefetch_vs_whole_layer": doc["prefetch_tok_s"] / doc["whole_layer_tok_s"],
         "prefetch_vs_no_reuse": doc["prefetch_tok_s"] / doc["no_reuse_tok_s"],
-        "prefetch_vs_lru": doc["prefetch_tok_s"] / doc["lru_tok_s"],
         "resident_vs_bare": doc["resident_tok_s"] / doc["bare_tok_s"],
+        "resident_prefetch_vs_resident": doc["resident_prefetch_tok_s"] / doc["resident_tok_s"],
     }
+    if a.busy:
+        doc["ratios"]["prefetch_busy_vs_lru_busy"] = doc["prefetch_busy_tok_s"] / doc["lru_busy_tok_s"]
     if a.json:
         print(json.dumps(doc, indent=2))
         return 0
     print(f"model {model}; cap {fmt_bytes(cap)} = fixed {fmt_bytes(d + kv + s)} + {n_slots} slots of {fmt_bytes(per)} "
-          f"(experts total {fmt_bytes(expert_total)}); link {rate / 1e9:.3f} GB/s (emulated); prefetch {a.prefetch} guesses, "
-          f"lookahead {a.lookahead}, from {a.prefetch_from}; configurations interleaved, best of {a.repeats}; {_bench.BLAS_NOTE}")
-    print(f"{'configuration':<14}{'decode tok/s':>14}{'stall share':>13}{'hit rate':>10}")
-    for key, label in (("bare", "bare"), ("resident", "resident"), ("whole_layer", "whole-layer"), ("no_reuse", "no-reuse"),
-                       ("lru", "lru"), ("prefetch", "lru+prefetch")):
-        r = runs[key]
-        hr = r["stats"].get("pool", {}).get("hit_rate") if key in ("lru", "prefetch") else None
+          f"(experts total {fmt_bytes(expert_total)}); link {rate / 1e9:.3f} GB/s (emulated, LRU about half stalled); prefetch "
+          f"{a.prefetch} guesses, lookahead {a.lookahead}, from {a.prefetch_from}; {a.max_new} tokens; configurations interleaved, "
+          f"best of {a.repeats}; {_bench.BLAS_NOTE}")
+    print(f"{'configuration':<18}{'decode tok/s':>14}{'spread':>9}{'stall share':>13}{'hit rate':>10}")
+    rows = [(k, k.replace("_", "-")) for k in configs if "@" not in k]
+    for key, label in rows:
+        r = best[key]
+        hr = r["stats"].get("pool", {}).get("hit_rate") if "mem_cap" in configs[key] else None
         share = r["stall_s"] / r["total_s"] if r["total_s"] else 0
-        print(f"{label:<14}{r['tok_s']:>14.0f}{100 * share:>12.1f}%{'' if hr is None else f'{100 * hr:.1f}%':>10}")
+        print(f"{label:<18}{r['tok_s']:>14.0f}{100 * doc['spread'][key]['spread']:>8.0f}%{100 * share:>12.1f}%"
+              f"{'' if hr is None else f'{100 * hr:.1f}%':>10}")
+    if a.busy:
+        for key in busy_runs:
+            sp = doc["spread"][f"{key}_busy"]
+            print(f"{key + ' + busy':<18}{doc[key + '_busy_tok_s']:>14.0f}{100 * sp['spread']:>8.0f}%   ({a.busy} busy process"
+                  f"{'es' if a.busy > 1 else ''} of our own beside it)")
+    if links:
+        print(f"{'link (emulated)':<18}{'lru tok/s':>11}{'stall':>8}{'prefetch':>10}{'vs lru':>8}")
+        for row in doc["per_link"]:
+            print(f"{row['link_bytes_s'] / 1e9:>9.1f} GB/s     {row['lru_tok_s']:>11.0f}{100 * row['lru_stall_share']:>7.0f}%"
+                  f"{row['prefetch_tok_s']:>10.0f}{row['prefetch_vs_lru']:>7.2f}x")
     rt = doc["ratios"]
-    print(f"lru+prefetch vs whole-layer {rt['prefetch_vs_whole_layer']:.2f}x (goal 3.5x), vs no-reuse "
-          f"{rt['prefetch_vs_no_reuse']:.2f}x (goal 1.6x), vs lru {rt['prefetch_vs_lru']:.2f}x (goal 1.2x); "
-          f"resident/bare {100 * rt['resident_vs_bare']:.0f}% (goal 90%)")
-    print(f"prefetch accuracy {100 * (doc['prefetch_accuracy'] or 0):.1f}%, page-in hidden {doc['prefetch_hidden_ms']:.1f} ms; "
-          f"tokens identical in every configuration: {same}")
+    print(f"lru+prefetch vs lru {rt['prefetch_vs_lru']:.2f}x (goal 1.15x), vs whole-layer {rt['prefetch_vs_whole_layer']:.2f}x "
+          f"(goal 3.5x), vs no-reuse {rt['prefetch_vs_no_reuse']:.2f}x; markov vs lru {rt['markov_vs_lru']:.2f}x (goal 1.08x); "
+          f"resident/bare {100 * rt['resident_vs_bare']:.0f}% (goal 90%); resident with prefetch on / without "
+          f"{100 * rt['resident_prefetch_vs_resident']:.0f}% (goal 97%)"
+          + (f"; with {a.busy} busy: prefetch vs lru {rt['prefetch_busy_vs_lru_busy']:.2f}x (goal 0.95x)" if a.busy else ""))
+    print(f"prefetch accuracy {100 * (doc['prefetch_accuracy'] or 0):.1f}%, {doc['prefetch_declined']} guesses declined, "
+          f"page-in hidden {doc['prefetch_hidden_ms']:.1f} ms; tokens identical in every configuration: {same}")
     return 0
 
 

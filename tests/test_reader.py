@@ -1,0 +1,146 @@
+"""moerun.reader and moerun/reader_child.py: the reader process never spins, keeps the emulated
+link on a virtual clock, and a reader that stops answering cannot hang decode.
+
+DESIGN invariants 4 (prefetch is advisory; no wait on the reader is unbounded) and 6 (nothing
+spins: a side with nothing to do blocks).
+"""
+
+from __future__ import annotations
+
+import time
+import warnings
+
+import numpy as np
+import pytest
+from conftest import reader_processes
+
+import moerun
+from moerun import reader_child as rc
+from moerun.budget import minimum_cap
+from moerun.errors import ReaderStalled
+from moerun.reader import Reader
+from moerun.sampling import Sampling
+from moerun.store import ModelStore
+
+SAMPLING = Sampling(temperature=0.8, top_p=0.95, seed=3)
+
+
+def _bits(a) -> np.ndarray:
+    return np.ascontiguousarray(a, dtype=np.float32).view(np.uint32)
+
+
+def _min_cap(model) -> int:
+    with moerun.load(model, tokenizer=False) as eng:
+        st = eng.store
+        return minimum_cap(st.config, st.dense_nbytes, st.expert_nbytes)
+
+
+def _generate(model, max_new=40, setup=None, **kw):
+    with moerun.load(model, tokenizer=False, **kw) as eng:
+        if setup is not None:
+            setup(eng)
+        gen = eng.generate(prompt_ids=[4, 5, 6, 7], max_new=max_new, sampling=SAMPLING, keep_logits=True)
+        return gen.new_ids, np.stack(gen.logits), eng.stats, eng.prefetcher.reader if eng.prefetcher else None
+
+
+def test_idle_reader_uses_under_two_percent_of_a_cpu(small_model):
+    # DESIGN invariant 6: with prefetch on and no requests, the reader blocks on its doorbell
+    with moerun.load(small_model, tokenizer=False, mem_cap=_min_cap(small_model), prefetch=2) as eng:
+        eng.generate(prompt_ids=[1, 2, 3], max_new=8)  # it has served requests and gone idle since
+        reader = eng.prefetcher.reader
+        time.sleep(0.1)
+        before = reader.cpu_seconds()
+        t0 = time.monotonic()
+        time.sleep(1.0)
+        used = reader.cpu_seconds() - before
+        wall = time.monotonic() - t0
+    assert used < 0.02 * wall, f"idle reader used {used:.4f} s of CPU in {wall:.2f} s"
+
+
+def test_reader_does_not_spin_while_requests_flow_over_an_emulated_link(small_model):
+    # a spinning reader would use about one CPU-second per second of decode; a DMA-like one a fraction
+    cap = _min_cap(small_model)
+    with moerun.load(small_model, tokenizer=False, mem_cap=cap, prefetch=2, link_speed="20MB/s") as eng:
+        reader = eng.prefetcher.reader
+        before = reader.cpu_seconds()
+        t0 = time.monotonic()
+        eng.generate(prompt_ids=[1, 2, 3], max_new=20, sampling=SAMPLING)
+        wall = time.monotonic() - t0
+        used = reader.cpu_seconds() - before
+        reads = eng.stats["pool"]["demand_loads"] + eng.stats["pool"]["prefetch"]["loads"]
+    assert reads > 20  # the link was busy the whole run
+    assert used < 0.25 * wall, f"reader used {used:.3f} s of CPU in {wall:.2f} s of decode"
+
+
+def test_emulated_transfers_queue_back_to_back_on_a_virtual_clock(small_model):
+    # a transfer starts when the link frees (or when asked, if later) and lasts nbytes / rate,
+    # whatever the reader's own wake-ups: consecutive published windows touch exactly
+    store = ModelStore.open(small_model)
+    rate = 2e7  # 20 MB/s: each expert of the small model takes a few ms
+    store.link_rate = rate
+    n = 6
+    slot_size = -(-store.expert_nbytes // 4096) * 4096
+    reader = Reader(store, n, slot_size)
+    E = store.config.n_experts
+    try:
+        for i in range(n):
+            reader.submit(i, 1, 0, i % E, True, 0)
+        got = [reader.wait(i, 1) for i in range(n)]
+        copied = [bytes(reader.block[i * slot_size : i * slot_size + store.expert_nbytes]) for i in range(n)]
+        wanted = [store._read(store.ranges[0][i % E].start, store.expert_nbytes) for i in range(n)]
+    finally:
+        reader.close()
+        store.close()
+    dur = store.expert_nbytes / rate * 1e9
+    assert all(g[0] == rc.OK for g in got)
+    starts = [g[2] for g in got]
+    ends = [g[1] for g in got]
+    for i in range(n):
+        assert ends[i] - starts[i] >= int(dur) - 1  # each transfer occupies the link for its emulated time
+    for i in range(1, n):
+        assert starts[i] == ends[i - 1]  # the next starts where the last one ended: no wake-up gap
+    assert copied == wanted
+
+
+def test_reader_that_stops_answering_is_stopped_and_the_output_stays_identical(small_model):
+    # DESIGN invariant 4: no unbounded wait.  SIGSTOP keeps the process alive but silent.
+    ref = _generate(small_model)
+    cap = _min_cap(small_model)
+    before = len(reader_processes())
+
+    def setup(eng):
+        reader = eng.prefetcher.reader
+        steps = [0]
+        real = eng.pool.begin_step
+
+        def begin_step(step):
+            steps[0] += 1
+            if steps[0] == 8:
+                reader.freeze()
+            real(step)
+
+        eng.pool.begin_step = begin_step
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        t0 = time.monotonic()
+        got = _generate(small_model, setup=setup, mem_cap=cap, prefetch=2, reader_timeout=0.3)
+        took = time.monotonic() - t0
+    assert got[0] == ref[0]
+    assert np.array_equal(_bits(got[1]), _bits(ref[1]))
+    stalled = [w for w in caught if issubclass(w.category, ReaderStalled)]
+    assert len(stalled) == 1  # said once
+    assert got[2]["pool"]["prefetch"]["reader_stalled"] is True
+    assert got[2]["reader_alive"] is False
+    assert got[3].proc.poll() is not None and len(reader_processes()) == before  # stopped, not left frozen
+    assert took < 10.0
+
+
+def test_reader_that_cannot_start_is_not_reported_as_a_bad_option(small_model, monkeypatch):
+    from moerun import reader as reader_mod
+    from moerun.errors import BadOption, ReaderError
+
+    monkeypatch.setattr(reader_mod, "CHILD", reader_mod.CHILD.with_name("no_such_reader.py"))
+    with pytest.raises(ReaderError) as err:
+        moerun.load(small_model, tokenizer=False, mem_cap=_min_cap(small_model), prefetch=2)
+    assert not isinstance(err.value, BadOption)
