@@ -276,6 +276,7 @@ def load(
     tokenizer: bool = True,
     baseline: str | None = None,
     reader_timeout: float = STALL_TIMEOUT_S,
+    guess_slot: bool = False,
 ) -> Engine:
     """Open a model and return an engine (DESIGN section 4).
 
@@ -322,7 +323,7 @@ def load(
         else:
             if prefetch > 0:  # every page-in of the run then goes through the reader process
                 reader = Reader(store, budget.n_slots, budget.slot, reader_timeout)
-            experts = ExpertPool(store, budget, evict, reader)
+            experts = ExpertPool(store, budget, evict, reader, guess_slot=guess_slot and prefetch > 0)
             if cap is None:
                 experts.preload_all()
         options = {

@@ -4,16 +4,22 @@ The pool is the *expert source* the model asks for weights (``moerun.sources.Exp
 ``routed`` does the residency bookkeeping for a layer's chosen experts in
 ascending id (the same order the replay uses), ``compute_order`` lists
 resident experts first, and ``weights`` returns an expert's float32 matrices
-once its bytes are in a slot (waiting for an in-flight read, or reading
-synchronously).
+once its bytes are in a slot.
 
 Slots are one preallocated, page-aligned block, written only by page-in; each
-has one ``Slot`` record.  Everything here runs on the compute thread.  With
-prefetch on, reads are handed to the reader process (``moerun.reader``): the
-slot stays LOADING, and so cannot be evicted or reused, until the reader
-publishes its result.  ``prefetch`` places a guess: it is read only if it can
-arrive about when its layer needs it and the policy would rather hold it than
-the expert it evicts (``Policy.admits``).
+has one ``Slot`` record.  Everything here runs on the compute thread.
+
+- A layer's own misses are read on the compute thread when the layer needs
+  them (it would wait for them anyway).  With an emulated link they are booked
+  on the link (``moerun.link``) as soon as the layer has routed, so they travel
+  while the layer computes the experts it has.
+- With prefetch on, ``prefetch`` places guesses and hands their reads to the
+  reader process (``moerun.reader``): the slot stays LOADING, and so cannot be
+  evicted or reused, until the reader publishes its result.  A guess is read
+  only if it can arrive about when its layer needs it and the policy would
+  rather hold it than the expert it evicts (``Policy.admits``).  A guess whose
+  layer starts without it is dropped: its link time is given back, and its slot
+  once the reader lets go.
 """
 
 from __future__ import annotations
@@ -27,13 +33,13 @@ from . import policies, reader_child
 from .budget import Budget
 from .clock import wait_until
 from .errors import BadOption
+from .link import Transfer
 from .residency import NoVictim, Residency
 from .sources import ExpertSource, aligned_block
 from .store import ModelStore
 
-EMPTY, LOADING, READY = 0, 1, 2  # LOADING: a background read is outstanding in the reader process
+EMPTY, LOADING, READY = 0, 1, 2  # LOADING: the reader process owns the slot's bytes until it publishes
 HIT, PREFETCHED, MISS = 0, 1, 2
-DEMAND, GUESS, PREFILL = 0, 1, 2  # why a slot is being read
 KIND_NAMES = {HIT: "hit", PREFETCHED: "prefetched", MISS: "miss"}
 
 
@@ -47,12 +53,14 @@ class Slot:
     state: int = EMPTY
     layer: int = -1  # the expert it holds or is being read into (-1: none)
     expert: int = -1
+    res: Residency | None = None  # the residency that holds it (a layer's, or a layer's guess slot)
     gen: int = 0  # bumped by every new read, so a result for an earlier read is never taken
     guess: bool = False  # loaded by a guess that no layer has used yet
-    why: int = 0  # who asked for its current read: DEMAND, GUESS or PREFILL
-    usable_at: int = 0  # when its (emulated) transfer is done; a layer may use it from then on
-    start_ns: int = 0  # when its current read started
-    read_ns: int = 0
+    dropped: bool = False  # a guess given back while the reader still held it: freed once it lets go
+    owed: bool = False  # read here while the reader still held it: the reader may write it until it answers
+    transfer: Transfer | None = None  # its emulated transfer, with a link
+    ready_at: int = 0  # when its bytes arrived (no link)
+    read_ns: int = 0  # how long its last read took
 
 
 @dataclass
@@ -63,19 +71,20 @@ class PoolStats:
     prefetch_hits: list = field(init=False)  # resident or in flight thanks to a guess
     misses: list = field(init=False)
     stall_ns: list = field(init=False)
-    pagein_ns: list = field(init=False)  # synchronous page-in time of demand reads
+    pagein_ns: list = field(init=False)  # page-in time of demand reads
     bytes_in: int = 0  # all bytes paged in (demand + prefetch)
     demand_loads: int = 0
     prefill_loads: int = 0
     prefetch_guesses: int = 0  # guesses made
     prefetch_resident: int = 0  # guesses already resident or in flight: nothing to do
     prefetch_declined: int = 0  # guesses not read: too late to arrive in time, or the policy kept its victim
-    prefetch_loads: int = 0  # guesses that needed a page-in
+    prefetch_loads: int = 0  # guesses handed to the reader
+    prefetch_dropped: int = 0  # guesses whose layer started without them before they took any link time
     prefetch_used: int = 0  # prefetched experts that a layer then used
-    prefetch_wasted_bytes: int = 0  # prefetched bytes evicted before any use
+    prefetch_wasted_bytes: int = 0  # prefetched bytes evicted or dropped before any use
     prefetch_failed: int = 0
-    prefetch_ns: int = 0  # page-in time of guesses in the reader process
-    hidden_ns: int = 0  # prefetch page-in time of used guesses not waited for
+    prefetch_ns: int = 0  # the reader's copy time of guesses
+    hidden_ns: int = 0  # transfer time of used guesses that no layer waited for
     reader_stalled: bool = False
 
     def __post_init__(self):
@@ -112,6 +121,7 @@ class PoolStats:
                 "already_resident": self.prefetch_resident,
                 "declined": self.prefetch_declined,
                 "loads": self.prefetch_loads,
+                "dropped": self.prefetch_dropped,
                 "used": self.prefetch_used,
                 "accuracy": (self.prefetch_used / self.prefetch_loads) if self.prefetch_loads else None,
                 "wasted_bytes": self.prefetch_wasted_bytes,
@@ -123,26 +133,17 @@ class PoolStats:
         }
 
 
-class LinkForecast:
-    """The compute thread's forecast of the link: when it frees, and how long a read takes.
+class Timing:
+    """Running averages (1/8 weight) the pool judges guesses by: one read's time, and the time from a
+    layer's prefetch point to the next layer's routing."""
 
-    It is told of every read handed to the reader and of every result, and of the time between a
-    layer's prefetch point and the next layer's routing, so that a guess can be judged by when it
-    would arrive against when its layer will need it.  Figures are running averages (1/8 weight).
-    """
-
-    __slots__ = ("read_ns", "free_at", "gap_ns", "mark")
+    __slots__ = ("read_ns", "gap_ns", "mark", "outstanding")
 
     def __init__(self, read_ns: float):
-        self.read_ns = read_ns  # one expert's read, as the reader reports it
-        self.free_at = 0  # when the reads handed over so far should be done
-        self.gap_ns = 0.0  # prefetch point of layer l to the routing of layer l + 1
+        self.read_ns = read_ns
+        self.gap_ns = 0.0
         self.mark = 0  # time of the last prefetch point
-
-    def queued(self, now: int) -> int:
-        """A read handed over now: returns when it should end."""
-        self.free_at = max(self.free_at, now) + int(self.read_ns)
-        return self.free_at
+        self.outstanding = 0  # guess reads handed to the reader and not settled
 
     def observed(self, read_ns: int) -> None:
         self.read_ns += (read_ns - self.read_ns) / 8
@@ -156,15 +157,15 @@ class LinkForecast:
 class ExpertPool(ExpertSource):
     """Slots, residency per layer (or shared), and the expert-source interface for the model.
 
-    Everything here runs on the compute thread; with a reader (prefetch on), every read goes
-    to the reader process (``moerun.reader``) and comes back through shared memory.
+    Everything here runs on the compute thread; with a reader (prefetch on), guesses are read by
+    the reader process (``moerun.reader``) and come back through shared memory.
     """
 
     # A guess is read only if it should arrive no later than this share of one read after its
-    # layer starts routing (chosen by measurement: docs/offload.md, "Admission").
+    # layer starts routing (chosen by measurement: docs/offload.md, "Which guesses are read").
     late_share = 0.5
 
-    def __init__(self, store: ModelStore, budget: Budget, evict: str = "lru", reader=None):
+    def __init__(self, store: ModelStore, budget: Budget, evict: str = "lru", reader=None, guess_slot: bool = False):
         super().__init__(store)
         self.budget = budget
         self.config = c = store.config
@@ -194,13 +195,25 @@ class ExpertPool(ExpertSource):
                 self.res_of.append(Residency(n, policies.make_policy(policy_cls, E), list(range(start, start + n))))
                 start += n
             self.base = [0] * L
+        # guess_slot: each layer keeps one of its slots for guesses only (where its quota allows), so a
+        # guess never evicts an expert the layer has used; a used guess joins the layer's experts and
+        # the slot of the expert that makes room becomes the new guess slot
+        self.stage: list[Residency | None] = [None] * L
+        if guess_slot and not self.shared:
+            for layer, r in enumerate(self.res_of):
+                if r.capacity > c.top_k:
+                    slot = r.free.pop(0)  # the quota's last slot (free is kept in reverse order)
+                    r.capacity -= 1
+                    self.stage[layer] = Residency(1, policies.FIFO(E), [slot])
         self.signals = type(self.res_of[0].policy).routed is not policies.Policy.routed
         self.pinned: tuple = ()
         self.stats = PoolStats(L)
         self.progress = -1  # step * n_layers + layer of the layer being computed
-        self.reader = reader  # every page-in goes through it while it is alive
-        rate = store.link_rate
-        self.link = LinkForecast(store.expert_nbytes / rate * 1e9 if rate else 100_000.0)
+        self.reader = reader  # guesses are read by it while it is alive
+        self.link = store.link  # the emulated link, or None
+        self.timing = Timing(self.link.ns(store.expert_nbytes) if self.link is not None else 100_000.0)
+        self._guessed: list[list[Slot]] = [[] for _ in range(L)]  # guesses placed for each layer, not yet met by it
+        self._owed: list[Slot] = []  # slots read here while the reader still held them
         self._prefill = False
         self._events: dict = {}
         self._all_resident = None  # set by preload_all when every expert is resident
@@ -217,7 +230,9 @@ class ExpertPool(ExpertSource):
 
     def resident(self, layer: int, expert: int) -> bool:
         """Is the expert resident or on its way (no read needed)?"""
-        return self.base[layer] + expert in self.res_of[layer].slot_of
+        key = self.base[layer] + expert
+        stage = self.stage[layer]
+        return key in self.res_of[layer].slot_of or (stage is not None and key in stage.slot_of)
 
     # ------------------------------------------------------------------ loading
     def preload_all(self) -> None:
@@ -234,83 +249,79 @@ class ExpertPool(ExpertSource):
                     break
                 slot, _ = r.insert(self.key(layer, e))
                 s = self.slots[slot]
-                self._load_into(s, layer, e)
-                s.layer, s.expert, s.state = layer, e, READY
-        self.stats.bytes_in = 0
+                self.store.copy_in(layer, e, s.buf)
+                s.layer, s.expert, s.state, s.res = layer, e, READY, r
         E = c.n_experts
         if all(all(self.resident(layer, e) for e in range(E)) for layer in range(c.n_layers)):
             self._all_resident = [
                 {e: [HIT, self.res_of[layer].slot_of[self.key(layer, e)], 0, 0] for e in range(E)} for layer in range(c.n_layers)
             ]
 
-    def _load_into(self, s: Slot, layer: int, expert: int) -> int:
-        ns = self.store.page_in(layer, expert, s.buf)
-        self.stats.bytes_in += self.store.expert_nbytes
-        return ns
-
-    def _claim(self, s: Slot) -> int:
-        """Mark a slot LOADING for a new read; returns its new generation."""
-        s.gen += 1
-        s.state = LOADING
-        s.usable_at = 0
-        s.start_ns = time.monotonic_ns()
-        return s.gen
-
-    def _submit(self, s: Slot, why: int, target: int) -> bool:
-        """Hand a read to the reader process; False (slot left as it was) if the fault hook refused it."""
-        hook = self.store.fault_hook
-        if hook is not None:
-            try:
-                hook(s.layer, s.expert)  # runs before every expert read, as in ModelStore.page_in
-            except Exception:
-                return False
-        gen = self._claim(s)
-        s.why = why
-        self.res_of[s.layer].busy.add(self.key(s.layer, s.expert))
-        self.reader.submit(s.index, gen, s.layer, s.expert, why != GUESS, target)
-        self.link.queued(s.start_ns)
-        return True
+    def _usable_at(self, s: Slot, now: int) -> int:
+        """When a READY slot's bytes may be used: the end of its emulated transfer, or when they arrived."""
+        t = s.transfer
+        if t is None:
+            return s.ready_at
+        return t.end if t.end >= 0 else self.link.ends(t, now)
 
     def _settle(self, s: Slot, wait: bool = False) -> None:
-        """Take in the result of a LOADING slot's background read, if it is there (or once it is, with ``wait``)."""
-        if s.state != LOADING or self.reader is None:
+        """Take in the result of a LOADING (or owed) slot's background read, if it is there (or once it
+        is, with ``wait``)."""
+        if s.state != LOADING and not s.owed:
             return
         rd = self.reader
         got = rd.wait(s.index, s.gen) if wait else rd.poll(s.index, s.gen)
         if got is None:
             if rd.alive:
                 return
-            got = (reader_child.FAILED, 0, 0, 0)  # the reader died with this read outstanding
+            got = (reader_child.FAILED, 0, 0)  # the reader died with this read outstanding
         if rd.stalled:
             self.stats.reader_stalled = True
-        result, usable_at, start, ns = got
-        layer, expert = s.layer, s.expert
-        r = self.res_of[layer]
-        r.busy.discard(self.key(layer, expert))
+        result, start, ns = got
+        self.timing.outstanding -= 1
+        key = self.key(s.layer, s.expert)
+        r = s.res
+        r.busy.discard(key)
+        if s.owed:  # read here already; the reader has let go of it now
+            s.owed = False
+            return
         st = self.stats
+        if s.dropped and (result != reader_child.OK or s.transfer is not None):
+            self._give_back(s)  # dropped while the reader held it: its bytes never (emulated: officially) arrived
+            return
+        s.dropped = False
         if result == reader_child.OK:
             s.state = READY
-            s.usable_at = usable_at
-            s.start_ns = start
+            s.ready_at = start + ns
             s.read_ns = ns
-            self.link.observed(ns)
+            self.timing.observed(ns)
             st.bytes_in += self.store.expert_nbytes
-            if s.why == GUESS:
-                st.prefetch_ns += ns
-            else:
-                st.pagein_ns[layer] += ns
-                if s.why == PREFILL:
-                    st.prefill_loads += 1
-                else:
-                    st.demand_loads += 1
+            st.prefetch_ns += ns
             return
-        if result == reader_child.FAILED and s.why == GUESS:
+        if result == reader_child.FAILED:
             st.prefetch_failed += 1
         if s.guess:  # a guess no layer has claimed: forget it
-            s.guess = False
-            r.remove(self.key(layer, expert))
-            s.layer = s.expert = -1
+            self._give_back(s)
+            return
         s.state = EMPTY  # a layer that claimed it reads it itself
+        if s.transfer is not None:
+            self.link.drop(s.transfer, time.monotonic_ns())
+            s.transfer = None
+
+    def _give_back(self, s: Slot) -> None:
+        """Forget a guess's slot: it becomes free."""
+        if s.guess:
+            self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
+        s.res.remove(self.key(s.layer, s.expert))
+        s.state = EMPTY
+        s.guess = s.dropped = False
+        s.layer = s.expert = -1
+        s.res = s.transfer = None
+
+    def _settle_owed(self) -> None:
+        for s in self._owed:
+            self._settle(s)
+        self._owed = [s for s in self._owed if s.owed]
 
     def _settle_busy(self, r: Residency) -> None:
         for key in list(r.busy):
@@ -318,12 +329,12 @@ class ExpertPool(ExpertSource):
 
     def _evicted(self, s: Slot) -> None:
         """Bookkeeping when a READY slot's expert is evicted."""
-        s.gen += 1
         if s.guess:
             self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
             s.guess = False
         s.state = EMPTY
         s.layer = s.expert = -1
+        s.res = s.transfer = None
 
     def _access(self, r: Residency, key: int, pinned) -> tuple[bool, int]:
         """``Residency.access``, waiting while every evictable slot has a read outstanding."""
@@ -332,17 +343,64 @@ class ExpertPool(ExpertSource):
                 hit, slot, victim = r.access(key, pinned)
                 break
             except NoVictim:  # a background read is outstanding in every free slot; one will finish
-                self._settle_busy(r)
-                if r.busy and not r.candidates(pinned):
-                    self.reader.wait_any()
+                self._wait_for_room(r, pinned)
         if victim is not None:
             self._evicted(self.slots[slot])
         return hit, slot
+
+    def _wait_for_room(self, r: Residency, pinned) -> None:
+        since = self.reader.published()  # before looking: a result published after this wakes the wait
+        self._settle_busy(r)
+        if r.busy and not r.candidates(pinned):
+            self.reader.wait_any(since)
+
+    def _adopt(self, r: Residency, stage: Residency, key: int, pinned) -> int:
+        """A layer uses the guess in its guess slot: the guess joins the layer's experts, and the slot
+        that makes room for it (a free one, or its victim's) becomes the guess slot."""
+        slot = stage.slot_of[key]
+        while True:
+            try:
+                freed, victim = r.adopt(key, slot, pinned)
+                break
+            except NoVictim:
+                self._wait_for_room(r, pinned)
+        if victim is not None:
+            self._evicted(self.slots[freed])
+        busy = key in stage.busy
+        stage.remove(key, freed)
+        if busy:
+            r.busy.add(key)
+        self.slots[slot].res = r
+        return slot
 
     # ------------------------------------------------------------------ expert source
     def begin_step(self, step: int) -> None:
         self.step = step
         self._prefill = step < 0
+
+    def begin_layer(self, layer: int) -> None:
+        if self.recorder is not None:
+            self._layer_t0 = time.monotonic_ns()
+
+    def _meet_guesses(self, layer: int, ids: list[int], now: int) -> None:
+        """The layer has routed: guesses for it that it did not choose are dropped (their link time and
+        slots given back) unless their transfer has begun; those it chose are used."""
+        link = self.link
+        for s in self._guessed[layer]:
+            if s.layer != layer or not s.guess or s.expert in ids:
+                continue
+            if link is not None:
+                if s.transfer is not None and not link.drop(s.transfer, now):
+                    continue  # its transfer had begun: it arrives and stays resident, unused so far
+            elif s.state != LOADING:
+                continue  # already read: keep it
+            self.stats.prefetch_dropped += 1
+            if s.state == LOADING:
+                self.reader.cancel(s.index, s.gen)
+                s.dropped = True
+            else:
+                self._give_back(s)
+        self._guessed[layer] = []
 
     def routed(self, layer: int, chosen: np.ndarray, weights: np.ndarray, probs: np.ndarray) -> None:
         if self.recorder is not None:
@@ -361,43 +419,49 @@ class ExpertPool(ExpertSource):
         base = self.base[layer]
         r = self.res_of[layer]
         now = time.monotonic_ns()
-        self.link.layer_started(now)
         self.progress = self.step * self.config.n_layers + layer
+        if self._owed:
+            self._settle_owed()
+        if self._guessed[layer]:
+            self._meet_guesses(layer, ids, now)
+        self.timing.layer_started(now)
         pinned = self.pinned = tuple(base + e for e in ids)
         if self.signals:
             r.policy.routed(layer, ids, probs[0], r.now)  # optional per-step signal (Policy.routed)
-        slots = self.slots
+        slots, link, nbytes = self.slots, self.link, self.store.expert_nbytes
+        stage = self.stage[layer]
         events = {}
-        misses = []
+        misses = 0
         for e, key in zip(ids, pinned):
-            hit, slot = self._access(r, key, pinned)
+            if stage is not None and key in stage.slot_of:
+                hit, slot = True, self._adopt(r, stage, key, pinned)
+            else:
+                hit, slot = self._access(r, key, pinned)
             s = slots[slot]
             if not hit:
-                s.layer, s.expert, s.state = layer, e, EMPTY  # to be read by weights() or by the reader, below
+                s.layer, s.expert, s.state, s.res = layer, e, EMPTY, r  # read by weights() when the layer needs it
+                s.transfer = link.book(nbytes, now, True) if link is not None else None  # on its way from now
                 events[e] = [MISS, slot, 0, 0]  # kind, slot, pagein ns, stall ns
-                misses.append(s)
+                misses += 1
                 continue
             if s.guess:
                 s.guess = False
                 st.prefetch_used += 1
                 st.prefetch_hits[layer] += 1
                 events[e] = [PREFETCHED, slot, 0, 0]
-                if s.state == LOADING:
-                    self._settle(s)
+                if s.dropped:  # cancelled a moment ago, the reader still holding it: ask for it again
+                    s.dropped = False
+                    if link is not None:
+                        s.transfer = link.book(nbytes, now, True)
+                elif s.transfer is not None and s.transfer.end < 0:
+                    link.promote(s.transfer, now)
                 if s.state == LOADING:
                     self.reader.promote(s.index, s.gen)
-                elif s.state == READY and s.usable_at <= now:  # read entirely behind compute
-                    st.hidden_ns += max(0, s.usable_at - s.start_ns)
             else:
                 st.hits[layer] += 1
                 events[e] = [HIT, slot, 0, 0]
         st.accesses[layer] += len(ids)
-        st.misses[layer] += len(misses)
-        if self._reading():
-            # after the accesses, which promoted the guesses this layer uses: the others are stale now
-            self.reader.set_progress(self.progress)
-            for s in misses:  # the reader fetches them while the layer computes the experts it has
-                self._submit(s, DEMAND, self.progress)
+        st.misses[layer] += misses
         self._events = events
 
     def compute_order(self, layer: int, ids: list[int]):
@@ -412,7 +476,7 @@ class ExpertPool(ExpertSource):
             s = slots[ev[e][1]]
             if s.state == LOADING:
                 self._settle(s)
-            if s.state == READY and s.usable_at <= now:
+            if s.state == READY and self._usable_at(s, now) <= now:
                 ready.append(j)
         if len(ready) == len(ids):
             return range(len(ids))
@@ -423,50 +487,81 @@ class ExpertPool(ExpertSource):
         if self._prefill or ev is None:
             return self._prefill_weights(layer, expert)
         s = self.slots[ev[1]]
-        if s.state == READY and s.usable_at <= time.monotonic_ns():
-            return self.codec.weights(s.bound)
         t0 = time.monotonic_ns()
-        self._settle(s, wait=True)
-        if s.state == EMPTY:  # never handed over, or the background read failed: read it here
-            ev[2] = self._read(s, layer, expert, DEMAND)
-        else:  # READY: a background read whose (emulated) transfer may still be running
-            wait_until(s.usable_at)
-            done = max(s.usable_at, s.start_ns)
-            if ev[0] == MISS:  # the reader read it while this layer computed other experts
-                ev[2] = done - s.start_ns
-            else:  # a guess: the part of its read not waited for was hidden behind compute
-                self.stats.hidden_ns += max(0, done - s.start_ns - (time.monotonic_ns() - t0))
+        if s.state == READY and (s.transfer is None or self._usable_at(s, t0) <= t0):
+            if ev[0] == PREFETCHED:
+                self._hidden(s, t0)
+            return self.codec.weights(s.bound)
+        if s.state == LOADING:
+            self._settle(s)
+            if s.state == LOADING:  # the reader has not got to it: read it here rather than wait
+                self._take_over(s)
+        if s.state == EMPTY:  # a miss, or a guess whose read failed: read it here
+            ev[2] = self._read_here(s, False)
+        else:
+            wait_until(self._usable_at(s, time.monotonic_ns()))  # the rest of its emulated transfer
+            if ev[0] == PREFETCHED:
+                self._hidden(s, t0)
         stall = time.monotonic_ns() - t0
         ev[3] = stall
         self.stats.stall_ns[layer] += stall
         return self.codec.weights(s.bound)
 
-    def _read(self, s: Slot, layer: int, expert: int, why: int) -> int:
-        """Read an EMPTY claimed slot now and wait for it: through the reader while it runs (one link
-        for every read of the run), else on this thread.  Returns the read's ns."""
-        if self._reading() and self._submit(s, why, self.progress):
-            self._settle(s, wait=True)
-            if s.state == READY:
-                wait_until(s.usable_at)
-                return s.read_ns
-        return self._load_here(s, layer, expert, why)  # the reader failed or is gone: read it on this thread
+    def _hidden(self, s: Slot, asked: int) -> None:
+        """A used guess: the part of its transfer (or read) done before its layer asked for it was hidden."""
+        t = s.transfer
+        if t is not None:
+            self.link.run(asked)
+            start, end = t.start, self._usable_at(s, asked)
+        else:
+            start, end = s.ready_at - s.read_ns, s.ready_at
+        if start >= 0:
+            self.stats.hidden_ns += max(0, min(end, asked) - start)
 
-    def _load_here(self, s: Slot, layer: int, expert: int, why: int) -> int:
-        self._claim(s)
+    def _take_over(self, s: Slot) -> None:
+        """Read a LOADING guess on this thread: the reader is told to skip it, and the slot stays out of
+        reach of eviction until the reader answers (it may be copying the same bytes meanwhile, which
+        is harmless: they are the same bytes)."""
+        self.reader.cancel(s.index, s.gen)
+        self.store.copy_in(s.layer, s.expert, s.buf)
+        s.state = READY
+        s.owed = True
+        s.ready_at = time.monotonic_ns()
+        self.stats.bytes_in += self.store.expert_nbytes
+        self._owed.append(s)
+
+    def _read_here(self, s: Slot, prefill: bool) -> int:
+        """Read an EMPTY claimed slot on this thread and wait out its emulated transfer; returns the page-in ns."""
+        st = self.stats
+        link = self.link
+        if link is not None and s.transfer is None:
+            s.transfer = link.book(self.store.expert_nbytes, time.monotonic_ns(), True)
+        s.gen += 1
         try:
-            ns = self._load_into(s, layer, expert)
+            ns = self.store.copy_in(s.layer, s.expert, s.buf)
         except BaseException:
-            self.res_of[layer].remove(self.key(layer, expert))
+            s.res.remove(self.key(s.layer, s.expert))
             s.state = EMPTY
             s.layer = s.expert = -1
+            s.res = s.transfer = None
             raise
+        now = time.monotonic_ns()
         s.state = READY
+        s.ready_at = now
+        st.bytes_in += self.store.expert_nbytes
+        t = s.transfer
+        if t is not None:
+            end = max(link.ends(t, now), now)
+            link.hold(t, now)  # a read slower than the link ends when the read did
+            wait_until(end)
+            link.run(end)
+            ns = end - t.start
         s.read_ns = ns
-        self.stats.pagein_ns[layer] += ns
-        if why == PREFILL:
-            self.stats.prefill_loads += 1
+        st.pagein_ns[s.layer] += ns
+        if prefill:
+            st.prefill_loads += 1
         else:
-            self.stats.demand_loads += 1
+            st.demand_loads += 1
         return ns
 
     def _prefill_weights(self, layer: int, expert: int):
@@ -476,24 +571,28 @@ class ExpertPool(ExpertSource):
         pinned = self.pinned = (key,)
         r = self.res_of[layer]
         t0 = time.monotonic_ns()
-        hit, slot = self._access(r, key, pinned)
+        stage = self.stage[layer]
+        if stage is not None and key in stage.slot_of:
+            hit, slot = True, self._adopt(r, stage, key, pinned)
+        else:
+            hit, slot = self._access(r, key, pinned)
         s = self.slots[slot]
         if hit:
-            s.guess = False
+            s.guess = s.dropped = False
+            if s.transfer is not None and s.transfer.end < 0:
+                self.link.promote(s.transfer, t0)
             if s.state == LOADING:
-                self.reader.promote(s.index, s.gen)
-            self._settle(s, wait=True)
-            wait_until(s.usable_at)  # a background read whose emulated transfer is still running
+                self._settle(s)
+                if s.state == LOADING:
+                    self._take_over(s)
         else:
-            s.layer, s.expert, s.state = layer, expert, EMPTY
-        if s.state != READY:
-            self._read(s, layer, expert, PREFILL)
+            s.layer, s.expert, s.state, s.res, s.transfer = layer, expert, EMPTY, r, None
+        if s.state == READY:
+            wait_until(self._usable_at(s, time.monotonic_ns()))  # the rest of an emulated transfer
+        else:
+            self._read_here(s, True)
         self.stats.stall_ns[layer] += time.monotonic_ns() - t0
         return self.codec.weights(s.bound)
-
-    def begin_layer(self, layer: int) -> None:
-        if self.recorder is not None:
-            self._layer_t0 = time.monotonic_ns()
 
     def end_layer(self, layer: int) -> None:
         if self.recorder is not None and not self._prefill:
@@ -513,6 +612,12 @@ class ExpertPool(ExpertSource):
             return False
         return True
 
+    def _arrival(self, now: int) -> int:
+        """When a guess handed over now should arrive."""
+        if self.link is not None:
+            return max(self.link.backlog_until(now), now) + self.link.ns(self.store.expert_nbytes)
+        return now + (self.timing.outstanding + 1) * self.timing.read_ns
+
     def prefetch(self, layer: int, guesses: list[int], target: int, hook=None) -> None:
         """Place the guesses for ``layer`` (best first) and hand their reads to the reader (compute thread).
 
@@ -526,21 +631,23 @@ class ExpertPool(ExpertSource):
         st.prefetch_guesses += len(guesses)
         if not self._reading():
             return
-        r = self.res_of[layer]
+        main = self.res_of[layer]
+        r = self.stage[layer] or main
         base = self.base[layer]
         keep = tuple(base + e for e in guesses)
         if self.shared:
             keep += self.pinned
         now = time.monotonic_ns()
-        link = self.link
-        link.mark = now
-        need_at = now + link.gap_ns * (target - self.progress) + link.read_ns * self.late_share
+        timing = self.timing
+        timing.mark = now
+        need_at = now + timing.gap_ns * (target - self.progress) + timing.read_ns * self.late_share
+        link, nbytes = self.link, self.store.expert_nbytes
         for e in guesses:
             key = base + e
-            if key in r.slot_of:
+            if key in main.slot_of or key in r.slot_of:
                 st.prefetch_resident += 1
                 continue
-            if max(link.free_at, now) + link.read_ns > need_at:
+            if self._arrival(now) > need_at:
                 st.prefetch_declined += 1
                 continue
             try:
@@ -555,11 +662,29 @@ class ExpertPool(ExpertSource):
             s = self.slots[slot]
             if victim is not None:
                 self._evicted(s)
-            s.layer, s.expert, s.guess = layer, e, True
+            s.layer, s.expert, s.guess, s.res = layer, e, True, r
             st.prefetch_loads += 1
-            if not self._hook_allows(hook, layer, e) or not self._submit(s, GUESS, target):
+            if not self._hook_allows(hook, layer, e) or not self._hand_over(s):
                 st.prefetch_failed += 1  # forget the guess; its layer reads the expert if it needs it
                 s.guess = False
                 r.remove(key)
                 s.layer = s.expert = -1
-                s.state = EMPTY
+                s.res = None
+                continue
+            s.transfer = link.book(nbytes, now, False) if link is not None else None
+            self._guessed[layer].append(s)
+
+    def _hand_over(self, s: Slot) -> bool:
+        """Give a guess's read to the reader; False (slot left as it was) if the fault hook refused it."""
+        hook = self.store.fault_hook
+        if hook is not None:
+            try:
+                hook(s.layer, s.expert)  # runs before every expert read, as in ModelStore.copy_in
+            except Exception:
+                return False
+        s.gen += 1
+        s.state = LOADING
+        s.res.busy.add(self.key(s.layer, s.expert))
+        self.timing.outstanding += 1
+        self.reader.submit(s.index, s.gen, s.layer, s.expert)
+        return True

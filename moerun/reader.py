@@ -1,14 +1,15 @@
 """The engine's side of the reader process: shared pool memory, a request ring, result words, doorbells.
 
-With prefetch on, every page-in of a run goes through one reader process
+With prefetch on, guesses are read by one reader process
 (``moerun/reader_child.py``): the pool's slots live in shared memory (a
-``memfd``), the compute thread writes a request (slot, generation, file range,
-demand or guess, target layer, time asked) into a ring in that memory, rings
-the reader's doorbell and carries on; the reader publishes each result in the
+``memfd``), the compute thread writes a request (slot, generation, file range)
+into a ring in that memory and carries on (it rings the reader's doorbell only
+when the reader has blocked on it); the reader publishes each result in the
 slot's words and rings the engine's doorbell.  Both doorbells are eventfds and
 both sides block on them when they have nothing to do: nothing spins.  Nothing
 is shared but memory, so a background read costs the compute thread a few
-microseconds (docs/offload.md has the measured figures).
+microseconds (docs/offload.md has the measured figures).  A layer's own misses
+are read on the compute thread, which would wait for them anyway.
 
 A slot with a request outstanding belongs to the reader until its result is
 published (``poll``/``wait``); the pool never evicts or reuses it before.  If
@@ -72,8 +73,7 @@ class Reader:
             flags = os.EFD_NONBLOCK | os.EFD_CLOEXEC
             self._wake = os.eventfd(0, flags)  # the engine rings it after each request
             self._done = os.eventfd(0, flags)  # the reader rings it after each result
-            args = [self._fd, store._fd, self._wake, self._done, n_slots, slot_size, self.ring, store.link_rate or 0.0,
-                    store.mechanism, os.getpid()]
+            args = [self._fd, store._fd, self._wake, self._done, n_slots, slot_size, self.ring, store.mechanism, os.getpid()]
             self.proc = subprocess.Popen(
                 [sys.executable, "-I", "-S", str(CHILD), *map(str, args)],
                 pass_fds=(self._fd, store._fd, self._wake, self._done),
@@ -95,7 +95,7 @@ class Reader:
             raise
 
     # ------------------------------------------------------------------ requests
-    def submit(self, slot: int, gen: int, layer: int, expert: int, demand: bool, target: int) -> None:
+    def submit(self, slot: int, gen: int, layer: int, expert: int) -> None:
         c = self.c
         r = self.ranges[layer][expert]
         h = c[rc.HEAD]
@@ -104,29 +104,29 @@ class Reader:
         c[b + 1] = gen
         c[b + 2] = r.start
         c[b + 3] = r.nbytes
-        c[b + 4] = 1 if demand else 0
-        c[b + 5] = target
-        c[b + 6] = time.monotonic_ns()
         c[rc.HEAD] = h + 1  # last: the reader takes entries up to HEAD
-        try:
-            os.write(self._wake, b"\1\0\0\0\0\0\0\0")  # wakes the reader if it is blocked; a counter bump otherwise
-        except OSError:
-            pass
+        if c[rc.BLOCKED]:  # a lingering or busy reader finds the request itself; ringing costs 12-80 us here
+            try:
+                os.write(self._wake, b"\1\0\0\0\0\0\0\0")
+            except OSError:
+                pass
 
     def promote(self, slot: int, gen: int) -> None:
-        """A layer now needs this guess: the reader serves it before other guesses."""
+        """A layer now waits for this read: the reader takes it before the others."""
         self.c[rc.SLOT0 + rc.PER_SLOT * slot + rc.PROMOTE] = gen
 
-    def set_progress(self, progress: int) -> None:
-        self.c[rc.PROGRESS] = progress
+    def cancel(self, slot: int, gen: int) -> None:
+        """Nobody wants this read any more: the reader skips it if it has not started it (it still
+        publishes a result, SKIPPED or OK, and the slot is the reader's until then)."""
+        self.c[rc.SLOT0 + rc.PER_SLOT * slot + rc.CANCEL] = gen
 
     def poll(self, slot: int, gen: int):
-        """(result, usable_at_ns, start_ns, ns) once the request ``gen`` of ``slot`` is done, else None."""
+        """(result, start_ns, ns) once the request ``gen`` of ``slot`` is done, else None."""
         c = self.c
         b = rc.SLOT0 + rc.PER_SLOT * slot
         if c[b + rc.DONE] != gen:
             return None
-        return c[b + rc.RESULT], c[b + rc.USABLE], c[b + rc.START], c[b + rc.NS]
+        return c[b + rc.RESULT], c[b + rc.START], c[b + rc.NS]
 
     def wait(self, slot: int, gen: int):
         """Block until the request is done (``poll``'s tuple).  A dead reader reports FAILED; so does
@@ -136,13 +136,14 @@ class Reader:
             return got
         return self._block(lambda: self.poll(slot, gen))
 
-    def wait_any(self) -> None:
-        """Block until the reader publishes some result (or is gone): a slot may have come free."""
-        seen = self._done_count()
-        self._block(lambda: True if self._done_count() != seen else None)
-
-    def _done_count(self) -> int:
+    def published(self) -> int:
+        """How many results the reader has published so far."""
         return int(self.c[rc.PUBLISHED])
+
+    def wait_any(self, since: int) -> None:
+        """Block until the reader has published more than ``since`` results (or is gone): a slot may
+        have come free.  Take ``since`` from ``published`` before looking at the slots."""
+        self._block(lambda: True if self.published() != since else None)
 
     def _block(self, check):
         beat, beat_at = self.c[rc.BEAT], time.monotonic_ns()
@@ -152,17 +153,17 @@ class Reader:
             if got is not None:
                 return got
             if not self.alive:
-                return rc.FAILED, 0, 0, 0
+                return rc.FAILED, 0, 0
             now = time.monotonic_ns()
             if self.c[rc.BEAT] != beat:
                 beat, beat_at = self.c[rc.BEAT], now
             elif now - beat_at > self.timeout_ns:
                 self._stop_stalled()
-                return rc.FAILED, 0, 0, 0
+                return rc.FAILED, 0, 0
             try:
                 select.select([self._done], [], [], NAP_S)
             except (OSError, ValueError):
-                return rc.FAILED, 0, 0, 0
+                return rc.FAILED, 0, 0
 
     def _stop_stalled(self) -> None:
         self.stalled = True
@@ -179,12 +180,12 @@ class Reader:
     # ------------------------------------------------------------------ test hooks
     def set_faults(self, jitter_us: int = 0, seed: int = 0, fail_every: int = 0, demand_too: bool = False,
                    die_after: int = 0) -> None:
-        """Test hook: random 0..jitter_us delays before each read; every fail_every-th guess read (every
-        read with ``demand_too``) reports a failure; the process exits abruptly, a request outstanding,
-        once it has done ``die_after`` reads."""
+        """Test hook: random 0..jitter_us delays before each read; every fail_every-th read reports a
+        failure; the process exits abruptly, a request outstanding, once it has done ``die_after``
+        reads.  (``demand_too`` is accepted for old callers: demand reads happen on the compute
+        thread, where ``ModelStore.fault_hook`` injects faults.)"""
         c = self.c
         c[rc.SEED] = seed
-        c[rc.FAIL_DEMAND] = 1 if demand_too else 0
         c[rc.FAIL_EVERY] = fail_every
         c[rc.JITTER_US] = jitter_us
         c[rc.DIE_AFTER] = die_after

@@ -28,6 +28,7 @@ from .clock import wait_until
 from .codec import Codec, codec_for, packed_dense_tensors
 from .config import ModelConfig, expert_tensor_name
 from .errors import BadModelFile, PageInError
+from .link import Link
 from .modelfile import NUMPY_DTYPES, Header, TensorInfo, read_header
 
 PAGE = mmap.PAGESIZE
@@ -73,11 +74,10 @@ class ModelStore:
         self.expert_nbytes = expert_nbytes
         self.path = header.path
         self.mechanism = "pread"
-        self.link_rate: float | None = None  # bytes/s of an emulated link, None = real speed
+        self.link: Link | None = None  # an emulated link (set link_rate), None = real speed
         self.fault_hook = None  # test hook: called as hook(layer, expert) before each read
         self._fd = os.open(self.path, os.O_RDONLY)
         self._map: mmap.mmap | None = None
-        self._link_free_ns = 0  # when the emulated link finishes its queued transfers
         self.dense: dict[str, np.ndarray] = {}
         self._dense_nbytes = 0
 
@@ -199,14 +199,35 @@ class ModelStore:
             self._map = mmap.mmap(self._fd, 0, prot=mmap.PROT_READ)
         self.mechanism = mechanism
 
+    @property
+    def link_rate(self) -> float | None:
+        """Bytes/s of the emulated link, None for real speed."""
+        return self.link.rate if self.link is not None else None
+
+    @link_rate.setter
+    def link_rate(self, rate: float | None) -> None:
+        self.link = Link(rate) if rate else None
+
     def page_in(self, layer: int, expert: int, dst: np.ndarray) -> int:
         """Copy one expert's bytes into ``dst`` (uint8, at least expert_nbytes); return real ns.
 
-        With an emulated link (``link_rate`` bytes/s) the transfer takes nbytes /
-        link_rate from the start of the read, on one channel: page-ins queue
-        behind each other (``wait_until``).  With prefetch on, the reader process
-        (``moerun/reader_child.py``) emulates the same channel for every read.
+        With an emulated link (``link_rate`` bytes/s) the transfer is booked on the
+        link's one channel when the read starts and the call returns when it ends
+        (``moerun.link``): page-ins queue behind each other.
         """
+        t0 = time.monotonic_ns()
+        link = self.link
+        t = link.book(self.expert_nbytes, t0, True) if link is not None else None
+        self.copy_in(layer, expert, dst)
+        if t is not None:
+            now = time.monotonic_ns()
+            end = link.ends(t, now)
+            link.hold(t, now)  # a read slower than the link ends when the read did
+            wait_until(max(end, now))
+        return time.monotonic_ns() - t0
+
+    def copy_in(self, layer: int, expert: int, dst: np.ndarray) -> int:
+        """Copy one expert's bytes into ``dst`` at the storage's real speed (no emulated link); return ns."""
         r = self.ranges[layer][expert]
         t0 = time.monotonic_ns()
         try:
@@ -236,13 +257,6 @@ class ModelStore:
                     pass
         except OSError as e:
             raise PageInError(f"{self.path}: reading expert {expert} of layer {layer} failed ({e.strerror or e})") from None
-        if self.link_rate:
-            # One emulated link on a virtual clock: transfers queue behind each other, and one
-            # whose real read took longer than its emulated time ends when the read did.
-            start = max(t0, self._link_free_ns)
-            end = max(start + int(r.nbytes / self.link_rate * 1e9), time.monotonic_ns())
-            self._link_free_ns = end
-            wait_until(end)
         return time.monotonic_ns() - t0
 
     def drop_cache(self) -> bool:

@@ -78,7 +78,7 @@ WRAPPED = {
     "pool": [(ExpertPool, "routed"), (ExpertPool, "compute_order"), (ExpertPool, "weights"), (ExpertPool, "end_layer"),
              (ExpertPool, "begin_layer")],
     # Reader.wait and wait_any block: their time is a stall, counted in wait
-    "hand-over": [(Reader, "submit"), (Reader, "poll"), (Reader, "promote"), (Reader, "set_progress")],
+    "hand-over": [(Reader, "submit"), (Reader, "poll"), (Reader, "promote"), (Reader, "cancel"), (Reader, "published")],
 }
 
 
