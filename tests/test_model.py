@@ -204,7 +204,10 @@ def _route_before(u, router, top_k):
 
 
 def _moe_before(u, layer, chosen, weights, experts):
-    """moerun.model.moe as it was before the shared expert (commit fa7a4f1), verbatim."""
+    """moerun.model.moe as it was before the shared expert (commit fa7a4f1), verbatim.
+
+    A frozen copy on purpose: it repeats lines of today's moe so that a later edit there cannot
+    change the reference the test compares against."""
     T, k = chosen.shape
     if T == 1:
         ids = chosen[0].tolist()
