@@ -29,7 +29,8 @@ def scratch_bytes(config: ModelConfig, codec_scratch: int = 0) -> int:
     Counted: residual, normed and attention output rows [T, d_model] (x4), the
     fused q|k|v projection, attention scores and probabilities [heads, T, T]
     (x3 for the mask and softmax temporaries), expert intermediates [T, d_expert]
-    (x3), logits [T, vocab], plus the codec's dequantization buffers.
+    (x3; the shared expert's [T, d_shared] are computed apart from them, so the
+    wider of the two counts), logits [T, vocab], plus the codec's dequantization buffers.
     """
     c = config
     T = c.max_seq_len
@@ -37,7 +38,7 @@ def scratch_bytes(config: ModelConfig, codec_scratch: int = 0) -> int:
         T * 4 * c.d_model
         + T * (c.q_dim + 2 * c.kv_dim)
         + 3 * c.n_heads * T * T
-        + 3 * T * c.d_expert
+        + 3 * T * max(c.d_expert, c.d_shared)
         + T * c.vocab_size
         + T * c.head_dim  # rotary cos and sin tables
     )

@@ -10,7 +10,7 @@ from pathlib import Path
 from .errors import BadModelFile
 
 FORMAT_TAG = "moerun/1"
-# Upper bound on the tensors a config may imply (7 dense + 3 per expert, per layer).  Large
+# Upper bound on the tensors a config may imply (7 dense, 3 per expert and 3 for a shared expert, per layer).  Large
 # published mixture-of-experts checkpoints hold tens of thousands; a million is implausible.
 MAX_TENSORS = 1 << 20
 
@@ -49,6 +49,8 @@ class ModelConfig:
     name: str = ""
     bos_token_id: int | None = None
     dtype: str = "F32"
+    d_shared: int = 0  # hidden width of the always-on shared expert; 0 = none
+    norm_topk: bool = True  # True: chosen weights p / sum(p); False: the chosen probabilities as they are
     extra: dict = field(default_factory=dict, compare=False)
 
     @property
@@ -65,6 +67,12 @@ class ModelConfig:
         d.update(extra)
         if d["bos_token_id"] is None:
             d.pop("bos_token_id")
+        # the optional fields are written only when they differ from their defaults, so a config
+        # without them (every model made before them) round-trips unchanged
+        if not d["d_shared"]:
+            d.pop("d_shared")
+        if d["norm_topk"]:
+            d.pop("norm_topk")
         return d
 
     @classmethod
@@ -99,7 +107,13 @@ class ModelConfig:
             raise BadModelFile(f"{where}: n_heads ({vals['n_heads']}) must be a multiple of n_kv_heads ({vals['n_kv_heads']})")
         if vals["head_dim"] % 2:
             raise BadModelFile(f"{where}: head_dim must be even for rotary embeddings, got {vals['head_dim']}")
-        implied = vals["n_layers"] * (7 + 3 * vals["n_experts"])
+        d_shared = raw.get("d_shared", 0)
+        if isinstance(d_shared, bool) or not isinstance(d_shared, int) or d_shared < 0:
+            raise BadModelFile(f"{where}: d_shared must be a whole number, 0 for no shared expert, got {d_shared!r:.40}")
+        norm_topk = raw.get("norm_topk", True)
+        if not isinstance(norm_topk, bool):
+            raise BadModelFile(f"{where}: norm_topk must be true (renormalise the chosen weights) or false, got {norm_topk!r:.40}")
+        implied = vals["n_layers"] * (7 + 3 * vals["n_experts"] + (3 if d_shared else 0))
         if implied > MAX_TENSORS:  # refuse before anything enumerates them (a 200-byte config could ask for billions)
             raise BadModelFile(
                 f"{where}: n_layers {vals['n_layers']} x n_experts {vals['n_experts']} implies {implied:,} tensors, "
@@ -112,9 +126,11 @@ class ModelConfig:
             raise BadModelFile(f"{where}: bos_token_id must be a token id below vocab_size, got {bos!r}")
         dtype = raw.get("dtype", "F32")
         name = raw.get("name", "")
-        known = {*_INT_FIELDS, "rope_theta", "norm_eps", "tied_embeddings", "format", "name", "bos_token_id", "dtype"}
+        known = {*_INT_FIELDS, "rope_theta", "norm_eps", "tied_embeddings", "format", "name", "bos_token_id", "dtype",
+                 "d_shared", "norm_topk"}
         extra = {k: v for k, v in raw.items() if k not in known}
-        return cls(**vals, format=fmt, name=str(name), bos_token_id=bos, dtype=str(dtype), extra=extra)
+        return cls(**vals, format=fmt, name=str(name), bos_token_id=bos, dtype=str(dtype), d_shared=d_shared,
+                   norm_topk=norm_topk, extra=extra)
 
     @classmethod
     def load(cls, model_dir: Path) -> ModelConfig:
@@ -146,15 +162,22 @@ class ModelConfig:
             shapes[p + "attn.wv"] = (d, self.kv_dim)
             shapes[p + "attn.wo"] = (self.q_dim, d)
             shapes[p + "router"] = (d, self.n_experts)
+            if self.d_shared:  # the shared expert is dense: always resident, part of the fixed budget
+                for part, shape in self.shared_shapes().items():
+                    shapes[p + "shared." + part] = shape
         return shapes
 
     def expert_shapes(self) -> dict[str, tuple[int, int]]:
         """Shapes of one expert's matrices, keyed by the suffix after ``experts.{e}.``."""
-        return {
-            "w_gate": (self.d_model, self.d_expert),
-            "w_up": (self.d_model, self.d_expert),
-            "w_down": (self.d_expert, self.d_model),
-        }
+        return _swiglu_shapes(self.d_model, self.d_expert)
+
+    def shared_shapes(self) -> dict[str, tuple[int, int]]:
+        """Shapes of the shared expert's matrices, keyed by the suffix after ``shared.`` (empty when d_shared is 0)."""
+        return _swiglu_shapes(self.d_model, self.d_shared) if self.d_shared else {}
+
+
+def _swiglu_shapes(d_model: int, width: int) -> dict[str, tuple[int, int]]:
+    return {"w_gate": (d_model, width), "w_up": (d_model, width), "w_down": (width, d_model)}
 
 
 def expert_tensor_name(layer: int, expert: int, part: str) -> str:

@@ -4,7 +4,11 @@ The layer reads like the math::
 
     h = x + attention(rmsnorm(x, attn_norm))
     u = rmsnorm(h, moe_norm)
-    x' = h + moe(u, route(u, router), experts)
+    x' = h + moe(u, route(u, router), experts, shared)
+
+with ``moe(u) = shared(u) + sum over chosen experts in ascending id of
+weight * expert(u)``; the shared expert (optional, config ``d_shared``) is
+dense, always resident, and its term starts the sum.
 
 Expert weights come from an *expert source* (``experts``): the resident pool,
 or a plain list for the bare engine.  The math never knows whether an expert
@@ -58,18 +62,19 @@ def rotate(x: np.ndarray, cos: np.ndarray, sin: np.ndarray) -> np.ndarray:
     return np.concatenate((a * cos - b * sin, b * cos + a * sin), axis=-1)
 
 
-def route(u: np.ndarray, router: np.ndarray, top_k: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def route(u: np.ndarray, router: np.ndarray, top_k: int, norm_topk: bool = True) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Top-k routing: probabilities p = softmax(u @ router); chosen experts in ascending id.
 
     Ties go to the lower expert id (stable sort on -p).  Returns
     ``(chosen [T, k] int64 ascending, weights [T, k] float32, p [T, E])``, where
-    weights are p_chosen / sum(p_chosen).
+    weights are p_chosen / sum(p_chosen) (``norm_topk``) or p_chosen as they are.
     """
     p = softmax(u @ router)
     order = np.argsort(-p, axis=-1, kind="stable")[:, :top_k]
     chosen = np.sort(order, axis=-1)
     pc = np.take_along_axis(p, chosen, axis=-1)
-    return chosen, pc / pc.sum(axis=-1, keepdims=True), p
+    weights = pc / pc.sum(axis=-1, keepdims=True) if norm_topk else pc
+    return chosen, weights, p
 
 
 def expert(u: np.ndarray, w_gate: np.ndarray, w_up: np.ndarray, w_down: np.ndarray) -> np.ndarray:
@@ -77,25 +82,28 @@ def expert(u: np.ndarray, w_gate: np.ndarray, w_up: np.ndarray, w_down: np.ndarr
     return (silu(u @ w_gate) * (u @ w_up)) @ w_down
 
 
-def moe(u: np.ndarray, layer: int, chosen: np.ndarray, weights: np.ndarray, experts) -> np.ndarray:
-    """Sum over chosen experts, in ascending expert id, of weight * expert(u).
+def moe(u: np.ndarray, layer: int, chosen: np.ndarray, weights: np.ndarray, experts, shared=None) -> np.ndarray:
+    """shared(u) + sum over chosen experts, in ascending expert id, of weight * expert(u).
 
-    For one token the outputs may be computed in any order (resident experts
-    first, while missing ones arrive) but are summed in ascending id.  For many
-    tokens each needed expert runs once over the tokens routed to it, experts
-    in ascending id, accumulating into the output.
+    ``shared`` is the shared expert's (w_gate, w_up, w_down), or None for a
+    model without one; its term starts the sum.  For one token the routed
+    outputs may be computed in any order (resident experts first, while
+    missing ones arrive) but are summed in ascending id.  For many tokens each
+    needed expert runs once over the tokens routed to it, experts in ascending
+    id, accumulating into the output.
     """
     T, k = chosen.shape
     if T == 1:
         ids = chosen[0].tolist()
+        terms = [expert(u, *shared)] if shared is not None else []  # first: it is always resident
         ys: list = [None] * k
         for j in experts.compute_order(layer, ids):
             ys[j] = weights[0, j] * expert(u, *experts.weights(layer, ids[j]))
-        out = ys[0]
-        for y in ys[1:]:
+        out, *rest = terms + ys
+        for y in rest:
             out = out + y
         return out
-    out = np.zeros_like(u)
+    out = expert(u, *shared) if shared is not None else np.zeros_like(u)
     for e in np.unique(chosen).tolist():
         rows, slot = np.nonzero(chosen == e)
         y = expert(u[rows], *experts.weights(layer, e))
@@ -113,6 +121,7 @@ class LayerWeights:
     wqkv: np.ndarray  # [d_model, q_dim + 2*kv_dim]: wq | wk | wv fused for one matmul
     wo: np.ndarray
     router: np.ndarray
+    shared: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None  # the shared expert's w_gate, w_up, w_down
 
 
 class KVCache:
@@ -146,8 +155,9 @@ class Transformer:
             wqkv = np.ascontiguousarray(
                 np.concatenate([dense[p + "attn.wq"], dense[p + "attn.wk"], dense[p + "attn.wv"]], axis=1)
             )
+            shared = tuple(dense[p + "shared." + part] for part in c.shared_shapes()) if c.d_shared else None
             self.layers.append(
-                LayerWeights(dense[p + "attn_norm"], dense[p + "moe_norm"], wqkv, dense[p + "attn.wo"], dense[p + "router"])
+                LayerWeights(dense[p + "attn_norm"], dense[p + "moe_norm"], wqkv, dense[p + "attn.wo"], dense[p + "router"], shared)
             )
         self.cos, self.sin = rotary_tables(c)
         self.group = c.n_heads // c.n_kv_heads
@@ -190,11 +200,11 @@ class Transformer:
         experts.begin_layer(layer)
         h = x + self.attention(rmsnorm(x, w.attn_norm, self.eps), layer, start, cache)
         u = rmsnorm(h, w.moe_norm, self.eps)
-        chosen, weights, probs = route(u, w.router, self.config.top_k)
+        chosen, weights, probs = route(u, w.router, self.config.top_k, self.config.norm_topk)
         experts.routed(layer, chosen, weights, probs)
         if seen is not None:
             seen(layer, "attention", h)
-        out = h + moe(u, layer, chosen, weights, experts)
+        out = h + moe(u, layer, chosen, weights, experts, w.shared)
         experts.end_layer(layer)
         if seen is not None:
             seen(layer, "output", out)

@@ -693,7 +693,7 @@ def quantize_model(
 ) -> QuantReport:
     """Write a quantized copy of the model directory ``src`` to ``out`` (atomically: a temp dir, then rename).
 
-    Dense tensors other than attention keep the source's dtype; attention is
+    Dense tensors other than attention (the shared expert's too) keep the source's dtype; attention is
     float16 (attn_bits 16) or packed like the experts.  ``score``: measure the
     held-out perplexity of source and result on the source's heldout.txt
     (its first ``score_tokens`` tokens, if given) for the card.
@@ -873,7 +873,8 @@ def _card(r: QuantReport, c: ModelConfig, src, command: str | None, when: str, m
         "",
         attn,
         "",
-        "Embeddings, norms and routers keep the source's dtype. Each expert is one uint8 tensor "
+        ("Embeddings, norms, routers and the shared expert (dense, always resident)" if c.d_shared else "Embeddings, norms and routers")
+        + " keep the source's dtype. Each expert is one uint8 tensor "
         "`layers.{l}.experts.{e}.packed`; the byte layout is in docs/quant.md of moerun.",
         "",
         "## Measured while quantizing",

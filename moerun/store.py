@@ -106,6 +106,10 @@ class ModelStore:
                 problems.append(f"tensor {name!r} has dtype {t.dtype}; dense weights must be F32 or F16")
             if problems:
                 raise BadModelFile(f"{header.path}: {problems[0]}")
+        if not config.d_shared:
+            stray = next((n for n in tensors if n.startswith("layers.") and ".shared." in n), None)
+            if stray is not None:  # computing without it would silently give other numbers
+                raise BadModelFile(f"{header.path}: tensor {stray!r} is a shared expert's, but config.json has no d_shared")
         first = [tensors.get(expert_tensor_name(0, 0, s)) for s in ("w_gate",)]
         expert_dtype = first[0].dtype if first[0] is not None else "F32"
         if expert_dtype not in ("F32", "F16"):

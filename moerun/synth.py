@@ -74,6 +74,8 @@ def synth_config(
     dtype: str = "F32",
     tied_embeddings: bool = True,
     seed: int | None = None,
+    d_shared: int = 0,
+    norm_topk: bool = True,
 ) -> ModelConfig:
     raw = {
         "format": FORMAT_TAG,
@@ -93,6 +95,8 @@ def synth_config(
         "tied_embeddings": tied_embeddings,
         "bos_token_id": 0,
         "dtype": dtype,
+        "d_shared": d_shared,
+        "norm_topk": norm_topk,
         "synthetic": True,
         "note": RANDOM_NOTE,
     }
@@ -287,7 +291,9 @@ def card_text(config: ModelConfig, seed: int, file_bytes: int, command: str | No
         "token identity, not content: do not study eviction or prefetch policies on it.",
         "",
         f"- {c.n_layers} layers, d_model {c.d_model}, {c.n_heads} heads ({c.n_kv_heads} KV) of {c.head_dim}",
-        f"- {c.n_experts} experts per layer, top-{c.top_k}, d_expert {c.d_expert}",
+        f"- {c.n_experts} experts per layer, top-{c.top_k}, d_expert {c.d_expert}, "
+        f"{'shared expert d_shared ' + str(c.d_shared) if c.d_shared else 'no shared expert'}, "
+        f"chosen weights {'renormalised' if c.norm_topk else 'as the router gives them'}",
         f"- vocabulary {c.vocab_size} (byte tokenizer), context {c.max_seq_len}, "
         f"{'tied' if c.tied_embeddings else 'separate'} embeddings, weights {c.dtype}",
         f"- seed {seed}; weights file {file_bytes:,} bytes",

@@ -5,8 +5,12 @@ batch-1 decode baseline for benchmarks. It is only imported where torch is
 installed; the package's run-time dependencies do not include torch.
 
 Parameter names are exactly the DESIGN tensor names (``embed``,
-``layers.{l}.attn.wq``, ``layers.{l}.experts.{e}.w_gate``, ...), weights are
-stored (in, out) and applied as ``y = x @ W``.
+``layers.{l}.attn.wq``, ``layers.{l}.experts.{e}.w_gate``,
+``layers.{l}.shared.w_gate`` when ``d_shared`` > 0, ...), weights are stored
+(in, out) and applied as ``y = x @ W``.  Optional config fields: ``d_shared``
+(hidden width of the always-on shared expert, 0 or absent = none) and
+``norm_topk`` (true or absent: chosen weights renormalised; false: the chosen
+probabilities as they are).
 
 Public surface:
     TorchMoE(config: dict)                      nn.Module
@@ -61,12 +65,13 @@ def rotate(x: torch.Tensor, cos: torch.Tensor, sin: torch.Tensor) -> torch.Tenso
     return torch.cat((a * cos - b * sin, b * cos + a * sin), dim=-1)
 
 
-def route(u: torch.Tensor, router: torch.Tensor, top_k: int
+def route(u: torch.Tensor, router: torch.Tensor, top_k: int, norm_topk: bool = True
           ) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor, torch.Tensor]:
     """Routing for rows u [N, D].
 
     Returns (chosen [N, k] int64 in ascending expert id, weights [N, k] =
-    p_chosen / sum(p_chosen), p [N, E] = softmax(u @ router), router logits [N, E]).
+    p_chosen / sum(p_chosen) (or p_chosen when not ``norm_topk``), p [N, E] =
+    softmax(u @ router), router logits [N, E]).
     Top-k is taken by p with ties to the lower expert id (stable descending sort).
     """
     z = u @ router
@@ -74,7 +79,8 @@ def route(u: torch.Tensor, router: torch.Tensor, top_k: int
     order = torch.sort(p, dim=-1, descending=True, stable=True).indices[:, :top_k]
     chosen = torch.sort(order, dim=-1).values
     pc = p.gather(-1, chosen)
-    return chosen, pc / pc.sum(dim=-1, keepdim=True), p, z
+    weights = pc / pc.sum(dim=-1, keepdim=True) if norm_topk else pc
+    return chosen, weights, p, z
 
 
 # ------------------------------------------------------------------------ modules
@@ -108,6 +114,10 @@ class Layer(nn.Module):
         self.moe_norm = nn.Parameter(torch.ones(c["d_model"]))
         self.router = nn.Parameter(torch.empty(c["d_model"], c["n_experts"]))
         self.experts = nn.ModuleList(Expert(c["d_model"], c["d_expert"]) for _ in range(c["n_experts"]))
+        if c.get("d_shared", 0):  # the always-on shared expert: parameters layers.{l}.shared.w_*
+            self.shared = Expert(c["d_model"], c["d_shared"])
+        else:
+            self.shared = None
 
 
 class TorchMoE(nn.Module):
@@ -122,6 +132,11 @@ class TorchMoE(nn.Module):
         self.config = c
         self.n_layers, self.n_heads, self.n_kv = c["n_layers"], c["n_heads"], c["n_kv_heads"]
         self.head_dim, self.top_k, self.n_experts = c["head_dim"], c["top_k"], c["n_experts"]
+        self.d_shared, self.norm_topk = c.get("d_shared", 0), c.get("norm_topk", True)
+        if isinstance(self.d_shared, bool) or not isinstance(self.d_shared, int) or self.d_shared < 0:
+            raise ValueError(f"d_shared must be a whole number (0 = no shared expert), got {self.d_shared!r}")
+        if not isinstance(self.norm_topk, bool):
+            raise ValueError(f"norm_topk must be true or false, got {self.norm_topk!r}")
         self.eps = float(c["norm_eps"])
         self.max_seq_len = c["max_seq_len"]
         if self.n_heads % self.n_kv or self.head_dim % 2:
@@ -174,12 +189,13 @@ class TorchMoE(nn.Module):
     def _moe(self, layer: Layer, u: torch.Tensor) -> tuple[torch.Tensor, torch.Tensor, torch.Tensor, torch.Tensor]:
         """moe over rows u [N, D]; only the chosen experts are computed for each row.
 
-        Experts are visited in ascending id and each adds its weighted output
-        into the accumulator, so every row sums its chosen experts in ascending id.
+        The accumulator starts with the shared expert's output (zeros without
+        one); experts are visited in ascending id and each adds its weighted
+        output, so every row sums shared(u), then its chosen experts in ascending id.
         Returns (out [N, D], chosen, p, router logits).
         """
-        chosen, weights, p, z = route(u, layer.router, self.top_k)
-        out = torch.zeros_like(u)
+        chosen, weights, p, z = route(u, layer.router, self.top_k, self.norm_topk)
+        out = layer.shared(u) if layer.shared is not None else torch.zeros_like(u)
         for e in range(self.n_experts):
             rows, slot = (chosen == e).nonzero(as_tuple=True)
             if rows.numel() == 0:
@@ -275,8 +291,8 @@ class TorchMoE(nn.Module):
             o = torch.softmax(s, dim=-1) @ vals              # [KV, g, hd]; head i = kv*g + j
             h = x + o.reshape(self.n_heads * hd) @ at.wo
             u = rmsnorm(h, layer.moe_norm, self.eps)
-            chosen, weights, _, _ = route(u.unsqueeze(0), layer.router, self.top_k)
-            m = torch.zeros_like(u)
+            chosen, weights, _, _ = route(u.unsqueeze(0), layer.router, self.top_k, self.norm_topk)
+            m = layer.shared(u) if layer.shared is not None else torch.zeros_like(u)
             for e, w in zip(chosen[0].tolist(), weights[0], strict=True):
                 m = m + w * layer.experts[e](u)
             x = h + m

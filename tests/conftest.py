@@ -26,6 +26,8 @@ import pytest  # noqa: E402
 from moerun.synth import synth_config, write_model  # noqa: E402
 
 PEBBLE = ROOT / "tiny_models" / "pebble"
+SCREE = ROOT / "tiny_models" / "scree"  # many small experts and a shared one (its CARD.md)
+BUNDLED = {"pebble": PEBBLE, "scree": SCREE}
 
 
 # ---------------------------------------------------------------------------- models
@@ -61,12 +63,28 @@ def fresh_model(tmp_path) -> Path:
     return d
 
 
+def _bundled_or_skip(d: Path) -> Path:
+    if not (d / "model.safetensors").is_file() or not (d / "config.json").is_file():
+        pytest.skip(f"bundled model tiny_models/{d.name}/model.safetensors is absent (not trained yet)")
+    return d
+
+
 @pytest.fixture(scope="session")
 def pebble() -> Path:
     """The bundled tiny model, or skip when it has not been trained into the tree yet."""
-    if not (PEBBLE / "model.safetensors").is_file() or not (PEBBLE / "config.json").is_file():
-        pytest.skip("bundled model tiny_models/pebble/model.safetensors is absent (not trained yet)")
-    return PEBBLE
+    return _bundled_or_skip(PEBBLE)
+
+
+@pytest.fixture(scope="session")
+def scree() -> Path:
+    """The second bundled model (32 experts top-4 and a shared expert), or skip when absent."""
+    return _bundled_or_skip(SCREE)
+
+
+@pytest.fixture(scope="session", params=sorted(BUNDLED))
+def bundled(request) -> Path:
+    """Each bundled model in turn (pebble, scree)."""
+    return _bundled_or_skip(BUNDLED[request.param])
 
 
 def copy_model(src: Path, dst: Path) -> Path:

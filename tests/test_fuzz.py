@@ -483,7 +483,8 @@ def _header_of(base: BaseModel, blob: bytes) -> Header:
 
 
 CONFIG_KEYS = ["vocab_size", "d_model", "n_layers", "n_heads", "n_kv_heads", "head_dim", "n_experts", "top_k", "d_expert",
-               "max_seq_len", "rope_theta", "norm_eps", "tied_embeddings", "format", "name", "bos_token_id", "dtype", "quant"]
+               "max_seq_len", "rope_theta", "norm_eps", "tied_embeddings", "format", "name", "bos_token_id", "dtype",
+               "d_shared", "norm_topk", "quant"]
 
 
 @st.composite
@@ -516,7 +517,7 @@ def _check_config_outcome(base: BaseModel, raw: dict) -> str:
         # What a config may make the loader allocate before the weight file contradicts it: the KV cache
         # and rotary tables for its context (at most 4096 here) and the names of the tensors it implies
         # (about 160 bytes each, measured; at most moerun.config.MAX_TENSORS of them).
-        implied = config.n_layers * (7 + 3 * config.n_experts)
+        implied = config.n_layers * (7 + 3 * config.n_experts + (3 if config.d_shared else 0))
         assert peak[0] <= base.load_peak + 64 * 4096 * SHAPE["d_model"] + 256 * implied + LOAD_SLACK
         if logits is None:
             return "refused when loaded"

@@ -21,6 +21,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import moerun
+from moerun import policies
 from moerun.budget import minimum_cap
 from moerun.errors import ImpossibleBudget
 from moerun.sampling import Sampling
@@ -61,17 +62,19 @@ def _assert_same(ref, got):
 
 @pytest.fixture(scope="module")
 def property_models(synth_models):
-    """Synthetic models with 3 layers and 6 or 8 experts, with their cap range and a resident reference cache."""
+    """Synthetic models with 3 layers and 6, 8 or 12 experts, with their cap range and a resident reference cache."""
     out = {}
-    for experts in (6, 8):
-        d = synth_models(seed=experts, layers=3, experts=experts, top_k=2)
+    for experts in (6, 8, 12):
+        # 12: top-4 with a shared expert and raw (not renormalised) weights, summed in a longer fixed order
+        shape = {"top_k": 4, "d_shared": 40, "norm_topk": False} if experts == 12 else {"top_k": 2}
+        d = synth_models(seed=experts, layers=3, experts=experts, **shape)
         out[experts] = {"dir": d, "caps": {s: _caps(d, s) for s in ("even", "shared")}, "ref": {}}
     return out
 
 
 @st.composite
 def offload_settings(draw):
-    experts = draw(st.sampled_from([6, 8]))
+    experts = draw(st.sampled_from([6, 8, 12]))
     kind = draw(st.sampled_from(["even", "shared", "list"]))
     kw = {
         "evict": draw(st.sampled_from(["lru", "lfu", "fifo", "lrfu", "markov"])),
@@ -82,7 +85,7 @@ def offload_settings(draw):
         "mechanism": draw(st.sampled_from(["pread", "mmap"])),
     }
     if kind == "list":
-        kw["slots"] = draw(st.lists(st.integers(2, experts), min_size=3, max_size=3))
+        kw["slots"] = draw(st.lists(st.integers(4 if experts == 12 else 2, experts), min_size=3, max_size=3))
         cap_frac = None
     else:
         kw["split"] = kind
@@ -127,12 +130,16 @@ def test_smallest_cap_with_every_policy_equals_resident_on_a_long_generation(sma
         _assert_same(ref, got)
 
 
-def test_bundled_model_under_the_smallest_cap_equals_resident_bit_for_bit(pebble):
+def test_bundled_model_under_the_smallest_cap_equals_resident_bit_for_bit(bundled):
     prompt = list(range(5, 45))
-    ref = _run(pebble, prompt, max_new=24)
-    for kw in ({"evict": "lru", "prefetch": 2, "lookahead": 2}, {"evict": "lfu", "split": "shared"}):
-        lo, _ = _caps(pebble, kw.get("split", "even"))
-        got = _run(pebble, prompt, max_new=24, mem_cap=lo, **kw)
+    ref = _run(bundled, prompt, max_new=24)
+    caps = {split: _caps(bundled, split)[0] for split in ("even", "shared")}
+    # every online policy, each with one of the pool kinds and prefetch settings in turn
+    for i, evict in enumerate(policies.names(online_only=True)):
+        kw = {"evict": evict, "split": ("even", "shared")[i % 2]}
+        if i % 3 == 0:
+            kw.update(prefetch=2, lookahead=2)
+        got = _run(bundled, prompt, max_new=24, mem_cap=caps[kw["split"]], **kw)
         assert got[3]["pool"]["misses"] > 0
         _assert_same(ref, got)
 
@@ -271,6 +278,7 @@ RSS_OVERHEAD_BYTES = 4 * 2**20
 _RSS_SCRIPT = """
 import gc, json, sys
 import moerun
+from moerun import policies
 from moerun.budget import minimum_cap
 from moerun.sampling import Sampling
 

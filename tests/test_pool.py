@@ -54,13 +54,13 @@ def test_pool_fault_count_matches_the_textbook(one_layer_model, policy):
         budget = plan_budget(store.config, store.dense_nbytes, store.expert_nbytes, 1 << 40, [FRAMES])
         pool = ExpertPool(store, budget, policy)
         reads = collections.Counter()
-        real = store.page_in
+        real = store.copy_in
 
         def counting(layer, expert, dst):
             reads[expert] += 1
             return real(layer, expert, dst)
 
-        store.page_in = counting
+        store.copy_in = counting
         _drive(pool, REFERENCE_STRING, store)
         assert int(pool.stats.misses[0]) == TEXTBOOK_FAULTS[policy]
         assert int(pool.stats.accesses[0]) == len(REFERENCE_STRING)
@@ -95,13 +95,13 @@ def test_prefill_pages_each_needed_expert_in_at_most_once_per_layer(small_model,
         cap = minimum_cap(st.config, st.dense_nbytes, st.expert_nbytes, split)
     with moerun.load(small_model, mem_cap=cap, split=split, tokenizer=False) as eng:
         reads = collections.Counter()
-        real = eng.store.page_in
+        real = eng.store.copy_in
 
         def counting(layer, expert, dst):
             reads[(layer, expert)] += 1
             return real(layer, expert, dst)
 
-        eng.store.page_in = counting
+        eng.store.copy_in = counting
         eng.start_trace()
         eng.logits(np.random.default_rng(7).integers(1, 257, 48).tolist())
         trace = eng.finish_trace()
@@ -114,7 +114,7 @@ def test_prefill_pages_each_needed_expert_in_at_most_once_per_layer(small_model,
 def test_fully_resident_pool_pages_nothing_in_while_running(small_model):
     with moerun.load(small_model, tokenizer=False) as eng:
         reads = []
-        eng.store.page_in = lambda *a: reads.append(a)
+        eng.store.copy_in = lambda *a: reads.append(a)
         eng.generate(prompt_ids=[1, 2, 3, 4], max_new=6)
         assert reads == []
         assert eng.stats["pool"]["misses"] == 0

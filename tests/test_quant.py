@@ -413,6 +413,28 @@ def test_quantize_command_writes_a_loadable_model(small_model, tmp_path, capsys)
     assert code == 0 and json.loads((out / "config.json").read_text())["quant"]["expert_bits"] == 8
 
 
+def test_shared_expert_stays_float_and_capped_quantized_logits_equal_resident(synth_models, tmp_path):
+    src = synth_models(seed=3, layers=2, experts=12, top_k=4, d_shared=40, norm_topk=False)
+    d = tmp_path / "q"
+    quantize_model(src, d, QuantSpec.checked(4, 8, 16, "rtn"), score=False)
+    with _open(src) as s, _open(d) as q:
+        for layer in range(2):
+            for part in EXPERT_PARTS:
+                name = f"layers.{layer}.shared.{part}"
+                assert q.header.tensors[name].dtype == s.header.tensors[name].dtype == "F32"
+                assert np.array_equal(_bits(q.dense[name]), _bits(s.read_tensor(name)))
+        assert q.header.tensors["layers.0.attn.wq.packed"].dtype == "U8"  # attention really was packed
+        cap = minimum_cap(q.config, q.dense_nbytes, q.expert_nbytes, "shared", q.codec.scratch_bytes())
+    assert "shared expert" in (d / "CARD.md").read_text()
+    prompt = list(range(1, 12))
+    runs = []
+    for kw in ({}, {"mem_cap": cap, "split": "shared", "evict": "lfu"}):
+        with moerun.load(d, tokenizer=False, **kw) as eng:
+            gen = eng.generate(prompt_ids=prompt, max_new=8, sampling=Sampling(temperature=0.8, seed=1), keep_logits=True)
+            runs.append((_bits(eng.logits(prompt)), _bits(np.stack(gen.logits)), gen.new_ids))
+    assert np.array_equal(runs[0][0], runs[1][0]) and np.array_equal(runs[0][1], runs[1][1]) and runs[0][2] == runs[1][2]
+
+
 # ---------------------------------------------------------------------------- the bundled model
 
 
@@ -436,9 +458,14 @@ def _heldout_ppl(model_dir, n_tokens=3000) -> float:
         return score_text(eng, text, n_tokens).perplexity
 
 
-def test_eight_bit_experts_keep_heldout_perplexity_within_one_percent(pebble, pebble_rtn):
-    ref = _heldout_ppl(pebble)
-    got = _heldout_ppl(pebble_rtn[8])
+def test_eight_bit_experts_keep_heldout_perplexity_within_one_percent(bundled, pebble, pebble_rtn, tmp_path):
+    if bundled == pebble:
+        q = pebble_rtn[8]
+    else:
+        q = tmp_path / "e8"
+        quantize_model(bundled, q, QuantSpec.checked(8, 16, 64, "rtn"), score=False)
+    ref = _heldout_ppl(bundled)
+    got = _heldout_ppl(q)
     assert abs(got / ref - 1) < 0.01
 
 

@@ -58,7 +58,7 @@ def test_idle_reader_uses_under_two_percent_of_a_cpu(small_model):
 
 
 def test_reader_does_not_spin_while_requests_flow_over_an_emulated_link(small_model):
-    # a spinning reader would use about one CPU-second per second of decode; a DMA-like one a fraction
+    # a spinning reader would use about one CPU-second per second of decode; one that naps a fraction
     cap = _min_cap(small_model)
     with moerun.load(small_model, tokenizer=False, mem_cap=cap, prefetch=2, link_speed="20MB/s") as eng:
         reader = eng.prefetcher.reader
@@ -72,34 +72,39 @@ def test_reader_does_not_spin_while_requests_flow_over_an_emulated_link(small_mo
     assert used < 0.25 * wall, f"reader used {used:.3f} s of CPU in {wall:.2f} s of decode"
 
 
-def test_emulated_transfers_queue_back_to_back_on_a_virtual_clock(small_model):
-    # a transfer starts when the link frees (or when asked, if later) and lasts nbytes / rate,
-    # whatever the reader's own wake-ups: consecutive published windows touch exactly
+def test_reader_copies_the_requested_experts_byte_for_byte(small_model):
     store = ModelStore.open(small_model)
-    rate = 2e7  # 20 MB/s: each expert of the small model takes a few ms
-    store.link_rate = rate
     n = 6
     slot_size = -(-store.expert_nbytes // 4096) * 4096
     reader = Reader(store, n, slot_size)
     E = store.config.n_experts
     try:
         for i in range(n):
-            reader.submit(i, 1, 0, i % E, True, 0)
+            reader.submit(i, 1, 0, i % E)
         got = [reader.wait(i, 1) for i in range(n)]
         copied = [bytes(reader.block[i * slot_size : i * slot_size + store.expert_nbytes]) for i in range(n)]
         wanted = [store._read(store.ranges[0][i % E].start, store.expert_nbytes) for i in range(n)]
     finally:
         reader.close()
         store.close()
-    dur = store.expert_nbytes / rate * 1e9
-    assert all(g[0] == rc.OK for g in got)
-    starts = [g[2] for g in got]
-    ends = [g[1] for g in got]
-    for i in range(n):
-        assert ends[i] - starts[i] >= int(dur) - 1  # each transfer occupies the link for its emulated time
-    for i in range(1, n):
-        assert starts[i] == ends[i - 1]  # the next starts where the last one ended: no wake-up gap
+    assert [g[0] for g in got] == [rc.OK] * n
     assert copied == wanted
+
+
+def test_a_cancelled_request_the_reader_has_not_started_is_skipped(small_model):
+    store = ModelStore.open(small_model)
+    slot_size = -(-store.expert_nbytes // 4096) * 4096
+    reader = Reader(store, 2, slot_size)
+    try:
+        reader.freeze()  # it cannot start anything until it is let go
+        reader.submit(0, 1, 0, 0)
+        reader.cancel(0, 1)
+        reader.proc.send_signal(__import__("signal").SIGCONT)
+        got = reader.wait(0, 1)
+    finally:
+        reader.close()
+        store.close()
+    assert got[0] == rc.SKIPPED
 
 
 def test_reader_that_stops_answering_is_stopped_and_the_output_stays_identical(small_model):

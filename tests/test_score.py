@@ -51,10 +51,10 @@ def test_window_nll_is_minus_log_softmax_of_the_next_token():
     assert n == 5 and nll == pytest.approx(want, rel=1e-12)
 
 
-def test_perplexity_matches_torch_reference_logits(pebble):
-    # Outside reference: tiny_models/pebble/reference.npz, logits of the PyTorch
+def test_perplexity_matches_torch_reference_logits(bundled):
+    # Outside reference: the model's reference.npz, logits of the PyTorch
     # implementation (moerun/torch_ref.py, float32; torch version recorded in the file).
-    ref = np.load(pebble / "reference.npz")
+    ref = np.load(bundled / "reference.npz")
     windows, logits = ref["token_ids"], ref["logits"]
     nll, n = 0.0, 0
     for ids, z in zip(windows, logits):
@@ -63,25 +63,25 @@ def test_perplexity_matches_torch_reference_logits(pebble):
         nll += float(np.sum(lse - z[np.arange(len(ids) - 1), ids[1:]]))
         n += len(ids) - 1
     want = math.exp(nll / n)
-    with moerun.load(pebble, tokenizer=False) as eng:
+    with moerun.load(bundled, tokenizer=False) as eng:
         got = score_windows(eng, windows)
     assert got.predicted == n and got.windows == len(windows)
     assert got.perplexity == pytest.approx(want, rel=1e-4)
 
 
-def test_plain_windows_reproduce_the_bundled_card(pebble):
-    # pebble's CARD.md (written by scripts/train_tiny.py from the PyTorch model) gives the
+def test_plain_windows_reproduce_the_bundled_card(bundled):
+    # The bundled model's CARD.md (written by scripts/train_tiny.py from the PyTorch model) gives the
     # held-out cross-entropy of its heldout.txt under the plain-window rule to 3 decimals,
     # and the number of predicted tokens.
     import re
 
-    card = (pebble / "CARD.md").read_text(encoding="utf-8")
+    card = (bundled / "CARD.md").read_text(encoding="utf-8")
     m = re.search(r"bundled heldout\.txt \(\d+ KB, ([\d,]+) predicted tokens\) \| \*\*([\d.]+) nats/token", card)
     if m is None:
         pytest.skip("the bundled card does not state its held-out cross-entropy in the expected form")
     n_card, ce_card = int(m.group(1).replace(",", "")), float(m.group(2))
-    with moerun.load(pebble) as eng:
-        got = score_text(eng, (pebble / "heldout.txt").read_text(encoding="utf-8"), plain=True)
+    with moerun.load(bundled) as eng:
+        got = score_text(eng, (bundled / "heldout.txt").read_text(encoding="utf-8"), plain=True)
     assert got.predicted == n_card
     assert abs(got.cross_entropy - ce_card) <= 0.0005 + 1e-9
 

@@ -114,6 +114,46 @@ def test_open_rejects_expert_shapes_that_disagree_with_config(fresh_model):
         ModelStore.open(fresh_model)
 
 
+def test_shared_expert_is_dense_resident_and_equals_the_safetensors_library(synth_models):
+    d = synth_models(seed=2, layers=2, experts=8, top_k=2, d_shared=48)
+    plain = synth_models(seed=2, layers=2, experts=8, top_k=2)
+    lib = load_file(str(d / "model.safetensors"))  # reference: safetensors 0.8.0
+    store, other = ModelStore.open(d), ModelStore.open(plain)
+    try:
+        c = store.config
+        for layer in range(c.n_layers):
+            for part in ("w_gate", "w_up", "w_down"):
+                name = f"layers.{layer}.shared.{part}"
+                assert np.array_equal(store.dense[name], lib[name])
+        # counted in the fixed part: exactly its three float32 matrices per layer more than without it
+        assert store.dense_nbytes - other.dense_nbytes == c.n_layers * 3 * c.d_model * 48 * 4
+        assert store.expert_nbytes == other.expert_nbytes
+    finally:
+        store.close()
+        other.close()
+
+
+@pytest.mark.parametrize(
+    ("edit", "phrase"),
+    [
+        (lambda doc: doc.pop("layers.1.shared.w_up"), "missing tensor 'layers.1.shared.w_up'"),
+        (lambda doc: doc["layers.0.shared.w_down"].__setitem__("shape", [16, 48]), "layers.0.shared.w_down"),
+    ],
+)
+def test_open_rejects_a_shared_expert_that_disagrees_with_config(tmp_path, edit, phrase):
+    d = write_model(tmp_path / "m", synth_config(layers=2, experts=4, top_k=2, d_shared=16))
+    edit_header(d / "model.safetensors", edit)
+    with pytest.raises(BadModelFile, match=phrase):
+        ModelStore.open(d)
+
+
+def test_open_rejects_shared_expert_tensors_when_config_has_no_d_shared(tmp_path):
+    d = write_model(tmp_path / "m", synth_config(layers=2, experts=4, top_k=2, d_shared=16))
+    edit_config(d, lambda c: c.pop("d_shared"))
+    with pytest.raises(BadModelFile, match="shared expert's, but config.json has no d_shared"):
+        ModelStore.open(d)
+
+
 def test_open_rejects_an_expert_split_across_the_file(tmp_path):
     config = synth_config(layers=1, experts=2, top_k=1)
     tensors = random_tensors(config)

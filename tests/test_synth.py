@@ -195,6 +195,7 @@ def test_synth_refuses_a_non_empty_directory_and_accepts_an_empty_one(tmp_path, 
         (["--heads", "3"], "not a multiple"),
         (["--heads", "4", "--kv-heads", "3"], "--kv-heads"),
         (["--seed", "-1"], "--seed"),
+        (["--d-shared", "-4"], "--d-shared"),
     ],
 )
 def test_synth_rejects_impossible_shapes_with_exit_2(tmp_path, capsys, extra, message):
@@ -237,11 +238,31 @@ def test_synth_config_defaults_are_unchanged_for_existing_callers():
     assert "seed" not in c.extra and c.extra["synthetic"] is True
 
 
-def test_card_records_a_command_that_rebuilds_the_same_weights(tmp_path, capsys):
+def test_synth_writes_a_shared_expert_and_raw_weights_that_inspect_and_generate_use(tmp_path, capsys):
+    out = tmp_path / "s"
+    code, text, _ = run_cli(["synth", str(out), *SMALL, "--experts", "32", "--top-k", "4", "--d-expert", "32",
+                             "--d-shared", "96", "--no-renorm"], capsys)
+    assert code == 0 and "d_shared 96" in text
+    config = json.loads((out / "config.json").read_text())
+    assert config["d_shared"] == 96 and config["norm_topk"] is False
+    header = read_header(out / "model.safetensors")
+    assert header.tensors["layers.1.shared.w_down"].shape == (96, 64)
+    code, text, _ = run_cli(["inspect", "--model", str(out), "--json"], capsys)
+    info = json.loads(text)
+    assert info["d_shared"] == 96 and info["norm_topk"] is False
+    assert info["shared_expert_file_bytes"] == 2 * 3 * 64 * 96 * 4  # 2 layers of three F32 matrices, in the dense part
+    assert info["dense_file_bytes"] >= info["shared_expert_file_bytes"]
+    code, text, _ = run_cli(["generate", "--model", str(out), "--max-new", "3", "--shared-pool", "--mem-cap", str(info["min_cap_shared_bytes"]),
+                             "--json"], capsys)
+    assert code == 0 and json.loads(text)["new_tokens"] == 3
+
+
+@pytest.mark.parametrize("shape", [[], ["--d-shared", "40", "--no-renorm", "--top-k", "3"]])
+def test_card_records_a_command_that_rebuilds_the_same_weights(tmp_path, capsys, shape):
     import shlex
 
     first = tmp_path / "first"
-    assert run_cli(["synth", str(first), *SMALL, "--bits", "16", "--seed", "9", "--heads", "2"], capsys)[0] == 0
+    assert run_cli(["synth", str(first), *SMALL, "--bits", "16", "--seed", "9", "--heads", "2", *shape], capsys)[0] == 0
     card = (first / "CARD.md").read_text()
     line = next(x for x in card.splitlines() if x.startswith("Command: `"))
     argv = shlex.split(line[len("Command: `") : -1])

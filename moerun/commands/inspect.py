@@ -53,6 +53,9 @@ def run(args) -> int:
         first = min(r.start for r in flat)
         end = max(r.start + r.nbytes for r in flat)
         dense_end = max(h.tensors[n].end for n in dense_names)
+        shared_names = [f"layers.{layer}.shared.{part}" for layer in range(c.n_layers) for part in c.shared_shapes()]
+        shared_file = sum(h.tensors[n].nbytes for n in shared_names)  # dense: inside dense_file
+        shared_memory = sum(store.dense[n].nbytes for n in shared_names)
         # moerun's writer puts dense tensors first, then experts in layer, expert order;
         # other writers (the safetensors library sorts by name) interleave them
         in_order = dense_end <= first and all(a.start + a.nbytes <= b.start for a, b in zip(flat, flat[1:]))
@@ -65,6 +68,10 @@ def run(args) -> int:
             "header_bytes": h.data_start,
             "dense_file_bytes": dense_file,
             "dense_memory_bytes": store.dense_nbytes,
+            "d_shared": c.d_shared,
+            "norm_topk": c.norm_topk,
+            "shared_expert_file_bytes": shared_file,
+            "shared_expert_memory_bytes": shared_memory,
             "expert_bytes": store.expert_nbytes,
             "expert_storage": store.codec.name,
             "experts_total_bytes": expert_file,
@@ -101,11 +108,18 @@ def run(args) -> int:
             f"{c.n_layers} layers, d_model {c.d_model}, {c.n_heads} heads ({c.n_kv_heads} KV) of {c.head_dim}, "
             f"{c.n_experts} experts top-{c.top_k}, d_expert {c.d_expert}, vocab {c.vocab_size}, context {c.max_seq_len}\n"
         )
+        out.write(
+            (f"shared expert d_shared {c.d_shared} (dense, always resident)" if c.d_shared else "no shared expert (d_shared 0)")
+            + f"; norm_topk {str(c.norm_topk).lower()} (chosen weights "
+            + ("renormalised to sum to 1)\n" if c.norm_topk else "are the router probabilities as they are)\n")
+        )
         rows = [
             ["file", fmt_bytes(h.file_size)],
             ["header", fmt_bytes(h.data_start)],
             ["dense tensors (file)", fmt_bytes(dense_file)],
             ["dense weights (memory, float32)", fmt_bytes(store.dense_nbytes)],
+            *([[f"  of which shared expert ({c.n_layers} x 1)", f"{fmt_bytes(shared_memory)} ({fmt_bytes(shared_file)} in the file)"]]
+              if c.d_shared else []),
             [f"one expert ({store.codec.name})", f"{store.expert_nbytes:,} B"],
             [f"all experts ({c.n_layers} x {c.n_experts})", f"{fmt_bytes(expert_file)} ({100 * doc['expert_share']:.1f}% of weights)"],
             ["KV cache (full context)", fmt_bytes(kv)],

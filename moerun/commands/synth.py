@@ -41,6 +41,10 @@ def add_arguments(p) -> None:
     o.add_argument("--vocab", type=int, default=257, metavar="N", help="vocabulary size, at least 257 for the byte tokenizer (default 257)")
     o.add_argument("--context", type=int, default=256, metavar="N", help="longest sequence, in tokens (default 256)")
     o.add_argument("--untied", action="store_true", help="a separate lm_head instead of reusing the embedding")
+    o.add_argument("--d-shared", type=int, default=0, metavar="N",
+                   help="hidden width of an always-on shared expert in every layer (default 0: none)")
+    o.add_argument("--no-renorm", action="store_true",
+                   help="weigh the chosen experts by their router probabilities as they are, not renormalised to sum to 1")
     p.add_argument("--bits", type=int, default=32, choices=sorted(BITS), help="16 = F16 weights, 32 = F32 (default); "
                    "quantized bits come with the quantize command")
     p.add_argument("--seed", type=int, default=0, metavar="N", help="random seed (default 0)")
@@ -77,6 +81,8 @@ def config_from_args(args) -> ModelConfig:
     if vocab < 257:
         raise BadOption(f"--vocab must be at least 257 (the byte tokenizer's 256 bytes and <doc>), got {vocab}")
     context = positive(args.context, "--context")
+    if args.d_shared < 0:
+        raise BadOption(f"--d-shared must be 0 (no shared expert) or a positive whole number, got {args.d_shared}")
     if args.seed < 0:
         raise BadOption(f"--seed must not be negative, got {args.seed}")
     name = args.name if args.name is not None else args.out.rstrip("/").split("/")[-1] or "synthetic"
@@ -85,6 +91,7 @@ def config_from_args(args) -> ModelConfig:
             layers=layers, experts=experts, top_k=top_k, d_model=d_model, d_expert=d_expert, n_heads=heads,
             n_kv_heads=kv_heads, head_dim=head_dim, max_seq_len=context, vocab_size=vocab, name=name,
             dtype=BITS[args.bits], tied_embeddings=not args.untied, seed=args.seed,
+            d_shared=args.d_shared, norm_topk=not args.no_renorm,
         )
     except BadModelFile as e:  # the config's own checks, phrased for options
         raise BadOption(str(e).replace("config.json: ", "")) from None
@@ -100,6 +107,10 @@ def command_line(args, c: ModelConfig) -> str:
     ]
     if not c.tied_embeddings:
         parts.append("--untied")
+    if c.d_shared:
+        parts += ["--d-shared", c.d_shared]
+    if not c.norm_topk:
+        parts.append("--no-renorm")
     return " ".join(shlex.quote(str(p)) for p in parts)
 
 
@@ -128,6 +139,8 @@ def run(args) -> int:
         f"{c.n_layers} layers, d_model {c.d_model}, {c.n_heads} heads ({c.n_kv_heads} KV) of {c.head_dim}, "
         f"{c.n_experts} experts top-{c.top_k}, d_expert {c.d_expert}, vocab {c.vocab_size}, context {c.max_seq_len}, {c.dtype}\n"
     )
+    if c.d_shared or not c.norm_topk:
+        out.write(f"shared expert d_shared {c.d_shared}; norm_topk {str(c.norm_topk).lower()}\n")
     share = doc["experts_total_bytes"] / doc["file_bytes"]
     rows = [
         ["weights file", fmt_bytes(doc["file_bytes"])],
