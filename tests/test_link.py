@@ -51,7 +51,7 @@ def test_promoting_a_guess_moves_it_ahead_of_earlier_guesses():
 
 def test_a_dropped_guess_that_had_not_started_takes_no_link_time():
     link = Link(rate=1e9, chunk=1 << 30)
-    a = link.book(1 * MS, 0, True)
+    link.book(1 * MS, 0, True)
     g = link.book(1 * MS, 0, False)
     b = link.book(1 * MS, 0, False)
     assert link.drop(g, MS // 2) is True
