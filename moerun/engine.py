@@ -86,7 +86,7 @@ class Engine:
         self._step_clock = 0
         self.prefetch_from = options.get("prefetch_from", "attention")
         self.prefetcher = None
-        if reader is not None:
+        if self.pool is not None and options.get("prefetch"):
             rule = GuessRule(self.model, options["lookahead"])
             self.prefetcher = Prefetcher(self.pool, rule, options["prefetch"], options["lookahead"], reader)
 
@@ -242,7 +242,7 @@ class Engine:
         }
         if self.pool is not None:
             out["pool"] = self.pool.stats.to_json()
-        if self.prefetcher is not None:
+        if self.prefetcher is not None and self.prefetcher.reader is not None:
             out["reader_alive"] = self.prefetcher.alive
             out["reader_rss_bytes"] = self.prefetcher.reader.rss_bytes()
         return out
@@ -276,7 +276,6 @@ def load(
     tokenizer: bool = True,
     baseline: str | None = None,
     reader_timeout: float = STALL_TIMEOUT_S,
-    guess_slot: bool = False,
 ) -> Engine:
     """Open a model and return an engine (DESIGN section 4).
 
@@ -321,9 +320,9 @@ def load(
                 raise BadOption(f"unknown baseline {baseline!r}; known: {', '.join(kinds)}")
             experts = kinds[baseline](store)
         else:
-            if prefetch > 0:  # every page-in of the run then goes through the reader process
+            if prefetch > 0:  # guesses are read by the reader process
                 reader = Reader(store, budget.n_slots, budget.slot, reader_timeout)
-            experts = ExpertPool(store, budget, evict, reader, guess_slot=guess_slot and prefetch > 0)
+            experts = ExpertPool(store, budget, evict, reader)
             if cap is None:
                 experts.preload_all()
         options = {

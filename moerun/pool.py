@@ -13,13 +13,18 @@ has one ``Slot`` record.  Everything here runs on the compute thread.
   them (it would wait for them anyway).  With an emulated link they are booked
   on the link (``moerun.link``) as soon as the layer has routed, so they travel
   while the layer computes the experts it has.
-- With prefetch on, ``prefetch`` places guesses and hands their reads to the
-  reader process (``moerun.reader``): the slot stays LOADING, and so cannot be
-  evicted or reused, until the reader publishes its result.  A guess is read
-  only if it can arrive about when its layer needs it and the policy would
-  rather hold it than the expert it evicts (``Policy.admits``).  A guess whose
-  layer starts without it is dropped: its link time is given back, and its slot
-  once the reader lets go.
+- With prefetch on, ``prefetch`` places guesses.  A guess is read only if it
+  can arrive about when its layer needs it and the policy would rather hold it
+  than the expert it evicts (``Policy.admits``).  A guess whose layer starts
+  without it is dropped: its link time is given back, and its slot.
+- Who moves a guess's bytes: the reader process (``moerun.reader``), in the
+  background; the slot stays LOADING, and so cannot be evicted or reused, until
+  the reader publishes its result.  With an emulated link the transfer's time
+  is kept by the link, so the reader only has to have copied the bytes by the
+  time the layer needs them.  If it has not, the compute thread copies them
+  itself rather than wait (the reader is told to skip them); it also does so
+  for guesses still waiting when it has to wait for a transfer anyway.  Without
+  a live reader the compute thread copies every guess (PENDING until then).
 """
 
 from __future__ import annotations
@@ -38,7 +43,9 @@ from .residency import NoVictim, Residency
 from .sources import ExpertSource, aligned_block
 from .store import ModelStore
 
-EMPTY, LOADING, READY = 0, 1, 2  # LOADING: the reader process owns the slot's bytes until it publishes
+# PENDING: a guess booked on the emulated link, with no reader, whose bytes the compute thread has
+# not copied yet; LOADING: the reader process owns the slot's bytes until it publishes
+EMPTY, PENDING, LOADING, READY = 0, 3, 1, 2
 HIT, PREFETCHED, MISS = 0, 1, 2
 KIND_NAMES = {HIT: "hit", PREFETCHED: "prefetched", MISS: "miss"}
 
@@ -53,7 +60,7 @@ class Slot:
     state: int = EMPTY
     layer: int = -1  # the expert it holds or is being read into (-1: none)
     expert: int = -1
-    res: Residency | None = None  # the residency that holds it (a layer's, or a layer's guess slot)
+    res: Residency | None = None  # the residency that holds it
     gen: int = 0  # bumped by every new read, so a result for an earlier read is never taken
     guess: bool = False  # loaded by a guess that no layer has used yet
     dropped: bool = False  # a guess given back while the reader still held it: freed once it lets go
@@ -134,16 +141,29 @@ class PoolStats:
 
 
 class Timing:
-    """Running averages (1/8 weight) the pool judges guesses by: one read's time, and the time from a
-    layer's prefetch point to the next layer's routing."""
+    """Running averages (1/8 weight) the pool judges guesses by: one read's time, one copy's time, and
+    the time from a layer's prefetch point to the next layer's routing."""
 
-    __slots__ = ("read_ns", "gap_ns", "mark", "outstanding")
+    __slots__ = ("read_ns", "copy_ns", "gap_ns", "mark", "outstanding", "every_ns", "last_point")
 
     def __init__(self, read_ns: float):
         self.read_ns = read_ns
+        self.copy_ns = 50_000.0  # a copy from the page cache, before any is measured
         self.gap_ns = 0.0
         self.mark = 0  # time of the last prefetch point
         self.outstanding = 0  # guess reads handed to the reader and not settled
+        self.every_ns = 0.0  # time from one prefetch point to the next
+        self.last_point = 0
+
+    def point(self, now: int) -> int:
+        """A prefetch point now: returns when the next one is expected."""
+        if self.last_point and now - self.last_point < 50_000_000:
+            self.every_ns += (now - self.last_point - self.every_ns) / 8
+        self.last_point = now
+        return now + int(self.every_ns)
+
+    def copied(self, ns: int) -> None:
+        self.copy_ns += (ns - self.copy_ns) / 8
 
     def observed(self, read_ns: int) -> None:
         self.read_ns += (read_ns - self.read_ns) / 8
@@ -165,7 +185,7 @@ class ExpertPool(ExpertSource):
     # layer starts routing (chosen by measurement: docs/offload.md, "Which guesses are read").
     late_share = 0.5
 
-    def __init__(self, store: ModelStore, budget: Budget, evict: str = "lru", reader=None, guess_slot: bool = False):
+    def __init__(self, store: ModelStore, budget: Budget, evict: str = "lru", reader=None):
         super().__init__(store)
         self.budget = budget
         self.config = c = store.config
@@ -195,25 +215,16 @@ class ExpertPool(ExpertSource):
                 self.res_of.append(Residency(n, policies.make_policy(policy_cls, E), list(range(start, start + n))))
                 start += n
             self.base = [0] * L
-        # guess_slot: each layer keeps one of its slots for guesses only (where its quota allows), so a
-        # guess never evicts an expert the layer has used; a used guess joins the layer's experts and
-        # the slot of the expert that makes room becomes the new guess slot
-        self.stage: list[Residency | None] = [None] * L
-        if guess_slot and not self.shared:
-            for layer, r in enumerate(self.res_of):
-                if r.capacity > c.top_k:
-                    slot = r.free.pop(0)  # the quota's last slot (free is kept in reverse order)
-                    r.capacity -= 1
-                    self.stage[layer] = Residency(1, policies.FIFO(E), [slot])
         self.signals = type(self.res_of[0].policy).routed is not policies.Policy.routed
         self.pinned: tuple = ()
         self.stats = PoolStats(L)
         self.progress = -1  # step * n_layers + layer of the layer being computed
-        self.reader = reader  # guesses are read by it while it is alive
+        self.reader = reader  # guesses are read by it while it is alive (real reads only)
         self.link = store.link  # the emulated link, or None
         self.timing = Timing(self.link.ns(store.expert_nbytes) if self.link is not None else 100_000.0)
         self._guessed: list[list[Slot]] = [[] for _ in range(L)]  # guesses placed for each layer, not yet met by it
         self._owed: list[Slot] = []  # slots read here while the reader still held them
+        self._pending: list[Slot] = []  # guesses booked on the emulated link, bytes not copied yet
         self._prefill = False
         self._events: dict = {}
         self._all_resident = None  # set by preload_all when every expert is resident
@@ -226,13 +237,12 @@ class ExpertPool(ExpertSource):
         return self.res_of[layer]
 
     def _reading(self) -> bool:
-        return self.reader is not None and self.reader.alive
+        """Can guesses be read: over the emulated link (copied here), or by a live reader process."""
+        return self.link is not None or (self.reader is not None and self.reader.alive)
 
     def resident(self, layer: int, expert: int) -> bool:
         """Is the expert resident or on its way (no read needed)?"""
-        key = self.base[layer] + expert
-        stage = self.stage[layer]
-        return key in self.res_of[layer].slot_of or (stage is not None and key in stage.slot_of)
+        return self.base[layer] + expert in self.res_of[layer].slot_of
 
     # ------------------------------------------------------------------ loading
     def preload_all(self) -> None:
@@ -310,7 +320,7 @@ class ExpertPool(ExpertSource):
 
     def _give_back(self, s: Slot) -> None:
         """Forget a guess's slot: it becomes free."""
-        if s.guess:
+        if s.guess and s.state != PENDING:
             self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
         s.res.remove(self.key(s.layer, s.expert))
         s.state = EMPTY
@@ -328,10 +338,12 @@ class ExpertPool(ExpertSource):
             self._settle(self.slots[r.slot_of[key]])
 
     def _evicted(self, s: Slot) -> None:
-        """Bookkeeping when a READY slot's expert is evicted."""
+        """Bookkeeping when a READY (or PENDING) slot's expert is evicted."""
         if s.guess:
             self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
             s.guess = False
+        if s.transfer is not None and s.transfer.end < 0:
+            self.link.drop(s.transfer, time.monotonic_ns())
         s.state = EMPTY
         s.layer = s.expert = -1
         s.res = s.transfer = None
@@ -353,25 +365,6 @@ class ExpertPool(ExpertSource):
         self._settle_busy(r)
         if r.busy and not r.candidates(pinned):
             self.reader.wait_any(since)
-
-    def _adopt(self, r: Residency, stage: Residency, key: int, pinned) -> int:
-        """A layer uses the guess in its guess slot: the guess joins the layer's experts, and the slot
-        that makes room for it (a free one, or its victim's) becomes the guess slot."""
-        slot = stage.slot_of[key]
-        while True:
-            try:
-                freed, victim = r.adopt(key, slot, pinned)
-                break
-            except NoVictim:
-                self._wait_for_room(r, pinned)
-        if victim is not None:
-            self._evicted(self.slots[freed])
-        busy = key in stage.busy
-        stage.remove(key, freed)
-        if busy:
-            r.busy.add(key)
-        self.slots[slot].res = r
-        return slot
 
     # ------------------------------------------------------------------ expert source
     def begin_step(self, step: int) -> None:
@@ -398,9 +391,11 @@ class ExpertPool(ExpertSource):
             if s.state == LOADING:
                 self.reader.cancel(s.index, s.gen)
                 s.dropped = True
-            else:
+            else:  # never (officially) arrived: its bytes, copied or not, are not to be used
                 self._give_back(s)
         self._guessed[layer] = []
+        if self._pending:
+            self._pending = [s for s in self._pending if s.state in (PENDING, LOADING) and s.guess]
 
     def routed(self, layer: int, chosen: np.ndarray, weights: np.ndarray, probs: np.ndarray) -> None:
         if self.recorder is not None:
@@ -429,14 +424,10 @@ class ExpertPool(ExpertSource):
         if self.signals:
             r.policy.routed(layer, ids, probs[0], r.now)  # optional per-step signal (Policy.routed)
         slots, link, nbytes = self.slots, self.link, self.store.expert_nbytes
-        stage = self.stage[layer]
         events = {}
         misses = 0
         for e, key in zip(ids, pinned):
-            if stage is not None and key in stage.slot_of:
-                hit, slot = True, self._adopt(r, stage, key, pinned)
-            else:
-                hit, slot = self._access(r, key, pinned)
+            hit, slot = self._access(r, key, pinned)
             s = slots[slot]
             if not hit:
                 s.layer, s.expert, s.state, s.res = layer, e, EMPTY, r  # read by weights() when the layer needs it
@@ -496,10 +487,12 @@ class ExpertPool(ExpertSource):
             self._settle(s)
             if s.state == LOADING:  # the reader has not got to it: read it here rather than wait
                 self._take_over(s)
+        elif s.state == PENDING:
+            self._copy(s)
         if s.state == EMPTY:  # a miss, or a guess whose read failed: read it here
             ev[2] = self._read_here(s, False)
         else:
-            wait_until(self._usable_at(s, time.monotonic_ns()))  # the rest of its emulated transfer
+            self._wait(self._usable_at(s, time.monotonic_ns()))  # the rest of its emulated transfer
             if ev[0] == PREFETCHED:
                 self._hidden(s, t0)
         stall = time.monotonic_ns() - t0
@@ -517,6 +510,45 @@ class ExpertPool(ExpertSource):
             start, end = s.ready_at - s.read_ns, s.ready_at
         if start >= 0:
             self.stats.hidden_ns += max(0, min(end, asked) - start)
+
+    def _copy(self, s: Slot) -> bool:
+        """Copy a PENDING guess's bytes (its emulated transfer is kept by the link).  A guess is advisory:
+        if the read fails, the slot is left EMPTY for a layer that claimed it to read itself (where a
+        lasting fault raises), or given back if none did; False then."""
+        try:
+            ns = self.store.copy_in(s.layer, s.expert, s.buf)
+        except Exception:
+            self.stats.prefetch_failed += 1
+            if s.transfer is not None:
+                self.link.drop(s.transfer, time.monotonic_ns())
+                s.transfer = None
+            if s.guess:
+                s.state = READY  # so that give_back counts it as it does a read guess
+                self._give_back(s)
+            else:
+                s.state = EMPTY
+            return False
+        self.timing.copied(ns)
+        s.state = READY
+        s.read_ns = ns
+        self.stats.bytes_in += self.store.expert_nbytes
+        self.stats.prefetch_ns += ns
+        return True
+
+    def _wait(self, deadline: int) -> None:
+        """Wait for an emulated transfer's end, copying waiting guesses meanwhile while there is time."""
+        if self._pending:
+            margin = self.timing.copy_ns
+            pending = self._pending
+            while pending and time.monotonic_ns() + margin < deadline:
+                s = pending.pop(0)
+                if s.state == LOADING:
+                    self._settle(s)
+                    if s.state == LOADING:
+                        self._take_over(s)
+                elif s.state == PENDING:
+                    self._copy(s)
+        wait_until(deadline)
 
     def _take_over(self, s: Slot) -> None:
         """Read a LOADING guess on this thread: the reader is told to skip it, and the slot stays out of
@@ -553,7 +585,7 @@ class ExpertPool(ExpertSource):
         if t is not None:
             end = max(link.ends(t, now), now)
             link.hold(t, now)  # a read slower than the link ends when the read did
-            wait_until(end)
+            self._wait(end)
             link.run(end)
             ns = end - t.start
         s.read_ns = ns
@@ -571,11 +603,7 @@ class ExpertPool(ExpertSource):
         pinned = self.pinned = (key,)
         r = self.res_of[layer]
         t0 = time.monotonic_ns()
-        stage = self.stage[layer]
-        if stage is not None and key in stage.slot_of:
-            hit, slot = True, self._adopt(r, stage, key, pinned)
-        else:
-            hit, slot = self._access(r, key, pinned)
+        hit, slot = self._access(r, key, pinned)
         s = self.slots[slot]
         if hit:
             s.guess = s.dropped = False
@@ -585,10 +613,12 @@ class ExpertPool(ExpertSource):
                 self._settle(s)
                 if s.state == LOADING:
                     self._take_over(s)
+            elif s.state == PENDING:
+                self._copy(s)
         else:
             s.layer, s.expert, s.state, s.res, s.transfer = layer, expert, EMPTY, r, None
         if s.state == READY:
-            wait_until(self._usable_at(s, time.monotonic_ns()))  # the rest of an emulated transfer
+            self._wait(self._usable_at(s, time.monotonic_ns()))  # the rest of an emulated transfer
         else:
             self._read_here(s, True)
         self.stats.stall_ns[layer] += time.monotonic_ns() - t0
@@ -615,8 +645,15 @@ class ExpertPool(ExpertSource):
     def _arrival(self, now: int) -> int:
         """When a guess handed over now should arrive."""
         if self.link is not None:
-            return max(self.link.backlog_until(now), now) + self.link.ns(self.store.expert_nbytes)
+            return self.link.backlog_until(now) + self.link.ns(self.store.expert_nbytes)
         return now + (self.timing.outstanding + 1) * self.timing.read_ns
+
+    def prefetch_point(self) -> None:
+        """The model reached a prefetch point (its guesses are placed next): a lingering reader is told
+        when to expect the next one."""
+        nxt = self.timing.point(time.monotonic_ns())
+        if self.reader is not None:
+            self.reader.expect(nxt)
 
     def prefetch(self, layer: int, guesses: list[int], target: int, hook=None) -> None:
         """Place the guesses for ``layer`` (best first) and hand their reads to the reader (compute thread).
@@ -631,8 +668,7 @@ class ExpertPool(ExpertSource):
         st.prefetch_guesses += len(guesses)
         if not self._reading():
             return
-        main = self.res_of[layer]
-        r = self.stage[layer] or main
+        r = self.res_of[layer]
         base = self.base[layer]
         keep = tuple(base + e for e in guesses)
         if self.shared:
@@ -644,7 +680,7 @@ class ExpertPool(ExpertSource):
         link, nbytes = self.link, self.store.expert_nbytes
         for e in guesses:
             key = base + e
-            if key in main.slot_of or key in r.slot_of:
+            if key in r.slot_of:
                 st.prefetch_resident += 1
                 continue
             if self._arrival(now) > need_at:
@@ -671,18 +707,25 @@ class ExpertPool(ExpertSource):
                 s.layer = s.expert = -1
                 s.res = None
                 continue
-            s.transfer = link.book(nbytes, now, False) if link is not None else None
+            if link is not None:
+                s.transfer = link.book(nbytes, now, False)
             self._guessed[layer].append(s)
 
     def _hand_over(self, s: Slot) -> bool:
-        """Give a guess's read to the reader; False (slot left as it was) if the fault hook refused it."""
+        """Give a guess's read to the reader (with an emulated link and no live reader, mark it PENDING
+        for the compute thread to copy); False (slot left as it was) if the fault hook refused it."""
+        s.gen += 1
+        if self.link is not None:
+            self._pending.append(s)  # the compute thread may take it over while it waits anyway
+            if not (self.reader is not None and self.reader.alive):  # the copy runs the fault hook
+                s.state = PENDING
+                return True
         hook = self.store.fault_hook
         if hook is not None:
             try:
                 hook(s.layer, s.expert)  # runs before every expert read, as in ModelStore.copy_in
             except Exception:
                 return False
-        s.gen += 1
         s.state = LOADING
         s.res.busy.add(self.key(s.layer, s.expert))
         self.timing.outstanding += 1

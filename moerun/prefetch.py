@@ -60,9 +60,15 @@ class GuessRule:
         z = (h[0] @ m).tolist()
         E = self.n_experts
         out = []
+        ids = range(E)
         for j in range(0, len(z), E):
             row = z[j : j + E]
-            out.append(heapq.nlargest(n, range(E), key=row.__getitem__))
+            if n == 1:
+                out.append([max(ids, key=row.__getitem__)])  # the first of equal scores: the lower id
+            elif E <= 64:
+                out.append(sorted(ids, key=row.__getitem__, reverse=True)[:n])  # stable: ties keep id order
+            else:
+                out.append(heapq.nlargest(n, ids, key=row.__getitem__))
         return out
 
     def table(self, layer: int, h: np.ndarray, lookahead: int, n: int) -> np.ndarray:
@@ -91,12 +97,14 @@ class Prefetcher:
         """Layer ``layer``'s prefetch point (compute thread, one token)."""
         pool = self.pool
         base = pool.step * pool.config.n_layers
+        pool.prefetch_point()
         for j, guesses in enumerate(self.rule.top(layer, h, self.n), 1):
             pool.prefetch(layer + j, guesses, base + layer + j, self.hook)
 
     @property
     def alive(self) -> bool:
-        return self.reader.alive
+        return self.reader is not None and self.reader.alive
 
     def close(self, timeout: float = 2.0) -> None:
-        self.reader.close(timeout)
+        if self.reader is not None:
+            self.reader.close(timeout)

@@ -111,6 +111,10 @@ class Reader:
             except OSError:
                 pass
 
+    def expect(self, at_ns: int) -> None:
+        """Tell a lingering reader when the next requests are likely (it sleeps until then)."""
+        self.c[rc.EXPECT] = at_ns
+
     def promote(self, slot: int, gen: int) -> None:
         """A layer now waits for this read: the reader takes it before the others."""
         self.c[rc.SLOT0 + rc.PER_SLOT * slot + rc.PROMOTE] = gen

@@ -47,6 +47,7 @@ READS = 8  # reads done
 PID = 9  # the reader's pid, written once it is serving
 DIE_AFTER = 11  # test hook: the process exits abruptly when it takes a request after this many reads
 PUBLISHED = 12  # results published (read, failed or skipped)
+EXPECT = 13  # when the engine expects to ask for more (monotonic ns): a lingering reader sleeps till then
 SLOT0 = 16  # per-slot words start here
 PER_SLOT = 8
 DONE, RESULT, START, NS, PROMOTE, CANCEL = range(6)  # offsets within a slot's words
@@ -54,12 +55,14 @@ ENTRY = 8  # words per ring entry: slot, gen, offset, nbytes
 OK, SKIPPED, FAILED = 1, 2, 3
 
 CHUNK = 1024 * 1024  # copies go in chunks, so a cancel or a promotion is seen within one chunk
-# After its last request the reader lingers this long, looking at the ring every LINGER_NAP_S
-# (a timed sleep: it wakes 30-110 us late here), before it blocks on its doorbell.  While it
+# After its last request the reader lingers this long before it blocks on its doorbell.  While it
 # lingers the engine does not ring: waking a blocked process on another vCPU costs the waker
-# 12-80 us on a 2-vCPU VM (measured), more than a guess is worth.
+# 12-80 us on a 2-vCPU VM (measured), more than a guess is worth.  Lingering is sleeping: until
+# the moment the engine said it expects to ask again (EXPECT), then naps that double from
+# LINGER_NAP_S up to LINGER_NAP_MAX_S.  Each wake-up costs this process tens of microseconds here.
 LINGER_NS = 5_000_000
-LINGER_NAP_S = 0.00005
+LINGER_NAP_S = 0.0001
+LINGER_NAP_MAX_S = 0.0008
 # A request can slip past the moment the reader blocks (the engine saw it still lingering), so
 # the first block after lingering is short.
 FIRST_BLOCK_S = 0.001
@@ -114,6 +117,7 @@ class Server:
         self.seen = 0
         self.rng = None
         self.seed = None
+        self.nap = LINGER_NAP_S
 
     def word(self, slot: int, which: int) -> int:
         return self.c[SLOT0 + PER_SLOT * slot + which]
@@ -209,8 +213,15 @@ class Server:
         """Nothing to do: linger, then block on the doorbell until the engine asks for something.
         False when the engine is gone."""
         c = self.c
-        if time.monotonic_ns() - last_work < LINGER_NS:
-            time.sleep(LINGER_NAP_S)
+        now = time.monotonic_ns()
+        if now - last_work < LINGER_NS:
+            wait = (c[EXPECT] - now) / 1e9
+            if wait > LINGER_NAP_S:
+                time.sleep(min(wait, LINGER_NAP_MAX_S))
+                self.nap = LINGER_NAP_S
+            else:
+                time.sleep(self.nap)
+                self.nap = min(2 * self.nap, LINGER_NAP_MAX_S)
             return True
         c[BLOCKED] = 1
         drain(self.wake_fd)  # a system call between raising the flag and reading HEAD again
@@ -238,6 +249,7 @@ class Server:
                 continue
             self.advance(r)
             last_work = time.monotonic_ns()
+            self.nap = LINGER_NAP_S
 
 
 def main(argv: list[str]) -> int:

@@ -87,21 +87,10 @@ class Residency:
         self.policy.inserted(key, self.now)
         return slot, victim
 
-    def remove(self, key: Key, free: int | None = None) -> int:
-        """Forget ``key`` (a failed or skipped load, or one moved to another pool); its slot, or the
-        slot ``free`` given in exchange, becomes free.  Returns the key's slot."""
+    def remove(self, key: Key) -> int:
+        """Forget ``key`` (a failed or skipped load); its slot becomes free."""
         slot = self.slot_of.pop(key)
         self.busy.discard(key)
         self.policy.evicted(key)
-        self.free.append(slot if free is None else free)
+        self.free.append(slot)
         return slot
-
-    def adopt(self, key: Key, slot: int, pinned: Collection[Key] = ()) -> tuple[int, Key | None]:
-        """Serve an access to ``key``, whose bytes already sit in ``slot`` (moved here from another
-        pool), as a hit that needs room: returns the slot this pool gives up (a free one or its
-        victim's) and the victim.  The clock advances by one.  Raises NoVictim."""
-        freed, victim = self._take_slot(self.victim(pinned))
-        self.slot_of[key] = slot
-        self.policy.inserted(key, self.now)
-        self.now += 1
-        return freed, victim

@@ -80,7 +80,6 @@ def offload_settings(draw):
         "evict": draw(st.sampled_from(["lru", "lfu", "fifo", "lrfu", "markov"])),
         "prefetch": draw(st.integers(0, 3)),
         "lookahead": draw(st.integers(1, 3)),
-        "guess_slot": draw(st.booleans()),  # guesses in a slot of their own per layer, or in the layer's slots
         "link_speed": draw(st.sampled_from([None, 2e8, 1e9])),  # emulated link, bytes/s
         "mechanism": draw(st.sampled_from(["pread", "mmap"])),
     }
