@@ -226,6 +226,7 @@ class ExpertPool(ExpertSource):
         self._owed: list[Slot] = []  # slots read here while the reader still held them
         self._pending: list[Slot] = []  # guesses booked on the emulated link, bytes not copied yet
         self._prefill = False
+        self._ready = False
         self._events: dict = {}
         self._all_resident = None  # set by preload_all when every expert is resident
 
@@ -297,7 +298,7 @@ class ExpertPool(ExpertSource):
             return
         st = self.stats
         if s.dropped and (result != reader_child.OK or s.transfer is not None):
-            self._give_back(s)  # dropped while the reader held it: its bytes never (emulated: officially) arrived
+            self._unclaimed(s, key)  # dropped while the reader held it: its bytes never (emulated: officially) arrived
             return
         s.dropped = False
         if result == reader_child.OK:
@@ -311,9 +312,23 @@ class ExpertPool(ExpertSource):
         if result == reader_child.FAILED:
             st.prefetch_failed += 1
         if s.guess:  # a guess no layer has claimed: forget it
-            self._give_back(s)
+            self._unclaimed(s, key)
             return
-        s.state = EMPTY  # a layer that claimed it reads it itself
+        self._claimed_empty(s)  # a layer that claimed it reads it itself
+
+    def _unclaimed(self, s: Slot, key: int) -> None:
+        """A guess whose bytes did not arrive: give its slot back, unless the layer being computed has
+        just chosen it (its access may be served but not yet seen by ``routed``): then it stays, empty,
+        for the layer to read."""
+        if key in self.pinned:
+            self._claimed_empty(s)
+        else:
+            self._give_back(s)
+
+    def _claimed_empty(self, s: Slot) -> None:
+        """The slot stays with its expert, empty: the layer that wants it reads it (as a miss would)."""
+        s.state = EMPTY
+        s.guess = s.dropped = False
         if s.transfer is not None:
             self.link.drop(s.transfer, time.monotonic_ns())
             s.transfer = None
@@ -347,6 +362,17 @@ class ExpertPool(ExpertSource):
         s.state = EMPTY
         s.layer = s.expert = -1
         s.res = s.transfer = None
+
+    def _access_step(self, r: Residency, keys: tuple) -> list:
+        """``Residency.access_step`` for a decode layer, waiting while every evictable slot has a read
+        outstanding."""
+        done = None
+        while True:
+            try:
+                return r.access_step(keys, keys, done)
+            except NoVictim as e:  # a background read is outstanding in every free slot; one will finish
+                done = e.done
+                self._wait_for_room(r, keys)
 
     def _access(self, r: Residency, key: int, pinned) -> tuple[bool, int]:
         """``Residency.access``, waiting while every evictable slot has a read outstanding."""
@@ -420,30 +446,34 @@ class ExpertPool(ExpertSource):
         if self._guessed[layer]:
             self._meet_guesses(layer, ids, now)
         self.timing.layer_started(now)
-        pinned = self.pinned = tuple(base + e for e in ids)
+        pinned = self.pinned = tuple(ids) if not base else tuple(base + e for e in ids)
         if self.signals:
             r.policy.routed(layer, ids, probs[0], r.now)  # optional per-step signal (Policy.routed)
-        slots, link, nbytes = self.slots, self.link, self.store.expert_nbytes
+        slots, link = self.slots, self.link
         events = {}
         misses = 0
-        for e, key in zip(ids, pinned):
-            hit, slot = self._access(r, key, pinned)
+        ready = True  # every chosen expert usable now: compute_order has nothing to sort
+        for e, (hit, slot, victim) in zip(ids, self._access_step(r, pinned)):
             s = slots[slot]
             if not hit:
+                if victim is not None:
+                    self._evicted(s)
                 s.layer, s.expert, s.state, s.res = layer, e, EMPTY, r  # read by weights() when the layer needs it
-                s.transfer = link.book(nbytes, now, True) if link is not None else None  # on its way from now
+                # on its way from now, with an emulated link
+                s.transfer = link.book(self.store.expert_nbytes, now, True) if link is not None else None
                 events[e] = [MISS, slot, 0, 0]  # kind, slot, pagein ns, stall ns
                 misses += 1
-                continue
-            if s.guess:
+                ready = False
+            elif s.guess:
                 s.guess = False
                 st.prefetch_used += 1
                 st.prefetch_hits[layer] += 1
                 events[e] = [PREFETCHED, slot, 0, 0]
+                ready = False
                 if s.dropped:  # cancelled a moment ago, the reader still holding it: ask for it again
                     s.dropped = False
                     if link is not None:
-                        s.transfer = link.book(nbytes, now, True)
+                        s.transfer = link.book(self.store.expert_nbytes, now, True)
                 elif s.transfer is not None and s.transfer.end < 0:
                     link.promote(s.transfer, now)
                 if s.state == LOADING:
@@ -451,13 +481,16 @@ class ExpertPool(ExpertSource):
             else:
                 st.hits[layer] += 1
                 events[e] = [HIT, slot, 0, 0]
+                if s.state != READY or s.transfer is not None:
+                    ready = False
         st.accesses[layer] += len(ids)
         st.misses[layer] += misses
         self._events = events
+        self._ready = ready
 
     def compute_order(self, layer: int, ids: list[int]):
         """Resident experts first, then those in flight or still to read (outputs are summed in id order anyway)."""
-        if self._prefill:
+        if self._prefill or self._ready:
             return range(len(ids))
         ev = self._events
         now = time.monotonic_ns()
@@ -478,10 +511,15 @@ class ExpertPool(ExpertSource):
         if self._prefill or ev is None:
             return self._prefill_weights(layer, expert)
         s = self.slots[ev[1]]
+        if s.state == READY and s.transfer is None:
+            if ev[0] == PREFETCHED:
+                self._hidden(s, time.monotonic_ns())
+            return self.codec.weights(s.bound)
         t0 = time.monotonic_ns()
-        if s.state == READY and (s.transfer is None or self._usable_at(s, t0) <= t0):
+        if s.state == READY and self._usable_at(s, t0) <= t0:
             if ev[0] == PREFETCHED:
                 self._hidden(s, t0)
+            s.transfer = None  # arrived: later uses need not ask the link
             return self.codec.weights(s.bound)
         if s.state == LOADING:
             self._settle(s)
@@ -498,6 +536,7 @@ class ExpertPool(ExpertSource):
         stall = time.monotonic_ns() - t0
         ev[3] = stall
         self.stats.stall_ns[layer] += stall
+        s.transfer = None  # arrived: later uses need not ask the link
         return self.codec.weights(s.bound)
 
     def _hidden(self, s: Slot, asked: int) -> None:

@@ -23,7 +23,12 @@ Key = int
 
 
 class NoVictim(Exception):
-    """Every resident key is pinned or busy; the caller must wait or give up."""
+    """Every resident key is pinned or busy; the caller must wait or give up.  From ``access_step``,
+    ``done`` holds the results of the accesses served before it."""
+
+    def __init__(self, done: list | None = None):
+        super().__init__()
+        self.done = done if done is not None else []
 
 
 class Residency:
@@ -75,6 +80,30 @@ class Residency:
         self.policy.inserted(key, now)
         self.now = now + 1
         return False, slot, victim
+
+    def access_step(self, keys: list[Key], pinned: Collection[Key], done: list | None = None) -> list:
+        """Serve a step's accesses in order, as ``access`` does one: ``[(hit, slot, victim), ...]``.
+        ``done`` continues a step that raised NoVictim (its results so far)."""
+        out = done if done is not None else []
+        slot_of, policy = self.slot_of, self.policy
+        for i in range(len(out), len(keys)):
+            key = keys[i]
+            now = self.now
+            slot = slot_of.get(key)
+            if slot is not None:
+                policy.hit(key, now)
+                out.append((True, slot, None))
+            else:
+                try:
+                    victim = self.victim(pinned)
+                except NoVictim:
+                    raise NoVictim(out) from None
+                slot, victim = self._take_slot(victim)
+                slot_of[key] = slot
+                policy.inserted(key, now)
+                out.append((False, slot, victim))
+            self.now = now + 1
+        return out
 
     def insert(self, key: Key, pinned: Collection[Key] = ()) -> tuple[int, Key | None]:
         """Insert without an access (a prefetch); the clock does not advance. Raises NoVictim."""

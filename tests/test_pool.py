@@ -118,3 +118,45 @@ def test_fully_resident_pool_pages_nothing_in_while_running(small_model):
         eng.generate(prompt_ids=[1, 2, 3, 4], max_new=6)
         assert reads == []
         assert eng.stats["pool"]["misses"] == 0
+
+
+# ---------------------------------------------------------------------------- guesses that fail
+
+
+def test_a_chosen_guess_whose_read_failed_keeps_its_slot_while_the_layer_waits_for_room(small_model):
+    # Two slots for layer 0, both holding guesses the reader has answered FAILED but the pool has not
+    # looked at yet.  The layer chooses one of them (a hit, pinned) and a third expert (a miss): with
+    # every other resident busy, the pool waits for room, and only then learns that both reads
+    # failed.  The chosen guess must stay with the layer (to be read by it), not be given back:
+    # giving it back would hand its slot to the miss, and two experts would share one slot.
+    from moerun.reader import Reader
+
+    store = ModelStore.open(small_model)
+    c = store.config
+    budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, 1 << 40, [2] * c.n_layers)
+    reader = Reader(store, budget.n_slots, budget.slot)
+    try:
+        pool = ExpertPool(store, budget, "lru", reader)
+        pool.late_share = 1e9  # admit every guess, whatever its timing
+        reader.set_faults(fail_every=1)  # every read the reader does reports a failure
+        pool.begin_step(0)
+        pool.prefetch(0, [1, 2], 0)
+        assert pool.stats.prefetch_loads == 2
+        since = 0
+        while reader.published() < 2:  # both answered, unseen by the pool
+            reader.wait_any(since)
+            since = reader.published()
+        E = c.n_experts
+        pool.begin_layer(0)
+        # the chosen guess is 2: the pool looks at 1's answer first, so a slot given back for 2 would
+        # be the last one freed, the one the miss takes
+        pool.routed(0, np.array([[2, 3]]), np.full((1, 2), 0.5, np.float32), np.full((1, E), 1 / E, np.float32))
+        slots = {e: pool._events[e][1] for e in (2, 3)}
+        assert slots[2] != slots[3]
+        for e in (2, 3):
+            w_gate, w_up, w_down = pool.weights(0, e)
+            assert np.array_equal(w_down, store.read_tensor(f"layers.0.experts.{e}.w_down"))
+        pool.end_layer(0)
+    finally:
+        reader.close()
+        store.close()
