@@ -28,6 +28,26 @@ from moerun.synth import synth_config, write_model  # noqa: E402
 PEBBLE = ROOT / "tiny_models" / "pebble"
 
 
+# ---------------------------------------------------------------------------- the cache directory
+
+
+@pytest.fixture(scope="session", autouse=True)
+def private_cache_dir(tmp_path_factory):
+    """Every test (and every process a test starts) caches into a temporary directory, never the user's own.
+
+    moerun caches calibration files under $XDG_CACHE_HOME/moerun (moerun.plan); the variable is set for the
+    whole session so child processes inherit it.
+    """
+    cache = tmp_path_factory.mktemp("cache")
+    old = os.environ.get("XDG_CACHE_HOME")
+    os.environ["XDG_CACHE_HOME"] = str(cache)
+    yield cache
+    if old is None:
+        os.environ.pop("XDG_CACHE_HOME", None)
+    else:
+        os.environ["XDG_CACHE_HOME"] = old
+
+
 # ---------------------------------------------------------------------------- models
 
 
