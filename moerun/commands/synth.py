@@ -20,14 +20,16 @@ HELP = (
 EPILOG = (
     "Weights are random, so the model's text is noise and its routing is meaningless: use it to study "
     "sizes, page-in and budgets, never eviction or prefetch policies. Low-bit quantized experts are not "
-    "written here; they come from the quantize command (arriving later) applied to a model. The directory "
-    "appears under OUT only when complete; a failed or interrupted run leaves nothing there."
+    "written here: run 'moerun quantize --model OUT NEW_OUT' on the result. The directory appears under "
+    "OUT only when complete; a failed or interrupted run leaves nothing there, and the next run to the "
+    "same OUT removes what a killed one left beside it."
 )
 
 
 def add_arguments(p) -> None:
     p.epilog = EPILOG
-    p.add_argument("out", metavar="OUT", help="new model directory to create (must not exist, or be empty)")
+    p.add_argument("out", metavar="OUT", help="new model directory to create (absent or empty; its parent must exist)")
+    p.add_argument("--force", action="store_true", help="replace OUT if it is a model directory (never one holding other files)")
     g = p.add_argument_group("shape (required)")
     g.add_argument("--layers", type=int, required=True, metavar="N", help="transformer layers")
     g.add_argument("--experts", type=int, required=True, metavar="N", help="experts per layer")
@@ -42,8 +44,8 @@ def add_arguments(p) -> None:
     o.add_argument("--context", type=int, default=256, metavar="N", help="longest sequence, in tokens (default 256)")
     o.add_argument("--untied", action="store_true", help="a separate lm_head instead of reusing the embedding")
     p.add_argument("--bits", type=int, default=32, choices=sorted(BITS), help="16 = F16 weights, 32 = F32 (default); "
-                   "quantized bits come with the quantize command")
-    p.add_argument("--seed", type=int, default=0, metavar="N", help="random seed (default 0)")
+                   "for low-bit experts run 'moerun quantize' on the result")
+    p.add_argument("--seed", type=int, default=0, metavar="N", help="random seed, 0 or more (default 0)")
     p.add_argument("--name", metavar="TEXT", help="model name in config.json (default: the directory name)")
     cli.add_json(p)
 
@@ -114,7 +116,7 @@ def run(args) -> int:
 
     command = command_line(args, config)
     try:
-        doc = synthesize(args.out, config, seed=args.seed, progress=report, command=command)
+        doc = synthesize(args.out, config, seed=args.seed, progress=report, command=command, force=args.force)
     finally:
         progress.close()
     if args.json:
