@@ -14,7 +14,7 @@ from dataclasses import dataclass, field
 from .config import ModelConfig
 from .errors import ImpossibleBudget
 from .model import KVCache
-from .units import fmt_bytes
+from .units import fmt_bytes, fmt_exact
 
 SLOT_ALIGN = 4096
 
@@ -24,13 +24,16 @@ def slot_bytes(expert_nbytes: int) -> int:
 
 
 def scratch_bytes(config: ModelConfig, codec_scratch: int = 0) -> int:
-    """Working memory of one forward pass over a full context (float32 activations).
+    """Working memory of one forward pass over a full context (float32 activations), or of loading the
+    dense weights, whichever is larger (the two never overlap in time).
 
-    Counted: residual, normed and attention output rows [T, d_model] (x4), the
+    A forward pass: residual, normed and attention output rows [T, d_model] (x4), the
     fused q|k|v projection, attention scores and probabilities [heads, T, T]
     (x3 for the mask and softmax temporaries), expert intermediates [T, d_expert]
     (x3; the shared expert's [T, d_shared] are computed apart from them, so the
     wider of the two counts), logits [T, vocab], plus the codec's dequantization buffers.
+    Loading: the largest dense tensor's file bytes while it is widened to float32 (2 per element when
+    the weights are F16) and its finiteness check (1 per element).
     """
     c = config
     T = c.max_seq_len
@@ -42,7 +45,21 @@ def scratch_bytes(config: ModelConfig, codec_scratch: int = 0) -> int:
         + T * c.vocab_size
         + T * c.head_dim  # rotary cos and sin tables
     )
-    return 4 * floats + codec_scratch
+    return max(4 * floats + codec_scratch, load_bytes(config))
+
+
+def load_bytes(config: ModelConfig) -> int:
+    """Transient bytes of loading the dense weights: the largest tensor's raw bytes (F16) and its check."""
+    per = 1 + (2 if config.dtype == "F16" else 0)
+    largest = max((_elements(s) for s in config.dense_shapes().values()), default=0)
+    return per * largest
+
+
+def _elements(shape) -> int:
+    n = 1
+    for s in shape:
+        n *= s
+    return n
 
 
 @dataclass
@@ -134,16 +151,16 @@ def plan_budget(
             return b
         if b.total > mem_cap:
             raise ImpossibleBudget(
-                f"memory cap {fmt_bytes(mem_cap)} cannot hold that slot list; it needs at least {fmt_bytes(b.total)} ({b.total} bytes)"
+                f"memory cap {fmt_exact(mem_cap)} cannot hold that slot list; it needs at least {fmt_exact(b.total)}"
             )
         b.unused = mem_cap - b.total
         return b
     minimum = minimum_cap(config, dense, expert_nbytes, split, codec_scratch)
     if mem_cap < minimum:
         raise ImpossibleBudget(
-            f"memory cap {fmt_bytes(mem_cap)} is too small: dense weights, KV cache and scratch take "
+            f"memory cap {fmt_exact(mem_cap)} is too small: dense weights, KV cache and scratch take "
             f"{fmt_bytes(d + kv + s)} and the pool needs room for at least "
-            f"{k if split == 'shared' else L * k} experts; the smallest cap that works is {minimum} bytes ({fmt_bytes(minimum)})"
+            f"{k if split == 'shared' else L * k} experts; the smallest cap that works is {fmt_exact(minimum)}"
         )
     n = (mem_cap - d - kv - s) // per
     if split == "shared":

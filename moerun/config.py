@@ -13,6 +13,8 @@ FORMAT_TAG = "moerun/1"
 # Upper bound on the tensors a config may imply (7 dense, 3 per expert and 3 for a shared expert, per layer).  Large
 # published mixture-of-experts checkpoints hold tens of thousands; a million is implausible.
 MAX_TENSORS = 1 << 20
+FLOAT32_MAX = 3.4028234663852886e38  # the largest finite float32 (IEEE 754 binary32)
+CONFIG_LIMIT = 16 << 20  # bytes of a config.json (a real one is a few hundred)
 
 _INT_FIELDS = (
     "vocab_size",
@@ -79,6 +81,10 @@ class ModelConfig:
     def from_dict(cls, raw: object, where: str = "config.json") -> ModelConfig:
         if not isinstance(raw, dict):
             raise BadModelFile(f"{where}: expected a JSON object")
+        try:  # JSON escapes can spell lone surrogates, which no output can print
+            json.dumps(raw, ensure_ascii=False).encode("utf-8")
+        except (UnicodeEncodeError, RecursionError, ValueError):
+            raise BadModelFile(f"{where}: holds text that is not valid UTF-8") from None
         missing = [k for k in (*_INT_FIELDS, "rope_theta", "norm_eps", "tied_embeddings") if k not in raw]
         if missing:
             raise BadModelFile(f"{where}: missing field(s) {', '.join(missing)}")
@@ -97,6 +103,8 @@ class ModelConfig:
             if not ok:
                 raise BadModelFile(f"{where}: {k} must be a positive number, got {v!r:.40}")
             vals[k] = float(v)
+        if not vals["norm_eps"] <= FLOAT32_MAX:  # the model computes in float32, where it would be infinite
+            raise BadModelFile(f"{where}: norm_eps {vals['norm_eps']:g} does not fit in float32 (at most {FLOAT32_MAX:.6g})")
         if not isinstance(raw["tied_embeddings"], bool):
             raise BadModelFile(f"{where}: tied_embeddings must be true or false")
         vals["tied_embeddings"] = raw["tied_embeddings"]
@@ -134,17 +142,17 @@ class ModelConfig:
 
     @classmethod
     def load(cls, model_dir: Path) -> ModelConfig:
+        from .fileio import read_user_file
+
         path = Path(model_dir) / "config.json"
+        data = read_user_file(path, BadModelFile, "config file", limit=CONFIG_LIMIT,
+                              missing=f"{path}: missing (every model directory needs a config.json)")
         try:
-            raw = json.loads(path.read_text(encoding="utf-8"))
-        except FileNotFoundError:
-            raise BadModelFile(f"{path}: missing (every model directory needs a config.json)") from None
+            raw = json.loads(data.decode("utf-8"))
         except ValueError as e:  # JSONDecodeError, UnicodeDecodeError, integers past Python's digit limit
             raise BadModelFile(f"{path}: not valid JSON ({str(e).splitlines()[0][:160]})") from None
         except RecursionError:
             raise BadModelFile(f"{path}: not valid JSON (nested too deeply)") from None
-        except OSError as e:
-            raise BadModelFile(f"{path}: cannot read ({e.strerror})") from None
         return cls.from_dict(raw, where=str(path))
 
     # Expected dense tensors and their shapes (DESIGN section 3).

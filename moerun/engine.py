@@ -29,7 +29,22 @@ from .tokenizer import Tokenizer
 from .trace import TRACE_GUESSES, TRACE_LOOKAHEAD, Recorder, Trace
 from .units import parse_rate, parse_size
 
-BUNDLED_MODEL = Path(__file__).resolve().parent.parent / "tiny_models" / "pebble"
+
+def _bundled_model() -> Path:
+    """tiny_models/pebble: shipped as the package ``moerun_models`` (pyproject.toml maps it to tiny_models/),
+    found through importlib.resources in any install; the source tree's copy when moerun runs uninstalled."""
+    try:
+        from importlib.resources import files
+
+        found = Path(str(files("moerun_models") / "pebble"))
+        if (found / "config.json").is_file():
+            return found
+    except (ImportError, TypeError, ValueError):
+        pass
+    return Path(__file__).resolve().parent.parent / "tiny_models" / "pebble"
+
+
+BUNDLED_MODEL = _bundled_model()
 
 
 def default_model_dir() -> Path:
@@ -115,7 +130,19 @@ class Engine:
 
     # ------------------------------------------------------------------ passes
     def _check_ids(self, ids) -> np.ndarray:
-        ids = np.asarray(ids, dtype=np.int64).reshape(-1)
+        bad = BadOption(f"token ids must be whole numbers in 0..{self.config.vocab_size - 1} (a list or an integer array)")
+        if isinstance(ids, (str, bytes)):
+            raise bad
+        try:
+            raw = np.asarray(ids)
+            if raw.dtype.kind == "O":  # Python integers beyond int64, or mixed objects
+                raw = np.asarray(ids, dtype=np.int64)
+        except (ValueError, TypeError, OverflowError):
+            raise bad from None
+        if raw.size and (raw.dtype.kind not in "iuf" or (raw.dtype.kind == "f" and not (
+                np.isfinite(raw).all() and np.array_equal(raw, np.trunc(raw)) and np.abs(raw).max() < 2**62))):
+            raise bad  # text, booleans, fractions, NaN, infinities
+        ids = raw.astype(np.int64).reshape(-1)
         if ids.size == 0:
             raise BadOption("need at least one token")
         if ids.size > self.config.max_seq_len:
@@ -125,6 +152,8 @@ class Engine:
         return ids
 
     def _finite(self, logits: np.ndarray) -> np.ndarray:
+        """The one check every command's numbers pass (generate, logits, score, record, verify): non-finite
+        logits mean damaged or overflowing weights; never report numbers computed from them."""
         if not np.isfinite(logits).all():
             from .errors import BadModelFile
 
@@ -138,7 +167,7 @@ class Engine:
         ids = self._check_ids(token_ids)
         self.experts.begin_step(-1)
         x = self.model.forward(ids, 0, self.cache, self.experts, self._seen())
-        return self.model.logits(x)
+        return self._finite(self.model.logits(x))
 
     def generate(
         self,
@@ -260,6 +289,30 @@ class Engine:
         self.close()
 
 
+def _whole(v) -> bool:
+    return isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_))
+
+
+def _check_arguments(model_dir, evict, prefetch, lookahead, slots, split, mechanism, baseline, flags: dict) -> None:
+    """Types of load()'s arguments: the API refuses a float lookahead or string slots with BadOption, as the CLI does."""
+    if model_dir is not None and not isinstance(model_dir, (str, os.PathLike)):
+        raise BadOption(f"model_dir must be a path, got {type(model_dir).__name__}")
+    for name, v in (("evict", evict), ("split", split), ("mechanism", mechanism)):
+        if not isinstance(v, str):
+            raise BadOption(f"{name} must be text, got {v!r:.40}")
+    if baseline is not None and not isinstance(baseline, str):
+        raise BadOption(f"baseline must be text or None, got {baseline!r:.40}")
+    for name, v in (("prefetch", prefetch), ("lookahead", lookahead)):
+        if not _whole(v):
+            raise BadOption(f"{name} must be a whole number, got {v!r:.40}")
+    if slots is not None and (isinstance(slots, (str, bytes)) or not hasattr(slots, "__iter__")
+                              or not all(_whole(n) for n in slots)):
+        raise BadOption(f"slots must be a list of whole numbers (slots per layer), got {slots!r:.60}")
+    for name, v in flags.items():
+        if not isinstance(v, bool):
+            raise BadOption(f"{name} must be True or False, got {v!r:.40}")
+
+
 def load(
     model_dir: str | os.PathLike | None = None,
     mem_cap: int | str | None = None,
@@ -290,7 +343,10 @@ def load(
     before the engine stops it and reads every expert itself (docs/offload.md).
     """
     from . import policies
+    from .store import MECHANISMS
 
+    _check_arguments(model_dir, evict, prefetch, lookahead, slots, split, mechanism, baseline,
+                     {"cold": cold, "bare": bare, "tokenizer": tokenizer})
     policies.get(evict)
     if prefetch < 0:
         raise BadOption(f"--prefetch must be 0 (off) or a positive number of guesses, got {prefetch}")
@@ -298,6 +354,14 @@ def load(
         raise BadOption(f"prefetch point must be 'attention' or 'output', got {prefetch_from!r}")
     if lookahead < 1:
         raise BadOption(f"--lookahead must be at least 1, got {lookahead}")
+    if mechanism not in MECHANISMS:
+        raise BadOption(f"unknown page-in mechanism {mechanism!r}; known: {', '.join(MECHANISMS)}")
+    if split not in ("even", "shared"):
+        raise BadOption(f"split must be 'even' or 'shared', got {split!r}")
+    if isinstance(reader_timeout, bool) or not isinstance(reader_timeout, (int, float)) or not reader_timeout > 0:
+        raise BadOption(f"reader_timeout must be a positive number of seconds, got {reader_timeout!r:.40}")
+    if slots is not None and split == "shared":
+        raise BadOption("slots (per-layer quotas) and split='shared' (one pool for every layer) contradict each other; give one")
     cap = parse_size(mem_cap, "memory cap") if mem_cap is not None else None
     rate = parse_rate(link_speed, "link speed") if link_speed is not None else None
     watch = MemWatch()

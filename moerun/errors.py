@@ -37,6 +37,16 @@ class PageInError(MoerunError):
     """Reading an expert from storage failed (I/O error, file changed under us)."""
 
 
+class OutputError(MoerunError):
+    """An output that cannot or must not be written: a destination that is not ours to replace, a missing
+    parent directory, a full disk, a read-only file system.  Not a bad option: the same command may work
+    with another destination or after space is freed.  ``errno``: the system's error number, when one caused it."""
+
+    def __init__(self, message: str, errno: int | None = None):
+        super().__init__(message)
+        self.errno = errno
+
+
 class ReaderError(MoerunError):
     """The prefetch reader process could not be started."""
 

@@ -92,9 +92,11 @@ def digest(data: bytes | memoryview | np.ndarray) -> str:
 
 def read_header(path: str | os.PathLike) -> Header:
     """Read and validate a safetensors header; raise BadModelFile naming the problem."""
+    from .fileio import open_regular
+
     path = Path(path)
     try:
-        with open(path, "rb") as f:
+        with open_regular(path, BadModelFile, "safetensors file", missing=f"{path}: missing") as f:  # never a FIFO or device
             size = os.fstat(f.fileno()).st_size
             if size < 8:
                 raise BadModelFile(f"{path}: truncated ({size} bytes; a safetensors file starts with an 8-byte header length)")
@@ -116,6 +118,10 @@ def read_header(path: str | os.PathLike) -> Header:
         raise BadModelFile(f"{path}: header is not valid JSON") from None
     if not isinstance(doc, dict):
         raise BadModelFile(f"{path}: header is not a JSON object")
+    try:  # JSON escapes can spell lone surrogates (tensor names, metadata) that no output can print
+        json.dumps(doc, ensure_ascii=False).encode("utf-8")
+    except (UnicodeEncodeError, RecursionError, ValueError):
+        raise BadModelFile(f"{path}: header holds text that is not valid UTF-8") from None
     data_start = 8 + n
     data_len = size - data_start
     metadata = doc.pop("__metadata__", None) or {}

@@ -35,7 +35,7 @@ from pathlib import Path
 import numpy as np
 
 from . import policies
-from .errors import BadInput, BadOption, ImpossibleBudget
+from .errors import BadInput, BadOption, BadTrace, ImpossibleBudget
 from .fileio import write_text_atomic
 from .replay import layer_plans, plan_policy, prefill_tokens, replay_counts
 from .residency import NoVictim, Residency
@@ -110,7 +110,7 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
     if len(costs.attn) != L:
         raise BadOption(f"{len(costs.attn)} per-layer costs for a trace of {L} layers")
     if prefetch and trace.guesses is None:
-        raise BadInput("this trace holds no guesses, so prefetch cannot be planned (record one with 'moerun record')")
+        raise BadTrace("this trace holds no guesses, so prefetch cannot be planned (record one with 'moerun record')")
     if prefetch and (lookahead > trace.guesses.shape[2] or prefetch > trace.guesses.shape[3]):
         raise BadOption(
             f"the trace holds {trace.guesses.shape[3]} guesses for {trace.guesses.shape[2]} layers ahead; "
@@ -348,20 +348,17 @@ def calibrate(model_dir, tokens: int = 96, repeats: int = 3, recalibrate: bool =
     per token; one expert's time is measured alone on the model's own weights;
     the rest of a step is the head.  The fastest of ``repeats`` runs is kept.
     """
+    from .config import ModelConfig
     from .engine import load
     from .model import expert
     from .sampling import Sampling
 
     model_dir = Path(model_dir)
     path = _cache_dir() / f"calibration-{_model_key(model_dir)}.json"
-    if cache and not recalibrate and path.exists():
-        try:
-            doc = json.loads(path.read_text())
-            if doc.get("schema") == CALIBRATION_SCHEMA:
-                doc["cached"] = str(path)
-                return doc
-        except (OSError, ValueError):
-            pass
+    if cache and not recalibrate:
+        doc = _cached_calibration(path, ModelConfig.load(model_dir).n_layers)
+        if doc is not None:
+            return doc
     best = None
     for _ in range(repeats):
         with load(model_dir) as eng:
@@ -435,33 +432,76 @@ def calibrate(model_dir, tokens: int = 96, repeats: int = 3, recalibrate: bool =
     return doc
 
 
+MAX_LAYERS = 1 << 16
+MAX_EXPERTS = 1 << 20
+MAX_BYTES = 1 << 60
+MAX_US = 1e12  # microseconds: eleven days per operation
+
+
+def _cached_calibration(path: Path, n_layers: int) -> dict | None:
+    """A cached calibration that is whole and sane, or None (then it is measured again and the file replaced).
+
+    The cache is ours but lives in the user's directory: a file that parses yet holds negative, infinite or
+    missing figures, or the figures of another layer count, is not trusted.
+    """
+    from .fileio import read_json_file
+    from .units import finite_number
+
+    if not path.exists():
+        return None
+    try:
+        doc = read_json_file(path, BadInput, "calibration cache")
+    except BadInput:
+        return None
+    if not isinstance(doc, dict) or doc.get("schema") != CALIBRATION_SCHEMA:
+        return None
+    attn = doc.get("attn_s")
+    if not isinstance(attn, list) or len(attn) != n_layers or not all(finite_number(a, 0.0, 1.0) for a in attn):
+        return None
+    if not finite_number(doc.get("expert_s"), 1e-12, 1.0) or not finite_number(doc.get("resident_step_s"), 1e-12, 10.0):
+        return None
+    if not finite_number(doc.get("head_s"), 0.0, 1.0) or not all(finite_number(doc.get(k, 0.0), 0.0, 1.0) for k in ("wait_s", "loader_s")):
+        return None
+    doc["cached"] = str(path)
+    return doc
+
+
 def load_shape(path: str | os.PathLike) -> dict:
     """A small JSON describing a model too big to run here; validated, one clear error otherwise."""
+    from .fileio import read_json_file
+    from .units import finite_number, whole_number
+
     p = Path(path)
-    try:
-        doc = json.loads(p.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise BadOption(f"{p}: no such shape file") from None
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as e:
-        raise BadInput(f"{p}: not a readable JSON shape file ({e})") from None
+    doc = read_json_file(p, BadInput, "shape file", missing=f"{p}: no such shape file", file_error=BadOption)
     if not isinstance(doc, dict):
         raise BadInput(f"{p}: a shape file is a JSON object with {', '.join(SHAPE_KEYS)}")
     missing = [k for k in SHAPE_KEYS if k not in doc]
     if missing:
         raise BadInput(f"{p}: missing {', '.join(missing)}")
-    for key in ("layers", "experts", "top_k", "expert_bytes"):
-        v = doc[key]
-        if isinstance(v, bool) or not isinstance(v, int) or v <= 0:
-            raise BadInput(f"{p}: {key} must be a positive whole number, got {v!r}")
-    for key in ("dense_bytes", "expert_us", "dense_layer_us", "head_us", "kv_cache_bytes", "scratch_bytes"):
-        v = doc.get(key, 0)
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or not np.isfinite(v) or v < 0:
-            raise BadInput(f"{p}: {key} must be a number of 0 or more, got {v!r}")
+    for key, hi in (("layers", MAX_LAYERS), ("experts", MAX_EXPERTS), ("top_k", MAX_EXPERTS), ("expert_bytes", MAX_BYTES)):
+        if not whole_number(doc[key], 1, hi):
+            raise BadInput(f"{p}: {key} must be a whole number from 1 to {hi}, got {doc[key]!r:.40}")
+    for key in ("dense_bytes", "kv_cache_bytes", "scratch_bytes"):
+        if not whole_number(doc.get(key, 0), 0, MAX_BYTES):
+            raise BadInput(f"{p}: {key} must be a whole number of bytes from 0 to {MAX_BYTES}, got {doc.get(key)!r:.40}")
+    for key in ("expert_us", "dense_layer_us", "head_us"):
+        if not finite_number(doc.get(key, 0), 0.0, MAX_US):
+            raise BadInput(f"{p}: {key} must be a number of microseconds from 0 to {MAX_US:g}, got {doc.get(key)!r:.40}")
     if doc["expert_us"] <= 0:
         raise BadInput(f"{p}: expert_us must be greater than zero")
     if doc["top_k"] > doc["experts"]:
         raise BadInput(f"{p}: top_k ({doc['top_k']}) exceeds experts ({doc['experts']}): the shape contradicts itself")
     return doc
+
+
+def check_decode_steps(trace: Trace, where: str) -> None:
+    """The planner predicts decode speed: a trace whose tokens are all prefill has nothing to simulate."""
+    P = prefill_tokens(trace)
+    if trace.n_tokens - P < 1:
+        raise BadTrace(
+            f"{where}: no decode steps (all {trace.n_tokens} tokens are prefill), so there is no decode speed to "
+            "predict; record a trace with 'moerun record' or 'moerun generate --max-new N --trace FILE'"
+        )
 
 
 def costs_from_calibration(cal: dict, page: float, page_source: str) -> Costs:

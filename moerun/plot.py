@@ -38,7 +38,7 @@ def _picture_slots(slots: list[int], top_k: int, n_experts: int) -> int:
     return mid[len(mid) // 2]
 
 
-def plot_replay(path: str | Path, trace: Trace, doc: dict, layer: int = 0) -> dict:
+def plot_replay(path: str | Path, trace: Trace, doc: dict, layer: int = 0, force: bool = True, inputs=()) -> dict:
     plt = require_matplotlib()
     from matplotlib.colors import ListedColormap
     from matplotlib.patches import Patch
@@ -105,7 +105,9 @@ def plot_replay(path: str | Path, trace: Trace, doc: dict, layer: int = 0) -> di
         fontsize=8,
         frameon=False,
     )
-    with atomic_path(path, suffix=".png") as tmp:
-        fig.savefig(tmp, format="png")
-    plt.close(fig)
+    try:
+        with atomic_path(path, suffix=".png", force=force, inputs=inputs, what="--plot") as tmp:
+            fig.savefig(tmp, format="png")
+    finally:
+        plt.close(fig)
     return info

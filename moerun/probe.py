@@ -30,7 +30,6 @@ import ctypes
 import ctypes.util
 import datetime
 import json
-import math
 import mmap
 import os
 import platform
@@ -45,10 +44,11 @@ from pathlib import Path
 import numpy as np
 
 from .config import ModelConfig
-from .errors import BadInput, BadModelFile, BadOption
+from .errors import BadInput, BadModelFile, BadOption, OutputError
 from .fileio import write_text_atomic
 from .modelfile import read_header
 from .store import pread_into
+from .units import finite_number, whole_number
 
 SCHEMA = "moerun-probe/1"
 PAGE = mmap.PAGESIZE
@@ -477,7 +477,7 @@ def _fit_slots(base: Path, nbytes: int) -> int:
     while slots > 1 and nbytes * slots + margin > free:
         slots -= 1
     if nbytes * slots + margin > free:
-        raise BadOption(f"{base}: not enough free disk space for a {size_label(nbytes)} temporary file ({size_label(free)} free)")
+        raise OutputError(f"{base}: not enough free disk space for a {size_label(nbytes)} temporary file ({size_label(free)} free)")
     return slots
 
 
@@ -602,12 +602,15 @@ def run_probe(
 # ---------------------------------------------------------------------- saving and loading
 
 
-def save_probe(path: str | os.PathLike, doc: dict) -> None:
-    write_text_atomic(path, json.dumps(doc, indent=2) + "\n")
+def save_probe(path: str | os.PathLike, doc: dict, force: bool = True, inputs=()) -> None:
+    write_text_atomic(path, json.dumps(doc, indent=2) + "\n", force=force, inputs=inputs, what="--save")
 
 
 def _num(x) -> bool:
-    return isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+    return finite_number(x, -1e30, 1e30)
+
+
+MAX_BLOCK = 1 << 50  # bytes of one probed block (a PiB): anything larger is not a measurement
 
 
 def validate_probe(doc: object, where: str = "probe result") -> dict:
@@ -618,6 +621,10 @@ def validate_probe(doc: object, where: str = "probe result") -> dict:
 
     if not isinstance(doc, dict):
         bad("not a JSON object")
+    try:  # labels and reasons are printed: JSON escapes can spell lone surrogates that no output can print
+        json.dumps(doc, ensure_ascii=False).encode("utf-8")
+    except (UnicodeEncodeError, RecursionError, ValueError):
+        bad("holds text that is not valid UTF-8")
     if doc.get("schema") != SCHEMA:
         bad(f"schema is {doc.get('schema')!r}, expected {SCHEMA!r} (written by 'moerun probe --save')")
     for key in ("machine", "ceiling"):
@@ -625,7 +632,7 @@ def validate_probe(doc: object, where: str = "probe result") -> dict:
             bad(f"{key!r} is missing or not an object")
     if not _num(doc["ceiling"].get("gb_s")) or doc["ceiling"]["gb_s"] <= 0:
         bad("ceiling.gb_s must be a positive number")
-    if not isinstance(doc.get("runs"), int) or isinstance(doc.get("runs"), bool) or doc["runs"] < 1:
+    if not whole_number(doc.get("runs"), 1, 1 << 31):
         bad("runs must be a positive integer")
     blocks = doc.get("blocks")
     if not isinstance(blocks, list) or not blocks:
@@ -634,8 +641,8 @@ def validate_probe(doc: object, where: str = "probe result") -> dict:
         at = f"blocks[{i}]"
         if not isinstance(b, dict):
             bad(f"{at} is not an object")
-        if not isinstance(b.get("bytes"), int) or isinstance(b.get("bytes"), bool) or b["bytes"] < 1:
-            bad(f"{at}.bytes must be a positive integer")
+        if not whole_number(b.get("bytes"), 1, MAX_BLOCK):
+            bad(f"{at}.bytes must be a whole number of bytes from 1 to {MAX_BLOCK}")
         if b.get("source") not in ("model", "tempfile"):
             bad(f"{at}.source must be 'model' or 'tempfile'")
         if not isinstance(b.get("label"), str):
@@ -653,7 +660,7 @@ def validate_probe(doc: object, where: str = "probe result") -> dict:
             if not g["verified"] and not g.get("reason"):
                 bad(f"{at}.{r} is unverified but gives no reason")
             n = g.get("runs")
-            if not isinstance(n, int) or isinstance(n, bool) or n < 0:
+            if not whole_number(n, 0, 1 << 31):
                 bad(f"{at}.{r}.runs must be a whole number")
             for k in STAT_KEYS:
                 v = g.get(k, "missing")
@@ -671,17 +678,14 @@ def validate_probe(doc: object, where: str = "probe result") -> dict:
 def load_probe(path: str | os.PathLike) -> dict:
     """Read and validate a file written by ``moerun probe --save``.
 
-    BadOption if the path is not a readable file (it came from an option),
-    BadInput if its content is not a valid moerun-probe/1 document.
+    BadOption if the path is not a readable regular file (it came from an option), BadInput if its content
+    is not a valid moerun-probe/1 document.
     """
-    from .fileio import read_user_file
+    from .fileio import read_json_file
 
     p = Path(path)
-    raw = read_user_file(p, BadOption, "probe file", f" (write one with 'moerun probe --save {p}')")
-    try:
-        doc = json.loads(raw.decode("utf-8"))
-    except (UnicodeDecodeError, json.JSONDecodeError, RecursionError):
-        raise BadInput(f"{p}: not a JSON document (expected the output of 'moerun probe --save')") from None
+    doc = read_json_file(p, BadInput, "probe file", missing=f"{p}: no such probe file (write one with 'moerun probe --save {p}')",
+                         file_error=BadOption)
     return validate_probe(doc, str(p))
 
 

@@ -126,6 +126,39 @@ class QuantSpec:
         )
 
 
+_RECORDED_KEYS = ("format", "method", "expert_bits", "attn_bits", "group", "group_axis", "params_dtype", "hqq")
+
+
+def recorded_quant_problem(config: ModelConfig, metadata: dict) -> str | None:
+    """Where config.json's quant entry disagrees with the one ``moerun quantize`` recorded in the weights file.
+
+    ``metadata``: the file's ``__metadata__``.  Both are written from one setting; an edit to either (a
+    group size changed by hand) makes the engine decode the blobs with the wrong layout.  None when they
+    agree, or when neither says anything.
+    """
+    import json
+
+    cfg = config.extra.get("quant")
+    raw = metadata.get("quant")
+    if raw is None:
+        return None  # a file without the record: nothing to compare (like a file without digests)
+    try:
+        rec = json.loads(raw)
+    except (ValueError, RecursionError):
+        return "the weights file's 'quant' metadata is not JSON"
+    if not isinstance(rec, dict):
+        return "the weights file's 'quant' metadata is not a JSON object"
+    if cfg is None:
+        return f"the weights file records {rec.get('expert_bits')}-bit quantization but config.json has no quant entry"
+    if not isinstance(cfg, dict):
+        return None  # reported by QuantSpec.from_config
+    for key in _RECORDED_KEYS:
+        if cfg.get(key) != rec.get(key):
+            return (f"config.json says {key} {cfg.get(key)!r} but the weights file was quantized with "
+                    f"{key} {rec.get(key)!r}; they must agree")
+    return None
+
+
 def codec_from_config(config: ModelConfig) -> QuantCodec:
     """The codec of a model whose config.json has a ``quant`` entry (validated here)."""
     return QuantCodec(config, QuantSpec.from_config(config))
@@ -655,13 +688,14 @@ def setting_tag(spec: QuantSpec) -> str:
 
 
 def bench_rows_path():
-    from pathlib import Path
+    """The last results of scripts/bench_quant.py, shipped inside the package (moerun/data/quant_bench.json)."""
+    from importlib.resources import files
 
-    return Path(__file__).resolve().parent.parent / "docs" / "quant_bench.json"
+    return files("moerun") / "data" / "quant_bench.json"
 
 
 def _bench_row(source_name: str, spec: QuantSpec) -> tuple[dict, dict] | None:
-    """The row of scripts/bench_quant.py's last run for this setting, if the results file is there."""
+    """The row of scripts/bench_quant.py's last run for this setting, if the package carries its results."""
     import json
 
     path = bench_rows_path()
@@ -704,13 +738,12 @@ def quantize_model(
     import os
     import platform
     import shutil
-    import tempfile
     import time
     from pathlib import Path
 
     from . import __version__
     from .config import expert_tensor_name
-    from .fileio import write_text_atomic
+    from .fileio import atomic_dir, write_text_atomic
     from .modelfile import save_model_file
     from .store import ModelStore
 
@@ -722,18 +755,10 @@ def quantize_model(
         c = store.config
         if c.extra.get("quant"):
             raise BadOption(f"{src} is already quantized; quantize the float model it was made from")
-        if out.exists() and out.resolve() == src.resolve():
-            raise BadOption("the output directory must differ from the source model directory")
-        if out.exists() and not force:
-            raise BadOption(f"{out} already exists; choose a new directory or pass --force to replace it")
-        if out.exists() and not out.is_dir():
-            raise BadOption(f"{out} exists and is not a directory")
-        out.parent.mkdir(parents=True, exist_ok=True)
-        tmp = Path(tempfile.mkdtemp(prefix=".moerun-tmp-", dir=out.parent))
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o777 & ~umask)  # mkdtemp makes it private; the model directory should not be
-        try:
+        # OUT may not be, contain or lie inside the source; it is built beside itself and appears whole
+        # (moerun.fileio.atomic_dir: without force nothing at OUT is replaced, with force the old model is
+        # exchanged for the new one in one step)
+        with atomic_dir(out, force=force, protect=[src], what="OUT") as tmp:
             tensors: dict[str, np.ndarray] = {}
             attn_names = {f"layers.{layer}.attn.{p}" for layer in range(c.n_layers) for p in ATTN_PARTS}
             attn_err = [0.0, 0.0]
@@ -802,17 +827,7 @@ def quantize_model(
             machine = f"{platform.machine()}, {os.cpu_count()} CPUs, Python {platform.python_version()}, numpy {np.__version__}"
             card = _card(report, c, src, command, when, machine, __version__)
             write_text_atomic(tmp / "CARD.md", card)
-            if out.exists():
-                old = Path(tempfile.mkdtemp(prefix=".moerun-tmp-old-", dir=out.parent))
-                os.replace(out, old / "model")
-                os.replace(tmp, out)
-                shutil.rmtree(old, ignore_errors=True)
-            else:
-                os.replace(tmp, out)
-            return report
-        except BaseException:
-            shutil.rmtree(tmp, ignore_errors=True)
-            raise
+        return report
     finally:
         store.close()
 

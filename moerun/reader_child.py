@@ -67,7 +67,6 @@ LINGER_NAP_MAX_S = 0.0008
 # the first block after lingering is short.
 FIRST_BLOCK_S = 0.001
 IDLE_CHECK_S = 0.05  # while blocked, look this often whether the engine's process is still there
-FAULT_AROUND = 64 * 1024  # see moerun.store
 
 
 def ctrl_words(n_slots: int, ring: int) -> int:
@@ -110,7 +109,9 @@ class Server:
         self.fd = model_fd
         self.wake_fd = wake_fd
         self.done_fd = done_fd
-        self.map = mmap.mmap(model_fd, 0, prot=mmap.PROT_READ) if mechanism == "mmap" else None
+        # This process always reads with preadv, whatever the engine's own mechanism: a mapped copy
+        # would die of SIGBUS if the file shrank under it, and nothing is mapped here to keep resident.
+        self.mechanism = mechanism
         self.parent = parent
         self.r0 = ring_base(n_slots)
         self.pending: list[Request] = []
@@ -160,21 +161,16 @@ class Server:
 
     # ------------------------------------------------------------------ reads
     def read(self, slot: int, off: int, n: int, at: int) -> bool:
-        """Read file bytes [off, off + n) into the slot at byte ``at``."""
+        """Read file bytes [off, off + n) into the slot at byte ``at`` (a short read is a failure)."""
         base = slot * self.slot_size + at
         dst = self.pool[base : base + n]
         try:
-            if self.map is None:
-                return os.preadv(self.fd, [dst], off) == n
-            if off + n > len(self.map) or off + n > os.fstat(self.fd).st_size:
-                return False  # a shrunk file: touching pages past its end would kill this process
-            dst[:] = memoryview(self.map)[off : off + n]
-            lo = off - off % FAULT_AROUND
-            hi = min(len(self.map), -(-(off + n) // FAULT_AROUND) * FAULT_AROUND)
-            try:
-                self.map.madvise(mmap.MADV_DONTNEED, lo, hi - lo)
-            except (OSError, ValueError):
-                pass
+            got = 0
+            while got < n:
+                k = os.preadv(self.fd, [dst[got:]], off + got)
+                if k == 0:
+                    return False  # the file ended early (it shrank)
+                got += k
             return True
         except (OSError, ValueError):
             return False

@@ -600,8 +600,11 @@ def simulate_prefetch(
 # ---------------------------------------------------------------------------- the whole report
 
 
+MAX_QUOTAS = 4096
+
+
 def parse_slots(text: str) -> list[int]:
-    """``1,2,4`` or ``1-8`` (or a mix) into a sorted list of quotas."""
+    """``1,2,4`` or ``1-8`` (or a mix) into a sorted list of quotas (at most MAX_QUOTAS of them)."""
     out: set[int] = set()
     for part in str(text).split(","):
         part = part.strip()
@@ -612,17 +615,21 @@ def parse_slots(text: str) -> list[int]:
                 lo, hi = (int(x) for x in part.split("-", 1))
                 if lo > hi:
                     raise ValueError
+                if hi - lo >= MAX_QUOTAS:  # refused before a range of 10^8 quotas is ever built
+                    raise BadOption(f"--slots range {part} holds {hi - lo + 1} quotas; at most {MAX_QUOTAS} can be replayed")
                 out.update(range(lo, hi + 1))
             else:
                 out.add(int(part))
         except ValueError:
             raise BadOption(f"--slots takes whole numbers and ranges like 1,2,4 or 1-8, got {text!r}") from None
+        if len(out) > MAX_QUOTAS:
+            break
     if not out:
         raise BadOption("--slots is empty")
     if min(out) < 1:
         raise BadOption("--slots must be 1 or more per layer")
-    if len(out) > 4096:
-        raise BadOption("--slots lists more than 4096 quotas")
+    if len(out) > MAX_QUOTAS:
+        raise BadOption(f"--slots lists more than {MAX_QUOTAS} quotas")
     return sorted(out)
 
 

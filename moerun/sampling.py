@@ -16,9 +16,13 @@ class Sampling:
     seed: int = 0
 
     def __post_init__(self):
+        for name in ("temperature", "top_p"):
+            v = getattr(self, name)
+            if isinstance(v, bool) or not isinstance(v, (int, float, np.floating, np.integer)):
+                raise BadOption(f"{name.replace('_', '-')} takes a number, got {v!r}")
         if not (self.temperature >= 0 and np.isfinite(self.temperature)):
             raise BadOption(f"temperature must be 0 (greedy) or positive, got {self.temperature}")
-        if isinstance(self.seed, bool) or not isinstance(self.seed, int) or self.seed < 0:
+        if isinstance(self.seed, bool) or not isinstance(self.seed, int) or not 0 <= self.seed < 2**63:
             raise BadOption(f"seed must be a whole number, 0 or more, got {self.seed!r}")
         if not 0 < self.top_p <= 1:
             raise BadOption(f"top-p must be in (0, 1], got {self.top_p}")
@@ -32,9 +36,15 @@ class Sampler:
     def __call__(self, logits: np.ndarray) -> int:
         if self.s.temperature == 0:
             return int(np.argmax(logits))
-        z = logits.astype(np.float64) / self.s.temperature
-        p = np.exp(z - z.max())
-        p /= p.sum()
+        with np.errstate(over="ignore", invalid="ignore"):
+            z = logits.astype(np.float64) / self.s.temperature
+            p = np.exp(z - z.max())
+            p /= p.sum()
+        if not np.isfinite(p).all():
+            # a temperature so small that logits / temperature overflows (5e-324, say): the limit of
+            # sampling as the temperature goes to 0, which is choosing among the largest logits
+            top = logits == logits.max()
+            p = top / top.sum()
         if self.s.top_p < 1:
             order = np.argsort(-p, kind="stable")
             cum = np.cumsum(p[order])

@@ -2,7 +2,7 @@
 
 The scoring rule (docs/quant.md, "Scoring"):
 
-* ``ids = tokenizer.encode(text)`` without a leading bos token.
+* ``ids = tokenizer.encode(text)`` without a leading bos token (``encode_array``: the same ids).
 * The ids are cut into consecutive runs of ``max_seq_len - 1`` tokens (the
   last run may be shorter); each window is ``[bos] + run``, so every window
   fits the context and every token of the text is predicted exactly once.
@@ -64,16 +64,27 @@ class Score:
         }
 
 
+NLL_ROWS = 16  # rows of logits widened to float64 at a time: the loss adds 16 x vocab x 8 bytes, not the window's
+
+
 def window_nll(logits: np.ndarray, ids: np.ndarray) -> tuple[float, int]:
-    """Summed negative log-likelihood of ids[1:] given logits[:-1] (float64), and the count."""
+    """Summed negative log-likelihood of ids[1:] given logits[:-1] (float64), and the count.
+
+    Computed ``NLL_ROWS`` rows at a time, so the float64 temporaries stay a small fixed size whatever the
+    window: scoring stays inside the memory cap (the logits themselves are part of the budget's scratch).
+    """
     ids = np.asarray(ids).reshape(-1)
-    if ids.size < 2:
+    n = ids.size - 1
+    if n < 1:
         return 0.0, 0
-    z = np.asarray(logits[: ids.size - 1], np.float64)
-    m = z.max(axis=-1, keepdims=True)
-    lse = m[:, 0] + np.log(np.exp(z - m).sum(axis=-1))
-    picked = z[np.arange(ids.size - 1), ids[1:]]
-    return float(np.sum(lse - picked)), int(ids.size - 1)
+    total = 0.0
+    for r0 in range(0, n, NLL_ROWS):
+        z = np.asarray(logits[r0 : min(n, r0 + NLL_ROWS)], np.float64)
+        m = z.max(axis=-1, keepdims=True)
+        lse = m[:, 0] + np.log(np.exp(z - m).sum(axis=-1))
+        picked = z[np.arange(z.shape[0]), ids[r0 + 1 : r0 + 1 + z.shape[0]]]
+        total += float(np.sum(lse - picked))
+    return total, int(n)
 
 
 def text_windows(ids: Sequence[int] | np.ndarray, context: int, bos: int | None) -> list[np.ndarray]:
@@ -94,8 +105,7 @@ def score_windows(engine, windows: Iterable, on_window: Callable[[int], None] | 
     for w in windows:
         w = np.asarray(w, np.int64).reshape(-1)
         t0 = time.monotonic_ns()
-        logits = engine.logits(w)
-        s, k = window_nll(logits, w)
+        s, k = window_nll(engine.logits(w), w)  # this window's logits are freed before the next window's are made
         ns += time.monotonic_ns() - t0
         total += s
         n += k
@@ -106,17 +116,20 @@ def score_windows(engine, windows: Iterable, on_window: Callable[[int], None] | 
     return Score(total, n, count, tokens, ns)
 
 
-def score_text(engine, text: str, max_tokens: int | None = None, on_window=None, plain: bool = False) -> Score:
+def score_text(engine, text: str, max_tokens: int | None = None, on_window=None, plain: bool = False,
+               ids: np.ndarray | None = None) -> Score:
     """Perplexity of ``text`` (the first ``max_tokens`` tokens of it, if given).
 
     ``plain``: windows are plain runs of max_seq_len tokens whose first token
     is not predicted (no bos inserted; the rule of the bundled model's card).
+    ``ids``: the text's ids when the caller has them already (``Tokenizer.encode_array``).
     """
     if engine.tokenizer is None:
         raise BadOption("scoring text needs the model's tokenizer")
-    if max_tokens is not None and max_tokens < 1:
-        raise BadOption(f"--max-tokens must be at least 1, got {max_tokens}")
-    ids = engine.tokenizer.encode(text, bos=False)
+    if max_tokens is not None and (isinstance(max_tokens, bool) or not isinstance(max_tokens, int) or max_tokens < 1):
+        raise BadOption(f"--max-tokens must be a whole number of at least 1, got {max_tokens!r}")
+    if ids is None:
+        ids = engine.tokenizer.encode_array(text, max_tokens)
     if max_tokens is not None:
         ids = ids[:max_tokens]
     c = engine.config
@@ -128,4 +141,6 @@ def score_text(engine, text: str, max_tokens: int | None = None, on_window=None,
 
 def n_windows(n_tokens: int, context: int, bos: int | None) -> int:
     per = context - 1 if bos is not None else context
+    if context < 2 or per < 1:
+        raise BadOption(f"a context of {context} tokens leaves nothing to predict")
     return -(-n_tokens // per)

@@ -16,6 +16,8 @@ of the file and then releases the copied range of the map with
 
 from __future__ import annotations
 
+import ctypes
+import errno
 import mmap
 import os
 import time
@@ -27,7 +29,7 @@ import numpy as np
 from .clock import wait_until
 from .codec import Codec, codec_for, packed_dense_tensors
 from .config import ModelConfig, expert_tensor_name
-from .errors import BadModelFile, PageInError
+from .errors import BadModelFile, BadOption, PageInError
 from .link import Link
 from .modelfile import NUMPY_DTYPES, Header, TensorInfo, read_header
 
@@ -44,6 +46,51 @@ class ExpertRange:
     expert: int
     start: int
     nbytes: int
+
+
+class _Iovec(ctypes.Structure):
+    _fields_ = [("iov_base", ctypes.c_void_p), ("iov_len", ctypes.c_size_t)]
+
+
+_vm_readv = None
+
+
+def _process_vm_readv():
+    """process_vm_readv(2) from the C library, or False where it is missing."""
+    global _vm_readv  # a cache that is safe to drop
+    if _vm_readv is None:
+        try:
+            fn = ctypes.CDLL(None, use_errno=True).process_vm_readv
+            fn.argtypes = [ctypes.c_int, ctypes.POINTER(_Iovec), ctypes.c_ulong, ctypes.POINTER(_Iovec), ctypes.c_ulong, ctypes.c_ulong]
+            fn.restype = ctypes.c_ssize_t
+            _vm_readv = fn
+        except (OSError, AttributeError):
+            _vm_readv = False
+    return _vm_readv
+
+
+def safe_copy(src_addr: int, dst, nbytes: int) -> int:
+    """Copy ``nbytes`` from address ``src_addr`` of this process (a mapped file) into the buffer ``dst``.
+
+    The kernel copies (process_vm_readv on this very process), so a page past the end of a file that shrank
+    makes the call stop short and return fewer bytes, where a plain memory copy would die of SIGBUS.
+    Returns the bytes copied; OSError where the system refuses the call.
+    """
+    fn = _process_vm_readv()
+    if not fn:
+        raise OSError(errno.ENOSYS, "process_vm_readv is not available")
+    view = np.frombuffer(memoryview(dst).cast("B"), np.uint8)
+    if view.size < nbytes or not view.flags.writeable:
+        raise ValueError(f"the destination holds {view.size} writable bytes, fewer than {nbytes}")
+    local = _Iovec(view.ctypes.data, nbytes)
+    remote = _Iovec(src_addr, nbytes)
+    got = fn(os.getpid(), ctypes.byref(local), 1, ctypes.byref(remote), 1, 0)
+    if got < 0:
+        err = ctypes.get_errno()
+        if err == errno.EFAULT:  # nothing could be copied: the first page is already past the end
+            return 0
+        raise OSError(err, os.strerror(err))
+    return int(got)
 
 
 def pread_into(fd: int, offset: int, dst) -> None:
@@ -78,6 +125,7 @@ class ModelStore:
         self.fault_hook = None  # test hook: called as hook(layer, expert) before each read
         self._fd = os.open(self.path, os.O_RDONLY)
         self._map: mmap.mmap | None = None
+        self._map_addr = 0
         self.dense: dict[str, np.ndarray] = {}
         self._dense_nbytes = 0
 
@@ -200,7 +248,20 @@ class ModelStore:
         if mechanism not in MECHANISMS:
             raise ValueError(f"unknown page-in mechanism {mechanism!r}")
         if mechanism == "mmap" and self._map is None:
-            self._map = mmap.mmap(self._fd, 0, prot=mmap.PROT_READ)
+            m = mmap.mmap(self._fd, 0, prot=mmap.PROT_READ)
+            view = np.frombuffer(m, np.uint8)
+            self._map_addr = view.ctypes.data  # valid while the map is open; the view is dropped so close() works
+            del view
+            probe = np.empty(1, np.uint8)
+            try:  # the copy must be SIGBUS-safe; where the kernel refuses the safe copy, refuse mmap
+                safe_copy(self._map_addr, probe, 1)
+            except OSError as e:
+                m.close()
+                raise BadOption(
+                    f"page-in mechanism 'mmap' is not available here: its SIGBUS-safe copy (process_vm_readv) "
+                    f"is refused ({e.strerror or e}); use 'pread'"
+                ) from None
+            self._map = m
         self.mechanism = mechanism
 
     @property
@@ -249,7 +310,12 @@ class ModelStore:
                 if m is None or r.start + r.nbytes > len(m) or r.start + r.nbytes > os.fstat(self._fd).st_size:
                     # touching mapped pages past the end of a file that shrank would kill the process (SIGBUS)
                     raise PageInError(f"{self.path}: expert {expert} of layer {layer} lies outside the file (file changed while open?)")
-                np.copyto(dst[: r.nbytes], np.frombuffer(m, np.uint8, r.nbytes, r.start))
+                # the kernel copies: a file that shrinks during the copy stops it short (no SIGBUS)
+                got = safe_copy(self._map_addr + r.start, dst, r.nbytes)
+                if got != r.nbytes or r.start + r.nbytes > os.fstat(self._fd).st_size:  # (the last page reads zeros past the end)
+                    raise PageInError(
+                        f"{self.path}: file ended while reading expert {expert} of layer {layer} (file changed while open?)"
+                    )
                 # Release the copied range, widened to the kernel's fault-around windows:
                 # a read fault maps the cached pages of the whole aligned window around it,
                 # and those would otherwise stay in the resident set, one window per expert.

@@ -7,6 +7,30 @@ from .units import fmt_bytes, fmt_rate
 
 NOT_ADVICE = "text from a tiny model trained on invented data; not advice"
 RANDOM_NOTE = "random weights: routing is meaningless and the text is noise"
+# Peak resident-set growth may exceed --mem-cap by this much before a run is flagged: the interpreter's own
+# small allocations (token lists, the routing recorder, numpy's per-call buffers) that no budget line counts
+# (docs/offload.md, "What the cap covers").
+CAP_ALLOWANCE_BYTES = 2 << 20
+
+
+def cap_check(engine) -> dict | None:
+    """Measured peak resident-set growth against the cap: None without a cap."""
+    cap = engine.budget.cap
+    if cap is None:
+        return None
+    growth = engine.memwatch.peak_growth()
+    return {"cap_bytes": cap, "allowance_bytes": CAP_ALLOWANCE_BYTES, "peak_rss_growth_bytes": growth,
+            "exceeded": growth > cap + CAP_ALLOWANCE_BYTES}
+
+
+def cap_warning(engine) -> str | None:
+    """One line for stderr when the measured peak exceeded the cap (plus the allowance), else None."""
+    chk = cap_check(engine)
+    if chk is None or not chk["exceeded"]:
+        return None
+    over = chk["peak_rss_growth_bytes"] - chk["cap_bytes"]
+    return (f"peak resident-set growth {fmt_bytes(chk['peak_rss_growth_bytes'])} exceeded the memory cap "
+            f"{fmt_bytes(chk['cap_bytes'])} by {fmt_bytes(over)} (allowance {fmt_bytes(CAP_ALLOWANCE_BYTES)})")
 
 
 def model_note(config) -> str:
@@ -31,8 +55,14 @@ def run_json(engine, gen=None) -> dict:
             }
         )
     doc.update(st)
+    if gen is not None and not gen.decode_steps:
+        doc["decode_tok_s"] = None  # no decode step was timed: no speed to report
     link = engine.options.get("link_speed")
     doc["link_emulated"] = link is not None
+    chk = cap_check(engine)
+    if chk is not None:
+        doc["cap_exceeded"] = chk["exceeded"]
+        doc["cap_allowance_bytes"] = chk["allowance_bytes"]
     if gen is not None and "pool" in st and gen.decode_ns + gen.prefill_ns:
         doc["stall_share"] = st["pool"]["stall_ns"] / (gen.decode_ns + gen.prefill_ns)
     return doc
@@ -42,15 +72,19 @@ def run_text(engine, gen=None) -> str:
     doc = run_json(engine, gen)
     lines = []
     if gen is not None:
+        speed = (f"decode {doc['decode_tok_s']:.0f} tok/s" if gen.decode_steps
+                 else "no decode step timed (the last new token comes from prefill)" if gen.new_ids else "no decode step")
         lines.append(
             f"prompt {doc['prompt_tokens']} tok, prefill {doc['prefill_tok_s']:.0f} tok/s | "
-            f"new {doc['new_tokens']} tok, decode {doc['decode_tok_s']:.0f} tok/s"
+            f"new {doc['new_tokens']} tok, {speed}"
             + (" | stopped: context full" if gen.stop == "context-full" else "")
         )
     b = engine.budget
     link = engine.options.get("link_speed")
     if link is not None:
         lines.append(f"link: {fmt_rate(link)} (emulated)")
+    if engine.options.get("cold"):
+        lines.append("cold start: the model file's pages were dropped from the OS page cache before the run")
     if b.cap is not None:
         rows = [[name, fmt_bytes(n)] for name, n in b.rows()]
         rows.append(["total / cap", f"{fmt_bytes(b.total)} / {fmt_bytes(b.cap)}"])

@@ -21,14 +21,12 @@ Two writers:
 
 from __future__ import annotations
 
-import contextlib
 import errno
 import hashlib
 import json
 import os
 import shutil
 import struct
-import tempfile
 import time
 import zlib
 from collections.abc import Callable, Iterable
@@ -37,8 +35,8 @@ from pathlib import Path
 import numpy as np
 
 from .config import FORMAT_TAG, ModelConfig
-from .errors import BadOption
-from .fileio import atomic_path, write_text_atomic
+from .errors import BadOption, OutputError
+from .fileio import atomic_dir, atomic_path, check_output_dir, remove_stale_temporaries, write_text_atomic
 from .modelfile import DIGEST_ALGO, DIGEST_KEY, DTYPE_SIZES, digest, save_model_file, storage_order
 
 RANDOM_NOTE = "random weights: routing is meaningless"
@@ -134,7 +132,7 @@ def write_model(out_dir: str | Path, config: ModelConfig, seed: int = 0, tensors
     need = estimated_bytes(config) + (1 << 20)
     free = shutil.disk_usage(out).free
     if need > free:
-        raise BadOption(f"{out}: the model needs {need} bytes but only {free} are free on that disk")
+        raise OutputError(f"{out}: the model needs {need} bytes but only {free} are free on that disk")
     tensors = tensors if tensors is not None else random_tensors(config, seed)
     save_model_file(out / "model.safetensors", tensors, {"note": RANDOM_NOTE} if config.extra.get("synthetic") else None)
     write_text_atomic(out / "config.json", json.dumps(config.to_json(), indent=2) + "\n")
@@ -304,42 +302,18 @@ def card_text(config: ModelConfig, seed: int, file_bytes: int, command: str | No
     return "\n".join(lines) + "\n"
 
 
-def _umask() -> int:
-    try:
-        for line in Path("/proc/self/status").read_text().splitlines():
-            if line.startswith("Umask:"):
-                return int(line.split()[1], 8)
-    except (OSError, ValueError, IndexError):
-        pass
-    return 0o022
-
-
-def _ordinary_modes(d: Path) -> None:
-    """Temporary names are created private (0700/0600); give the finished model the modes of ordinary files."""
-    mask = _umask()
-    for f in d.iterdir():
-        os.chmod(f, 0o666 & ~mask)
-    os.chmod(d, 0o777 & ~mask)
-
-
-def _existing_ancestor(p: Path) -> Path:
-    p = p.absolute()
-    while not p.exists():
-        p = p.parent
-    return p
-
-
 def synthesize(out_dir: str | os.PathLike, config: ModelConfig, seed: int = 0,
-               progress: Progress | None = None, command: str | None = None) -> dict:
+               progress: Progress | None = None, command: str | None = None, force: bool = False) -> dict:
     """Write a complete model directory at ``out_dir`` with streamed random weights; return a summary.
 
-    Refuses (BadOption) when ``out_dir`` exists and is not empty, or when the
-    disk lacks the space, before writing anything.  On any failure or
-    interruption nothing is left under ``out_dir``.
+    ``out_dir`` follows moerun.fileio's rules for directory outputs: its parent must exist; an existing
+    empty directory is taken; an existing model directory is replaced only with ``force``; anything else
+    is refused (OutputError), as is a disk without the space, before anything is written.  On any failure
+    or interruption nothing is left under ``out_dir``; a killed run's temporary directory is removed by
+    the next run to the same ``out_dir``.
     """
     out = Path(out_dir)
-    if out.exists() and (not out.is_dir() or any(out.iterdir())):
-        raise BadOption(f"{out}: already exists and is not an empty directory; choose a new directory")
+    check_output_dir(out, force, what="OUT", allow_empty=True)
     dtype = config.dtype
     if dtype not in NUMPY_OF:
         raise BadOption(f"weights dtype {dtype!r} cannot be synthesized (F32 or F16)")
@@ -350,56 +324,29 @@ def synthesize(out_dir: str | os.PathLike, config: ModelConfig, seed: int = 0,
     config_text = json.dumps(config.to_json(), indent=2) + "\n"
     card = card_text(config, seed, file_bytes, command)
     need = file_bytes + len(tokenizer) + len(config_text) + len(card) + (1 << 20)
-    anchor = _existing_ancestor(out.parent)
-    free = shutil.disk_usage(anchor).free
+    remove_stale_temporaries(out)  # a killed run's hundreds of MiB count as free space
+    free = shutil.disk_usage(out.absolute().parent).free
     if need > free:
-        raise BadOption(
+        raise OutputError(
             f"{out}: the model needs {need:,} bytes ({need / 2**30:.2f} GiB) but only {free:,} bytes "
             f"({free / 2**30:.2f} GiB) are free on that disk; nothing was written"
         )
-    made: list[Path] = []
-    p = out.absolute().parent
-    while not p.exists():
-        made.append(p)
-        p = p.parent
     t0 = time.monotonic()
-    tmp: Path | None = None
-    try:
-        out.absolute().parent.mkdir(parents=True, exist_ok=True)
-        tmp = Path(tempfile.mkdtemp(prefix=f".{out.name}.moerun-tmp-", dir=out.absolute().parent))
+    shapes = {n: s for n, _, s in layout}
 
-        shapes = {n: s for n, _, s in layout}
+    def produce(name: str):
+        return tensor_chunks(name, shapes[name], dtype, seed, config.d_model)
 
-        def produce(name: str):
-            return tensor_chunks(name, shapes[name], dtype, seed, config.d_model)
-
+    with atomic_dir(out, force=force, what="OUT", allow_empty=True) as tmp:
         try:
             write_tensors_streaming(tmp / "model.safetensors", layout, produce, metadata, progress)
-        except OSError as e:
-            if e.errno in (errno.ENOSPC, errno.EDQUOT):
-                raise BadOption(f"{out}: the disk filled up while writing the model; nothing was kept") from None
+        except OutputError as e:
+            if e.errno in (errno.ENOSPC, errno.EDQUOT, errno.EFBIG):
+                raise OutputError(f"{out}: the disk filled up while writing the model; nothing was kept") from None
             raise
         write_text_atomic(tmp / "config.json", config_text)
         write_text_atomic(tmp / "tokenizer.json", tokenizer)
         write_text_atomic(tmp / "CARD.md", card)
-        _ordinary_modes(tmp)
-        if out.exists():
-            out.rmdir()  # empty, checked above
-        os.rename(tmp, out)
-        tmp = None
-        with contextlib.suppress(OSError):
-            dfd = os.open(out.absolute().parent, os.O_RDONLY)
-            try:
-                os.fsync(dfd)
-            finally:
-                os.close(dfd)
-    except BaseException:
-        if tmp is not None:
-            shutil.rmtree(tmp, ignore_errors=True)
-        for d in made:
-            with contextlib.suppress(OSError):
-                d.rmdir()
-        raise
     expert_nbytes = DTYPE_SIZES[dtype] * sum(int(np.prod(s)) for s in config.expert_shapes().values())
     return {
         "model_dir": str(out),

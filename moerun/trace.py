@@ -135,11 +135,14 @@ class Recorder:
             a = stack(rows, tail, dt)
             if a is not None and a.shape[0] == n:
                 events[name] = a
-        meta = {"prefill_tokens": self.prefill_tokens, **meta}
+        # a run stopped inside prefill has routed its prompt through some layers only: the trace keeps the
+        # tokens every layer saw, all of them prefill
+        meta = {"prefill_tokens": min(self.prefill_tokens, n), **meta}
         return Trace(experts, weights, guesses, meta, events, probs)
 
 
-def write_trace(path: str | Path, trace: Trace) -> None:
+def write_trace(path: str | Path, trace: Trace, force: bool = True, inputs=(), what: str = "") -> None:
+    """Write ``trace`` to ``path`` (moerun.fileio rules: ``force`` to replace a file, never an input or a device)."""
     arrays = {"experts": trace.experts, "meta": np.array(json.dumps(trace.meta))}
     if trace.weights is not None:
         arrays["weights"] = trace.weights
@@ -148,7 +151,7 @@ def write_trace(path: str | Path, trace: Trace) -> None:
     if trace.probs is not None:
         arrays["probs"] = trace.probs
     arrays.update(trace.events)
-    with atomic_path(path, suffix=".npz") as tmp:
+    with atomic_path(path, suffix=".npz", force=force, inputs=inputs, what=what) as tmp:
         with open(tmp, "wb") as f:
             np.savez_compressed(f, **arrays)
 
@@ -172,16 +175,37 @@ def _not_a_zip(data: bytes) -> str | None:
 
 
 MAX_EXPERTS = 1 << 20  # more experts per layer than any model has; a guard against absurd metadata
+TRACE_FILE_LIMIT = 1 << 34  # bytes of a trace file read into memory (16 GiB)
+# The arrays of an archive may expand to at most this many times the archive's size, or EXPANSION_FLOOR
+# bytes, whichever is more: a real trace compresses 2-10 times (routing ids, timings), while a small
+# archive of zeros can claim 1000 times its size (deflate's limit) and make the reader allocate it.
+MAX_EXPANSION = 100
+EXPANSION_FLOOR = 64 << 20
 
 
-def _check_member_sizes(path: Path, data: bytes) -> None:
-    """Refuse members whose array header claims more bytes than the member holds, before numpy allocates them."""
+def _check_members(path: Path, data: bytes) -> None:
+    """Refuse, before numpy allocates anything: encrypted members, members that expand far beyond the archive's
+    size (or beyond free memory), and members whose array header claims more bytes than the member holds."""
     try:
         zf = zipfile.ZipFile(io.BytesIO(data))
     except (zipfile.BadZipFile, ValueError, NotImplementedError):
         return  # np.load reports it
     with zf:
-        for info in zf.infolist():
+        infos = zf.infolist()
+        for info in infos:
+            if info.flag_bits & 0x1:  # bit 0 of the general purpose flag: encrypted (PKWARE APPNOTE.TXT 4.4.4)
+                raise BadTrace(f"{path}: member {info.filename!r} is encrypted; a trace archive holds plain arrays")
+        total = sum(info.file_size for info in infos)
+        allowed = max(MAX_EXPANSION * len(data), EXPANSION_FLOOR)
+        if total > allowed:
+            raise BadTrace(
+                f"{path}: its arrays would expand to {total:,} bytes from a {len(data):,}-byte archive "
+                f"(more than {MAX_EXPANSION} times its size); refusing to unpack it"
+            )
+        free = _available_memory()
+        if free is not None and total > free:
+            raise BadTrace(f"{path}: its arrays need {total:,} bytes, more than the {free:,} bytes of memory available")
+        for info in infos:
             if not info.filename.endswith(".npy"):
                 continue
             try:
@@ -203,19 +227,25 @@ def _check_member_sizes(path: Path, data: bytes) -> None:
                 )
 
 
+def _available_memory() -> int | None:
+    try:
+        import psutil
+
+        return int(psutil.virtual_memory().available)
+    except Exception:  # noqa: BLE001 - no figure: no check
+        return None
+
+
 def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
     """Read and validate a trace file; raise BadTrace with one clear line."""
+    from .fileio import read_user_file
+
     path = Path(path)
-    try:
-        data = path.read_bytes()
-    except FileNotFoundError:
-        raise BadTrace(f"{path}: no such trace file") from None
-    except OSError as e:
-        raise BadTrace(f"{path}: cannot read ({e.strerror})") from None
+    data = read_user_file(path, BadTrace, "trace file", limit=TRACE_FILE_LIMIT)
     kind = _not_a_zip(data)
     if kind is not None:
         raise BadTrace(f"{path}: not an .npz archive ({kind}); a trace is a zip of named numpy arrays, see docs/traces.md")
-    _check_member_sizes(path, data)
+    _check_members(path, data)
     try:
         z = np.load(io.BytesIO(data), allow_pickle=False)
         if not isinstance(z, np.lib.npyio.NpzFile):
@@ -247,6 +277,10 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
             meta = None
         if not isinstance(meta, dict):
             raise BadTrace(f"{path}: 'meta' must be a 0-d string holding a JSON object")
+        try:
+            json.dumps(meta, ensure_ascii=False).encode("utf-8")
+        except (UnicodeEncodeError, RecursionError):
+            raise BadTrace(f"{path}: 'meta' holds text that is not valid UTF-8") from None
     experts = experts.astype(np.int64)
     if (experts < PAD).any():
         raise BadTrace(f"{path}: 'experts' holds negative ids other than the padding value {PAD}")

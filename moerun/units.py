@@ -24,9 +24,13 @@ _SIZE_RE = re.compile(r"^\s*([0-9]*\.?[0-9]+(?:[eE][+-]?[0-9]+)?)\s*([a-zA-Z]*)\
 
 def parse_size(text: str | int, what: str = "size") -> int:
     """Parse ``48MiB``, ``1.5GB``, ``4096`` into bytes (decimal kB/MB/GB, binary KiB/MiB/GiB)."""
+    if isinstance(text, bool) or not isinstance(text, (int, str)):
+        raise BadOption(f"{what} takes bytes (a whole number) or a size such as 48MiB, got {text!r}")
     if isinstance(text, int):
         if text < 0:
             raise BadOption(f"{what} must not be negative, got {text}")
+        if text > 2**62:
+            raise BadOption(f"{what} {text} is out of range")
         return text
     m = _SIZE_RE.match(str(text))
     if not m:
@@ -45,13 +49,20 @@ def parse_size(text: str | int, what: str = "size") -> int:
 
 def parse_rate(text: str | float, what: str = "rate") -> float:
     """Parse ``2GB/s``, ``500MiB/s`` or plain bytes per second into bytes per second (> 0)."""
+    if isinstance(text, bool):
+        raise BadOption(f"{what} takes a rate such as 2GB/s or 500MiB/s, got {text!r}")
     if isinstance(text, (int, float)):
         value = float(text)
+        if value != value or value in (float("inf"), float("-inf")):
+            raise BadOption(f"{what} must be a finite rate, got {text!r}")
     else:
         s = str(text).strip()
         if s.lower().endswith("/s"):
             s = s[:-2]
-        value = float(parse_size(s, what))
+        try:
+            value = float(parse_size(s, what))
+        except BadOption:
+            raise BadOption(f"cannot read {what} {text!r}: use forms like 2GB/s, 500MiB/s or 1e9 (bytes per second)") from None
     if not value > 0:
         raise BadOption(f"{what} must be greater than zero, got {text!r}")
     return value
@@ -66,9 +77,35 @@ def fmt_bytes(n: float) -> str:
     return f"{int(n)} B"
 
 
+def fmt_exact(n: int) -> str:
+    """A size to the byte, then in binary units: ``12374528 bytes (11.80 MiB)``, so two close sizes never read alike
+    (the plain digits can be pasted back as an option)."""
+    n = int(n)
+    for unit, factor in (("GiB", 1024**3), ("MiB", 1024**2), ("KiB", 1024)):
+        if abs(n) >= factor:
+            return f"{n} bytes ({n / factor:.2f} {unit})"
+    return f"{n} bytes"
+
+
 def fmt_rate(bytes_per_s: float) -> str:
     return f"{bytes_per_s / 1e9:.2f} GB/s"
 
 
 def fmt_ms(ns: float) -> str:
     return f"{ns / 1e6:.2f} ms"
+
+
+def whole_number(v, lo: int = 0, hi: int = 2**62) -> bool:
+    """A JSON value that is a whole number in [lo, hi] (not a bool, not 1.5, not 10**400)."""
+    return isinstance(v, int) and not isinstance(v, bool) and lo <= v <= hi
+
+
+def finite_number(v, lo: float = 0.0, hi: float = 1e30) -> bool:
+    """A JSON value that is a finite number in [lo, hi] (an integer too large for a float is refused)."""
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        return False
+    try:
+        f = float(v)
+    except OverflowError:
+        return False
+    return f == f and lo <= f <= hi

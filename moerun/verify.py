@@ -36,12 +36,14 @@ class Outcome:
 
 
 def default_settings(min_cap: int, full_cap: int, slot: int) -> list[Setting]:
+    """The default set: every online policy at the smallest cap (moerun.policies.names), then other caps,
+    a shared pool, prefetch and an emulated link."""
+    from . import policies
+
     mid = (min_cap + full_cap) // 2
     return [
-        Setting("smallest cap, lru", {"mem_cap": min_cap, "evict": "lru"}),
+        *(Setting(f"smallest cap, {name}", {"mem_cap": min_cap, "evict": name}) for name in policies.names(online_only=True)),
         Setting("middle cap, lru", {"mem_cap": mid, "evict": "lru"}),
-        Setting("smallest cap, lfu", {"mem_cap": min_cap, "evict": "lfu"}),
-        Setting("smallest cap, fifo", {"mem_cap": min_cap, "evict": "fifo"}),
         Setting("smallest cap, prefetch 2 x 2 layers", {"mem_cap": min_cap, "prefetch": 2, "lookahead": 2}),
         Setting("middle cap, shared pool, prefetch 1", {"mem_cap": mid, "split": "shared", "prefetch": 1}),
         Setting("smallest cap, prefetch 2, link 1 GB/s (emulated)", {"mem_cap": min_cap, "prefetch": 2, "link_speed": 1e9}),

@@ -21,7 +21,7 @@ imported, and threadpoolctl limits the pools too when it is installed.
     python scripts/bench_quant.py [--model DIR] [--json] [--write-docs]
 
 --write-docs replaces the table in docs/quant.md (between the bench markers)
-and writes docs/quant_bench.json, which `moerun quantize` quotes in its cards.
+and writes moerun/data/quant_bench.json (shipped in the package), which `moerun quantize` quotes in its cards.
 """
 
 from __future__ import annotations
@@ -253,7 +253,7 @@ def main() -> int:
     ap.add_argument("--link-speed", default="1GB/s",
                     help="also decode with page-in over an emulated link of this rate, best of 2 runs (default 1GB/s; 0 = skip)")
     ap.add_argument("--json", action="store_true", help="print one JSON document on stdout")
-    ap.add_argument("--write-docs", action="store_true", help="update docs/quant.md and docs/quant_bench.json")
+    ap.add_argument("--write-docs", action="store_true", help="update docs/quant.md and moerun/data/quant_bench.json")
     args = ap.parse_args()
     src = Path(args.model) if args.model else default_model_dir()
     text = read_text_file(src / "heldout.txt")
@@ -324,7 +324,7 @@ def main() -> int:
 def write_docs(doc: dict, t1: str, t2: str) -> None:
     from moerun.fileio import write_text_atomic
 
-    write_text_atomic(ROOT / "docs" / "quant_bench.json", json.dumps(doc, indent=2) + "\n")
+    write_text_atomic(ROOT / "moerun" / "data" / "quant_bench.json", json.dumps(doc, indent=2) + "\n")
     path = ROOT / "docs" / "quant.md"
     md = path.read_text(encoding="utf-8")
     if START not in md or END not in md:

@@ -5,10 +5,13 @@ The repository root goes first on sys.path so the suite runs without installing 
 
 from __future__ import annotations
 
+import contextlib
 import json
 import os
 import shutil
+import stat
 import struct
+import subprocess
 import sys
 from pathlib import Path
 
@@ -28,6 +31,26 @@ from moerun.synth import synth_config, write_model  # noqa: E402
 PEBBLE = ROOT / "tiny_models" / "pebble"
 SCREE = ROOT / "tiny_models" / "scree"  # many small experts and a shared one (its CARD.md)
 BUNDLED = {"pebble": PEBBLE, "scree": SCREE}
+
+
+# ---------------------------------------------------------------------------- the cache directory
+
+
+@pytest.fixture(scope="session", autouse=True)
+def private_cache_dir(tmp_path_factory):
+    """Every test (and every process a test starts) caches into a temporary directory, never the user's own.
+
+    moerun caches calibration files under $XDG_CACHE_HOME/moerun (moerun.plan); the variable is set for the
+    whole session so child processes inherit it.
+    """
+    cache = tmp_path_factory.mktemp("cache")
+    old = os.environ.get("XDG_CACHE_HOME")
+    os.environ["XDG_CACHE_HOME"] = str(cache)
+    yield cache
+    if old is None:
+        os.environ.pop("XDG_CACHE_HOME", None)
+    else:
+        os.environ["XDG_CACHE_HOME"] = old
 
 
 # ---------------------------------------------------------------------------- models
@@ -134,3 +157,38 @@ def reader_processes() -> list:
         except psutil.Error:
             pass
     return out
+
+
+# ---------------------------------------------------------------------------- destinations that are not regular files
+
+
+def char_device(path: Path, minor: int = 3) -> Path:
+    """A character device node with the numbers of /dev/null (1, 3; /dev/zero is 1, 5), made in the test's
+    own directory (never the real /dev).  Skips where device nodes cannot be made."""
+    try:
+        os.mknod(path, 0o666 | stat.S_IFCHR, os.makedev(1, minor))
+    except OSError as e:
+        pytest.skip(f"cannot make a device node here ({e})")
+    return path
+
+
+def fifo(path: Path) -> Path:
+    try:
+        os.mkfifo(path)
+    except OSError as e:
+        pytest.skip(f"cannot make a FIFO here ({e})")
+    return path
+
+
+@contextlib.contextmanager
+def tmpfs(where: Path, size: str = "64k", read_only: bool = False):
+    """A small tmpfs at ``where`` (a real full disk, or a read-only file system); skips where mounting is refused."""
+    where.mkdir()
+    opts = f"size={size}" + (",ro" if read_only else "")
+    proc = subprocess.run(["mount", "-t", "tmpfs", "-o", opts, "tmpfs", str(where)], capture_output=True, text=True)
+    if proc.returncode != 0:
+        pytest.skip(f"cannot mount a tmpfs here ({proc.stderr.strip()[:80]})")
+    try:
+        yield where
+    finally:
+        subprocess.run(["umount", "-l", str(where)], capture_output=True)

@@ -457,6 +457,7 @@ def test_generate_whose_read_fails_mid_run_exits_2_with_one_line_and_a_partial_t
 ):
     d = copy_model(model, tmp_path / "m")
     trace_path = tmp_path / "out" / "run.npz"
+    trace_path.parent.mkdir()  # moerun never creates an output's parent directory
     code = _cli_generate(monkeypatch, d, trace_path, reference["cap"], _failing_reads_from(3, how))
     out, err = capsys.readouterr()
     assert code == 2
@@ -587,7 +588,7 @@ def test_generation_past_the_context_stops_with_context_full(short_context, caps
 
 def test_context_full_is_said_in_the_text_summary(short_context, capsys):
     assert _main(["generate", "--model", str(short_context), "--prompt", "abcd", "--max-new", "40"]) == 0
-    assert "stopped: context full" in capsys.readouterr().out
+    assert "stopped: context full" in capsys.readouterr().err  # the summary goes to stderr, the text alone to stdout
 
 
 def test_prompt_longer_than_the_context_is_refused_with_exit_2(short_context, capsys):

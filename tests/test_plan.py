@@ -185,7 +185,7 @@ def test_a_shape_file_plans_a_model_too_big_to_run_here(tmp_path, capsys):
 
 
 def test_target_answers_the_smallest_cap_whose_plan_reaches_it(tmp_path, capsys):
-    # a model too big to run here (shape file), 4 layers of 8 experts: the curve steps 2 slots at a time,
+    # a model too big to run here (shape file), 4 layers of 8 experts: the curve steps 4 slots (one per layer) at a time,
     # so the answer must come from a one-slot search; a plan at that cap reaches the target and a plan
     # one slot below does not (the planner checked against itself: no outside value exists for this)
     trace = tmp_path / "t.npz"
@@ -204,3 +204,112 @@ def test_target_answers_the_smallest_cap_whose_plan_reaches_it(tmp_path, capsys)
     best = lambda c: json.loads(_run([*common, "--mem-cap", str(c)], capsys)[1])["recommended"]["tok_s"]  # noqa: E731
     assert best(cap) >= target
     assert best(cap - (1 << 20)) < target  # one slot (expert_bytes = 1 MiB) less
+
+
+# ---------------------------------------------------------------------------- hostile inputs: cache, shape and probe files
+
+
+def test_calibration_goes_to_the_tests_temporary_cache_never_the_users(private_cache_dir):
+    from pathlib import Path
+
+    from moerun.plan import _cache_dir
+
+    assert private_cache_dir in _cache_dir().parents
+    assert Path.home() / ".cache" not in [_cache_dir(), *_cache_dir().parents]
+
+
+@pytest.mark.parametrize("damage", ["negative", "infinite as a string", "wrong layer count", "missing figure", "not an object"])
+def test_a_calibration_cache_that_parses_but_holds_wrong_values_is_measured_again(small_model, damage):
+    from moerun.plan import CALIBRATION_SCHEMA, _cache_dir, _model_key, calibrate
+
+    first = calibrate(small_model)
+    path = _cache_dir() / f"calibration-{_model_key(small_model)}.json"
+    assert path.is_file()
+    doc = json.loads(path.read_text())
+    if damage == "negative":
+        doc["attn_s"][0] = -1.0
+    elif damage == "infinite as a string":
+        doc["expert_s"] = "inf"
+    elif damage == "wrong layer count":
+        doc["attn_s"] = doc["attn_s"][:1]
+    elif damage == "missing figure":
+        del doc["head_s"]
+    else:
+        doc = [CALIBRATION_SCHEMA]
+    path.write_text(json.dumps(doc))
+    again = calibrate(small_model)
+    assert "cached" not in again  # measured, not read
+    assert len(again["attn_s"]) == len(first["attn_s"]) and min(again["attn_s"]) >= 0 and again["expert_s"] > 0
+    assert json.loads(path.read_text())["attn_s"] == again["attn_s"]  # and the cache repaired
+
+
+@pytest.mark.parametrize(("text", "phrase"), [
+    ("[" * 100_000 + "]" * 100_000, "nested too deeply"),
+    ('{"layers": 1' + "0" * 5000 + "}", "not a JSON document"),  # past Python's 4300-digit limit
+    ("SHAPE_WITH:layers=" + str(10**30), "layers"),
+    ("SHAPE_WITH:dense_bytes=1.5", "dense_bytes"),
+    ("SHAPE_WITH:expert_bytes=2.5", "expert_bytes"),
+    ("SHAPE_WITH:expert_us=1e400", "expert_us"),
+])
+def test_a_hostile_shape_file_gives_one_line(tmp_path, capsys, text, phrase):
+    if text.startswith("SHAPE_WITH:"):
+        key, value = text[len("SHAPE_WITH:") :].split("=")
+        path = _shape(tmp_path, **{key: json.loads(value) if value != "1e400" else 1e400})
+        if value == "1e400":
+            path.write_text(path.read_text().replace("Infinity", "1e400"))
+    else:
+        path = tmp_path / "shape.json"
+        path.write_text(text)
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(0), layers=2, experts=4))
+    code, out, err = _run(["plan", "--shape", str(path), "--trace", str(trace), "--mem-cap", "64MiB", "--link-speed", "1GB/s"], capsys)
+    assert code == 2 and out == "" and len(err.strip().splitlines()) == 1 and phrase in err
+
+
+def _probe_doc() -> dict:
+    run = {"regime": "warm", "verified": True, "reason": None, "runs": 3, "discarded": 0, "p50_ms": 0.1, "p95_ms": 0.2,
+           "p99_ms": 0.3, "max_ms": 0.4, "mean_ms": 0.15, "gb_s": 4.0, "of_ceiling": 0.5}
+    return {"schema": "moerun-probe/1", "machine": {}, "ceiling": {"gb_s": 8.0}, "runs": 3,
+            "blocks": [{"label": "64 KiB", "source": "tempfile", "bytes": 65536, "warm": run, "cold": {**run, "regime": "cold"}}]}
+
+
+@pytest.mark.parametrize("damage", ["huge block size", "fractional block size", "label not UTF-8", "huge run count"])
+def test_a_hostile_probe_file_gives_one_line_in_plan(small_model, tmp_path, capsys, damage):
+    doc = _probe_doc()
+    block = doc["blocks"][0]
+    if damage == "huge block size":
+        block["bytes"] = 10**300
+    elif damage == "fractional block size":
+        block["bytes"] = 65536.5
+    elif damage == "label not UTF-8":
+        block["label"] = "\udcff"
+    else:
+        doc["runs"] = 10**40
+    path = tmp_path / "probe.json"
+    path.write_text(json.dumps(doc))  # ASCII JSON; a lone surrogate is spelled as the escape \\udcff
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(0), layers=3, experts=8))
+    code, out, err = _run(["plan", "--model", str(small_model), "--probe", str(path), "--trace", str(trace), "--mem-cap", "1GiB"], capsys)
+    assert code == 2 and out == "" and len(err.strip().splitlines()) == 1 and str(path) in err
+
+
+def test_the_curve_steps_one_slot_per_layer_as_the_docs_say(tmp_path, capsys):
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(3), layers=4, experts=8))
+    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path, layers=4, experts=8)), "--trace", str(trace),
+                           "--mem-cap", "64MiB", "--link-speed", "1GB/s", "--evict", "lru", "--json"], capsys)
+    assert code == 0, err
+    totals = [p["slots_total"] for p in json.loads(out)["curve"]["points"]]
+    assert totals == list(range(4 * 2, 4 * 8 + 1, 4))  # from top_k per layer to every expert, one slot per layer a step
+
+
+def test_a_trace_without_guesses_is_a_bad_trace_in_plan_and_replay_alike():
+    from moerun import policies
+    from moerun.errors import BadTrace
+    from moerun.replay import simulate_prefetch
+
+    t = _trace([0, 1, 0, 1])
+    with pytest.raises(BadTrace, match="no guesses"):
+        predict(t, [1], "lru", 1, 1, _costs())
+    with pytest.raises(BadTrace, match="no guesses"):
+        simulate_prefetch(t, policies.get("lru"), 1, 1, 1)

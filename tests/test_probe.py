@@ -378,3 +378,31 @@ def test_load_probe_rejects_what_a_planner_cannot_use(tmp_path):
     g["p50_ms"], g["max_ms"] = g["max_ms"] + 1, g["p50_ms"]
     with pytest.raises(BadInput, match="order"):
         attempt(disordered)
+
+
+def test_probe_refuses_its_save_destination_before_measuring_anything(tmp_path, capsys, monkeypatch):
+    import moerun.commands.probe as probe_cmd
+
+    def must_not_run(*a, **k):
+        raise AssertionError("measured although the destination was refused")
+
+    monkeypatch.setattr(probe_cmd, "run_probe", must_not_run)
+    taken = tmp_path / "taken.json"
+    taken.write_text("the user's")
+    assert cli.main(["probe", "--sizes", "64KiB", "--save", str(taken)]) == 2
+    err = capsys.readouterr().err
+    assert "--force" in err and taken.read_text() == "the user's"
+
+
+def test_too_little_disk_for_probes_temporary_file_is_an_output_error(tmp_path, monkeypatch):
+    import collections
+    import shutil
+
+    from moerun import probe as probe_mod
+    from moerun.errors import BadOption, OutputError
+
+    Usage = collections.namedtuple("Usage", "total used free")
+    monkeypatch.setattr(shutil, "disk_usage", lambda path: Usage(10**6, 10**6 - 1000, 1000))
+    with pytest.raises(OutputError) as e:
+        probe_mod._fit_slots(tmp_path, 1 << 20)
+    assert not isinstance(e.value, BadOption)

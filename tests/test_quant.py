@@ -472,3 +472,127 @@ def test_eight_bit_experts_keep_heldout_perplexity_within_one_percent(bundled, p
 def test_fewer_bits_raise_heldout_perplexity_monotonically(pebble, pebble_rtn):
     ppl = {b: _heldout_ppl(pebble_rtn[b]) for b in BITS}
     assert ppl[8] < ppl[4] < ppl[3] < ppl[2]
+
+
+# ---------------------------------------------------------------------------- quantize never destroys what it does not own
+
+
+def _tree(d) -> dict:
+    from pathlib import Path
+
+    d = Path(d)
+    return {str(p.relative_to(d)): p.read_bytes() for p in sorted(d.rglob("*")) if p.is_file()}
+
+
+SPEC8 = QuantSpec.checked(8, 16, 16, "rtn")
+
+
+@pytest.fixture
+def source_in_a_tree(synth_models, tmp_path):
+    """tmp/models/src (a float model) next to tmp/models/notes.txt: a parent that holds more than the model."""
+    import shutil
+
+    parent = tmp_path / "models"
+    parent.mkdir()
+    src = parent / "src"
+    shutil.copytree(synth_models(layers=2, experts=4, top_k=2), src)
+    (parent / "notes.txt").write_text("the user's")
+    return src
+
+
+@pytest.mark.parametrize("where", ["the source itself", "the source's parent", "inside the source"])
+def test_quantize_force_refuses_an_out_that_is_contains_or_lies_inside_the_source(source_in_a_tree, capsys, where):
+    src = source_in_a_tree
+    out = {"the source itself": src, "the source's parent": src.parent, "inside the source": src / "q"}[where]
+    before = _tree(src.parent)
+    err = _one_line_exit_2(capsys, ["quantize", "--model", str(src), str(out), "--force", "--no-score"])
+    assert "source model" in err
+    assert _tree(src.parent) == before
+
+
+def test_quantize_force_refuses_a_directory_holding_files_that_are_not_a_models(source_in_a_tree, tmp_path, capsys):
+    busy = tmp_path / "busy"
+    busy.mkdir()
+    (busy / "config.json").write_text("{}")
+    (busy / "thesis.tex").write_text("the user's")
+    err = _one_line_exit_2(capsys, ["quantize", "--model", str(source_in_a_tree), str(busy), "--force", "--no-score"])
+    assert "thesis.tex" in err
+    assert (busy / "thesis.tex").read_text() == "the user's"
+
+
+def test_quantize_without_force_keeps_a_directory_that_appears_at_out_while_it_runs(source_in_a_tree, tmp_path):
+    from moerun.errors import OutputError
+
+    out = tmp_path / "q"
+
+    def someone_else_writes_out(done, total):
+        if done == 1:
+            out.mkdir()
+            (out / "theirs.txt").write_text("theirs")
+
+    with pytest.raises(OutputError, match="appeared"):
+        quantize_model(source_in_a_tree, out, SPEC8, score=False, on_progress=someone_else_writes_out)
+    assert _tree(out) == {"theirs.txt": b"theirs"}
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".moerun-tmp-")]
+
+
+def test_two_quantize_runs_to_one_new_out_leave_the_first_to_finish_and_fail_the_other(source_in_a_tree, tmp_path):
+    from moerun.errors import OutputError
+
+    out = tmp_path / "q"
+    done_inner = {}
+
+    def a_second_run_finishes_first(done, total):
+        if done == 1 and not done_inner:
+            done_inner["report"] = quantize_model(source_in_a_tree, out, QuantSpec.checked(4, 16, 16, "rtn"), score=False)
+
+    with pytest.raises(OutputError, match="appeared"):
+        quantize_model(source_in_a_tree, out, SPEC8, score=False, on_progress=a_second_run_finishes_first)
+    assert json.loads((out / "config.json").read_text())["quant"]["expert_bits"] == 4  # the finished one, untouched
+
+
+def test_quantize_force_never_leaves_out_missing_even_if_killed_after_installing(source_in_a_tree, tmp_path, monkeypatch):
+    import moerun.fileio as fileio
+
+    out = tmp_path / "q"
+    quantize_model(source_in_a_tree, out, QuantSpec.checked(4, 16, 16, "rtn"), score=False)
+    real_exchange = fileio.rename_exchange
+    seen = []
+
+    def exchange_then_die(src, dst):
+        assert real_exchange(src, dst), "this file system cannot exchange two names in one step"
+        seen.append(sorted(p.name for p in dst.iterdir()))  # right after the swap: OUT is a whole model
+        raise SystemExit(137)  # killed before the old model is removed
+
+    monkeypatch.setattr(fileio, "rename_exchange", exchange_then_die)
+    with pytest.raises(SystemExit):
+        quantize_model(source_in_a_tree, out, SPEC8, score=False, force=True)
+    assert seen and "model.safetensors" in seen[0]
+    assert json.loads((out / "config.json").read_text())["quant"]["expert_bits"] == 8
+    monkeypatch.setattr(fileio, "rename_exchange", real_exchange)
+    with moerun.load(out, tokenizer=False) as eng:
+        assert np.isfinite(eng.logits([1, 2, 3])).all()
+
+
+def test_quantize_reads_the_benchmark_rows_from_the_package_not_from_docs():
+    from pathlib import Path
+
+    from moerun import quant
+
+    path = Path(str(quant.bench_rows_path()))
+    assert Path(moerun.__file__).resolve().parent in path.resolve().parents
+    assert "docs" not in path.parts and path.is_file()
+
+
+def test_a_quantized_model_whose_config_disagrees_with_its_file_is_refused_by_inspect(quantized, tmp_path, capsys):
+    import shutil
+
+    # group 16 -> 17 keeps every blob's size for these shapes (rows 32 and 64 make 2 and 4 groups either way),
+    # so the file still loads: only the recorded quantization tells the edit apart
+    _, make = quantized
+    d = tmp_path / "edited"
+    shutil.copytree(make(4, 16, "rtn", 16), d)
+    edit_config(d, lambda c: c["quant"].__setitem__("group", 17))
+    for extra in ([], ["--check"]):
+        err = _one_line_exit_2(capsys, ["inspect", "--model", str(d), *extra])
+        assert "group" in err and "17" in err and "16" in err

@@ -149,3 +149,32 @@ def test_reader_that_cannot_start_is_not_reported_as_a_bad_option(small_model, m
     with pytest.raises(ReaderError) as err:
         moerun.load(small_model, tokenizer=False, mem_cap=_min_cap(small_model), prefetch=2)
     assert not isinstance(err.value, BadOption)
+
+
+def test_a_stalled_reader_is_said_once_on_stderr_as_one_line_by_the_cli(small_model, monkeypatch, capsys):
+    from moerun import cli, reader as reader_mod
+
+    real = reader_mod.Reader.__init__
+
+    def frozen_soon(self, *a, **kw):  # the reader answers its first requests, then stops answering
+        real(self, *a, **kw)
+        self.timeout_ns = int(0.3e9)
+        self.set_faults(jitter_us=0)
+        calls = [0]
+        submit = self.submit
+
+        def submit_then_freeze(*args):
+            calls[0] += 1
+            if calls[0] == 6:
+                self.freeze()
+            return submit(*args)
+
+        self.submit = submit_then_freeze
+
+    monkeypatch.setattr(reader_mod.Reader, "__init__", frozen_soon)
+    code = cli.main(["generate", "--model", str(small_model), "--prompt", "abc", "--max-new", "40", "--mem-cap",
+                     str(_min_cap(small_model)), "--prefetch", "2", "--quiet"])
+    err = capsys.readouterr().err
+    assert code == 0
+    lines = [ln for ln in err.splitlines() if "warning" in ln]
+    assert len(lines) == 1 and lines[0].startswith("moerun: warning: the prefetch reader made no progress")

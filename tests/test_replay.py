@@ -503,3 +503,34 @@ def test_plot_without_matplotlib_gives_one_line_and_exit_2(tmp_path, capsys, mon
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "matplotlib" in err[0]
     assert not (tmp_path / "p.png").exists()
+
+
+# ---------------------------------------------------------------------------- options that once hung or crashed
+
+
+def _replay_exit(capsys, *argv) -> tuple[int, str]:
+    try:
+        code = cli.main(["replay", *argv])
+    except SystemExit as e:  # argparse usage errors
+        code = e.code
+    return code, capsys.readouterr().err
+
+
+def test_a_slot_range_of_a_hundred_million_is_refused_at_once(recorded, capsys):
+    import time
+
+    t0 = time.monotonic()
+    code, err = _replay_exit(capsys, str(recorded[0]), "--slots", "1-100000000")
+    assert code == 2 and len(err.strip().splitlines()) == 1 and "--slots" in err
+    assert time.monotonic() - t0 < 5  # refused before 10^8 quotas are built
+
+
+@pytest.mark.parametrize("seed", ["-1", "x", "1.5"])
+def test_a_negative_or_unreadable_seed_is_one_line(recorded, capsys, seed):
+    code, err = _replay_exit(capsys, str(recorded[0]), f"--seed={seed}")
+    assert code == 2 and len(err.strip().splitlines()) == 1 and "--seed" in err and "Traceback" not in err
+
+
+def test_lookahead_without_prefetch_is_refused_in_replay_too(recorded, capsys):
+    code, err = _replay_exit(capsys, str(recorded[0]), "--lookahead", "2")
+    assert code == 2 and "--lookahead has no effect without --prefetch" in err

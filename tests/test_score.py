@@ -130,3 +130,156 @@ def test_score_command_default_text_is_the_bundled_heldout(pebble, capsys):
     assert code == 0
     assert doc["text"].endswith("heldout.txt") and doc["predicted_tokens"] == 300
     assert doc["budget"]["cap_bytes"] == 13 * 2**20
+
+
+# ---------------------------------------------------------------------------- non-finite numbers: one check, one line
+
+
+def _weights_with_inf_in_every_expert(src, dst):
+    """A copy of ``src`` whose experts of layer 0 hold an infinity (dense weights stay finite, so it loads)."""
+    import shutil
+    import struct
+
+    from moerun.modelfile import read_header
+
+    shutil.copytree(src, dst)
+    path = dst / "model.safetensors"
+    header = read_header(path)
+    blob = bytearray(path.read_bytes())
+    for name, t in header.tensors.items():
+        if name.startswith("layers.0.experts.") and name.endswith("w_down"):
+            blob[t.start : t.start + 4] = struct.pack("<f", float("inf"))
+    path.write_bytes(bytes(blob))
+    return dst
+
+
+def _moerun(*argv):
+    import os
+    import subprocess
+    import sys
+
+    from conftest import ROOT
+
+    env = {**os.environ, "PYTHONPATH": str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", "")}
+    return subprocess.run([sys.executable, "-m", "moerun", *argv], capture_output=True, text=True, env=env, timeout=120)
+
+
+@pytest.mark.parametrize("command", ["score", "record", "generate"])
+def test_weights_holding_inf_give_one_line_and_no_numpy_warning_in_every_command(small_model, tmp_path, command):
+    d = _weights_with_inf_in_every_expert(small_model, tmp_path / "inf")
+    text = tmp_path / "t.txt"
+    text.write_text(TEXT)
+    argv = {
+        "score": ["score", "--model", str(d), "--text", str(text), "--json"],
+        "record": ["record", "--model", str(d), "--text", str(text), "--trace", str(tmp_path / "t.npz"), "--json"],
+        "generate": ["generate", "--model", str(d), "--prompt", "fog", "--max-new", "3"],
+    }[command]
+    proc = _moerun(*argv)
+    assert proc.returncode == 2, proc.stdout[:300]
+    assert proc.stderr.strip().splitlines() == [proc.stderr.strip()] and "non-finite" in proc.stderr
+    assert "RuntimeWarning" not in proc.stderr and "NaN" not in proc.stdout
+    assert proc.stdout == ""
+    assert not (tmp_path / "t.npz").exists()
+
+
+def test_engine_logits_refuse_non_finite_numbers_through_the_api(small_model, tmp_path):
+    d = _weights_with_inf_in_every_expert(small_model, tmp_path / "inf")
+    with moerun.load(d) as eng:
+        with np.errstate(all="ignore"), pytest.raises(moerun.BadModelFile, match="non-finite"):
+            score_text(eng, TEXT)
+
+
+def test_scoring_a_model_whose_context_holds_one_token_is_one_clear_error(synth_models, tmp_path, capsys):
+    model = synth_models(layers=1, experts=2, top_k=1, max_seq_len=1)
+    (tmp_path / "t.txt").write_text(TEXT)
+    code = main(["score", "--model", str(model), "--text", str(tmp_path / "t.txt")])
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1 and "context of 1" in err
+
+
+def test_scoring_a_text_of_one_token_in_plain_windows_is_one_clear_error(small_model, tmp_path, capsys):
+    text = tmp_path / "one.txt"
+    text.write_text("a")
+    code = main(["score", "--model", str(small_model), "--text", str(text), "--plain-windows"])
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1 and "too few tokens" in err
+
+
+# ---------------------------------------------------------------------------- the cap bounds scoring, for every storage format
+
+
+@pytest.fixture(scope="module")
+def storage_formats(pebble, tmp_path_factory):
+    """The bundled model as F32 (as shipped), F16 and 4-bit experts."""
+    import shutil
+
+    from moerun.modelfile import save_model_file
+    from moerun.quant import QuantSpec, quantize_model
+    from moerun.store import ModelStore
+
+    root = tmp_path_factory.mktemp("formats")
+    f16 = root / "f16"
+    f16.mkdir()
+    st = ModelStore.open(pebble)
+    try:
+        tensors = {n: st.read_tensor(n).astype(np.float16) for n in st.header.tensors}
+    finally:
+        st.close()
+    save_model_file(f16 / "model.safetensors", tensors)
+    for name in ("tokenizer.json", "heldout.txt"):
+        shutil.copyfile(pebble / name, f16 / name)
+    cfg = json.loads((pebble / "config.json").read_text())
+    (f16 / "config.json").write_text(json.dumps({**cfg, "dtype": "F16"}))
+    q4 = root / "q4"
+    quantize_model(pebble, q4, QuantSpec.checked(4, 16, 64, "rtn"), score=False)
+    return {"F32": pebble, "F16": f16, "4-bit": q4}
+
+
+@pytest.mark.parametrize("fmt", ["F32", "F16", "4-bit"])
+def test_score_at_the_smallest_cap_stays_within_the_cap_for_every_storage_format(storage_formats, capsys, fmt):
+    from moerun.summary import CAP_ALLOWANCE_BYTES
+
+    model = storage_formats[fmt]
+    with moerun.load(model, tokenizer=False) as eng:
+        s = eng.store
+        cap = minimum_cap(s.config, s.dense_nbytes, s.expert_nbytes, "even", s.codec.scratch_bytes())
+    code = main(["score", "--model", str(model), "--mem-cap", str(cap), "--max-tokens", "1500", "--json"])
+    out, err = capsys.readouterr()
+    assert code == 0, err
+    doc = json.loads(out)
+    assert doc["peak_rss_growth_bytes"] <= cap + CAP_ALLOWANCE_BYTES, (doc["peak_rss_growth_bytes"] - cap) / 2**20
+    assert doc["cap_exceeded"] is False and "warning" not in err
+
+
+def test_window_loss_keeps_its_float64_temporaries_small():
+    import tracemalloc
+
+    logits = np.random.default_rng(0).standard_normal((256, 2048)).astype(np.float32)
+    ids = np.random.default_rng(1).integers(0, 2048, 256)
+    tracemalloc.start()
+    s, n = window_nll(logits, ids)
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    assert n == 255 and peak < 2 * 2**20  # a whole window in float64 would be 4 MiB, and its exp another 4
+    z = logits[:255].astype(np.float64)
+    m = z.max(axis=-1, keepdims=True)
+    want = float(np.sum(m[:, 0] + np.log(np.exp(z - m).sum(axis=-1)) - z[np.arange(255), ids[1:]]))
+    assert s == pytest.approx(want, rel=1e-12)
+
+
+def test_a_measured_peak_above_the_cap_is_warned_on_stderr_and_marked_in_json(small_model, tmp_path, capsys, monkeypatch):
+    from moerun.memwatch import MemWatch
+
+    text = tmp_path / "t.txt"
+    text.write_text(TEXT)
+    with moerun.load(small_model, tokenizer=False) as eng:
+        s = eng.store
+        cap = minimum_cap(s.config, s.dense_nbytes, s.expert_nbytes, "even", s.codec.scratch_bytes())
+    monkeypatch.setattr(MemWatch, "peak_growth", lambda self: cap + (64 << 20))  # as if the run had grown past it
+    for command in ("score", "generate"):
+        argv = [command, "--model", str(small_model), "--mem-cap", str(cap), "--json"]
+        argv += ["--text", str(text)] if command == "score" else ["--prompt", "hi", "--max-new", "2"]
+        assert main(argv) == 0
+        out, err = capsys.readouterr()
+        assert json.loads(out)["cap_exceeded"] is True
+        assert err.strip().startswith(f"moerun {command}: warning: peak resident-set growth") and "exceeded the memory cap" in err

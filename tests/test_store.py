@@ -221,3 +221,57 @@ def test_mmap_page_in_leaves_no_mapped_file_pages_resident(synth_models):
         assert _mapped_rss_bytes(store.path.resolve()) < store.expert_nbytes
     finally:
         store.close()
+
+
+# the file shrinks after the size check, while the copy runs: simulated by letting the store's own size
+# check see the size the file had when the copy began (os.fstat patched), then truncating it
+_SHRINK_DURING_COPY = """
+import os, sys
+import numpy as np
+import moerun.store as store_mod
+from moerun.errors import PageInError
+store = store_mod.ModelStore.open(sys.argv[1])
+store.set_mechanism("mmap")
+size = os.fstat(store._fd).st_size
+real_fstat = os.fstat
+store_mod.os.fstat = lambda fd: os.stat_result((*real_fstat(fd)[:6], size, *real_fstat(fd)[7:]))
+last = store.ranges[-1][-1]
+os.truncate(store.path, last.start + 8)  # the expert's first page stays, the rest of it is gone
+slot = np.zeros(store.expert_nbytes, np.uint8)
+try:
+    store.page_in(last.layer, last.expert, slot)
+except PageInError as e:
+    print("PageInError:", e)
+    sys.exit(2)
+sys.exit(0)
+"""
+
+
+def test_mmap_copy_of_a_file_that_shrinks_during_the_copy_is_page_in_error_not_sigbus(synth_models, tmp_path):
+    import subprocess
+    import sys
+
+    from conftest import ROOT
+
+    d = tmp_path / "m"
+    shutil.copytree(synth_models(layers=2, experts=4, top_k=2, d_model=64, d_expert=256), d)
+    env = {**os.environ, "PYTHONPATH": str(ROOT) + os.pathsep + os.environ.get("PYTHONPATH", "")}
+    proc = subprocess.run([sys.executable, "-c", _SHRINK_DURING_COPY, str(d)], capture_output=True, text=True, env=env, timeout=120)
+    assert proc.returncode == 2, f"exit {proc.returncode} (negative: killed by signal {-proc.returncode}) {proc.stderr[-300:]}"
+    assert "PageInError" in proc.stdout and "file ended" in proc.stdout
+
+
+def test_mmap_pages_in_the_same_bytes_as_pread(small_model):
+    store = ModelStore.open(small_model)
+    try:
+        a = np.zeros(store.expert_nbytes, np.uint8)
+        b = np.zeros(store.expert_nbytes, np.uint8)
+        for layer in range(store.config.n_layers):
+            for e in range(store.config.n_experts):
+                store.set_mechanism("pread")
+                store.page_in(layer, e, a)
+                store.set_mechanism("mmap")
+                store.page_in(layer, e, b)
+                assert np.array_equal(a, b)
+    finally:
+        store.close()

@@ -134,7 +134,7 @@ def test_same_seed_same_file_other_seed_other_weights(tmp_path, capsys):
 def test_synth_refuses_when_the_disk_is_too_small_and_leaves_nothing(tmp_path, capsys, monkeypatch):
     Usage = collections.namedtuple("Usage", "total used free")
     monkeypatch.setattr(shutil, "disk_usage", lambda path: Usage(10**6, 10**6 - 1000, 1000))
-    out = tmp_path / "models" / "m"
+    out = tmp_path / "m"  # (a missing parent is refused before the disk is looked at)
     code, text, err = run_cli(["synth", str(out), *SMALL], capsys)
     assert code == 2
     assert "free" in err and "nothing was written" in err
@@ -169,7 +169,7 @@ def test_failed_synth_removes_the_directories_it_created(tmp_path, monkeypatch):
     monkeypatch.setattr(synth_mod, "tensor_chunks", boom)
     config = synth_config()
     with pytest.raises(RuntimeError, match="injected"):
-        synth_mod.synthesize(tmp_path / "a" / "b" / "m", config)
+        synth_mod.synthesize(tmp_path / "m", config)  # parents are never created (test_fileio); the temporary is
     assert leftovers(tmp_path) == []
 
 
@@ -270,3 +270,62 @@ def test_card_records_a_command_that_rebuilds_the_same_weights(tmp_path, capsys,
     again = tmp_path / "again"
     assert run_cli(["synth", str(again), *argv[3:]], capsys)[0] == 0
     assert (again / "model.safetensors").read_bytes() == (first / "model.safetensors").read_bytes()
+
+
+# ---------------------------------------------------------------------------- OUT: never destroy, never two at once, no stale temporaries
+
+
+def test_two_synth_runs_to_one_out_keep_the_first_to_finish_and_fail_the_other(tmp_path, capsys, monkeypatch):
+    out = tmp_path / "m"
+    real = synth_mod.tensor_chunks
+    state = {"inner": None}
+
+    def a_second_run_finishes_first(*a, **k):
+        if state["inner"] is None:
+            state["inner"] = "running"
+            state["inner"] = run_cli(["synth", str(out), *SMALL, "--seed", "7", "--json"], capsys)[0]
+        return real(*a, **k)
+
+    monkeypatch.setattr(synth_mod, "tensor_chunks", a_second_run_finishes_first)
+    code, _, err = run_cli(["synth", str(out), *SMALL, "--seed", "1"], capsys)
+    assert state["inner"] == 0
+    assert code == 2 and "appeared" in err and len(err.strip().splitlines()) == 1
+    assert json.loads((out / "config.json").read_text())["seed"] == 7  # the finished model, whole and untouched
+    assert leftovers(tmp_path) == ["m"]
+
+
+def test_a_killed_synths_temporary_directory_is_removed_by_the_next_run(tmp_path, capsys):
+    import subprocess
+    import sys
+
+    dead = subprocess.Popen([sys.executable, "-c", "pass"])
+    dead.wait()
+    stale = tmp_path / f".moerun-tmp-{dead.pid}-m-killed"  # what a SIGKILLed synth leaves (its name says whose)
+    stale.mkdir()
+    (stale / "model.safetensors").write_bytes(b"\0" * (1 << 20))
+    code, _, err = run_cli(["synth", str(tmp_path / "m"), *SMALL], capsys)
+    assert code == 0, err
+    assert leftovers(tmp_path) == ["m"]
+
+
+def test_synth_force_replaces_a_model_directory_but_never_one_holding_other_files(tmp_path, capsys):
+    out = tmp_path / "m"
+    assert run_cli(["synth", str(out), *SMALL, "--seed", "1"], capsys)[0] == 0
+    code, _, err = run_cli(["synth", str(out), *SMALL, "--seed", "2"], capsys)
+    assert code == 2 and "--force" in err
+    assert run_cli(["synth", str(out), *SMALL, "--seed", "2", "--force"], capsys)[0] == 0
+    assert json.loads((out / "config.json").read_text())["seed"] == 2
+    (out / "my-notes.txt").write_text("mine")
+    code, _, err = run_cli(["synth", str(out), *SMALL, "--force"], capsys)
+    assert code == 2 and "my-notes.txt" in err
+    assert (out / "my-notes.txt").read_text() == "mine"
+
+
+def test_a_disk_too_small_for_synth_is_an_output_error_not_a_bad_option(tmp_path, monkeypatch):
+    from moerun.errors import BadOption, OutputError
+
+    Usage = collections.namedtuple("Usage", "total used free")
+    monkeypatch.setattr(shutil, "disk_usage", lambda path: Usage(10**6, 10**6 - 1000, 1000))
+    with pytest.raises(OutputError) as e:
+        synth_mod.synthesize(tmp_path / "m", synth_config())
+    assert not isinstance(e.value, BadOption)

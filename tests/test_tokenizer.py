@@ -110,3 +110,61 @@ def test_tokenizer_json_that_is_valid_json_but_not_a_tokenizer_is_refused(fresh_
     (fresh_model / "tokenizer.json").write_text(json.dumps({"hello": "world"}))
     with pytest.raises(BadModelFile):
         _load(fresh_model)
+
+
+# ---------------------------------------------------------------------------- undecodable text, hostile files, long texts
+
+
+def test_text_that_is_not_utf8_is_refused_by_the_tokenizer_with_bad_input(byte_tok):
+    # what Python makes of the byte 0xff on a command line or in a file name (surrogateescape, PEP 383)
+    for text in ("caf\udce9", "\udcff", "ok \ud800 lone surrogate"):
+        with pytest.raises(BadInput, match="UTF-8"):
+            byte_tok.encode(text)
+        with pytest.raises(BadInput, match="UTF-8"):
+            byte_tok.encode_array(text)
+
+
+def test_a_tokenizer_file_that_is_not_utf8_is_a_bad_model_file(small_model, tmp_path):
+    import shutil
+
+    d = tmp_path / "m"
+    shutil.copytree(small_model, d)
+    (d / "tokenizer.json").write_bytes(b'{"version": "1.0", "model": "\xff\xfe"}')
+    with pytest.raises(BadModelFile, match="UTF-8"):
+        _load(d)
+
+
+def test_a_fifo_in_place_of_tokenizer_json_is_refused_at_once(small_model, tmp_path):
+    import shutil
+
+    from conftest import fifo
+
+    d = tmp_path / "m"
+    shutil.copytree(small_model, d)
+    (d / "tokenizer.json").unlink()
+    fifo(d / "tokenizer.json")
+    with pytest.raises(BadModelFile, match="FIFO"):
+        _load(d)
+
+
+def test_a_long_text_encodes_in_pieces_to_exactly_the_ids_of_encoding_it_whole(pebble_tok, pebble):
+    from tokenizers import Tokenizer as LibraryTokenizer
+
+    whole = LibraryTokenizer.from_file(str(pebble / "tokenizer.json"))
+    text = (pebble / "heldout.txt").read_text(encoding="utf-8")
+    assert len(text) > 10 * 4096  # many pieces
+    want = whole.encode(text, add_special_tokens=False).ids
+    assert pebble_tok.encode(text, bos=False) == want
+    assert pebble_tok.encode_array(text).tolist() == want
+    assert pebble_tok.encode_array(text, 1000).tolist() == want[:1000]
+
+
+@settings(max_examples=60, deadline=None)
+@given(words=st.lists(st.text(st.characters(blacklist_categories=("Cs",)), max_size=12), min_size=1, max_size=800),
+       seps=st.lists(st.sampled_from([" ", "  ", "\n", " \n", "\t", "", ". "]), min_size=1, max_size=800))
+def test_pieces_give_the_ids_of_the_whole_text_for_any_text(pebble_tok, pebble, words, seps):
+    from tokenizers import Tokenizer as LibraryTokenizer
+
+    whole = LibraryTokenizer.from_file(str(pebble / "tokenizer.json"))
+    text = "".join(w + seps[i % len(seps)] for i, w in enumerate(words)) * 3
+    assert pebble_tok.encode(text, bos=False) == whole.encode(text, add_special_tokens=False).ids

@@ -155,3 +155,106 @@ def test_bad_trace_raises_the_trace_error_family(tmp_path):
     path = _save(tmp_path / "t.npz", experts=np.full((3, 1, 1), -5))
     with pytest.raises(BadTrace):
         read_trace(path)
+
+
+# ---------------------------------------------------------------------------- partial, hostile and non-regular trace files
+
+
+def test_a_trace_from_a_run_stopped_during_prefill_is_written_and_readable(small_model, tmp_path):
+    import moerun
+
+    with moerun.load(small_model, tokenizer=False) as eng:
+        eng.start_trace()
+        real = eng.recorder.routed
+        calls = []
+
+        def stop_at_the_second_layer(*a, **k):
+            calls.append(1)
+            real(*a, **k)
+            if len(calls) == 2:  # the prompt has been routed through layer 1 of 3 when Ctrl-C lands
+                raise KeyboardInterrupt
+
+        eng.recorder.routed = stop_at_the_second_layer
+        with pytest.raises(KeyboardInterrupt):
+            eng.generate(prompt_ids=[1, 2, 3, 4, 5], max_new=4)
+        write_trace(tmp_path / "t.npz", eng.finish_trace(partial=True))
+    t = read_trace(tmp_path / "t.npz")
+    assert t.meta["partial"] is True
+    assert t.n_tokens == 0 and t.meta["prefill_tokens"] == 0 and t.n_layers == 3
+
+
+def _zip_with_flags(path: Path, arrays: dict, flag_bits: int) -> Path:
+    _save(path, **arrays)
+    blob = bytearray(path.read_bytes())
+    # general purpose bit flag: offset 6 of each local header and 8 of each central directory entry
+    # (PKWARE APPNOTE.TXT 4.3.7 and 4.3.12); bit 0 means encrypted
+    for sig, at in ((b"PK\x03\x04", 6), (b"PK\x01\x02", 8)):
+        i = blob.find(sig)
+        while i != -1:
+            blob[i + at] |= flag_bits
+            i = blob.find(sig, i + 4)
+    path.write_bytes(bytes(blob))
+    return path
+
+
+def test_an_archive_with_the_encryption_flag_is_a_bad_trace(tmp_path, capsys):
+    path = _zip_with_flags(tmp_path / "enc.npz", {"experts": _good_experts()}, 0x1)
+    with pytest.raises(BadTrace, match="encrypted"):
+        read_trace(path)
+    assert cli.main(["replay", str(path)]) == 2
+    assert len(capsys.readouterr().err.strip().splitlines()) == 1
+
+
+def test_a_small_archive_that_would_expand_enormously_is_refused_before_allocating(tmp_path):
+    import tracemalloc
+    import zipfile
+
+    # 400 MB of zeros deflate to about 400 KB: an honest archive whose arrays nobody should have to unpack
+    path = tmp_path / "bomb.npz"
+    with zipfile.ZipFile(path, "w", compression=zipfile.ZIP_DEFLATED) as zf:
+        with zf.open("experts.npy", "w", force_zip64=True) as f:
+            header = {"descr": "<i2", "fortran_order": False, "shape": (200_000_000, 1, 1)}
+            np.lib.format.write_array_header_1_0(f, header)
+            chunk = b"\0" * (1 << 22)
+            for _ in range(400_000_000 // len(chunk)):
+                f.write(chunk)
+    assert path.stat().st_size < 2_000_000
+    tracemalloc.start()
+    with pytest.raises(BadTrace, match="expand"):
+        read_trace(path)
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    assert peak < 4 * path.stat().st_size + (8 << 20)
+
+
+def test_a_fifo_in_place_of_a_trace_is_refused_at_once(tmp_path):
+    from conftest import fifo
+
+    pipe = fifo(tmp_path / "t.npz")
+    with pytest.raises(BadTrace, match="FIFO"):
+        read_trace(pipe)
+
+
+def test_a_device_in_place_of_a_trace_is_refused_instead_of_read_forever(tmp_path):
+    from conftest import char_device
+
+    dev = char_device(tmp_path / "zero.npz", minor=5)  # the numbers of /dev/zero
+    with pytest.raises(BadTrace, match="character device"):
+        read_trace(dev)
+
+
+def test_trace_metadata_that_is_not_utf8_is_a_bad_trace(tmp_path):
+    path = tmp_path / "t.npz"
+    np.savez(path, experts=_good_experts(), meta=np.array('{"source": "\\udcff"}'))
+    with pytest.raises(BadTrace, match="UTF-8"):
+        read_trace(path)
+
+
+def test_plan_refuses_a_trace_without_decode_steps(small_model, tmp_path, capsys):
+    path = _save(tmp_path / "prefill.npz", experts=_good_experts(6, 3, 2), meta={"n_experts": 8, "prefill_tokens": 6})
+    try:
+        code = cli.main(["plan", "--model", str(small_model), "--trace", str(path), "--mem-cap", "1GiB", "--link-speed", "1GB/s"])
+    except SystemExit as e:
+        code = e.code
+    err = capsys.readouterr().err
+    assert code == 2 and len(err.strip().splitlines()) == 1 and "no decode steps" in err

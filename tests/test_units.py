@@ -115,3 +115,22 @@ def test_bare_prefix_letters_are_refused_as_ambiguous(text):
     # invites the wrong one, so the message names both spellings.
     with pytest.raises(BadOption, match="ambiguous"):
         parse_size(text)
+
+
+def test_an_unreadable_rate_gets_a_hint_about_rates():
+    with pytest.raises(BadOption, match="2GB/s"):
+        parse_rate("fast", "link speed")
+
+
+def test_exact_sizes_tell_apart_two_caps_that_round_alike():
+    from moerun.units import fmt_exact
+
+    a, b = fmt_exact(12374527), fmt_exact(12374528)
+    assert fmt_bytes(12374527) == fmt_bytes(12374528)  # "11.8 MiB" both: not enough for a refusal message
+    assert a != b and "12374528 bytes" in b
+
+
+@pytest.mark.parametrize("value", [1.5e6, True, None, [1], 2**70])
+def test_sizes_of_the_wrong_type_or_out_of_range_are_bad_options(value):
+    with pytest.raises(BadOption):
+        parse_size(value, "memory cap")

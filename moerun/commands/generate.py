@@ -1,19 +1,24 @@
-"""moerun generate: stream text from the model under a memory cap, then a run summary."""
+"""moerun generate: stream text from the model under a memory cap; the run summary goes to stderr.
+
+stdout holds the text alone (the prompt, then what the model wrote), so ``moerun generate > out.txt``
+keeps just the text; the summary (speed, budget, hits, stalls, memory) goes to stderr, or nowhere with
+``--quiet``.  With ``--json`` stdout holds one JSON document and nothing else.
+"""
 
 from __future__ import annotations
 
 import sys
-from pathlib import Path
 
 from .. import cli
 from ..engine import load
-from ..errors import BadInput, BadOption
+from ..errors import BadOption
+from ..fileio import check_output
 from ..report import emit_json
 from ..sampling import Sampling
-from ..summary import model_note, run_json, run_text
+from ..summary import cap_warning, model_note, run_json, run_text
 from ..trace import write_trace
 
-HELP = "generate text under a memory cap and report speed, hits, stalls and memory"
+HELP = "generate text under a memory cap (text on stdout; speed, hits, stalls and memory on stderr)"
 
 
 def add_arguments(p) -> None:
@@ -21,59 +26,71 @@ def add_arguments(p) -> None:
     cli.add_prompt(p)
     cli.add_memory(p)
     p.add_argument("--trace", metavar="FILE", help="write every routing decision and page-in event to FILE (.npz)")
+    cli.add_force(p, "the --trace file")
+    p.add_argument("--quiet", action="store_true", help="print the text only, no run summary on stderr")
     cli.add_json(p)
 
 
 def run(args) -> int:
     if args.max_new < 0:  # refuse before loading the model or echoing the prompt
         raise BadOption(f"--max-new must be zero or more, got {args.max_new}")
-    if args.trace and Path(args.trace).is_dir():
-        raise BadInput(f"--trace {args.trace}: is a directory, expected a file name")
     prompt = cli.read_prompt(args)
+    inputs = cli.model_files(args.model) + ([args.prompt_file] if args.prompt_file else [])
+    if args.trace:
+        check_output(args.trace, args.force, inputs, "--trace")
     sampling = Sampling(args.temperature, args.top_p, args.seed)
     engine = load(**cli.engine_kwargs(args))
     stream = not args.json
-    printed = ""
     new: list[int] = []
+    out = sys.stdout
+    prompt_shown = False
+    shown = ""  # the generated text written so far
+
+    def show_prompt() -> None:
+        nonlocal prompt_shown
+        if stream and not prompt_shown:
+            out.write(prompt)
+            prompt_shown = True
 
     def on_token(tok: int) -> None:
-        nonlocal printed
+        nonlocal shown
         new.append(tok)
         if not stream:
             return
+        show_prompt()  # only once prefill succeeded: a prompt the model refuses is never echoed
         text = engine.tokenizer.decode(new)
         if text.endswith("\ufffd"):  # an incomplete UTF-8 sequence; wait for the next token
             return
-        sys.stdout.write(text[len(printed) :])
-        sys.stdout.flush()
-        printed = text
+        out.write(text[len(shown) :])
+        out.flush()
+        shown = text
 
     with engine:
+        cli.check_against_model(args, engine.config)
         if args.trace:
             engine.start_trace()
         partial = True
         try:
-            if stream:
-                sys.stdout.write(prompt)
             gen = engine.generate(prompt, max_new=args.max_new, sampling=sampling, on_token=on_token)
             partial = False
         finally:
             if args.trace and engine.recorder is not None:
-                try:
-                    write_trace(args.trace, engine.finish_trace(partial=partial, extra={"text": "generate"}))
-                except OSError as e:
-                    where = f": {e.filename}" if e.filename else ""
-                    raise BadInput(f"--trace {args.trace}: cannot write ({e.strerror or e}{where})") from None
+                write_trace(args.trace, engine.finish_trace(partial=partial, extra={"text": "generate"}),
+                            force=args.force, inputs=inputs, what="--trace")
+        warning = cap_warning(engine)
         if args.json:
             doc = {"prompt": prompt, "text": gen.text, "note": model_note(engine.config), **run_json(engine, gen)}
             if args.trace:
                 doc["trace"] = args.trace
             emit_json(doc)
         else:
-            if stream:
-                sys.stdout.write(gen.text[len(printed) :])
-            sys.stdout.write(f"\n\n[{model_note(engine.config)}]\n")
-            sys.stdout.write(run_text(engine, gen) + "\n")
-            if args.trace:
-                sys.stdout.write(f"trace written to {args.trace}\n")
+            show_prompt()
+            out.write(gen.text[len(shown) :] + "\n")
+            out.flush()
+            if not args.quiet:
+                sys.stderr.write(f"\n[{model_note(engine.config)}]\n{run_text(engine, gen)}\n")
+                if args.trace:
+                    sys.stderr.write(f"trace written to {args.trace}\n")
+        if warning:
+            sys.stderr.write(f"moerun generate: warning: {warning}\n")
     return 0

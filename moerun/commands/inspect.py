@@ -14,7 +14,7 @@ from ..report import emit_json, table
 from ..store import ModelStore
 from ..units import fmt_bytes
 
-HELP = "show a model's config, tensors, expert sizes and file layout; --check verifies digests"
+HELP = "show a model's config, tensors, expert sizes and file layout; checks every file of the directory; --check verifies digests"
 
 
 def add_arguments(p) -> None:
@@ -39,12 +39,62 @@ def check_digests(store: ModelStore) -> tuple[list[str], int]:
     return bad + missing, len(store.header.tensors)
 
 
+def check_files(store: ModelStore) -> dict:
+    """Every other file of the model directory, read the way the commands read it (BadModelFile otherwise):
+    tokenizer.json as generate loads it, the texts as UTF-8, reference.npz as arrays without pickles; and the
+    quantization config.json declares against the one the weights file records."""
+    import numpy as np
+
+    from ..errors import BadModelFile
+    from ..fileio import read_user_file
+    from ..quant import recorded_quant_problem
+    from ..tokenizer import Tokenizer
+
+    c = store.config
+    d = store.model_dir
+    problem = recorded_quant_problem(c, store.header.metadata)
+    if problem:
+        raise BadModelFile(f"{store.path}: {problem}")
+    files = {"config.json": "valid", "model.safetensors": "valid"}
+    if (d / "tokenizer.json").exists() or (d / "tokenizer.json").is_symlink():
+        tok = Tokenizer.load(d, c.vocab_size, c.bos_token_id)
+        files["tokenizer.json"] = f"valid ({tok.vocab_size} tokens)"
+    else:  # the weights are usable (moerun.load(..., tokenizer=False)); the text commands are not
+        files["tokenizer.json"] = "absent: generate, score, record and verify need it"
+    for name in ("heldout.txt", "CARD.md"):
+        if (d / name).exists() or (d / name).is_symlink():
+            data = read_user_file(d / name, BadModelFile, "text file")
+            try:
+                data.decode("utf-8")
+            except UnicodeDecodeError as e:
+                raise BadModelFile(f"{d / name}: not UTF-8 text (bad byte at offset {e.start})") from None
+            files[name] = "valid UTF-8 text"
+    ref = d / "reference.npz"
+    if ref.exists() or ref.is_symlink():
+        import io
+        import zipfile
+
+        data = read_user_file(ref, BadModelFile, "reference file")
+        try:
+            with np.load(io.BytesIO(data), allow_pickle=False) as z:
+                for key in z.files:
+                    z[key]
+        except (ValueError, OSError, EOFError, zipfile.BadZipFile, NotImplementedError, RuntimeError) as e:
+            first = str(e).splitlines()[0][:120] if str(e) else type(e).__name__
+            raise BadModelFile(f"{ref}: not a readable .npz of arrays ({first})") from None
+        files["reference.npz"] = "valid arrays"
+    for other in sorted(x.name for x in d.iterdir() if x.name not in files):
+        files[other] = "not read by moerun"
+    return files
+
+
 def run(args) -> int:
     store = ModelStore.open(args.model or default_model_dir())
     with_check = args.check
     try:
         c = store.config
         h = store.header
+        files = check_files(store)
         packed = packed_dense_tensors(c)  # quantized attention is stored under its blob's name
         dense_names = [packed.get(n, n) for n in c.dense_shapes()]
         dense_file = sum(h.tensors[n].nbytes for n in dense_names)
@@ -83,6 +133,7 @@ def run(args) -> int:
             "experts_region": [first, end],
             "experts_in_layer_order": in_order,
             "synthetic": bool(c.extra.get("synthetic")),
+            "files": files,
             "tensors": [
                 {"name": t.name, "dtype": t.dtype, "shape": list(t.shape), "offset": t.start, "bytes": t.nbytes}
                 for t in sorted(h.tensors.values(), key=lambda t: t.start)
@@ -128,6 +179,7 @@ def run(args) -> int:
             ["smallest cap, shared pool", f"{fmt_bytes(doc['min_cap_shared_bytes'])} ({doc['min_cap_shared_bytes']} B)"],
         ]
         out.write(table(["", "size"], rows) + "\n\n")
+        out.write("files: " + "; ".join(f"{k} {v}" for k, v in files.items()) + "\n")
         if in_order:
             out.write(f"layout: header 0..{h.data_start}, dense tensors, then experts {first}..{end} "
                       f"in layer, expert order, each one contiguous range\n")

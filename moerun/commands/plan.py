@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import sys
 from pathlib import Path
 
@@ -12,6 +13,7 @@ from ..errors import BadInput, BadOption, ImpossibleBudget
 from ..plan import (
     best_split,
     calibrate,
+    check_decode_steps,
     check_trace_shape,
     costs_from_calibration,
     costs_from_shape,
@@ -21,13 +23,15 @@ from ..plan import (
     page_seconds,
     predict,
 )
+from ..replay import parse_policies
 from ..report import Progress, emit_json, pct, table
 from ..trace import read_trace
-from ..units import fmt_bytes, parse_rate, parse_size
+from ..units import fmt_bytes, fmt_exact, parse_rate, parse_size
 
 HELP = "predict decode tok/s for a memory cap and a link; recommend slots per layer, policy and prefetch"
 
 PREFETCH_CANDIDATES = [(0, 1), (1, 1), (2, 1), (2, 2), (3, 1)]
+DEFAULT_TOKENS = 2048
 
 
 def add_arguments(p) -> None:
@@ -36,11 +40,13 @@ def add_arguments(p) -> None:
     p.add_argument("--target", type=float, metavar="TOK_S", help="also find the smallest cap that reaches this decode speed")
     p.add_argument("--link-speed", metavar="RATE", help="page-in over a link of this speed, e.g. 2GB/s")
     p.add_argument("--probe", metavar="FILE", help="page-in times from 'moerun probe --save FILE'")
-    p.add_argument("--regime", choices=("warm", "cold"), default="warm", help="which probe figures to use (default warm)")
+    p.add_argument("--regime", choices=("warm", "cold"), default=None, help="which probe figures to use, with --probe (default warm)")
     p.add_argument("--trace", metavar="FILE", help="routing trace (default: recorded now from the model's held-out text)")
-    p.add_argument("--tokens", type=int, default=2048, metavar="N", help="tokens of held-out text to record when no --trace (default 2048)")
+    p.add_argument("--max-tokens", type=int, default=None, metavar="N",
+                   help=f"tokens of held-out text to record when there is no --trace (default {DEFAULT_TOKENS})")
     p.add_argument("--shape", metavar="FILE", help="plan for a model described by a JSON shape file (needs --trace)")
-    p.add_argument("--evict", default=None, metavar="P,P", help="policies to consider (default: every online policy)")
+    p.add_argument("--evict", default=None, metavar="P,P",
+                   help=f"policies to consider (default: every online policy, {','.join(policies.names(online_only=True))})")
     p.add_argument("--recalibrate", action="store_true", help="measure compute times again instead of using the cache")
     cli.add_json(p)
 
@@ -54,7 +60,7 @@ def _record(model_dir: Path, tokens: int):
     if not held.exists():
         raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --trace FILE")
     with load(model_dir) as eng:
-        ids = eng.tokenizer.encode(read_text_file(held), bos=False)[:tokens]
+        ids = eng.tokenizer.encode_array(read_text_file(held), tokens).tolist()
         eng.start_trace()
         for w in windows(ids, eng.config.max_seq_len, eng.config.bos_token_id):
             eng.logits(w)
@@ -62,14 +68,18 @@ def _record(model_dir: Path, tokens: int):
 
 
 def run(args) -> int:
-    if args.link_speed and args.probe:
-        raise BadOption("give either --link-speed or --probe, not both")
+    cli.refuse_together(args, "link_speed", "probe", "both say how fast a page-in is")
+    cli.refuse_without(args, "regime", "probe", "--probe FILE (the regime picks its warm or cold figures)")
+    cli.refuse_together(args, "max_tokens", "trace", "--max-tokens says how much to record when there is no --trace")
     if args.mem_cap is None and args.target is None:
         raise BadOption("give --mem-cap SIZE (and/or --target TOK_S)")
-    if args.target is not None and not args.target > 0:
+    if args.target is not None and not (args.target > 0 and math.isfinite(args.target)):
         raise BadOption(f"--target must be a positive speed in tok/s, got {args.target}")
-    if args.tokens < 16:
-        raise BadOption(f"--tokens must be at least 16, got {args.tokens}")
+    tokens = DEFAULT_TOKENS if args.max_tokens is None else args.max_tokens
+    if tokens < 16:
+        raise BadOption(f"--max-tokens must be at least 16, got {tokens}")
+    regime = args.regime or "warm"
+    names = parse_policies(args.evict) if args.evict is not None else policies.names(online_only=True)
     rate = parse_rate(args.link_speed, "link speed") if args.link_speed else None
     probe = None
     if args.probe:
@@ -87,7 +97,7 @@ def run(args) -> int:
         L, E, k = shape["layers"], shape["experts"], shape["top_k"]
         expert_nbytes = shape["expert_bytes"]
         fixed = shape["dense_bytes"] + shape.get("kv_cache_bytes", 0) + shape.get("scratch_bytes", 0)
-        page, page_src = page_seconds(expert_nbytes, rate, probe, args.regime)
+        page, page_src = page_seconds(expert_nbytes, rate, probe, regime)
         costs = costs_from_shape(shape, page, page_src)
         what = f"shape {args.shape}"
         cal_note = "compute times from the shape file"
@@ -110,15 +120,15 @@ def run(args) -> int:
             trace = read_trace(args.trace, n_experts=E)
             check_trace_shape(trace, L, E, k, f"model {model_dir}")
         else:
-            trace = _record(model_dir, args.tokens)
-        page, page_src = page_seconds(expert_nbytes, rate, probe, args.regime)
+            trace = _record(model_dir, tokens)
+        page, page_src = page_seconds(expert_nbytes, rate, probe, regime)
         costs = costs_from_calibration(cal, page, page_src)
         what = f"model {model_dir}"
         cal_note = "compute times measured on this machine" + (f" (cached: {cal['cached']})" if cal.get("cached") else "")
     slot = slot_bytes(expert_nbytes)
     min_cap = fixed + L * k * slot
     full_cap = fixed + L * E * slot
-    names = [s.strip() for s in args.evict.split(",") if s.strip()] if args.evict else policies.names(online_only=True)
+    check_decode_steps(trace, args.trace or "the recorded trace")
     for n in names:
         if not getattr(policies.get(n), "online", True):
             raise BadOption(f"policy {n!r} reads the future; plan considers online policies only")
@@ -156,8 +166,8 @@ def run(args) -> int:
         cap = parse_size(args.mem_cap, "memory cap")
         if cap < min_cap:
             raise ImpossibleBudget(
-                f"memory cap {fmt_bytes(cap)} is too small: fixed parts take {fmt_bytes(fixed)} and each of {L} layers needs "
-                f"{k} slots of {fmt_bytes(slot)}; the smallest cap that works is {min_cap} bytes ({fmt_bytes(min_cap)})"
+                f"memory cap {fmt_exact(cap)} is too small: fixed parts take {fmt_bytes(fixed)} and each of {L} layers needs "
+                f"{k} slots of {fmt_bytes(slot)}; the smallest cap that works is {fmt_exact(min_cap)}"
             )
         total = min((cap - fixed) // slot, L * E)
         prog.update(3, "candidates")
@@ -181,7 +191,7 @@ def run(args) -> int:
     curve_pf = [(rec.prefetch, rec.lookahead or 1)] if rec else pf_cands
     curve = []
     best_so_far = None
-    for total in range(L * k, L * E + 1, max(1, L // 2)):
+    for total in range(L * k, L * E + 1, L):  # one more slot per layer at a time
         prs = [pr for _, pr in candidates(total, [curve_policy], curve_pf)]
         pr = max(prs, key=lambda p: p.tok_s)
         if best_so_far is None or pr.tok_s > best_so_far.tok_s:

@@ -7,6 +7,7 @@ import sys
 from .. import cli
 from ..engine import default_model_dir
 from ..errors import BadModelFile
+from ..fileio import check_output
 from ..probe import DEFAULT_RUNS, load_probe, parse_sizes, run_probe, save_probe
 from ..report import Progress, emit_json, table
 from ..units import fmt_bytes
@@ -29,6 +30,7 @@ def add_arguments(p) -> None:
                    "put it on the disk you mean to load models from")
     p.add_argument("--runs", type=int, default=DEFAULT_RUNS, metavar="N", help=f"timed reads per block and regime (default {DEFAULT_RUNS})")
     p.add_argument("--save", metavar="FILE", help="also write the results to FILE (JSON, schema moerun-probe/1) for 'moerun plan'")
+    cli.add_force(p, "the --save file")
     cli.add_json(p)
 
 
@@ -104,6 +106,9 @@ def run(args) -> int:
         model = default_model_dir()
         if not model.is_dir():
             raise BadModelFile(f"{model}: the default model is not there; give --model DIR or --sizes LIST")
+    inputs = cli.model_files(model) if model is not None else []
+    if args.save:  # refused now, not after minutes of measuring
+        check_output(args.save, args.force, inputs, "--save")
     progress = Progress("probe")
 
     def report(done: int, total: int, what: str) -> None:
@@ -115,7 +120,7 @@ def run(args) -> int:
     finally:
         progress.close()
     if args.save:
-        save_probe(args.save, doc)
+        save_probe(args.save, doc, force=args.force, inputs=inputs)
         load_probe(args.save)  # what a planner will read must validate
     if args.json:
         emit_json(doc)

@@ -17,23 +17,25 @@ HELP = "write a quantized copy of a model: group-wise 8/4/3/2-bit packed experts
 
 def add_arguments(p) -> None:
     cli.add_model(p)
-    p.add_argument("out", metavar="OUT", help="new model directory to write")
+    p.add_argument("out", metavar="OUT", help="new model directory to write (its parent must exist; never inside the source)")
     p.add_argument("--expert-bits", type=int, choices=EXPERT_BITS, default=4, metavar="{8,4,3,2}",
                    help="bits per expert weight (default 4)")
     p.add_argument("--attn-bits", type=int, choices=ATTN_BITS, default=16, metavar="{16,8,4}",
                    help="attention weights: 16 = float16, 8 or 4 = quantized like the experts (default 16)")
     p.add_argument("--group", type=int, default=64, metavar="N", help="rows per quantization group along the input axis (default 64)")
     p.add_argument("--method", choices=METHODS, default="hqq", help="rtn = round to nearest; hqq = half-quadratic zero-point refinement (default)")
-    p.add_argument("--force", action="store_true", help="replace OUT if it exists")
+    p.add_argument("--force", action="store_true",
+                   help="replace OUT if it is a model directory (never one holding other files, and never the source)")
     p.add_argument("--no-score", action="store_true", help="skip measuring held-out perplexity of source and result for the card")
-    p.add_argument("--score-tokens", type=int, metavar="N", help="score only the first N tokens of heldout.txt (default: all)")
+    p.add_argument("--max-tokens", type=int, metavar="N", help="score only the first N tokens of heldout.txt (default: all)")
     cli.add_json(p)
 
 
 def run(args) -> int:
     spec = QuantSpec.checked(args.expert_bits, args.attn_bits, args.group, args.method, BadOption)
-    if args.score_tokens is not None and args.score_tokens < 1:
-        raise BadOption(f"--score-tokens must be at least 1, got {args.score_tokens}")
+    if args.max_tokens is not None and args.max_tokens < 1:
+        raise BadOption(f"--max-tokens must be at least 1, got {args.max_tokens}")
+    cli.refuse_together(args, "max_tokens", "no_score", "--max-tokens says how much of heldout.txt to score, --no-score skips scoring")
     src = args.model or default_model_dir()
     progress = Progress("quantizing experts", enabled=None if not args.json else False)
     command = "moerun " + shlex.join(sys.argv[1:]) if sys.argv and sys.argv[0].endswith(("moerun", "__main__.py")) else None
@@ -44,7 +46,7 @@ def run(args) -> int:
 
     try:
         rep = quantize_model(src, args.out, spec, force=args.force, score=not args.no_score,
-                             score_tokens=args.score_tokens, on_progress=on_progress, command=command)
+                             score_tokens=args.max_tokens, on_progress=on_progress, command=command)
     finally:
         progress.close()
     if args.json:

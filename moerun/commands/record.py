@@ -11,7 +11,9 @@ import numpy as np
 from .. import cli
 from ..engine import default_model_dir, load
 from ..errors import BadInput, BadOption
+from ..fileio import check_output
 from ..report import Progress, emit_json
+from ..score import window_nll
 from ..tokenizer import read_text_file
 from ..trace import write_trace
 from ..units import fmt_bytes
@@ -25,8 +27,9 @@ _LIVE_ONLY = ("evict", "slots", "split", "prefetch", "lookahead", "link_speed_em
 def add_arguments(p) -> None:
     cli.add_model(p)
     p.add_argument("--text", metavar="FILE", help="UTF-8 text to route (default: the model directory's heldout.txt)")
-    p.add_argument("--trace", metavar="OUT", required=True, help="trace file to write (.npz)")
-    p.add_argument("--max-tokens", type=int, metavar="N", help="route at most N tokens of the text")
+    p.add_argument("--trace", metavar="FILE", required=True, help="trace file to write (.npz)")
+    cli.add_force(p, "the --trace file")
+    p.add_argument("--max-tokens", type=int, metavar="N", help="route at most the first N tokens of the text")
     cli.add_json(p)
 
 
@@ -39,14 +42,6 @@ def windows(ids: list[int], max_seq_len: int, bos: int | None) -> list[list[int]
     return [head + ids[i : i + body] for i in range(0, len(ids), body)]
 
 
-def _cross_entropy(logits: np.ndarray, targets: np.ndarray) -> float:
-    """Sum of -log p(target) over rows (float64)."""
-    z = logits.astype(np.float64)
-    z -= z.max(axis=-1, keepdims=True)
-    logp = z[np.arange(len(targets)), targets] - np.log(np.exp(z).sum(axis=-1))
-    return float(-logp.sum())
-
-
 def run(args) -> int:
     model_dir = Path(args.model) if args.model else default_model_dir()
     text_path = Path(args.text) if args.text else model_dir / "heldout.txt"
@@ -54,13 +49,13 @@ def run(args) -> int:
         raise BadInput(f"{model_dir} has no heldout.txt; name a text with --text FILE")
     if args.max_tokens is not None and args.max_tokens < 1:
         raise BadOption(f"--max-tokens must be 1 or more, got {args.max_tokens}")
+    inputs = cli.model_files(model_dir) + [text_path]
+    check_output(args.trace, args.force, inputs, "--trace")
     text = read_text_file(text_path)
     engine = load(model_dir)
     with engine:
         c = engine.config
-        ids = engine.tokenizer.encode(text, bos=False)
-        if args.max_tokens is not None:
-            ids = ids[: args.max_tokens]
+        ids = engine.tokenizer.encode_array(text, args.max_tokens).tolist()
         if not ids:
             raise BadInput(f"{text_path}: no tokens to route (the text is empty)")
         wins = windows(ids, c.max_seq_len, c.bos_token_id)
@@ -73,9 +68,9 @@ def run(args) -> int:
         routed = 0
         try:
             for w in wins:
-                logits = engine.logits(w)
-                nll += _cross_entropy(logits[:-1], np.asarray(w[1:]))
-                predicted += len(w) - 1
+                s, k = window_nll(engine.logits(w), np.asarray(w))
+                nll += s
+                predicted += k
                 done += 1
                 routed += len(w)
                 prog.update(done, f"{routed} tokens")
@@ -99,7 +94,7 @@ def run(args) -> int:
                 for key in _LIVE_ONLY:
                     trace.meta.pop(key, None)
                 trace.events = {}
-                write_trace(args.trace, trace)
+                write_trace(args.trace, trace, force=args.force, inputs=inputs, what="--trace")
         elapsed = (time.monotonic_ns() - t0) / 1e9
         n_tokens = trace.n_tokens
         accesses = int((trace.experts >= 0).sum())

@@ -6,6 +6,7 @@ import sys
 
 from .. import cli, policies
 from ..errors import BadOption
+from ..fileio import check_output
 from ..replay import DEFAULT_POLICIES, overall, parse_policies, parse_slots, run_replay
 from ..report import Progress, emit_json, pct, table
 from ..trace import read_trace
@@ -24,13 +25,15 @@ def add_arguments(p) -> None:
     )
     p.add_argument("--slots", metavar="N,N,...", help="expert slots per layer to try, e.g. 1,2,4 or 1-8 (default: 1 up to the expert count)")
     p.add_argument("--prefetch", type=int, default=0, metavar="N", help="also simulate prefetch with the trace's top-N guesses per layer (0 = off)")
-    p.add_argument("--lookahead", type=int, default=1, metavar="L", help="layers ahead that prefetch guesses for (default 1)")
+    p.add_argument("--lookahead", type=int, default=None, metavar="L", help="layers ahead that prefetch guesses for, with --prefetch (default 1)")
     p.add_argument("--expert-bytes", metavar="SIZE", help="bytes of one expert for the bytes-moved figures (default: from the trace)")
-    p.add_argument("--seed", type=int, default=0, metavar="N", help="seed of the time-shuffled and random-routing baselines (default 0)")
+    p.add_argument("--seed", type=cli.seed_value, default=0, metavar="N",
+                   help="seed of the time-shuffled and random-routing baselines, 0 or more (default 0)")
     p.add_argument("--no-baselines", action="store_true", help="skip the time-shuffled and random-routing baselines")
     p.add_argument("--per-layer", action="store_true", help="also show hit rates layer by layer")
     p.add_argument("--plot", metavar="FILE.png", help="draw hit rate against slots, and one layer's residency over time (needs matplotlib)")
-    p.add_argument("--plot-layer", type=int, default=0, metavar="N", help="layer shown in the residency picture (default 0)")
+    cli.add_force(p, "the --plot file")
+    p.add_argument("--plot-layer", type=int, default=None, metavar="N", help="layer shown in the residency picture, with --plot (default 0)")
     p.add_argument("--generic", action="store_true", help="use only the reference path (Residency + policy objects), never a fast path")
     cli.add_json(p)
 
@@ -143,17 +146,22 @@ def run(args) -> int:
     slots = parse_slots(args.slots) if args.slots is not None else None
     if args.prefetch < 0:
         raise BadOption(f"--prefetch must be 0 (off) or a number of guesses, got {args.prefetch}")
-    if args.lookahead < 1:
+    if args.lookahead is not None and args.lookahead < 1:
         raise BadOption(f"--lookahead must be at least 1, got {args.lookahead}")
+    cli.refuse_without(args, "lookahead", "prefetch", "--prefetch N (N > 0)")
+    cli.refuse_without(args, "plot_layer", "plot", "--plot FILE")
+    lookahead = args.lookahead or 1
+    plot_layer = args.plot_layer or 0
     eb = parse_size(args.expert_bytes, "expert size") if args.expert_bytes is not None else None
     if eb is not None and eb <= 0:
         raise BadOption("--expert-bytes must be more than zero")
     trace = read_trace(args.trace)
-    if args.plot_layer < 0 or args.plot_layer >= trace.n_layers:
+    if plot_layer < 0 or plot_layer >= trace.n_layers:
         raise BadOption(f"--plot-layer must be 0..{trace.n_layers - 1} for this trace")
     if args.plot:
         from ..plot import require_matplotlib
 
+        check_output(args.plot, args.force, [args.trace], "--plot")
         require_matplotlib()
     prog = Progress("replay", enabled=None if not args.json else False)
     doc = run_replay(
@@ -162,7 +170,7 @@ def run(args) -> int:
         slots,
         expert_bytes=eb,
         seed=args.seed,
-        prefetch=(args.prefetch, args.lookahead) if args.prefetch else None,
+        prefetch=(args.prefetch, lookahead) if args.prefetch else None,
         baselines=not args.no_baselines,
         fast=not args.generic,
         progress=lambda i, n, label: prog.update(i, label),
@@ -172,7 +180,7 @@ def run(args) -> int:
     if args.plot:
         from ..plot import plot_replay
 
-        doc["plot"] = plot_replay(args.plot, trace, doc, args.plot_layer)
+        doc["plot"] = plot_replay(args.plot, trace, doc, plot_layer, force=args.force, inputs=[args.trace])
     if args.json:
         emit_json(doc)
     else:

@@ -10,6 +10,7 @@ from ..engine import default_model_dir, load
 from ..errors import BadInput, BadOption
 from ..report import Progress, emit_json, table
 from ..score import n_windows, score_text
+from ..summary import cap_check, cap_warning
 from ..tokenizer import read_text_file
 from ..units import fmt_bytes
 
@@ -36,6 +37,7 @@ def run(args) -> int:
     kwargs["model_dir"] = model_dir
     engine = load(**kwargs)  # the model is checked first: its problems are the likelier ones
     with engine:
+        cli.check_against_model(args, engine.config)
         if args.text:
             text_path = Path(args.text)
         else:
@@ -44,13 +46,12 @@ def run(args) -> int:
                 raise BadInput(f"{model_dir} has no heldout.txt; name a text with --text FILE")
         text = read_text_file(text_path)
         c = engine.config
-        n_tok = len(engine.tokenizer.encode(text, bos=False))
-        if args.max_tokens is not None:
-            n_tok = min(n_tok, args.max_tokens)
+        ids = engine.tokenizer.encode_array(text, args.max_tokens)
+        n_tok = ids.size
         bos = None if args.plain_windows else c.bos_token_id
         progress = Progress("scoring", n_windows(n_tok, c.max_seq_len, bos), enabled=None if not args.json else False)
         try:
-            result = score_text(engine, text, args.max_tokens, on_window=progress.update, plain=args.plain_windows)
+            result = score_text(engine, text, args.max_tokens, on_window=progress.update, plain=args.plain_windows, ids=ids)
         finally:
             progress.close()
         engine.memwatch.sample()
@@ -70,6 +71,13 @@ def run(args) -> int:
             **{k: v for k, v in st.items() if k != "pool"},
             "link_emulated": engine.options.get("link_speed") is not None,
         }
+        chk = cap_check(engine)
+        if chk is not None:
+            doc["cap_exceeded"] = chk["exceeded"]
+            doc["cap_allowance_bytes"] = chk["allowance_bytes"]
+        warning = cap_warning(engine)
+        if warning:
+            sys.stderr.write(f"moerun score: warning: {warning}\n")
         if c.extra.get("synthetic"):
             doc["note"] = "random weights: the perplexity means nothing"
         if args.json:
@@ -92,6 +100,8 @@ def run(args) -> int:
                          f"stalled {doc['stall_ms']:.1f} ms"])
         if engine.options.get("link_speed") is not None:
             rows.append(["link", f"{engine.options['link_speed'] / 1e9:.2f} GB/s (emulated)"])
+        if engine.options.get("cold"):
+            rows.append(["cold start", "the model file's pages were dropped from the OS page cache first"])
         rows.append(["peak RSS growth", fmt_bytes(st["peak_rss_growth_bytes"])])
         out.write(f"model {c.name or engine.store.model_dir.name} ({engine.store.model_dir})\n")
         if doc.get("note"):

@@ -20,14 +20,16 @@ HELP = (
 EPILOG = (
     "Weights are random, so the model's text is noise and its routing is meaningless: use it to study "
     "sizes, page-in and budgets, never eviction or prefetch policies. Low-bit quantized experts are not "
-    "written here; they come from the quantize command (arriving later) applied to a model. The directory "
-    "appears under OUT only when complete; a failed or interrupted run leaves nothing there."
+    "written here: run 'moerun quantize --model OUT NEW_OUT' on the result. The directory appears under "
+    "OUT only when complete; a failed or interrupted run leaves nothing there, and the next run to the "
+    "same OUT removes what a killed one left beside it."
 )
 
 
 def add_arguments(p) -> None:
     p.epilog = EPILOG
-    p.add_argument("out", metavar="OUT", help="new model directory to create (must not exist, or be empty)")
+    p.add_argument("out", metavar="OUT", help="new model directory to create (absent or empty; its parent must exist)")
+    p.add_argument("--force", action="store_true", help="replace OUT if it is a model directory (never one holding other files)")
     g = p.add_argument_group("shape (required)")
     g.add_argument("--layers", type=int, required=True, metavar="N", help="transformer layers")
     g.add_argument("--experts", type=int, required=True, metavar="N", help="experts per layer")
@@ -46,8 +48,8 @@ def add_arguments(p) -> None:
     o.add_argument("--no-renorm", action="store_true",
                    help="weigh the chosen experts by their router probabilities as they are, not renormalised to sum to 1")
     p.add_argument("--bits", type=int, default=32, choices=sorted(BITS), help="16 = F16 weights, 32 = F32 (default); "
-                   "quantized bits come with the quantize command")
-    p.add_argument("--seed", type=int, default=0, metavar="N", help="random seed (default 0)")
+                   "for low-bit experts run 'moerun quantize' on the result")
+    p.add_argument("--seed", type=int, default=0, metavar="N", help="random seed, 0 or more (default 0)")
     p.add_argument("--name", metavar="TEXT", help="model name in config.json (default: the directory name)")
     cli.add_json(p)
 
@@ -125,7 +127,7 @@ def run(args) -> int:
 
     command = command_line(args, config)
     try:
-        doc = synthesize(args.out, config, seed=args.seed, progress=report, command=command)
+        doc = synthesize(args.out, config, seed=args.seed, progress=report, command=command, force=args.force)
     finally:
         progress.close()
     if args.json:

@@ -7,7 +7,7 @@ from pathlib import Path
 
 from .. import cli
 from ..engine import default_model_dir
-from ..errors import BadInput
+from ..errors import BadInput, BadOption
 from ..report import Progress, emit_json, table
 from ..sampling import Sampling
 from ..store import ModelStore
@@ -38,6 +38,7 @@ def default_prompts(model_dir: Path, tok: Tokenizer, n: int) -> list[list[int]]:
 
 
 def run(args) -> int:
+    cli.check_memory_options(args)
     model_dir = Path(args.model) if args.model else default_model_dir()
     store = ModelStore.open(model_dir)
     c = store.config
@@ -51,7 +52,16 @@ def run(args) -> int:
         prompts = default_prompts(model_dir, tok, args.prompts)
     prompts = [p[: max(1, c.max_seq_len - args.max_new)] for p in prompts]
     settings = None
-    if args.mem_cap or args.slots or args.prefetch or args.link_speed or args.evict != "lru" or args.shared_pool:
+    offloads = bool(args.mem_cap or args.slots)
+    given = [flag for flag, on in (("--evict", args.evict != "lru"), ("--prefetch", args.prefetch), ("--link-speed", args.link_speed),
+                                   ("--shared-pool", args.shared_pool), ("--cold", args.cold)) if on]
+    if given and not offloads:  # every expert resident: the run would be compared with itself
+        raise BadOption(
+            f"{' and '.join(given)} offload{'s' if len(given) == 1 else ''} nothing without --mem-cap or --slots: "
+            "verify would compare the resident engine with itself; add --mem-cap SIZE"
+        )
+    if offloads:
+        cli.check_against_model(args, c)
         kw = cli.engine_kwargs(args)
         kw.pop("model_dir")
         kw["mem_cap"] = parse_size(kw["mem_cap"], "memory cap") if kw["mem_cap"] else None
