@@ -152,7 +152,8 @@ def test_reader_that_cannot_start_is_not_reported_as_a_bad_option(small_model, m
 
 
 def test_a_stalled_reader_is_said_once_on_stderr_as_one_line_by_the_cli(small_model, monkeypatch, capsys):
-    from moerun import cli, reader as reader_mod
+    from moerun import cli
+    from moerun import reader as reader_mod
 
     real = reader_mod.Reader.__init__
 
