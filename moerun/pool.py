@@ -141,10 +141,12 @@ class PoolStats:
 
 
 class Timing:
-    """Running averages (1/8 weight) the pool judges guesses by: one read's time, one copy's time, and
-    the time from a layer's prefetch point to the next layer's routing."""
+    """Running averages (1/8 or 1/16 weight) the pool judges guesses by: one read's time, one copy's
+    time, the time from a layer's prefetch point to the next layer's routing, the share of read
+    guesses a layer then used (``precision``), and the share of used guesses the compute thread had
+    to copy itself because the reader had not (``late``)."""
 
-    __slots__ = ("read_ns", "copy_ns", "gap_ns", "mark", "outstanding", "every_ns", "last_point")
+    __slots__ = ("read_ns", "copy_ns", "gap_ns", "mark", "outstanding", "every_ns", "last_point", "precision", "late")
 
     def __init__(self, read_ns: float):
         self.read_ns = read_ns
@@ -154,6 +156,14 @@ class Timing:
         self.outstanding = 0  # guess reads handed to the reader and not settled
         self.every_ns = 0.0  # time from one prefetch point to the next
         self.last_point = 0
+        self.precision = 0.6  # before any outcome is seen: about the router's first guess on the bundled model
+        self.late = 0.5
+
+    def outcome(self, used: bool) -> None:
+        self.precision += ((1.0 if used else 0.0) - self.precision) / 16
+
+    def copied_here(self, late: bool) -> None:
+        self.late += ((1.0 if late else 0.0) - self.late) / 16
 
     def point(self, now: int) -> int:
         """A prefetch point now: returns when the next one is expected."""
@@ -174,6 +184,11 @@ class Timing:
             self.mark = 0
 
 
+def rd_poll_none(reader, s: Slot) -> bool:
+    """Has the reader not answered the slot's request yet?"""
+    return reader is None or reader.poll(s.index, s.gen) is None
+
+
 class ExpertPool(ExpertSource):
     """Slots, residency per layer (or shared), and the expert-source interface for the model.
 
@@ -181,9 +196,11 @@ class ExpertPool(ExpertSource):
     the reader process (``moerun.reader``) and come back through shared memory.
     """
 
-    # A guess is read only if it should arrive no later than this share of one read after its
-    # layer starts routing (chosen by measurement: docs/offload.md, "Which guesses are read").
-    late_share = 0.5
+    # What one guess read costs the compute thread, beyond a copy of its own: placing it, handing
+    # it over, and the reader's copy competing with compute for the machine.  Measured on the
+    # bundled model on a 2-vCPU VM as the extra compute time per token with prefetch on, divided by
+    # the guesses read: 60-120 us (docs/offload.md, "Which guesses are read").
+    place_ns = 60_000
 
     def __init__(self, store: ModelStore, budget: Budget, evict: str = "lru", reader=None):
         super().__init__(store)
@@ -295,9 +312,12 @@ class ExpertPool(ExpertSource):
         r.busy.discard(key)
         if s.owed:  # read here already; the reader has let go of it now
             s.owed = False
+            if s.dropped:  # and its layer went without it meanwhile
+                self._unclaimed(s, key)
             return
         st = self.stats
         if s.dropped and (result != reader_child.OK or s.transfer is not None):
+            s.state = EMPTY
             self._unclaimed(s, key)  # dropped while the reader held it: its bytes never (emulated: officially) arrived
             return
         s.dropped = False
@@ -309,6 +329,7 @@ class ExpertPool(ExpertSource):
             st.bytes_in += self.store.expert_nbytes
             st.prefetch_ns += ns
             return
+        s.state = EMPTY  # the reader has let go of it, without its bytes
         if result == reader_child.FAILED:
             st.prefetch_failed += 1
         if s.guess:  # a guess no layer has claimed: forget it
@@ -334,7 +355,10 @@ class ExpertPool(ExpertSource):
             s.transfer = None
 
     def _give_back(self, s: Slot) -> None:
-        """Forget a guess's slot: it becomes free."""
+        """Forget a guess's slot: it becomes free (never while the reader may still write it)."""
+        assert s.state != LOADING and not s.owed, "a slot the reader may still write is never given back"
+        if s.guess:
+            self.timing.outcome(False)
         if s.guess and s.state != PENDING:
             self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
         s.res.remove(self.key(s.layer, s.expert))
@@ -356,6 +380,7 @@ class ExpertPool(ExpertSource):
         """Bookkeeping when a READY (or PENDING) slot's expert is evicted."""
         if s.guess:
             self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
+            self.timing.outcome(False)
             s.guess = False
         if s.transfer is not None and s.transfer.end < 0:
             self.link.drop(s.transfer, time.monotonic_ns())
@@ -414,8 +439,9 @@ class ExpertPool(ExpertSource):
             elif s.state != LOADING:
                 continue  # already read: keep it
             self.stats.prefetch_dropped += 1
-            if s.state == LOADING:
-                self.reader.cancel(s.index, s.gen)
+            if s.state == LOADING or s.owed:  # the reader may still write it: given back once it answers
+                if s.state == LOADING:
+                    self.reader.cancel(s.index, s.gen)
                 s.dropped = True
             else:  # never (officially) arrived: its bytes, copied or not, are not to be used
                 self._give_back(s)
@@ -466,6 +492,7 @@ class ExpertPool(ExpertSource):
                 ready = False
             elif s.guess:
                 s.guess = False
+                self.timing.outcome(True)
                 st.prefetch_used += 1
                 st.prefetch_hits[layer] += 1
                 events[e] = [PREFETCHED, slot, 0, 0]
@@ -511,6 +538,8 @@ class ExpertPool(ExpertSource):
         if self._prefill or ev is None:
             return self._prefill_weights(layer, expert)
         s = self.slots[ev[1]]
+        if ev[0] == PREFETCHED:  # did the reader copy it in time, or is it the compute thread's to copy?
+            self.timing.copied_here(s.state == PENDING or (s.state == LOADING and rd_poll_none(self.reader, s)))
         if s.state == READY and s.transfer is None:
             if ev[0] == PREFETCHED:
                 self._hidden(s, time.monotonic_ns())
@@ -687,6 +716,12 @@ class ExpertPool(ExpertSource):
             return self.link.backlog_until(now) + self.link.ns(self.store.expert_nbytes)
         return now + (self.timing.outstanding + 1) * self.timing.read_ns
 
+    def worth_guessing(self) -> bool:
+        """Could any guess pay at all?  Not when one read takes less time than a guess costs: then the
+        prefetch point is skipped, guess rule included."""
+        read = self.timing.read_ns if self.link is None else self.link.ns(self.store.expert_nbytes)
+        return self._all_resident is None and read > self.place_ns
+
     def prefetch_point(self) -> None:
         """The model reached a prefetch point (its guesses are placed next): a lingering reader is told
         when to expect the next one."""
@@ -697,10 +732,13 @@ class ExpertPool(ExpertSource):
     def prefetch(self, layer: int, guesses: list[int], target: int, hook=None) -> None:
         """Place the guesses for ``layer`` (best first) and hand their reads to the reader (compute thread).
 
-        A guess already resident or in flight costs nothing more.  Another is read only if it can
-        arrive about when its layer needs it (``late_share``) and the policy would rather hold it
-        than its victim (``Policy.admits``).  It never evicts an expert pinned by the layer being
-        computed (shared pool), a slot being read, or another guess of the same round.
+        A guess already resident or in flight costs nothing more.  Another is read only if it pays:
+        the read time it would save its layer if used (all of it if it arrives by the time the layer
+        routes, less the lateness if not), times the share of guesses used so far, must exceed what
+        it costs the compute thread (placing it, and a copy of its own as often as the reader has
+        been late); and the policy must rather hold it than its victim (``Policy.admits``).  It never
+        evicts an expert pinned by the layer being computed (shared pool), a slot being read, or
+        another guess of the same round.
         ``hook(layer, expert)`` (a test hook) runs before a read is handed over; raising fails it.
         """
         st = self.stats
@@ -715,14 +753,17 @@ class ExpertPool(ExpertSource):
         now = time.monotonic_ns()
         timing = self.timing
         timing.mark = now
-        need_at = now + timing.gap_ns * (target - self.progress) + timing.read_ns * self.late_share
+        need_at = now + timing.gap_ns * (target - self.progress)
+        read = timing.read_ns if self.link is None else self.link.ns(self.store.expert_nbytes)
+        cost = self.place_ns + timing.late * timing.copy_ns
         link, nbytes = self.link, self.store.expert_nbytes
         for e in guesses:
             key = base + e
             if key in r.slot_of:
                 st.prefetch_resident += 1
                 continue
-            if self._arrival(now) > need_at:
+            late = max(0, self._arrival(now) - need_at)
+            if timing.precision * max(0.0, read - late) <= cost:
                 st.prefetch_declined += 1
                 continue
             try:

@@ -96,6 +96,8 @@ class Prefetcher:
     def __call__(self, layer: int, h: np.ndarray) -> None:
         """Layer ``layer``'s prefetch point (compute thread, one token)."""
         pool = self.pool
+        if not pool.worth_guessing():
+            return
         base = pool.step * pool.config.n_layers
         pool.prefetch_point()
         for j, guesses in enumerate(self.rule.top(layer, h, self.n), 1):

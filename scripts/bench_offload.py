@@ -36,16 +36,21 @@ from moerun.sampling import Sampling
 from moerun.units import fmt_bytes, parse_rate
 
 
-def decode(model, prompt, max_new, seed, **kw):
-    """Decode tok/s of one generation, with the engine's stats."""
+def decode(model, prompt, max_new, seed, gens=1, **kw):
+    """Decode tok/s of ``gens`` generations in one engine (the pool carries over), with the engine's stats."""
     with moerun.load(model, **kw) as eng:
-        gen = eng.generate(prompt, max_new=max_new, sampling=Sampling(temperature=0.8, seed=seed))
+        steps = decode_ns = total_ns = 0
+        tokens = []
+        for i in range(gens):
+            gen = eng.generate(prompt, max_new=max_new, sampling=Sampling(temperature=0.8, seed=seed + i))
+            steps += gen.decode_steps
+            decode_ns += gen.decode_ns
+            total_ns += gen.decode_ns + gen.prefill_ns
+            tokens += gen.new_ids
         stats = eng.stats
-        stall = getattr(eng.experts, "stall_ns", None)
-        if stall is None and "pool" in stats:
-            stall = stats["pool"]["stall_ns"]
-    return {"tok_s": gen.decode_tok_s, "decode_s": gen.decode_ns / 1e9, "tokens": gen.new_ids, "stats": stats,
-            "stall_s": (stall or 0) / 1e9, "total_s": (gen.decode_ns + gen.prefill_ns) / 1e9}
+        stall = stats["pool"]["stall_ns"] if "pool" in stats else eng.experts.stall_ns
+    return {"tok_s": steps / (decode_ns / 1e9) if decode_ns else 0.0, "decode_s": decode_ns / 1e9, "tokens": tokens,
+            "stats": stats, "stall_s": (stall or 0) / 1e9, "total_s": total_ns / 1e9}
 
 
 SESSION_PROMPTS = [
@@ -153,8 +158,11 @@ def stop_busy(procs: list) -> None:
 
 
 def spread(rows: list[dict]) -> dict:
+    import statistics
+
     tok = [r["tok_s"] for r in rows]
-    return {"best": max(tok), "worst": min(tok), "runs": tok, "spread": (max(tok) - min(tok)) / max(tok) if max(tok) else 0.0}
+    return {"best": max(tok), "median": statistics.median(tok), "worst": min(tok), "runs": tok,
+            "spread": (max(tok) - min(tok)) / max(tok) if max(tok) else 0.0}
 
 
 def main() -> int:
@@ -162,6 +170,7 @@ def main() -> int:
     ap.add_argument("--model", default=None, help="model directory (default: the bundled model)")
     ap.add_argument("--prompt", default="<doc>")
     ap.add_argument("--max-new", type=int, default=240)
+    ap.add_argument("--gens", type=int, default=3, help="generations per run, one engine (default 3: about 700 decode steps)")
     ap.add_argument("--seed", type=int, default=1)
     ap.add_argument("--prefetch", type=int, default=2)
     ap.add_argument("--lookahead", type=int, default=1)
@@ -169,7 +178,7 @@ def main() -> int:
     ap.add_argument("--link-speed", default=None, help="fix the emulated link instead of calibrating it")
     ap.add_argument("--links", default="1GB/s,2GB/s,3GB/s,6GB/s", help="links of the per-link table ('' for none)")
     ap.add_argument("--busy", type=int, default=1, help="CPU-bound processes of our own beside the busy rows (0: no busy rows)")
-    ap.add_argument("--repeats", type=int, default=5, help="runs per configuration, interleaved; best and spread are kept")
+    ap.add_argument("--repeats", type=int, default=7, help="runs per configuration, interleaved; median, best and spread are kept")
     ap.add_argument("--evict", default=None, help="compare these eviction policies live instead, e.g. lru,markov")
     ap.add_argument("--slots-per-layer", type=int, default=4, help="with --evict: expert slots per layer (default 4)")
     ap.add_argument("--session-prompts", type=int, default=len(SESSION_PROMPTS), help="with --evict: prompts per session")
@@ -195,7 +204,7 @@ def main() -> int:
     else:  # calibrate: LRU at real speed, then the rate at which page-in time equals compute time (best of 3)
         rates = []
         for _ in range(3):
-            cal = decode(model, prompt, a.max_new, a.seed, mem_cap=cap)
+            cal = decode(model, prompt, a.max_new, a.seed, a.gens, mem_cap=cap)
             misses = cal["stats"]["pool"]["misses"]
             compute_s = cal["decode_s"] - cal["stall_s"]
             rates.append(misses * st.expert_nbytes / max(compute_s, 1e-6))
@@ -221,15 +230,18 @@ def main() -> int:
     busy_runs: dict = {"lru": [], "prefetch": []}
     for _ in range(a.repeats):  # interleaved, so a slow spell of a shared machine hits every configuration alike
         for key, kw in configs.items():
-            runs[key].append(decode(model, prompt, a.max_new, a.seed, **kw))
+            runs[key].append(decode(model, prompt, a.max_new, a.seed, a.gens, **kw))
         if a.busy:
             procs = busy_processes(a.busy)
             try:
                 for key in busy_runs:
-                    busy_runs[key].append(decode(model, prompt, a.max_new, a.seed, **configs[key]))
+                    busy_runs[key].append(decode(model, prompt, a.max_new, a.seed, a.gens, **configs[key]))
             finally:
                 stop_busy(procs)
+    import statistics
+
     best = {k: max(v, key=lambda r: r["tok_s"]) for k, v in runs.items()}
+    median = {k: statistics.median(r["tok_s"] for r in v) for k, v in runs.items()}
     same = all(r["tokens"] == best["bare"]["tokens"] for v in list(runs.values()) + list(busy_runs.values()) for r in v)
     lru_pool = best["lru"]["stats"]["pool"]
     pf_pool = best["prefetch"]["stats"]["pool"]
@@ -261,17 +273,18 @@ def main() -> int:
         "same_tokens_everywhere": same,
         "spread": {k: spread(v) for k, v in runs.items()},
     }
+    doc["tok_s_is"] = "median of the interleaved runs (best and spread under spread)"
     for key in configs:
         if "@" not in key:
-            doc[f"{key}_tok_s"] = best[key]["tok_s"]
+            doc[f"{key}_tok_s"] = median[key]
     if a.busy:
         for key, rows in busy_runs.items():
-            doc[f"{key}_busy_tok_s"] = max(r["tok_s"] for r in rows)
+            doc[f"{key}_busy_tok_s"] = statistics.median(r["tok_s"] for r in rows)
             doc["spread"][f"{key}_busy"] = spread(rows)
     doc["per_link"] = [
-        {"link_bytes_s": r, "lru_tok_s": best[f"lru@{r:g}"]["tok_s"], "prefetch_tok_s": best[f"prefetch@{r:g}"]["tok_s"],
+        {"link_bytes_s": r, "lru_tok_s": median[f"lru@{r:g}"], "prefetch_tok_s": median[f"prefetch@{r:g}"],
          "lru_stall_share": best[f"lru@{r:g}"]["stall_s"] / best[f"lru@{r:g}"]["total_s"],
-         "prefetch_vs_lru": best[f"prefetch@{r:g}"]["tok_s"] / best[f"lru@{r:g}"]["tok_s"]}
+         "prefetch_vs_lru": median[f"prefetch@{r:g}"] / median[f"lru@{r:g}"]}
         for r in links
     ]
     doc["ratios"] = {
@@ -291,14 +304,14 @@ def main() -> int:
     print(f"model {model}; cap {fmt_bytes(cap)} = fixed {fmt_bytes(d + kv + s)} + {n_slots} slots of {fmt_bytes(per)} "
           f"(experts total {fmt_bytes(expert_total)}); link {rate / 1e9:.3f} GB/s (emulated, LRU about half stalled); prefetch "
           f"{a.prefetch} guesses, lookahead {a.lookahead}, from {a.prefetch_from}; {a.max_new} tokens; configurations interleaved, "
-          f"best of {a.repeats}; {_bench.BLAS_NOTE}")
-    print(f"{'configuration':<18}{'decode tok/s':>14}{'spread':>9}{'stall share':>13}{'hit rate':>10}")
+          f"{a.repeats} runs of {a.gens} generations each, median shown; {_bench.BLAS_NOTE}")
+    print(f"{'configuration':<18}{'median tok/s':>14}{'spread':>9}{'stall share':>13}{'hit rate':>10}")
     rows = [(k, k.replace("_", "-")) for k in configs if "@" not in k]
     for key, label in rows:
         r = best[key]
         hr = r["stats"].get("pool", {}).get("hit_rate") if "mem_cap" in configs[key] else None
         share = r["stall_s"] / r["total_s"] if r["total_s"] else 0
-        print(f"{label:<18}{r['tok_s']:>14.0f}{100 * doc['spread'][key]['spread']:>8.0f}%{100 * share:>12.1f}%"
+        print(f"{label:<18}{median[key]:>14.0f}{100 * doc['spread'][key]['spread']:>8.0f}%{100 * share:>12.1f}%"
               f"{'' if hr is None else f'{100 * hr:.1f}%':>10}")
     if a.busy:
         for key in busy_runs:

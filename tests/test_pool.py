@@ -137,7 +137,7 @@ def test_a_chosen_guess_whose_read_failed_keeps_its_slot_while_the_layer_waits_f
     reader = Reader(store, budget.n_slots, budget.slot)
     try:
         pool = ExpertPool(store, budget, "lru", reader)
-        pool.late_share = 1e9  # admit every guess, whatever its timing
+        pool.place_ns = -(10**15)  # a guess that costs less than nothing: every guess is read
         reader.set_faults(fail_every=1)  # every read the reader does reports a failure
         pool.begin_step(0)
         pool.prefetch(0, [1, 2], 0)

@@ -129,7 +129,8 @@ def test_reader_that_stops_answering_is_stopped_and_the_output_stays_identical(s
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         t0 = time.monotonic()
-        got = _generate(small_model, setup=setup, mem_cap=cap, prefetch=2, reader_timeout=0.3)
+        # a slow emulated link, so that guesses are worth reading and the reader has work when it stops
+        got = _generate(small_model, setup=setup, mem_cap=cap, prefetch=2, link_speed="50MB/s", reader_timeout=0.3)
         took = time.monotonic() - t0
     assert got[0] == ref[0]
     assert np.array_equal(_bits(got[1]), _bits(ref[1]))
@@ -174,7 +175,7 @@ def test_a_stalled_reader_is_said_once_on_stderr_as_one_line_by_the_cli(small_mo
 
     monkeypatch.setattr(reader_mod.Reader, "__init__", frozen_soon)
     code = cli.main(["generate", "--model", str(small_model), "--prompt", "abc", "--max-new", "40", "--mem-cap",
-                     str(_min_cap(small_model)), "--prefetch", "2", "--quiet"])
+                     str(_min_cap(small_model)), "--prefetch", "2", "--link-speed", "50MB/s", "--quiet"])
     err = capsys.readouterr().err
     assert code == 0
     lines = [ln for ln in err.splitlines() if "warning" in ln]
