@@ -192,3 +192,15 @@ def tmpfs(where: Path, size: str = "64k", read_only: bool = False):
         yield where
     finally:
         subprocess.run(["umount", "-l", str(where)], capture_output=True)
+
+
+@pytest.fixture
+def every_guess_read(monkeypatch):
+    """Guesses are read whatever they would cost: the prefetch machinery runs on any model and link.
+
+    The pool normally reads a guess only if it pays (moerun.pool.ExpertPool.place_ns); on the tiny
+    test models and fast links few would, and tests of what guesses must never break would test little.
+    """
+    from moerun.pool import ExpertPool
+
+    monkeypatch.setattr(ExpertPool, "place_ns", -(10**15))

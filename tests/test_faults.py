@@ -46,6 +46,8 @@ from moerun.sampling import Sampling
 from moerun.synth import synth_config, write_model
 from moerun.trace import read_trace
 
+pytestmark = pytest.mark.usefixtures("every_guess_read")  # the prefetch machinery runs whatever guesses cost
+
 SAMPLING = Sampling(temperature=0.8, top_p=0.95, seed=3)
 PROMPT_IDS = [0, 12, 40, 7, 99, 150, 3, 61, 61, 200, 18]
 MAX_NEW = 24

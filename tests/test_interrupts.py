@@ -43,6 +43,8 @@ from moerun.budget import minimum_cap
 from moerun.fileio import atomic_path
 from moerun.trace import read_trace
 
+pytestmark = pytest.mark.usefixtures("every_guess_read")  # the prefetch machinery runs whatever guesses cost
+
 EXIT_BOUND_S = 5.0  # requirement: 1 s after SIGINT; the margin is for the shared CI machine
 START_TIMEOUT_S = 90.0  # time allowed for a command to start showing progress
 TMP_PREFIX = ".moerun-tmp-"

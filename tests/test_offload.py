@@ -26,6 +26,8 @@ from moerun.budget import minimum_cap
 from moerun.errors import ImpossibleBudget
 from moerun.sampling import Sampling
 
+pytestmark = pytest.mark.usefixtures("every_guess_read")  # the prefetch machinery runs whatever guesses cost
+
 SAMPLING = Sampling(temperature=0.8, top_p=0.95, seed=0)
 MAX_NEW = 10
 

@@ -29,6 +29,8 @@ from moerun.residency import Residency
 from moerun.sampling import Sampling
 from moerun.trace import Trace, read_trace, write_trace
 
+pytestmark = pytest.mark.usefixtures("every_guess_read")  # the prefetch machinery runs whatever guesses cost
+
 SILBERSCHATZ = [7, 0, 1, 2, 0, 3, 0, 4, 2, 3, 0, 3, 2, 1, 2, 0, 1, 7, 0, 1]  # OSC 9th ed., ch. 9
 LEARNED = (LRFU, Markov)
 

@@ -160,3 +160,26 @@ def test_a_chosen_guess_whose_read_failed_keeps_its_slot_while_the_layer_waits_f
     finally:
         reader.close()
         store.close()
+
+
+def test_guesses_that_cannot_pay_are_not_even_made(small_model):
+    # a link so fast that one read takes less than what a guess costs the compute thread:
+    # the prefetch point is skipped, guess rule included (ExpertPool.worth_guessing)
+    with moerun.load(small_model, tokenizer=False, mem_cap=_smallest(small_model), prefetch=2, link_speed="1000GB/s") as eng:
+        eng.generate(prompt_ids=[1, 2, 3], max_new=30)
+        pf = eng.stats["pool"]["prefetch"]
+    assert pf["guesses"] == 0 and pf["loads"] == 0
+
+
+def test_guesses_are_read_on_a_link_slow_enough_for_them_to_pay(small_model):
+    with moerun.load(small_model, tokenizer=False, mem_cap=_smallest(small_model), prefetch=2, link_speed="5MB/s") as eng:
+        eng.generate(prompt_ids=[1, 2, 3], max_new=30)
+        pf = eng.stats["pool"]["prefetch"]
+    assert pf["guesses"] > 0 and pf["loads"] > 0
+    assert pf["declined"] + pf["loads"] + pf["already_resident"] <= pf["guesses"]
+
+
+def _smallest(model_dir) -> int:
+    with moerun.load(model_dir, tokenizer=False) as eng:
+        st = eng.store
+        return minimum_cap(st.config, st.dense_nbytes, st.expert_nbytes)

@@ -22,6 +22,8 @@ from moerun.reader import Reader
 from moerun.sampling import Sampling
 from moerun.store import ModelStore
 
+pytestmark = pytest.mark.usefixtures("every_guess_read")  # the prefetch machinery runs whatever guesses cost
+
 SAMPLING = Sampling(temperature=0.8, top_p=0.95, seed=3)
 
 

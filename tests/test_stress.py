@@ -29,6 +29,8 @@ from moerun import policies
 from moerun.budget import minimum_cap
 from moerun.sampling import Sampling
 
+pytestmark = pytest.mark.usefixtures("every_guess_read")  # the prefetch machinery runs whatever guesses cost
+
 ONLINE_POLICIES = [name for name in policies.names() if getattr(policies.get(name), "online", True)]
 PROMPTS = [[0, 5, 9, 200, 31], [0, 77], [0, 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 11, 12], [0, 140, 140, 140]]
 SEEDS = [0, 11]
