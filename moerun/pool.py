@@ -90,6 +90,7 @@ class PoolStats:
     prefetch_used: int = 0  # prefetched experts that a layer then used
     prefetch_wasted_bytes: int = 0  # prefetched bytes evicted or dropped before any use
     prefetch_failed: int = 0
+    prefetch_copied_here: int = 0  # guesses the compute thread copied itself (the reader had not yet)
     prefetch_ns: int = 0  # the reader's copy time of guesses
     hidden_ns: int = 0  # transfer time of used guesses that no layer waited for
     reader_stalled: bool = False
@@ -133,6 +134,7 @@ class PoolStats:
                 "accuracy": (self.prefetch_used / self.prefetch_loads) if self.prefetch_loads else None,
                 "wasted_bytes": self.prefetch_wasted_bytes,
                 "failed": self.prefetch_failed,
+                "copied_here": self.prefetch_copied_here,
                 "pagein_ns": self.prefetch_ns,
                 "hidden_ns": self.hidden_ns,
                 "reader_stalled": self.reader_stalled,
@@ -601,6 +603,7 @@ class ExpertPool(ExpertSource):
         s.read_ns = ns
         self.stats.bytes_in += self.store.expert_nbytes
         self.stats.prefetch_ns += ns
+        self.stats.prefetch_copied_here += 1
         return True
 
     def _wait(self, deadline: int) -> None:
@@ -624,6 +627,7 @@ class ExpertPool(ExpertSource):
         is harmless: they are the same bytes)."""
         self.reader.cancel(s.index, s.gen)
         self.store.copy_in(s.layer, s.expert, s.buf)
+        self.stats.prefetch_copied_here += 1
         s.state = READY
         s.owed = True
         s.ready_at = time.monotonic_ns()
@@ -717,10 +721,11 @@ class ExpertPool(ExpertSource):
         return now + (self.timing.outstanding + 1) * self.timing.read_ns
 
     def worth_guessing(self) -> bool:
-        """Could any guess pay at all?  Not when one read takes less time than a guess costs: then the
-        prefetch point is skipped, guess rule included."""
-        read = self.timing.read_ns if self.link is None else self.link.ns(self.store.expert_nbytes)
-        return self._all_resident is None and read > self.place_ns
+        """Could any guess pay at all?  Not when even one arriving in time would save less than it costs
+        (``prefetch``'s rule with no lateness): then the prefetch point is skipped, guess rule included."""
+        t = self.timing
+        read = t.read_ns if self.link is None else self.link.ns(self.store.expert_nbytes)
+        return self._all_resident is None and t.precision * read > self.place_ns + t.late * t.copy_ns
 
     def prefetch_point(self) -> None:
         """The model reached a prefetch point (its guesses are placed next): a lingering reader is told

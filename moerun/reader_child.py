@@ -66,6 +66,10 @@ LINGER_NAP_MAX_S = 0.0008
 # A request can slip past the moment the reader blocks (the engine saw it still lingering), so
 # the first block after lingering is short.
 FIRST_BLOCK_S = 0.001
+# The reader runs at the lowest priority: on an idle core it runs as soon as it wakes, and on a busy
+# machine it never takes a core from the engine or another program (the engine copies what it has
+# not reached in time itself).
+NICE = 19
 IDLE_CHECK_S = 0.05  # while blocked, look this often whether the engine's process is still there
 
 
@@ -234,6 +238,10 @@ class Server:
 
     def run(self) -> None:
         c = self.c
+        try:  # background work: on a busy machine this process yields to everything else, the engine included
+            os.nice(NICE)
+        except OSError:
+            pass
         c[PID] = os.getpid()
         last_work = 0  # so the reader blocks at once until the first request
         while not c[STOP]:
