@@ -22,11 +22,12 @@ from .model import KVCache, Transformer
 from .pool import ExpertPool
 from .prefetch import GuessRule, Prefetcher
 from .reader import STALL_TIMEOUT_S, Reader
+from .routing import ReplayedRouting
 from .sampling import Sampler, Sampling
 from .sources import BareExperts, NoReuseExperts, WholeLayerExperts
 from .store import ModelStore
 from .tokenizer import Tokenizer
-from .trace import TRACE_GUESSES, TRACE_LOOKAHEAD, Recorder, Trace
+from .trace import TRACE_GUESSES, TRACE_LOOKAHEAD, Recorder, Trace, read_trace
 from .units import parse_rate, parse_size
 
 
@@ -104,6 +105,13 @@ class Engine:
         if self.pool is not None and options.get("prefetch"):
             rule = GuessRule(self.model, options["lookahead"])
             self.prefetcher = Prefetcher(self.pool, rule, options["prefetch"], options["lookahead"], reader)
+
+    def replay_routing(self, routing) -> None:
+        """Take every layer's routing from a trace (a path or a Trace) from now on (moerun.routing)."""
+        label = str(routing) if not isinstance(routing, Trace) else "routing trace"
+        trace = routing if isinstance(routing, Trace) else read_trace(routing, n_experts=self.config.n_experts)
+        self.model.replayed = ReplayedRouting(trace, self.config, label)
+        self.options["routing"] = label
 
     # ------------------------------------------------------------------ the prefetch point
     def _seen(self):
@@ -329,6 +337,7 @@ def load(
     tokenizer: bool = True,
     baseline: str | None = None,
     reader_timeout: float = STALL_TIMEOUT_S,
+    routing=None,
 ) -> Engine:
     """Open a model and return an engine (DESIGN section 4).
 
@@ -341,6 +350,8 @@ def load(
     baseline: "whole-layer" or "no-reuse", the naive offloading baselines of the benchmarks.
     reader_timeout: seconds the prefetch reader may go without progress while the engine waits
     before the engine stops it and reads every expert itself (docs/offload.md).
+    routing: a routing trace (path or moerun.trace.Trace): each layer takes its chosen experts and
+    weights from it instead of its router, everything else computed for real (moerun.routing).
     """
     from . import policies
     from .store import MECHANISMS
@@ -400,8 +411,12 @@ def load(
             "mechanism": mechanism,
             "bare": bare,
             "baseline": baseline,
+            "routing": None,
         }
-        return Engine(store, tok, budget, experts, reader, watch, options)
+        engine = Engine(store, tok, budget, experts, reader, watch, options)
+        if routing is not None:
+            engine.replay_routing(routing)
+        return engine
     except BaseException:
         if reader is not None:
             reader.close()

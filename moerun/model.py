@@ -161,6 +161,7 @@ class Transformer:
             )
         self.cos, self.sin = rotary_tables(c)
         self.group = c.n_heads // c.n_kv_heads
+        self.replayed = None  # a moerun.routing.ReplayedRouting: routing taken from a trace instead of the routers
 
     # -------------------------------------------------------------- attention
     def attention(self, x: np.ndarray, layer: int, start: int, cache: KVCache) -> np.ndarray:
@@ -200,7 +201,10 @@ class Transformer:
         experts.begin_layer(layer)
         h = x + self.attention(rmsnorm(x, w.attn_norm, self.eps), layer, start, cache)
         u = rmsnorm(h, w.moe_norm, self.eps)
-        chosen, weights, probs = route(u, w.router, self.config.top_k, self.config.norm_topk)
+        if self.replayed is None:
+            chosen, weights, probs = route(u, w.router, self.config.top_k, self.config.norm_topk)
+        else:  # routing replayed from a trace (moerun.routing): everything else is computed for real
+            chosen, weights, probs = self.replayed.route(layer, u.shape[0])
         experts.routed(layer, chosen, weights, probs)
         if seen is not None:
             seen(layer, "attention", h)
@@ -216,6 +220,8 @@ class Transformer:
         for layer in range(self.config.n_layers):
             x = self.layer(x, layer, start, cache, experts, seen)
         cache.length = start + len(ids)
+        if self.replayed is not None:
+            self.replayed.advance(len(ids))
         return x
 
     def logits(self, x: np.ndarray) -> np.ndarray:

@@ -83,6 +83,8 @@ def run_text(engine, gen=None) -> str:
     link = engine.options.get("link_speed")
     if link is not None:
         lines.append(f"link: {fmt_rate(link)} (emulated)")
+    if engine.options.get("routing"):
+        lines.append(f"routing replayed from {engine.options['routing']} (not the model's routers)")
     if engine.options.get("cold"):
         lines.append("cold start: the model file's pages were dropped from the OS page cache before the run")
     if b.cap is not None:

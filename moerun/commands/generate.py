@@ -26,6 +26,8 @@ def add_arguments(p) -> None:
     cli.add_prompt(p)
     cli.add_memory(p)
     p.add_argument("--trace", metavar="FILE", help="write every routing decision and page-in event to FILE (.npz)")
+    p.add_argument("--routing", metavar="FILE", help="take every layer's routing from this trace instead of the routers "
+                   "(everything else is computed for real; to run large random models with a trained model's routing)")
     cli.add_force(p, "the --trace file")
     p.add_argument("--quiet", action="store_true", help="print the text only, no run summary on stderr")
     cli.add_json(p)
@@ -35,11 +37,11 @@ def run(args) -> int:
     if args.max_new < 0:  # refuse before loading the model or echoing the prompt
         raise BadOption(f"--max-new must be zero or more, got {args.max_new}")
     prompt = cli.read_prompt(args)
-    inputs = cli.model_files(args.model) + ([args.prompt_file] if args.prompt_file else [])
+    inputs = cli.model_files(args.model) + ([args.prompt_file] if args.prompt_file else []) + ([args.routing] if args.routing else [])
     if args.trace:
         check_output(args.trace, args.force, inputs, "--trace")
     sampling = Sampling(args.temperature, args.top_p, args.seed)
-    engine = load(**cli.engine_kwargs(args))
+    engine = load(**cli.engine_kwargs(args), routing=args.routing)
     stream = not args.json
     new: list[int] = []
     out = sys.stdout
