@@ -30,7 +30,6 @@ has one ``Slot`` record.  Everything here runs on the compute thread.
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass, field
 
 import numpy as np
 
@@ -38,152 +37,11 @@ from . import policies, reader_child
 from .budget import Budget
 from .clock import wait_until
 from .errors import BadOption
-from .link import Transfer
+from .guesses import GuessPlacement, Timing
 from .residency import NoVictim, Residency
+from .slots import EMPTY, HIT, LOADING, MISS, PENDING, PREFETCHED, READY, PoolStats, Slot
 from .sources import ExpertSource, aligned_block
 from .store import ModelStore
-
-# PENDING: a guess booked on the emulated link, with no reader, whose bytes the compute thread has
-# not copied yet; LOADING: the reader process owns the slot's bytes until it publishes
-EMPTY, PENDING, LOADING, READY = 0, 3, 1, 2
-HIT, PREFETCHED, MISS = 0, 1, 2
-KIND_NAMES = {HIT: "hit", PREFETCHED: "prefetched", MISS: "miss"}
-
-
-@dataclass(eq=False, slots=True)
-class Slot:
-    """One expert-sized buffer of the pool and what it holds."""
-
-    index: int
-    buf: np.ndarray
-    bound: object  # the codec's views of buf
-    state: int = EMPTY
-    layer: int = -1  # the expert it holds or is being read into (-1: none)
-    expert: int = -1
-    res: Residency | None = None  # the residency that holds it
-    gen: int = 0  # bumped by every new read, so a result for an earlier read is never taken
-    guess: bool = False  # loaded by a guess that no layer has used yet
-    dropped: bool = False  # a guess given back while the reader still held it: freed once it lets go
-    owed: bool = False  # read here while the reader still held it: the reader may write it until it answers
-    transfer: Transfer | None = None  # its emulated transfer, with a link
-    ready_at: int = 0  # when its bytes arrived (no link)
-    read_ns: int = 0  # how long its last read took
-
-
-@dataclass
-class PoolStats:
-    n_layers: int
-    accesses: list = field(init=False)
-    hits: list = field(init=False)  # resident without a pending guess
-    prefetch_hits: list = field(init=False)  # resident or in flight thanks to a guess
-    misses: list = field(init=False)
-    stall_ns: list = field(init=False)
-    pagein_ns: list = field(init=False)  # page-in time of demand reads
-    bytes_in: int = 0  # all bytes paged in (demand + prefetch)
-    demand_loads: int = 0
-    prefill_loads: int = 0
-    prefetch_guesses: int = 0  # guesses made
-    prefetch_resident: int = 0  # guesses already resident or in flight: nothing to do
-    prefetch_declined: int = 0  # guesses not read: too late to arrive in time, or the policy kept its victim
-    prefetch_loads: int = 0  # guesses handed to the reader
-    prefetch_dropped: int = 0  # guesses whose layer started without them before they took any link time
-    prefetch_used: int = 0  # prefetched experts that a layer then used
-    prefetch_wasted_bytes: int = 0  # prefetched bytes evicted or dropped before any use
-    prefetch_failed: int = 0
-    prefetch_copied_here: int = 0  # guesses the compute thread copied itself (the reader had not yet)
-    prefetch_ns: int = 0  # the reader's copy time of guesses
-    hidden_ns: int = 0  # transfer time of used guesses that no layer waited for
-    reader_stalled: bool = False
-
-    def __post_init__(self):
-        for name in ("accesses", "hits", "prefetch_hits", "misses", "stall_ns", "pagein_ns"):
-            setattr(self, name, [0] * self.n_layers)
-
-    def to_json(self) -> dict:
-        acc = sum(self.accesses)
-        misses = sum(self.misses)
-        return {
-            "accesses": acc,
-            "hits": sum(self.hits),
-            "prefetch_hits": sum(self.prefetch_hits),
-            "misses": misses,
-            "hit_rate": (acc - misses) / acc if acc else None,
-            "per_layer": [
-                {
-                    "layer": i,
-                    "accesses": self.accesses[i],
-                    "hits": self.hits[i],
-                    "prefetch_hits": self.prefetch_hits[i],
-                    "misses": self.misses[i],
-                    "hit_rate": 1 - self.misses[i] / self.accesses[i] if self.accesses[i] else None,
-                }
-                for i in range(self.n_layers)
-            ],
-            "stall_ns": sum(self.stall_ns),
-            "pagein_ns": sum(self.pagein_ns),
-            "bytes_paged_in": self.bytes_in,
-            "demand_loads": self.demand_loads,
-            "prefill_loads": self.prefill_loads,
-            "prefetch": {
-                "guesses": self.prefetch_guesses,
-                "already_resident": self.prefetch_resident,
-                "declined": self.prefetch_declined,
-                "loads": self.prefetch_loads,
-                "dropped": self.prefetch_dropped,
-                "used": self.prefetch_used,
-                "accuracy": (self.prefetch_used / self.prefetch_loads) if self.prefetch_loads else None,
-                "wasted_bytes": self.prefetch_wasted_bytes,
-                "failed": self.prefetch_failed,
-                "copied_here": self.prefetch_copied_here,
-                "pagein_ns": self.prefetch_ns,
-                "hidden_ns": self.hidden_ns,
-                "reader_stalled": self.reader_stalled,
-            },
-        }
-
-
-class Timing:
-    """Running averages (1/8 or 1/16 weight) the pool judges guesses by: one read's time, one copy's
-    time, the time from a layer's prefetch point to the next layer's routing, the share of read
-    guesses a layer then used (``precision``), and the share of used guesses the compute thread had
-    to copy itself because the reader had not (``late``)."""
-
-    __slots__ = ("read_ns", "copy_ns", "gap_ns", "mark", "outstanding", "every_ns", "last_point", "precision", "late")
-
-    def __init__(self, read_ns: float):
-        self.read_ns = read_ns
-        self.copy_ns = 50_000.0  # a copy from the page cache, before any is measured
-        self.gap_ns = 0.0
-        self.mark = 0  # time of the last prefetch point
-        self.outstanding = 0  # guess reads handed to the reader and not settled
-        self.every_ns = 0.0  # time from one prefetch point to the next
-        self.last_point = 0
-        self.precision = 0.6  # before any outcome is seen: about the router's first guess on the bundled model
-        self.late = 0.5
-
-    def outcome(self, used: bool) -> None:
-        self.precision += ((1.0 if used else 0.0) - self.precision) / 16
-
-    def copied_here(self, late: bool) -> None:
-        self.late += ((1.0 if late else 0.0) - self.late) / 16
-
-    def point(self, now: int) -> int:
-        """A prefetch point now: returns when the next one is expected."""
-        if self.last_point and now - self.last_point < 50_000_000:
-            self.every_ns += (now - self.last_point - self.every_ns) / 8
-        self.last_point = now
-        return now + int(self.every_ns)
-
-    def copied(self, ns: int) -> None:
-        self.copy_ns += (ns - self.copy_ns) / 8
-
-    def observed(self, read_ns: int) -> None:
-        self.read_ns += (read_ns - self.read_ns) / 8
-
-    def layer_started(self, now: int) -> None:
-        if self.mark:
-            self.gap_ns += (now - self.mark - self.gap_ns) / 8
-            self.mark = 0
 
 
 def rd_poll_none(reader, s: Slot) -> bool:
@@ -191,7 +49,7 @@ def rd_poll_none(reader, s: Slot) -> bool:
     return reader is None or reader.poll(s.index, s.gen) is None
 
 
-class ExpertPool(ExpertSource):
+class ExpertPool(GuessPlacement, ExpertSource):
     """Slots, residency per layer (or shared), and the expert-source interface for the model.
 
     Everything here runs on the compute thread; with a reader (prefetch on), guesses are read by
@@ -427,29 +285,6 @@ class ExpertPool(ExpertSource):
     def begin_layer(self, layer: int) -> None:
         if self.recorder is not None:
             self._layer_t0 = time.monotonic_ns()
-
-    def _meet_guesses(self, layer: int, ids: list[int], now: int) -> None:
-        """The layer has routed: guesses for it that it did not choose are dropped (their link time and
-        slots given back) unless their transfer has begun; those it chose are used."""
-        link = self.link
-        for s in self._guessed[layer]:
-            if s.layer != layer or not s.guess or s.expert in ids:
-                continue
-            if link is not None:
-                if s.transfer is not None and not link.drop(s.transfer, now):
-                    continue  # its transfer had begun: it arrives and stays resident, unused so far
-            elif s.state != LOADING:
-                continue  # already read: keep it
-            self.stats.prefetch_dropped += 1
-            if s.state == LOADING or s.owed:  # the reader may still write it: given back once it answers
-                if s.state == LOADING:
-                    self.reader.cancel(s.index, s.gen)
-                s.dropped = True
-            else:  # never (officially) arrived: its bytes, copied or not, are not to be used
-                self._give_back(s)
-        self._guessed[layer] = []
-        if self._pending:
-            self._pending = [s for s in self._pending if s.state in (PENDING, LOADING) and s.guess]
 
     def routed(self, layer: int, chosen: np.ndarray, weights: np.ndarray, probs: np.ndarray) -> None:
         if self.recorder is not None:
@@ -703,116 +538,3 @@ class ExpertPool(ExpertSource):
             self.recorder.events(self.step, layer, self._events, compute)
         self.pinned = ()
 
-    # ------------------------------------------------------------------ prefetch
-    @staticmethod
-    def _hook_allows(hook, layer: int, expert: int) -> bool:
-        if hook is None:
-            return True
-        try:
-            hook(layer, expert)
-        except Exception:
-            return False
-        return True
-
-    def _arrival(self, now: int) -> int:
-        """When a guess handed over now should arrive."""
-        if self.link is not None:
-            return self.link.backlog_until(now) + self.link.ns(self.store.expert_nbytes)
-        return now + (self.timing.outstanding + 1) * self.timing.read_ns
-
-    def worth_guessing(self) -> bool:
-        """Could any guess pay at all?  Not when even one arriving in time would save less than it costs
-        (``prefetch``'s rule with no lateness): then the prefetch point is skipped, guess rule included."""
-        t = self.timing
-        read = t.read_ns if self.link is None else self.link.ns(self.store.expert_nbytes)
-        return self._all_resident is None and t.precision * read > self.place_ns + t.late * t.copy_ns
-
-    def prefetch_point(self) -> None:
-        """The model reached a prefetch point (its guesses are placed next): a lingering reader is told
-        when to expect the next one."""
-        nxt = self.timing.point(time.monotonic_ns())
-        if self.reader is not None:
-            self.reader.expect(nxt)
-
-    def prefetch(self, layer: int, guesses: list[int], target: int, hook=None) -> None:
-        """Place the guesses for ``layer`` (best first) and hand their reads to the reader (compute thread).
-
-        A guess already resident or in flight costs nothing more.  Another is read only if it pays:
-        the read time it would save its layer if used (all of it if it arrives by the time the layer
-        routes, less the lateness if not), times the share of guesses used so far, must exceed what
-        it costs the compute thread (placing it, and a copy of its own as often as the reader has
-        been late); and the policy must rather hold it than its victim (``Policy.admits``).  It never
-        evicts an expert pinned by the layer being computed (shared pool), a slot being read, or
-        another guess of the same round.
-        ``hook(layer, expert)`` (a test hook) runs before a read is handed over; raising fails it.
-        """
-        st = self.stats
-        st.prefetch_guesses += len(guesses)
-        if not self._reading():
-            return
-        r = self.res_of[layer]
-        base = self.base[layer]
-        keep = tuple(base + e for e in guesses)
-        if self.shared:
-            keep += self.pinned
-        now = time.monotonic_ns()
-        timing = self.timing
-        timing.mark = now
-        need_at = now + timing.gap_ns * (target - self.progress)
-        read = timing.read_ns if self.link is None else self.link.ns(self.store.expert_nbytes)
-        cost = self.place_ns + timing.late * timing.copy_ns
-        link, nbytes = self.link, self.store.expert_nbytes
-        for e in guesses:
-            key = base + e
-            if key in r.slot_of:
-                st.prefetch_resident += 1
-                continue
-            late = max(0, self._arrival(now) - need_at)
-            if timing.precision * max(0.0, read - late) <= cost:
-                st.prefetch_declined += 1
-                continue
-            try:
-                victim = r.victim(keep)
-            except NoVictim:
-                st.prefetch_declined += 1
-                continue
-            if victim is not None and not r.policy.admits(key, victim, r.now):
-                st.prefetch_declined += 1
-                continue
-            slot, victim = r.place(key, victim)
-            s = self.slots[slot]
-            if victim is not None:
-                self._evicted(s)
-            s.layer, s.expert, s.guess, s.res = layer, e, True, r
-            st.prefetch_loads += 1
-            if not self._hook_allows(hook, layer, e) or not self._hand_over(s):
-                st.prefetch_failed += 1  # forget the guess; its layer reads the expert if it needs it
-                s.guess = False
-                r.remove(key)
-                s.layer = s.expert = -1
-                s.res = None
-                continue
-            if link is not None:
-                s.transfer = link.book(nbytes, now, False)
-            self._guessed[layer].append(s)
-
-    def _hand_over(self, s: Slot) -> bool:
-        """Give a guess's read to the reader (with an emulated link and no live reader, mark it PENDING
-        for the compute thread to copy); False (slot left as it was) if the fault hook refused it."""
-        s.gen += 1
-        if self.link is not None:
-            self._pending.append(s)  # the compute thread may take it over while it waits anyway
-            if not (self.reader is not None and self.reader.alive):  # the copy runs the fault hook
-                s.state = PENDING
-                return True
-        hook = self.store.fault_hook
-        if hook is not None:
-            try:
-                hook(s.layer, s.expert)  # runs before every expert read, as in ModelStore.copy_in
-            except Exception:
-                return False
-        s.state = LOADING
-        s.res.busy.add(self.key(s.layer, s.expert))
-        self.timing.outstanding += 1
-        self.reader.submit(s.index, s.gen, s.layer, s.expert)
-        return True
