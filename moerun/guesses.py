@@ -34,6 +34,11 @@ class Timing:
         self.precision = 0.6  # before any outcome is seen: about the router's first guess on the bundled model
         self.late = 0.5
 
+    def need_at(self, now: float, layers_ahead: int) -> float:
+        """When a layer ``layers_ahead`` from the current one will route; before any gap is measured, never
+        (a first guess is taken to arrive in time)."""
+        return now + self.gap_ns * layers_ahead if self.gap_ns else float("inf")
+
     def outcome(self, used: bool) -> None:
         self.precision += ((1.0 if used else 0.0) - self.precision) / 16
 
@@ -156,7 +161,7 @@ class GuessPlacement:
         now = time.monotonic_ns()
         timing = self.timing
         timing.mark = now
-        need_at = now + timing.gap_ns * (target - self.progress)
+        need_at = timing.need_at(now, target - self.progress)
         read = self._read_ns()
         link, nbytes = self.link, self.store.expert_nbytes
         for e in guesses:

@@ -212,18 +212,18 @@ def test_target_answers_the_smallest_cap_whose_plan_reaches_it(tmp_path, capsys)
 def test_calibration_goes_to_the_tests_temporary_cache_never_the_users(private_cache_dir):
     from pathlib import Path
 
-    from moerun.plan import _cache_dir
+    from moerun.calibration import cache_dir
 
-    assert private_cache_dir in _cache_dir().parents
-    assert Path.home() / ".cache" not in [_cache_dir(), *_cache_dir().parents]
+    assert private_cache_dir in cache_dir().parents
+    assert Path.home() / ".cache" not in [cache_dir(), *cache_dir().parents]
 
 
 @pytest.mark.parametrize("damage", ["negative", "infinite as a string", "wrong layer count", "missing figure", "not an object"])
 def test_a_calibration_cache_that_parses_but_holds_wrong_values_is_measured_again(small_model, damage):
-    from moerun.plan import CALIBRATION_SCHEMA, _cache_dir, _model_key, calibrate
+    from moerun.calibration import SCHEMA, cache_dir, calibrate, model_key
 
     first = calibrate(small_model)
-    path = _cache_dir() / f"calibration-{_model_key(small_model)}.json"
+    path = cache_dir() / f"calibration-{model_key(small_model)}.json"
     assert path.is_file()
     doc = json.loads(path.read_text())
     if damage == "negative":
@@ -235,7 +235,7 @@ def test_a_calibration_cache_that_parses_but_holds_wrong_values_is_measured_agai
     elif damage == "missing figure":
         del doc["head_s"]
     else:
-        doc = [CALIBRATION_SCHEMA]
+        doc = [SCHEMA]
     path.write_text(json.dumps(doc))
     again = calibrate(small_model)
     assert "cached" not in again  # measured, not read
@@ -313,3 +313,83 @@ def test_a_trace_without_guesses_is_a_bad_trace_in_plan_and_replay_alike():
         predict(t, [1], "lru", 1, 1, _costs())
     with pytest.raises(BadTrace, match="no guesses"):
         simulate_prefetch(t, policies.get("lru"), 1, 1, 1)
+
+
+# ---------------------------------------------------------------------------- costs the planner charges
+
+
+def test_the_stored_formats_decoding_enters_every_expert_of_the_step():
+    # one layer, top-1, every access a hit after the first: per token attention 10 + expert 2 (+ decoding) + head 3
+    from moerun.calibration import costs_from_shape
+
+    shape = {"layers": 1, "experts": 2, "top_k": 1, "expert_bytes": 1, "dense_bytes": 0, "expert_us": 2, "dense_layer_us": 10,
+             "head_us": 3}
+    trace = _trace([0, 0, 0, 0], prefill=1)
+    plain = predict(trace, [1], "lru", 0, 1, costs_from_shape(shape, 100 * US, "test"))
+    decoded = predict(trace, [1], "lru", 0, 1, costs_from_shape({**shape, "decode_us": 7}, 100 * US, "test"))
+    assert plain.step_s == pytest.approx(15 * US)
+    assert decoded.step_s == pytest.approx(22 * US)  # 7 us more per expert, one expert per token
+
+
+def test_prefetch_off_is_the_same_prediction_step_by_step_and_summed():
+    # the additive path (per-layer miss counts) and the step-by-step simulation are one time model
+    from moerun import timeline
+
+    rng = np.random.default_rng(3)
+    trace = _random_trace(rng, tokens=200, layers=3, experts=8, k=2)
+    costs = Costs([30 * US] * 3, 4 * US, 9 * US, 80 * US, "test", 3 * US, copy=5 * US)
+    for slots in ([2, 2, 2], [3, 4, 5], [8, 8, 8]):
+        a = predict(trace, slots, "lru", 0, 1, costs)
+        b = timeline._simulate(trace, slots, "lru", 0, 1, costs, False, 10**9)
+        assert (a.misses, a.accesses) == (b.misses, b.accesses)
+        # (the simulated link keeps whole nanoseconds: a few ns of rounding over the run)
+        assert a.step_s == pytest.approx(b.step_s, rel=1e-6) and a.stall_s == pytest.approx(b.stall_s, rel=1e-6)
+
+
+def test_a_calibration_with_flags_is_shown_as_not_trusted_with_its_age():
+    import time
+
+    from moerun.calibration import describe
+
+    cal = {"created_unix": time.time() - 3 * 3600, "created": "then", "host": "h", "step_spread": 0.21, "step_runs": 9,
+           "flags": ["noisy: the best resident decodes differed by 21%"]}
+    text = describe(cal)
+    assert "3 h old" in text and "21.0%" in text and "NOT TRUSTED" in text and "--recalibrate" in text
+    assert "NOT TRUSTED" not in describe({**cal, "flags": []})
+
+
+def test_a_calibration_taken_beside_a_busy_process_is_flagged(small_model):
+    import subprocess
+    import sys
+
+    from moerun.calibration import measure
+
+    busy = [subprocess.Popen([sys.executable, "-c", "while True: pass"]) for _ in range(2)]
+    try:
+        doc = measure(small_model, tokens=24)
+    finally:
+        for p in busy:
+            p.kill()
+            p.wait()
+    assert any("other work ran" in f for f in doc["flags"])
+    assert doc["others_cpu_s"] > 0 and doc["policy_s"].keys() >= {"markov", "lrfu"}
+
+
+def test_bad_inputs_are_refused_before_any_calibration(small_model, tmp_path, capsys):
+    import time
+
+    from moerun.calibration import cache_dir, model_key
+
+    bad = tmp_path / "t.npz"
+    bad.write_bytes(b"not a zip archive")
+    cases = [["--mem-cap", "1GiB", "--link-speed", "1GB/s", "--trace", str(bad)],
+             ["--mem-cap", "1KiB", "--link-speed", "1GB/s", "--trace", str(bad)],
+             ["--mem-cap", "1", "--link-speed", "1GB/s"]]
+    path = cache_dir() / f"calibration-{model_key(small_model)}.json"
+    path.unlink(missing_ok=True)
+    for args in cases:
+        t0 = time.monotonic()
+        assert main(["plan", "--model", str(small_model), *args]) == 2
+        assert time.monotonic() - t0 < 5.0  # a calibration takes far longer
+        assert len(capsys.readouterr().err.strip().splitlines()) == 1
+    assert not path.exists()
