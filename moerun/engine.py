@@ -338,6 +338,7 @@ def load(
     baseline: str | None = None,
     reader_timeout: float = STALL_TIMEOUT_S,
     routing=None,
+    cold_reads: bool = False,
 ) -> Engine:
     """Open a model and return an engine (DESIGN section 4).
 
@@ -352,12 +353,14 @@ def load(
     before the engine stops it and reads every expert itself (docs/offload.md).
     routing: a routing trace (path or moerun.trace.Trace): each layer takes its chosen experts and
     weights from it instead of its router, everything else computed for real (moerun.routing).
+    cold_reads: every expert read comes from the device (each read range is dropped from the page
+    cache right after it is copied, as ``moerun probe``'s cold path does); ``cold`` drops the file once.
     """
     from . import policies
     from .store import MECHANISMS
 
     _check_arguments(model_dir, evict, prefetch, lookahead, slots, split, mechanism, baseline,
-                     {"cold": cold, "bare": bare, "tokenizer": tokenizer})
+                     {"cold": cold, "bare": bare, "tokenizer": tokenizer, "cold_reads": cold_reads})
     policies.get(evict)
     if prefetch < 0:
         raise BadOption(f"--prefetch must be 0 (off) or a positive number of guesses, got {prefetch}")
@@ -381,8 +384,9 @@ def load(
     try:
         c = store.config
         tok = Tokenizer.load(store.model_dir, c.vocab_size, c.bos_token_id) if tokenizer else None
-        if cold:
+        if cold or cold_reads:
             store.drop_cache()
+        store.cold_reads = cold_reads
         store.set_mechanism(mechanism)
         chosen_split = list(slots) if slots is not None else split
         budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, cap, chosen_split, store.codec.scratch_bytes())
@@ -408,6 +412,7 @@ def load(
             "prefetch_from": prefetch_from,
             "link_speed": rate,
             "cold": cold,
+            "cold_reads": cold_reads,
             "mechanism": mechanism,
             "bare": bare,
             "baseline": baseline,

@@ -496,6 +496,8 @@ class ExpertPool(GuessPlacement, ExpertSource):
             link.run(end)
             ns = end - t.start
         s.read_ns = ns
+        if t is None:  # a real read: what a guess's read will take too
+            self.timing.observed(ns)
         st.pagein_ns[s.layer] += ns
         if prefill:
             st.prefill_loads += 1

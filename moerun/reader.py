@@ -73,7 +73,8 @@ class Reader:
             flags = os.EFD_NONBLOCK | os.EFD_CLOEXEC
             self._wake = os.eventfd(0, flags)  # the engine rings it after each request
             self._done = os.eventfd(0, flags)  # the reader rings it after each result
-            args = [self._fd, store._fd, self._wake, self._done, n_slots, slot_size, self.ring, store.mechanism, os.getpid()]
+            mechanism = store.mechanism + ("+cold" if store.cold_reads else "")
+            args = [self._fd, store._fd, self._wake, self._done, n_slots, slot_size, self.ring, mechanism, os.getpid()]
             self.proc = subprocess.Popen(
                 [sys.executable, "-I", "-S", str(CHILD), *map(str, args)],
                 pass_fds=(self._fd, store._fd, self._wake, self._done),

@@ -115,7 +115,8 @@ class Server:
         self.done_fd = done_fd
         # This process always reads with preadv, whatever the engine's own mechanism: a mapped copy
         # would die of SIGBUS if the file shrank under it, and nothing is mapped here to keep resident.
-        self.mechanism = mechanism
+        self.mechanism = mechanism.split("+")[0]
+        self.cold = mechanism.endswith("+cold")
         self.parent = parent
         self.r0 = ring_base(n_slots)
         self.pending: list[Request] = []
@@ -175,6 +176,8 @@ class Server:
                 if k == 0:
                     return False  # the file ended early (it shrank)
                 got += k
+            if self.cold:  # every read from the device: drop what was just read from the page cache
+                os.posix_fadvise(self.fd, off, n, os.POSIX_FADV_DONTNEED)
             return True
         except (OSError, ValueError):
             return False

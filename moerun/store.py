@@ -109,6 +109,15 @@ def pread_into(fd: int, offset: int, dst) -> None:
         got += more
 
 
+def drop_pages(fd: int, offset: int, nbytes: int) -> None:
+    """Ask the OS to drop a file range from its page cache (the next read of it comes from the device)."""
+    if hasattr(os, "posix_fadvise"):
+        try:
+            os.posix_fadvise(fd, offset, nbytes, os.POSIX_FADV_DONTNEED)
+        except OSError:
+            pass
+
+
 class ModelStore:
     """A validated, opened model directory (weights file, config, paths)."""
 
@@ -122,6 +131,7 @@ class ModelStore:
         self.path = header.path
         self.mechanism = "pread"
         self.link: Link | None = None  # an emulated link (set link_rate), None = real speed
+        self.cold_reads = False  # drop each expert's pages from the page cache after reading it: every read is cold
         self.fault_hook = None  # test hook: called as hook(layer, expert) before each read
         self._fd = os.open(self.path, os.O_RDONLY)
         self._map: mmap.mmap | None = None
@@ -327,7 +337,10 @@ class ModelStore:
                     pass
         except OSError as e:
             raise PageInError(f"{self.path}: reading expert {expert} of layer {layer} failed ({e.strerror or e})") from None
-        return time.monotonic_ns() - t0
+        ns = time.monotonic_ns() - t0
+        if self.cold_reads:
+            drop_pages(self._fd, r.start, r.nbytes)
+        return ns
 
     def drop_cache(self) -> bool:
         """Ask the OS to drop this file's pages from its cache (for cold runs). True if advised."""
