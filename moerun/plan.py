@@ -20,10 +20,13 @@ from .calibration import (  # noqa: F401  (the planner's public names, kept here
 )
 from .errors import BadInput, BadTrace, ImpossibleBudget
 from .replay import prefill_tokens, replay_counts
-from .timeline import Costs, Prediction, predict  # noqa: F401
+from .timeline import Costs, Prediction, predict, step_misses  # noqa: F401
 from .trace import Trace
 
 PREFETCH_CANDIDATES = [(0, 1), (1, 1), (2, 1), (2, 2), (3, 1)]
+PREFETCH_POLICIES = 2  # prefetch is simulated for the policies that do best without it
+SEARCH_TOKENS = 2048  # decode tokens each prefetch setting is simulated over in the search
+REPLAY_TOKENS = 6144  # decode tokens of the trace the search replays (the first ones): a long trace plans in seconds
 
 
 def hit_curves(trace: Trace, policy: str, max_slots: int) -> list[list[int]]:
@@ -80,7 +83,25 @@ class Space:
     shared: bool = False  # also consider one pool shared by all layers
 
     def __post_init__(self):
-        self.curves = {n: hit_curves(self.trace, n, self.experts) for n in self.policies}
+        P = prefill_tokens(self.trace)
+        if self.trace.n_tokens - P > REPLAY_TOKENS:
+            t = self.trace
+            cut = P + REPLAY_TOKENS
+            self.trace = Trace(t.experts[:cut], None if t.weights is None else t.weights[:cut],
+                               None if t.guesses is None else t.guesses[:cut], dict(t.meta), {},
+                               None if t.probs is None else t.probs[:cut])
+        self._steps: dict = {}
+        caps = range(1, self.experts + 1)
+        for n in self.policies:  # one replay per policy and layer serves every quota
+            for layer in range(self.layers):
+                for cap, v in step_misses(self.trace, n, layer, caps).items():
+                    self._steps[(n, layer, cap)] = v
+        self.curves = {n: [[int(self._steps[(n, layer, c)][1].sum()) for c in caps] for layer in range(self.layers)]
+                       for n in self.policies}
+
+    def _predict(self, slots, policy, pf, la, shared=False) -> Prediction:
+        return predict(self.trace, slots, policy, pf, la, self.costs, shared, SEARCH_TOKENS,
+                       lambda layer, cap: self._steps[(policy, layer, cap)])
 
     @property
     def min_cap(self) -> int:
@@ -97,13 +118,21 @@ class Space:
         """Every setting for ``total`` slots: even and uneven splits (and a shared pool), each policy and prefetch."""
         out = []
         L, E, k = self.layers, self.experts, self.top_k
-        for n in policy_names or self.policies:
-            splits = {"even": even_split(total, L, E), "uneven": best_split(self.curves[n], total, k, E)}
+        names = policy_names or self.policies
+        splits = {n: {"even": even_split(total, L, E), "uneven": best_split(self.curves[n], total, k, E)} for n in names}
+        for n in names:
+            for label, sl in splits[n].items():
+                out.append((label, self._predict(sl, n, 0, 1)))
+        ranked = sorted(names, key=lambda n: -max(pr.tok_s for _, pr in out if pr.policy == n))
+        for n in ranked[:PREFETCH_POLICIES]:
             for pf, la in prefetches or self.prefetches:
-                for label, sl in splits.items():
-                    out.append((label, predict(self.trace, sl, n, pf, la, self.costs)))
-                if self.shared:
-                    out.append(("shared", predict(self.trace, [total], n, pf, la, self.costs, shared=True)))
+                if pf:
+                    for label, sl in splits[n].items():
+                        out.append((label, self._predict(sl, n, pf, la)))
+        if self.shared:
+            for n in ranked[:PREFETCH_POLICIES]:
+                for pf, la in prefetches or self.prefetches:
+                    out.append(("shared", self._predict([total], n, pf, la, shared=True)))
         return out
 
     def best(self, total: int, policy_names=None, prefetches=None) -> tuple[str, Prediction]:

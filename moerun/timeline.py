@@ -125,13 +125,28 @@ def _check(trace: Trace, slots: list[int], prefetch: int, lookahead: int, costs:
 
 
 def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahead: int, costs: Costs,
-            shared: bool = False, max_tokens: int = SIM_TOKENS) -> Prediction:
-    """Predict decode tok/s along ``trace`` (prefill tokens only warm the pool) for one setting."""
+            shared: bool = False, max_tokens: int = SIM_TOKENS, step_misses=None) -> Prediction:
+    """Predict decode tok/s along ``trace`` (prefill tokens only warm the pool) for one setting.
+
+    ``step_misses(layer, slots)``, if given, returns that layer's (accesses, misses) per decode step for a
+    quota (a cache the planner's search keeps); otherwise they are replayed here."""
     _check(trace, slots, prefetch, lookahead, costs, shared)
     policies.get(policy)
     if not prefetch and not shared:
-        return _additive(trace, slots, policy, costs)
+        return _additive(trace, slots, policy, costs, step_misses)
     return _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_tokens)
+
+
+def step_misses(trace: Trace, policy: str, layer: int, capacities) -> dict:
+    """For each quota: (accesses, misses) per decode step of one layer, by replay."""
+    plan = layer_plans(trace)[layer]
+    flags = layer_misses(plan, policies.get(policy), list(capacities))
+    counted = plan.counted_per_access()
+    out = {}
+    for cap, miss in flags.items():
+        cs = np.concatenate([[0], np.cumsum(miss & counted)])
+        out[cap] = (plan.sizes[plan.counted], (cs[plan.starts[1:]] - cs[plan.starts[:-1]])[plan.counted])
+    return out
 
 
 # ---------------------------------------------------------------------------- prefetch off, one pool per layer
@@ -161,9 +176,7 @@ def layer_step_ns(k: int, misses: int, c: dict) -> tuple[float, float]:
     return now, stall
 
 
-def _additive(trace: Trace, slots: list[int], policy: str, costs: Costs) -> Prediction:
-    cls = policies.get(policy)
-    plans = layer_plans(trace)
+def _additive(trace: Trace, slots: list[int], policy: str, costs: Costs, cached=None) -> Prediction:
     k = trace.top_k
     P = prefill_tokens(trace)
     per_access = costs.policy.get(policy, 0.0)
@@ -171,12 +184,8 @@ def _additive(trace: Trace, slots: list[int], policy: str, costs: Costs) -> Pred
     stall = 0.0
     accesses = misses = 0
     layer_hit = []
-    for layer, plan in enumerate(plans):
-        miss = layer_misses(plan, cls, [slots[layer]])[slots[layer]]
-        counted = plan.counted_per_access()
-        sizes = plan.sizes[plan.counted]  # accesses per decode step
-        cs = np.concatenate([[0], np.cumsum(miss & counted)])
-        per_step = (cs[plan.starts[1:]] - cs[plan.starts[:-1]])[plan.counted]
+    for layer in range(trace.n_layers):
+        sizes, per_step = cached(layer, slots[layer]) if cached else step_misses(trace, policy, layer, [slots[layer]])[slots[layer]]
         c = {"attn": costs.attn[layer] + per_access * k, "expert": costs.expert, "page": costs.page, "copy": costs.copy,
              "wait": costs.wait, "emulated": costs.emulated}
         for n in np.unique(sizes):
@@ -186,7 +195,7 @@ def _additive(trace: Trace, slots: list[int], policy: str, costs: Costs) -> Pred
                     t, s = layer_step_ns(int(n), m, c)
                     step += count * t
                     stall += count * s
-        a, m_ = int(counted.sum()), int((miss & counted).sum())
+        a, m_ = int(sizes.sum()), int(per_step.sum())
         accesses += a
         misses += m_
         layer_hit.append(1 - m_ / a if a else 0.0)

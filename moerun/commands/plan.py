@@ -150,7 +150,8 @@ def run(args) -> int:
         "calibration_flags": cal["flags"] if cal else [],
         "calibration_age_s": time.time() - cal["created_unix"] if cal else None,
         "calibration_spread": cal["step_spread"] if cal else None,
-        "trace": {"tokens": space.trace.n_tokens, "source": space.trace.meta.get("source", "import"), "file": args.trace},
+        "trace": {"tokens": inp["trace"].n_tokens if inp["trace"] is not None else space.trace.n_tokens,
+                  "searched_tokens": space.trace.n_tokens, "source": space.trace.meta.get("source", "import"), "file": args.trace},
         "fixed_bytes": space.fixed,
         "slot_bytes": space.slot,
         "min_cap_bytes": space.min_cap,
@@ -205,7 +206,9 @@ def _text(out, args, space: Space, doc: dict, cal_note: str, rec, rec_label, can
     out.write(f"costs per token: attention etc. {sum(c.attn) * 1e6:.0f} us over {L} layers, one expert {c.expert * 1e6:.1f} us "
               f"(decoding its format {c.decode * 1e6:.1f} us), head {c.head * 1e6:.0f} us; one page-in {c.page * 1e6:.0f} us "
               f"({c.page_source})\n{cal_note}\n")
-    out.write(f"routing: {space.trace.n_tokens} tokens ({doc['trace']['source']}); fixed parts {fmt_bytes(space.fixed)}, slot "
+    tr = doc["trace"]
+    searched = f", the first {tr['searched_tokens']} searched" if tr["searched_tokens"] < tr["tokens"] else ""
+    out.write(f"routing: {tr['tokens']} tokens ({tr['source']}{searched}); fixed parts {fmt_bytes(space.fixed)}, slot "
               f"{fmt_bytes(space.slot)}, smallest cap {fmt_bytes(space.min_cap)}, all resident {fmt_bytes(space.full_cap)}\n\n")
     if rec is not None:
         top = sorted(cands, key=lambda x: -x[1].tok_s)
