@@ -32,7 +32,7 @@ from .fileio import read_json_file, write_text_atomic
 from .timeline import Costs
 from .units import finite_number, whole_number
 
-SCHEMA = "moerun-calibration/5"
+SCHEMA = "moerun-calibration/6"
 CAL_LINK = 1.5e9  # bytes/s of the emulated link of the run that measures how often the reader is late
 SPREAD = 0.05  # best three runs within 5%
 MAX_SPREAD = 0.10  # above this a calibration is flagged as noisy
@@ -117,9 +117,16 @@ def _expert_costs(eng) -> dict:
     slot = pool.slots[0]
     codec = eng.store.codec
     u = np.random.default_rng(0).standard_normal((1, eng.config.d_model)).astype(np.float32)
+    ring = [s.bound for s in pool.slots]  # every expert in turn, as decode meets them (not one kept hot in the caches)
+    turn = [0]
+
+    def next_bound():
+        turn[0] = (turn[0] + 1) % len(ring)
+        return ring[turn[0]]
+
     out = {
-        "expert_s": settle(lambda: micro(lambda: np.float32(0.5) * expert(u, *codec.weights(slot.bound))))[0],
-        "decode_s": settle(lambda: micro(lambda: codec.weights(slot.bound)))[0],
+        "expert_s": settle(lambda: micro(lambda: np.float32(0.5) * expert(u, *codec.weights(next_bound()))))[0],
+        "decode_s": settle(lambda: micro(lambda: codec.weights(next_bound())))[0],
         "copy_s": settle(lambda: micro(lambda: eng.store.copy_in(0, 0, slot.buf), 50))[0],
     }
     rule = GuessRule(eng.model, 1)
@@ -172,7 +179,8 @@ def _policy_costs(model_dir, trace, names) -> dict:
             return (time.thread_time() - t0) / max(1, ex.size)
 
         base = settle(lambda: drive("lru"), max_runs=5)[0]
-        return {n: max(0.0, settle(lambda n=n: drive(n), max_runs=5)[0] - base) for n in names if n != "lru"}
+        out = {n: max(0.0, settle(lambda n=n: drive(n), max_runs=5)[0] - base) for n in names if n != "lru"}
+        return base, out
     finally:
         store.close()
 
@@ -220,7 +228,7 @@ def measure(model_dir, tokens: int = 96, progress=None) -> dict:
     say("how late a sleep wakes")
     wait_s = _sleep_lateness()
     say("each policy's bookkeeping per access")
-    pol = _policy_costs(model_dir, trace, policies.names(online_only=True))
+    pool_s, pol = _policy_costs(model_dir, trace, policies.names(online_only=True))
     say("how often the reader is late with a guess")
     late = _late_share(model_dir, tokens)
     others = _others_cpu_s() - others0
@@ -253,6 +261,7 @@ def measure(model_dir, tokens: int = 96, progress=None) -> dict:
         **ec,
         "wait_s": wait_s,
         "policy_s": pol,
+        "pool_s": pool_s,
         "late_share": late,
         "place_s": PLACE_S,
         "flags": flags,
@@ -314,7 +323,7 @@ def cached(path: Path, n_layers: int) -> dict | None:
         return None
     if not finite_number(doc.get("expert_s"), 1e-12, 1.0) or not finite_number(doc.get("resident_step_s"), 1e-12, 10.0):
         return None
-    for key in ("head_s", "wait_s", "decode_s", "copy_s", "guess_s", "place_s", "late_share", "step_spread"):
+    for key in ("head_s", "wait_s", "decode_s", "copy_s", "guess_s", "place_s", "late_share", "step_spread", "pool_s"):
         if not finite_number(doc.get(key), 0.0, 10.0):
             return None
     pol = doc.get("policy_s")
@@ -359,7 +368,8 @@ def page_seconds(expert_bytes: int, link_speed: float | None = None, probe: dict
 
 def costs_from_calibration(cal: dict, page: float, page_source: str, emulated: bool = True) -> Costs:
     return Costs(list(cal["attn_s"]), cal["expert_s"], cal["head_s"], page, page_source, cal["wait_s"], emulated,
-                 cal["copy_s"], cal["decode_s"], cal["guess_s"], cal["place_s"], cal["late_share"], dict(cal["policy_s"]))
+                 cal["copy_s"], cal["decode_s"], cal["guess_s"], cal["place_s"], cal["late_share"], dict(cal["policy_s"]),
+                 cal["pool_s"])
 
 
 def costs_from_shape(shape: dict, page: float, page_source: str, emulated: bool = True) -> Costs:

@@ -187,6 +187,8 @@ class Engine:
         keep_logits: bool = False,
     ) -> Generation:
         """Prefill the prompt, then decode up to ``max_new`` tokens (stops early when the context is full)."""
+        if isinstance(max_new, bool) or not isinstance(max_new, int):
+            raise BadOption(f"max_new must be a whole number of tokens, got {max_new!r:.40}")
         if max_new < 0:
             raise BadOption(f"--max-new must be zero or more, got {max_new}")
         if prompt_ids is None:

@@ -6,8 +6,9 @@ link's schedule through ``moerun.link.Link``, and whether a guess is worth readi
 ``moerun.guesses`` (with ``Timing`` figures the simulation itself measures as it goes).  Per
 decode token and layer:
 
-- the layer's compute outside its experts (``attn[l]``: attention, norms, routing, the pool's
-  bookkeeping with LRU; plus the policy's own cost per access over LRU, ``policy``);
+- the layer's compute outside its experts (``attn[l]``: attention, norms, routing, measured fully
+  resident), the pool's bookkeeping per access (``pool``, with LRU) and the policy's own cost per
+  access over LRU's (``policy``);
 - its routing: guesses for it that it did not choose are dropped; its chosen experts are
   accessed in ascending id, pinned; a miss is booked on the link (emulated) at once;
 - the prefetch point (with prefetch): the guess rule (``guess``), and each guess read costs
@@ -59,6 +60,7 @@ class Costs:
     place: float = 0.0  # one guess read: placing it, handing it over, the reader's copy beside compute
     late: float = 0.0  # share of used guesses the compute thread copied itself, the reader being late
     policy: dict = field(default_factory=dict)  # policy name -> its cost per access over LRU's
+    pool: float = 0.0  # the pool's bookkeeping per access with LRU (a resident run's fast path has none)
 
     def to_json(self) -> dict:
         return {
@@ -75,6 +77,7 @@ class Costs:
             "place_us": self.place * 1e6,
             "late_share": self.late,
             "policy_us_per_access": {k: v * 1e6 for k, v in self.policy.items()},
+            "pool_us_per_access": self.pool * 1e6,
         }
 
 
@@ -179,7 +182,7 @@ def layer_step_ns(k: int, misses: int, c: dict) -> tuple[float, float]:
 def _additive(trace: Trace, slots: list[int], policy: str, costs: Costs, cached=None) -> Prediction:
     k = trace.top_k
     P = prefill_tokens(trace)
-    per_access = costs.policy.get(policy, 0.0)
+    per_access = costs.pool + costs.policy.get(policy, 0.0)
     step = costs.head * (trace.n_tokens - P)
     stall = 0.0
     accesses = misses = 0
@@ -226,7 +229,7 @@ class _Sim:
         self.signals = type(self.res[0].policy).routed is not policies.Policy.routed
         ns = 1e9
         self.c = {name: getattr(costs, name) * ns for name in ("expert", "head", "page", "wait", "copy", "guess", "place")}
-        self.attn = [a * ns + costs.policy.get(policy, 0.0) * ns * self.k for a in costs.attn]
+        self.attn = [a * ns + (costs.pool + costs.policy.get(policy, 0.0)) * ns * self.k for a in costs.attn]
         self.emulated = costs.emulated
         self.link = Link(1e9) if costs.emulated else None  # one "byte" per ns: a transfer booked as page ns
         self.page = int(self.c["page"])

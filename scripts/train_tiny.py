@@ -12,7 +12,7 @@ threads); export config.json, model.safetensors, tokenizer.json, heldout.txt (a
 slice of whole held-out documents), reference.npz and CARD.md, each written
 atomically (temp file + os.replace).
 
-Shapes (SHAPES below): pebble is the DESIGN section 6 configuration (8 experts,
+Shapes (SHAPES below): pebble is the configuration the project first measured training with (8 experts,
 top-2 of d_expert 256); scree has many small experts and a shared one (32
 experts, top-4 of d_expert 64, plus a shared expert of width 256): the same
 512 active hidden units per layer and token as pebble, and the same routed
@@ -501,8 +501,8 @@ Beside {cmp['name']}, scored in this run by the same rule on the same token ids
                     f"prefix space), vocabulary {tok.get_vocab_size()}, trained on train.txt")
     card = f"""# {name} — a bundled tiny model
 
-A {cfg['n_layers']}-layer sparse mixture-of-experts model ({shape}) following DESIGN
-section 3, trained on CPU on an invented corpus. It {BLURB[name]}, not to be useful
+A {cfg['n_layers']}-layer sparse mixture-of-experts model ({shape}) following the model spec of docs/architecture.md,
+trained on CPU on an invented corpus. It {BLURB[name]}, not to be useful
 for anything else.
 
 **Everything this model generates is invented text about an invented place. It is
@@ -599,7 +599,7 @@ perplexity is its exp.
 | file | content |
 |---|---|
 | config.json | model configuration (format `moerun/1`) |
-| model.safetensors | F32 weights, DESIGN section 3 names |
+| model.safetensors | F32 weights, tensor names of the model spec (docs/architecture.md) |
 | tokenizer.json | the byte-level BPE tokenizer |
 | heldout.txt | {slice_kb:.0f} KB of whole held-out documents (never trained on) for scoring |
 | reference.npz | `token_ids` int64 [3, 64] (three held-out windows, each starting at a document start, token 0), `logits` float32 [3, 64, {cfg['vocab_size']}] from the PyTorch reference in float32 (`moerun/torch_ref.py`), `torch_version` |
