@@ -56,14 +56,20 @@ RECALL_LOOKAHEAD = 3
 
 @dataclass
 class LayerPlan:
-    """The accesses of one layer in order, grouped into steps that share a pinned set."""
+    """The accesses of one pool in order, grouped into steps that share a pinned set: one layer's
+    quota (keys are expert ids), or the pool shared by all layers (``shared_plan``: keys are
+    ``layer * shared_experts + expert`` and ``layers`` says whose step each one is)."""
 
-    keys: np.ndarray  # int [n] expert ids in access order
+    keys: np.ndarray  # int [n] keys in access order
     sizes: np.ndarray  # int [n_steps] accesses per step
     counted: np.ndarray  # bool [n_steps]: a decode access (counted) or a prefill load (not counted)
     token: np.ndarray  # int [n_steps] token index of each step
-    layer: int = 0  # the layer these accesses belong to (for ``Policy.routed``)
-    probs: np.ndarray | None = None  # float32 [tokens, n_experts]: the layer's router probabilities, if the trace has them
+    layer: int = 0  # the layer these accesses belong to (for ``Policy.routed``); unused in a shared plan
+    # the router probabilities, if the trace has them: float32 [tokens, n_experts] of ``layer``, or
+    # [tokens, layers, n_experts] in a shared plan
+    probs: np.ndarray | None = None
+    layers: np.ndarray | None = None  # int [n_steps] the layer of each step (a shared plan), None: ``layer``
+    shared_experts: int = 0  # a shared plan: experts per layer (key = layer * shared_experts + expert); 0 otherwise
 
     @property
     def n(self) -> int:
@@ -97,7 +103,22 @@ class LayerPlan:
             return self
         n_each = np.where(big, self.sizes, 1)
         sizes = np.where(np.repeat(big, n_each), 1, np.repeat(self.sizes, n_each))
-        return LayerPlan(self.keys, sizes, np.repeat(self.counted, n_each), np.repeat(self.token, n_each), self.layer, self.probs)
+        layers = np.repeat(self.layers, n_each) if self.layers is not None else None
+        return LayerPlan(self.keys, sizes, np.repeat(self.counted, n_each), np.repeat(self.token, n_each), self.layer, self.probs,
+                         layers, self.shared_experts)
+
+    @property
+    def n_keys(self) -> int:
+        """Size of the key space (a policy's per-key lists)."""
+        if self.shared_experts:
+            return (int(self.layers.max(initial=0)) + 1) * self.shared_experts  # every layer has a step per token
+        return int(self.keys.max(initial=-1)) + 1
+
+    def access_layers(self) -> np.ndarray:
+        """int [n] the layer of each access."""
+        if self.layers is None:
+            return np.full(self.n, self.layer, np.int64)
+        return np.repeat(self.layers, self.sizes)
 
 
 def prefill_tokens(trace: Trace) -> int:
@@ -149,6 +170,40 @@ def _layer_plan(experts: np.ndarray, P: int, dt=np.int64) -> LayerPlan:
     return LayerPlan(cat(parts_keys), cat(parts_sizes), cat(parts_counted), cat(parts_token))
 
 
+def shared_plan(trace: Trace) -> LayerPlan:
+    """The accesses of one pool shared by all layers, in the order the live engine makes them.
+
+    Keys are ``layer * n_experts + expert``.  Prefill (``prefill_tokens`` > 0): layer by layer, each
+    distinct expert of the prefill tokens once, in ascending id, pinned alone (as ``ExpertPool``'s
+    prefill path, which the model calls per layer and distinct expert).  Then token by token, layer
+    by layer, one step per layer: its chosen experts in ascending id, all pinned.
+    """
+    P = prefill_tokens(trace)
+    T, L, k = trace.experts.shape
+    E = trace.n_experts
+    dt = np.int16 if L * E < 2**15 else np.int32 if L * E < 2**31 else np.int64
+    keys, sizes, counted, token, layers = [], [], [], [], []
+    if P >= 1:
+        for layer in range(L):
+            needed = np.unique(trace.experts[:P, layer])
+            needed = needed[needed >= 0].astype(dt) + dt(layer * E)
+            keys.append(needed)
+            n = needed.shape[0]
+            sizes.append(np.ones(n, np.int32))
+            counted.append(np.zeros(n, bool))
+            token.append(np.full(n, P - 1, np.int64))
+            layers.append(np.full(n, layer, np.int64))
+    rows, n_each = _rows(trace.experts[P:].reshape(-1, k), dt)  # rows in (token, layer) order
+    row_layer = np.tile(np.arange(L, dtype=np.int64), T - P)
+    keys.append((rows + np.repeat(row_layer * E, n_each)).astype(dt))
+    sizes.append(n_each)
+    counted.append(np.ones(row_layer.shape[0], bool))
+    token.append(np.repeat(np.arange(P, T, dtype=np.int64), L))
+    layers.append(row_layer)
+    cat = np.concatenate
+    return LayerPlan(cat(keys), cat(sizes), cat(counted), cat(token), 0, trace.probs, cat(layers), E)
+
+
 def layer_plans(trace: Trace) -> list[LayerPlan]:
     P = prefill_tokens(trace)
     dt = _key_dtype(trace.experts)
@@ -163,45 +218,76 @@ def layer_plans(trace: Trace) -> list[LayerPlan]:
 
 
 def plan_policy(cls: type[Policy], plan: LayerPlan) -> Policy:
-    """A policy object for replaying one layer: keys are its expert ids; an offline one gets the access sequence."""
-    return make_policy(cls, int(plan.keys.max(initial=-1)) + 1, 0, plan.keys.tolist())
+    """A policy object for replaying one pool: keys are a layer's expert ids, or a shared plan's
+    ``layer * n_experts + expert``, as the live pool's; an offline one gets the access sequence."""
+    return make_policy(cls, plan.n_keys, plan.shared_experts, plan.keys.tolist())
 
 
 def routed_hook(policy: Policy, plan: LayerPlan) -> Callable[[int, int, int, int], None] | None:
     """``hook(s, a, b, now)`` telling ``policy.routed`` about decode step s (accesses a..b-1), or None.
 
     None when the policy does not override ``Policy.routed`` (nothing to tell).  As in the live
-    pool, only decode steps are signalled, before their accesses, with the token's router
-    probabilities for the plan's layer (None when the trace holds no ``probs``).
+    pool, only decode steps are signalled, before their accesses, with the step's layer, its expert
+    ids and the token's router probabilities for that layer (None when the trace holds no ``probs``).
     """
     if type(policy).routed is Policy.routed:
         return None
-    keys, counted, token, probs, layer = plan.keys, plan.counted, plan.token, plan.probs, plan.layer
+    keys, counted, token, probs = plan.keys, plan.counted, plan.token, plan.probs
+    if plan.layers is None:
+        layer = plan.layer
 
-    def hook(s: int, a: int, b: int, now: int) -> None:
+        def hook(s: int, a: int, b: int, now: int) -> None:
+            if counted[s]:
+                policy.routed(layer, keys[a:b].tolist(), probs[token[s]] if probs is not None else None, now)
+
+        return hook
+    layers, E = plan.layers.tolist(), plan.shared_experts
+
+    def shared_hook(s: int, a: int, b: int, now: int) -> None:
         if counted[s]:
-            policy.routed(layer, keys[a:b].tolist(), probs[token[s]] if probs is not None else None, now)
+            layer = layers[s]
+            chosen = (keys[a:b] - layer * E).tolist()
+            policy.routed(layer, chosen, probs[token[s], layer] if probs is not None else None, now)
 
-    return hook
+    return shared_hook
+
+
+def walk(plan: LayerPlan, res: Residency, before: Callable[[int], None] | None = None):
+    """Serve ``plan``'s steps through ``res`` as the live pool does; yields ``(s, a, b, served)`` after each.
+
+    The one step loop of every replay on the reference path (misses, prefetch, pictures; per-layer
+    quotas and the shared pool alike).  For step s, accesses a..b-1: ``before(s)`` if given (a
+    prefetch's inserts), then ``Policy.routed`` for a decode step, then the accesses in order with
+    the whole step pinned, or each pinned alone when the step is larger than the pool (the live pool
+    refuses such quotas).  ``served`` is ``[(hit, slot, evicted key or None), ...]`` per access.
+    """
+    keys = plan.keys.tolist()
+    starts = plan.starts.tolist()
+    hook = routed_hook(res.policy, plan)
+    capacity = res.capacity
+    for s in range(len(starts) - 1):
+        a, b = starts[s], starts[s + 1]
+        if before is not None:
+            before(s)
+        if hook is not None:
+            hook(s, a, b, res.now)
+        step = keys[a:b]
+        if b - a <= capacity:
+            served = res.access_step(step, step)
+        else:
+            served = [res.access(k, (k,)) for k in step]
+        yield s, a, b, served
 
 
 def generic_misses(plan: LayerPlan, policy_cls: type[Policy], capacity: int) -> np.ndarray:
     """Miss flag per access, from ``Residency`` and a policy object (the live pool's code path)."""
-    keys = plan.keys.tolist()
     res = Residency(capacity, plan_policy(policy_cls, plan))
-    hook = routed_hook(res.policy, plan)
-    starts = plan.starts.tolist()
-    miss = np.zeros(len(keys), bool)
-    for s in range(len(starts) - 1):
-        a, b = starts[s], starts[s + 1]
-        if hook is not None:
-            hook(s, a, b, res.now)
-        pinned = frozenset(keys[a:b]) if b - a <= capacity else None
-        for i in range(a, b):
-            hit, _, _ = res.access(keys[i], pinned if pinned is not None else (keys[i],))
+    miss = bytearray(plan.n)
+    for _, a, _, served in walk(plan, res):
+        for i, (hit, _, _) in enumerate(served, a):
             if not hit:
-                miss[i] = True
-    return miss
+                miss[i] = 1
+    return np.frombuffer(bytes(miss), np.uint8).astype(bool)
 
 
 # ---------------------------------------------------------------------------- fast paths
@@ -418,10 +504,30 @@ def count_layer(plan: LayerPlan, miss: np.ndarray) -> Counts:
     return Counts(int(counted.sum()), int((miss & counted).sum()), int((miss & ~counted).sum()))
 
 
+def count_shared(plan: LayerPlan, miss: np.ndarray, n_layers: int) -> list[Counts]:
+    """One ``Counts`` per layer of a shared plan's miss flags."""
+    counted = plan.counted_per_access()
+    layer = plan.access_layers()
+
+    def per_layer(flags: np.ndarray) -> list[int]:
+        return np.bincount(layer[flags], minlength=n_layers).tolist()
+
+    acc, mis, pre = per_layer(counted), per_layer(miss & counted), per_layer(miss & ~counted)
+    return [Counts(acc[i], mis[i], pre[i]) for i in range(n_layers)]
+
+
 def replay_counts(
-    trace: Trace, policy: str | type[Policy], capacities: Sequence[int], fast: bool = True, plans: list[LayerPlan] | None = None
+    trace: Trace,
+    policy: str | type[Policy],
+    capacities: Sequence[int],
+    fast: bool = True,
+    plans: list[LayerPlan] | None = None,
+    shared: bool = False,
 ) -> dict[int, list[Counts]]:
-    """Per quota, one ``Counts`` per layer."""
+    """Per quota, one ``Counts`` per layer: each layer's own quota of that many slots, or with
+    ``shared`` one pool of that many slots for all layers (``shared_counts``)."""
+    if shared:
+        return shared_counts(trace, policy, capacities, fast, plans[0] if plans else None)
     cls = policies.get(policy) if isinstance(policy, str) else policy
     plans = plans if plans is not None else layer_plans(trace)
     out: dict[int, list[Counts]] = {c: [] for c in capacities}
@@ -430,6 +536,22 @@ def replay_counts(
         for c in capacities:
             out[c].append(count_layer(plan, m[c]))
     return out
+
+
+def shared_counts(
+    trace: Trace, policy: str | type[Policy], totals: Sequence[int], fast: bool = True, plan: LayerPlan | None = None
+) -> dict[int, list[Counts]]:
+    """One pool of ``total`` slots shared by all layers, for each total: one ``Counts`` per layer
+    (accesses, misses and prefill loads of that layer's experts in the shared pool).
+
+    Accesses come in the live engine's order (``shared_plan``); the policy is made as the live pool
+    makes it (``n_layers * n_experts`` keys, ``shared_experts = n_experts``), so with prefetch off the
+    counts equal a live run's with ``split="shared"``.  ``plan`` reuses a ``shared_plan(trace)``.
+    """
+    cls = policies.get(policy) if isinstance(policy, str) else policy
+    plan = plan if plan is not None else shared_plan(trace)
+    m = layer_misses(plan, cls, totals, fast)
+    return {c: count_shared(plan, m[c], trace.n_layers) for c in totals}
 
 
 # ---------------------------------------------------------------------------- baselines
@@ -516,17 +638,28 @@ class PrefetchCounts(Counts):
 
 
 def simulate_prefetch(
-    trace: Trace, policy_cls: type[Policy], capacity: int, n_guesses: int, lookahead: int, plans: list[LayerPlan] | None = None
+    trace: Trace,
+    policy_cls: type[Policy],
+    capacity: int,
+    n_guesses: int,
+    lookahead: int,
+    plans: list[LayerPlan] | None = None,
+    shared: bool = False,
 ) -> list[PrefetchCounts]:
     """Replay with speculative loads, by the generic path, one ``PrefetchCounts`` per layer.
 
-    Before each decode step of layer m, the guesses made for layer m at the
-    prefetch points of layers m-lookahead .. m-1 of the same token are
-    inserted (``Residency.insert``, no clock tick), furthest lookahead first,
-    each layer's guesses in rank order; a guess already resident is skipped,
-    one that finds no evictable slot is dropped.  As in ``ExpertPool.prefetch``
-    with per-layer quotas, a guess never evicts another guess of the same
-    round; the insert happens at once, as if the link had no delay.
+    Guesses are placed where the live pool places them, and loaded at once, as if the link had no
+    delay: a guess already resident is skipped, one that finds no evictable slot or that the policy
+    declines (``Policy.admits``) is dropped, and a guess never evicts another guess of its round.
+
+    - Per-layer quotas: before each decode step of layer m, the guesses made for layer m at the
+      prefetch points of layers m-lookahead .. m-1 of the same token, furthest lookahead first,
+      each layer's in rank order (layer m's quota is not touched in between, so this is when they
+      were made, as far as that quota can tell).
+    - ``shared`` (one pool of ``capacity`` slots for all layers): right after the step of layer l
+      (its prefetch point), the guesses made there for layers l+1 .. l+lookahead, nearest first,
+      with layer l's chosen experts pinned too, as in ``ExpertPool.prefetch``.  A guess's loads and
+      waste count for the layer it was made for.
     """
     g = trace.guesses
     if g is None:
@@ -537,63 +670,89 @@ def simulate_prefetch(
         raise BadOption(f"--prefetch must be 1..{g.shape[3]} for this trace (it holds {g.shape[3]} guesses per layer)")
     if not getattr(policy_cls, "online", True):
         raise BadOption(f"policy {policy_cls.name!r} reads the future; prefetch is simulated for online policies only")
-    plans = plans if plans is not None else layer_plans(trace)
     gl = g[:, :, :, :n_guesses].tolist()
+    L = trace.n_layers
+    if shared:
+        plan = plans[0] if plans else shared_plan(trace)
+        E = plan.shared_experts
+        layers, tokens, counted, keys, starts = plan.layers.tolist(), plan.token.tolist(), plan.counted.tolist(), plan.keys.tolist(), plan.starts.tolist()
+
+        def shared_rounds(s: int):
+            src = layers[s] - 1  # the step before is layer src's of the same token
+            if counted[s] and src >= 0:
+                t, pinned = tokens[s], keys[starts[s - 1] : starts[s]]
+                for j in range(1, min(lookahead, L - 1 - src) + 1):
+                    ks = [(src + j) * E + e for e in gl[t][src][j - 1] if e >= 0]
+                    yield ks, set(ks).union(pinned)
+
+        return _prefetch_walk(plan, policy_cls, capacity, shared_rounds, L, E)
     out = []
-    for m, plan in enumerate(plans):
-        keys = plan.keys.tolist()
-        res = Residency(capacity, plan_policy(policy_cls, plan))
-        hook = routed_hook(res.policy, plan)
-        starts = plan.starts.tolist()
-        counted = plan.counted.tolist()
-        tokens = plan.token.tolist()
-        pc = PrefetchCounts()
-        fresh: set = set()  # loaded by a guess, not used yet
-        for s in range(len(starts) - 1):
-            a, b = starts[s], starts[s + 1]
+    for m, plan in enumerate(plans if plans is not None else layer_plans(trace)):
+        counted, tokens = plan.counted.tolist(), plan.token.tolist()
+
+        def rounds(s: int, m=m, counted=counted, tokens=tokens):
             if counted[s]:
                 t = tokens[s]
                 for j in range(min(lookahead, m), 0, -1):
-                    src = m - j
-                    protect = {e for e in gl[t][src][j - 1] if e >= 0}  # a guess never evicts its round's others
-                    for e in gl[t][src][j - 1]:
-                        if e < 0:
-                            continue
-                        pc.guesses += 1
-                        if e in res:
-                            continue
-                        try:
-                            _, victim = res.insert(e, protect)
-                        except NoVictim:
-                            continue
-                        pc.loads += 1
-                        fresh.add(e)
-                        if victim in fresh:
-                            fresh.discard(victim)
-                            pc.wasted += 1
-            if hook is not None:
-                hook(s, a, b, res.now)
-            pinned = frozenset(keys[a:b]) if b - a <= capacity else None
-            for i in range(a, b):
-                x = keys[i]
-                hit, _, victim = res.access(x, pinned if pinned is not None else (x,))
-                if counted[s]:
-                    pc.accesses += 1
-                if hit:
-                    if x in fresh:
-                        fresh.discard(x)
-                        if counted[s]:
-                            pc.prefetch_hits += 1
+                    ks = [e for e in gl[t][m - j][j - 1] if e >= 0]
+                    yield ks, set(ks)
+
+        out.append(_prefetch_walk(plan, policy_cls, capacity, rounds, L, trace.n_experts)[m])
+    return out
+
+
+def _prefetch_walk(plan: LayerPlan, policy_cls: type[Policy], capacity: int, rounds, n_layers: int, n_experts: int) -> list[PrefetchCounts]:
+    """``walk`` with the guess rounds ``rounds(s)`` (``(keys, protected)`` pairs) placed before step s."""
+    res = Residency(capacity, plan_policy(policy_cls, plan))
+    policy = res.policy
+    out = [PrefetchCounts() for _ in range(n_layers)]
+    E, layer = plan.shared_experts, plan.layer
+    # key -> the layer it counts for (a per-layer plan's guesses may name experts its trace never chose)
+    owner = [k // E for k in range(plan.n_keys)] if E else [layer] * max(plan.n_keys, n_experts)
+    fresh: set = set()  # loaded by a guess, not used yet
+
+    def place(s: int) -> None:
+        for ks, protect in rounds(s):
+            for key in ks:
+                pc = out[owner[key]]
+                pc.guesses += 1
+                if key in res:
+                    continue
+                try:
+                    victim = res.victim(protect)
+                except NoVictim:
+                    continue
+                if victim is not None and not policy.admits(key, victim, res.now):
+                    continue
+                _, victim = res.place(key, victim)
+                pc.loads += 1
+                fresh.add(key)
+                if victim in fresh:
+                    fresh.discard(victim)
+                    out[owner[victim]].wasted += 1
+
+    keys, counted = plan.keys.tolist(), plan.counted.tolist()
+    for s, a, b, served in walk(plan, res, place):
+        c = counted[s]
+        for x, (hit, _, victim) in zip(keys[a:b], served):
+            pc = out[owner[x]]
+            if c:
+                pc.accesses += 1
+            if hit:
+                if x in fresh:
+                    fresh.discard(x)
+                    if c:
+                        pc.prefetch_hits += 1
+            else:
+                if c:
+                    pc.misses += 1
                 else:
-                    if counted[s]:
-                        pc.misses += 1
-                    else:
-                        pc.prefill_loads += 1
-                    if victim in fresh:
-                        fresh.discard(victim)
-                        pc.wasted += 1
-        pc.wasted += len(fresh)
-        out.append(pc)
+                    pc.prefill_loads += 1
+                if victim in fresh:
+                    fresh.discard(victim)
+                    out[owner[victim]].wasted += 1
+    for key in fresh:
+        out[owner[key]].wasted += 1
     return out
 
 
@@ -787,38 +946,28 @@ def overall(records: list[dict], policy: str | None = None, baseline: str | None
     }
 
 
-def residency_picture(trace: Trace, layer: int, policy: str, capacity: int, t0: int, t1: int) -> np.ndarray:
-    """[n_experts, t1 - t0] codes for tokens t0..t1-1 of one layer after each step, by the generic path:
+def residency_picture(trace: Trace, layer: int, policy: str, capacity: int, t0: int, t1: int, shared: bool = False) -> np.ndarray:
+    """[n_experts, t1 - t0] codes for tokens t0..t1-1 of one layer after each of its steps, by the generic
+    path (``shared``: the layer's experts in one pool of ``capacity`` slots for all layers):
     0 absent, 1 resident, 2 used and resident before (hit), 3 used and loaded (miss)."""
-    plan = layer_plans(trace)[layer]
-    cls = policies.get(policy)
-    keys = plan.keys.tolist()
-    res = Residency(capacity, plan_policy(cls, plan))
-    hook = routed_hook(res.policy, plan)
-    starts = plan.starts.tolist()
-    tokens = plan.token.tolist()
-    counted = plan.counted.tolist()
+    plan = shared_plan(trace) if shared else layer_plans(trace)[layer]
+    res = Residency(capacity, plan_policy(policies.get(policy), plan))
+    keys, tokens, counted = plan.keys.tolist(), plan.token.tolist(), plan.counted.tolist()
+    step_layer = plan.layers.tolist() if shared else None
     E = trace.n_experts
+    base = layer * E if shared else 0
     pic = np.zeros((E, t1 - t0), np.int8)
-    for s in range(len(starts) - 1):
+    for s, a, b, served in walk(plan, res):
         t = tokens[s]
         if t >= t1:
             break
-        a, b = starts[s], starts[s + 1]
-        if hook is not None:
-            hook(s, a, b, res.now)
-        pinned = frozenset(keys[a:b]) if b - a <= capacity else None
-        codes = {}
-        for i in range(a, b):
-            hit, _, _ = res.access(keys[i], pinned if pinned is not None else (keys[i],))
-            codes[keys[i]] = 2 if hit else 3
-        if counted[s] and t >= t0:
+        if counted[s] and t >= t0 and (step_layer is None or step_layer[s] == layer):
             col = pic[:, t - t0]
             col[:] = 0
-            for e in res.slot_of:
-                if 0 <= e < E:
-                    col[e] = 1
-            for e, code in codes.items():
-                if 0 <= e < E:
-                    col[e] = code
+            for k in res.slot_of:
+                if 0 <= k - base < E:
+                    col[k - base] = 1
+            for k, (hit, _, _) in zip(keys[a:b], served):
+                if 0 <= k - base < E:
+                    col[k - base] = 2 if hit else 3
     return pic
