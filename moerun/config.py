@@ -15,6 +15,8 @@ FORMAT_TAG = "moerun/1"
 MAX_TENSORS = 1 << 20
 FLOAT32_MAX = 3.4028234663852886e38  # the largest finite float32 (IEEE 754 binary32)
 CONFIG_LIMIT = 16 << 20  # bytes of a config.json (a real one is a few hundred)
+# What every output about a model with random weights (config.json "synthetic": true, made by moerun synth) says
+RANDOM_NOTE = "random weights: routing is meaningless"
 
 _INT_FIELDS = (
     "vocab_size",

@@ -43,10 +43,10 @@ from pathlib import Path
 
 import numpy as np
 
-from .config import ModelConfig
+from .config import RANDOM_NOTE, ModelConfig
 from .errors import BadInput, BadModelFile, BadOption, OutputError
 from .fileio import write_text_atomic
-from .modelfile import read_header
+from .modelfile import expert_span, read_header
 from .store import pread_into
 from .units import finite_number, whole_number
 
@@ -60,7 +60,6 @@ DEFAULT_RUNS = 30
 # it is kept near this size (at least 2 and at most 8 blocks).
 SCRATCH_TARGET = 256 * 1024 * 1024
 MIN_SLOTS, MAX_SLOTS = 2, 8
-RANDOM_NOTE = "random weights: routing is meaningless"
 DROP_METHOD = "posix_fadvise(POSIX_FADV_DONTNEED) on the whole file before each read"
 CHECK_METHOD = "mincore(2) on a read-only map of the block's pages before each read"
 REGIMES = ("warm", "cold")
@@ -244,10 +243,7 @@ def model_block(model_dir: str | os.PathLike, max_offsets: int) -> Block:
             parts = by_expert.get((layer, e))
             if not parts:
                 raise BadModelFile(f"{header.path}: expert {e} of layer {layer} has no tensors")
-            start, end = min(t.start for t in parts), max(t.end for t in parts)
-            if sum(t.nbytes for t in parts) != end - start:
-                raise BadModelFile(f"{header.path}: expert {e} of layer {layer} is not one contiguous byte range")
-            spans.append((start, end - start))
+            spans.append(expert_span(header.path, layer, e, parts))
     sizes = {n for _, n in spans}
     if len(sizes) != 1:
         raise BadModelFile(f"{header.path}: experts differ in size ({sorted(sizes)[:4]} bytes)")

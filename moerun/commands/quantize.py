@@ -8,7 +8,8 @@ import sys
 from .. import cli
 from ..engine import default_model_dir
 from ..errors import BadOption
-from ..quant import ATTN_BITS, EXPERT_BITS, METHODS, QuantSpec, quantize_model
+from ..packed import ATTN_BITS, EXPERT_BITS, METHODS, QuantSpec
+from ..quant import quantize_model
 from ..report import Progress, emit_json, table
 from ..units import fmt_bytes
 
