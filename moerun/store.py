@@ -16,6 +16,7 @@ of the file and then releases the copied range of the map with
 
 from __future__ import annotations
 
+import contextlib
 import ctypes
 import errno
 import mmap
@@ -33,6 +34,7 @@ from .errors import BadModelFile, BadOption, PageInError
 from .link import Link
 from .modelfile import NUMPY_DTYPES, Header, TensorInfo, expert_span, read_header
 from .packed import read_packed_dense, recorded_quant_problem
+from .pagecache import drop_pages, drop_problem
 
 PAGE = mmap.PAGESIZE
 # Linux maps up to this many bytes of already-cached file pages around a read fault
@@ -108,15 +110,6 @@ def pread_into(fd: int, offset: int, dst) -> None:
         if more == 0:
             raise EOFError
         got += more
-
-
-def drop_pages(fd: int, offset: int, nbytes: int) -> None:
-    """Ask the OS to drop a file range from its page cache (the next read of it comes from the device)."""
-    if hasattr(os, "posix_fadvise"):
-        try:
-            os.posix_fadvise(fd, offset, nbytes, os.POSIX_FADV_DONTNEED)
-        except OSError:
-            pass
 
 
 def _check_dense_tensors(config: ModelConfig, header: Header) -> None:
@@ -366,19 +359,21 @@ class ModelStore:
             raise PageInError(f"{self.path}: reading expert {expert} of layer {layer} failed ({e.strerror or e})") from None
         ns = time.monotonic_ns() - t0
         if self.cold_reads:
-            drop_pages(self._fd, r.start, r.nbytes)
+            if drop_problem() is None:
+                with contextlib.suppress(OSError):  # advice only: a refused drop leaves a warm read, not a wrong one
+                    drop_pages(self._fd, r.start, r.nbytes)
         return ns
 
     def drop_cache(self) -> bool:
         """Ask the OS to drop this file's pages from its cache (for cold runs). True if advised."""
-        if not hasattr(os, "posix_fadvise"):
+        if drop_problem() is not None:
             return False
         if self._map is not None:
             try:
                 self._map.madvise(mmap.MADV_DONTNEED)
             except (OSError, ValueError):
                 pass
-        os.posix_fadvise(self._fd, 0, 0, os.POSIX_FADV_DONTNEED)
+        drop_pages(self._fd)
         return True
 
     def close(self) -> None:
