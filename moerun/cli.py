@@ -44,12 +44,33 @@ def seed_value(text: str) -> int:
     return seed
 
 
+def add_seed(p, what: str = "sampling seed") -> None:
+    """--seed, one parser for every command that takes one (seed_value)."""
+    p.add_argument("--seed", type=seed_value, default=0, metavar="N", help=f"{what}, 0 or more (default 0)")
+
+
+def max_tokens_value(text: str) -> int:
+    """argparse type for --max-tokens: a whole number, 1 or more."""
+    try:
+        n = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"--max-tokens takes a whole number, got {text!r}") from None
+    if n < 1:
+        raise argparse.ArgumentTypeError(f"--max-tokens must be at least 1, got {n}")
+    return n
+
+
+def add_max_tokens(p, help: str) -> None:
+    """--max-tokens (default: all of the text), one parser for score, record and quantize."""
+    p.add_argument("--max-tokens", type=max_tokens_value, metavar="N", help=help)
+
+
 def add_prompt(p, max_new_default: int = 80) -> None:
     g = p.add_mutually_exclusive_group()
     g.add_argument("--prompt", metavar="TEXT", help="prompt text")
     g.add_argument("--prompt-file", metavar="FILE", help="read the prompt from a UTF-8 file")
     p.add_argument("--max-new", type=int, default=max_new_default, metavar="N", help=f"tokens to generate (default {max_new_default})")
-    p.add_argument("--seed", type=seed_value, default=0, metavar="N", help="sampling seed, 0 or more (default 0)")
+    add_seed(p)
     p.add_argument("--temperature", type=float, default=0.8, metavar="T", help="0 = greedy (default 0.8)")
     p.add_argument("--top-p", type=float, default=0.95, metavar="P", help="nucleus sampling mass (default 0.95)")
 

@@ -29,7 +29,7 @@ def add_arguments(p) -> None:
     p.add_argument("--text", metavar="FILE", help="UTF-8 text to route (default: the model directory's heldout.txt)")
     p.add_argument("--trace", metavar="FILE", required=True, help="trace file to write (.npz)")
     cli.add_force(p, "the --trace file")
-    p.add_argument("--max-tokens", type=int, metavar="N", help="route at most the first N tokens of the text")
+    cli.add_max_tokens(p, "route at most the first N tokens of the text")
     cli.add_json(p)
 
 
@@ -108,8 +108,6 @@ def run(args) -> int:
     text_path = Path(args.text) if args.text else model_dir / "heldout.txt"
     if args.text is None and not text_path.exists():
         raise BadInput(f"{model_dir} has no heldout.txt; name a text with --text FILE")
-    if args.max_tokens is not None and args.max_tokens < 1:
-        raise BadOption(f"--max-tokens must be 1 or more, got {args.max_tokens}")
     inputs = cli.model_files(model_dir) + [text_path]
     check_output(args.trace, args.force, inputs, "--trace")
     text = read_text_file(text_path)
