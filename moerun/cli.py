@@ -1,6 +1,6 @@
 """``moerun <command>``: argument parsing, shared options, and the one place errors become exit codes.
 
-Exit codes (DESIGN section 4): 0 success, 1 a check failed, 2 bad input or
+Exit codes (docs/architecture.md): 0 success, 1 a check failed, 2 bad input or
 usage, 130 interrupted.  Library errors (``MoerunError``) become one line on
 stderr; nothing prints a traceback for a user mistake.
 """

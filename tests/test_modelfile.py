@@ -1,4 +1,4 @@
-"""moerun.modelfile: header validation (DESIGN invariant 5) and the writer's layout.
+"""moerun.modelfile: header validation (docs/architecture.md, invariants: files are trusted only after validation) and the writer's layout.
 
 Corrupt files are made by editing the header of a freshly written synthetic model.
 """
