@@ -2,7 +2,7 @@
 link on a virtual clock, and a reader that stops answering cannot hang decode.
 
 docs/architecture.md, invariants: prefetch is advisory (no wait on the reader is unbounded), and nothing
-spins: a side with nothing to do blocks).
+spins (a side with nothing to do blocks).
 """
 
 from __future__ import annotations
