@@ -33,15 +33,22 @@ def add_model(p) -> None:
     p.add_argument("--model", metavar="DIR", help="model directory (default: the bundled tiny model)")
 
 
-def seed_value(text: str) -> int:
-    """argparse type for --seed: a whole number, 0 or more (numpy's generators refuse negative seeds)."""
-    try:
-        seed = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"--seed takes a whole number, got {text!r}") from None
-    if seed < 0:
-        raise argparse.ArgumentTypeError(f"--seed must be 0 or more, got {seed}")
-    return seed
+def whole_number_at_least(flag: str, low: int):
+    """An argparse type for ``flag``: a whole number, ``low`` or more; a usage error (one line, exit 2) otherwise."""
+
+    def parse(text: str) -> int:
+        try:
+            n = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{flag} takes a whole number, got {text!r}") from None
+        if n < low:
+            raise argparse.ArgumentTypeError(f"{flag} must be {low} or more, got {n}")
+        return n
+
+    return parse
+
+
+seed_value = whole_number_at_least("--seed", 0)  # numpy's generators refuse negative seeds
 
 
 def add_seed(p, what: str = "sampling seed") -> None:
@@ -49,20 +56,9 @@ def add_seed(p, what: str = "sampling seed") -> None:
     p.add_argument("--seed", type=seed_value, default=0, metavar="N", help=f"{what}, 0 or more (default 0)")
 
 
-def max_tokens_value(text: str) -> int:
-    """argparse type for --max-tokens: a whole number, 1 or more."""
-    try:
-        n = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"--max-tokens takes a whole number, got {text!r}") from None
-    if n < 1:
-        raise argparse.ArgumentTypeError(f"--max-tokens must be at least 1, got {n}")
-    return n
-
-
 def add_max_tokens(p, help: str) -> None:
     """--max-tokens (default: all of the text), one parser for score, record and quantize."""
-    p.add_argument("--max-tokens", type=max_tokens_value, metavar="N", help=help)
+    p.add_argument("--max-tokens", type=whole_number_at_least("--max-tokens", 1), metavar="N", help=help)
 
 
 def add_prompt(p, max_new_default: int = 80) -> None:
