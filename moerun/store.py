@@ -267,10 +267,15 @@ class ModelStore:
     def expert_range(self, layer: int, expert: int) -> ExpertRange:
         return self.ranges[layer][expert]
 
+    def tensor_bytes(self, name: str) -> bytes:
+        """A tensor's bytes exactly as stored (what its recorded digest covers); BadModelFile if the file ended."""
+        t = self.header.tensors[name]
+        return self._read(t.start, t.nbytes) if t.nbytes else b""
+
     def read_tensor(self, name: str) -> np.ndarray:
         """Any tensor of the file as a numpy array (a copy), for inspection and tests."""
         t = self.header.tensors[name]
-        raw = self._read(t.start, t.nbytes)
+        raw = self.tensor_bytes(name)
         return np.frombuffer(raw, dtype=np.dtype(NUMPY_DTYPES[t.dtype]).newbyteorder("<")).reshape(t.shape).copy()
 
     # ---------------------------------------------------------------- page-in
