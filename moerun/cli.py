@@ -92,6 +92,12 @@ def add_force(p, what: str = "the output") -> None:
                    help=f"replace {what} if it exists (never a device, FIFO, link, foreign directory or an input of the run)")
 
 
+def add_force_dir(p, also: str = "") -> None:
+    """--force for a command whose output is a model directory (moerun.fileio.atomic_dir's rules)."""
+    p.add_argument("--force", action="store_true",
+                   help=f"replace OUT if it is a model directory (never one holding other files{also})")
+
+
 # ---------------------------------------------------------------------------- one rule for options that contradict
 
 

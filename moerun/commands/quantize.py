@@ -25,8 +25,7 @@ def add_arguments(p) -> None:
                    help="attention weights: 16 = float16, 8 or 4 = quantized like the experts (default 16)")
     p.add_argument("--group", type=int, default=64, metavar="N", help="rows per quantization group along the input axis (default 64)")
     p.add_argument("--method", choices=METHODS, default="hqq", help="rtn = round to nearest; hqq = half-quadratic zero-point refinement (default)")
-    p.add_argument("--force", action="store_true",
-                   help="replace OUT if it is a model directory (never one holding other files, and never the source)")
+    cli.add_force_dir(p, ", and never the source")
     p.add_argument("--no-score", action="store_true", help="skip measuring held-out perplexity of source and result for the card")
     cli.add_max_tokens(p, "score only the first N tokens of heldout.txt (default: all)")
     cli.add_json(p)

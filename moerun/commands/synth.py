@@ -29,7 +29,7 @@ EPILOG = (
 def add_arguments(p) -> None:
     p.epilog = EPILOG
     p.add_argument("out", metavar="OUT", help="new model directory to create (absent or empty; its parent must exist)")
-    p.add_argument("--force", action="store_true", help="replace OUT if it is a model directory (never one holding other files)")
+    cli.add_force_dir(p)
     g = p.add_argument_group("shape (required)")
     g.add_argument("--layers", type=int, required=True, metavar="N", help="transformer layers")
     g.add_argument("--experts", type=int, required=True, metavar="N", help="experts per layer")
