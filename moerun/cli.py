@@ -13,7 +13,10 @@ import os
 import signal
 import sys
 
+from . import __version__, policies
+from .engine import default_model_dir
 from .errors import BadInput, BadOption, MoerunError, OutputError
+from .tokenizer import read_text_file
 
 COMMANDS = ["generate", "verify", "inspect", "probe", "synth", "record", "replay", "quantize", "score", "plan"]
 
@@ -72,8 +75,6 @@ def add_prompt(p, max_new_default: int = 80) -> None:
 
 
 def add_memory(p) -> None:
-    from . import policies
-
     online = policies.names(online_only=True)
     p.add_argument("--mem-cap", metavar="SIZE", help="memory cap for dense weights + KV cache + scratch + expert pool (48MiB, 1.5GB, bytes); default: every expert resident")
     p.add_argument("--slots", metavar="N,N,...", help="expert slots per layer, overriding the even split of the cap (not with --shared-pool)")
@@ -179,8 +180,6 @@ def model_files(model_dir) -> list:
     """Every file of a model directory: a run's inputs, which no output may replace."""
     from pathlib import Path
 
-    from .engine import default_model_dir
-
     d = Path(model_dir) if model_dir is not None else default_model_dir()
     try:
         return [p for p in d.iterdir() if p.is_file()]
@@ -190,8 +189,6 @@ def model_files(model_dir) -> list:
 
 def read_prompt(args) -> str:
     if getattr(args, "prompt_file", None):
-        from .tokenizer import read_text_file
-
         return read_text_file(args.prompt_file)
     return args.prompt if args.prompt is not None else ""
 
@@ -201,8 +198,6 @@ def read_prompt(args) -> str:
 
 def build_parser() -> ArgParser:
     parser = ArgParser(prog="moerun", description="CPU reference engine and workbench for offloaded mixture-of-experts inference")
-    from . import __version__
-
     parser.add_argument("--version", action="version", version=f"moerun {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=ArgParser)
     for name in COMMANDS:

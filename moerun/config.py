@@ -8,6 +8,7 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 from .errors import BadModelFile
+from .fileio import read_user_file
 
 FORMAT_TAG = "moerun/1"
 # Upper bound on the tensors a config may imply (7 dense, 3 per expert and 3 for a shared expert, per layer).  Large
@@ -144,8 +145,6 @@ class ModelConfig:
 
     @classmethod
     def load(cls, model_dir: Path) -> ModelConfig:
-        from .fileio import read_user_file
-
         path = Path(model_dir) / "config.json"
         data = read_user_file(path, BadModelFile, "config file", limit=CONFIG_LIMIT,
                               missing=f"{path}: missing (every model directory needs a config.json)")

@@ -18,7 +18,7 @@ import numpy as np
 from . import policies
 from .budget import Budget, plan_budget
 from .config import RANDOM_NOTE
-from .errors import BadOption
+from .errors import BadModelFile, BadOption
 from .memwatch import MemWatch
 from .model import KVCache, Transformer
 from .pool import ExpertPool
@@ -164,8 +164,6 @@ class Engine:
         """The one check every command's numbers pass (generate, logits, score, record, verify): non-finite
         logits mean damaged or overflowing weights; never report numbers computed from them."""
         if not np.isfinite(logits).all():
-            from .errors import BadModelFile
-
             raise BadModelFile(
                 f"{self.store.path}: the model computed non-finite logits; its weights are damaged or overflow float32"
             )

@@ -21,7 +21,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import BadModelFile
-from .fileio import atomic_path
+from .fileio import atomic_path, open_regular
 
 # Item sizes of the dtypes of the safetensors format (safetensors format specification).
 DTYPE_SIZES = {
@@ -92,8 +92,6 @@ def digest(data: bytes | memoryview | np.ndarray) -> str:
 
 def read_header(path: str | os.PathLike) -> Header:
     """Read and validate a safetensors header; raise BadModelFile naming the problem."""
-    from .fileio import open_regular
-
     path = Path(path)
     try:
         with open_regular(path, BadModelFile, "safetensors file", missing=f"{path}: missing") as f:  # never a FIFO or device

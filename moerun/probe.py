@@ -39,6 +39,7 @@ from pathlib import Path
 
 import numpy as np
 
+from . import __version__
 from .config import RANDOM_NOTE, ModelConfig
 from .errors import BadInput, BadModelFile, BadOption, OutputError
 from .modelfile import expert_span, read_header
@@ -334,8 +335,6 @@ def storage_info(path: str | os.PathLike) -> dict:
 def machine_info() -> dict:
     """Facts about this machine (best effort; unknowns are null)."""
     import psutil
-
-    from . import __version__
 
     cpu = None
     with contextlib.suppress(OSError):

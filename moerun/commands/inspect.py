@@ -9,10 +9,13 @@ from ..budget import minimum_cap, scratch_bytes
 from ..codec import packed_dense_tensors
 from ..config import RANDOM_NOTE
 from ..engine import default_model_dir
+from ..errors import BadModelFile
+from ..fileio import read_user_file
 from ..model import KVCache
 from ..modelfile import digest, recorded_digests
 from ..report import emit_json, table
 from ..store import ModelStore
+from ..tokenizer import Tokenizer
 from ..units import fmt_bytes
 
 HELP = "show a model's config, tensors, expert sizes and file layout; checks every file of the directory; --check verifies digests"
@@ -45,10 +48,6 @@ def check_files(store: ModelStore) -> dict:
     tokenizer.json as generate loads it, the texts as UTF-8, reference.npz as arrays without pickles; and the
     quantization config.json declares against the one the weights file records (ModelStore.open does that)."""
     import numpy as np
-
-    from ..errors import BadModelFile
-    from ..fileio import read_user_file
-    from ..tokenizer import Tokenizer
 
     c = store.config
     d = store.model_dir  # (the recorded quantization was compared when the store opened)
