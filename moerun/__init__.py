@@ -3,7 +3,7 @@
 import os as _os
 
 # Batch-1 decode multiplies small matrices: one BLAS thread is faster and far steadier than two
-# on a shared 2-core machine (DESIGN section 6).  This only takes effect when moerun is imported
+# on a shared 2-core machine (DEVELOPERS.md, Benchmarks).  This only takes effect when moerun is imported
 # before numpy; set OPENBLAS_NUM_THREADS (or OMP_NUM_THREADS) yourself to choose otherwise.
 for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     _os.environ.setdefault(_var, "1")

@@ -26,9 +26,17 @@ from pathlib import Path
 import numpy as np
 
 from . import __version__, policies
-from .budget import minimum_cap
+from .budget import minimum_cap, plan_budget
+from .clock import fine_timer
+from .config import ModelConfig
+from .engine import load
 from .errors import BadInput, BadOption
 from .fileio import read_json_file, write_text_atomic
+from .model import expert
+from .pool import ExpertPool
+from .prefetch import GuessRule
+from .sampling import Sampling
+from .store import ModelStore
 from .timeline import Costs
 from .units import finite_number, whole_number
 
@@ -95,9 +103,6 @@ def _others_cpu_s() -> float:
 
 def _resident_decode(model_dir, tokens: int):
     """(step s, layer_s list, head s) of one fully resident decode."""
-    from .engine import load
-    from .sampling import Sampling
-
     with load(model_dir, tokenizer=False) as eng:
         eng.start_trace()
         gen = eng.generate(prompt_ids=[0], max_new=tokens + 1, sampling=Sampling(temperature=0.8, seed=0))
@@ -110,9 +115,6 @@ def _resident_decode(model_dir, tokens: int):
 
 def _expert_costs(eng) -> dict:
     """One expert with its format's decoding, the decoding alone, one copy of its bytes, the guess rule."""
-    from .model import expert
-    from .prefetch import GuessRule
-
     pool = eng.pool
     slot = pool.slots[0]
     codec = eng.store.codec
@@ -135,8 +137,6 @@ def _expert_costs(eng) -> dict:
 
 
 def _sleep_lateness() -> float:
-    from .clock import fine_timer
-
     fine_timer()
     late = []
     for _ in range(100):
@@ -148,10 +148,6 @@ def _sleep_lateness() -> float:
 
 def _policy_costs(model_dir, trace, names) -> dict:
     """Each policy's bookkeeping per access over LRU's: the live pool driven by recorded routing, no reads."""
-    from .budget import plan_budget
-    from .pool import ExpertPool
-    from .store import ModelStore
-
     store = ModelStore.open(model_dir)
     try:
         store.copy_in = lambda layer, expert, dst: 0
@@ -187,10 +183,6 @@ def _policy_costs(model_dir, trace, names) -> dict:
 
 def _late_share(model_dir, tokens: int) -> float:
     """Share of used guesses the compute thread copied itself, in a capped run with prefetch."""
-    from .engine import load
-    from .sampling import Sampling
-    from .store import ModelStore
-
     store = ModelStore.open(model_dir)
     c = store.config
     cap = minimum_cap(c, store.dense_nbytes, store.expert_nbytes, "even", store.codec.scratch_bytes())
@@ -203,9 +195,6 @@ def _late_share(model_dir, tokens: int) -> float:
 
 def measure(model_dir, tokens: int = 96, progress=None) -> dict:
     """Every cost of the model on this machine (see the module docstring); ``progress(what)`` is told each step."""
-    from .engine import load
-    from .sampling import Sampling
-
     say = progress or (lambda what: None)
     model_dir = Path(model_dir)
     others0, load0, t0 = _others_cpu_s(), os.getloadavg()[0], time.monotonic()
@@ -286,8 +275,6 @@ def model_key(model_dir: Path) -> str:
 
 def calibrate(model_dir, tokens: int = 96, recalibrate: bool = False, cache: bool = True, progress=None) -> dict:
     """The model's costs on this machine, measured now or taken from the cache (see the module docstring)."""
-    from .config import ModelConfig
-
     model_dir = Path(model_dir)
     path = cache_dir() / f"calibration-{model_key(model_dir)}.json"
     if cache and not recalibrate:

@@ -1,6 +1,6 @@
 """``moerun <command>``: argument parsing, shared options, and the one place errors become exit codes.
 
-Exit codes (DESIGN section 4): 0 success, 1 a check failed, 2 bad input or
+Exit codes (docs/architecture.md): 0 success, 1 a check failed, 2 bad input or
 usage, 130 interrupted.  Library errors (``MoerunError``) become one line on
 stderr; nothing prints a traceback for a user mistake.
 """
@@ -13,7 +13,10 @@ import os
 import signal
 import sys
 
+from . import __version__, policies
+from .engine import default_model_dir
 from .errors import BadInput, BadOption, MoerunError, OutputError
+from .tokenizer import read_text_file
 
 COMMANDS = ["generate", "verify", "inspect", "probe", "synth", "record", "replay", "quantize", "score", "plan"]
 
@@ -33,15 +36,32 @@ def add_model(p) -> None:
     p.add_argument("--model", metavar="DIR", help="model directory (default: the bundled tiny model)")
 
 
-def seed_value(text: str) -> int:
-    """argparse type for --seed: a whole number, 0 or more (numpy's generators refuse negative seeds)."""
-    try:
-        seed = int(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"--seed takes a whole number, got {text!r}") from None
-    if seed < 0:
-        raise argparse.ArgumentTypeError(f"--seed must be 0 or more, got {seed}")
-    return seed
+def whole_number_at_least(flag: str, low: int):
+    """An argparse type for ``flag``: a whole number, ``low`` or more; a usage error (one line, exit 2) otherwise."""
+
+    def parse(text: str) -> int:
+        try:
+            n = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{flag} takes a whole number, got {text!r}") from None
+        if n < low:
+            raise argparse.ArgumentTypeError(f"{flag} must be {low} or more, got {n}")
+        return n
+
+    return parse
+
+
+seed_value = whole_number_at_least("--seed", 0)  # numpy's generators refuse negative seeds
+
+
+def add_seed(p, what: str = "sampling seed") -> None:
+    """--seed, one parser for every command that takes one (seed_value)."""
+    p.add_argument("--seed", type=seed_value, default=0, metavar="N", help=f"{what}, 0 or more (default 0)")
+
+
+def add_max_tokens(p, help: str) -> None:
+    """--max-tokens (default: all of the text), one parser for score, record and quantize."""
+    p.add_argument("--max-tokens", type=whole_number_at_least("--max-tokens", 1), metavar="N", help=help)
 
 
 def add_prompt(p, max_new_default: int = 80) -> None:
@@ -49,14 +69,12 @@ def add_prompt(p, max_new_default: int = 80) -> None:
     g.add_argument("--prompt", metavar="TEXT", help="prompt text")
     g.add_argument("--prompt-file", metavar="FILE", help="read the prompt from a UTF-8 file")
     p.add_argument("--max-new", type=int, default=max_new_default, metavar="N", help=f"tokens to generate (default {max_new_default})")
-    p.add_argument("--seed", type=seed_value, default=0, metavar="N", help="sampling seed, 0 or more (default 0)")
+    add_seed(p)
     p.add_argument("--temperature", type=float, default=0.8, metavar="T", help="0 = greedy (default 0.8)")
     p.add_argument("--top-p", type=float, default=0.95, metavar="P", help="nucleus sampling mass (default 0.95)")
 
 
 def add_memory(p) -> None:
-    from . import policies
-
     online = policies.names(online_only=True)
     p.add_argument("--mem-cap", metavar="SIZE", help="memory cap for dense weights + KV cache + scratch + expert pool (48MiB, 1.5GB, bytes); default: every expert resident")
     p.add_argument("--slots", metavar="N,N,...", help="expert slots per layer, overriding the even split of the cap (not with --shared-pool)")
@@ -73,6 +91,12 @@ def add_memory(p) -> None:
 def add_force(p, what: str = "the output") -> None:
     p.add_argument("--force", action="store_true",
                    help=f"replace {what} if it exists (never a device, FIFO, link, foreign directory or an input of the run)")
+
+
+def add_force_dir(p, also: str = "") -> None:
+    """--force for a command whose output is a model directory (moerun.fileio.atomic_dir's rules)."""
+    p.add_argument("--force", action="store_true",
+                   help=f"replace OUT if it is a model directory (never one holding other files{also})")
 
 
 # ---------------------------------------------------------------------------- one rule for options that contradict
@@ -156,8 +180,6 @@ def model_files(model_dir) -> list:
     """Every file of a model directory: a run's inputs, which no output may replace."""
     from pathlib import Path
 
-    from .engine import default_model_dir
-
     d = Path(model_dir) if model_dir is not None else default_model_dir()
     try:
         return [p for p in d.iterdir() if p.is_file()]
@@ -167,8 +189,6 @@ def model_files(model_dir) -> list:
 
 def read_prompt(args) -> str:
     if getattr(args, "prompt_file", None):
-        from .tokenizer import read_text_file
-
         return read_text_file(args.prompt_file)
     return args.prompt if args.prompt is not None else ""
 
@@ -178,8 +198,6 @@ def read_prompt(args) -> str:
 
 def build_parser() -> ArgParser:
     parser = ArgParser(prog="moerun", description="CPU reference engine and workbench for offloaded mixture-of-experts inference")
-    from . import __version__
-
     parser.add_argument("--version", action="version", version=f"moerun {__version__}")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=ArgParser)
     for name in COMMANDS:

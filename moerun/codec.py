@@ -15,6 +15,8 @@ from dataclasses import dataclass
 import numpy as np
 
 from .config import ModelConfig
+from .modelfile import DTYPE_SIZES
+from .packed import Dequantizer, QuantSpec, expert_layout, packed_dense_names
 
 
 @dataclass(frozen=True)
@@ -26,8 +28,6 @@ class Part:
 
     @property
     def nbytes(self) -> int:
-        from .modelfile import DTYPE_SIZES
-
         n = DTYPE_SIZES[self.dtype]
         for s in self.shape:
             n *= s
@@ -89,18 +89,41 @@ class FloatCodec(Codec):
         return 0 if self._scratch is None else sum(s.nbytes for s in self._scratch)
 
 
+class QuantCodec(Codec):
+    """Experts stored as one packed blob each (``layers.{l}.experts.{e}.packed``, U8)."""
+
+    def __init__(self, config: ModelConfig, spec: QuantSpec, offsets: dict[str, int] | None = None):
+        self.config = config
+        self.spec = spec
+        self.layout = expert_layout(config, spec.expert_bits, spec.group)
+        self.name = f"{spec.expert_bits}-bit {spec.method}, group {spec.group}"
+        self.parts = (Part("packed", "U8", (self.layout.nbytes,), (offsets or {}).get("packed", 0)),)
+        self._deq = Dequantizer(self.layout)
+
+    def with_offsets(self, offsets: dict[str, int]) -> QuantCodec:
+        return QuantCodec(self.config, self.spec, offsets)
+
+    def bind(self, slot: np.ndarray):
+        p = self.parts[0]
+        return self._deq.bind(slot[p.offset : p.offset + p.nbytes])
+
+    def weights(self, bound):
+        return self._deq.decode(bound)
+
+    def scratch_bytes(self) -> int:
+        return self._deq.scratch_bytes
+
+
+
 def packed_dense_tensors(config: ModelConfig) -> dict[str, str]:
     """Dense tensors stored as packed blobs (quantized attention): ``{dense name: blob tensor name}``."""
     if config.extra.get("quant"):
-        from .quant import packed_dense_names  # validates the quant entry
-
-        return packed_dense_names(config)
+        return packed_dense_names(config)  # validates the quant entry
     return {}
 
 
 def codec_for(config: ModelConfig, expert_dtype: str) -> Codec:
+    """The codec of a model's experts: packed low-bit when config.json has a quant entry (validated here), else float."""
     if config.extra.get("quant"):
-        from .quant import codec_from_config  # packed low-bit experts
-
-        return codec_from_config(config)
+        return QuantCodec(config, QuantSpec.from_config(config))
     return FloatCodec(config, expert_dtype)

@@ -8,6 +8,7 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 from .errors import BadModelFile
+from .fileio import read_user_file
 
 FORMAT_TAG = "moerun/1"
 # Upper bound on the tensors a config may imply (7 dense, 3 per expert and 3 for a shared expert, per layer).  Large
@@ -15,6 +16,8 @@ FORMAT_TAG = "moerun/1"
 MAX_TENSORS = 1 << 20
 FLOAT32_MAX = 3.4028234663852886e38  # the largest finite float32 (IEEE 754 binary32)
 CONFIG_LIMIT = 16 << 20  # bytes of a config.json (a real one is a few hundred)
+# What every output about a model with random weights (config.json "synthetic": true, made by moerun synth) says
+RANDOM_NOTE = "random weights: routing is meaningless"
 
 _INT_FIELDS = (
     "vocab_size",
@@ -32,7 +35,7 @@ _INT_FIELDS = (
 
 @dataclass(frozen=True)
 class ModelConfig:
-    """Shape and hyper-parameters of a model (DESIGN section 3)."""
+    """Shape and hyper-parameters of a model (docs/architecture.md, model spec)."""
 
     vocab_size: int
     d_model: int
@@ -142,8 +145,6 @@ class ModelConfig:
 
     @classmethod
     def load(cls, model_dir: Path) -> ModelConfig:
-        from .fileio import read_user_file
-
         path = Path(model_dir) / "config.json"
         data = read_user_file(path, BadModelFile, "config file", limit=CONFIG_LIMIT,
                               missing=f"{path}: missing (every model directory needs a config.json)")
@@ -155,7 +156,7 @@ class ModelConfig:
             raise BadModelFile(f"{path}: not valid JSON (nested too deeply)") from None
         return cls.from_dict(raw, where=str(path))
 
-    # Expected dense tensors and their shapes (DESIGN section 3).
+    # Expected dense tensors and their shapes (docs/architecture.md, model spec).
     def dense_shapes(self) -> dict[str, tuple[int, ...]]:
         d = self.d_model
         shapes: dict[str, tuple[int, ...]] = {"embed": (self.vocab_size, d), "final_norm": (d,)}

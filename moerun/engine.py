@@ -15,8 +15,10 @@ from pathlib import Path
 
 import numpy as np
 
+from . import policies
 from .budget import Budget, plan_budget
-from .errors import BadOption
+from .config import RANDOM_NOTE
+from .errors import BadModelFile, BadOption
 from .memwatch import MemWatch
 from .model import KVCache, Transformer
 from .pool import ExpertPool
@@ -25,7 +27,7 @@ from .reader import STALL_TIMEOUT_S, Reader
 from .routing import ReplayedRouting
 from .sampling import Sampler, Sampling
 from .sources import BareExperts, NoReuseExperts, WholeLayerExperts
-from .store import ModelStore
+from .store import MECHANISMS, ModelStore
 from .tokenizer import Tokenizer
 from .trace import TRACE_GUESSES, TRACE_LOOKAHEAD, Recorder, Trace, read_trace
 from .units import parse_rate, parse_size
@@ -91,9 +93,8 @@ class Engine:
         self.experts = experts
         self.pool = experts if isinstance(experts, ExpertPool) else None
         self.model = Transformer(store.config, store.dense)
-        for layer in range(store.config.n_layers):  # now held once, fused as wqkv
-            for part in ("attn.wq", "attn.wk", "attn.wv"):
-                store.dense.pop(f"layers.{layer}.{part}", None)
+        store.release_dense(f"layers.{layer}.{part}" for layer in range(store.config.n_layers)
+                            for part in ("attn.wq", "attn.wk", "attn.wv"))  # now held once, fused as wqkv
         self.cache = KVCache(store.config)
         self.memwatch = memwatch
         self.options = options
@@ -163,8 +164,6 @@ class Engine:
         """The one check every command's numbers pass (generate, logits, score, record, verify): non-finite
         logits mean damaged or overflowing weights; never report numbers computed from them."""
         if not np.isfinite(logits).all():
-            from .errors import BadModelFile
-
             raise BadModelFile(
                 f"{self.store.path}: the model computed non-finite logits; its weights are damaged or overflow float32"
             )
@@ -266,7 +265,7 @@ class Engine:
             "lookahead": self.options.get("lookahead", 1),
             "link_speed_emulated": self.options.get("link_speed"),
             "partial": partial,
-            **({"synthetic": True, "note": "random weights: routing is meaningless"} if self.config.extra.get("synthetic") else {}),
+            **({"synthetic": True, "note": RANDOM_NOTE} if self.config.extra.get("synthetic") else {}),
             **(extra or {}),
         }
         return rec.to_trace(meta)
@@ -342,7 +341,7 @@ def load(
     routing=None,
     cold_reads: bool = False,
 ) -> Engine:
-    """Open a model and return an engine (DESIGN section 4).
+    """Open a model and return an engine (the public entry point, docs/architecture.md).
 
     mem_cap: bytes (or "48MiB") for dense weights + KV cache + scratch + expert
     pool; None keeps every expert resident.  slots: explicit slots per layer
@@ -358,26 +357,9 @@ def load(
     cold_reads: every expert read comes from the device (each read range is dropped from the page
     cache right after it is copied, as ``moerun probe``'s cold path does); ``cold`` drops the file once.
     """
-    from . import policies
-    from .store import MECHANISMS
-
     _check_arguments(model_dir, evict, prefetch, lookahead, slots, split, mechanism, baseline,
                      {"cold": cold, "bare": bare, "tokenizer": tokenizer, "cold_reads": cold_reads})
-    policies.get(evict)
-    if prefetch < 0:
-        raise BadOption(f"--prefetch must be 0 (off) or a positive number of guesses, got {prefetch}")
-    if prefetch_from not in ("attention", "output"):
-        raise BadOption(f"prefetch point must be 'attention' or 'output', got {prefetch_from!r}")
-    if lookahead < 1:
-        raise BadOption(f"--lookahead must be at least 1, got {lookahead}")
-    if mechanism not in MECHANISMS:
-        raise BadOption(f"unknown page-in mechanism {mechanism!r}; known: {', '.join(MECHANISMS)}")
-    if split not in ("even", "shared"):
-        raise BadOption(f"split must be 'even' or 'shared', got {split!r}")
-    if isinstance(reader_timeout, bool) or not isinstance(reader_timeout, (int, float)) or not reader_timeout > 0:
-        raise BadOption(f"reader_timeout must be a positive number of seconds, got {reader_timeout!r:.40}")
-    if slots is not None and split == "shared":
-        raise BadOption("slots (per-layer quotas) and split='shared' (one pool for every layer) contradict each other; give one")
+    _check_values(evict, prefetch, prefetch_from, lookahead, mechanism, split, slots, reader_timeout, baseline)
     cap = parse_size(mem_cap, "memory cap") if mem_cap is not None else None
     rate = parse_rate(link_speed, "link speed") if link_speed is not None else None
     watch = MemWatch()
@@ -393,19 +375,9 @@ def load(
         chosen_split = list(slots) if slots is not None else split
         budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, cap, chosen_split, store.codec.scratch_bytes())
         store.link_rate = rate
-        if bare:
-            experts = BareExperts(store)
-        elif baseline is not None:
-            kinds = {"whole-layer": WholeLayerExperts, "no-reuse": NoReuseExperts}
-            if baseline not in kinds:
-                raise BadOption(f"unknown baseline {baseline!r}; known: {', '.join(kinds)}")
-            experts = kinds[baseline](store)
-        else:
-            if prefetch > 0:  # guesses are read by the reader process
-                reader = Reader(store, budget.n_slots, budget.slot, reader_timeout)
-            experts = ExpertPool(store, budget, evict, reader)
-            if cap is None:
-                experts.preload_all()
+        if prefetch > 0 and not bare and baseline is None:  # guesses are read by the reader process
+            reader = Reader(store, budget.n_slots, budget.slot, reader_timeout)
+        experts = _expert_source(store, budget, evict, reader, bare, baseline, cap is None)
         options = {
             "mem_cap": cap,
             "evict": evict,
@@ -429,3 +401,47 @@ def load(
             reader.close()
         store.close()
         raise
+
+
+def _check_values(evict, prefetch, prefetch_from, lookahead, mechanism, split, slots, reader_timeout, baseline) -> None:
+    """load()'s settings, each against what it may be: one BadOption naming the first one out of range.
+
+    Checked before the model is opened, so a bad setting costs no file access and leaves nothing open.
+    """
+    policies.get(evict)
+    if prefetch < 0:
+        raise BadOption(f"--prefetch must be 0 (off) or a positive number of guesses, got {prefetch}")
+    if prefetch_from not in ("attention", "output"):
+        raise BadOption(f"prefetch point must be 'attention' or 'output', got {prefetch_from!r}")
+    if lookahead < 1:
+        raise BadOption(f"--lookahead must be at least 1, got {lookahead}")
+    if mechanism not in MECHANISMS:
+        raise BadOption(f"unknown page-in mechanism {mechanism!r}; known: {', '.join(MECHANISMS)}")
+    if split not in ("even", "shared"):
+        raise BadOption(f"split must be 'even' or 'shared', got {split!r}")
+    if isinstance(reader_timeout, bool) or not isinstance(reader_timeout, (int, float)) or not reader_timeout > 0:
+        raise BadOption(f"reader_timeout must be a positive number of seconds, got {reader_timeout!r:.40}")
+    if slots is not None and split == "shared":
+        raise BadOption("slots (per-layer quotas) and split='shared' (one pool for every layer) contradict each other; give one")
+    if baseline is not None and baseline not in BASELINES:
+        raise BadOption(f"unknown baseline {baseline!r}; known: {', '.join(BASELINES)}")
+
+
+BASELINES = {"whole-layer": WholeLayerExperts, "no-reuse": NoReuseExperts}
+
+
+def _expert_source(store: ModelStore, budget: Budget, evict: str, reader: Reader | None, bare: bool,
+                   baseline: str | None, all_resident: bool):
+    """Where the model gets its experts: the pool (the engine proper), or a reference without one.
+
+    ``bare`` keeps every expert in plain buffers (the speed reference); a ``baseline`` is one of the naive
+    offloading schemes the benchmarks compare against.  Without a cap the pool is filled up front.
+    """
+    if bare:
+        return BareExperts(store)
+    if baseline is not None:
+        return BASELINES[baseline](store)
+    pool = ExpertPool(store, budget, evict, reader)
+    if all_resident:
+        pool.preload_all()
+    return pool

@@ -1,7 +1,7 @@
 """The safetensors weight file: parse and validate its header, and write it.
 
 moerun parses the header itself (the reference library exposes no byte
-offsets) and trusts nothing before it is checked (DESIGN invariant 5): header
+offsets) and trusts nothing before it is checked (docs/architecture.md, invariants: files are trusted only after validation): header
 length bound, well-formed JSON, known dtypes, sizes that match shapes, offsets
 inside the file and no overlaps.  The writer orders tensors so that each
 expert's matrices form one contiguous byte range and records a digest per
@@ -21,7 +21,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import BadModelFile
-from .fileio import atomic_path
+from .fileio import atomic_path, open_regular
 
 # Item sizes of the dtypes of the safetensors format (safetensors format specification).
 DTYPE_SIZES = {
@@ -92,8 +92,6 @@ def digest(data: bytes | memoryview | np.ndarray) -> str:
 
 def read_header(path: str | os.PathLike) -> Header:
     """Read and validate a safetensors header; raise BadModelFile naming the problem."""
-    from .fileio import open_regular
-
     path = Path(path)
     try:
         with open_regular(path, BadModelFile, "safetensors file", missing=f"{path}: missing") as f:  # never a FIFO or device
@@ -164,6 +162,18 @@ def read_header(path: str | os.PathLike) -> Header:
     return Header(path, size, data_start, tensors, metadata)
 
 
+def expert_span(path, layer: int, expert: int, parts) -> tuple[int, int]:
+    """(start, nbytes) of the one byte range an expert's tensors ``parts`` fill together; BadModelFile if they leave a gap.
+
+    An expert is paged in with one read of one range (the writer below stores its parts side by side); the
+    store and the page-in probe both take an expert's range from here.
+    """
+    start, end = min(t.start for t in parts), max(t.end for t in parts)
+    if sum(t.nbytes for t in parts) != end - start:
+        raise BadModelFile(f"{path}: expert {expert} of layer {layer} is not one contiguous byte range")
+    return start, end - start
+
+
 _NUM = re.compile(r"(\d+)")
 
 
@@ -188,6 +198,25 @@ def storage_order(names) -> list[str]:
     return sorted(names, key=key)
 
 
+def header_bytes(entries, digests: dict[str, str], metadata: dict[str, str] | None = None) -> bytes:
+    """The safetensors header moerun writes: ``entries`` (name, dtype tag, shape, nbytes) in file order.
+
+    The 8-byte little-endian length is not included.  Offsets follow from the order (no gaps), ``metadata`` gains
+    moerun's format tag and the per-tensor ``digests``, and the JSON is padded with spaces to a multiple of 8 bytes
+    so the data starts aligned.  The one writer of headers: ``save_model_file`` and the streaming writer of
+    ``moerun.synth`` both build theirs here, so their files are byte for byte the same for the same tensors.
+    """
+    meta = {"format": "moerun/1", **(metadata or {})}
+    header: dict = {}
+    offset = 0
+    for name, tag, shape, nbytes in entries:
+        header[name] = {"dtype": tag, "shape": list(shape), "data_offsets": [offset, offset + nbytes]}
+        offset += nbytes
+    meta[DIGEST_KEY] = json.dumps({"algo": DIGEST_ALGO, "tensors": digests}, separators=(",", ":"))
+    blob = json.dumps({"__metadata__": meta, **header}, separators=(",", ":")).encode("utf-8")
+    return blob + b" " * (-len(blob) % 8)
+
+
 def save_model_file(
     path: str | os.PathLike, tensors: dict[str, np.ndarray], metadata: dict[str, str] | None = None
 ) -> None:
@@ -196,11 +225,9 @@ def save_model_file(
     Each expert's parts are stored contiguously (dense tensors first, then
     experts in layer, expert, part order), so one expert is one byte range.
     """
-    meta = {"format": "moerun/1", **(metadata or {})}
     order = storage_order(tensors)
     arrays = {}
-    header: dict = {}
-    offset = 0
+    entries = []
     digests = {}
     for name in order:
         a = np.ascontiguousarray(tensors[name])
@@ -209,13 +236,9 @@ def save_model_file(
             raise ValueError(f"tensor {name!r}: dtype {a.dtype} cannot be stored")
         a = a.astype(a.dtype.newbyteorder("<"), copy=False)
         arrays[name] = a
-        header[name] = {"dtype": tag, "shape": list(a.shape), "data_offsets": [offset, offset + a.nbytes]}
+        entries.append((name, tag, a.shape, a.nbytes))
         digests[name] = digest(a)
-        offset += a.nbytes
-    meta[DIGEST_KEY] = json.dumps({"algo": DIGEST_ALGO, "tensors": digests}, separators=(",", ":"))
-    doc = {"__metadata__": meta, **header}
-    blob = json.dumps(doc, separators=(",", ":")).encode("utf-8")
-    blob += b" " * (-len(blob) % 8)
+    blob = header_bytes(entries, digests, metadata)
     with atomic_path(path) as tmp:
         with open(tmp, "wb") as f:
             f.write(struct.pack("<Q", len(blob)))

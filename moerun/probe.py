@@ -26,11 +26,7 @@ Library code: raises ``moerun.errors`` exceptions, never prints.
 from __future__ import annotations
 
 import contextlib
-import ctypes
-import ctypes.util
 import datetime
-import json
-import mmap
 import os
 import platform
 import re
@@ -43,15 +39,15 @@ from pathlib import Path
 
 import numpy as np
 
-from .config import ModelConfig
+from . import __version__
+from .config import RANDOM_NOTE, ModelConfig
 from .errors import BadInput, BadModelFile, BadOption, OutputError
-from .fileio import write_text_atomic
-from .modelfile import read_header
+from .modelfile import expert_span, read_header
+from .pagecache import PAGE, drop_pages, drop_problem, residency_problem, resident_pages
+from .probe_file import REGIMES, SCHEMA, STAT_KEYS, load_probe, save_probe  # noqa: F401 - their old home (commands/plan.py, scripts/bench_plan.py)
 from .store import pread_into
-from .units import finite_number, whole_number
+from .units import parse_size
 
-SCHEMA = "moerun-probe/1"
-PAGE = mmap.PAGESIZE
 SLOT_ALIGN = 4096
 MEMCPY_BYTES = 64 * 1024 * 1024
 MEMCPY_REPEATS = 8
@@ -60,101 +56,11 @@ DEFAULT_RUNS = 30
 # it is kept near this size (at least 2 and at most 8 blocks).
 SCRATCH_TARGET = 256 * 1024 * 1024
 MIN_SLOTS, MAX_SLOTS = 2, 8
-RANDOM_NOTE = "random weights: routing is meaningless"
 DROP_METHOD = "posix_fadvise(POSIX_FADV_DONTNEED) on the whole file before each read"
 CHECK_METHOD = "mincore(2) on a read-only map of the block's pages before each read"
-REGIMES = ("warm", "cold")
-STAT_KEYS = ("p50_ms", "p95_ms", "p99_ms", "max_ms", "mean_ms", "gb_s", "of_ceiling")
 
 _EXPERT_NAME = re.compile(r"^layers\.(\d+)\.experts\.(\d+)\.")
 Report = Callable[[int, int, str], None]  # progress callback: (done, total, what)
-
-
-class ResidencyUnavailable(Exception):
-    """Page residency cannot be checked here (the reason is the message)."""
-
-
-# ---------------------------------------------------------------------- page residency (mincore)
-
-_libc = None
-
-
-def _c_library():
-    global _libc  # a cache that is safe to drop
-    if _libc is None:
-        name = ctypes.util.find_library("c")
-        lib = ctypes.CDLL(name, use_errno=True)
-        for fn in ("mmap", "munmap", "mincore"):
-            if not hasattr(lib, fn):
-                raise ResidencyUnavailable(f"the C library has no {fn}()")
-        lib.mmap.restype = ctypes.c_void_p
-        lib.mmap.argtypes = [ctypes.c_void_p, ctypes.c_size_t, ctypes.c_int, ctypes.c_int, ctypes.c_int, ctypes.c_int64]
-        lib.munmap.restype = ctypes.c_int
-        lib.munmap.argtypes = [ctypes.c_void_p, ctypes.c_size_t]
-        lib.mincore.restype = ctypes.c_int
-        lib.mincore.argtypes = [ctypes.c_void_p, ctypes.c_size_t, ctypes.c_void_p]
-        _libc = lib
-    return _libc
-
-
-def residency_problem(path: str | os.PathLike) -> str | None:
-    """Why mincore cannot report this file's page-cache state, or None if it can.
-
-    Since Linux 5.2 mincore reports page-cache residency of a file mapping only
-    to a process that owns the file or may open it for writing; for anyone else
-    it reports every page resident, which would make a cold read look warm.
-    """
-    if not hasattr(mmap, "MAP_SHARED") or os.name != "posix":
-        return "mincore(2) is not available on this system"
-    try:
-        _c_library()
-    except (OSError, ResidencyUnavailable) as e:
-        return f"mincore(2) cannot be called ({e})"
-    try:
-        st = os.stat(path)
-    except OSError as e:
-        return f"cannot stat {path} ({e.strerror})"
-    if st.st_uid != os.geteuid() and os.geteuid() != 0 and not os.access(path, os.W_OK):
-        return "the file is neither owned nor writable by this user, so mincore(2) cannot see its page-cache state"
-    return None
-
-
-def resident_pages(fd: int, offset: int, length: int) -> tuple[int, int]:
-    """(resident, total) pages of the file range [offset, offset+length), counted with mincore(2).
-
-    The range is mapped read-only for the call (its pages are not touched, so
-    the check does not load them) and unmapped before returning.
-    """
-    if length <= 0:
-        return 0, 0
-    lib = _c_library()
-    lo = offset - offset % PAGE
-    span = offset + length - lo
-    pages = -(-span // PAGE)
-    addr = lib.mmap(None, span, mmap.PROT_READ, mmap.MAP_SHARED, fd, lo)
-    if addr is None or addr == ctypes.c_void_p(-1).value:
-        err = ctypes.get_errno()
-        raise ResidencyUnavailable(f"mmap for mincore failed ({os.strerror(err)})")
-    try:
-        vec = np.zeros(pages, np.uint8)
-        if lib.mincore(addr, span, vec.ctypes.data) != 0:
-            err = ctypes.get_errno()
-            raise ResidencyUnavailable(f"mincore failed ({os.strerror(err)})")
-    finally:
-        lib.munmap(addr, span)
-    # mincore(2): the least significant bit of each byte is set if the page is resident.
-    return int(np.count_nonzero(vec & 1)), pages
-
-
-def drop_problem() -> str | None:
-    if not hasattr(os, "posix_fadvise") or not hasattr(os, "POSIX_FADV_DONTNEED"):
-        return "posix_fadvise is not available on this system, so pages cannot be dropped without root"
-    return None
-
-
-def drop_pages(fd: int) -> None:
-    """Advise the OS to drop every cached page of the file (len 0 = to the end of the file)."""
-    os.posix_fadvise(fd, 0, 0, os.POSIX_FADV_DONTNEED)
 
 
 # ---------------------------------------------------------------------- buffers and statistics
@@ -244,10 +150,7 @@ def model_block(model_dir: str | os.PathLike, max_offsets: int) -> Block:
             parts = by_expert.get((layer, e))
             if not parts:
                 raise BadModelFile(f"{header.path}: expert {e} of layer {layer} has no tensors")
-            start, end = min(t.start for t in parts), max(t.end for t in parts)
-            if sum(t.nbytes for t in parts) != end - start:
-                raise BadModelFile(f"{header.path}: expert {e} of layer {layer} is not one contiguous byte range")
-            spans.append((start, end - start))
+            spans.append(expert_span(header.path, layer, e, parts))
     sizes = {n for _, n in spans}
     if len(sizes) != 1:
         raise BadModelFile(f"{header.path}: experts differ in size ({sorted(sizes)[:4]} bytes)")
@@ -433,8 +336,6 @@ def machine_info() -> dict:
     """Facts about this machine (best effort; unknowns are null)."""
     import psutil
 
-    from . import __version__
-
     cpu = None
     with contextlib.suppress(OSError):
         for line in Path("/proc/cpuinfo").read_text().splitlines():
@@ -509,6 +410,78 @@ def _measure(block: Block, runs: int, ceiling_gb_s: float, tick: Callable[[str],
     return entry
 
 
+def _check_request(model_dir, sizes, runs: int) -> None:
+    """Refuse a probe that would measure nothing or nonsense, before anything is written."""
+    if runs < 1:
+        raise BadOption(f"--runs must be at least 1, got {runs}")
+    if model_dir is None and not sizes:
+        raise BadOption("nothing to measure: give --model DIR or --sizes LIST")
+    for s in sizes:
+        if s < 1:
+            raise BadOption(f"--sizes: every size must be at least 1 byte, got {s}")
+
+
+def _check_memory(largest: int) -> None:
+    """The largest block's buffer and the copy ceiling's two buffers fit in the memory available now.
+
+    A block read into swapped-out memory would time the swap, not the page-in.
+    """
+    import psutil
+
+    avail = psutil.virtual_memory().available
+    if largest + MEMCPY_BYTES * 2 > avail * 0.8:
+        raise BadOption(f"a {size_label(largest)} block needs a buffer that does not fit in available memory ({size_label(avail)})")
+
+
+def _progress_ticks(total_steps: int, report: Report | None):
+    """(tick, done): ``tick(what)`` makes the step callback of one timed series; ``done()`` counts steps so far."""
+    done = 0
+
+    def tick(what: str) -> Callable[[], None]:
+        def step() -> None:
+            nonlocal done
+            done += 1
+            if report:
+                report(done, total_steps, what)
+
+        return step
+
+    return tick, lambda: done
+
+
+def _measure_blocks(blocks: list[Block], base: Path, runs: int, seed: int, report: Report | None) -> tuple[dict, list[dict]]:
+    """The copy ceiling, then each block timed in both regimes; every temporary file removed whatever happens.
+
+    A temporary file is written just before its block is timed and removed right after, so the disk holds one
+    at a time.
+    """
+    total_steps = len(blocks) * 2 * runs
+    tick, done = _progress_ticks(total_steps, report)
+    created: list[Path] = []
+    results = []
+    try:
+        ceiling = memcpy_ceiling()
+        for block in blocks:
+            if block.source == "tempfile":
+                path = _new_scratch(base, block.nbytes, created)
+                slots = _fit_slots(base, block.nbytes)
+                block.path, block.offsets = path, [k * block.nbytes for k in range(slots)]
+                progress = None
+                if report:
+                    def progress(d, t, w, label=block.label):
+                        report(done(), total_steps, f"{label}: writing the temporary file {100 * d // t}%")
+                write_scratch_file(path, block.nbytes, slots, seed + block.info["index"], progress)
+            results.append(_measure(block, runs, ceiling["gb_s"], tick))
+            if block.source == "tempfile":  # give the disk space back before the next size
+                with contextlib.suppress(OSError):
+                    block.path.unlink()
+    finally:
+        for p in created:
+            with contextlib.suppress(FileNotFoundError):
+                p.unlink()
+    return ceiling, results
+
+
 def run_probe(
     model_dir: str | os.PathLike | None = None,
     sizes: list[int] | tuple[int, ...] = (),
@@ -522,66 +495,22 @@ def run_probe(
     Temporary files go into ``work_dir`` (default: a new temporary directory)
     and are removed before returning, also on an exception or Ctrl-C.
     """
-    if runs < 1:
-        raise BadOption(f"--runs must be at least 1, got {runs}")
-    if model_dir is None and not sizes:
-        raise BadOption("nothing to measure: give --model DIR or --sizes LIST")
-    for s in sizes:
-        if s < 1:
-            raise BadOption(f"--sizes: every size must be at least 1 byte, got {s}")
+    _check_request(model_dir, sizes, runs)
     blocks: list[Block] = []
     if model_dir is not None:
         blocks.append(model_block(model_dir, runs))
-    largest = max([b.nbytes for b in blocks] + list(sizes))
-    import psutil
-
-    avail = psutil.virtual_memory().available
-    if largest + MEMCPY_BYTES * 2 > avail * 0.8:
-        raise BadOption(f"a {size_label(largest)} block needs a buffer that does not fit in available memory ({size_label(avail)})")
-
+    _check_memory(max([b.nbytes for b in blocks] + list(sizes)))
     own_dir = work_dir is None
     if not own_dir:
         _check_dir(Path(work_dir))
     for i, nbytes in enumerate(sizes):
         blocks.append(Block(size_label(nbytes), "tempfile", Path(), nbytes, [], {"index": i}))
-    total_steps = len(blocks) * 2 * runs
-    done = 0
-
-    def tick(what: str) -> Callable[[], None]:
-        def step() -> None:
-            nonlocal done
-            done += 1
-            if report:
-                report(done, total_steps, what)
-
-        return step
-
     base = Path(tempfile.mkdtemp(prefix="moerun-probe-")) if own_dir else Path(work_dir)
-    created: list[Path] = []
-    results = []
     try:
-        ceiling = memcpy_ceiling()
-        for block in blocks:
-            if block.source == "tempfile":
-                path = _new_scratch(base, block.nbytes, created)
-                slots = _fit_slots(base, block.nbytes)
-                block.path, block.offsets = path, [k * block.nbytes for k in range(slots)]
-                progress = None
-                if report:
-                    def progress(d, t, w, label=block.label):
-                        report(done, total_steps, f"{label}: writing the temporary file {100 * d // t}%")
-                write_scratch_file(path, block.nbytes, slots, seed + block.info["index"], progress)
-            results.append(_measure(block, runs, ceiling["gb_s"], tick))
-            if block.source == "tempfile":  # give the disk space back before the next size
-                with contextlib.suppress(OSError):
-                    block.path.unlink()
+        ceiling, results = _measure_blocks(blocks, base, runs, seed, report)
     finally:
-        for p in created:
-            with contextlib.suppress(FileNotFoundError):
-                p.unlink()
         if own_dir:
             shutil.rmtree(base, ignore_errors=True)
-
     doc = {
         "schema": SCHEMA,
         "created": datetime.datetime.now(datetime.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
@@ -599,100 +528,8 @@ def run_probe(
     return doc
 
 
-# ---------------------------------------------------------------------- saving and loading
-
-
-def save_probe(path: str | os.PathLike, doc: dict, force: bool = True, inputs=()) -> None:
-    write_text_atomic(path, json.dumps(doc, indent=2) + "\n", force=force, inputs=inputs, what="--save")
-
-
-def _num(x) -> bool:
-    return finite_number(x, -1e30, 1e30)
-
-
-MAX_BLOCK = 1 << 50  # bytes of one probed block (a PiB): anything larger is not a measurement
-
-
-def validate_probe(doc: object, where: str = "probe result") -> dict:
-    """Check a probe document against schema moerun-probe/1; raise BadInput naming the first problem."""
-
-    def bad(msg: str):
-        raise BadInput(f"{where}: {msg}")
-
-    if not isinstance(doc, dict):
-        bad("not a JSON object")
-    try:  # labels and reasons are printed: JSON escapes can spell lone surrogates that no output can print
-        json.dumps(doc, ensure_ascii=False).encode("utf-8")
-    except (UnicodeEncodeError, RecursionError, ValueError):
-        bad("holds text that is not valid UTF-8")
-    if doc.get("schema") != SCHEMA:
-        bad(f"schema is {doc.get('schema')!r}, expected {SCHEMA!r} (written by 'moerun probe --save')")
-    for key in ("machine", "ceiling"):
-        if not isinstance(doc.get(key), dict):
-            bad(f"{key!r} is missing or not an object")
-    if not _num(doc["ceiling"].get("gb_s")) or doc["ceiling"]["gb_s"] <= 0:
-        bad("ceiling.gb_s must be a positive number")
-    if not whole_number(doc.get("runs"), 1, 1 << 31):
-        bad("runs must be a positive integer")
-    blocks = doc.get("blocks")
-    if not isinstance(blocks, list) or not blocks:
-        bad("blocks must be a non-empty list")
-    for i, b in enumerate(blocks):
-        at = f"blocks[{i}]"
-        if not isinstance(b, dict):
-            bad(f"{at} is not an object")
-        if not whole_number(b.get("bytes"), 1, MAX_BLOCK):
-            bad(f"{at}.bytes must be a whole number of bytes from 1 to {MAX_BLOCK}")
-        if b.get("source") not in ("model", "tempfile"):
-            bad(f"{at}.source must be 'model' or 'tempfile'")
-        if not isinstance(b.get("label"), str):
-            bad(f"{at}.label must be text")
-        for r in REGIMES:
-            g = b.get(r)
-            if not isinstance(g, dict):
-                bad(f"{at}.{r} is missing or not an object")
-            if g.get("regime") != r:
-                bad(f"{at}.{r}.regime must be {r!r}")
-            if not isinstance(g.get("verified"), bool):
-                bad(f"{at}.{r}.verified must be true or false")
-            if g.get("reason") is not None and not isinstance(g["reason"], str):
-                bad(f"{at}.{r}.reason must be text or null")
-            if not g["verified"] and not g.get("reason"):
-                bad(f"{at}.{r} is unverified but gives no reason")
-            n = g.get("runs")
-            if not whole_number(n, 0, 1 << 31):
-                bad(f"{at}.{r}.runs must be a whole number")
-            for k in STAT_KEYS:
-                v = g.get(k, "missing")
-                if v == "missing":
-                    bad(f"{at}.{r}.{k} is missing")
-                if n == 0 and v is not None:
-                    bad(f"{at}.{r}.{k} must be null when no run was measured")
-                if n > 0 and k != "of_ceiling" and (not _num(v) or v <= 0):
-                    bad(f"{at}.{r}.{k} must be a positive number")
-            if n > 0 and not g["p50_ms"] <= g["p95_ms"] <= g["p99_ms"] <= g["max_ms"]:
-                bad(f"{at}.{r}: percentiles are not in order (p50 <= p95 <= p99 <= max)")
-    return doc
-
-
-def load_probe(path: str | os.PathLike) -> dict:
-    """Read and validate a file written by ``moerun probe --save``.
-
-    BadOption if the path is not a readable regular file (it came from an option), BadInput if its content
-    is not a valid moerun-probe/1 document.
-    """
-    from .fileio import read_json_file
-
-    p = Path(path)
-    doc = read_json_file(p, BadInput, "probe file", missing=f"{p}: no such probe file (write one with 'moerun probe --save {p}')",
-                         file_error=BadOption)
-    return validate_probe(doc, str(p))
-
-
 def parse_sizes(text: str) -> list[int]:
     """``1MiB,16MiB,256MiB`` -> bytes (each through moerun.units.parse_size)."""
-    from .units import parse_size
-
     items = [s for s in re.split(r"[,\s]+", text or "") if s]
     if not items:
         raise BadOption("--sizes is empty: give sizes like 1MiB,16MiB,256MiB")

@@ -16,6 +16,7 @@ of the file and then releases the copied range of the map with
 
 from __future__ import annotations
 
+import contextlib
 import ctypes
 import errno
 import mmap
@@ -31,7 +32,9 @@ from .codec import Codec, codec_for, packed_dense_tensors
 from .config import ModelConfig, expert_tensor_name
 from .errors import BadModelFile, BadOption, PageInError
 from .link import Link
-from .modelfile import NUMPY_DTYPES, Header, TensorInfo, read_header
+from .modelfile import NUMPY_DTYPES, Header, TensorInfo, expert_span, read_header
+from .packed import read_packed_dense, recorded_quant_problem
+from .pagecache import drop_pages, drop_problem
 
 PAGE = mmap.PAGESIZE
 # Linux maps up to this many bytes of already-cached file pages around a read fault
@@ -109,13 +112,64 @@ def pread_into(fd: int, offset: int, dst) -> None:
         got += more
 
 
-def drop_pages(fd: int, offset: int, nbytes: int) -> None:
-    """Ask the OS to drop a file range from its page cache (the next read of it comes from the device)."""
-    if hasattr(os, "posix_fadvise"):
-        try:
-            os.posix_fadvise(fd, offset, nbytes, os.POSIX_FADV_DONTNEED)
-        except OSError:
-            pass
+def _check_dense_tensors(config: ModelConfig, header: Header) -> None:
+    """Every dense tensor config.json implies is in the file with its shape and a float dtype; no stray shared expert.
+
+    Quantized attention is stored as packed blobs and checked when it is decoded (``moerun.packed``).
+    """
+    tensors = header.tensors
+    packed = packed_dense_tensors(config)
+    for name, shape in config.dense_shapes().items():
+        if name in packed:
+            continue
+        t = tensors.get(name)
+        if t is None:
+            raise BadModelFile(f"{header.path}: missing tensor {name!r}")
+        if t.shape != shape:
+            raise BadModelFile(f"{header.path}: tensor {name!r} has shape {list(t.shape)}, config.json implies {list(shape)}")
+        if t.dtype not in ("F32", "F16"):
+            raise BadModelFile(f"{header.path}: tensor {name!r} has dtype {t.dtype}; dense weights must be F32 or F16")
+    if not config.d_shared:
+        stray = next((n for n in tensors if n.startswith("layers.") and ".shared." in n), None)
+        if stray is not None:  # computing without it would silently give other numbers
+            raise BadModelFile(f"{header.path}: tensor {stray!r} is a shared expert's, but config.json has no d_shared")
+
+
+def _expert_ranges(config: ModelConfig, header: Header, codec: Codec) -> tuple[list[list[ExpertRange]], dict[str, int]]:
+    """Each expert's one byte range, and where its parts lie inside it (the same for every expert).
+
+    A page-in is one read of one range into one slot, and the codec reads the parts at fixed offsets of the
+    slot: so every part must have the codec's dtype and shape, and every expert the same layout.
+    """
+    tensors = header.tensors
+    nbytes = sum(p.nbytes for p in codec.parts)
+    ranges: list[list[ExpertRange]] = []
+    layout: dict[str, int] | None = None
+    for layer in range(config.n_layers):
+        row = []
+        for e in range(config.n_experts):
+            infos: list[tuple[TensorInfo, object]] = []
+            for part in codec.parts:
+                name = expert_tensor_name(layer, e, part.suffix)
+                t = tensors.get(name)
+                if t is None:
+                    raise BadModelFile(f"{header.path}: missing tensor {name!r}")
+                if t.shape != part.shape or t.dtype != part.dtype:
+                    raise BadModelFile(
+                        f"{header.path}: tensor {name!r} is {t.dtype} {list(t.shape)}, expected {part.dtype} {list(part.shape)}"
+                    )
+                infos.append((t, part))
+            start, span = expert_span(header.path, layer, e, [t for t, _ in infos])
+            if span != nbytes:
+                raise BadModelFile(f"{header.path}: expert {e} of layer {layer} is not stored as one contiguous byte range")
+            rel = {p.suffix: t.start - start for t, p in infos}
+            if layout is None:
+                layout = rel
+            elif rel != layout:
+                raise BadModelFile(f"{header.path}: experts are not all stored in the same layout (layer {layer}, expert {e})")
+            row.append(ExpertRange(layer, e, start, nbytes))
+        ranges.append(row)
+    return ranges, layout or {}
 
 
 class ModelStore:
@@ -142,6 +196,12 @@ class ModelStore:
     # ---------------------------------------------------------------- opening
     @classmethod
     def open(cls, model_dir: str | os.PathLike) -> ModelStore:
+        """Open a model directory, trusting nothing in it before it is checked (docs/architecture.md, invariants).
+
+        config.json, the header, every dense tensor's shape and dtype, the quantization recorded in the file against
+        config.json's, and each expert's byte range are validated; then the dense weights are read (BadModelFile for
+        anything wrong, with the file named).
+        """
         model_dir = Path(model_dir)
         if not model_dir.exists():
             raise BadModelFile(f"{model_dir}: no such model directory")
@@ -149,62 +209,15 @@ class ModelStore:
             raise BadModelFile(f"{model_dir}: not a directory (--model takes a model directory)")
         config = ModelConfig.load(model_dir)
         header = read_header(model_dir / "model.safetensors")
-        tensors = header.tensors
-        problems = []
-        packed = packed_dense_tensors(config)  # quantized attention: validated when decoded in _load_dense
-        for name, shape in config.dense_shapes().items():
-            if name in packed:
-                continue
-            t = tensors.get(name)
-            if t is None:
-                problems.append(f"missing tensor {name!r}")
-            elif t.shape != shape:
-                problems.append(f"tensor {name!r} has shape {list(t.shape)}, config.json implies {list(shape)}")
-            elif t.dtype not in ("F32", "F16"):
-                problems.append(f"tensor {name!r} has dtype {t.dtype}; dense weights must be F32 or F16")
-            if problems:
-                raise BadModelFile(f"{header.path}: {problems[0]}")
-        if not config.d_shared:
-            stray = next((n for n in tensors if n.startswith("layers.") and ".shared." in n), None)
-            if stray is not None:  # computing without it would silently give other numbers
-                raise BadModelFile(f"{header.path}: tensor {stray!r} is a shared expert's, but config.json has no d_shared")
-        first = [tensors.get(expert_tensor_name(0, 0, s)) for s in ("w_gate",)]
-        expert_dtype = first[0].dtype if first[0] is not None else "F32"
-        if expert_dtype not in ("F32", "F16"):
-            expert_dtype = "F32"
+        _check_dense_tensors(config, header)
+        problem = recorded_quant_problem(config, header.metadata)
+        if problem is not None:  # decoding with another layout than the one written would give other numbers
+            raise BadModelFile(f"{header.path}: {problem}")
+        first = header.tensors.get(expert_tensor_name(0, 0, "w_gate"))
+        expert_dtype = first.dtype if first is not None and first.dtype in ("F32", "F16") else "F32"
         codec = codec_for(config, expert_dtype)
-        ranges: list[list[ExpertRange]] = []
-        layout: dict[str, int] | None = None
-        nbytes = sum(p.nbytes for p in codec.parts)
-        for layer in range(config.n_layers):
-            row = []
-            for e in range(config.n_experts):
-                infos: list[tuple[TensorInfo, object]] = []
-                for part in codec.parts:
-                    name = expert_tensor_name(layer, e, part.suffix)
-                    t = tensors.get(name)
-                    if t is None:
-                        raise BadModelFile(f"{header.path}: missing tensor {name!r}")
-                    if t.shape != part.shape or t.dtype != part.dtype:
-                        raise BadModelFile(
-                            f"{header.path}: tensor {name!r} is {t.dtype} {list(t.shape)}, expected {part.dtype} {list(part.shape)}"
-                        )
-                    infos.append((t, part))
-                start = min(t.start for t, _ in infos)
-                end = max(t.end for t, _ in infos)
-                if end - start != nbytes:
-                    raise BadModelFile(
-                        f"{header.path}: expert {e} of layer {layer} is not stored as one contiguous byte range"
-                    )
-                rel = {p.suffix: t.start - start for t, p in infos}
-                if layout is None:
-                    layout = rel
-                elif rel != layout:
-                    raise BadModelFile(f"{header.path}: experts are not all stored in the same layout (layer {layer}, expert {e})")
-                row.append(ExpertRange(layer, e, start, nbytes))
-            ranges.append(row)
-        codec = codec.with_offsets(layout or {})
-        store = cls(model_dir, config, header, codec, ranges, nbytes)
+        ranges, layout = _expert_ranges(config, header, codec)
+        store = cls(model_dir, config, header, codec.with_offsets(layout), ranges, sum(p.nbytes for p in codec.parts))
         try:
             store._load_dense()
         except BaseException:
@@ -222,9 +235,7 @@ class ModelStore:
         packed = packed_dense_tensors(self.config)
         for name in self.config.dense_shapes():
             if name in packed:  # a quantized attention matrix, dequantized once here
-                from .quant import read_packed_dense
-
-                self.dense[name] = read_packed_dense(self, name, packed[name])
+                self.dense[name] = read_packed_dense(self.config, self.header, name, packed[name], self._read)
                 continue
             t = self.header.tensors[name]
             raw = self._read(t.start, t.nbytes)
@@ -233,6 +244,15 @@ class ModelStore:
             if not np.all(np.isfinite(self.dense[name])):
                 raise BadModelFile(f"{self.path}: tensor {name!r} holds NaN or infinite values")
         self._dense_nbytes = sum(a.nbytes for a in self.dense.values())
+
+    def release_dense(self, names) -> None:
+        """Let go of dense weights the model now holds in another form (the engine fuses wq, wk, wv into one matrix).
+
+        The store keeps no second float32 copy that nothing reads; ``dense_nbytes`` stays the figure the budget
+        was planned with, since the fused copy takes the same bytes.
+        """
+        for name in names:
+            self.dense.pop(name, None)
 
     # ---------------------------------------------------------------- sizes
     @property
@@ -247,10 +267,15 @@ class ModelStore:
     def expert_range(self, layer: int, expert: int) -> ExpertRange:
         return self.ranges[layer][expert]
 
+    def tensor_bytes(self, name: str) -> bytes:
+        """A tensor's bytes exactly as stored (what its recorded digest covers); BadModelFile if the file ended."""
+        t = self.header.tensors[name]
+        return self._read(t.start, t.nbytes) if t.nbytes else b""
+
     def read_tensor(self, name: str) -> np.ndarray:
         """Any tensor of the file as a numpy array (a copy), for inspection and tests."""
         t = self.header.tensors[name]
-        raw = self._read(t.start, t.nbytes)
+        raw = self.tensor_bytes(name)
         return np.frombuffer(raw, dtype=np.dtype(NUMPY_DTYPES[t.dtype]).newbyteorder("<")).reshape(t.shape).copy()
 
     # ---------------------------------------------------------------- page-in
@@ -339,19 +364,21 @@ class ModelStore:
             raise PageInError(f"{self.path}: reading expert {expert} of layer {layer} failed ({e.strerror or e})") from None
         ns = time.monotonic_ns() - t0
         if self.cold_reads:
-            drop_pages(self._fd, r.start, r.nbytes)
+            if drop_problem() is None:
+                with contextlib.suppress(OSError):  # advice only: a refused drop leaves a warm read, not a wrong one
+                    drop_pages(self._fd, r.start, r.nbytes)
         return ns
 
     def drop_cache(self) -> bool:
         """Ask the OS to drop this file's pages from its cache (for cold runs). True if advised."""
-        if not hasattr(os, "posix_fadvise"):
+        if drop_problem() is not None:
             return False
         if self._map is not None:
             try:
                 self._map.madvise(mmap.MADV_DONTNEED)
             except (OSError, ValueError):
                 pass
-        os.posix_fadvise(self._fd, 0, 0, os.POSIX_FADV_DONTNEED)
+        drop_pages(self._fd)
         return True
 
     def close(self) -> None:

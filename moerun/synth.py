@@ -34,12 +34,10 @@ from pathlib import Path
 
 import numpy as np
 
-from .config import FORMAT_TAG, ModelConfig
+from .config import FORMAT_TAG, RANDOM_NOTE, ModelConfig
 from .errors import BadOption, OutputError
 from .fileio import atomic_dir, atomic_path, check_output_dir, remove_stale_temporaries, write_text_atomic
-from .modelfile import DIGEST_ALGO, DIGEST_KEY, DTYPE_SIZES, digest, save_model_file, storage_order
-
-RANDOM_NOTE = "random weights: routing is meaningless"
+from .modelfile import DIGEST_ALGO, DTYPE_SIZES, digest, header_bytes, save_model_file, storage_order
 
 
 def byte_tokenizer_json() -> str:
@@ -161,17 +159,9 @@ def tensor_layout(config: ModelConfig, dtype: str = "F32") -> list[tuple[str, st
 
 
 def _header_blob(layout, digests: dict[str, str], metadata: dict[str, str] | None) -> bytes:
-    """The safetensors header exactly as moerun.modelfile.save_model_file builds it."""
-    meta = {"format": "moerun/1", **(metadata or {})}
-    header: dict = {}
-    offset = 0
-    for name, tag, shape in layout:
-        n = DTYPE_SIZES[tag] * int(np.prod(shape, dtype=np.int64))
-        header[name] = {"dtype": tag, "shape": list(shape), "data_offsets": [offset, offset + n]}
-        offset += n
-    meta[DIGEST_KEY] = json.dumps({"algo": DIGEST_ALGO, "tensors": digests}, separators=(",", ":"))
-    blob = json.dumps({"__metadata__": meta, **header}, separators=(",", ":")).encode("utf-8")
-    return blob + b" " * (-len(blob) % 8)
+    """The safetensors header of ``layout`` (moerun.modelfile.header_bytes, the one writer of headers)."""
+    entries = [(name, tag, shape, DTYPE_SIZES[tag] * int(np.prod(shape, dtype=np.int64))) for name, tag, shape in layout]
+    return header_bytes(entries, digests, metadata)
 
 
 def weights_file_bytes(layout, metadata: dict[str, str] | None = None) -> int:

@@ -8,6 +8,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import BadInput, BadModelFile
+from .fileio import read_user_file
 
 TOKENIZER_LIMIT = 256 << 20  # bytes of a tokenizer.json (large published vocabularies take about 10-20 MB)
 CHUNK_CHARS = 4096  # long texts are encoded in pieces of about this many characters (see Tokenizer.encode)
@@ -41,8 +42,6 @@ def text_problem(text: str) -> str | None:
 
 class Tokenizer:
     def __init__(self, path: Path, vocab_size: int, bos_token_id: int | None):
-        from .fileio import read_user_file
-
         raw = read_user_file(path, BadModelFile, "tokenizer file", limit=TOKENIZER_LIMIT, missing=f"{path}: missing")
         try:
             text = raw.decode("utf-8")
@@ -146,8 +145,6 @@ def _first_cut(text: str, lo: int, hi: int) -> int | None:
 
 def read_text_file(path: str | Path) -> str:
     """Read a UTF-8 text file for the user (a regular file, at most fileio.TEXT_LIMIT bytes); one clear error otherwise."""
-    from .fileio import read_user_file
-
     path = Path(path)
     data = read_user_file(path, BadInput, "file")
     try:

@@ -1,10 +1,10 @@
-"""PyTorch reference of the moerun model (DESIGN section 3), float32.
+"""PyTorch reference of the moerun model (the model spec, docs/architecture.md), float32.
 
 Used to train the bundled tiny model, to compute its reference logits and as a
 batch-1 decode baseline for benchmarks. It is only imported where torch is
 installed; the package's run-time dependencies do not include torch.
 
-Parameter names are exactly the DESIGN tensor names (``embed``,
+Parameter names are exactly the model spec's tensor names (``embed``,
 ``layers.{l}.attn.wq``, ``layers.{l}.experts.{e}.w_gate``,
 ``layers.{l}.shared.w_gate`` when ``d_shared`` > 0, ...), weights are stored
 (in, out) and applied as ``y = x @ W``.  Optional config fields: ``d_shared``
@@ -17,7 +17,7 @@ Public surface:
     TorchMoE.forward(ids, return_aux=False)     logits [B, T, V] (or [T, V] for 1-D ids);
                                                 with return_aux: (logits, aux dict)
     TorchMoE.from_model_dir(path) -> TorchMoE   classmethod (also module-level from_model_dir)
-    TorchMoE.state_to_numpy() -> dict[str, np.ndarray]   DESIGN-named float32 arrays
+    TorchMoE.state_to_numpy() -> dict[str, np.ndarray]   spec-named float32 arrays
     TorchMoE.prefill(ids) -> logits_last [V]    batch 1, fills the KV cache
     TorchMoE.decode_step(token_id) -> logits [V]  batch 1, chosen experts only
     rmsnorm, rope_tables, rotate, route         the math, as functions
@@ -121,7 +121,7 @@ class Layer(nn.Module):
 
 
 class TorchMoE(nn.Module):
-    """The DESIGN section 3 model in PyTorch (float32)."""
+    """The model spec's model in PyTorch (float32)."""
 
     def __init__(self, config: dict, init_std: float = 0.02):
         super().__init__()
@@ -302,7 +302,7 @@ class TorchMoE(nn.Module):
     # -- files
     @classmethod
     def from_model_dir(cls, path: str | Path) -> TorchMoE:
-        """Build from a model dir: config.json and model.safetensors (F32 or F16, DESIGN names)."""
+        """Build from a model dir: config.json and model.safetensors (F32 or F16, the model spec's names)."""
         from safetensors.numpy import load_file
 
         path = Path(path)
@@ -324,7 +324,7 @@ class TorchMoE(nn.Module):
         return model
 
     def state_to_numpy(self) -> dict[str, np.ndarray]:
-        """Weights as DESIGN-named float32 numpy arrays (copies)."""
+        """Weights as spec-named float32 numpy arrays (copies)."""
         return {name: p.detach().cpu().to(torch.float32).numpy().copy() for name, p in self.named_parameters()}
 
 

@@ -32,7 +32,7 @@ from pathlib import Path
 import numpy as np
 
 from .errors import BadTrace
-from .fileio import atomic_path
+from .fileio import atomic_path, read_user_file
 
 PAD = -1
 TRACE_LOOKAHEAD = 3
@@ -236,16 +236,12 @@ def _available_memory() -> int | None:
         return None
 
 
-def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
-    """Read and validate a trace file; raise BadTrace with one clear line."""
-    from .fileio import read_user_file
+def _load_arrays(path: Path, data: bytes) -> dict[str, np.ndarray]:
+    """The named arrays of a trace file's bytes (no pickles); BadTrace for anything that is not a readable .npz.
 
-    path = Path(path)
-    data = read_user_file(path, BadTrace, "trace file", limit=TRACE_FILE_LIMIT)
-    kind = _not_a_zip(data)
-    if kind is not None:
-        raise BadTrace(f"{path}: not an .npz archive ({kind}); a trace is a zip of named numpy arrays, see docs/traces.md")
-    _check_members(path, data)
+    The archive's members were checked first (``_check_members``), so no array claims more memory than the file
+    can hold; every failure numpy or zipfile can raise on damaged bytes becomes one line naming the file.
+    """
     try:
         z = np.load(io.BytesIO(data), allow_pickle=False)
         if not isinstance(z, np.lib.npyio.NpzFile):
@@ -254,7 +250,7 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
             names = set(z.files)
             if "experts" not in names:
                 raise BadTrace(f"{path}: missing the 'experts' array [tokens, layers, top_k]")
-            arrays = {name: z[name] for name in names}
+            return {name: z[name] for name in names}
     except BadTrace:
         raise
     except (zipfile.BadZipFile, EOFError, zlib.error):
@@ -263,24 +259,41 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
         raise BadTrace(f"{path}: damaged .npz archive or one Python cannot read ({e})") from None
     except (ValueError, OSError, KeyError) as e:
         raise BadTrace(f"{path}: not a readable .npz trace ({str(e).splitlines()[0][:120] if str(e) else type(e).__name__})") from None
-    experts = arrays["experts"]
+
+
+def _read_meta(path: Path, arrays: dict[str, np.ndarray]) -> dict:
+    """The trace's ``meta``: a 0-d string holding a JSON object of valid UTF-8, or {} when absent."""
+    if "meta" not in arrays:
+        return {}
+    m = arrays["meta"]
+    try:
+        meta = json.loads(str(m.item())) if m.shape == () else None
+    except (ValueError, TypeError, RecursionError):
+        meta = None
+    if not isinstance(meta, dict):
+        raise BadTrace(f"{path}: 'meta' must be a 0-d string holding a JSON object")
+    try:
+        json.dumps(meta, ensure_ascii=False).encode("utf-8")
+    except (UnicodeEncodeError, RecursionError):
+        raise BadTrace(f"{path}: 'meta' holds text that is not valid UTF-8") from None
+    return meta
+
+
+def _check_routing_shape(path: Path, experts: np.ndarray) -> None:
+    """'experts' is an integer array [tokens, layers, top_k] with at least one layer and one column."""
     if experts.ndim != 3 or experts.dtype.kind not in _INT_KINDS:
         raise BadTrace(f"{path}: 'experts' must be an integer array [tokens, layers, top_k], got {experts.dtype} {list(experts.shape)}")
     if 0 in experts.shape[1:]:
         raise BadTrace(f"{path}: 'experts' has no layers or no top_k column")
-    meta: dict = {}
-    if "meta" in arrays:
-        m = arrays["meta"]
-        try:
-            meta = json.loads(str(m.item())) if m.shape == () else None
-        except (ValueError, TypeError, RecursionError):
-            meta = None
-        if not isinstance(meta, dict):
-            raise BadTrace(f"{path}: 'meta' must be a 0-d string holding a JSON object")
-        try:
-            json.dumps(meta, ensure_ascii=False).encode("utf-8")
-        except (UnicodeEncodeError, RecursionError):
-            raise BadTrace(f"{path}: 'meta' holds text that is not valid UTF-8") from None
+
+
+def _checked_experts(path: Path, experts: np.ndarray, meta: dict, n_experts: int | None) -> tuple[np.ndarray, int | None]:
+    """The routing [tokens, layers, top_k] as int64, and the expert count ids must stay below.
+
+    Replay indexes tables with these ids and a policy counts them, so a negative id other than the padding,
+    one past the model's experts or twice in one row would give wrong figures rather than an error later.
+    The count is the caller's (the model's) if given, else the trace's own ``meta.n_experts``.
+    """
     experts = experts.astype(np.int64)
     if (experts < PAD).any():
         raise BadTrace(f"{path}: 'experts' holds negative ids other than the padding value {PAD}")
@@ -290,8 +303,6 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
     limit = n_experts if n_experts is not None else declared
     if limit is not None and (experts >= limit).any():
         raise BadTrace(f"{path}: 'experts' holds ids >= n_experts ({limit})")
-    if limit is not None:
-        meta["n_experts"] = int(limit)
     for key, low in (("prefill_tokens", 0), ("expert_bytes", 1)):
         v = meta.get(key)
         if v is not None and (isinstance(v, bool) or not isinstance(v, int) or v < low):
@@ -304,6 +315,11 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
     dup = (rows[..., 1:] == rows[..., :-1]) & (rows[..., 1:] != np.iinfo(np.int64).max)
     if dup.any():
         raise BadTrace(f"{path}: an expert appears twice in one token's top_k row")
+    return experts, limit
+
+
+def _optional_arrays(path: Path, arrays: dict[str, np.ndarray], experts: np.ndarray, limit: int | None):
+    """(weights, guesses, probs, events) checked against the routing's shape; None (or {}) for what is absent."""
     weights = arrays.get("weights")
     if weights is not None:
         if weights.shape != experts.shape or weights.dtype.kind != "f":
@@ -331,4 +347,22 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
             if a.shape != want:
                 raise BadTrace(f"{path}: '{name}' must have shape {list(want)}")
             events[name] = a
+    return weights, guesses, probs, events
+
+
+def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
+    """Read and validate a trace file; raise BadTrace with one clear line."""
+    path = Path(path)
+    data = read_user_file(path, BadTrace, "trace file", limit=TRACE_FILE_LIMIT)
+    kind = _not_a_zip(data)
+    if kind is not None:
+        raise BadTrace(f"{path}: not an .npz archive ({kind}); a trace is a zip of named numpy arrays, see docs/traces.md")
+    _check_members(path, data)
+    arrays = _load_arrays(path, data)
+    _check_routing_shape(path, arrays["experts"])
+    meta = _read_meta(path, arrays)
+    experts, limit = _checked_experts(path, arrays["experts"], meta, n_experts)
+    if limit is not None:
+        meta["n_experts"] = int(limit)
+    weights, guesses, probs, events = _optional_arrays(path, arrays, experts, limit)
     return Trace(experts, weights, guesses, meta, events, probs)

@@ -10,6 +10,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from . import policies
 from .budget import minimum_cap
 from .engine import load
 from .sampling import Sampling
@@ -38,8 +39,6 @@ class Outcome:
 def default_settings(min_cap: int, full_cap: int, slot: int) -> list[Setting]:
     """The default set: every online policy at the smallest cap (moerun.policies.names), then other caps,
     a shared pool, prefetch and an emulated link."""
-    from . import policies
-
     mid = (min_cap + full_cap) // 2
     return [
         *(Setting(f"smallest cap, {name}", {"mem_cap": min_cap, "evict": name}) for name in policies.names(online_only=True)),

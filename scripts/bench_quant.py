@@ -55,9 +55,11 @@ except ImportError:
 
 import moerun  # noqa: E402
 from moerun.budget import fixed_bytes, slot_bytes  # noqa: E402
+from moerun.codec import QuantCodec  # noqa: E402
 from moerun.engine import default_model_dir  # noqa: E402
 from moerun.model import expert  # noqa: E402
-from moerun.quant import QuantCodec, QuantSpec, quantize_model  # noqa: E402
+from moerun.packed import QuantSpec  # noqa: E402
+from moerun.quant import quantize_model  # noqa: E402
 from moerun.report import table  # noqa: E402
 from moerun.sampling import Sampling  # noqa: E402
 from moerun.score import score_text  # noqa: E402

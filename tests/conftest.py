@@ -15,7 +15,7 @@ import subprocess
 import sys
 from pathlib import Path
 
-# One BLAS thread, as DESIGN section 6 prescribes for decode: small matmuls are
+# One BLAS thread, as DEVELOPERS.md (Benchmarks) prescribes for decode: small matmuls are
 # faster and steadier that way on the shared 2-core machines.
 for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     os.environ.setdefault(_var, "1")

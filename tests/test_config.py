@@ -1,4 +1,4 @@
-"""moerun.config: the optional fields d_shared and norm_topk (DESIGN section 3), their defaults and their checks."""
+"""moerun.config: the optional fields d_shared and norm_topk (docs/architecture.md, model spec), their defaults and their checks."""
 
 from __future__ import annotations
 

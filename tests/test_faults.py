@@ -8,9 +8,9 @@ Faults are injected through the documented test hooks (docs/hardening.md):
 - ``prefetcher.reader.set_faults(...)``: random delays before the reader's reads, reported failures of
   every n-th read, or the reader process exiting abruptly with a read outstanding.
 
-A run with a fault ends in one of two ways (DESIGN invariants 1 and 4): a correct finish whose tokens
-and logits are bit-identical to the fully resident engine's, or one clear error (``PageInError``, exit 2
-with one stderr line).  It never hangs: every run here goes through a watchdog.  With
+A run with a fault ends in one of two ways (docs/architecture.md, invariants: offloading never changes
+numbers; prefetch is advisory): a correct finish whose tokens and logits are bit-identical to the fully
+resident engine's, or one clear error (``PageInError``, exit 2 with one stderr line).  It never hangs: every run here goes through a watchdog.  With
 ``generate --trace FILE`` the trace is then either complete or marked ``"partial": true``, readable,
 and the routing it holds is a prefix of the complete run's.
 

@@ -1,6 +1,6 @@
 """Fuzzing the readers of files that come from outside: the weight file, config.json and routing traces.
 
-Whatever the bytes, every input ends in exactly one of two ways (DESIGN invariant 5, section 7):
+Whatever the bytes, every input ends in exactly one of two ways (docs/architecture.md, invariants: files are trusted only after validation):
 
 - a model that loads and computes logits, bit-identical to the untouched model's whenever the tensors
   it uses hold the same bytes; or

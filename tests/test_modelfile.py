@@ -1,4 +1,4 @@
-"""moerun.modelfile: header validation (DESIGN invariant 5) and the writer's layout.
+"""moerun.modelfile: header validation (docs/architecture.md, invariants: files are trusted only after validation) and the writer's layout.
 
 Corrupt files are made by editing the header of a freshly written synthetic model.
 """
@@ -207,3 +207,25 @@ def test_zero_sized_tensors_may_share_an_offset(tmp_path):
     save_model_file(path, {"a": np.zeros(0, np.float32), "b": np.zeros(0, np.float32), "c": np.ones(2, np.float32)})
     h = read_header(path)
     assert h.tensors["a"].nbytes == 0 and h.tensors["c"].nbytes == 8
+
+
+def test_the_one_header_writer_serves_both_writers_and_the_safetensors_library_reads_it(tmp_path):
+    from safetensors import safe_open
+
+    from moerun.modelfile import header_bytes
+    from moerun.synth import write_tensors_streaming
+
+    rng = np.random.default_rng(5)
+    arrays = {"embed": rng.standard_normal((4, 3)).astype("<f4"), "norm": rng.standard_normal(5).astype("<f2")}
+    whole, streamed = tmp_path / "whole.safetensors", tmp_path / "streamed.safetensors"
+    save_model_file(whole, arrays, {"note": "n"})
+    layout = [(name, "F32" if a.dtype == np.float32 else "F16", a.shape) for name, a in arrays.items()]
+    write_tensors_streaming(streamed, layout, lambda name: [arrays[name]], {"note": "n"})
+    assert whole.read_bytes() == streamed.read_bytes()
+    # reference reader: the safetensors library (0.8.0): the values and the metadata come back as written
+    with safe_open(str(whole), "numpy") as f:
+        assert f.metadata()["note"] == "n" and f.metadata()["format"] == "moerun/1"
+        for name, a in arrays.items():
+            assert np.array_equal(f.get_tensor(name), a)
+    blob = header_bytes([(n, t, s, int(np.prod(s)) * (4 if t == "F32" else 2)) for n, t, s in layout], {}, None)
+    assert len(blob) % 8 == 0 and blob.rstrip(b" ").endswith(b"}")  # padded with spaces so the data starts aligned

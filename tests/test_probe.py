@@ -15,17 +15,16 @@ from moerun import cli
 from moerun import probe as probe_mod
 from moerun.errors import BadInput, BadOption
 from moerun.probe import (
-    SCHEMA,
     drop_pages,
     drop_problem,
     latency_stats,
-    load_probe,
     parse_sizes,
     residency_problem,
     resident_pages,
     run_probe,
     write_scratch_file,
 )
+from moerun.probe_file import SCHEMA, load_probe
 from moerun.store import ModelStore
 from moerun.synth import RANDOM_NOTE, synth_config, write_model
 

@@ -1,4 +1,5 @@
-"""Quantization (moerun/quant.py, moerun quantize): error bounds, packing, the blob layout, loading, exactness.
+"""Quantization (moerun/bitpack.py, packed.py, quant.py, quant_card.py; moerun quantize): error bounds, packing,
+the blob layout, loading, exactness.
 
 Outside sources named where a check rests on one; invented matrices are only
 ever inputs to properties, never expected values.
@@ -15,24 +16,11 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 import moerun
+from moerun.bitpack import pack_codes, packed_nbytes, unpack_codes
 from moerun.budget import minimum_cap, scratch_bytes
 from moerun.cli import main
-from moerun.quant import (
-    EXPERT_PARTS,
-    HQQ_P,
-    BlobLayout,
-    Dequantizer,
-    QuantSpec,
-    dequantize_matrix,
-    expert_blob_name,
-    expert_layout,
-    pack_codes,
-    packed_nbytes,
-    quantize_blob,
-    quantize_matrix,
-    quantize_model,
-    unpack_codes,
-)
+from moerun.packed import EXPERT_PARTS, HQQ_P, BlobLayout, Dequantizer, QuantSpec, expert_blob_name, expert_layout
+from moerun.quant import dequantize_matrix, quantize_blob, quantize_matrix, quantize_model
 from moerun.sampling import Sampling
 from moerun.store import ModelStore
 from tests.conftest import edit_config, edit_header
@@ -283,7 +271,7 @@ def test_codec_scratch_is_counted_in_the_budget(quantized):
     ids=["lru", "lfu", "fifo", "prefetch2x2", "shared-prefetch1"],
 )
 def test_capped_quantized_logits_equal_resident_bit_for_bit(quantized, bits, setting):
-    # DESIGN invariant 1, for packed experts: decoding is deterministic and the
+    # docs/architecture.md, invariants (offloading never changes numbers), for packed experts: decoding is deterministic and the
     # compute schedule depends only on routing.
     _, make = quantized
     d = make(bits, 8 if bits == 3 else 16, "hqq")
@@ -377,8 +365,31 @@ def test_packed_attention_of_the_wrong_size_is_one_clear_error(quantized, tmp_pa
     d = tmp_path / "bad"
     shutil.copytree(make(4, 8, "rtn"), d)
     edit_config(d, lambda doc: doc["quant"].update(attn_bits=4))  # blobs hold 8-bit codes
+    # the weights file's own record edited alike, so the two agree and only the blobs' size gives the edit away
+    # (an edit of config.json alone is refused sooner: test_the_store_refuses_a_config_edited_apart_from_its_file)
+    edit_header(d / "model.safetensors", lambda doc: doc["__metadata__"].update(
+        quant=json.dumps({**json.loads(doc["__metadata__"]["quant"]), "attn_bits": 4}, separators=(",", ":"))))
     err = _one_line_exit_2(capsys, ["score", "--model", str(d), "--max-tokens", "4"])
     assert "attn" in err and "U8" in err
+
+
+def test_the_store_refuses_a_config_edited_apart_from_its_file(quantized, tmp_path):
+    import shutil
+
+    from moerun.errors import BadModelFile
+
+    # ModelStore.open compares config.json's quant entry with the one recorded in the weights file
+    # (moerun.packed.recorded_quant_problem): group 16 -> 17 keeps every blob's size here (rows 32 and 64 make
+    # 2 and 4 groups either way), so without that check the engine would decode with the wrong layout
+    _, make = quantized
+    d = tmp_path / "edited"
+    shutil.copytree(make(4, 16, "rtn", 16), d)
+    ModelStore.open(d).close()  # as written, it opens
+    edit_config(d, lambda c: c["quant"].__setitem__("group", 17))
+    with pytest.raises(BadModelFile, match=r"group 17 .*group 16"):
+        ModelStore.open(d)
+    with pytest.raises(BadModelFile, match="group"):
+        moerun.load(d, tokenizer=False)
 
 
 @pytest.mark.parametrize(
@@ -577,9 +588,9 @@ def test_quantize_force_never_leaves_out_missing_even_if_killed_after_installing
 def test_quantize_reads_the_benchmark_rows_from_the_package_not_from_docs():
     from pathlib import Path
 
-    from moerun import quant
+    from moerun import quant_card
 
-    path = Path(str(quant.bench_rows_path()))
+    path = Path(str(quant_card.bench_rows_path()))
     assert Path(moerun.__file__).resolve().parent in path.resolve().parents
     assert "docs" not in path.parts and path.is_file()
 

@@ -214,7 +214,8 @@ def storage_formats(pebble, tmp_path_factory):
     import shutil
 
     from moerun.modelfile import save_model_file
-    from moerun.quant import QuantSpec, quantize_model
+    from moerun.packed import QuantSpec
+    from moerun.quant import quantize_model
     from moerun.store import ModelStore
 
     root = tmp_path_factory.mktemp("formats")

@@ -1,12 +1,16 @@
-"""Stress: many short generations in one process, each with its own engine, settings and prefetch thread.
+"""Stress: many short generations in one process, each with its own engine, settings and prefetch reader.
 
 Every round opens an engine with random settings (cap between the smallest that works and fully
 resident, even or shared pool or an explicit slot list, eviction policy, prefetch guesses, lookahead,
 prefetch point, page-in mechanism, sometimes an emulated link) and random 0-1 ms delays injected before
 prefetch reads, generates a few tokens, and closes.  After each round:
 
-- the tokens and every step's logits equal the fully resident engine's, bit for bit (DESIGN invariant 1);
-- the thread count is back to where it was before the round (the prefetch thread stopped, invariant 4);
+- the tokens and every step's logits equal the fully resident engine's, bit for bit (docs/architecture.md,
+  invariants: offloading never changes numbers);
+- the thread count is back to where it was before the round, and so are this process's child processes
+  (psutil): a prefetch engine's reader process is gone once the engine is closed (invariants: prefetch is
+  advisory and stops with its engine); a round with prefetch must show the reader while it runs, so the
+  count is known to see readers at all;
 
 and across rounds the resident set stays flat: RSS after the last round is within a small bound of RSS
 after the fifth (earlier rounds warm the allocator and numpy's caches), so nothing an engine allocates
@@ -84,6 +88,14 @@ def _random_settings(rng: random.Random, caps: dict) -> dict:
     return kw
 
 
+def _children(proc: psutil.Process) -> set[int]:
+    """Pids of this process's live descendants (a zombie, exited but not reaped, counts: it is a leak too)."""
+    try:
+        return {c.pid for c in proc.children(recursive=True)}
+    except psutil.NoSuchProcess:  # a child that ended while being listed
+        return {c.pid for c in proc.children(recursive=True)}
+
+
 def _stress(model_dir, rounds: int, seed: int) -> None:
     caps = _caps(model_dir)
     refs = _references(model_dir)
@@ -91,6 +103,8 @@ def _stress(model_dir, rounds: int, seed: int) -> None:
     proc = psutil.Process()
     gc.collect()
     threads_before = threading.active_count()
+    children_before = _children(proc)
+    readers_seen = 0
     rss: list[int] = []
     for i in range(rounds):
         kw = _random_settings(rng, caps)
@@ -101,6 +115,8 @@ def _stress(model_dir, rounds: int, seed: int) -> None:
         try:
             if eng.prefetcher is not None:  # random 0-1 ms delays before the reader process's reads
                 eng.prefetcher.reader.set_faults(jitter_us=1000, seed=delays.randrange(2**31))
+                assert eng.prefetcher.reader.proc.pid in _children(proc), f"round {i}: the reader is not a child process"
+                readers_seen += 1
             gen = eng.generate(prompt_ids=PROMPTS[p], max_new=n, sampling=Sampling(0.9, 0.95, s), keep_logits=True)
         finally:
             eng.close()
@@ -109,9 +125,11 @@ def _stress(model_dir, rounds: int, seed: int) -> None:
         assert gen.new_ids == tokens[:n], where
         assert np.array_equal(_bits(np.stack(gen.logits)), _bits(logits[:n])), where
         assert threading.active_count() == threads_before, f"{where}: threads {threading.enumerate()}"
+        assert _children(proc) == children_before, f"{where}: child processes left: {_children(proc) - children_before}"
         del eng, gen
         gc.collect()
         rss.append(proc.memory_info().rss)
+    assert readers_seen > 0, "no round ran with prefetch: the reader-process count was never put to the test"
     growth = rss[-1] - rss[4]
     assert growth <= RSS_BOUND_BYTES, f"RSS grew by {growth / 2**20:.1f} MiB from round 5 to round {rounds}: {rss}"
 

@@ -29,7 +29,11 @@ SMALL = ["--layers", "2", "--experts", "4", "--d-model", "64", "--d-expert", "12
 
 
 def run_cli(argv, capsys) -> tuple[int, str, str]:
-    code = cli.main(argv)
+    """Exit code, stdout and stderr of ``moerun ARGV`` in this process (usage errors, --seed's too, end in SystemExit)."""
+    try:
+        code = cli.main(argv)
+    except SystemExit as e:
+        code = e.code
     out, err = capsys.readouterr()
     return code, out, err
 

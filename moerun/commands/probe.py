@@ -8,7 +8,8 @@ from .. import cli
 from ..engine import default_model_dir
 from ..errors import BadModelFile
 from ..fileio import check_output
-from ..probe import DEFAULT_RUNS, load_probe, parse_sizes, run_probe, save_probe
+from ..probe import DEFAULT_RUNS, parse_sizes, run_probe
+from ..probe_file import load_probe, save_probe
 from ..report import Progress, emit_json, table
 from ..units import fmt_bytes
 

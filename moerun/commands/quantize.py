@@ -8,7 +8,8 @@ import sys
 from .. import cli
 from ..engine import default_model_dir
 from ..errors import BadOption
-from ..quant import ATTN_BITS, EXPERT_BITS, METHODS, QuantSpec, quantize_model
+from ..packed import ATTN_BITS, EXPERT_BITS, METHODS, QuantSpec
+from ..quant import quantize_model
 from ..report import Progress, emit_json, table
 from ..units import fmt_bytes
 
@@ -24,17 +25,14 @@ def add_arguments(p) -> None:
                    help="attention weights: 16 = float16, 8 or 4 = quantized like the experts (default 16)")
     p.add_argument("--group", type=int, default=64, metavar="N", help="rows per quantization group along the input axis (default 64)")
     p.add_argument("--method", choices=METHODS, default="hqq", help="rtn = round to nearest; hqq = half-quadratic zero-point refinement (default)")
-    p.add_argument("--force", action="store_true",
-                   help="replace OUT if it is a model directory (never one holding other files, and never the source)")
+    cli.add_force_dir(p, ", and never the source")
     p.add_argument("--no-score", action="store_true", help="skip measuring held-out perplexity of source and result for the card")
-    p.add_argument("--max-tokens", type=int, metavar="N", help="score only the first N tokens of heldout.txt (default: all)")
+    cli.add_max_tokens(p, "score only the first N tokens of heldout.txt (default: all)")
     cli.add_json(p)
 
 
 def run(args) -> int:
     spec = QuantSpec.checked(args.expert_bits, args.attn_bits, args.group, args.method, BadOption)
-    if args.max_tokens is not None and args.max_tokens < 1:
-        raise BadOption(f"--max-tokens must be at least 1, got {args.max_tokens}")
     cli.refuse_together(args, "max_tokens", "no_score", "--max-tokens says how much of heldout.txt to score, --no-score skips scoring")
     src = args.model or default_model_dir()
     progress = Progress("quantizing experts", enabled=None if not args.json else False)

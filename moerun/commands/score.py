@@ -7,7 +7,7 @@ from pathlib import Path
 
 from .. import cli
 from ..engine import default_model_dir, load
-from ..errors import BadInput, BadOption
+from ..errors import BadInput
 from ..report import Progress, emit_json, table
 from ..score import n_windows, score_text
 from ..summary import cap_check, cap_warning
@@ -22,7 +22,7 @@ HELP = "perplexity of a text (default: the model's heldout.txt), teacher-forced 
 def add_arguments(p) -> None:
     cli.add_model(p)
     p.add_argument("--text", metavar="FILE", help="UTF-8 text to score (default: heldout.txt in the model directory)")
-    p.add_argument("--max-tokens", type=int, metavar="N", help="score only the first N tokens of the text")
+    cli.add_max_tokens(p, "score only the first N tokens of the text")
     p.add_argument("--plain-windows", action="store_true",
                    help="windows of max_seq_len tokens with no bos inserted, first token of each not predicted")
     cli.add_memory(p)
@@ -31,8 +31,6 @@ def add_arguments(p) -> None:
 
 def run(args) -> int:
     model_dir = Path(args.model) if args.model else default_model_dir()
-    if args.max_tokens is not None and args.max_tokens < 1:
-        raise BadOption(f"--max-tokens must be at least 1, got {args.max_tokens}")
     kwargs = cli.engine_kwargs(args)
     kwargs["model_dir"] = model_dir
     engine = load(**kwargs)  # the model is checked first: its problems are the likelier ones

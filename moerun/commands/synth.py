@@ -29,7 +29,7 @@ EPILOG = (
 def add_arguments(p) -> None:
     p.epilog = EPILOG
     p.add_argument("out", metavar="OUT", help="new model directory to create (absent or empty; its parent must exist)")
-    p.add_argument("--force", action="store_true", help="replace OUT if it is a model directory (never one holding other files)")
+    cli.add_force_dir(p)
     g = p.add_argument_group("shape (required)")
     g.add_argument("--layers", type=int, required=True, metavar="N", help="transformer layers")
     g.add_argument("--experts", type=int, required=True, metavar="N", help="experts per layer")
@@ -49,7 +49,7 @@ def add_arguments(p) -> None:
                    help="weigh the chosen experts by their router probabilities as they are, not renormalised to sum to 1")
     p.add_argument("--bits", type=int, default=32, choices=sorted(BITS), help="16 = F16 weights, 32 = F32 (default); "
                    "for low-bit experts run 'moerun quantize' on the result")
-    p.add_argument("--seed", type=int, default=0, metavar="N", help="random seed, 0 or more (default 0)")
+    cli.add_seed(p, "random seed")
     p.add_argument("--name", metavar="TEXT", help="model name in config.json (default: the directory name)")
     cli.add_json(p)
 
@@ -85,8 +85,6 @@ def config_from_args(args) -> ModelConfig:
     context = positive(args.context, "--context")
     if args.d_shared < 0:
         raise BadOption(f"--d-shared must be 0 (no shared expert) or a positive whole number, got {args.d_shared}")
-    if args.seed < 0:
-        raise BadOption(f"--seed must not be negative, got {args.seed}")
     name = args.name if args.name is not None else args.out.rstrip("/").split("/")[-1] or "synthetic"
     try:
         return synth_config(
