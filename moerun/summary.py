@@ -2,11 +2,12 @@
 
 from __future__ import annotations
 
+from .config import RANDOM_NOTE as config_note
 from .report import pct, table
 from .units import fmt_bytes, fmt_rate
 
 NOT_ADVICE = "text from a tiny model trained on invented data; not advice"
-RANDOM_NOTE = "random weights: routing is meaningless and the text is noise"
+RANDOM_NOTE = f"{config_note} and the text is noise"  # what a generation from random weights needs said
 # Peak resident-set growth may exceed --mem-cap by this much before a run is flagged: the interpreter's own
 # small allocations (token lists, the routing recorder, numpy's per-call buffers) that no budget line counts
 # (docs/offload.md, "What the cap covers").

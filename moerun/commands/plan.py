@@ -10,6 +10,7 @@ from pathlib import Path
 from .. import cli, policies
 from ..budget import fixed_bytes, slot_bytes
 from ..calibration import calibrate, costs_from_calibration, costs_from_shape, describe, load_shape, page_seconds
+from ..config import RANDOM_NOTE
 from ..engine import default_model_dir
 from ..errors import BadInput, BadOption, ImpossibleBudget
 from ..plan import PREFETCH_CANDIDATES, Space, check_decode_steps, check_trace_shape
@@ -95,7 +96,7 @@ def _inputs(args):
         c = store.config
         model = {"L": c.n_layers, "E": c.n_experts, "k": c.top_k, "expert_bytes": store.expert_nbytes,
                  "fixed": sum(fixed_bytes(c, store.dense_nbytes, store.codec.scratch_bytes())), "dir": model_dir,
-                 "what": f"model {model_dir}", "note": "random weights: routing is meaningless" if c.extra.get("synthetic") else None}
+                 "what": f"model {model_dir}", "note": RANDOM_NOTE if c.extra.get("synthetic") else None}
         store.close()
         if not args.trace and not (model_dir / "heldout.txt").exists():
             raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --trace FILE")
