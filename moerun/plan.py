@@ -19,7 +19,8 @@ from .calibration import (  # noqa: F401  (the planner's public names, kept here
     page_seconds,
 )
 from .errors import BadInput, BadTrace, ImpossibleBudget
-from .replay import prefill_tokens, replay_counts
+from .replay_counts import replay_counts
+from .replay_plan import prefill_tokens
 from .timeline import Costs, Prediction, predict, step_misses  # noqa: F401
 from .trace import Trace
 

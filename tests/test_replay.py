@@ -21,7 +21,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import moerun
-from moerun import cli, replay
+from moerun import cli, replay, replay_fast
 from moerun.policies import FIFO, LFU, LRU, Optimal, Policy, grow
 from moerun.sampling import Sampling
 from moerun.trace import Trace, read_trace, write_trace
@@ -115,8 +115,8 @@ def test_fast_paths_give_exactly_the_reference_paths_misses_on_random_traces(par
 def test_vectorised_lru_ranks_do_not_depend_on_the_chunk_size(seed, tokens, experts, k, chunk):
     trace = _random_trace(seed, tokens, 1, experts, k, 0.1 if seed % 2 else 0.0, seed % 4)
     plan = replay.layer_plans(trace)[0].split(k)
-    seen, rank = replay._lru_ranks(plan)
-    seen_c, rank_c = replay._lru_ranks(plan, chunk=chunk)
+    seen, rank = replay_fast._lru_ranks(plan)
+    seen_c, rank_c = replay_fast._lru_ranks(plan, chunk=chunk)
     assert np.array_equal(seen, seen_c)
     assert np.array_equal(rank[seen], rank_c[seen])
     # and they give the reference path's misses
