@@ -24,7 +24,7 @@ from .trace import Trace
 __all__ = ["DEFAULT_POLICIES", "FAST_PATHS", "RECALL_GUESSES", "RECALL_LOOKAHEAD", "Counts", "LayerPlan", "PrefetchCounts", "count_layer",
            "count_shared", "default_slots", "describe", "generic_misses", "layer_misses", "layer_plans", "overall", "parse_policies",
            "parse_slots", "plan_policy", "prefetch_recall", "prefill_tokens", "random_routing_trace", "replay_counts",
-           "residency_picture", "routed_hook", "run_replay", "shared_counts", "shared_plan", "shuffled_trace", "simulate_prefetch", "walk"]
+           "residency_picture", "routed_hook", "run_replay", "shared_counts", "shared_slots", "shared_plan", "shuffled_trace", "simulate_prefetch", "walk"]
 
 DEFAULT_POLICIES = ["lru", "lfu", "fifo", "optimal"]
 
@@ -70,6 +70,11 @@ def default_slots(n_experts: int) -> list[int]:
         out.append(c)
         c *= 2
     return out + [n_experts]
+
+
+def shared_slots(n_keys: int) -> list[int]:
+    """Default sizes of a pool shared by all layers: 10%, 25%, 50% and all of its ``n_keys`` experts."""
+    return sorted({max(1, round(f * n_keys)) for f in (0.1, 0.25, 0.5)} | {n_keys})
 
 
 def parse_policies(text: str) -> list[str]:
@@ -148,16 +153,22 @@ def run_replay(
     baselines: bool = True,
     fast: bool = True,
     progress: Callable[[int, int, str], None] | None = None,
+    shared: bool = False,
 ) -> dict:
-    """Everything ``moerun replay`` reports, as one JSON-ready document."""
+    """Everything ``moerun replay`` reports, as one JSON-ready document.
+
+    ``shared``: one pool shared by all layers, ``slots`` its sizes (default: 10%, 25%, 50% and all of
+    the experts), replayed in the live engine's order; otherwise ``slots`` are per-layer quotas."""
     if trace.n_tokens == 0:
         raise BadTrace("the trace holds no tokens")
     E = trace.n_experts
-    slots = list(slots) if slots else default_slots(E)
+    slots = list(slots) if slots else shared_slots(trace.n_layers * E) if shared else default_slots(E)
+    if shared and max(slots) > trace.n_layers * E:
+        raise BadOption(f"--slots of a shared pool must be at most the trace's {trace.n_layers * E} experts")
     if expert_bytes is None:
         eb = trace.meta.get("expert_bytes")
         expert_bytes = eb if isinstance(eb, int) and not isinstance(eb, bool) and eb > 0 else None
-    plans = layer_plans(trace)
+    plans = [shared_plan(trace)] if shared else layer_plans(trace)
     units = len(policy_names) + (2 if baselines else 0) + (len([p for p in policy_names if getattr(policies.get(p), "online", True)]) * len(slots) if prefetch else 0)
     done = 0
 
@@ -169,11 +180,12 @@ def run_replay(
 
     results = []
     for name in policy_names:
-        results += _records(name, replay_counts(trace, name, slots, fast, plans), expert_bytes)
+        results += _records(name, replay_counts(trace, name, slots, fast, plans, shared), expert_bytes)
         tick(name)
     doc: dict = {
         "trace": describe(trace),
         "slots": slots,
+        "pool": "shared" if shared else "per-layer",
         "policies": list(policy_names),
         "expert_bytes": expert_bytes,
         "results": results,
@@ -184,7 +196,7 @@ def run_replay(
             ("shuffled", lambda: shuffled_trace(trace, seed)),
             ("random", lambda: random_routing_trace(trace, E, seed)),
         ):
-            recs = _records("lru", replay_counts(make(), "lru", slots, fast), expert_bytes)
+            recs = _records("lru", replay_counts(make(), "lru", slots, fast, shared=shared), expert_bytes)
             for r in recs:
                 r["baseline"] = label
             base += recs
@@ -200,7 +212,7 @@ def run_replay(
             if not getattr(cls, "online", True):
                 continue
             for c in slots:
-                per_layer = simulate_prefetch(trace, cls, c, n, la, plans)
+                per_layer = simulate_prefetch(trace, cls, c, n, la, plans, shared)
                 pf += _records(name, {c: per_layer}, expert_bytes)
                 tick(f"{name} prefetch")
         doc["prefetch"] = {"guesses": n, "lookahead": la, "results": pf}
