@@ -36,24 +36,27 @@ class Orbit(Policy):
 
     With one pool per layer (keys are expert ids, ``shared_experts`` 0) the distance is the same
     for every key and the rule is the routing model with the frequency term.  Without ``routed``
-    calls (prefill) the estimate is the expert's overall rate.  Parameters were chosen on traces of
-    training text (docs/policy_research.md).
+    calls (prefill) the estimate is the expert's overall rate.  Parameters were chosen on a trace of
+    scree's training text and checked on held-out text never used for tuning (docs/policy_research.md,
+    scripts/tune_policy.py --policy orbit --shared).
     """
 
     name = "orbit"
+    # chosen by scripts/tune_policy.py --policy orbit --shared on a trace of scree's training text
+    # (pool sizes 10%, 25%, 50% of all experts), checked on held-out text (docs/policy_research.md)
     horizon = 8  # steps of a layer after a decision whose choices count as its follow-up
     gamma = 0.5  # weight of the d-th step after a decision: gamma ** (d - 1)
-    memory = 0.5  # weight left to a decision's earlier follow-ups each time it occurs again
-    kappa = 0.5  # pseudo-counts pulling a decision's estimate towards the expert's overall rate
-    beta = 0.5  # discount per layer step until the next possible use
-    w = 0.25  # weight of the frequency term
-    lam = 0.01  # LRFU decay per access of the frequency term
+    memory = 0.75  # weight left to a decision's earlier follow-ups each time it occurs again
+    kappa = 0.25  # pseudo-counts pulling a decision's estimate towards the expert's overall rate
+    beta = 0.25  # discount per layer step until the next possible use
+    w = 1.0  # weight of the frequency term
+    lam = 0.003  # LRFU decay per access of the frequency term
     table_bits = 12  # decisions remembered per layer: 2 ** table_bits
 
     def __init__(self, n_keys: int = 0, shared_experts: int = 0):
         super().__init__(n_keys, shared_experts)
         E = self.E = shared_experts or max(n_keys, 1)
-        L = self.L = n_keys // shared_experts if shared_experts else 1
+        L = n_keys // shared_experts if shared_experts else 1
         n = max(n_keys, E * L)
         self.score = [0.0] * n  # the rule's value of each resident key (the lowest is evicted)
         self.qpart = [0.0] * n  # its ln q - beta * next possible use, set when its layer routes
@@ -62,19 +65,36 @@ class Orbit(Policy):
         self.origin = 0
         self._tick = -1
         self._add = 1.0
-        B = 1 << self.table_bits
-        self.mask = B - 1
-        self.decisions = [[None] * B for _ in range(L)]  # bucket -> the decision it holds
-        self.rows = [[None] * B for _ in range(L)]  # bucket -> follow-up weight per expert (times inc)
-        self.total = [[0.0] * B for _ in range(L)]  # bucket -> follow-up weight of the steps seen (times inc)
-        self.inc = [[1.0] * B for _ in range(L)]  # bucket -> the factor its weights are kept multiplied by
-        self.recent = [[] for _ in range(L)]  # the layer's last ``horizon`` decisions' buckets, newest first
-        self.current = [-1] * L  # bucket of the layer's last decision (-1: none yet)
-        self.seen = [[0] * E for _ in range(L)]  # steps of the layer that chose each expert
-        self.steps = [0] * L
-        self.next_use = [float(layer) for layer in range(L)]  # layer step of each layer's next possible use
+        self.mask = (1 << self.table_bits) - 1
+        self.decisions: list[list] = []  # per layer: bucket -> the decision it holds
+        self.rows: list[list] = []  # per layer: bucket -> follow-up weight per expert (times inc)
+        self.total: list[list[float]] = []  # per layer: bucket -> follow-up weight of the steps seen (times inc)
+        self.inc: list[list[float]] = []  # per layer: bucket -> the factor its weights are kept multiplied by
+        self.recent: list[list[int]] = []  # per layer: its last ``horizon`` decisions' buckets, newest first
+        self.current: list[int] = []  # per layer: bucket of its last decision (-1: none yet)
+        self.seen: list[list[int]] = []  # per layer: steps that chose each expert
+        self.steps: list[int] = []
+        self.next_use: list[float] = []  # per layer: the layer step of its next possible use
+        self.members: list[set] = []  # per layer: its resident keys
         self.clock = 0  # layer steps so far
-        self.members = [set() for _ in range(L)]  # resident keys of each layer
+        self.L = 0
+        self._add_layers(L)
+
+    def _add_layers(self, L: int) -> None:
+        """Per-layer state up to ``L`` layers (a shared pool made without ``n_keys`` meets more)."""
+        B = self.mask + 1
+        for layer in range(self.L, L):
+            self.decisions.append([None] * B)
+            self.rows.append([None] * B)
+            self.total.append([0.0] * B)
+            self.inc.append([1.0] * B)
+            self.recent.append([])
+            self.current.append(-1)
+            self.seen.append([0] * self.E)
+            self.steps.append(0)
+            self.next_use.append(float(self.clock + layer))
+            self.members.append(set())
+        self.L = max(self.L, L)
 
     # ------------------------------------------------------------------ the estimate
     def _value(self, layer: int, e: int) -> float:
@@ -120,6 +140,8 @@ class Orbit(Policy):
             if chosen and max(chosen) >= E:  # a policy made without n_keys meets larger ids
                 self._widen(max(chosen) + 1)
                 E = self.E
+        elif layer >= self.L:
+            self._add_layers(layer + 1)
         decision = tuple(chosen)
         b = hash(decision) & self.mask
         decisions, rows, total, inc = self.decisions[layer], self.rows[layer], self.total[layer], self.inc[layer]
@@ -184,6 +206,8 @@ class Orbit(Policy):
 
     def inserted(self, key, now):
         layer = self._layer_of(key)
+        if layer >= self.L:
+            self._add_layers(layer + 1)
         e = key - layer * self.shared_experts
         if e >= self.E:
             self._widen(e + 1)
