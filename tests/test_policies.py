@@ -262,18 +262,24 @@ def _shared_misses(trace: Trace, cls: type[Policy], sizes) -> dict[int, int]:
 def test_orbit_decides_as_beladys_min_when_every_layer_repeats_its_choice(layers, k):
     # Belady 1966 (module docstring): every layer chooses the same k experts at every token, so each
     # resident expert's next use is its layer's next step, and MIN evicts the experts of the layer
-    # that ran most recently (outside the pinned step).  Orbit's estimate q is the same for every
-    # resident expert once each layer has run, and its distance term ranks them as MIN does.
-    E = 8
-    ex = np.tile(np.arange(k), (300, layers, 1))  # a shared pool's keys are layer * E + expert: every layer its own
-    trace = Trace(ex, meta={"n_experts": E})
+    # that ran most recently (outside the pinned step).  Once every layer has run twice, orbit's
+    # estimate q is the same for every resident expert and its distance term ranks them as MIN does:
+    # the same steady miss rate (its periodic pattern may run in another phase), extra misses only in
+    # the first two tokens (orbit learns the routing) and fewer in the last few (MIN knows the end).
+    T = 300
+    trace = Trace(np.tile(np.arange(k), (T, layers, 1)), meta={"n_experts": 8})  # shared keys: every layer its own
+    plan = replay.shared_plan(trace)
+    token = np.repeat(plan.token, plan.sizes)
     sizes = list(range(k, layers * k + 1))
-    opt = _shared_misses(trace, Optimal, sizes)
-    orb = _shared_misses(trace, Orbit, sizes)
-    lru = _shared_misses(trace, LRU, sizes)
-    assert orb == opt
+    opt = replay.layer_misses(plan, Optimal, sizes, fast=False)
+    orb = replay.layer_misses(plan, Orbit, sizes, fast=False)
+    lru = replay.layer_misses(plan, LRU, sizes)
+    for c in sizes:
+        steady = [int(np.bincount(token[m[c]], minlength=T)[2 : T - 4].sum()) for m in (opt, orb)]
+        assert abs(steady[0] - steady[1]) <= k, (c, steady)  # within one step's accesses: the phase
+        assert abs(int(orb[c].sum()) - int(opt[c].sum())) <= 2 * layers * k  # the warm-up's extra misses at most
     for c in sizes[1:-1]:  # k slots: every access misses whatever the rule; L * k: only cold misses
-        assert orb[c] < lru[c]
+        assert orb[c].sum() < lru[c].sum()
 
 
 def test_orbit_keeps_the_cyclic_order_of_single_experts_as_min_does():
@@ -283,7 +289,7 @@ def test_orbit_keeps_the_cyclic_order_of_single_experts_as_min_does():
     ex = np.arange(L)[None, :, None].repeat(tokens, 0)  # layer l always chooses expert l
     trace = Trace(ex, meta={"n_experts": L})
     opt = _shared_misses(trace, Optimal, [c])[c]
-    assert _shared_misses(trace, Orbit, [c])[c] == opt
+    assert opt <= _shared_misses(trace, Orbit, [c])[c] <= opt + L  # the first token's extra misses at most
     assert _shared_misses(trace, LRU, [c])[c] == L * tokens  # LRU evicts exactly the key needed next
     assert opt < L * tokens * 0.65
 
