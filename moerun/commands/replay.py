@@ -108,6 +108,13 @@ def render(doc: dict, per_layer: bool = False) -> str:
                 rows.append([name, str(c)] + [pct(recs[x]["hit_rate"]) for x in layers] + [pct(recs["all"]["hit_rate"])])
         lines.append(table(head, rows, "ll" + "r" * (len(layers) + 1)))
 
+    lines += _render_prefetch(doc, shared)
+    return "\n".join(lines)
+
+
+def _render_prefetch(doc: dict, shared: bool) -> list[str]:
+    """The prefetch recall table and, with --prefetch, the prefetch replay's table."""
+    lines: list[str] = []
     rec = doc.get("prefetch_recall") or []
     if rec:
         lines.append("")
@@ -132,7 +139,7 @@ def render(doc: dict, per_layer: bool = False) -> str:
         for name in doc["policies"]:
             base = overall(doc["results"], name)
             got = overall(pf["results"], name)
-            for c in slots:
+            for c in doc["slots"]:
                 if c not in got:
                     continue
                 g = got[c]
@@ -143,7 +150,7 @@ def render(doc: dict, per_layer: bool = False) -> str:
         skipped = [n for n in doc["policies"] if not getattr(policies.get(n), "online", True)]
         if skipped:
             lines.append(f"({', '.join(skipped)} reads the future and is not simulated with prefetch)")
-    return "\n".join(lines)
+    return lines
 
 
 def run(args) -> int:
