@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from collections import deque
 
 from .policies_base import LN2, Policy, grow
 
@@ -61,6 +62,7 @@ class Orbit(Policy):
         self.score = [0.0] * n  # the rule's value of each resident key (the lowest is evicted)
         self.qpart = [0.0] * n  # its ln q - beta * next possible use, set when its layer routes
         self.count = [0.0] * n  # LRFU count (CRF times a factor common to every key)
+        self.freq = [0.0] * n  # w * ln of its count (plus shift): the frequency term of its score
         self.shift = 0.0  # ln of the factor taken out of every count so far
         self.origin = 0
         self._tick = -1
@@ -70,7 +72,8 @@ class Orbit(Policy):
         self.rows: list[list] = []  # per layer: bucket -> follow-up weight per expert (times inc)
         self.total: list[list[float]] = []  # per layer: bucket -> follow-up weight of the steps seen (times inc)
         self.inc: list[list[float]] = []  # per layer: bucket -> the factor its weights are kept multiplied by
-        self.recent: list[list[int]] = []  # per layer: its last ``horizon`` decisions' buckets, newest first
+        self.recent: list[deque] = []  # per layer: its last ``horizon`` decisions' buckets, newest first
+        self.powers = [self.gamma**d for d in range(self.horizon)]  # weight of the d+1-th step after a decision
         self.current: list[int] = []  # per layer: bucket of its last decision (-1: none yet)
         self.seen: list[list[int]] = []  # per layer: steps that chose each expert
         self.steps: list[int] = []
@@ -88,7 +91,7 @@ class Orbit(Policy):
             self.rows.append([None] * B)
             self.total.append([0.0] * B)
             self.inc.append([1.0] * B)
-            self.recent.append([])
+            self.recent.append(deque(maxlen=self.horizon))
             self.current.append(-1)
             self.seen.append([0] * self.E)
             self.steps.append(0)
@@ -127,10 +130,11 @@ class Orbit(Policy):
     def _touch(self, key: int, now: int) -> None:
         count = self.count
         if key >= len(count):
-            for values in (count, self.score, self.qpart):
+            for values in (count, self.score, self.qpart, self.freq):
                 grow(values, key, 0.0)
         count[key] += self._weight(now)
-        self.score[key] = self.qpart[key] + self.w * (math.log(count[key]) + self.shift)
+        fr = self.freq[key] = self.w * (math.log(count[key]) + self.shift)
+        self.score[key] = self.qpart[key] + fr
 
     # ------------------------------------------------------------------ notifications
     def routed(self, layer, chosen, probs, now):
@@ -158,38 +162,32 @@ class Orbit(Policy):
                 total[b] *= f
                 inc[b] = 1.0
         # this step is the follow-up of the layer's last ``horizon`` decisions
-        g, gamma = 1.0, self.gamma
         recent = self.recent[layer]
-        for r in recent:
+        for r, g in zip(recent, self.powers):
             x = g * inc[r]
             row = rows[r]
             for e in chosen:
                 row[e] += x
             total[r] += x
-            g *= gamma
-        recent.insert(0, b)
-        if len(recent) > self.horizon:
-            recent.pop()
+        recent.appendleft(b)  # a deque of at most ``horizon``: the oldest drops out
         self.current[layer] = b
         seen = self.seen[layer]
         for e in chosen:
             seen[e] += 1
-        self.steps[layer] += 1
-        L = self.L
-        self.next_use[layer] = self.clock + L
+        steps = self.steps[layer] = self.steps[layer] + 1
+        far = self.next_use[layer] = self.clock + self.L
         self.clock += 1
         # the layer's resident experts: new estimates and a new next possible use
         f = 1.0 / inc[b]
         row = rows[b]
-        kp = self.kappa / (self.steps[layer] + 2.0)
-        low = math.log(total[b] * f + self.kappa) + self.beta * self.next_use[layer]
-        log, base, w, shift = math.log, layer * self.shared_experts, self.w, self.shift
-        qpart, score, count = self.qpart, self.score, self.count
+        kp = self.kappa / (steps + 2.0)
+        low = math.log(total[b] * f + self.kappa) + self.beta * far
+        log, base = math.log, layer * self.shared_experts
+        qpart, score, freq = self.qpart, self.score, self.freq
         for k in self.members[layer]:
             e = k - base
-            v = log(row[e] * f + kp * (seen[e] + 1)) - low
-            qpart[k] = v
-            score[k] = v + w * (log(count[k]) + shift)
+            v = qpart[k] = log(row[e] * f + kp * (seen[e] + 1)) - low
+            score[k] = v + freq[k]
 
     def _widen(self, E: int) -> None:
         """More experts than the policy was made for (per-layer keys without n_keys)."""
@@ -212,7 +210,7 @@ class Orbit(Policy):
         if e >= self.E:
             self._widen(e + 1)
         if key >= len(self.qpart):
-            for values in (self.count, self.score, self.qpart):
+            for values in (self.count, self.score, self.qpart, self.freq):
                 grow(values, key, 0.0)
         self.qpart[key] = self._value(layer, e)
         self.members[layer].add(key)
