@@ -130,10 +130,13 @@ class Space:
                 if pf:
                     for label, sl in splits[n].items():
                         out.append((label, self._predict(sl, n, pf, la)))
-        if self.shared:
-            for n in ranked[:PREFETCH_POLICIES]:
+        if self.shared:  # every policy in the shared pool (the ranking differs there: orbit is for it), then prefetch for the best
+            plain = {n: self._predict([total], n, 0, 1, shared=True) for n in names}
+            out += [("shared", pr) for pr in plain.values()]
+            for n in sorted(names, key=lambda n: -plain[n].tok_s)[:PREFETCH_POLICIES]:
                 for pf, la in prefetches or self.prefetches:
-                    out.append(("shared", self._predict([total], n, pf, la, shared=True)))
+                    if pf:
+                        out.append(("shared", self._predict([total], n, pf, la, shared=True)))
         return out
 
     def best(self, total: int, policy_names=None, prefetches=None) -> tuple[str, Prediction]:
