@@ -1,5 +1,8 @@
 #!/usr/bin/env python3
-"""Tune the ``markov`` eviction policy on one part of the text and report it on parts never used for tuning.
+"""Tune the ``markov`` (or ``--policy orbit``) eviction policy on one part of the text and report it on parts never used for tuning.
+
+With ``--shared``, the pool is one pool shared by all layers and ``--slots`` / ``--objective-slots`` are
+percentages of all experts (docs/policy_research.md, "A rule for the shared pool").
 
 The protocol, end to end (docs/policy_research.md has the results and the reasoning):
 
@@ -28,6 +31,7 @@ code) for the policy and the fast paths for LRU and the optimum.  Traces are cac
 (default: a directory under the system temp dir) and reused when present.
 
 Usage: python scripts/tune_policy.py [--work DIR] [--rounds N] [--jobs N] [--no-search] [--json]
+       python scripts/tune_policy.py --model tiny_models/scree --policy orbit --shared --slots 10,25,50 --objective-slots 10,25,50
 """
 
 from __future__ import annotations
