@@ -43,6 +43,7 @@ class Orbit(Policy):
     """
 
     name = "orbit"
+    for_shared_pool = True  # the planner always tries it in a shared pool
     # chosen by scripts/tune_policy.py --policy orbit --shared on a trace of scree's training text
     # (pool sizes 10%, 25%, 50% of all experts), checked on held-out text (docs/policy_research.md)
     horizon = 8  # steps of a layer after a decision whose choices count as its follow-up
