@@ -11,6 +11,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from . import policies
 from .calibration import (  # noqa: F401  (the planner's public names, kept here)
     calibrate,
     costs_from_calibration,
@@ -19,7 +20,8 @@ from .calibration import (  # noqa: F401  (the planner's public names, kept here
     page_seconds,
 )
 from .errors import BadInput, BadTrace, ImpossibleBudget
-from .replay import prefill_tokens, replay_counts
+from .replay_counts import replay_counts
+from .replay_plan import prefill_tokens
 from .timeline import Costs, Prediction, predict, step_misses  # noqa: F401
 from .trace import Trace
 
@@ -129,10 +131,14 @@ class Space:
                 if pf:
                     for label, sl in splits[n].items():
                         out.append((label, self._predict(sl, n, pf, la)))
-        if self.shared:
-            for n in ranked[:PREFETCH_POLICIES]:
+        if self.shared:  # the best per-layer policies and those made for a shared pool, then prefetch for the best two there
+            pick = ranked[:PREFETCH_POLICIES] + [n for n in ranked[PREFETCH_POLICIES:] if getattr(policies.get(n), "for_shared_pool", False)]
+            plain = {n: self._predict([total], n, 0, 1, shared=True) for n in pick}
+            out += [("shared", pr) for pr in plain.values()]
+            for n in sorted(pick, key=lambda n: -plain[n].tok_s)[:PREFETCH_POLICIES]:
                 for pf, la in prefetches or self.prefetches:
-                    out.append(("shared", self._predict([total], n, pf, la, shared=True)))
+                    if pf:
+                        out.append(("shared", self._predict([total], n, pf, la, shared=True)))
         return out
 
     def best(self, total: int, policy_names=None, prefetches=None) -> tuple[str, Prediction]:

@@ -65,7 +65,8 @@ def plot_replay(path: str | Path, trace: Trace, doc: dict, layer: int = 0, force
         by = overall(doc.get("baselines", []), baseline=key)
         if by:
             ax.plot(slots, [100 * (by[c]["hit_rate"] or 0) for c in slots], linestyle=":", marker=".", label=label)
-    ax.set_xlabel("expert slots per layer")
+    shared = doc.get("pool") == "shared"
+    ax.set_xlabel("expert slots of the pool shared by all layers" if shared else "expert slots per layer")
     ax.set_ylabel("hit rate (% of decode accesses)")
     ax.set_xticks(slots)
     ax.set_ylim(0, 100)
@@ -78,12 +79,13 @@ def plot_replay(path: str | Path, trace: Trace, doc: dict, layer: int = 0, force
     P = int(tr["prefill_tokens"])
     t0 = P
     t1 = min(trace.n_tokens, P + PICTURE_TOKENS)
-    c = _picture_slots(slots, trace.top_k, E)
+    L = trace.n_layers
+    c = _picture_slots(slots, L * trace.top_k, L * E) if shared else _picture_slots(slots, trace.top_k, E)
     shown = ([online[0]] if online else []) + offline[:1]
     cmap = ListedColormap(["white", "#c9d6e8", "#2e8b57", "#d1495b"])
     for j, name in enumerate(shown[:2]):
         axr = fig.add_subplot(grid[1, j])
-        pic = residency_picture(trace, layer, name, c, t0, t1) if t1 > t0 else np.zeros((E, 0), np.int8)
+        pic = residency_picture(trace, layer, name, c, t0, t1, shared) if t1 > t0 else np.zeros((E, 0), np.int8)
         axr.imshow(pic, aspect="auto", interpolation="nearest", cmap=cmap, vmin=0, vmax=3, origin="lower",
                    extent=(t0 - 0.5, t1 - 0.5, -0.5, E - 0.5))
         axr.set_xlabel("token index (decode steps)")
@@ -92,7 +94,8 @@ def plot_replay(path: str | Path, trace: Trace, doc: dict, layer: int = 0, force
             axr.set_yticks(range(E))
         misses = int((pic == 3).sum())
         used = int((pic >= 2).sum())
-        axr.set_title(f"layer {layer}, {name}, {c} slots: {misses} misses in {used} accesses", fontsize=10)
+        where = f"{c} shared slots" if shared else f"{c} slots"
+        axr.set_title(f"layer {layer}, {name}, {where}: {misses} misses in {used} accesses", fontsize=10)
         info[f"picture_{j}"] = {"policy": name, "slots": c, "tokens": [t0, t1], "misses": misses, "accesses": used}
     fig.legend(
         handles=[

@@ -36,7 +36,8 @@ from . import policies
 from .errors import BadOption, BadTrace
 from .guesses import Timing, guess_pays, worth_guessing
 from .link import Link
-from .replay import layer_misses, layer_plans, plan_policy, prefill_tokens
+from .replay_fast import layer_misses
+from .replay_plan import layer_plans, plan_policy, prefill_tokens
 from .residency import Residency
 from .trace import Trace
 

@@ -45,6 +45,7 @@ def default_settings(min_cap: int, full_cap: int, slot: int) -> list[Setting]:
         Setting("middle cap, lru", {"mem_cap": mid, "evict": "lru"}),
         Setting("smallest cap, prefetch 2 x 2 layers", {"mem_cap": min_cap, "prefetch": 2, "lookahead": 2}),
         Setting("middle cap, shared pool, prefetch 1", {"mem_cap": mid, "split": "shared", "prefetch": 1}),
+        Setting("smallest cap, shared pool, orbit", {"mem_cap": min_cap, "split": "shared", "evict": "orbit"}),
         Setting("smallest cap, prefetch 2, link 1 GB/s (emulated)", {"mem_cap": min_cap, "prefetch": 2, "link_speed": 1e9}),
     ]
 

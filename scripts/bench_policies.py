@@ -21,7 +21,7 @@ import numpy as np
 
 import moerun
 from moerun import policies, replay
-from moerun.budget import plan_budget
+from moerun.budget import fixed_bytes, plan_budget, slot_bytes
 from moerun.pool import ExpertPool
 from moerun.sampling import Sampling
 from moerun.store import ModelStore
@@ -80,6 +80,8 @@ def main() -> int:
     ap.add_argument("--model", default=None)
     ap.add_argument("--trace", default=None, help="a routing trace of the model (default: recorded now from 4 generations)")
     ap.add_argument("--slots-per-layer", default="3,4", help="per-layer quotas to time (default 3,4)")
+    ap.add_argument("--shared-pool", action="store_true",
+                    help="one pool shared by all layers: --slots-per-layer are then the pool's sizes (total slots)")
     ap.add_argument("--evict", default=",".join(policies.names(online_only=True)))
     ap.add_argument("--repeats", type=int, default=3)
     ap.add_argument("--json", action="store_true")
@@ -108,7 +110,12 @@ def main() -> int:
         base_ns.append(secs / acc * 1e9)
         for q in quotas:
             for n in names:
-                budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, 1 << 40, [q] * c.n_layers)
+                if a.shared_pool:
+                    fixed = sum(fixed_bytes(c, store.dense_nbytes, store.codec.scratch_bytes()))
+                    budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, fixed + q * slot_bytes(store.expert_nbytes), "shared",
+                                         store.codec.scratch_bytes())
+                else:
+                    budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, 1 << 40, [q] * c.n_layers)
                 pool = ExpertPool(store, budget, n)
                 secs, acc = drive(pool, experts, probs, P)
                 cost[(n, q)].append(secs / acc * 1e9)
@@ -116,10 +123,10 @@ def main() -> int:
     hit = {}
     for q in quotas:
         for n in names:
-            counts = replay.replay_counts(trace, n, [q], fast=False)[q]
+            counts = replay.replay_counts(trace, n, [q], fast=False, shared=a.shared_pool)[q]
             a_ = sum(x.accesses for x in counts)
             hit[(n, q)] = sum(x.hits for x in counts) / a_ if a_ else None
-        counts = replay.replay_counts(replay.shuffled_trace(trace), "lru", [q])[q]
+        counts = replay.replay_counts(replay.shuffled_trace(trace), "lru", [q], shared=a.shared_pool)[q]
         hit[("shuffled", q)] = sum(x.hits for x in counts) / sum(x.accesses for x in counts)
     rows = []
     for q in quotas:
@@ -129,7 +136,7 @@ def main() -> int:
             rows.append({"policy": n, "slots_per_layer": q, "us_per_access": us,
                          "over_lru_us": us - lru / 1e3 if lru is not None else None, "hit_rate": hit[(n, q)],
                          "shuffled_lru_hit_rate": hit[("shuffled", q)]})
-    doc = {"model": str(model), "tokens": int(trace.n_tokens), "decode_tokens": int(trace.n_tokens - P),
+    doc = {"model": str(model), "pool": "shared" if a.shared_pool else "per-layer", "tokens": int(trace.n_tokens), "decode_tokens": int(trace.n_tokens - P),
            "driver_ns_per_access": base, "repeats": a.repeats, "rows": rows,
            "note": "pool + policy bookkeeping per access, reads replaced by nothing; CPU time of the driving thread"}
     if a.json:
@@ -137,7 +144,7 @@ def main() -> int:
         return 0
     print(f"model {model}; {doc['decode_tokens']} decode tokens of routing; reads replaced by nothing; the driver's own "
           f"{base:.0f} ns per access taken off; best of {a.repeats}, CPU time")
-    print(f"{'policy':<8}{'slots':>6}{'us/access':>11}{'over lru':>10}{'hit rate':>10}{'shuffled lru':>14}")
+    print(f"{'policy':<8}{'pool' if a.shared_pool else 'slots':>6}{'us/access':>11}{'over lru':>10}{'hit rate':>10}{'shuffled lru':>14}")
     for r in rows:
         print(f"{r['policy']:<8}{r['slots_per_layer']:>6}{r['us_per_access']:>11.2f}{r['over_lru_us']:>+10.2f}"
               f"{100 * r['hit_rate']:>9.1f}%{100 * r['shuffled_lru_hit_rate']:>13.1f}%")

@@ -1,5 +1,8 @@
 #!/usr/bin/env python3
-"""Tune the ``markov`` eviction policy on one part of the text and report it on parts never used for tuning.
+"""Tune the ``markov`` (or ``--policy orbit``) eviction policy on one part of the text and report it on parts never used for tuning.
+
+With ``--shared``, the pool is one pool shared by all layers and ``--slots`` / ``--objective-slots`` are
+percentages of all experts (docs/policy_research.md, "A rule for the shared pool").
 
 The protocol, end to end (docs/policy_research.md has the results and the reasoning):
 
@@ -28,6 +31,7 @@ code) for the policy and the fast paths for LRU and the optimum.  Traces are cac
 (default: a directory under the system temp dir) and reused when present.
 
 Usage: python scripts/tune_policy.py [--work DIR] [--rounds N] [--jobs N] [--no-search] [--json]
+       python scripts/tune_policy.py --model tiny_models/scree --policy orbit --shared --slots 10,25,50 --objective-slots 10,25,50
 """
 
 from __future__ import annotations
@@ -50,7 +54,7 @@ from bench_offload import SESSION_PROMPTS
 
 from moerun import cli, replay
 from moerun.engine import default_model_dir
-from moerun.policies import LRU, Markov, Optimal
+from moerun.policies import LRU, Markov, Optimal, Orbit
 from moerun.report import pct, table
 from moerun.trace import Trace, read_trace
 
@@ -59,7 +63,8 @@ CORPUS_TRAIN = ROOT / "data" / "corpus" / "train.txt"
 DOC = "<doc>"
 PROMPTS = SESSION_PROMPTS  # one opener per register, and an empty document
 # The grid the search walks (values per parameter); the class defaults are the starting point.
-GRID = {
+GRIDS = {}
+GRIDS["markov"] = GRID = {
     "order": [1, 2, 3, 4, 5, 6],
     "gamma": [0.3, 0.5, 0.7],
     "horizon": [2, 4, 8, 12],
@@ -68,6 +73,17 @@ GRID = {
     "lam": [0.003, 0.01, 0.03],
     "w": [0.25, 0.5, 1.0, 2.0],
 }
+GRIDS["orbit"] = {
+    "beta": [0.0, 0.1, 0.25, 0.5, 1.0],
+    "w": [0.0, 0.1, 0.25, 0.5, 1.0],
+    "kappa": [0.25, 0.5, 2.0, 8.0],
+    "gamma": [0.3, 0.5, 0.7],
+    "horizon": [2, 4, 8, 12],
+    "memory": [0.25, 0.5, 0.75, 1.0],
+    "lam": [0.003, 0.01, 0.03],
+}
+CLASSES = {"markov": Markov, "orbit": Orbit}
+COSTLY_BY = {"markov": ("order", "horizon", "memory"), "orbit": ("horizon",)}
 
 
 def log(msg: str) -> None:
@@ -154,12 +170,16 @@ def generations(args, work: Path) -> list[Trace]:
 # ---------------------------------------------------------------------------- replay
 
 
+SHARED = False  # --shared: slots are totals of one pool shared by all layers
+
+
 def hit_rates(traces: list[Trace], policy, slots: list[int], fast: bool = True) -> dict[int, float]:
-    """Overall hit rate per quota, counts summed over traces (each replayed from an empty pool)."""
+    """Overall hit rate per quota (per layer, or per shared pool with --shared), counts summed over
+    traces (each replayed from an empty pool)."""
     acc = dict.fromkeys(slots, 0)
     miss = dict.fromkeys(slots, 0)
     for tr in traces:
-        out = replay.replay_counts(tr, policy, slots, fast)
+        out = replay.replay_counts(tr, policy, slots, fast, shared=SHARED)
         for c in slots:
             acc[c] += sum(x.accesses for x in out[c])
             miss[c] += sum(x.misses for x in out[c])
@@ -172,28 +192,27 @@ def gap_share(pol: float, lru: float, opt: float) -> float | None:
 
 _TRACES: list[Trace] = []
 _SLOTS: list[int] = []
+_CLS = Markov
 
 
 def _evaluate(params: dict) -> tuple[dict, dict[int, float], float]:
     t0 = time.monotonic()
-    r = hit_rates(_TRACES, Markov.with_params(**params), _SLOTS, fast=False)
+    r = hit_rates(_TRACES, _CLS.with_params(**params), _SLOTS, fast=False)
     return params, r, time.monotonic() - t0
 
 
-COSTLY = ("order", "horizon", "memory")  # the per-access cost grows with these
-
-
-def search(tune: Trace, slots: list[int], rounds: int, jobs: int, min_gain: float) -> tuple[dict, list[dict]]:
-    """Coordinate descent over GRID on the tuning trace; returns (best parameters, every evaluation)."""
-    global _TRACES, _SLOTS
-    _TRACES, _SLOTS = [tune], slots
+def search(tune: Trace, slots: list[int], rounds: int, jobs: int, min_gain: float, name: str = "markov") -> tuple[dict, list[dict]]:
+    """Coordinate descent over the policy's grid on the tuning trace; returns (best parameters, every evaluation)."""
+    global _TRACES, _SLOTS, _CLS
+    _TRACES, _SLOTS, _CLS = [tune], slots, CLASSES[name]
+    GRID, COSTLY = GRIDS[name], COSTLY_BY[name]
     lru = hit_rates([tune], LRU, slots)
     opt = hit_rates([tune], Optimal, slots)
 
     def objective(r: dict[int, float]) -> float:
         return float(np.mean([gap_share(r[c], lru[c], opt[c]) for c in slots]))
 
-    best = {k: getattr(Markov, k) for k in GRID}
+    best = {k: getattr(_CLS, k) for k in GRID}
     seen: dict[tuple, dict[int, float]] = {}
     history = []
     ctx = mp.get_context("fork")
@@ -259,12 +278,13 @@ def render(doc: dict) -> str:
     lines = [
         f"model {doc['model']}; policy {doc['policy']} with {doc['params']}",
         f"tuned on: {doc['texts']['tune']}",
-        f"objective: mean share of the lru-to-optimum gap closed at {doc['objective_slots']} slots per layer, on the tuning trace only",
+        f"objective: mean share of the lru-to-optimum gap closed at {doc['objective_slots']} "
+        + ("slots of one pool shared by all layers" if doc["shared_pool"] else "slots per layer") + ", on the tuning trace only",
         "",
     ]
     for s in doc["sets"]:
         lines.append(f"{s['label']}: {s['traces']} trace(s), {s['tokens']} tokens, {s['decode_accesses']} decode accesses")
-        head = ["slots/layer", "lru", doc["policy"], "optimum", "gap closed", "lru shuffled", f"{doc['policy']} shuffled"]
+        head = ["pool slots" if doc["shared_pool"] else "slots/layer", "lru", doc["policy"], "optimum", "gap closed", "lru shuffled", f"{doc['policy']} shuffled"]
         rows = [[r["slots"], pct(r["lru"]), pct(r["policy"]), pct(r["optimal"]), pct(r["gap_closed"]), pct(r["lru_shuffled"]),
                  pct(r["policy_shuffled"])] for r in s["rows"]]
         lines.append(table(head, rows))
@@ -290,8 +310,17 @@ def main() -> int:
     ap.add_argument("--jobs", type=int, default=2, help="parallel replays during the search (default 2)")
     ap.add_argument("--seed", type=int, default=0, help="seed of the time-shuffled baselines (default 0)")
     ap.add_argument("--work", default=None, help="directory for texts and traces, reused across runs (default: a temp dir)")
+    ap.add_argument("--policy", choices=sorted(CLASSES), default="markov", help="the policy tuned (default markov)")
+    ap.add_argument("--shared", action="store_true",
+                    help="one pool shared by all layers: --slots and --objective-slots are then percentages of all experts")
+    ap.add_argument("--search-tokens", type=int, default=0, help="tokens of the tuning trace the search replays (default 0: all)")
+    ap.add_argument("--no-generations", action="store_true", help="skip the sampled generations")
     ap.add_argument("--json", action="store_true")
     args = ap.parse_args()
+    global SHARED
+    SHARED = args.shared
+    cls = CLASSES[args.policy]
+    GRID = GRIDS[args.policy]
 
     work = Path(args.work) if args.work else Path(tempfile.gettempdir()) / "moerun-tune-policy"
     work.mkdir(parents=True, exist_ok=True)
@@ -300,29 +329,40 @@ def main() -> int:
     src = texts(args, work)
     tune = record(args, work, "tune")
     test = record(args, work, "test")
-    gens = generations(args, work)
+    gens = [] if args.no_generations else generations(args, work)
     slots = replay.parse_slots(args.slots)
     obj_slots = replay.parse_slots(args.objective_slots)
+    if args.shared:  # percentages of all experts -> pool sizes
+        everything = tune.n_layers * tune.n_experts
+        slots = sorted({max(1, round(p / 100 * everything)) for p in slots})
+        obj_slots = sorted({max(1, round(p / 100 * everything)) for p in obj_slots})
+    searched = tune
+    if args.search_tokens and tune.n_tokens > args.search_tokens:
+        n = args.search_tokens
+        searched = Trace(tune.experts[:n], None, None, dict(tune.meta), {}, None if tune.probs is None else tune.probs[:n])
 
     if args.no_search:
-        params, history = {k: getattr(Markov, k) for k in GRID}, []
+        params, history = {k: getattr(cls, k) for k in GRID}, []
     else:
-        log(f"searching on the tuning trace ({tune.n_tokens} tokens), slots {obj_slots}")
-        params, history = search(tune, obj_slots, args.rounds, args.jobs, args.min_gain)
-    policy = Markov.with_params(**params)
-    defaults = {k: getattr(Markov, k) for k in GRID}
+        log(f"searching on the tuning trace ({searched.n_tokens} tokens), slots {obj_slots}")
+        params, history = search(searched, obj_slots, args.rounds, args.jobs, args.min_gain, args.policy)
+    policy = cls.with_params(**params)
+    defaults = {k: getattr(cls, k) for k in GRID}
     sets = [
         report_set("tuning trace (used for the search)", [tune], policy, slots, args.seed),
         report_set("TEST: held-out text, never used for tuning", [test], policy, slots, args.seed),
-        report_set(f"TEST: sampled generations ({len(args.prompts)} prompts x seeds {args.seeds}, fully resident)", gens, policy, slots,
-                   args.seed),
     ]
+    if gens:
+        sets.append(report_set(f"TEST: sampled generations ({len(args.prompts)} prompts x seeds {args.seeds}, fully resident)", gens, policy,
+                               slots, args.seed))
     doc = {
         "date_utc": started.strftime("%Y-%m-%d %H:%M"),
         "command": "python " + " ".join([sys.argv[0], *sys.argv[1:]]),
         "model": src["model"],
         "texts": src,
-        "policy": "markov",
+        "policy": args.policy,
+        "shared_pool": args.shared,
+        "search_tokens": searched.n_tokens,
         "params": params,
         "params_equal_class_defaults": params == defaults,
         "class_defaults": defaults,

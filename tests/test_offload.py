@@ -79,7 +79,7 @@ def offload_settings(draw):
     experts = draw(st.sampled_from([6, 8, 12]))
     kind = draw(st.sampled_from(["even", "shared", "list"]))
     kw = {
-        "evict": draw(st.sampled_from(["lru", "lfu", "fifo", "lrfu", "markov"])),
+        "evict": draw(st.sampled_from(["lru", "lfu", "fifo", "lrfu", "markov", "orbit"])),
         "prefetch": draw(st.integers(0, 3)),
         "lookahead": draw(st.integers(1, 3)),
         "link_speed": draw(st.sampled_from([None, 2e8, 1e9])),  # emulated link, bytes/s
@@ -134,14 +134,16 @@ def test_smallest_cap_with_every_policy_equals_resident_on_a_long_generation(sma
 def test_bundled_model_under_the_smallest_cap_equals_resident_bit_for_bit(bundled):
     prompt = list(range(5, 45))
     ref = _run(bundled, prompt, max_new=24)
-    caps = {split: _caps(bundled, split)[0] for split in ("even", "shared")}
-    # every online policy, each with one of the pool kinds and prefetch settings in turn
-    for i, evict in enumerate(policies.names(online_only=True)):
-        kw = {"evict": evict, "split": ("even", "shared")[i % 2]}
-        if i % 3 == 0:
-            kw.update(prefetch=2, lookahead=2)
-        got = _run(bundled, prompt, max_new=24, mem_cap=caps[kw["split"]], **kw)
-        assert got[3]["pool"]["misses"] > 0
+    caps = {split: _caps(bundled, split) for split in ("even", "shared")}
+    # every online policy in both pool kinds at the smallest cap, prefetch on for every other one;
+    # then the shared pool's own rule at a middle cap with prefetch two layers ahead
+    runs = [({"evict": evict, "split": split, **({"prefetch": 2, "lookahead": 2} if (i + j) % 2 else {})}, caps[split][0])
+            for i, evict in enumerate(policies.names(online_only=True)) for j, split in enumerate(("even", "shared"))]
+    lo, hi = caps["shared"]
+    runs.append(({"evict": "orbit", "split": "shared", "prefetch": 2, "lookahead": 2}, (lo + hi) // 2))
+    for kw, cap in runs:
+        got = _run(bundled, prompt, max_new=24, mem_cap=cap, **kw)
+        assert got[3]["pool"]["misses"] > 0, kw
         _assert_same(ref, got)
 
 

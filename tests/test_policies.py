@@ -9,6 +9,10 @@ Textbook sources:
   recently used and least frequently used policies", IEEE Transactions on Computers 50(12), 2001:
   with F(x) = (1/2)^(lambda x) and lambda = 1, LRFU replaces exactly as LRU does (a more recent
   reference always outweighs all older ones together).
+- Belady, "A study of replacement algorithms for a virtual-storage computer", IBM Systems Journal
+  5(2), 1966: MIN, evicting the page whose next reference is furthest away, faults least; on a
+  cyclic reference string, where each page's next possible use is its next use, a rule that evicts
+  by the distance to the next possible use decides as MIN does.
 """
 
 from __future__ import annotations
@@ -24,7 +28,7 @@ import moerun
 from moerun import cli, policies, replay
 from moerun.budget import minimum_cap
 from moerun.errors import BadTrace
-from moerun.policies import FIFO, LFU, LRFU, LRU, Markov, Optimal, Policy
+from moerun.policies import FIFO, LFU, LRFU, LRU, Markov, Optimal, Orbit, Policy
 from moerun.residency import Residency
 from moerun.sampling import Sampling
 from moerun.trace import Trace, read_trace, write_trace
@@ -32,7 +36,7 @@ from moerun.trace import Trace, read_trace, write_trace
 pytestmark = pytest.mark.usefixtures("every_guess_read")  # the prefetch machinery runs whatever guesses cost
 
 SILBERSCHATZ = [7, 0, 1, 2, 0, 3, 0, 4, 2, 3, 0, 3, 2, 1, 2, 0, 1, 7, 0, 1]  # OSC 9th ed., ch. 9
-LEARNED = (LRFU, Markov)
+LEARNED = (LRFU, Markov, Orbit)
 
 
 def _faults(policy: Policy, pages: list[int], frames: int) -> int:
@@ -246,6 +250,111 @@ def test_a_shared_pool_keys_layer_expert_pairs_and_models_each_layer():
     assert {divmod(k, E)[0] for k in res.slot_of} <= {0, 1} and any(k >= E for k in res.slot_of)
 
 
+# ---------------------------------------------------------------------------- orbit: the layer cycle
+
+
+def _shared_misses(trace: Trace, cls: type[Policy], sizes) -> dict[int, int]:
+    out = replay.shared_counts(trace, cls, sizes, fast=False)
+    return {c: sum(x.misses for x in out[c]) for c in sizes}
+
+
+@pytest.mark.parametrize("layers,k", [(4, 1), (4, 2), (6, 3)])
+def test_orbit_decides_as_beladys_min_when_every_layer_repeats_its_choice(layers, k):
+    # Belady 1966 (module docstring): every layer chooses the same k experts at every token, so each
+    # resident expert's next use is its layer's next step, and MIN evicts the experts of the layer
+    # that ran most recently (outside the pinned step).  Once every layer has run twice, orbit's
+    # estimate q is the same for every resident expert and its distance term ranks them as MIN does:
+    # the same steady miss rate (its periodic pattern may run in another phase), extra misses only in
+    # the first two tokens (orbit learns the routing) and fewer in the last few (MIN knows the end).
+    T = 300
+    trace = Trace(np.tile(np.arange(k), (T, layers, 1)), meta={"n_experts": 8})  # shared keys: every layer its own
+    plan = replay.shared_plan(trace)
+    token = np.repeat(plan.token, plan.sizes)
+    sizes = list(range(k, layers * k + 1))
+    opt = replay.layer_misses(plan, Optimal, sizes, fast=False)
+    orb = replay.layer_misses(plan, Orbit, sizes, fast=False)
+    lru = replay.layer_misses(plan, LRU, sizes)
+    for c in sizes:
+        steady = [int(np.bincount(token[m[c]], minlength=T)[2 : T - 4].sum()) for m in (opt, orb)]
+        assert abs(steady[0] - steady[1]) <= k, (c, steady)  # within one step's accesses: the phase
+        assert abs(int(orb[c].sum()) - int(opt[c].sum())) <= 2 * layers * k  # the warm-up's extra misses at most
+    for c in sizes[1:-1]:  # k slots: every access misses whatever the rule; L * k: only cold misses
+        assert orb[c].sum() < lru[c].sum()
+
+
+def test_orbit_keeps_the_cyclic_order_of_single_experts_as_min_does():
+    # the textbook cycle of n pages in c frames, one page per layer: MIN (and orbit) hit on c - 1 of
+    # every n - 1 accesses after the start, LRU on none
+    L, c, tokens = 5, 3, 200
+    ex = np.arange(L)[None, :, None].repeat(tokens, 0)  # layer l always chooses expert l
+    trace = Trace(ex, meta={"n_experts": L})
+    opt = _shared_misses(trace, Optimal, [c])[c]
+    assert opt <= _shared_misses(trace, Orbit, [c])[c] <= opt + L  # the first token's extra misses at most
+    assert _shared_misses(trace, LRU, [c])[c] == L * tokens  # LRU evicts exactly the key needed next
+    assert opt < L * tokens * 0.65
+
+
+@settings(max_examples=60, deadline=None)
+@given(trace_params, st.booleans())
+def test_orbit_in_a_shared_pool_never_beats_the_optimum_and_never_evicts_a_pinned_key(params, with_probs):
+    trace = _random_trace(*params, probs=with_probs)
+    L, E, k = trace.n_layers, trace.n_experts, trace.top_k
+    sizes = sorted({k, k + 1, L * k, L * E})
+    assert all(o <= g for o, g in zip(_shared_misses(trace, Optimal, sizes).values(), _shared_misses(trace, Orbit, sizes).values()))
+    plan = replay.shared_plan(trace)
+    res = Residency(k + 1, replay.plan_policy(Orbit, plan))
+    keys = plan.keys.tolist()
+    for _, a, b, served in replay.walk(plan, res):
+        pinned = set(keys[a:b])
+        for _, _, evicted in served:
+            assert evicted is None or evicted not in pinned
+
+
+def test_orbit_victim_is_always_one_of_the_candidates():
+    rng = np.random.default_rng(5)
+    E, L = 6, 3
+    p = Orbit(L * E, shared_experts=E)
+    for key in range(L * E):
+        p.inserted(key, key)
+    for t in range(200):
+        layer = t % L
+        p.routed(layer, sorted(rng.choice(E, 2, replace=False).tolist()), None, t)
+        cand = rng.choice(L * E, int(rng.integers(1, L * E)), replace=False).tolist()
+        assert p.victim(cand, t) in cand
+
+
+def test_orbit_with_one_pool_per_layer_learns_a_repeating_pattern_that_lru_cannot_keep():
+    cycle = [[0, 1], [2, 3], [0, 4], [1, 2]]  # as the markov test: LRU evicts the expert needed next
+    trace = Trace(np.array(cycle * 100).reshape(-1, 1, 2), meta={"n_experts": 5})
+    lru = replay.replay_counts(trace, LRU, [3])[3][0]
+    orb = replay.replay_counts(trace, Orbit, [3], fast=False)[3][0]
+    opt = replay.replay_counts(trace, Optimal, [3])[3][0]
+    assert opt.misses <= orb.misses < lru.misses
+    assert orb.hit_rate > lru.hit_rate + 0.2
+
+
+@pytest.mark.parametrize("shared", [False, True], ids=["per-layer", "shared"])
+def test_orbit_made_without_n_keys_grows_and_decides_as_one_made_with_them(shared):
+    # keys beyond what the policy was made for: its lists grow, and its choices do not change
+    trace = _random_trace(11, 150, 3, 12, 3)
+    plan = replay.shared_plan(trace) if shared else replay.layer_plans(trace)[1]
+    E = plan.shared_experts
+    victims = []
+    for n_keys in (plan.n_keys, 0, 2):
+        res = Residency(5, Orbit(n_keys, E))
+        victims.append([ev for *_, served in replay.walk(plan, res) for _, _, ev in served])
+    assert victims[0] == victims[1] == victims[2]
+    assert any(v is not None for v in victims[0])
+
+
+def test_orbit_tuning_variants_keep_the_class_and_refuse_unknown_parameters():
+    v = Orbit.with_params(beta=0.1, horizon=4)
+    assert issubclass(v, Orbit) and v.beta == 0.1 and v.horizon == 4 and v.gamma == Orbit.gamma
+    assert policies.get("orbit") is Orbit
+    with pytest.raises(TypeError):
+        Orbit.with_params(order=3)
+
+
 # ---------------------------------------------------------------------------- live: exact, and reproduced by replay
 
 
@@ -266,7 +375,7 @@ def resident_reference(small_model):
     return prompt, _generate(small_model, prompt)
 
 
-@pytest.mark.parametrize("evict", ["markov", "lrfu"])
+@pytest.mark.parametrize("evict", ["markov", "lrfu", "orbit"])
 @pytest.mark.parametrize("prefetch", [0, 2], ids=["no-prefetch", "prefetch-2"])
 @pytest.mark.parametrize("split", ["even", "shared"])
 def test_capped_run_with_a_learned_policy_equals_resident_bit_for_bit(small_model, resident_reference, evict, prefetch, split):

@@ -21,7 +21,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import moerun
-from moerun import cli, replay
+from moerun import cli, replay, replay_fast
 from moerun.policies import FIFO, LFU, LRU, Optimal, Policy, grow
 from moerun.sampling import Sampling
 from moerun.trace import Trace, read_trace, write_trace
@@ -115,8 +115,8 @@ def test_fast_paths_give_exactly_the_reference_paths_misses_on_random_traces(par
 def test_vectorised_lru_ranks_do_not_depend_on_the_chunk_size(seed, tokens, experts, k, chunk):
     trace = _random_trace(seed, tokens, 1, experts, k, 0.1 if seed % 2 else 0.0, seed % 4)
     plan = replay.layer_plans(trace)[0].split(k)
-    seen, rank = replay._lru_ranks(plan)
-    seen_c, rank_c = replay._lru_ranks(plan, chunk=chunk)
+    seen, rank = replay_fast._lru_ranks(plan)
+    seen_c, rank_c = replay_fast._lru_ranks(plan, chunk=chunk)
     assert np.array_equal(seen, seen_c)
     assert np.array_equal(rank[seen], rank_c[seen])
     # and they give the reference path's misses
@@ -558,3 +558,36 @@ def test_a_negative_or_unreadable_seed_is_one_line(recorded, capsys, seed):
 def test_lookahead_without_prefetch_is_refused_in_replay_too(recorded, capsys):
     code, err = _replay_exit(capsys, str(recorded[0]), "--lookahead", "2")
     assert code == 2 and "--lookahead has no effect without --prefetch" in err
+
+
+# ---------------------------------------------------------------------------- a pool shared by all layers
+
+
+@pytest.mark.parametrize("evict", ["lru", "orbit"])
+def test_replay_of_a_live_shared_pool_run_reproduces_its_hits_and_misses(bundled, tmp_path, capsys, evict):
+    from moerun.budget import minimum_cap
+
+    with moerun.load(bundled, tokenizer=False) as eng:
+        st_ = eng.store
+        cap = minimum_cap(st_.config, st_.dense_nbytes, st_.expert_nbytes, "shared", st_.codec.scratch_bytes())
+        cap += 2 * st_.config.n_layers * eng.budget.slot  # top_k + 2 * layers slots in all
+    with moerun.load(bundled, mem_cap=cap, split="shared", evict=evict, tokenizer=False) as eng:
+        eng.start_trace()
+        eng.generate(prompt_ids=list(range(3, 12)), max_new=40, sampling=Sampling(temperature=1.0, seed=3))
+        trace = eng.finish_trace()
+        pool = eng.stats["pool"]
+        size = eng.budget.slots[0]
+    path = tmp_path / "live.npz"
+    write_trace(path, trace)
+    doc = _replay_json(capsys, path, "--shared-pool", "--evict", evict, "--slots", str(size), "--no-baselines")
+    assert doc["pool"] == "shared"
+    got = replay.overall(doc["results"], evict)[size]
+    assert pool["misses"] > 0
+    assert (got["accesses"], got["misses"], got["prefill_loads"]) == (pool["accesses"], pool["misses"], pool["prefill_loads"])
+
+
+def test_replay_refuses_a_shared_pool_larger_than_every_expert_in_one_line(recorded, capsys):
+    tr = read_trace(recorded[0])
+    code = cli.main(["replay", str(recorded[0]), "--shared-pool", "--slots", str(tr.n_layers * tr.n_experts + 1)])
+    out, err = capsys.readouterr()
+    assert code == 2 and out == "" and len(err.strip().splitlines()) == 1 and "shared pool" in err

@@ -26,3 +26,9 @@ def test_the_default_set_covers_every_online_policy_at_the_smallest_cap():
     at_smallest = {s.kwargs.get("evict", "lru") for s in settings if s.kwargs.get("mem_cap") == 1000}
     assert at_smallest >= set(policies.names(online_only=True))
     assert {"lrfu", "markov"} <= at_smallest  # the two that plan often recommends
+
+
+def test_the_default_set_has_a_shared_pool_with_its_own_rule_and_with_lru():
+    settings = default_settings(1000, 5000, 100)
+    shared = {s.kwargs.get("evict", "lru") for s in settings if s.kwargs.get("split") == "shared"}
+    assert {"lru", "orbit"} <= shared

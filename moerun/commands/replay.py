@@ -23,7 +23,10 @@ def add_arguments(p) -> None:
         metavar="P,P,...",
         help=f"policies to compare (default {','.join(DEFAULT_POLICIES)}; known: {', '.join(policies.names())})",
     )
-    p.add_argument("--slots", metavar="N,N,...", help="expert slots per layer to try, e.g. 1,2,4 or 1-8 (default: 1 up to the expert count)")
+    p.add_argument("--slots", metavar="N,N,...",
+                   help="expert slots per layer to try, e.g. 1,2,4 or 1-8 (default: 1 up to the expert count); with --shared-pool, "
+                        "sizes of the shared pool (default: 10%%, 25%%, 50%% and all of the experts)")
+    p.add_argument("--shared-pool", action="store_true", help="replay one pool shared by all layers, in the live engine's order")
     p.add_argument("--prefetch", type=int, default=0, metavar="N", help="also simulate prefetch with the trace's top-N guesses per layer (0 = off)")
     p.add_argument("--lookahead", type=int, default=None, metavar="L", help="layers ahead that prefetch guesses for, with --prefetch (default 1)")
     p.add_argument("--expert-bytes", metavar="SIZE", help="bytes of one expert for the bytes-moved figures (default: from the trace)")
@@ -63,12 +66,14 @@ def render(doc: dict, per_layer: bool = False) -> str:
         if tr["prefill_tokens"]
         else "every token as a decode step"
     )
-    lines.append(f"replay: {pre}; {tr['decode_accesses']} counted accesses; each layer's quota starts empty")
+    shared = doc.get("pool") == "shared"
+    where = "one pool shared by all layers starts empty" if shared else "each layer's quota starts empty"
+    lines.append(f"replay: {pre}; {tr['decode_accesses']} counted accesses; {where}")
     if eb is not None:
         lines.append(f"expert size {fmt_bytes(eb)} ({eb} bytes) for the bytes-moved columns")
     lines.append("")
 
-    head = ["hit rate, all layers"] + [f"{c} slot" + ("s" if c != 1 else "") for c in slots]
+    head = ["hit rate, all layers"] + [f"{c} {'shared ' if shared else ''}slot" + ("s" if c != 1 else "") for c in slots]
     rows = []
     for name in doc["policies"]:
         by = overall(doc["results"], name)
@@ -95,7 +100,7 @@ def render(doc: dict, per_layer: bool = False) -> str:
     if per_layer:
         lines.append("")
         layers = sorted({r["layer"] for r in doc["results"] if r["layer"] != "all"})
-        head = ["policy", "slots"] + [f"layer {x}" for x in layers] + ["all"]
+        head = ["policy", "shared slots" if shared else "slots"] + [f"layer {x}" for x in layers] + ["all"]
         rows = []
         for name in doc["policies"]:
             for c in slots:
@@ -103,6 +108,13 @@ def render(doc: dict, per_layer: bool = False) -> str:
                 rows.append([name, str(c)] + [pct(recs[x]["hit_rate"]) for x in layers] + [pct(recs["all"]["hit_rate"])])
         lines.append(table(head, rows, "ll" + "r" * (len(layers) + 1)))
 
+    lines += _render_prefetch(doc, shared)
+    return "\n".join(lines)
+
+
+def _render_prefetch(doc: dict, shared: bool) -> list[str]:
+    """The prefetch recall table and, with --prefetch, the prefetch replay's table."""
+    lines: list[str] = []
     rec = doc.get("prefetch_recall") or []
     if rec:
         lines.append("")
@@ -122,12 +134,12 @@ def render(doc: dict, per_layer: bool = False) -> str:
             "(no link delay), pinned as the live pool pins them"
         )
         unit, factor = _unit(r["bytes_moved"] for r in pf["results"])
-        head = ["policy", "slots", "hit rate", "with prefetch", "prefetched hits", "guess loads", "wasted", f"{unit} moved"]
+        head = ["policy", "shared slots" if shared else "slots", "hit rate", "with prefetch", "prefetched hits", "guess loads", "wasted", f"{unit} moved"]
         rows = []
         for name in doc["policies"]:
             base = overall(doc["results"], name)
             got = overall(pf["results"], name)
-            for c in slots:
+            for c in doc["slots"]:
                 if c not in got:
                     continue
                 g = got[c]
@@ -138,7 +150,7 @@ def render(doc: dict, per_layer: bool = False) -> str:
         skipped = [n for n in doc["policies"] if not getattr(policies.get(n), "online", True)]
         if skipped:
             lines.append(f"({', '.join(skipped)} reads the future and is not simulated with prefetch)")
-    return "\n".join(lines)
+    return lines
 
 
 def run(args) -> int:
@@ -173,6 +185,7 @@ def run(args) -> int:
         prefetch=(args.prefetch, lookahead) if args.prefetch else None,
         baselines=not args.no_baselines,
         fast=not args.generic,
+        shared=args.shared_pool,
         progress=lambda i, n, label: prog.update(i, label),
     )
     prog.close()
