@@ -148,7 +148,7 @@ def add_json(p) -> None:
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout and nothing else there")
 
 
-def parse_slots(text: str | None) -> list[int] | None:
+def parse_slot_list(text: str | None) -> list[int] | None:
     if text is None:
         return None
     try:
@@ -169,7 +169,7 @@ def engine_kwargs(args) -> dict:
         "prefetch": args.prefetch,
         "lookahead": args.lookahead if args.lookahead is not None else 1,
         "prefetch_from": args.prefetch_from or "attention",
-        "slots": parse_slots(args.slots),
+        "slots": parse_slot_list(args.slots),
         "split": "shared" if args.shared_pool else "even",
         "link_speed": args.link_speed,
         "cold": args.cold,

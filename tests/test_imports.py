@@ -21,13 +21,16 @@ PACKAGE = "moerun"
 # the engine never uses them.
 OFFLINE = {
     "moerun.quant", "moerun.quant_card", "moerun.synth", "moerun.probe", "moerun.calibration", "moerun.plan",
-    "moerun.replay", "moerun.timeline", "moerun.plot", "moerun.verify", "moerun.score", "moerun.torch_ref",
+    "moerun.replay", "moerun.replay_plan", "moerun.replay_fast", "moerun.replay_counts", "moerun.replay_prefetch",
+    "moerun.timeline", "moerun.plot", "moerun.verify", "moerun.score", "moerun.torch_ref",
     "moerun.cli", "moerun.commands",
 }
 # What a decode needs: the public package and the modules the engine is made of.
 RUNTIME = ("moerun", "moerun.engine", "moerun.pool", "moerun.store", "moerun.codec", "moerun.packed", "moerun.bitpack",
            "moerun.model", "moerun.sources", "moerun.reader", "moerun.reader_child", "moerun.prefetch",
-           "moerun.budget", "moerun.residency", "moerun.policies", "moerun.modelfile", "moerun.config")
+           "moerun.budget", "moerun.residency", "moerun.policies", "moerun.policies_base", "moerun.policies_markov",
+           "moerun.policies_orbit", "moerun.modelfile", "moerun.config", "moerun.slots", "moerun.guesses",
+           "moerun.link", "moerun.clock", "moerun.routing", "moerun.tokenizer", "moerun.sampling")
 
 
 def module_files() -> dict[str, Path]:

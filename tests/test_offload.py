@@ -1,8 +1,8 @@
 """Offloading as a whole (pool + budget + prefetch + store): it never changes numbers, and the cap is real.
 
-DESIGN invariants 1 (bit-identical logits and tokens under any cap, policy and
-prefetch setting), 2 (the memory cap is real) and 4 (prefetch is advisory and
-its thread stops cleanly).
+docs/architecture.md invariants 1 (bit-identical logits and tokens under any
+cap, policy and prefetch setting), 2 (the memory cap is real) and 4 (prefetch is
+advisory and the reader stops cleanly).
 """
 
 from __future__ import annotations
