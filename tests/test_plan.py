@@ -6,89 +6,19 @@ import json
 
 import numpy as np
 import pytest
+from _planning import US, _costs, _random_trace, _trace  # noqa: F401  (shared with test_timeline)
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from moerun.cli import main
 from moerun.errors import BadInput
-from moerun.plan import Costs, best_split, even_split, hit_curves, load_shape, predict
-from moerun.trace import Trace, write_trace
-
-US = 1e-6
-
-
-def _trace(experts, guesses=None, n_experts=None, prefill=0) -> Trace:
-    e = np.asarray(experts, np.int64)
-    if e.ndim == 1:
-        e = e[:, None, None]
-    meta = {"n_experts": n_experts or int(e.max()) + 1, "prefill_tokens": prefill}
-    g = None if guesses is None else np.asarray(guesses, np.int64)
-    return Trace(e, guesses=g, meta=meta)
-
-
-def _costs(L=1, attn=10, expert=2, head=3, page=100, wait=0) -> Costs:
-    return Costs([attn * US] * L, expert * US, head * US, page * US, "test", wait * US)
-
+from moerun.plan import best_split, even_split, hit_curves, load_shape, predict
+from moerun.trace import write_trace
 
 # ---------------------------------------------------------------------------- hand-computed
 
 
-def test_every_access_a_miss_costs_compute_plus_one_page_in_per_token():
-    # one layer, top-1, one slot, alternating experts: every access misses.
-    # per token: attention 10 + page-in 100 + expert 2 + head 3 = 115 us (worked by hand)
-    p = predict(_trace([0, 1, 0, 1]), [1], "lru", 0, 1, _costs())
-    assert p.misses == 4 and p.accesses == 4
-    assert p.step_s == pytest.approx(115 * US)
-    assert p.tok_s == pytest.approx(1 / (115 * US))
-    assert p.stall_s == pytest.approx(100 * US)
-
-
-def test_two_slots_pay_only_the_first_two_page_ins():
-    # slots 2: misses on the first 0 and the first 1 only: (4 * 15 + 2 * 100) / 4 = 65 us per token
-    p = predict(_trace([0, 1, 0, 1]), [2], "lru", 0, 1, _costs())
-    assert p.misses == 2
-    assert p.step_s == pytest.approx(65 * US)
-
-
-def test_a_blocking_wait_adds_the_measured_wake_up_cost():
-    # as the first case, plus 7 us for each blocking read: 122 us per token
-    p = predict(_trace([0, 1, 0, 1]), [1], "lru", 0, 1, _costs(wait=7))
-    assert p.step_s == pytest.approx(122 * US)
-
-
-def test_prefill_tokens_warm_the_pool_and_are_not_timed():
-    # the first token is a prefill: it loads expert 0 without being timed; then 0, 0, 0 all hit
-    p = predict(_trace([0, 0, 0, 0], prefill=1), [1], "lru", 0, 1, _costs())
-    assert p.accesses == 3 and p.misses == 0
-    assert p.step_s == pytest.approx(15 * US)
-
-
-def test_perfect_guesses_faster_than_the_window_hide_every_page_in():
-    # Two layers, top-1, one slot each.  Layer 1 uses 0, 1, 0, 1 ...; layer 0 always uses 5 and
-    # guesses layer 1 perfectly at its prefetch point.  The page-in (5 us) is shorter than what
-    # follows the prefetch point before layer 1 routes (layer 0's expert 2 + layer 1's attention 10),
-    # so after the first token nothing waits: per token 2 * (10 + 2) + 3 = 27 us.  The first token
-    # also waits 5 us at layer 0 for its own demand read, which goes to the reader before the
-    # guess for layer 1 (the prefetch point follows the layer's routing).
-    n = 8
-    experts = np.zeros((n, 2, 1), np.int64)
-    experts[:, 0, 0] = 5
-    experts[:, 1, 0] = np.arange(n) % 2
-    guesses = np.full((n, 2, 1, 1), -1, np.int64)
-    guesses[:, 0, 0, 0] = experts[:, 1, 0]
-    trace = Trace(experts, guesses=guesses, meta={"n_experts": 6, "prefill_tokens": 0})
-    p = predict(trace, [1, 1], "lru", 1, 1, _costs(L=2, page=5))
-    assert p.misses == 1  # layer 0's first access only
-    assert p.prefetch_loads == n
-    assert p.step_s == pytest.approx(27 * US + 5 * US / n)
-
-
 # ---------------------------------------------------------------------------- properties
-
-
-def _random_trace(rng, tokens=120, layers=3, experts=8, k=2):
-    ex = np.stack([np.sort(rng.choice(experts, (k,), replace=False)) for _ in range(tokens * layers)]).reshape(tokens, layers, k)
-    return Trace(ex.astype(np.int64), meta={"n_experts": experts, "prefill_tokens": 0})
 
 
 @settings(max_examples=15, deadline=None)
@@ -209,40 +139,6 @@ def test_target_answers_the_smallest_cap_whose_plan_reaches_it(tmp_path, capsys)
 # ---------------------------------------------------------------------------- hostile inputs: cache, shape and probe files
 
 
-def test_calibration_goes_to_the_tests_temporary_cache_never_the_users(private_cache_dir):
-    from pathlib import Path
-
-    from moerun.calibration import cache_dir
-
-    assert private_cache_dir in cache_dir().parents
-    assert Path.home() / ".cache" not in [cache_dir(), *cache_dir().parents]
-
-
-@pytest.mark.parametrize("damage", ["negative", "infinite as a string", "wrong layer count", "missing figure", "not an object"])
-def test_a_calibration_cache_that_parses_but_holds_wrong_values_is_measured_again(small_model, damage):
-    from moerun.calibration import SCHEMA, cache_dir, calibrate, model_key
-
-    first = calibrate(small_model)
-    path = cache_dir() / f"calibration-{model_key(small_model)}.json"
-    assert path.is_file()
-    doc = json.loads(path.read_text())
-    if damage == "negative":
-        doc["attn_s"][0] = -1.0
-    elif damage == "infinite as a string":
-        doc["expert_s"] = "inf"
-    elif damage == "wrong layer count":
-        doc["attn_s"] = doc["attn_s"][:1]
-    elif damage == "missing figure":
-        del doc["head_s"]
-    else:
-        doc = [SCHEMA]
-    path.write_text(json.dumps(doc))
-    again = calibrate(small_model)
-    assert "cached" not in again  # measured, not read
-    assert len(again["attn_s"]) == len(first["attn_s"]) and min(again["attn_s"]) >= 0 and again["expert_s"] > 0
-    assert json.loads(path.read_text())["attn_s"] == again["attn_s"]  # and the cache repaired
-
-
 @pytest.mark.parametrize(("text", "phrase"), [
     ("[" * 100_000 + "]" * 100_000, "nested too deeply"),
     ('{"layers": 1' + "0" * 5000 + "}", "not a JSON document"),  # past Python's 4300-digit limit
@@ -316,63 +212,6 @@ def test_a_trace_without_guesses_is_a_bad_trace_in_plan_and_replay_alike():
 
 
 # ---------------------------------------------------------------------------- costs the planner charges
-
-
-def test_the_stored_formats_decoding_enters_every_expert_of_the_step():
-    # one layer, top-1, every access a hit after the first: per token attention 10 + expert 2 (+ decoding) + head 3
-    from moerun.calibration import costs_from_shape
-
-    shape = {"layers": 1, "experts": 2, "top_k": 1, "expert_bytes": 1, "dense_bytes": 0, "expert_us": 2, "dense_layer_us": 10,
-             "head_us": 3}
-    trace = _trace([0, 0, 0, 0], prefill=1)
-    plain = predict(trace, [1], "lru", 0, 1, costs_from_shape(shape, 100 * US, "test"))
-    decoded = predict(trace, [1], "lru", 0, 1, costs_from_shape({**shape, "decode_us": 7}, 100 * US, "test"))
-    assert plain.step_s == pytest.approx(15 * US)
-    assert decoded.step_s == pytest.approx(22 * US)  # 7 us more per expert, one expert per token
-
-
-def test_prefetch_off_is_the_same_prediction_step_by_step_and_summed():
-    # the additive path (per-layer miss counts) and the step-by-step simulation are one time model
-    from moerun import timeline
-
-    rng = np.random.default_rng(3)
-    trace = _random_trace(rng, tokens=200, layers=3, experts=8, k=2)
-    costs = Costs([30 * US] * 3, 4 * US, 9 * US, 80 * US, "test", 3 * US, copy=5 * US)
-    for slots in ([2, 2, 2], [3, 4, 5], [8, 8, 8]):
-        a = predict(trace, slots, "lru", 0, 1, costs)
-        b = timeline._simulate(trace, slots, "lru", 0, 1, costs, False, 10**9)
-        assert (a.misses, a.accesses) == (b.misses, b.accesses)
-        # (the simulated link keeps whole nanoseconds: a few ns of rounding over the run)
-        assert a.step_s == pytest.approx(b.step_s, rel=1e-6) and a.stall_s == pytest.approx(b.stall_s, rel=1e-6)
-
-
-def test_a_calibration_with_flags_is_shown_as_not_trusted_with_its_age():
-    import time
-
-    from moerun.calibration import describe
-
-    cal = {"created_unix": time.time() - 3 * 3600, "created": "then", "host": "h", "step_spread": 0.21, "step_runs": 9,
-           "flags": ["noisy: the best resident decodes differed by 21%"]}
-    text = describe(cal)
-    assert "3 h old" in text and "21.0%" in text and "NOT TRUSTED" in text and "--recalibrate" in text
-    assert "NOT TRUSTED" not in describe({**cal, "flags": []})
-
-
-def test_a_calibration_taken_beside_a_busy_process_is_flagged(small_model):
-    import subprocess
-    import sys
-
-    from moerun.calibration import measure
-
-    busy = [subprocess.Popen([sys.executable, "-c", "while True: pass"]) for _ in range(2)]
-    try:
-        doc = measure(small_model, tokens=24)
-    finally:
-        for p in busy:
-            p.kill()
-            p.wait()
-    assert any("other work ran" in f for f in doc["flags"])
-    assert doc["others_cpu_s"] > 0 and doc["policy_s"].keys() >= {"markov", "lrfu"}
 
 
 def test_bad_inputs_are_refused_before_any_calibration(small_model, tmp_path, capsys):
