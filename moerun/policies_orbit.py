@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+from array import array
 from collections import deque
 
 from .policies_base import LN2, Policy, grow
@@ -152,14 +153,14 @@ class Orbit(Policy):
         decisions, rows, total, inc = self.decisions[layer], self.rows[layer], self.total[layer], self.inc[layer]
         if decisions[b] != decision:  # a new decision, or another one in its bucket: it starts empty
             decisions[b] = decision
-            rows[b] = [0.0] * E
+            rows[b] = array("d", bytes(8 * E))  # doubles packed: a quarter of a list of floats' memory
             total[b] = 0.0
             inc[b] = 1.0
         else:  # earlier follow-ups weigh ``memory`` times less from now on
             inc[b] /= self.memory
             if inc[b] > 1e200:
                 f = 1.0 / inc[b]
-                rows[b] = [v * f for v in rows[b]]
+                rows[b] = array("d", [v * f for v in rows[b]])
                 total[b] *= f
                 inc[b] = 1.0
         # this step is the follow-up of the layer's last ``horizon`` decisions
@@ -195,7 +196,7 @@ class Orbit(Policy):
         for rows in self.rows:
             for i, row in enumerate(rows):
                 if row is not None:
-                    rows[i] = row + [0.0] * (E - len(row))
+                    rows[i] = row + array("d", bytes(8 * (E - len(row))))
         for seen in self.seen:
             seen.extend([0] * (E - len(seen)))
         self.E = E
