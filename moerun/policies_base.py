@@ -210,10 +210,11 @@ class LRFU(Policy):
         return self._add
 
     def inserted(self, key, now):
+        add = self._weight(now)  # first: it may rescale (and replace) the counts
         count = self.count
         if key >= len(count):
             grow(count, key, 0.0)
-        count[key] += self._weight(now)
+        count[key] += add
 
     hit = inserted
 

@@ -34,7 +34,7 @@ class Orbit(Policy):
     shrinks by one step, which changes no ranking), so ``routed`` rescores the layer's resident
     experts, an access rescores the accessed key, and a victim is one ``min`` over a list.  State:
     plain lists indexed by key, per layer a direct-mapped table of ``2 ** table_bits`` decisions
-    with one row of follow-up weights each (``n_experts`` floats).
+    with one row of follow-up weights each (``n_experts`` doubles, packed).
 
     With one pool per layer (keys are expert ids, ``shared_experts`` 0) the distance is the same
     for every key and the rule is the routing model with the frequency term.  Without ``routed``
@@ -130,11 +130,12 @@ class Orbit(Policy):
         return self._add
 
     def _touch(self, key: int, now: int) -> None:
+        add = self._weight(now)  # first: it may rescale (and replace) the counts
         count = self.count
         if key >= len(count):
             for values in (count, self.score, self.qpart, self.freq):
                 grow(values, key, 0.0)
-        count[key] += self._weight(now)
+        count[key] += add
         fr = self.freq[key] = self.w * (math.log(count[key]) + self.shift)
         self.score[key] = self.qpart[key] + fr
 

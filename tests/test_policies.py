@@ -18,6 +18,7 @@ Textbook sources:
 from __future__ import annotations
 
 import json
+import math
 
 import numpy as np
 import pytest
@@ -487,3 +488,25 @@ def test_shuffled_baseline_moves_each_tokens_probabilities_with_its_experts():
 def test_builtin_policies_ignore_routing_signals():
     for cls in (LRU, LFU, FIFO):
         assert cls.routed is Policy.routed
+
+
+def test_lrfu_and_orbit_keep_the_access_that_triggers_their_rescaling():
+    # LRFU's combined recency-frequency value of a key is sum over its accesses t of (1/2) ** (lam * (now - t))
+    # (Lee et al., "LRFU: a spectrum of policies that subsumes LRU and LFU", IEEE Trans. Computers 50(12), 2001).
+    # With lam 1 the kept factor 2 ** (lam * (now - origin)) is rescaled at the 513th tick; the access made at
+    # that tick weighs most of all (1 of about 2 in total) and must not be lost to the rescaling.
+    from moerun.policies import LRFU, Orbit
+
+    now = 513
+    expected_log2 = math.log2(sum(0.5 ** (now - t) for t in range(now + 1)))
+    lrfu = type("LRFU1", (LRFU,), {"lam": 1.0})(4)
+    lrfu.inserted(0, 0)
+    for t in range(1, now + 1):
+        lrfu.hit(0, t)
+    assert lrfu.log_crf(0, now) == pytest.approx(expected_log2, abs=1e-9)
+    orbit = Orbit.with_params(lam=1.0, w=1.0)(4)
+    orbit.inserted(0, 0)
+    for t in range(1, now + 1):
+        orbit.hit(0, t)
+    # orbit keeps w * ln of the same value, times the factor 2 ** (lam * now) common to every key
+    assert orbit.freq[0] == pytest.approx((expected_log2 + now) * math.log(2), abs=1e-9)
