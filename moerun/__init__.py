@@ -8,13 +8,14 @@ import os as _os
 for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
     _os.environ.setdefault(_var, "1")
 
-from .engine import Engine, Generation, default_model_dir, load  # noqa: E402
-from .errors import BadInput, BadModelFile, BadOption, BadTrace, ImpossibleBudget, MoerunError  # noqa: E402
-from .sampling import Sampling  # noqa: E402
+from moerun.errors import BadInput, BadModelFile, BadOption, BadTrace, ImpossibleBudget, MoerunError  # noqa: E402
+from moerun.model.sampling import Sampling  # noqa: E402
+from moerun.runtime.engine import Engine, Generation, default_model_dir, load  # noqa: E402
 
-__version__ = "0.1.0"
+from ._version import __version__  # noqa: E402
 
 __all__ = [
+    "__version__",
     "BadInput",
     "BadModelFile",
     "BadOption",

@@ -1,7 +1,7 @@
 """User-facing error families.
 
 Library code raises one of these with a message written for the person at the
-keyboard; ``moerun.cli`` turns any of them into one line on stderr and exit 2.
+keyboard; ``moerun.cli.main`` turns any of them into one line on stderr and exit 2.
 """
 
 from __future__ import annotations

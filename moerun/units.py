@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import re
 
-from .errors import BadOption
+from moerun.errors import BadOption
 
 _SIZE_UNITS = {
     "": 1,

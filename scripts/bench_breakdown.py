@@ -29,12 +29,12 @@ import _bench
 
 import moerun
 from moerun import policies
-from moerun.budget import fixed_bytes, slot_bytes
-from moerun.pool import ExpertPool
-from moerun.prefetch import GuessRule
-from moerun.reader import Reader
-from moerun.residency import Residency
-from moerun.sampling import Sampling
+from moerun.model.sampling import Sampling
+from moerun.runtime.budget import fixed_bytes, slot_bytes
+from moerun.runtime.pool import ExpertPool
+from moerun.runtime.prefetch import GuessRule
+from moerun.runtime.reader import Reader
+from moerun.runtime.residency import Residency
 
 PARTS = ("compute", "guess", "placement", "policy", "pool", "hand-over", "wait")
 

@@ -17,7 +17,7 @@ import time
 import _bench
 
 import moerun
-from moerun.sampling import Sampling
+from moerun.model.sampling import Sampling
 
 
 def active_bytes_per_token(store) -> int:
@@ -50,7 +50,7 @@ def numpy_decode(model, prompt_ids, n, repeats, **kw):
 def torch_decode(model, prompt_ids, n, repeats):
     import torch
 
-    from moerun.torch_ref import TorchMoE
+    from moerun.checks.torch_twin import TorchMoE
 
     torch.set_num_threads(1)
     tm = TorchMoE.from_model_dir(model)

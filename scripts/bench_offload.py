@@ -31,8 +31,8 @@ import json
 import _bench  # noqa: F401  (pins BLAS to one thread)
 
 import moerun
-from moerun.budget import fixed_bytes, slot_bytes
-from moerun.sampling import Sampling
+from moerun.model.sampling import Sampling
+from moerun.runtime.budget import fixed_bytes, slot_bytes
 from moerun.units import fmt_bytes, parse_rate
 
 

@@ -23,8 +23,8 @@ import numpy as np
 import psutil
 
 import moerun
-from moerun.sources import aligned_block
-from moerun.store import ModelStore
+from moerun.files.store import ModelStore
+from moerun.runtime.sources import aligned_block
 
 
 def run(store: ModelStore, mechanism: str, rounds: int) -> dict:

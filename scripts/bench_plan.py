@@ -31,11 +31,11 @@ from pathlib import Path
 import _bench
 
 import moerun
-from moerun.budget import fixed_bytes, slot_bytes
-from moerun.calibration import calibrate, costs_from_calibration, describe, page_seconds
-from moerun.probe import load_probe
-from moerun.sampling import Sampling
-from moerun.timeline import predict
+from moerun.model.sampling import Sampling
+from moerun.planner.calibration import calibrate, costs_from_calibration, describe, page_seconds
+from moerun.planner.timeline import predict
+from moerun.prober.pagein import load_probe
+from moerun.runtime.budget import fixed_bytes, slot_bytes
 from moerun.units import parse_rate
 
 

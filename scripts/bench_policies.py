@@ -1,5 +1,5 @@
 #!/usr/bin/env python3
-"""What an eviction policy costs per expert access in the live pool (moerun/pool.py), measured.
+"""What an eviction policy costs per expert access in the live pool (moerun/runtime/pool.py), measured.
 
 The pool is driven with the routing of a recorded trace exactly as the model drives it
 (begin_layer, routed, compute_order, weights, end_layer per layer and decode token), with
@@ -20,12 +20,13 @@ import _bench  # noqa: F401  (pins BLAS to one thread)
 import numpy as np
 
 import moerun
-from moerun import policies, replay
-from moerun.budget import fixed_bytes, plan_budget, slot_bytes
-from moerun.pool import ExpertPool
-from moerun.sampling import Sampling
-from moerun.store import ModelStore
-from moerun.trace import read_trace
+from moerun import policies
+from moerun.files.store import ModelStore
+from moerun.files.trace import read_trace
+from moerun.model.sampling import Sampling
+from moerun.runtime.budget import fixed_bytes, plan_budget, slot_bytes
+from moerun.runtime.pool import ExpertPool
+from moerun.sim import report as replay
 
 
 class NoBookkeeping:

@@ -2,7 +2,7 @@
 """How much could any guess rule buy?  The planner on the router's guesses and on exact ones.
 
 Records the routing of a few sampled generations on the model (fully resident: offloading never
-changes routing), then predicts decode tok/s with the planner (``moerun.plan.predict``: the live
+changes routing), then predicts decode tok/s with the planner (``moerun.planner.search.predict``: the live
 pool's residency and policy code, compute times calibrated on this machine) at one cap and one
 emulated link, for:
 
@@ -25,10 +25,10 @@ import _bench
 import numpy as np
 
 import moerun
-from moerun.budget import fixed_bytes, slot_bytes
-from moerun.plan import calibrate, costs_from_calibration, predict
-from moerun.sampling import Sampling
-from moerun.trace import Trace
+from moerun.files.trace import Trace
+from moerun.model.sampling import Sampling
+from moerun.planner.search import calibrate, costs_from_calibration, predict
+from moerun.runtime.budget import fixed_bytes, slot_bytes
 from moerun.units import parse_rate, parse_size
 
 

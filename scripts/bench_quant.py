@@ -5,7 +5,7 @@ For expert bits {8, 4, 3, 2} x attention {16 (float16), 8, 4} x method {rtn, hqq
 (group 64) the source model is quantized into a temporary directory, then:
 
 * file size and bytes per expert;
-* held-out perplexity with ``moerun score``'s rule (moerun.score.score_text on
+* held-out perplexity with ``moerun score``'s rule (moerun.checks.score.score_text on
   the model's heldout.txt, all of it unless --score-tokens);
 * decode tok/s, greedy, same prompt, at a fixed memory cap: the model's own
   fixed parts (dense weights + KV cache + scratch, codec scratch included)
@@ -54,16 +54,16 @@ except ImportError:
     BLAS_NOTE = "1 thread (OPENBLAS/OMP/MKL_NUM_THREADS=1 set before numpy import; threadpoolctl not installed)"
 
 import moerun  # noqa: E402
-from moerun.budget import fixed_bytes, slot_bytes  # noqa: E402
-from moerun.codec import QuantCodec  # noqa: E402
-from moerun.engine import default_model_dir  # noqa: E402
-from moerun.model import expert  # noqa: E402
-from moerun.packed import QuantSpec  # noqa: E402
-from moerun.quant import quantize_model  # noqa: E402
-from moerun.report import table  # noqa: E402
-from moerun.sampling import Sampling  # noqa: E402
-from moerun.score import score_text  # noqa: E402
-from moerun.tokenizer import read_text_file  # noqa: E402
+from moerun.checks.score import score_text  # noqa: E402
+from moerun.cli.report import table  # noqa: E402
+from moerun.files.codec import QuantCodec  # noqa: E402
+from moerun.files.packed import QuantSpec  # noqa: E402
+from moerun.makers.quantize import quantize_model  # noqa: E402
+from moerun.model.sampling import Sampling  # noqa: E402
+from moerun.model.tokenizer import read_text_file  # noqa: E402
+from moerun.model.transformer import expert  # noqa: E402
+from moerun.runtime.budget import fixed_bytes, slot_bytes  # noqa: E402
+from moerun.runtime.engine import default_model_dir  # noqa: E402
 from moerun.units import fmt_bytes, parse_rate  # noqa: E402
 
 START, END = "<!-- bench_quant:start -->", "<!-- bench_quant:end -->"
@@ -324,7 +324,7 @@ def main() -> int:
 
 
 def write_docs(doc: dict, t1: str, t2: str) -> None:
-    from moerun.fileio import write_text_atomic
+    from moerun.files.fileio import write_text_atomic
 
     write_text_atomic(ROOT / "moerun" / "data" / "quant_bench.json", json.dumps(doc, indent=2) + "\n")
     path = ROOT / "docs" / "quant.md"

@@ -34,8 +34,9 @@ from pathlib import Path
 import _bench  # noqa: F401  (one BLAS thread, repo on sys.path)
 import numpy as np
 
-from moerun import cli, replay
-from moerun.trace import Trace, read_trace
+from moerun.cli import main as cli
+from moerun.files.trace import Trace, read_trace
+from moerun.sim import report as replay
 
 
 def ordered_dict_lru(experts: np.ndarray, slots: int) -> tuple[int, int]:

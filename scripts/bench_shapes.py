@@ -40,11 +40,12 @@ import numpy as np
 from bench_offload import SESSION_PROMPTS, session
 
 import moerun
-from moerun import cli, policies
-from moerun.budget import fixed_bytes, slot_bytes
-from moerun.replay_counts import replay_counts, shuffled_trace
-from moerun.report import pct, table
-from moerun.trace import Trace, read_trace
+from moerun import policies
+from moerun.cli import main as cli
+from moerun.cli.report import pct, table
+from moerun.files.trace import Trace, read_trace
+from moerun.runtime.budget import fixed_bytes, slot_bytes
+from moerun.sim.counts import replay_counts, shuffled_trace
 
 ROOT = Path(__file__).resolve().parent.parent
 MODELS = ("pebble", "scree")

@@ -46,7 +46,7 @@ from tokenizers import Tokenizer, decoders, models, pre_tokenizers, trainers
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from moerun.torch_ref import TorchMoE  # noqa: E402  (after the sys.path insert above)
+from moerun.checks.torch_twin import TorchMoE  # noqa: E402  (after the sys.path insert above)
 
 DOC = "<doc>"
 BUNDLED = ROOT / "tiny_models"
@@ -331,15 +331,15 @@ def main() -> None:
     tensors = model.state_to_numpy()
     meta = {"format": "moerun/1", "name": cfg["name"], "torch_version": torch.__version__}
     try:
-        from moerun.modelfile import save_model_file
+        from moerun.files.modelfile import save_model_file
         save_model_file(out / "model.safetensors", tensors, metadata=meta)
-        writer = "moerun.modelfile.save_model_file"
+        writer = "moerun.files.modelfile.save_model_file"
     except ImportError:
         from safetensors.numpy import save_file
         tmp = out / ".model.safetensors.tmp"
         save_file(tensors, str(tmp), metadata=meta)
         os.replace(tmp, out / "model.safetensors")
-        writer = "safetensors.numpy.save_file (moerun.modelfile not available)"
+        writer = "safetensors.numpy.save_file (moerun.files.modelfile not available)"
     os.chmod(out / "model.safetensors", 0o644)
     log(f"model.safetensors written with {writer}")
     tmp = out / ".tokenizer.json.tmp"
@@ -602,7 +602,7 @@ perplexity is its exp.
 | model.safetensors | F32 weights, tensor names of the model spec (docs/architecture.md) |
 | tokenizer.json | the byte-level BPE tokenizer |
 | heldout.txt | {slice_kb:.0f} KB of whole held-out documents (never trained on) for scoring |
-| reference.npz | `token_ids` int64 [3, 64] (three held-out windows, each starting at a document start, token 0), `logits` float32 [3, 64, {cfg['vocab_size']}] from the PyTorch reference in float32 (`moerun/torch_ref.py`), `torch_version` |
+| reference.npz | `token_ids` int64 [3, 64] (three held-out windows, each starting at a document start, token 0), `logits` float32 [3, 64, {cfg['vocab_size']}] from the PyTorch reference in float32 (`moerun/checks/torch_twin.py`), `torch_version` |
 | CARD.md | this card |
 
 ## Samples

@@ -26,7 +26,7 @@ The protocol, end to end (docs/policy_research.md has the results and the reason
    random order), for the tuning trace, the test trace and the generation traces (summed over
    traces, each replayed from an empty pool).
 
-Replays use moerun.replay's reference path (Residency + policy objects, exactly the live pool's
+Replays use moerun.sim.report's reference path (Residency + policy objects, exactly the live pool's
 code) for the policy and the fast paths for LRU and the optimum.  Traces are cached in ``--work``
 (default: a directory under the system temp dir) and reused when present.
 
@@ -52,11 +52,12 @@ import _bench  # noqa: F401  (one BLAS thread, repo on sys.path)
 import numpy as np
 from bench_offload import SESSION_PROMPTS
 
-from moerun import cli, replay
-from moerun.engine import default_model_dir
+from moerun.cli import main as cli
+from moerun.cli.report import pct, table
+from moerun.files.trace import Trace, read_trace
 from moerun.policies import LRU, Markov, Optimal, Orbit
-from moerun.report import pct, table
-from moerun.trace import Trace, read_trace
+from moerun.runtime.engine import default_model_dir
+from moerun.sim import report as replay
 
 ROOT = Path(__file__).resolve().parent.parent
 CORPUS_TRAIN = ROOT / "data" / "corpus" / "train.txt"

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from moerun.plan import Costs
-from moerun.trace import Trace
+from moerun.files.trace import Trace
+from moerun.planner.search import Costs
 
 US = 1e-6
 

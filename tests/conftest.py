@@ -26,7 +26,7 @@ if str(ROOT) not in sys.path:
 
 import pytest  # noqa: E402
 
-from moerun.synth import synth_config, write_model  # noqa: E402
+from moerun.makers.synthetic import synth_config, write_model  # noqa: E402
 
 PEBBLE = ROOT / "tiny_models" / "pebble"
 SCREE = ROOT / "tiny_models" / "scree"  # many small experts and a shared one (its CARD.md)
@@ -40,7 +40,7 @@ BUNDLED = {"pebble": PEBBLE, "scree": SCREE}
 def private_cache_dir(tmp_path_factory):
     """Every test (and every process a test starts) caches into a temporary directory, never the user's own.
 
-    moerun caches calibration files under $XDG_CACHE_HOME/moerun (moerun.plan); the variable is set for the
+    moerun caches calibration files under $XDG_CACHE_HOME/moerun (moerun.planner.search); the variable is set for the
     whole session so child processes inherit it.
     """
     cache = tmp_path_factory.mktemp("cache")
@@ -146,7 +146,7 @@ def edit_config(model_dir: Path, edit) -> None:
 
 
 def reader_processes() -> list:
-    """Prefetch reader processes (moerun/reader_child.py) this test process has running."""
+    """Prefetch reader processes (moerun/runtime/_reader_child.py) this test process has running."""
     import psutil
 
     out = []
@@ -198,9 +198,9 @@ def tmpfs(where: Path, size: str = "64k", read_only: bool = False):
 def every_guess_read(monkeypatch):
     """Guesses are read whatever they would cost: the prefetch machinery runs on any model and link.
 
-    The pool normally reads a guess only if it pays (moerun.pool.ExpertPool.place_ns); on the tiny
+    The pool normally reads a guess only if it pays (moerun.runtime.pool.ExpertPool.place_ns); on the tiny
     test models and fast links few would, and tests of what guesses must never break would test little.
     """
-    from moerun.pool import ExpertPool
+    from moerun.runtime.pool import ExpertPool
 
     monkeypatch.setattr(ExpertPool, "place_ns", -(10**15))

@@ -38,13 +38,13 @@ import pytest
 from conftest import ROOT, copy_model, edit_config, reader_processes
 
 import moerun
-from moerun import cli
-from moerun.budget import minimum_cap
+from moerun.cli import main as cli
 from moerun.errors import BadOption, PageInError
-from moerun.modelfile import read_header
-from moerun.sampling import Sampling
-from moerun.synth import synth_config, write_model
-from moerun.trace import read_trace
+from moerun.files.modelfile import read_header
+from moerun.files.trace import read_trace
+from moerun.makers.synthetic import synth_config, write_model
+from moerun.model.sampling import Sampling
+from moerun.runtime.budget import minimum_cap
 
 pytestmark = pytest.mark.usefixtures("every_guess_read")  # the prefetch machinery runs whatever guesses cost
 
@@ -395,7 +395,7 @@ def _main(argv) -> int:
 
 def _cli_generate(monkeypatch, model_dir, trace_path, cap, setup=None, extra=()):
     """Run `moerun generate --json --trace` in this process, with ``setup(engine)`` applied after loading."""
-    import moerun.commands.generate as generate_cmd
+    import moerun.cli.commands.generate as generate_cmd
 
     real_load = generate_cmd.load
 
@@ -537,7 +537,7 @@ def test_inspect_check_of_a_file_without_digests_says_so_and_exits_1(model, tmp_
     # verified, and --check reports that as a failed check (exit 1) rather than a pass
     from safetensors.numpy import save_file
 
-    from moerun.store import ModelStore
+    from moerun.files.store import ModelStore
 
     d = copy_model(model, tmp_path / "m")
     store = ModelStore.open(d)

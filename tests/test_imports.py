@@ -17,20 +17,19 @@ import moerun
 ROOT = Path(moerun.__file__).resolve().parent
 PACKAGE = "moerun"
 
-# The offline tools: they make, score, measure or study models and traces, and may use the engine;
-# the engine never uses them.
-OFFLINE = {
-    "moerun.quant", "moerun.quant_card", "moerun.synth", "moerun.probe", "moerun.calibration", "moerun.plan",
-    "moerun.replay", "moerun.replay_plan", "moerun.replay_fast", "moerun.replay_counts", "moerun.replay_prefetch",
-    "moerun.timeline", "moerun.plot", "moerun.verify", "moerun.score", "moerun.torch_ref",
-    "moerun.cli", "moerun.commands",
-}
-# What a decode needs: the public package and the modules the engine is made of.
-RUNTIME = ("moerun", "moerun.engine", "moerun.pool", "moerun.store", "moerun.codec", "moerun.packed", "moerun.bitpack",
-           "moerun.model", "moerun.sources", "moerun.reader", "moerun.reader_child", "moerun.prefetch",
-           "moerun.budget", "moerun.residency", "moerun.policies", "moerun.policies_base", "moerun.policies_markov",
-           "moerun.policies_orbit", "moerun.modelfile", "moerun.config", "moerun.slots", "moerun.guesses",
-           "moerun.link", "moerun.clock", "moerun.routing", "moerun.tokenizer", "moerun.sampling")
+# The layering, as rules over directories (docs/architecture.md, section 1).  What a decode needs:
+RUNTIME = ("moerun.model", "moerun.files", "moerun.runtime", "moerun.policies")
+# Shared leaves every layer may use.
+LEAVES = ("moerun.errors", "moerun.units", "moerun._version")
+# The offline tools: they make, score, measure or study models and traces, and may use the runtime;
+# the runtime never uses them.
+OFFLINE = ("moerun.sim", "moerun.planner", "moerun.prober", "moerun.makers", "moerun.checks", "moerun.api")
+# The command line: parses, calls the library, renders; nothing else imports it.
+CLI = ("moerun.cli", "moerun.__main__")
+
+
+def _under(name: str, roots) -> bool:
+    return any(name == r or name.startswith(r + ".") for r in roots)
 
 
 def module_files() -> dict[str, Path]:
@@ -108,10 +107,6 @@ def reachable(graph: dict[str, set[str]], start: str) -> dict[str, str]:
     return via
 
 
-def _is_offline(name: str) -> bool:
-    return any(name == m or name.startswith(m + ".") for m in OFFLINE)
-
-
 def _chain(via: dict[str, str], end: str) -> str:
     out = [end]
     while via[out[-1]]:
@@ -122,18 +117,18 @@ def _chain(via: dict[str, str], end: str) -> str:
 def test_the_parser_sees_imports_inside_functions_relative_and_absolute(tmp_path):
     # the checker itself, on a file made for it: every kind of import statement is an edge
     src = (
-        "import moerun.store\n"
-        "from moerun.codec import Codec\n"
-        "from . import policies\n"
-        "from .units import fmt_bytes\n"
+        "import moerun.files.store\n"
+        "from moerun.files.codec import Codec\n"
+        "from .. import policies\n"
+        "from ..units import fmt_bytes\n"
         "def f():\n"
-        "    from .quant import quantize_model\n"
-        "    from . import __version__\n"
+        "    from ..makers.quantize import quantize_model\n"
+        "    from .. import __version__\n"
     )
-    path = tmp_path / "probe_me.py"
+    path = tmp_path / "probe_me.py"  # as if it were moerun/runtime/probe_me.py
     path.write_text(src)
-    known = {"moerun", "moerun.store", "moerun.codec", "moerun.policies", "moerun.units", "moerun.quant"}
-    got = imported_modules("moerun.probe_me", path, known)
+    known = {"moerun", "moerun.files.store", "moerun.files.codec", "moerun.policies", "moerun.units", "moerun.makers.quantize"}
+    got = imported_modules("moerun.runtime.probe_me", path, known)
     assert got == known
     assert find_cycle({"a": {"b"}, "b": {"c"}, "c": {"a"}}) == ["a", "b", "c", "a"]
     assert find_cycle({"a": {"b"}, "b": set(), "c": {"a", "b"}}) is None
@@ -146,10 +141,45 @@ def test_no_module_imports_one_that_imports_it_back():
     assert cycle is None, "import cycle: " + " -> ".join(cycle)
 
 
-def test_run_time_modules_never_reach_the_offline_tools():
+def test_run_time_subpackages_never_reach_the_offline_tools_or_the_command_line():
     graph = import_graph()
-    for name in RUNTIME:
-        assert name in graph, f"{name} is gone: update RUNTIME"
+    runtime = [m for m in graph if _under(m, RUNTIME + LEAVES)]
+    assert len(runtime) > 20, "the run-time subpackages were not found"
+    for name in runtime:
         via = reachable(graph, name)
-        bad = sorted(m for m in via if _is_offline(m))
-        assert not bad, f"{name} reaches offline tools: " + "; ".join(_chain(via, m) for m in bad)
+        bad = sorted(m for m in via if _under(m, OFFLINE + CLI) or m == PACKAGE)
+        assert not bad, f"{name} reaches beyond the runtime: " + "; ".join(_chain(via, m) for m in bad)
+
+
+def test_nothing_outside_the_command_line_imports_it():
+    graph = import_graph()
+    for name, deps in graph.items():
+        if _under(name, CLI):
+            continue
+        bad = sorted(d for d in deps if _under(d, CLI))
+        assert not bad, f"{name} imports the command line: {bad}"
+
+
+def test_no_module_of_the_library_imports_the_top_level_package():
+    # moerun/__init__.py is for users: it gathers the public names, so a module that imported it would
+    # import the whole library (and, for a run-time module, the offline tools)
+    graph = import_graph()
+    bad = sorted(name for name, deps in graph.items() if PACKAGE in deps and not _under(name, CLI))
+    assert not bad, f"these import the top-level package instead of the module that owns the name: {bad}"
+
+
+def test_private_modules_are_imported_only_from_their_own_subpackage():
+    graph = import_graph()
+    for name, deps in graph.items():
+        for dep in deps:
+            parts = dep.split(".")
+            if parts[-1].startswith("_") and not parts[-1].startswith("__") and dep != "moerun._version":
+                home = ".".join(parts[:-1])
+                assert _under(name, (home,)), f"{name} imports {dep}, private to {home}"
+
+
+def test_every_subpackage_declares_its_public_names():
+    for init in sorted(ROOT.rglob("__init__.py")):
+        tree = ast.parse(init.read_text(encoding="utf-8"))
+        names = [t.id for node in tree.body if isinstance(node, ast.Assign) for t in node.targets if isinstance(t, ast.Name)]
+        assert "__all__" in names, f"{init.relative_to(ROOT.parent)} has no __all__"

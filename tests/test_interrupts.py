@@ -1,6 +1,6 @@
 """Ctrl-C: a real SIGINT sent to ``python -m moerun ...`` while a command is busy.
 
-Each interrupted command must (docs/architecture.md, moerun.cli):
+Each interrupted command must (docs/architecture.md, moerun.cli.main):
 
 - exit with code 130 promptly (the requirement is within one second of the signal; the tests allow
   5 s because CI shares two cores with other jobs), printing one "interrupted" line and no traceback;
@@ -38,10 +38,10 @@ import pytest
 from conftest import ROOT
 
 import moerun
-from moerun import cli
-from moerun.budget import minimum_cap
-from moerun.fileio import atomic_path
-from moerun.trace import read_trace
+from moerun.cli import main as cli
+from moerun.files.fileio import atomic_path
+from moerun.files.trace import read_trace
+from moerun.runtime.budget import minimum_cap
 
 pytestmark = pytest.mark.usefixtures("every_guess_read")  # the prefetch machinery runs whatever guesses cost
 
@@ -51,8 +51,8 @@ TMP_PREFIX = ".moerun-tmp-"
 
 
 def _require(command: str) -> None:
-    if command not in cli.COMMANDS or importlib.util.find_spec(f"moerun.commands.{command}") is None:
-        pytest.skip(f"'moerun {command}' does not exist yet (moerun/commands/{command}.py is missing)")
+    if command not in cli.COMMANDS or importlib.util.find_spec(f"moerun.cli.commands.{command}") is None:
+        pytest.skip(f"'moerun {command}' does not exist yet (moerun/cli/commands/{command}.py is missing)")
 
 
 class Running:
@@ -224,7 +224,7 @@ def test_second_ctrl_c_while_stopping_still_leaves_no_temporary_or_half_written_
     run.proc.send_signal(signal.SIGINT)
     time.sleep(0.005)  # an impatient second Ctrl-C, while the first one is being handled
     elapsed = run.interrupt()
-    # the second Ctrl-C is ignored while the first unwinds (moerun.cli.entry); exit 130, or death by
+    # the second Ctrl-C is ignored while the first unwinds (moerun.cli.main.entry); exit 130, or death by
     # SIGINT's default action if it lands after the command returned (a shell shows 130 for both)
     assert run.proc.returncode in (130, -signal.SIGINT), run.stderr_text[-800:]
     assert elapsed < EXIT_BOUND_S
@@ -336,7 +336,7 @@ def _main(argv) -> int:
 
 def test_ctrl_c_during_an_expert_read_exits_130_with_a_partial_trace(synth_models, tmp_path, monkeypatch, capsys):
     # KeyboardInterrupt raised on the compute thread exactly inside a demand read, as SIGINT would
-    import moerun.commands.generate as generate_cmd
+    import moerun.cli.commands.generate as generate_cmd
 
     model = synth_models(layers=3, experts=8, top_k=2)
     with moerun.load(model, tokenizer=False) as eng:
@@ -376,7 +376,7 @@ def test_ctrl_c_while_an_output_is_being_written_leaves_neither_it_nor_a_tempora
 
 
 def test_ctrl_c_while_writing_the_trace_at_the_end_leaves_no_file(synth_models, tmp_path, monkeypatch, capsys):
-    import moerun.trace as trace_mod
+    import moerun.files.trace as trace_mod
 
     def interrupted_savez(f, **arrays):
         f.write(b"PK\x03\x04" + b"\0" * 1000)  # the archive is half written when Ctrl-C lands
@@ -394,7 +394,7 @@ def test_ctrl_c_while_writing_the_trace_at_the_end_leaves_no_file(synth_models, 
 def test_error_raised_inside_a_library_while_ctrl_c_unwinds_still_exits_130(synth_models, tmp_path, monkeypatch, capsys):
     # numpy's savez, interrupted half-way, can raise ValueError ("Can't close the ZIP file while there is an
     # open writing handle") from its clean-up, with the KeyboardInterrupt as its context
-    import moerun.trace as trace_mod
+    import moerun.files.trace as trace_mod
 
     def savez_interrupted_then_failing(f, **arrays):
         try:
@@ -411,7 +411,7 @@ def test_error_raised_inside_a_library_while_ctrl_c_unwinds_still_exits_130(synt
 
 
 def test_error_unrelated_to_an_interrupt_is_not_reported_as_one(synth_models, tmp_path, monkeypatch):
-    import moerun.trace as trace_mod
+    import moerun.files.trace as trace_mod
 
     def savez_failing(f, **arrays):
         raise ValueError("a plain bug")

@@ -22,9 +22,9 @@ from hypothesis import strategies as st
 
 import moerun
 from moerun import policies
-from moerun.budget import minimum_cap
 from moerun.errors import ImpossibleBudget
-from moerun.sampling import Sampling
+from moerun.model.sampling import Sampling
+from moerun.runtime.budget import minimum_cap
 
 pytestmark = pytest.mark.usefixtures("every_guess_read")  # the prefetch machinery runs whatever guesses cost
 
@@ -282,8 +282,8 @@ _RSS_SCRIPT = """
 import gc, json, sys
 import moerun
 from moerun import policies
-from moerun.budget import minimum_cap
-from moerun.sampling import Sampling
+from moerun.runtime.budget import minimum_cap
+from moerun.model.sampling import Sampling
 
 model_dir, mechanism, scenario = sys.argv[1:4]
 resident = moerun.load(model_dir, tokenizer=False)

@@ -30,8 +30,8 @@ import pytest
 
 import moerun
 from moerun import policies
-from moerun.budget import minimum_cap
-from moerun.sampling import Sampling
+from moerun.model.sampling import Sampling
+from moerun.runtime.budget import minimum_cap
 
 pytestmark = pytest.mark.usefixtures("every_guess_read")  # the prefetch machinery runs whatever guesses cost
 

@@ -1,0 +1,105 @@
+"""Exactness check: offloaded runs must compute bit-for-bit what the fully resident model computes.
+
+``verify`` runs the same prompts fully resident and under several memory
+configurations, and compares every logit (as raw bits) and every sampled token.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from moerun import policies
+from moerun.model.sampling import Sampling
+from moerun.runtime.budget import minimum_cap
+from moerun.runtime.engine import load
+
+
+@dataclass
+class Setting:
+    label: str
+    kwargs: dict = field(default_factory=dict)
+
+
+@dataclass
+class Outcome:
+    setting: Setting
+    slots: list[int]
+    logits_equal: bool
+    tokens_equal: bool
+    max_abs_diff: float
+    hit_rate: float | None
+
+    @property
+    def ok(self) -> bool:
+        return self.logits_equal and self.tokens_equal
+
+
+def default_settings(min_cap: int, full_cap: int, slot: int) -> list[Setting]:
+    """The default set: every online policy at the smallest cap (moerun.policies.names), then other caps,
+    a shared pool, prefetch and an emulated link."""
+    mid = (min_cap + full_cap) // 2
+    return [
+        *(Setting(f"smallest cap, {name}", {"mem_cap": min_cap, "evict": name}) for name in policies.names(online_only=True)),
+        Setting("middle cap, lru", {"mem_cap": mid, "evict": "lru"}),
+        Setting("smallest cap, prefetch 2 x 2 layers", {"mem_cap": min_cap, "prefetch": 2, "lookahead": 2}),
+        Setting("middle cap, shared pool, prefetch 1", {"mem_cap": mid, "split": "shared", "prefetch": 1}),
+        Setting("smallest cap, shared pool, orbit", {"mem_cap": min_cap, "split": "shared", "evict": "orbit"}),
+        Setting("smallest cap, prefetch 2, link 1 GB/s (emulated)", {"mem_cap": min_cap, "prefetch": 2, "link_speed": 1e9}),
+    ]
+
+
+def _bits(a: np.ndarray) -> np.ndarray:
+    return np.ascontiguousarray(a, dtype=np.float32).view(np.uint32)
+
+
+def run_once(model_dir, kwargs: dict, prompts: list[list[int]], max_new: int, sampling: Sampling):
+    """Logits of one forward pass per prompt, and generated tokens with per-step logits."""
+    with load(model_dir, **kwargs) as eng:
+        out = []
+        for ids in prompts:
+            full = eng.logits(ids)
+            gen = eng.generate(prompt_ids=ids, max_new=max_new, sampling=sampling, keep_logits=True)
+            out.append((full, gen.new_ids, gen.logits))
+        pool = eng.stats.get("pool")
+        return out, list(eng.budget.slots), (pool or {}).get("hit_rate")
+
+
+def compare(ref, got) -> tuple[bool, bool, float]:
+    logits_equal = True
+    tokens_equal = True
+    diff = 0.0
+    for (f0, t0, s0), (f1, t1, s1) in zip(ref, got):
+        pairs = [(f0, f1)] + list(zip(s0, s1))
+        if len(s0) != len(s1):
+            logits_equal = False
+        for a, b in pairs:
+            if a.shape != b.shape or not np.array_equal(_bits(a), _bits(b)):
+                logits_equal = False
+                if a.shape == b.shape:
+                    diff = max(diff, float(np.max(np.abs(a.astype(np.float64) - b))))
+        tokens_equal &= t0 == t1
+    return logits_equal, tokens_equal, diff
+
+
+def verify(model_dir, prompts: list[list[int]], settings: list[Setting] | None = None, max_new: int = 24,
+           sampling: Sampling | None = None, progress=None) -> tuple[list[Outcome], dict]:
+    sampling = sampling or Sampling(temperature=0.8, top_p=0.95, seed=0)
+    with load(model_dir, tokenizer=False) as eng:
+        st = eng.store
+        min_cap = minimum_cap(st.config, st.dense_nbytes, st.expert_nbytes, "even", st.codec.scratch_bytes())
+        full_cap = eng.budget.total
+        slot = eng.budget.slot
+    if settings is None:
+        settings = default_settings(min_cap, full_cap, slot)
+    ref, ref_slots, _ = run_once(model_dir, {}, prompts, max_new, sampling)
+    outcomes = []
+    for i, s in enumerate(settings):
+        if progress:
+            progress(i, len(settings), s.label)
+        got, slots, hit = run_once(model_dir, s.kwargs, prompts, max_new, sampling)
+        le, te, diff = compare(ref, got)
+        outcomes.append(Outcome(s, slots, le, te, diff, hit))
+    info = {"min_cap": min_cap, "resident_cap": full_cap, "resident_slots": ref_slots}
+    return outcomes, info

@@ -1,0 +1,391 @@
+"""``moerun <command>``: argument parsing, shared options, and the one place errors become exit codes.
+
+Exit codes (docs/architecture.md): 0 success, 1 a check failed, 2 bad input or
+usage, 130 interrupted.  Library errors (``MoerunError``) become one line on
+stderr; nothing prints a traceback for a user mistake.
+"""
+
+from __future__ import annotations
+
+import argparse
+import importlib
+import os
+import signal
+import sys
+
+from moerun import policies
+from moerun._version import __version__
+from moerun.errors import BadInput, BadOption, MoerunError, OutputError
+from moerun.model.tokenizer import read_text_file
+from moerun.runtime.engine import default_model_dir
+
+COMMANDS = ["generate", "verify", "inspect", "probe", "synth", "record", "replay", "quantize", "score", "plan"]
+
+
+class ArgParser(argparse.ArgumentParser):
+    """argparse that reports usage errors as one line and exit 2."""
+
+    def error(self, message: str):  # noqa: D401
+        sys.stderr.write(f"moerun: {message} (see '{self.prog} --help')\n")
+        raise SystemExit(2)
+
+
+# ---------------------------------------------------------------------- shared options
+
+
+def add_model(p) -> None:
+    p.add_argument("--model", metavar="DIR", help="model directory (default: the bundled tiny model)")
+
+
+def whole_number_at_least(flag: str, low: int):
+    """An argparse type for ``flag``: a whole number, ``low`` or more; a usage error (one line, exit 2) otherwise."""
+
+    def parse(text: str) -> int:
+        try:
+            n = int(text)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{flag} takes a whole number, got {text!r}") from None
+        if n < low:
+            raise argparse.ArgumentTypeError(f"{flag} must be {low} or more, got {n}")
+        return n
+
+    return parse
+
+
+seed_value = whole_number_at_least("--seed", 0)  # numpy's generators refuse negative seeds
+
+
+def add_seed(p, what: str = "sampling seed") -> None:
+    """--seed, one parser for every command that takes one (seed_value)."""
+    p.add_argument("--seed", type=seed_value, default=0, metavar="N", help=f"{what}, 0 or more (default 0)")
+
+
+def add_max_tokens(p, help: str) -> None:
+    """--max-tokens (default: all of the text), one parser for score, record and quantize."""
+    p.add_argument("--max-tokens", type=whole_number_at_least("--max-tokens", 1), metavar="N", help=help)
+
+
+def add_prompt(p, max_new_default: int = 80) -> None:
+    g = p.add_mutually_exclusive_group()
+    g.add_argument("--prompt", metavar="TEXT", help="prompt text")
+    g.add_argument("--prompt-file", metavar="FILE", help="read the prompt from a UTF-8 file")
+    p.add_argument("--max-new", type=int, default=max_new_default, metavar="N", help=f"tokens to generate (default {max_new_default})")
+    add_seed(p)
+    p.add_argument("--temperature", type=float, default=0.8, metavar="T", help="0 = greedy (default 0.8)")
+    p.add_argument("--top-p", type=float, default=0.95, metavar="P", help="nucleus sampling mass (default 0.95)")
+
+
+def add_memory(p) -> None:
+    online = policies.names(online_only=True)
+    p.add_argument("--mem-cap", metavar="SIZE", help="memory cap for dense weights + KV cache + scratch + expert pool (48MiB, 1.5GB, bytes); default: every expert resident")
+    p.add_argument("--slots", metavar="N,N,...", help="expert slots per layer, overriding the even split of the cap (not with --shared-pool)")
+    p.add_argument("--shared-pool", action="store_true", help="one pool shared by all layers instead of per-layer quotas")
+    p.add_argument("--evict", default="lru", metavar="POLICY", help=f"eviction policy: {', '.join(online)} (default lru)")
+    p.add_argument("--prefetch", type=int, default=0, metavar="N", help="speculative guesses per layer (0 = off, at most the experts per layer)")
+    p.add_argument("--lookahead", type=int, default=None, metavar="L", help="layers ahead to guess, with --prefetch (default 1)")
+    p.add_argument("--prefetch-from", choices=("attention", "output"), default=None,
+                   help="prefetch point, with --prefetch: after a layer's attention (default; more time to hide a read) or after the whole layer (better guesses)")
+    p.add_argument("--link-speed", metavar="RATE", help="emulate a slower link for page-in, e.g. 2GB/s (labelled emulated)")
+    p.add_argument("--cold", action="store_true", help="drop the model file from the OS page cache first")
+
+
+def add_force(p, what: str = "the output") -> None:
+    p.add_argument("--force", action="store_true",
+                   help=f"replace {what} if it exists (never a device, FIFO, link, foreign directory or an input of the run)")
+
+
+def add_force_dir(p, also: str = "") -> None:
+    """--force for a command whose output is a model directory (moerun.files.fileio.atomic_dir's rules)."""
+    p.add_argument("--force", action="store_true",
+                   help=f"replace OUT if it is a model directory (never one holding other files{also})")
+
+
+# ---------------------------------------------------------------------------- one rule for options that contradict
+
+
+def _flag(name: str) -> str:
+    return "--" + name.replace("_", "-")
+
+
+def _given(args, name: str) -> bool:
+    """Whether the user gave an option: its value is not None (False, 0) -- the "not given" defaults."""
+    v = getattr(args, name, None)
+    return v is not None and v is not False and not (name == "prefetch" and v == 0)
+
+
+def refuse_without(args, option: str, required: str, how: str = "") -> None:
+    """OPTION means nothing unless REQUIRED is given: refused (one rule for every command, docs/hardening.md)."""
+    if _given(args, option) and not _given(args, required):
+        raise BadOption(f"{_flag(option)} has no effect without {how or _flag(required)}; drop it or add {_flag(required)}")
+
+
+def refuse_together(args, a: str, b: str, why: str) -> None:
+    """Options that contradict each other: refused, naming both."""
+    if _given(args, a) and _given(args, b):
+        raise BadOption(f"{_flag(a)} and {_flag(b)} contradict each other ({why}); give one")
+
+
+def check_memory_options(args) -> None:
+    refuse_together(args, "slots", "shared_pool", "--slots sets per-layer quotas, --shared-pool one pool for every layer")
+    refuse_without(args, "lookahead", "prefetch", "--prefetch N (N > 0)")
+    refuse_without(args, "prefetch_from", "prefetch", "--prefetch N (N > 0)")
+
+
+def check_against_model(args, config) -> None:
+    """The memory options that only the model can refute: more guesses than experts, guesses past the last layer."""
+    prefetch = getattr(args, "prefetch", 0) or 0
+    if prefetch > config.n_experts:
+        raise BadOption(f"--prefetch {prefetch} is more than the model's {config.n_experts} experts per layer")
+    lookahead = getattr(args, "lookahead", None) or 1
+    if prefetch and lookahead >= config.n_layers:
+        most = config.n_layers - 1
+        raise BadOption(
+            f"--lookahead {lookahead} reaches past the last layer: the model has {config.n_layers} layer(s), "
+            + (f"so at most {most}" if most else "so there is no later layer to prefetch for")
+        )
+
+
+def add_json(p) -> None:
+    p.add_argument("--json", action="store_true", help="print one JSON document on stdout and nothing else there")
+
+
+def parse_slot_list(text: str | None) -> list[int] | None:
+    if text is None:
+        return None
+    try:
+        slots = [int(s) for s in text.split(",") if s.strip()]
+    except ValueError:
+        raise BadOption(f"--slots takes whole numbers separated by commas, got {text!r}") from None
+    if not slots:
+        raise BadOption("--slots is empty")
+    return slots
+
+
+def engine_kwargs(args) -> dict:
+    check_memory_options(args)
+    return {
+        "model_dir": args.model,
+        "mem_cap": args.mem_cap,
+        "evict": args.evict,
+        "prefetch": args.prefetch,
+        "lookahead": args.lookahead if args.lookahead is not None else 1,
+        "prefetch_from": args.prefetch_from or "attention",
+        "slots": parse_slot_list(args.slots),
+        "split": "shared" if args.shared_pool else "even",
+        "link_speed": args.link_speed,
+        "cold": args.cold,
+    }
+
+
+def model_files(model_dir) -> list:
+    """Every file of a model directory: a run's inputs, which no output may replace."""
+    from pathlib import Path
+
+    d = Path(model_dir) if model_dir is not None else default_model_dir()
+    try:
+        return [p for p in d.iterdir() if p.is_file()]
+    except OSError:
+        return []
+
+
+def read_prompt(args) -> str:
+    if getattr(args, "prompt_file", None):
+        return read_text_file(args.prompt_file)
+    return args.prompt if args.prompt is not None else ""
+
+
+# ---------------------------------------------------------------------- main
+
+
+def build_parser() -> ArgParser:
+    parser = ArgParser(prog="moerun", description="CPU reference engine and workbench for offloaded mixture-of-experts inference")
+    parser.add_argument("--version", action="version", version=f"moerun {__version__}")
+    sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=ArgParser)
+    for name in COMMANDS:
+        try:
+            mod = importlib.import_module(f"moerun.cli.commands.{name}")
+        except ModuleNotFoundError as e:
+            if e.name and e.name.endswith(f"commands.{name}"):
+                continue
+            raise
+        p = sub.add_parser(name, help=mod.HELP, description=mod.HELP)
+        mod.add_arguments(p)
+        p.set_defaults(func=mod.run, _parser=p)
+    return parser
+
+
+class StdoutError(OutputError):
+    """Standard output refused our text: closed (a pipe whose reader left) or full (/dev/full, a full disk)."""
+
+
+class _GuardedStdout:
+    """Standard output whose write and flush failures become StdoutError, so cli.main reports them in one line."""
+
+    def __init__(self, stream):
+        self._stream = stream
+
+    def _failed(self, e: OSError):
+        reason = "closed by its reader" if isinstance(e, BrokenPipeError) else (e.strerror or str(e))
+        return StdoutError(f"cannot write to standard output ({reason}); output stopped")
+
+    def write(self, text: str) -> int:
+        try:
+            return self._stream.write(text)
+        except OSError as e:
+            raise self._failed(e) from None
+
+    def flush(self) -> None:
+        try:
+            self._stream.flush()
+        except OSError as e:
+            raise self._failed(e) from None
+
+    def __getattr__(self, name):
+        return getattr(self._stream, name)
+
+
+def _silence_stdout(stream) -> None:
+    """After a failed write: point file descriptor 1 at /dev/null so the interpreter's last flush cannot fail again."""
+    try:
+        if stream.fileno() == 1:
+            fd = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(fd, 1)
+            os.close(fd)
+    except (OSError, ValueError, AttributeError):
+        pass
+
+
+def check_text_arguments(args, parser) -> None:
+    """Every argument must be valid UTF-8 (the shell may pass any bytes; they would reach the tokenizer or the output)."""
+    for dest, value in vars(args).items():
+        if not isinstance(value, str):
+            continue
+        bad = next((i for i, ch in enumerate(value) if "\udc80" <= ch <= "\udcff"), None)  # undecodable bytes (surrogateescape)
+        if bad is None:
+            try:
+                value.encode("utf-8")
+            except UnicodeEncodeError as e:
+                bad = e.start
+        if bad is not None:
+            offset = len(value[:bad].encode("utf-8", "surrogateescape"))
+            byte = ord(value[bad]) - 0xDC00 if "\udc80" <= value[bad] <= "\udcff" else None
+            what = f"byte 0x{byte:02x}" if byte is not None else "a lone surrogate"
+            raise BadInput(f"{_option_name(parser, args, dest)}: not valid UTF-8 text ({what} at offset {offset})")
+
+
+def _option_name(parser, args, dest: str) -> str:
+    sub = getattr(args, "_parser", None)
+    for action in getattr(sub, "_actions", []):
+        if action.dest == dest:
+            return action.option_strings[0] if action.option_strings else (action.metavar or dest.upper())
+    return _flag(dest)
+
+
+def main(argv: list[str] | None = None) -> int:
+    if sys.stdout is None:  # file descriptor 1 was closed when the process started
+        sys.stderr.write("moerun: standard output is closed; run with an open standard output (> /dev/null to discard it)\n")
+        return 2
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if not getattr(args, "command", None):
+        parser.print_help(sys.stderr)
+        return 2
+    real_stdout = sys.stdout
+    sys.stdout = _GuardedStdout(real_stdout)
+    try:
+        check_text_arguments(args, parser)
+        with _numeric_warnings_off():
+            code = int(args.func(args) or 0)
+        sys.stdout.flush()
+        return code
+    except MoerunError as e:
+        if isinstance(e, StdoutError):
+            _silence_stdout(real_stdout)
+        sys.stderr.write(f"moerun {args.command}: {e}\n")
+        return e.exit_code
+    except MemoryError as e:  # e.g. a config whose context needs a KV cache larger than the machine
+        detail = str(e).splitlines()[0][:200] if str(e) else "allocation failed"
+        sys.stderr.write(f"moerun {args.command}: out of memory ({detail}); --mem-cap checks the budget before the run\n")
+        return 2
+    except KeyboardInterrupt:
+        sys.stderr.write(f"\nmoerun {args.command}: interrupted\n")
+        return 130
+    except Exception as e:
+        # Ctrl-C landing inside a library call can surface as another error raised while the
+        # KeyboardInterrupt unwound (numpy's savez closing a half-written zip raises ValueError):
+        # that is still an interruption, not a crash
+        if not _raised_while_interrupted(e):
+            raise
+        sys.stderr.write(f"\nmoerun {args.command}: interrupted\n")
+        return 130
+    finally:
+        sys.stdout = real_stdout
+
+
+def _numeric_warnings_off():
+    """numpy's RuntimeWarnings (overflow, invalid value) are not shown: a non-finite result is caught by the
+    engine's one check (Engine._finite) and reported as one line; a warning before it would be a second.
+    Warnings the library gives on purpose (a stalled prefetch reader, say) are one line on stderr."""
+    import contextlib
+    import warnings
+
+    import numpy as np
+
+    stack = contextlib.ExitStack()
+    stack.enter_context(np.errstate(all="ignore"))
+    stack.enter_context(warnings.catch_warnings())
+    warnings.simplefilter("ignore", RuntimeWarning)
+    warnings.showwarning = lambda message, category, *rest, **kw: sys.stderr.write(f"moerun: warning: {message}\n")
+    return stack
+
+
+def _raised_while_interrupted(e: BaseException) -> bool:
+    seen = set()
+    cur: BaseException | None = e
+    while cur is not None and id(cur) not in seen:
+        if isinstance(cur, KeyboardInterrupt):
+            return True
+        seen.add(id(cur))
+        cur = cur.__cause__ or cur.__context__
+    return False
+
+
+def _first_ctrl_c_only(interrupted: list) -> None:
+    """SIGINT raises KeyboardInterrupt once; later ones are ignored while that one unwinds.
+
+    The first Ctrl-C stops the command, whose clean-up (stopping the prefetch reader process, at most a
+    couple of seconds; writing a partial trace; removing temporary files) must run to the end: a
+    second Ctrl-C landing inside it would leave temporary files or print a traceback from inside a
+    library.  Only the process entry point installs this, never ``main()`` (which tests call).
+    """
+
+    def on_sigint(signum, frame):
+        if interrupted:
+            return
+        interrupted.append(signum)
+        raise KeyboardInterrupt
+
+    signal.signal(signal.SIGINT, on_sigint)
+
+
+def entry() -> None:
+    interrupted: list = []
+    try:
+        _first_ctrl_c_only(interrupted)
+        code = main()
+    except KeyboardInterrupt:  # Ctrl-C before a command started
+        sys.stderr.write("\nmoerun: interrupted\n")
+        code = 130
+    if code == 130 or interrupted:
+        # the command has stopped; a Ctrl-C now would only interrupt the interpreter's shutdown:
+        # let it end the process at once, as SIGINT does by default
+        signal.signal(signal.SIGINT, signal.SIG_DFL)
+    if sys.stdout is not None:
+        try:
+            sys.stdout.flush()
+        except OSError:
+            _silence_stdout(sys.stdout)
+            if code == 0:
+                sys.stderr.write("moerun: cannot write to standard output\n")
+                code = 2
+    raise SystemExit(code)

@@ -1,0 +1,123 @@
+"""The end-of-run summary shown by generate (and score): speed, budget, pool behaviour, memory."""
+
+from __future__ import annotations
+
+from moerun.cli.report import pct, table
+from moerun.model.config import RANDOM_NOTE as config_note
+from moerun.units import fmt_bytes, fmt_rate
+
+NOT_ADVICE = "text from a tiny model trained on invented data; not advice"
+RANDOM_NOTE = f"{config_note} and the text is noise"  # what a generation from random weights needs said
+# Peak resident-set growth may exceed --mem-cap by this much before a run is flagged: the interpreter's own
+# small allocations (token lists, the routing recorder, numpy's per-call buffers) that no budget line counts
+# (docs/offload.md, "What the cap covers").
+CAP_ALLOWANCE_BYTES = 2 << 20
+
+
+def cap_check(engine) -> dict | None:
+    """Measured peak resident-set growth against the cap: None without a cap."""
+    cap = engine.budget.cap
+    if cap is None:
+        return None
+    growth = engine.memwatch.peak_growth()
+    return {"cap_bytes": cap, "allowance_bytes": CAP_ALLOWANCE_BYTES, "peak_rss_growth_bytes": growth,
+            "exceeded": growth > cap + CAP_ALLOWANCE_BYTES}
+
+
+def cap_warning(engine) -> str | None:
+    """One line for stderr when the measured peak exceeded the cap (plus the allowance), else None."""
+    chk = cap_check(engine)
+    if chk is None or not chk["exceeded"]:
+        return None
+    over = chk["peak_rss_growth_bytes"] - chk["cap_bytes"]
+    return (f"peak resident-set growth {fmt_bytes(chk['peak_rss_growth_bytes'])} exceeded the memory cap "
+            f"{fmt_bytes(chk['cap_bytes'])} by {fmt_bytes(over)} (allowance {fmt_bytes(CAP_ALLOWANCE_BYTES)})")
+
+
+def model_note(config) -> str:
+    """The caveat printed with any output of this model."""
+    return RANDOM_NOTE if config.extra.get("synthetic") else NOT_ADVICE
+
+
+def run_json(engine, gen=None) -> dict:
+    st = engine.stats
+    doc: dict = {}
+    if gen is not None:
+        doc.update(
+            {
+                "prompt_tokens": len(gen.prompt_ids),
+                "new_tokens": len(gen.new_ids),
+                "stop": gen.stop,
+                "prefill_ms": gen.prefill_ns / 1e6,
+                "prefill_tok_s": gen.prefill_tok_s,
+                "decode_steps": gen.decode_steps,
+                "decode_ms": gen.decode_ns / 1e6,
+                "decode_tok_s": gen.decode_tok_s,
+            }
+        )
+    doc.update(st)
+    if gen is not None and not gen.decode_steps:
+        doc["decode_tok_s"] = None  # no decode step was timed: no speed to report
+    link = engine.options.get("link_speed")
+    doc["link_emulated"] = link is not None
+    chk = cap_check(engine)
+    if chk is not None:
+        doc["cap_exceeded"] = chk["exceeded"]
+        doc["cap_allowance_bytes"] = chk["allowance_bytes"]
+    if gen is not None and "pool" in st and gen.decode_ns + gen.prefill_ns:
+        doc["stall_share"] = st["pool"]["stall_ns"] / (gen.decode_ns + gen.prefill_ns)
+    return doc
+
+
+def run_text(engine, gen=None) -> str:
+    doc = run_json(engine, gen)
+    lines = []
+    if gen is not None:
+        speed = (f"decode {doc['decode_tok_s']:.0f} tok/s" if gen.decode_steps
+                 else "no decode step timed (the last new token comes from prefill)" if gen.new_ids else "no decode step")
+        lines.append(
+            f"prompt {doc['prompt_tokens']} tok, prefill {doc['prefill_tok_s']:.0f} tok/s | "
+            f"new {doc['new_tokens']} tok, {speed}"
+            + (" | stopped: context full" if gen.stop == "context-full" else "")
+        )
+    b = engine.budget
+    link = engine.options.get("link_speed")
+    if link is not None:
+        lines.append(f"link: {fmt_rate(link)} (emulated)")
+    if engine.options.get("routing"):
+        lines.append(f"routing replayed from {engine.options['routing']} (not the model's routers)")
+    if engine.options.get("cold"):
+        lines.append("cold start: the model file's pages were dropped from the OS page cache before the run")
+    if b.cap is not None:
+        rows = [[name, fmt_bytes(n)] for name, n in b.rows()]
+        rows.append(["total / cap", f"{fmt_bytes(b.total)} / {fmt_bytes(b.cap)}"])
+        lines.append(table(["budget", "size"], rows))
+        lines.append(f"slots per layer: {','.join(map(str, b.slots))}" + (" (one shared pool)" if b.split == "shared" else ""))
+    pool = doc.get("pool")
+    if pool and b.cap is not None:
+        rows = [
+            [str(p["layer"]), p["accesses"], p["hits"], p["prefetch_hits"], p["misses"], pct(p["hit_rate"])]
+            for p in pool["per_layer"]
+        ]
+        rows.append(["all", pool["accesses"], pool["hits"], pool["prefetch_hits"], pool["misses"], pct(pool["hit_rate"])])
+        lines.append(table(["layer", "accesses", "hits", "prefetched", "misses", "hit rate"], rows))
+        pf = pool["prefetch"]
+        if engine.options.get("prefetch"):
+            lines.append(
+                f"prefetch: {pf['guesses']} guesses, {pf['loads']} loads, {pf['used']} used "
+                f"({pct(pf['accuracy'])} accurate), {fmt_bytes(pf['wasted_bytes'])} wasted, "
+                f"{pf['hidden_ns'] / 1e6:.1f} ms of page-in hidden"
+                + ("" if doc.get("reader_alive", True) else "; the reader process exited, so the engine read for itself")
+            )
+        stall = doc.get("stall_share")
+        lines.append(
+            f"paged in {fmt_bytes(pool['bytes_paged_in'])}; stalled {pool['stall_ns'] / 1e6:.1f} ms"
+            + (f" ({pct(stall)} of run time)" if stall is not None else "")
+        )
+    cap = f" (cap {fmt_bytes(b.cap)})" if b.cap is not None else ""
+    reader = doc.get("reader_rss_bytes")
+    lines.append(
+        f"peak resident-set growth {fmt_bytes(doc['peak_rss_growth_bytes'])}{cap}"
+        + (f"; prefetch reader process {fmt_bytes(reader)} (outside the cap, like the interpreter)" if reader else "")
+    )
+    return "\n".join(lines)

@@ -1,0 +1,228 @@
+"""The transformer of the model spec (docs/architecture.md) in numpy, float32 throughout.
+
+The layer reads like the math::
+
+    h = x + attention(rmsnorm(x, attn_norm))
+    u = rmsnorm(h, moe_norm)
+    x' = h + moe(u, route(u, router), experts, shared)
+
+with ``moe(u) = shared(u) + sum over chosen experts in ascending id of
+weight * expert(u)``; the shared expert (optional, config ``d_shared``) is
+dense, always resident, and its term starts the sum.
+
+Expert weights come from an *expert source* (``experts``): the resident pool,
+or a plain list for the bare engine.  The math never knows whether an expert
+was resident, prefetched or just read; the compute schedule (which tokens go
+through which expert, and the order outputs are summed in) depends only on
+routing, so every memory setting gives bit-identical numbers.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from moerun.model.config import ModelConfig
+
+F32 = np.float32
+
+
+# ---------------------------------------------------------------------------- math
+
+
+def rmsnorm(x: np.ndarray, w: np.ndarray, eps: np.float32) -> np.ndarray:
+    """x / sqrt(mean(x*x) + eps) * w, over the last axis."""
+    ms = np.mean(x * x, axis=-1, keepdims=True, dtype=F32)
+    return x / np.sqrt(ms + eps) * w
+
+
+def softmax(z: np.ndarray) -> np.ndarray:
+    e = np.exp(z - z.max(axis=-1, keepdims=True))
+    return e / e.sum(axis=-1, keepdims=True)
+
+
+def silu(z: np.ndarray) -> np.ndarray:
+    return z / (F32(1.0) + np.exp(-z))
+
+
+def rotary_tables(config: ModelConfig) -> tuple[np.ndarray, np.ndarray]:
+    """cos and sin tables [max_seq_len, head_dim/2], inv_freq_j = theta^(-2j/head_dim)."""
+    half = config.head_dim // 2
+    inv_freq = config.rope_theta ** (-(2.0 * np.arange(half, dtype=np.float64)) / config.head_dim)
+    angles = np.arange(config.max_seq_len, dtype=np.float64)[:, None] * inv_freq[None, :]
+    return np.cos(angles).astype(F32), np.sin(angles).astype(F32)
+
+
+def rotate(x: np.ndarray, cos: np.ndarray, sin: np.ndarray) -> np.ndarray:
+    """Rotate-half rotary embedding: [a*cos - b*sin, b*cos + a*sin] on the last axis."""
+    half = x.shape[-1] // 2
+    a = x[..., :half]
+    b = x[..., half:]
+    return np.concatenate((a * cos - b * sin, b * cos + a * sin), axis=-1)
+
+
+def route(u: np.ndarray, router: np.ndarray, top_k: int, norm_topk: bool = True) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Top-k routing: probabilities p = softmax(u @ router); chosen experts in ascending id.
+
+    Ties go to the lower expert id (stable sort on -p).  Returns
+    ``(chosen [T, k] int64 ascending, weights [T, k] float32, p [T, E])``, where
+    weights are p_chosen / sum(p_chosen) (``norm_topk``) or p_chosen as they are.
+    """
+    p = softmax(u @ router)
+    order = np.argsort(-p, axis=-1, kind="stable")[:, :top_k]
+    chosen = np.sort(order, axis=-1)
+    pc = np.take_along_axis(p, chosen, axis=-1)
+    weights = pc / pc.sum(axis=-1, keepdims=True) if norm_topk else pc
+    return chosen, weights, p
+
+
+def expert(u: np.ndarray, w_gate: np.ndarray, w_up: np.ndarray, w_down: np.ndarray) -> np.ndarray:
+    """(silu(u @ w_gate) * (u @ w_up)) @ w_down"""
+    return (silu(u @ w_gate) * (u @ w_up)) @ w_down
+
+
+def moe(u: np.ndarray, layer: int, chosen: np.ndarray, weights: np.ndarray, experts, shared=None) -> np.ndarray:
+    """shared(u) + sum over chosen experts, in ascending expert id, of weight * expert(u).
+
+    ``shared`` is the shared expert's (w_gate, w_up, w_down), or None for a
+    model without one; its term starts the sum.  For one token the routed
+    outputs may be computed in any order (resident experts first, while
+    missing ones arrive) but are summed in ascending id.  For many tokens each
+    needed expert runs once over the tokens routed to it, experts in ascending
+    id, accumulating into the output.
+    """
+    T, k = chosen.shape
+    if T == 1:
+        ids = chosen[0].tolist()
+        terms = [expert(u, *shared)] if shared is not None else []  # first: it is always resident
+        ys: list = [None] * k
+        for j in experts.compute_order(layer, ids):
+            ys[j] = weights[0, j] * expert(u, *experts.weights(layer, ids[j]))
+        out, *rest = terms + ys
+        for y in rest:
+            out = out + y
+        return out
+    out = expert(u, *shared) if shared is not None else np.zeros_like(u)
+    for e in np.unique(chosen).tolist():
+        rows, slot = np.nonzero(chosen == e)
+        y = expert(u[rows], *experts.weights(layer, e))
+        out[rows] += weights[rows, slot][:, None] * y
+    return out
+
+
+# ---------------------------------------------------------------------------- weights and cache
+
+
+@dataclass
+class LayerWeights:
+    attn_norm: np.ndarray
+    moe_norm: np.ndarray
+    wqkv: np.ndarray  # [d_model, q_dim + 2*kv_dim]: wq | wk | wv fused for one matmul
+    wo: np.ndarray
+    router: np.ndarray
+    shared: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None  # the shared expert's w_gate, w_up, w_down
+
+
+class KVCache:
+    """Preallocated keys and values for every layer up to max_seq_len positions."""
+
+    def __init__(self, config: ModelConfig):
+        shape = (config.n_layers, config.n_kv_heads, config.max_seq_len, config.head_dim)
+        self.k = np.zeros(shape, F32)
+        self.v = np.zeros(shape, F32)
+        self.length = 0
+
+    @staticmethod
+    def nbytes_for(config: ModelConfig) -> int:
+        return 2 * 4 * config.n_layers * config.n_kv_heads * config.max_seq_len * config.head_dim
+
+
+class Transformer:
+    """Dense weights and the forward passes (prefill over a prompt, decode one token)."""
+
+    def __init__(self, config: ModelConfig, dense: dict[str, np.ndarray]):
+        self.config = config
+        c = config
+        self.eps = F32(c.norm_eps)
+        self.scale = F32(1.0 / np.sqrt(c.head_dim))
+        self.embed = dense["embed"]
+        self.final_norm = dense["final_norm"]
+        self.lm_head = dense["embed"].T if c.tied_embeddings else dense["lm_head"]
+        self.layers = []
+        for layer in range(c.n_layers):
+            p = f"layers.{layer}."
+            wqkv = np.ascontiguousarray(
+                np.concatenate([dense[p + "attn.wq"], dense[p + "attn.wk"], dense[p + "attn.wv"]], axis=1)
+            )
+            shared = tuple(dense[p + "shared." + part] for part in c.shared_shapes()) if c.d_shared else None
+            self.layers.append(
+                LayerWeights(dense[p + "attn_norm"], dense[p + "moe_norm"], wqkv, dense[p + "attn.wo"], dense[p + "router"], shared)
+            )
+        self.cos, self.sin = rotary_tables(c)
+        self.group = c.n_heads // c.n_kv_heads
+        self.replayed = None  # a moerun.model.routing.ReplayedRouting: routing taken from a trace instead of the routers
+
+    # -------------------------------------------------------------- attention
+    def attention(self, x: np.ndarray, layer: int, start: int, cache: KVCache) -> np.ndarray:
+        c = self.config
+        T = x.shape[0]
+        H, Hkv, hd, G = c.n_heads, c.n_kv_heads, c.head_dim, self.group
+        qkv = x @ self.layers[layer].wqkv
+        q = qkv[:, : c.q_dim].reshape(T, H, hd)
+        k = qkv[:, c.q_dim : c.q_dim + c.kv_dim].reshape(T, Hkv, hd)
+        v = qkv[:, c.q_dim + c.kv_dim :].reshape(T, Hkv, hd)
+        cos = self.cos[start : start + T, None, :]
+        sin = self.sin[start : start + T, None, :]
+        q = rotate(q, cos, sin)
+        k = rotate(k, cos, sin)
+        end = start + T
+        cache.k[layer, :, start:end] = k.transpose(1, 0, 2)
+        cache.v[layer, :, start:end] = v.transpose(1, 0, 2)
+        keys = cache.k[layer, :, :end]  # [Hkv, end, hd]
+        vals = cache.v[layer, :, :end]
+        # query head i reads kv head i // G: group queries as [Hkv, G*T, hd]
+        qg = q.reshape(T, Hkv, G, hd).transpose(1, 2, 0, 3).reshape(Hkv, G * T, hd)
+        scores = (qg @ keys.transpose(0, 2, 1)) * self.scale  # [Hkv, G*T, end]
+        if T > 1:
+            pos_q = np.tile(np.arange(start, end), G)
+            mask = np.arange(end)[None, :] > pos_q[:, None]
+            scores = np.where(mask[None], F32(-np.inf), scores)
+        out = softmax(scores) @ vals  # [Hkv, G*T, hd]
+        out = out.reshape(Hkv, G, T, hd).transpose(2, 0, 1, 3).reshape(T, H * hd)
+        return out @ self.layers[layer].wo
+
+    # -------------------------------------------------------------- layers
+    def layer(self, x: np.ndarray, layer: int, start: int, cache: KVCache, experts, seen=None) -> np.ndarray:
+        """One layer.  ``seen(layer, where, state)``, if given, is shown the hidden state after attention
+        (once the layer has routed, so its own misses are already asked for) and after the layer:
+        the engine's prefetch points."""
+        w = self.layers[layer]
+        experts.begin_layer(layer)
+        h = x + self.attention(rmsnorm(x, w.attn_norm, self.eps), layer, start, cache)
+        u = rmsnorm(h, w.moe_norm, self.eps)
+        if self.replayed is None:
+            chosen, weights, probs = route(u, w.router, self.config.top_k, self.config.norm_topk)
+        else:  # routing replayed from a trace (moerun.model.routing): everything else is computed for real
+            chosen, weights, probs = self.replayed.route(layer, u.shape[0])
+        experts.routed(layer, chosen, weights, probs)
+        if seen is not None:
+            seen(layer, "attention", h)
+        out = h + moe(u, layer, chosen, weights, experts, w.shared)
+        experts.end_layer(layer)
+        if seen is not None:
+            seen(layer, "output", out)
+        return out
+
+    def forward(self, ids: np.ndarray, start: int, cache: KVCache, experts, seen=None) -> np.ndarray:
+        """Hidden states leaving the last layer for tokens at positions start.. (not yet normed)."""
+        x = self.embed[ids]
+        for layer in range(self.config.n_layers):
+            x = self.layer(x, layer, start, cache, experts, seen)
+        cache.length = start + len(ids)
+        if self.replayed is not None:
+            self.replayed.advance(len(ids))
+        return x
+
+    def logits(self, x: np.ndarray) -> np.ndarray:
+        return rmsnorm(x, self.final_norm, self.eps) @ self.lm_head

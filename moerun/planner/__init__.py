@@ -1,0 +1,3 @@
+"""Planning: the search over splits, policies and prefetch, the time model it predicts with, and the measured costs it is calibrated on. Offline."""
+
+__all__ = ["calibration", "search", "timeline"]

@@ -1,0 +1,189 @@
+"""The planner: from a memory budget and a link to predicted decode tokens per second.
+
+``moerun.planner.timeline`` simulates decode along a routing trace for one setting (slots per layer or a
+shared pool, policy, prefetch) with costs measured by ``moerun.planner.calibration``.  This module
+searches the settings a user chooses from: how to split a number of slots between the layers
+(evenly, or by the layers' miss curves), which policy, how much prefetch; the best setting for a
+cap, decode speed against cap, and the smallest cap that reaches a target speed.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from moerun import policies
+from moerun.errors import BadInput, BadTrace, ImpossibleBudget
+from moerun.files.trace import Trace
+from moerun.planner.calibration import (  # noqa: F401  (the planner's public names, kept here)
+    calibrate,
+    costs_from_calibration,
+    costs_from_shape,
+    load_shape,
+    page_seconds,
+)
+from moerun.planner.timeline import Costs, Prediction, predict, step_misses  # noqa: F401
+from moerun.sim.counts import replay_counts
+from moerun.sim.steps import prefill_tokens
+
+PREFETCH_CANDIDATES = [(0, 1), (1, 1), (2, 1), (2, 2), (3, 1)]
+PREFETCH_POLICIES = 2  # prefetch is simulated for the policies that do best without it
+SEARCH_TOKENS = 2048  # decode tokens each prefetch setting is simulated over in the search
+REPLAY_TOKENS = 6144  # decode tokens of the trace the search replays (the first ones): a long trace plans in seconds
+
+
+def hit_curves(trace: Trace, policy: str, max_slots: int) -> list[list[int]]:
+    """Misses per layer for 1..max_slots slots (index s-1), from replay."""
+    caps = list(range(1, max_slots + 1))
+    counts = replay_counts(trace, policy, caps)
+    return [[counts[c][layer].misses for c in caps] for layer in range(trace.n_layers)]
+
+
+def best_split(curves: list[list[int]], total: int, low: int, high: int) -> list[int]:
+    """Slots per layer (each in low..high, summing to at most ``total``) with the fewest misses.
+
+    Exact, by dynamic programming over the layers' miss curves; where every
+    curve is convex this is what greedily giving each next slot to the layer
+    that gains most would find.
+    """
+    L = len(curves)
+    if total < L * low:
+        raise ImpossibleBudget(f"{total} slots cannot give each of {L} layers {low}")
+    INF = float("inf")
+    best = {0: (0, [])}  # slots used -> (misses, split)
+    for layer in range(L):
+        nxt: dict[int, tuple] = {}
+        for used, (m, split) in best.items():
+            for s in range(low, high + 1):
+                u = used + s
+                if u > total:
+                    break
+                cand = (m + curves[layer][s - 1], split + [s])
+                if cand[0] < nxt.get(u, (INF,))[0]:
+                    nxt[u] = cand
+        best = nxt
+    return min(best.values(), key=lambda v: (v[0], sum(v[1])))[1]
+
+
+def even_split(total: int, L: int, high: int) -> list[int]:
+    base, extra = divmod(min(total, L * high), L)
+    return [min(high, base + (1 if i < extra else 0)) for i in range(L)]
+
+
+@dataclass
+class Space:
+    """What the planner searches over for one model or shape."""
+
+    trace: Trace
+    costs: Costs
+    layers: int
+    experts: int
+    top_k: int
+    fixed: int  # bytes: dense weights, KV cache, scratch
+    slot: int  # bytes per slot
+    policies: list
+    prefetches: list  # (guesses, lookahead) pairs
+    shared: bool = False  # also consider one pool shared by all layers
+
+    def __post_init__(self):
+        P = prefill_tokens(self.trace)
+        if self.trace.n_tokens - P > REPLAY_TOKENS:
+            t = self.trace
+            cut = P + REPLAY_TOKENS
+            self.trace = Trace(t.experts[:cut], None if t.weights is None else t.weights[:cut],
+                               None if t.guesses is None else t.guesses[:cut], dict(t.meta), {},
+                               None if t.probs is None else t.probs[:cut])
+        self._steps: dict = {}
+        caps = range(1, self.experts + 1)
+        for n in self.policies:  # one replay per policy and layer serves every quota
+            for layer in range(self.layers):
+                for cap, v in step_misses(self.trace, n, layer, caps).items():
+                    self._steps[(n, layer, cap)] = v
+        self.curves = {n: [[int(self._steps[(n, layer, c)][1].sum()) for c in caps] for layer in range(self.layers)]
+                       for n in self.policies}
+
+    def _predict(self, slots, policy, pf, la, shared=False) -> Prediction:
+        return predict(self.trace, slots, policy, pf, la, self.costs, shared, SEARCH_TOKENS,
+                       lambda layer, cap: self._steps[(policy, layer, cap)])
+
+    @property
+    def min_cap(self) -> int:
+        return self.fixed + self.layers * self.top_k * self.slot
+
+    @property
+    def full_cap(self) -> int:
+        return self.fixed + self.layers * self.experts * self.slot
+
+    def slots_for(self, cap: int) -> int:
+        return min((cap - self.fixed) // self.slot, self.layers * self.experts)
+
+    def candidates(self, total: int, policy_names=None, prefetches=None) -> list[tuple[str, Prediction]]:
+        """Every setting for ``total`` slots: even and uneven splits (and a shared pool), each policy and prefetch."""
+        out = []
+        L, E, k = self.layers, self.experts, self.top_k
+        names = policy_names or self.policies
+        splits = {n: {"even": even_split(total, L, E), "uneven": best_split(self.curves[n], total, k, E)} for n in names}
+        for n in names:
+            for label, sl in splits[n].items():
+                out.append((label, self._predict(sl, n, 0, 1)))
+        ranked = sorted(names, key=lambda n: -max(pr.tok_s for _, pr in out if pr.policy == n))
+        for n in ranked[:PREFETCH_POLICIES]:
+            for pf, la in prefetches or self.prefetches:
+                if pf:
+                    for label, sl in splits[n].items():
+                        out.append((label, self._predict(sl, n, pf, la)))
+        if self.shared:  # the best per-layer policies and those made for a shared pool, then prefetch for the best two there
+            pick = ranked[:PREFETCH_POLICIES] + [n for n in ranked[PREFETCH_POLICIES:] if getattr(policies.get(n), "for_shared_pool", False)]
+            plain = {n: self._predict([total], n, 0, 1, shared=True) for n in pick}
+            out += [("shared", pr) for pr in plain.values()]
+            for n in sorted(pick, key=lambda n: -plain[n].tok_s)[:PREFETCH_POLICIES]:
+                for pf, la in prefetches or self.prefetches:
+                    if pf:
+                        out.append(("shared", self._predict([total], n, pf, la, shared=True)))
+        return out
+
+    def best(self, total: int, policy_names=None, prefetches=None) -> tuple[str, Prediction]:
+        return max(self.candidates(total, policy_names, prefetches), key=lambda c: c[1].tok_s)
+
+    def curve(self, policy: str, prefetches) -> list[dict]:
+        """Predicted tok/s against cap, one more slot per layer at a time.  A bigger cap can always leave slots
+        unused, so each point keeps the best figure seen so far."""
+        out, best = [], None
+        L, E, k = self.layers, self.experts, self.top_k
+        for total in range(L * k, L * E + 1, L):
+            _, pr = self.best(total, [policy], prefetches)
+            if best is None or pr.tok_s > best.tok_s:
+                best = pr
+            out.append({"cap_bytes": self.fixed + total * self.slot, "slots_total": total, "tok_s": best.tok_s,
+                        "slots": best.slots, "shared": best.shared, "prefetch": best.prefetch, "stall_share": best.stall_share})
+        return out
+
+    def smallest_cap(self, target: float, policy: str, prefetches, curve: list[dict]) -> int | None:
+        """The smallest cap (bytes) whose best setting reaches ``target`` tok/s; None if none does.  The curve steps
+        one slot per layer; between its points the totals are tried one slot at a time."""
+        i = next((i for i, p in enumerate(curve) if p["tok_s"] >= target), None)
+        if i is None:
+            return None
+        if i:
+            for total in range(curve[i - 1]["slots_total"] + 1, curve[i]["slots_total"]):
+                if self.best(total, [policy], prefetches)[1].tok_s >= target:
+                    return self.fixed + total * self.slot
+        return curve[i]["cap_bytes"]
+
+
+def check_decode_steps(trace: Trace, where: str) -> None:
+    """The planner predicts decode speed: a trace whose tokens are all prefill has nothing to simulate."""
+    P = prefill_tokens(trace)
+    if trace.n_tokens - P < 1:
+        raise BadTrace(
+            f"{where}: no decode steps (all {trace.n_tokens} tokens are prefill), so there is no decode speed to "
+            "predict; record a trace with 'moerun record' or 'moerun generate --max-new N --trace FILE'"
+        )
+
+
+def check_trace_shape(trace: Trace, layers: int, experts: int, top_k: int, where: str) -> None:
+    if trace.n_layers != layers or trace.top_k != top_k:
+        raise BadInput(
+            f"the trace has {trace.n_layers} layers and top_k {trace.top_k}, but {where} has {layers} and {top_k}"
+        )
+    if trace.n_experts > experts:
+        raise BadInput(f"the trace names expert ids up to {trace.n_experts - 1}, but {where} has {experts} experts")

@@ -1,0 +1,395 @@
+"""The planner's time model: decode simulated token by token along a routing trace, with measured costs.
+
+The simulation follows the live engine (docs/offload.md) with the same code where the engine
+makes decisions: residency and eviction through ``Residency`` and the policies, an emulated
+link's schedule through ``moerun.runtime.link.Link``, and whether a guess is worth reading through
+``moerun.runtime.guesses`` (with ``Timing`` figures the simulation itself measures as it goes).  Per
+decode token and layer:
+
+- the layer's compute outside its experts (``attn[l]``: attention, norms, routing, measured fully
+  resident), the pool's bookkeeping per access (``pool``, with LRU) and the policy's own cost per
+  access over LRU's (``policy``);
+- its routing: guesses for it that it did not choose are dropped; its chosen experts are
+  accessed in ascending id, pinned; a miss is booked on the link (emulated) at once;
+- the prefetch point (with prefetch): the guess rule (``guess``), and each guess read costs
+  ``place``; it is booked on the link, or queued on the reader (real reads);
+- its experts: those already there first (``expert`` each, the stored format's decoding
+  included), then the others as they arrive.  Over an emulated link the compute thread copies a
+  miss's bytes itself (``copy``) while its transfer runs, and waits the rest (``wait`` is added
+  to every wait that really sleeps); with real reads it reads a miss itself (``page``).  Guesses'
+  bytes are the reader's: there when their transfer ends;
+- then the head (final norm, output projection, sampling).
+
+With prefetch off and a pool per layer, every layer step depends only on how many of its
+accesses missed, so the prediction is a sum over the replay's miss counts (``_additive``),
+which is exact for this model and fast on long traces; otherwise the simulation walks the
+tokens (at most ``max_tokens`` decode tokens after the prefill).
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+
+from moerun import policies
+from moerun.errors import BadOption, BadTrace
+from moerun.files.trace import Trace
+from moerun.runtime.guesses import Timing, guess_pays, worth_guessing
+from moerun.runtime.link import Link
+from moerun.runtime.residency import Residency
+from moerun.sim.fast import layer_misses
+from moerun.sim.steps import layer_plans, plan_policy, prefill_tokens
+
+SIM_TOKENS = 4096  # decode tokens simulated step by step (the additive path takes every token)
+
+
+@dataclass
+class Costs:
+    """Seconds per operation (see the module docstring)."""
+
+    attn: list[float]
+    expert: float
+    head: float
+    page: float
+    page_source: str = ""
+    wait: float = 0.0  # added to every wait that sleeps: how late a sleep wakes, measured
+    emulated: bool = True  # page over an emulated link (copies overlap it) or real reads (the read blocks)
+    copy: float = 0.0  # the compute thread copying one expert's bytes from the page cache
+    decode: float = 0.0  # of ``expert``: decoding the stored format (F16 widening, low-bit dequantization)
+    guess: float = 0.0  # the guess rule at one prefetch point
+    place: float = 0.0  # one guess read: placing it, handing it over, the reader's copy beside compute
+    late: float = 0.0  # share of used guesses the compute thread copied itself, the reader being late
+    policy: dict = field(default_factory=dict)  # policy name -> its cost per access over LRU's
+    pool: float = 0.0  # the pool's bookkeeping per access with LRU (a resident run's fast path has none)
+
+    def to_json(self) -> dict:
+        return {
+            "attn_us": [a * 1e6 for a in self.attn],
+            "expert_us": self.expert * 1e6,
+            "decode_us": self.decode * 1e6,
+            "head_us": self.head * 1e6,
+            "page_us": self.page * 1e6,
+            "page_source": self.page_source,
+            "emulated_link": self.emulated,
+            "wait_us": self.wait * 1e6,
+            "copy_us": self.copy * 1e6,
+            "guess_us": self.guess * 1e6,
+            "place_us": self.place * 1e6,
+            "late_share": self.late,
+            "policy_us_per_access": {k: v * 1e6 for k, v in self.policy.items()},
+            "pool_us_per_access": self.pool * 1e6,
+        }
+
+
+@dataclass
+class Prediction:
+    slots: list[int]
+    policy: str
+    prefetch: int
+    lookahead: int
+    tok_s: float
+    step_s: float
+    stall_s: float  # per token
+    accesses: int
+    misses: int
+    prefetch_loads: int = 0
+    per_layer_hit_rate: list[float] = field(default_factory=list)
+    shared: bool = False
+    tokens: int = 0  # decode tokens the prediction covers
+
+    @property
+    def hit_rate(self) -> float:
+        return 1 - self.misses / self.accesses if self.accesses else 0.0
+
+    @property
+    def stall_share(self) -> float:
+        return self.stall_s / self.step_s if self.step_s else 0.0
+
+    def to_json(self) -> dict:
+        d = asdict(self)
+        d["hit_rate"] = self.hit_rate
+        d["stall_share"] = self.stall_share
+        return d
+
+
+def _check(trace: Trace, slots: list[int], prefetch: int, lookahead: int, costs: Costs, shared: bool) -> None:
+    L = trace.n_layers
+    if len(slots) != (1 if shared else L):
+        raise BadOption(f"{len(slots)} slot counts for a trace of {L} layers" + (" (a shared pool takes one)" if shared else ""))
+    if len(costs.attn) != L:
+        raise BadOption(f"{len(costs.attn)} per-layer costs for a trace of {L} layers")
+    if prefetch and trace.guesses is None:
+        raise BadTrace("this trace holds no guesses, so prefetch cannot be planned (record one with 'moerun record')")
+    if prefetch and (lookahead > trace.guesses.shape[2] or prefetch > trace.guesses.shape[3]):
+        raise BadOption(
+            f"the trace holds {trace.guesses.shape[3]} guesses for {trace.guesses.shape[2]} layers ahead; "
+            f"cannot plan --prefetch {prefetch} --lookahead {lookahead}"
+        )
+
+
+def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahead: int, costs: Costs,
+            shared: bool = False, max_tokens: int = SIM_TOKENS, step_misses=None) -> Prediction:
+    """Predict decode tok/s along ``trace`` (prefill tokens only warm the pool) for one setting.
+
+    ``step_misses(layer, slots)``, if given, returns that layer's (accesses, misses) per decode step for a
+    quota (a cache the planner's search keeps); otherwise they are replayed here."""
+    _check(trace, slots, prefetch, lookahead, costs, shared)
+    policies.get(policy)
+    if not prefetch and not shared:
+        return _additive(trace, slots, policy, costs, step_misses)
+    return _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_tokens)
+
+
+def step_misses(trace: Trace, policy: str, layer: int, capacities) -> dict:
+    """For each quota: (accesses, misses) per decode step of one layer, by replay."""
+    plan = layer_plans(trace)[layer]
+    flags = layer_misses(plan, policies.get(policy), list(capacities))
+    counted = plan.counted_per_access()
+    out = {}
+    for cap, miss in flags.items():
+        cs = np.concatenate([[0], np.cumsum(miss & counted)])
+        out[cap] = (plan.sizes[plan.counted], (cs[plan.starts[1:]] - cs[plan.starts[:-1]])[plan.counted])
+    return out
+
+
+# ---------------------------------------------------------------------------- prefetch off, one pool per layer
+
+
+def layer_step_ns(k: int, misses: int, c: dict) -> tuple[float, float]:
+    """(time, stall) of one decode layer step with ``misses`` of its ``k`` accesses missing, prefetch off.
+
+    Over an emulated link the misses are booked when the layer routes and travel one after the other;
+    the layer computes its resident experts, then for each miss copies its bytes (while the transfer
+    runs) and waits out the rest.  With real reads it reads each miss itself.
+    """
+    now = c["attn"] + (k - misses) * c["expert"]
+    t0 = c["attn"]
+    stall = 0.0
+    for i in range(misses):
+        if c["emulated"]:
+            end = t0 + (i + 1) * c["page"]
+            now += c["copy"]
+            if end > now:
+                stall += end - now + c["wait"]
+                now = end + c["wait"]
+        else:
+            now += c["page"]
+            stall += c["page"]
+        now += c["expert"]
+    return now, stall
+
+
+def _additive(trace: Trace, slots: list[int], policy: str, costs: Costs, cached=None) -> Prediction:
+    k = trace.top_k
+    P = prefill_tokens(trace)
+    per_access = costs.pool + costs.policy.get(policy, 0.0)
+    step = costs.head * (trace.n_tokens - P)
+    stall = 0.0
+    accesses = misses = 0
+    layer_hit = []
+    for layer in range(trace.n_layers):
+        sizes, per_step = cached(layer, slots[layer]) if cached else step_misses(trace, policy, layer, [slots[layer]])[slots[layer]]
+        c = {"attn": costs.attn[layer] + per_access * k, "expert": costs.expert, "page": costs.page, "copy": costs.copy,
+             "wait": costs.wait, "emulated": costs.emulated}
+        for n in np.unique(sizes):
+            for m in range(int(n) + 1):
+                count = int(((sizes == n) & (per_step == m)).sum())
+                if count:
+                    t, s = layer_step_ns(int(n), m, c)
+                    step += count * t
+                    stall += count * s
+        a, m_ = int(sizes.sum()), int(per_step.sum())
+        accesses += a
+        misses += m_
+        layer_hit.append(1 - m_ / a if a else 0.0)
+    n_tok = trace.n_tokens - P
+    step_s = step / n_tok if n_tok else 0.0
+    return Prediction(list(slots), policy, 0, 0, 1 / step_s if step_s else 0.0, step_s, stall / n_tok if n_tok else 0.0,
+                      accesses, misses, 0, layer_hit, False, n_tok)
+
+
+# ---------------------------------------------------------------------------- step by step
+
+
+class _Sim:
+    """The simulated engine: pools, link or reader queue, guesses in flight, and the clock (ns)."""
+
+    def __init__(self, trace, slots, policy, costs, shared, prefetch):
+        L, E = trace.n_layers, max(trace.n_experts, 1)
+        cls = policies.get(policy)
+        self.L, self.E, self.k = L, E, trace.top_k
+        if shared:
+            r = Residency(max(slots[0], 1), policies.make_policy(cls, L * E, E))
+            self.res = [r] * L
+            self.base = [layer * E for layer in range(L)]
+        else:
+            plans = layer_plans(trace)
+            self.res = [Residency(max(s, 1), plan_policy(cls, plans[layer])) for layer, s in enumerate(slots)]
+            self.base = [0] * L
+        self.signals = type(self.res[0].policy).routed is not policies.Policy.routed
+        ns = 1e9
+        self.c = {name: getattr(costs, name) * ns for name in ("expert", "head", "page", "wait", "copy", "guess", "place")}
+        self.attn = [a * ns + (costs.pool + costs.policy.get(policy, 0.0)) * ns * self.k for a in costs.attn]
+        self.emulated = costs.emulated
+        self.link = Link(1e9) if costs.emulated else None  # one "byte" per ns: a transfer booked as page ns
+        self.page = int(self.c["page"])
+        self.reader_free = 0.0  # real reads: when the reader finishes what it was given
+        self.timing = Timing(self.c["page"])
+        self.timing.copy_ns = self.c["copy"]
+        self.timing.late = costs.late
+        self.arrive: dict = {}  # key -> (Transfer or reader end time) of reads not yet taken in
+        self.guess_of: dict = {}  # key -> True while it holds a guess no layer has used
+        self.guessed: list[list[int]] = [[] for _ in range(L)]
+        self.now = 0.0
+        self.stall = 0.0
+        self.loads = 0
+
+    def arrival(self, key: int) -> float:
+        """When a key's bytes are (or will be) there: its transfer's end, or the reader's; 0 if there."""
+        a = self.arrive.get(key)
+        if a is None:
+            return 0.0
+        return float(self.link.ends(a, int(self.now))) if self.link is not None else a
+
+    def access_layer(self, layer: int, chosen: list[int], probs) -> tuple[list, set]:
+        """The layer's routing: drop its unchosen guesses, access its experts; returns the keys whose bytes
+        may not be there yet, and the keys that missed."""
+        r, base = self.res[layer], self.base[layer]
+        now = int(self.now)
+        for key in self.guessed[layer]:
+            if self.guess_of.get(key) and key - base not in chosen and key in r:
+                a = self.arrive.get(key)
+                if self.link is None or a is None or self.link.drop(a, now):
+                    r.remove(key)
+                    self._forget(key)
+                    self.timing.outcome(False)
+        self.guessed[layer] = []
+        self.timing.layer_started(now)
+        keys = [base + e for e in chosen]
+        if self.signals:
+            r.policy.routed(layer, chosen, probs, r.now)
+        out = r.access_step(keys, keys if len(keys) <= r.capacity else ())
+        waiting, missing = [], set()
+        for key, (hit, _, victim) in zip(keys, out):
+            if victim is not None:
+                if self.guess_of.get(victim):
+                    self.timing.outcome(False)
+                self._forget(victim)
+            if hit:
+                if self.guess_of.pop(key, False):
+                    self.timing.outcome(True)
+                    a = self.arrive.get(key)
+                    if self.link is not None and a is not None and a.end < 0:
+                        self.link.promote(a, now)
+                if key in self.arrive:
+                    waiting.append(key)
+            else:
+                missing.add(key)
+                self.arrive[key] = self.link.book(self.page, now, True) if self.link is not None else None
+                waiting.append(key)
+        return waiting, missing
+
+    def _forget(self, key) -> None:
+        self.arrive.pop(key, None)
+        self.guess_of.pop(key, None)
+
+    def place(self, layer: int, target: int, guesses: list[int]) -> None:
+        """The prefetch point of ``layer``: its guesses for ``target``, read if they pay (moerun.runtime.guesses)."""
+        r, base = self.res[target], self.base[target]
+        keep = tuple(base + e for e in guesses)
+        t = self.timing
+        need = t.need_at(self.now, target - layer)
+        for e in guesses:
+            key = base + e
+            if key in r:
+                continue
+            if self.link is not None:
+                arrival = self.link.backlog_until(int(self.now)) + self.page
+            else:
+                arrival = max(self.reader_free, self.now) + self.page
+            if not guess_pays(t, self.c["page"], arrival, need, self.c["place"]):
+                continue
+            try:
+                victim = r.victim(keep)
+            except Exception:  # NoVictim: nowhere to put it
+                continue
+            _, victim = r.place(key, victim)
+            if victim is not None:
+                if self.guess_of.get(victim):
+                    t.outcome(False)
+                self._forget(victim)
+            self.now += self.c["place"]
+            self.loads += 1
+            self.guess_of[key] = True
+            self.guessed[target].append(key)
+            if self.link is not None:
+                self.arrive[key] = self.link.book(self.page, int(self.now), False)
+            else:
+                self.reader_free = max(self.reader_free, self.now) + self.page
+                self.arrive[key] = self.reader_free
+
+    def experts(self, waiting: list[int], k: int, missing: set) -> None:
+        """Compute the layer's experts: those there first, then the others as they arrive."""
+        c = self.c
+        now = self.now
+        late = [(0.0 if key in missing and not self.emulated else self.arrival(key), key) for key in waiting]
+        behind = sorted((a, key) for a, key in late if a > now or key in missing)
+        for a, key in late:
+            if not (a > now or key in missing):
+                self.arrive.pop(key, None)
+        now += (k - len(behind)) * c["expert"]
+        for a, key in behind:
+            if key in missing:
+                if self.emulated:
+                    now += c["copy"]
+                    a = self.arrival(key)
+                else:  # a real read, on this thread
+                    self.stall += c["page"]
+                    now += c["page"]
+                    a = now
+            if a > now:
+                self.stall += a - now + c["wait"]
+                now = a + c["wait"]
+            now += c["expert"]
+            self.arrive.pop(key, None)
+        self.now = now
+
+
+def _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_tokens) -> Prediction:
+    L = trace.n_layers
+    P = prefill_tokens(trace)
+    T = min(trace.n_tokens, P + max_tokens)
+    sim = _Sim(trace, slots, policy, costs, shared, prefetch)
+    ex = trace.experts.tolist()
+    for layer in range(L):  # prefill: each layer's distinct experts once, ascending, pinned alone (as the pool does)
+        r, base = sim.res[layer], sim.base[layer]
+        for e in sorted({e for t in range(P) for e in ex[t][layer] if e >= 0}):
+            r.access(base + e, (base + e,))
+    g = trace.guesses.tolist() if prefetch else None
+    probs = trace.probs
+    accesses = misses = 0
+    layer_acc, layer_miss = [0] * L, [0] * L
+    for t in range(P, T):
+        for layer in range(L):
+            sim.now += sim.attn[layer]
+            chosen = sorted(e for e in ex[t][layer] if e >= 0)
+            waiting, missing = sim.access_layer(layer, chosen, probs[t, layer] if probs is not None else None)
+            m = len(missing)
+            accesses += len(chosen)
+            misses += m
+            layer_acc[layer] += len(chosen)
+            layer_miss[layer] += m
+            if prefetch and worth_guessing(sim.timing, sim.c["page"], sim.c["place"]):
+                sim.now += sim.c["guess"]
+                sim.timing.mark = int(sim.now)
+                for j in range(1, lookahead + 1):
+                    if layer + j < L:
+                        sim.place(layer, layer + j, [e for e in g[t][layer][j - 1][:prefetch] if e >= 0])
+            sim.experts(waiting, len(chosen), missing)
+        sim.now += sim.c["head"]
+    n = T - P
+    step_s = sim.now / 1e9 / n if n else 0.0
+    return Prediction(list(slots), policy, prefetch, lookahead if prefetch else 0, 1 / step_s if step_s else 0.0, step_s,
+                      sim.stall / 1e9 / n if n else 0.0, accesses, misses, sim.loads,
+                      [1 - mm / a if a else 0.0 for mm, a in zip(layer_miss, layer_acc)], shared, n)

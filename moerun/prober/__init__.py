@@ -1,0 +1,3 @@
+"""Probing: page-in latency and bandwidth on the user's storage, and the saved probe file the planner reads. Offline."""
+
+__all__ = ["pagein", "saved"]

@@ -1,0 +1,276 @@
+"""The reader process: copies guessed experts into the shared pool for the engine (standard library only).
+
+``moerun.runtime.reader.Reader`` starts this file as ``python -I -S reader_child.py ...``
+with four inherited descriptors: the shared memory (control words, then the
+pool's slots), the model file, and two doorbells (eventfds): one the engine
+rings when this process is blocked and a request comes, one this process rings
+after each result.  The layout of the control words is defined here and
+imported by the parent, so both sides read one definition.
+
+The engine's compute thread writes requests into a ring and goes on computing;
+this process reads them in the order asked (a request the engine has promoted,
+because a layer now waits for it, first), skips those the engine has cancelled
+before they started, copies each expert's bytes into its slot in chunks, and
+publishes the result by writing the request's generation into the slot's
+``DONE`` word last.  It only moves bytes: an emulated link's timing is kept by
+the engine (``moerun.runtime.link``), so how quickly this process wakes up never
+changes when a transfer ends.
+
+Nothing spins.  After its last request this process naps (``LINGER_NS``, in
+``LINGER_NAP_S`` sleeps) and then blocks on its doorbell; the engine, waiting
+for a result, blocks on its own.
+
+Being a separate process, it never competes for the engine's interpreter lock;
+that is its whole point (a reader thread costs the compute thread tens of
+microseconds per read on a 2-vCPU machine, see docs/offload.md).  It exits when
+told to stop, when the engine's process is gone, or when its descriptors fail.
+"""
+
+from __future__ import annotations
+
+import mmap
+import os
+import random
+import select
+import sys
+import time
+
+# control words (int64) at the start of the shared memory
+HEAD = 0  # requests written by the engine
+BLOCKED = 1  # the reader is blocked on its doorbell: the engine rings it after a request
+STOP = 2  # the engine asks the reader to exit
+BEAT = 4  # chunks copied so far: the engine's proof that this process is making progress
+JITTER_US = 5  # test hook: a random delay of 0..JITTER_US microseconds before each read
+SEED = 6  # test hook: seed of those delays
+FAIL_EVERY = 7  # test hook: every FAIL_EVERY-th read reports a failure
+READS = 8  # reads done
+PID = 9  # the reader's pid, written once it is serving
+DIE_AFTER = 11  # test hook: the process exits abruptly when it takes a request after this many reads
+PUBLISHED = 12  # results published (read, failed or skipped)
+EXPECT = 13  # when the engine expects to ask for more (monotonic ns): a lingering reader sleeps till then
+SLOT0 = 16  # per-slot words start here
+PER_SLOT = 8
+DONE, RESULT, START, NS, PROMOTE, CANCEL = range(6)  # offsets within a slot's words
+ENTRY = 8  # words per ring entry: slot, gen, offset, nbytes
+OK, SKIPPED, FAILED = 1, 2, 3
+
+CHUNK = 1024 * 1024  # copies go in chunks, so a cancel or a promotion is seen within one chunk
+# After its last request the reader lingers this long before it blocks on its doorbell.  While it
+# lingers the engine does not ring: waking a blocked process on another vCPU costs the waker
+# 12-80 us on a 2-vCPU VM (measured), more than a guess is worth.  Lingering is sleeping: until
+# the moment the engine said it expects to ask again (EXPECT), then naps that double from
+# LINGER_NAP_S up to LINGER_NAP_MAX_S.  Each wake-up costs this process tens of microseconds here.
+LINGER_NS = 5_000_000
+LINGER_NAP_S = 0.0001
+LINGER_NAP_MAX_S = 0.0008
+# A request can slip past the moment the reader blocks (the engine saw it still lingering), so
+# the first block after lingering is short.
+FIRST_BLOCK_S = 0.001
+# The reader runs at the lowest priority: on an idle core it runs as soon as it wakes, and on a busy
+# machine it never takes a core from the engine or another program (the engine copies what it has
+# not reached in time itself).
+NICE = 19
+IDLE_CHECK_S = 0.05  # while blocked, look this often whether the engine's process is still there
+
+
+def ctrl_words(n_slots: int, ring: int) -> int:
+    return SLOT0 + PER_SLOT * n_slots + ENTRY * ring
+
+
+def ring_base(n_slots: int) -> int:
+    return SLOT0 + PER_SLOT * n_slots
+
+
+def ctrl_bytes(n_slots: int, ring: int) -> int:
+    return -(-ctrl_words(n_slots, ring) * 8 // 4096) * 4096
+
+
+def drain(fd: int) -> None:
+    """Reset an eventfd doorbell (non-blocking)."""
+    try:
+        os.read(fd, 8)
+    except BlockingIOError:
+        pass
+
+
+class Request:
+    __slots__ = ("slot", "gen", "offset", "nbytes", "done", "start")
+
+    def __init__(self, words):
+        self.slot, self.gen, self.offset, self.nbytes = words
+        self.done = 0  # bytes copied so far
+        self.start = 0
+
+
+class Server:
+    def __init__(self, mem_fd, model_fd, wake_fd, done_fd, n_slots, slot_size, ring, mechanism, parent):
+        self.n_slots, self.slot_size, self.ring = n_slots, slot_size, ring
+        self.cb = ctrl_bytes(n_slots, ring)
+        self.mem = mmap.mmap(mem_fd, self.cb + n_slots * slot_size)
+        mv = memoryview(self.mem)
+        self.c = mv[: self.cb].cast("q")
+        self.pool = mv[self.cb :]
+        self.fd = model_fd
+        self.wake_fd = wake_fd
+        self.done_fd = done_fd
+        # This process always reads with preadv, whatever the engine's own mechanism: a mapped copy
+        # would die of SIGBUS if the file shrank under it, and nothing is mapped here to keep resident.
+        self.mechanism = mechanism.split("+")[0]
+        self.cold = mechanism.endswith("+cold")
+        self.parent = parent
+        self.r0 = ring_base(n_slots)
+        self.pending: list[Request] = []
+        self.seen = 0
+        self.rng = None
+        self.seed = None
+        self.nap = LINGER_NAP_S
+
+    def word(self, slot: int, which: int) -> int:
+        return self.c[SLOT0 + PER_SLOT * slot + which]
+
+    # ------------------------------------------------------------------ requests
+    def take(self) -> None:
+        c = self.c
+        h = c[HEAD]
+        while self.seen < h:
+            b = self.r0 + ENTRY * (self.seen % self.ring)
+            self.pending.append(Request(c[b : b + 4].tolist()))
+            self.seen += 1
+
+    def pick(self) -> Request | None:
+        """The first promoted request, else the first one asked; cancelled ones are skipped."""
+        first = None
+        for r in list(self.pending):
+            if self.word(r.slot, CANCEL) == r.gen:
+                self.pending.remove(r)
+                self.publish(r, SKIPPED, 0, 0)
+                continue
+            if self.word(r.slot, PROMOTE) == r.gen:
+                return r
+            if first is None:
+                first = r
+        return first
+
+    def publish(self, r: Request, result: int, start: int, ns: int) -> None:
+        c = self.c
+        b = SLOT0 + PER_SLOT * r.slot
+        c[b + RESULT] = result
+        c[b + START] = start
+        c[b + NS] = ns
+        c[b + DONE] = r.gen  # last: the engine reads the other words once it sees its generation here
+        c[PUBLISHED] += 1
+        try:
+            os.write(self.done_fd, b"\1\0\0\0\0\0\0\0")  # ring the engine's doorbell (a counter bump unless it waits)
+        except OSError:
+            pass
+
+    # ------------------------------------------------------------------ reads
+    def read(self, slot: int, off: int, n: int, at: int) -> bool:
+        """Read file bytes [off, off + n) into the slot at byte ``at`` (a short read is a failure)."""
+        base = slot * self.slot_size + at
+        dst = self.pool[base : base + n]
+        try:
+            got = 0
+            while got < n:
+                k = os.preadv(self.fd, [dst[got:]], off + got)
+                if k == 0:
+                    return False  # the file ended early (it shrank)
+                got += k
+            if self.cold:  # every read from the device: drop what was just read from the page cache
+                os.posix_fadvise(self.fd, off, n, os.POSIX_FADV_DONTNEED)
+            return True
+        except (OSError, ValueError):
+            return False
+
+    def advance(self, r: Request) -> None:
+        """Copy the request's next chunk; publish the request when its last chunk is in or a read fails."""
+        c = self.c
+        if r.done == 0:
+            if c[DIE_AFTER] and c[READS] >= c[DIE_AFTER]:
+                os._exit(70)  # a crash with this request outstanding
+            jitter = c[JITTER_US]
+            if jitter:
+                if self.seed != c[SEED]:
+                    self.seed = c[SEED]
+                    self.rng = random.Random(self.seed)
+                time.sleep(self.rng.uniform(0, jitter) / 1e6)
+            r.start = time.monotonic_ns()
+        k = min(CHUNK, r.nbytes - r.done)
+        ok = self.read(r.slot, r.offset + r.done, k, r.done)
+        c[BEAT] += 1
+        r.done += k
+        if ok and r.done < r.nbytes:
+            return
+        self.pending.remove(r)
+        c[READS] += 1
+        every = c[FAIL_EVERY]
+        if ok and every and c[READS] % every == 0:
+            ok = False
+        self.publish(r, OK if ok else FAILED, r.start, time.monotonic_ns() - r.start)
+
+    # ------------------------------------------------------------------ loop
+    def alive_parent(self) -> bool:
+        return os.getppid() == self.parent
+
+    def idle(self, last_work: int) -> bool:
+        """Nothing to do: linger, then block on the doorbell until the engine asks for something.
+        False when the engine is gone."""
+        c = self.c
+        now = time.monotonic_ns()
+        if now - last_work < LINGER_NS:
+            wait = (c[EXPECT] - now) / 1e9
+            if wait > LINGER_NAP_S:
+                time.sleep(min(wait, LINGER_NAP_MAX_S))
+                self.nap = LINGER_NAP_S
+            else:
+                time.sleep(self.nap)
+                self.nap = min(2 * self.nap, LINGER_NAP_MAX_S)
+            return True
+        c[BLOCKED] = 1
+        drain(self.wake_fd)  # a system call between raising the flag and reading HEAD again
+        self.take()
+        if not self.pending and not c[STOP]:
+            select.select([self.wake_fd], [], [], FIRST_BLOCK_S)
+            self.take()
+            while not self.pending and not c[STOP] and self.alive_parent():
+                select.select([self.wake_fd], [], [], IDLE_CHECK_S)
+                drain(self.wake_fd)
+                self.take()
+        c[BLOCKED] = 0
+        return self.alive_parent()
+
+    def run(self) -> None:
+        c = self.c
+        try:  # background work: on a busy machine this process yields to everything else, the engine included
+            os.nice(NICE)
+        except OSError:
+            pass
+        c[PID] = os.getpid()
+        last_work = 0  # so the reader blocks at once until the first request
+        while not c[STOP]:
+            self.take()
+            r = self.pick() if self.pending else None
+            if r is None:
+                if not self.idle(last_work):
+                    return
+                continue
+            self.advance(r)
+            last_work = time.monotonic_ns()
+            self.nap = LINGER_NAP_S
+
+
+def main(argv: list[str]) -> int:
+    mem_fd, model_fd, wake_fd, done_fd, n_slots, slot_size, ring = (int(a) for a in argv[:7])
+    mechanism = argv[7]
+    parent = int(argv[8])
+    try:
+        Server(mem_fd, model_fd, wake_fd, done_fd, n_slots, slot_size, ring, mechanism, parent).run()
+    except KeyboardInterrupt:
+        return 0
+    except OSError:  # a descriptor of the engine's failed: the engine is gone or closing
+        return 0
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main(sys.argv[1:]))

@@ -1,0 +1,447 @@
+"""The engine: a model with its store, pool, prefetcher and tokenizer; ``moerun.load``.
+
+``load(model_dir, mem_cap=...)`` sizes the budget, allocates the pool once,
+starts the prefetch reader process if asked, and returns an ``Engine`` whose
+``logits`` and ``generate`` run the numpy transformer with experts served by
+the pool.  ``engine.stats`` holds the run's measured figures.
+"""
+
+from __future__ import annotations
+
+import os
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from moerun import policies
+from moerun.errors import BadModelFile, BadOption
+from moerun.files.store import MECHANISMS, ModelStore
+from moerun.files.trace import TRACE_GUESSES, TRACE_LOOKAHEAD, Recorder, Trace, read_trace
+from moerun.model.config import RANDOM_NOTE
+from moerun.model.routing import ReplayedRouting
+from moerun.model.sampling import Sampler, Sampling
+from moerun.model.tokenizer import Tokenizer
+from moerun.model.transformer import KVCache, Transformer
+from moerun.runtime.budget import Budget, plan_budget
+from moerun.runtime.memwatch import MemWatch
+from moerun.runtime.pool import ExpertPool
+from moerun.runtime.prefetch import GuessRule, Prefetcher
+from moerun.runtime.reader import STALL_TIMEOUT_S, Reader
+from moerun.runtime.sources import BareExperts, NoReuseExperts, WholeLayerExperts
+from moerun.units import parse_rate, parse_size
+
+
+def _bundled_model() -> Path:
+    """tiny_models/pebble: shipped as the package ``moerun_models`` (pyproject.toml maps it to tiny_models/),
+    found through importlib.resources in any install; the source tree's copy when moerun runs uninstalled."""
+    try:
+        from importlib.resources import files
+
+        found = Path(str(files("moerun_models") / "pebble"))
+        if (found / "config.json").is_file():
+            return found
+    except (ImportError, TypeError, ValueError):
+        pass
+    return Path(__file__).resolve().parent.parent / "tiny_models" / "pebble"
+
+
+BUNDLED_MODEL = _bundled_model()
+
+
+def default_model_dir() -> Path:
+    env = os.environ.get("MOERUN_MODEL")
+    return Path(env) if env else BUNDLED_MODEL
+
+
+@dataclass
+class Generation:
+    prompt_ids: list[int]
+    new_ids: list[int]
+    text: str
+    stop: str  # "max-new" or "context-full"
+    prefill_ns: int
+    decode_ns: int
+    decode_steps: int
+    logits: list[np.ndarray] = field(default_factory=list)  # kept only when asked
+
+    @property
+    def prefill_tok_s(self) -> float:
+        return len(self.prompt_ids) / (self.prefill_ns / 1e9) if self.prefill_ns else 0.0
+
+    @property
+    def decode_tok_s(self) -> float:
+        return self.decode_steps / (self.decode_ns / 1e9) if self.decode_ns else 0.0
+
+
+class Engine:
+    def __init__(
+        self,
+        store: ModelStore,
+        tokenizer: Tokenizer | None,
+        budget: Budget,
+        experts,
+        reader: Reader | None,
+        memwatch: MemWatch,
+        options: dict,
+    ):
+        self.store = store
+        self.config = store.config
+        self.tokenizer = tokenizer
+        self.budget = budget
+        self.experts = experts
+        self.pool = experts if isinstance(experts, ExpertPool) else None
+        self.model = Transformer(store.config, store.dense)
+        store.release_dense(f"layers.{layer}.{part}" for layer in range(store.config.n_layers)
+                            for part in ("attn.wq", "attn.wk", "attn.wv"))  # now held once, fused as wqkv
+        self.cache = KVCache(store.config)
+        self.memwatch = memwatch
+        self.options = options
+        self.recorder: Recorder | None = None
+        self._recorder_rule: GuessRule | None = None
+        self._step_clock = 0
+        self.prefetch_from = options.get("prefetch_from", "attention")
+        self.prefetcher = None
+        if self.pool is not None and options.get("prefetch"):
+            rule = GuessRule(self.model, options["lookahead"])
+            self.prefetcher = Prefetcher(self.pool, rule, options["prefetch"], options["lookahead"], reader)
+
+    def replay_routing(self, routing) -> None:
+        """Take every layer's routing from a trace (a path or a Trace) from now on (moerun.model.routing)."""
+        label = str(routing) if not isinstance(routing, Trace) else "routing trace"
+        trace = routing if isinstance(routing, Trace) else read_trace(routing, n_experts=self.config.n_experts)
+        self.model.replayed = ReplayedRouting(trace, self.config, label)
+        self.options["routing"] = label
+
+    # ------------------------------------------------------------------ the prefetch point
+    def _seen(self):
+        """The callback the model shows its hidden states to (None when nothing needs them)."""
+        if self.recorder is not None:
+            return self._point
+        if self.prefetcher is not None and self.pool._all_resident is None:  # with every expert resident, nothing to fetch
+            return self._point
+        return None
+
+    def _point(self, layer: int, where: str, h: np.ndarray) -> None:
+        """After layer's attention ("attention") and after the whole layer ("output")."""
+        if self.prefetcher is not None and where == self.prefetch_from and h.shape[0] == 1:
+            self.prefetcher(layer, h)
+        if self.recorder is not None and where == "attention":
+            self.recorder.guessed(layer, self.guesses(layer, h, self.recorder.lookahead, self.recorder.n_guesses))
+
+    def guesses(self, layer: int, h: np.ndarray, lookahead: int, n: int) -> np.ndarray:
+        """The prefetch rule for every row of h: [T, lookahead, n] expert ids, -1 past the last layer."""
+        rule = self._recorder_rule
+        if rule is None or rule.lookahead < lookahead:
+            rule = self._recorder_rule = GuessRule(self.model, lookahead)
+        return rule.table(layer, h, lookahead, n)
+
+    # ------------------------------------------------------------------ passes
+    def _check_ids(self, ids) -> np.ndarray:
+        bad = BadOption(f"token ids must be whole numbers in 0..{self.config.vocab_size - 1} (a list or an integer array)")
+        if isinstance(ids, (str, bytes)):
+            raise bad
+        try:
+            raw = np.asarray(ids)
+            if raw.dtype.kind == "O":  # Python integers beyond int64, or mixed objects
+                raw = np.asarray(ids, dtype=np.int64)
+        except (ValueError, TypeError, OverflowError):
+            raise bad from None
+        if raw.size and (raw.dtype.kind not in "iuf" or (raw.dtype.kind == "f" and not (
+                np.isfinite(raw).all() and np.array_equal(raw, np.trunc(raw)) and np.abs(raw).max() < 2**62))):
+            raise bad  # text, booleans, fractions, NaN, infinities
+        ids = raw.astype(np.int64).reshape(-1)
+        if ids.size == 0:
+            raise BadOption("need at least one token")
+        if ids.size > self.config.max_seq_len:
+            raise BadOption(f"{ids.size} tokens exceed the model's context of {self.config.max_seq_len}")
+        if ids.min() < 0 or ids.max() >= self.config.vocab_size:
+            raise BadOption(f"token ids must lie in 0..{self.config.vocab_size - 1}")
+        return ids
+
+    def _finite(self, logits: np.ndarray) -> np.ndarray:
+        """The one check every command's numbers pass (generate, logits, score, record, verify): non-finite
+        logits mean damaged or overflowing weights; never report numbers computed from them."""
+        if not np.isfinite(logits).all():
+            raise BadModelFile(
+                f"{self.store.path}: the model computed non-finite logits; its weights are damaged or overflow float32"
+            )
+        return logits
+
+    def logits(self, token_ids) -> np.ndarray:
+        """Float32 logits [len, vocab_size] from one forward pass over the sequence."""
+        ids = self._check_ids(token_ids)
+        self.experts.begin_step(-1)
+        x = self.model.forward(ids, 0, self.cache, self.experts, self._seen())
+        return self._finite(self.model.logits(x))
+
+    def generate(
+        self,
+        prompt: str | None = None,
+        prompt_ids: list[int] | None = None,
+        max_new: int = 64,
+        sampling: Sampling | None = None,
+        on_token=None,
+        keep_logits: bool = False,
+    ) -> Generation:
+        """Prefill the prompt, then decode up to ``max_new`` tokens (stops early when the context is full)."""
+        if isinstance(max_new, bool) or not isinstance(max_new, int):
+            raise BadOption(f"max_new must be a whole number of tokens, got {max_new!r:.40}")
+        if max_new < 0:
+            raise BadOption(f"--max-new must be zero or more, got {max_new}")
+        if prompt_ids is None:
+            if self.tokenizer is None:
+                raise BadOption("this engine has no tokenizer; pass prompt_ids")
+            prompt_ids = self.tokenizer.encode(prompt or "")
+        if not prompt_ids:
+            bos = self.config.bos_token_id
+            prompt_ids = [bos if bos is not None else 0]
+        ids = self._check_ids(prompt_ids)
+        sampler = Sampler(sampling or Sampling())
+        kept: list[np.ndarray] = []
+        t0 = time.monotonic_ns()
+        seen = self._seen()
+        self.experts.begin_step(-1)
+        x = self.model.forward(ids, 0, self.cache, self.experts, seen)
+        logits = self._finite(self.model.logits(x[-1:])[0])
+        prefill_ns = time.monotonic_ns() - t0
+        self.memwatch.sample()
+        if keep_logits:
+            kept.append(logits.copy())
+        new: list[int] = []
+        pos = len(ids)
+        stop = "max-new"
+        decode_ns = 0
+        steps = 0
+        while len(new) < max_new:
+            tok = sampler(logits)
+            new.append(tok)
+            if on_token is not None:
+                on_token(tok)
+            if len(new) == max_new:
+                break
+            if pos >= self.config.max_seq_len:
+                stop = "context-full"
+                break
+            t1 = time.monotonic_ns()
+            self.experts.begin_step(self._step_clock)
+            self._step_clock += 1  # never repeats across generations, so stale guesses stay stale
+            x = self.model.forward(np.array([tok]), pos, self.cache, self.experts, seen)
+            logits = self._finite(self.model.logits(x)[0])
+            decode_ns += time.monotonic_ns() - t1
+            steps += 1
+            pos += 1
+            if keep_logits:
+                kept.append(logits.copy())
+            if steps % 32 == 0:
+                self.memwatch.sample()
+        self.memwatch.sample()
+        text = self.tokenizer.decode(new) if self.tokenizer is not None else ""
+        gen = Generation(list(map(int, ids)), new, text, stop, prefill_ns, decode_ns, steps, kept)
+        self.last = gen
+        return gen
+
+    # ------------------------------------------------------------------ tracing
+    def start_trace(self, lookahead: int = TRACE_LOOKAHEAD, n_guesses: int = TRACE_GUESSES) -> None:
+        n_guesses = min(n_guesses, self.config.n_experts)  # a model with fewer experts has fewer guesses to give
+        self.recorder = Recorder(self.config.n_layers, self.config.top_k, lookahead, n_guesses)
+        self.experts.recorder = self.recorder
+
+    def finish_trace(self, partial: bool = False, extra: dict | None = None) -> Trace:
+        rec = self.recorder
+        self.recorder = None
+        self.experts.recorder = None
+        meta = {
+            "source": "moerun",
+            "model": self.config.name,
+            "n_experts": self.config.n_experts,
+            "top_k": self.config.top_k,
+            "expert_bytes": self.store.expert_nbytes,
+            "evict": self.options.get("evict"),
+            "slots": list(self.budget.slots),
+            "split": self.budget.split,
+            "prefetch": self.options.get("prefetch", 0),
+            "lookahead": self.options.get("lookahead", 1),
+            "link_speed_emulated": self.options.get("link_speed"),
+            "partial": partial,
+            **({"synthetic": True, "note": RANDOM_NOTE} if self.config.extra.get("synthetic") else {}),
+            **(extra or {}),
+        }
+        return rec.to_trace(meta)
+
+    # ------------------------------------------------------------------ stats
+    @property
+    def stats(self) -> dict:
+        out = {
+            "budget": self.budget.to_json(),
+            "peak_rss_growth_bytes": self.memwatch.peak_growth(),
+            "options": dict(self.options),
+        }
+        if self.pool is not None:
+            out["pool"] = self.pool.stats.to_json()
+        if self.prefetcher is not None and self.prefetcher.reader is not None:
+            out["reader_alive"] = self.prefetcher.alive
+            out["reader_rss_bytes"] = self.prefetcher.reader.rss_bytes()
+        return out
+
+    def close(self) -> None:
+        if self.prefetcher is not None:
+            self.prefetcher.close()
+            self.prefetcher = None
+        self.store.close()
+
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        self.close()
+
+
+def _whole(v) -> bool:
+    return isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_))
+
+
+def _check_arguments(model_dir, evict, prefetch, lookahead, slots, split, mechanism, baseline, flags: dict) -> None:
+    """Types of load()'s arguments: the API refuses a float lookahead or string slots with BadOption, as the CLI does."""
+    if model_dir is not None and not isinstance(model_dir, (str, os.PathLike)):
+        raise BadOption(f"model_dir must be a path, got {type(model_dir).__name__}")
+    for name, v in (("evict", evict), ("split", split), ("mechanism", mechanism)):
+        if not isinstance(v, str):
+            raise BadOption(f"{name} must be text, got {v!r:.40}")
+    if baseline is not None and not isinstance(baseline, str):
+        raise BadOption(f"baseline must be text or None, got {baseline!r:.40}")
+    for name, v in (("prefetch", prefetch), ("lookahead", lookahead)):
+        if not _whole(v):
+            raise BadOption(f"{name} must be a whole number, got {v!r:.40}")
+    if slots is not None and (isinstance(slots, (str, bytes)) or not hasattr(slots, "__iter__")
+                              or not all(_whole(n) for n in slots)):
+        raise BadOption(f"slots must be a list of whole numbers (slots per layer), got {slots!r:.60}")
+    for name, v in flags.items():
+        if not isinstance(v, bool):
+            raise BadOption(f"{name} must be True or False, got {v!r:.40}")
+
+
+def load(
+    model_dir: str | os.PathLike | None = None,
+    mem_cap: int | str | None = None,
+    evict: str = "lru",
+    prefetch: int = 0,
+    lookahead: int = 1,
+    prefetch_from: str = "attention",
+    slots: list[int] | None = None,
+    split: str = "even",
+    link_speed: float | str | None = None,
+    cold: bool = False,
+    mechanism: str = "pread",
+    bare: bool = False,
+    tokenizer: bool = True,
+    baseline: str | None = None,
+    reader_timeout: float = STALL_TIMEOUT_S,
+    routing=None,
+    cold_reads: bool = False,
+) -> Engine:
+    """Open a model and return an engine (the public entry point, docs/architecture.md).
+
+    mem_cap: bytes (or "48MiB") for dense weights + KV cache + scratch + expert
+    pool; None keeps every expert resident.  slots: explicit slots per layer
+    (overrides split).  split: "even" per-layer quotas or "shared".
+    prefetch: guesses per layer (0 = off), lookahead: layers ahead.
+    link_speed: bytes/s (or "2GB/s") of an emulated slower link.
+    bare: every expert resident in plain buffers, no pool (speed reference).
+    baseline: "whole-layer" or "no-reuse", the naive offloading baselines of the benchmarks.
+    reader_timeout: seconds the prefetch reader may go without progress while the engine waits
+    before the engine stops it and reads every expert itself (docs/offload.md).
+    routing: a routing trace (path or moerun.files.trace.Trace): each layer takes its chosen experts and
+    weights from it instead of its router, everything else computed for real (moerun.model.routing).
+    cold_reads: every expert read comes from the device (each read range is dropped from the page
+    cache right after it is copied, as ``moerun probe``'s cold path does); ``cold`` drops the file once.
+    """
+    _check_arguments(model_dir, evict, prefetch, lookahead, slots, split, mechanism, baseline,
+                     {"cold": cold, "bare": bare, "tokenizer": tokenizer, "cold_reads": cold_reads})
+    _check_values(evict, prefetch, prefetch_from, lookahead, mechanism, split, slots, reader_timeout, baseline)
+    cap = parse_size(mem_cap, "memory cap") if mem_cap is not None else None
+    rate = parse_rate(link_speed, "link speed") if link_speed is not None else None
+    watch = MemWatch()
+    store = ModelStore.open(model_dir if model_dir is not None else default_model_dir())
+    reader = None
+    try:
+        c = store.config
+        tok = Tokenizer.load(store.model_dir, c.vocab_size, c.bos_token_id) if tokenizer else None
+        if cold or cold_reads:
+            store.drop_cache()
+        store.cold_reads = cold_reads
+        store.set_mechanism(mechanism)
+        chosen_split = list(slots) if slots is not None else split
+        budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, cap, chosen_split, store.codec.scratch_bytes())
+        store.link_rate = rate
+        if prefetch > 0 and not bare and baseline is None:  # guesses are read by the reader process
+            reader = Reader(store, budget.n_slots, budget.slot, reader_timeout)
+        experts = _expert_source(store, budget, evict, reader, bare, baseline, cap is None)
+        options = {
+            "mem_cap": cap,
+            "evict": evict,
+            "prefetch": prefetch,
+            "lookahead": lookahead,
+            "prefetch_from": prefetch_from,
+            "link_speed": rate,
+            "cold": cold,
+            "cold_reads": cold_reads,
+            "mechanism": mechanism,
+            "bare": bare,
+            "baseline": baseline,
+            "routing": None,
+        }
+        engine = Engine(store, tok, budget, experts, reader, watch, options)
+        if routing is not None:
+            engine.replay_routing(routing)
+        return engine
+    except BaseException:
+        if reader is not None:
+            reader.close()
+        store.close()
+        raise
+
+
+def _check_values(evict, prefetch, prefetch_from, lookahead, mechanism, split, slots, reader_timeout, baseline) -> None:
+    """load()'s settings, each against what it may be: one BadOption naming the first one out of range.
+
+    Checked before the model is opened, so a bad setting costs no file access and leaves nothing open.
+    """
+    policies.get(evict)
+    if prefetch < 0:
+        raise BadOption(f"--prefetch must be 0 (off) or a positive number of guesses, got {prefetch}")
+    if prefetch_from not in ("attention", "output"):
+        raise BadOption(f"prefetch point must be 'attention' or 'output', got {prefetch_from!r}")
+    if lookahead < 1:
+        raise BadOption(f"--lookahead must be at least 1, got {lookahead}")
+    if mechanism not in MECHANISMS:
+        raise BadOption(f"unknown page-in mechanism {mechanism!r}; known: {', '.join(MECHANISMS)}")
+    if split not in ("even", "shared"):
+        raise BadOption(f"split must be 'even' or 'shared', got {split!r}")
+    if isinstance(reader_timeout, bool) or not isinstance(reader_timeout, (int, float)) or not reader_timeout > 0:
+        raise BadOption(f"reader_timeout must be a positive number of seconds, got {reader_timeout!r:.40}")
+    if slots is not None and split == "shared":
+        raise BadOption("slots (per-layer quotas) and split='shared' (one pool for every layer) contradict each other; give one")
+    if baseline is not None and baseline not in BASELINES:
+        raise BadOption(f"unknown baseline {baseline!r}; known: {', '.join(BASELINES)}")
+
+
+BASELINES = {"whole-layer": WholeLayerExperts, "no-reuse": NoReuseExperts}
+
+
+def _expert_source(store: ModelStore, budget: Budget, evict: str, reader: Reader | None, bare: bool,
+                   baseline: str | None, all_resident: bool):
+    """Where the model gets its experts: the pool (the engine proper), or a reference without one.
+
+    ``bare`` keeps every expert in plain buffers (the speed reference); a ``baseline`` is one of the naive
+    offloading schemes the benchmarks compare against.  Without a cap the pool is filled up front.
+    """
+    if bare:
+        return BareExperts(store)
+    if baseline is not None:
+        return BASELINES[baseline](store)
+    pool = ExpertPool(store, budget, evict, reader)
+    if all_resident:
+        pool.preload_all()
+    return pool

@@ -1,0 +1,543 @@
+"""The resident expert pool: preallocated slots under the cap, pinning, page-in, timings.
+
+The pool is the *expert source* the model asks for weights (``moerun.runtime.sources.ExpertSource``):
+``routed`` does the residency bookkeeping for a layer's chosen experts in
+ascending id (the same order the replay uses), ``compute_order`` lists
+resident experts first, and ``weights`` returns an expert's float32 matrices
+once its bytes are in a slot.
+
+Slots are one preallocated, page-aligned block, written only by page-in; each
+has one ``Slot`` record.  Everything here runs on the compute thread.
+
+- A layer's own misses are read on the compute thread when the layer needs
+  them (it would wait for them anyway).  With an emulated link they are booked
+  on the link (``moerun.runtime.link``) as soon as the layer has routed, so they travel
+  while the layer computes the experts it has.
+- With prefetch on, ``prefetch`` places guesses.  A guess is read only if it
+  can arrive about when its layer needs it and the policy would rather hold it
+  than the expert it evicts (``Policy.admits``).  A guess whose layer starts
+  without it is dropped: its link time is given back, and its slot.
+- Who moves a guess's bytes: the reader process (``moerun.runtime.reader``), in the
+  background; the slot stays LOADING, and so cannot be evicted or reused, until
+  the reader publishes its result.  With an emulated link the transfer's time
+  is kept by the link, so the reader only has to have copied the bytes by the
+  time the layer needs them.  If it has not, the compute thread copies them
+  itself rather than wait (the reader is told to skip them); it also does so
+  for guesses still waiting when it has to wait for a transfer anyway.  Without
+  a live reader the compute thread copies every guess (PENDING until then).
+"""
+
+from __future__ import annotations
+
+import time
+
+import numpy as np
+
+from moerun import policies
+from moerun.errors import BadOption
+from moerun.files.store import ModelStore
+from moerun.runtime import _reader_child as reader_child
+from moerun.runtime.budget import Budget
+from moerun.runtime.clock import wait_until
+from moerun.runtime.guesses import GuessPlacement, Timing
+from moerun.runtime.residency import NoVictim, Residency
+from moerun.runtime.slots import EMPTY, HIT, LOADING, MISS, PENDING, PREFETCHED, READY, PoolStats, Slot
+from moerun.runtime.sources import ExpertSource, aligned_block
+
+
+def rd_poll_none(reader, s: Slot) -> bool:
+    """Has the reader not answered the slot's request yet?"""
+    return reader is None or reader.poll(s.index, s.gen) is None
+
+
+class ExpertPool(GuessPlacement, ExpertSource):
+    """Slots, residency per layer (or shared), and the expert-source interface for the model.
+
+    Everything here runs on the compute thread; with a reader (prefetch on), guesses are read by
+    the reader process (``moerun.runtime.reader``) and come back through shared memory.
+    """
+
+    # What one guess read costs the compute thread, beyond a copy of its own: placing it, handing
+    # it over, and the reader's copy competing with compute for the machine.  Measured on the
+    # bundled model on a 2-vCPU VM as the extra compute time per token with prefetch on, divided by
+    # the guesses read: 60-120 us (docs/offload.md, "Which guesses are read").
+    place_ns = 60_000
+
+    def __init__(self, store: ModelStore, budget: Budget, evict: str = "lru", reader=None):
+        super().__init__(store)
+        self.budget = budget
+        self.config = c = store.config
+        L, E = c.n_layers, c.n_experts
+        self.shared = budget.split == "shared"
+        n_slots = budget.n_slots
+        self.slot_size = budget.slot
+        if reader is not None:
+            block = reader.block
+        else:
+            block, self._raw = aligned_block(n_slots * self.slot_size)
+        block.fill(0)  # allocated once and touched now, so the cap is real from the start
+        bufs = [block[i * self.slot_size : (i + 1) * self.slot_size] for i in range(n_slots)]
+        self.slots = [Slot(i, b, store.codec.bind(b)) for i, b in enumerate(bufs)]
+        policy_cls = policies.get(evict)
+        if not getattr(policy_cls, "online", True):
+            raise BadOption(f"policy {evict!r} needs the future of the trace; use it with 'moerun replay' only")
+        self.evict = evict
+        if self.shared:
+            r = Residency(n_slots, policies.make_policy(policy_cls, L * E, E))
+            self.res_of = [r] * L
+            self.base = [layer * E for layer in range(L)]  # key of (layer, expert): base[layer] + expert
+        else:
+            self.res_of = []
+            start = 0
+            for n in budget.slots:
+                self.res_of.append(Residency(n, policies.make_policy(policy_cls, E), list(range(start, start + n))))
+                start += n
+            self.base = [0] * L
+        self.signals = type(self.res_of[0].policy).routed is not policies.Policy.routed
+        self.pinned: tuple = ()
+        self.stats = PoolStats(L)
+        self.progress = -1  # step * n_layers + layer of the layer being computed
+        self.reader = reader  # guesses are read by it while it is alive (real reads only)
+        self.link = store.link  # the emulated link, or None
+        self.timing = Timing(self.link.ns(store.expert_nbytes) if self.link is not None else 100_000.0)
+        self._guessed: list[list[Slot]] = [[] for _ in range(L)]  # guesses placed for each layer, not yet met by it
+        self._owed: list[Slot] = []  # slots read here while the reader still held them
+        self._pending: list[Slot] = []  # guesses booked on the emulated link, bytes not copied yet
+        self._prefill = False
+        self._ready = False
+        self._events: dict = {}
+        self._all_resident = None  # set by preload_all when every expert is resident
+
+    # ------------------------------------------------------------------ keys
+    def key(self, layer: int, expert: int) -> int:
+        return self.base[layer] + expert
+
+    def residency(self, layer: int) -> Residency:
+        return self.res_of[layer]
+
+    def _reading(self) -> bool:
+        """Can guesses be read: over the emulated link (copied here), or by a live reader process."""
+        return self.link is not None or (self.reader is not None and self.reader.alive)
+
+    def resident(self, layer: int, expert: int) -> bool:
+        """Is the expert resident or on its way (no read needed)?"""
+        return self.base[layer] + expert in self.res_of[layer].slot_of
+
+    # ------------------------------------------------------------------ loading
+    def preload_all(self) -> None:
+        """Fill every slot in layer, expert order (the fully resident configuration).
+
+        When every expert fits, decode takes a fast path with no residency bookkeeping
+        (an access can only hit); a policy is still told nothing it could act on.
+        """
+        c = self.config
+        for layer in range(c.n_layers):
+            r = self.res_of[layer]
+            for e in range(c.n_experts):
+                if len(r.slot_of) >= r.capacity:
+                    break
+                slot, _ = r.insert(self.key(layer, e))
+                s = self.slots[slot]
+                self.store.copy_in(layer, e, s.buf)
+                s.layer, s.expert, s.state, s.res = layer, e, READY, r
+        E = c.n_experts
+        if all(all(self.resident(layer, e) for e in range(E)) for layer in range(c.n_layers)):
+            self._all_resident = [
+                {e: [HIT, self.res_of[layer].slot_of[self.key(layer, e)], 0, 0] for e in range(E)} for layer in range(c.n_layers)
+            ]
+
+    def _usable_at(self, s: Slot, now: int) -> int:
+        """When a READY slot's bytes may be used: the end of its emulated transfer, or when they arrived."""
+        t = s.transfer
+        if t is None:
+            return s.ready_at
+        return t.end if t.end >= 0 else self.link.ends(t, now)
+
+    def _settle(self, s: Slot, wait: bool = False) -> None:
+        """Take in the result of a LOADING (or owed) slot's background read, if it is there (or once it
+        is, with ``wait``)."""
+        if s.state != LOADING and not s.owed:
+            return
+        rd = self.reader
+        got = rd.wait(s.index, s.gen) if wait else rd.poll(s.index, s.gen)
+        if got is None:
+            if rd.alive:
+                return
+            got = (reader_child.FAILED, 0, 0)  # the reader died with this read outstanding
+        if rd.stalled:
+            self.stats.reader_stalled = True
+        result, start, ns = got
+        self.timing.outstanding -= 1
+        key = self.key(s.layer, s.expert)
+        r = s.res
+        r.busy.discard(key)
+        if s.owed:  # read here already; the reader has let go of it now
+            s.owed = False
+            if s.dropped:  # and its layer went without it meanwhile
+                self._unclaimed(s, key)
+            return
+        st = self.stats
+        if s.dropped and (result != reader_child.OK or s.transfer is not None):
+            s.state = EMPTY
+            self._unclaimed(s, key)  # dropped while the reader held it: its bytes never (emulated: officially) arrived
+            return
+        s.dropped = False
+        if result == reader_child.OK:
+            s.state = READY
+            s.ready_at = start + ns
+            s.read_ns = ns
+            self.timing.observed(ns)
+            st.bytes_in += self.store.expert_nbytes
+            st.prefetch_ns += ns
+            return
+        s.state = EMPTY  # the reader has let go of it, without its bytes
+        if result == reader_child.FAILED:
+            st.prefetch_failed += 1
+        if s.guess:  # a guess no layer has claimed: forget it
+            self._unclaimed(s, key)
+            return
+        self._claimed_empty(s)  # a layer that claimed it reads it itself
+
+    def _unclaimed(self, s: Slot, key: int) -> None:
+        """A guess whose bytes did not arrive: give its slot back, unless the layer being computed has
+        just chosen it (its access may be served but not yet seen by ``routed``): then it stays, empty,
+        for the layer to read."""
+        if key in self.pinned:
+            self._claimed_empty(s)
+        else:
+            self._give_back(s)
+
+    def _claimed_empty(self, s: Slot) -> None:
+        """The slot stays with its expert, empty: the layer that wants it reads it (as a miss would)."""
+        s.state = EMPTY
+        s.guess = s.dropped = False
+        if s.transfer is not None:
+            self.link.drop(s.transfer, time.monotonic_ns())
+            s.transfer = None
+
+    def _give_back(self, s: Slot) -> None:
+        """Forget a guess's slot: it becomes free (never while the reader may still write it)."""
+        assert s.state != LOADING and not s.owed, "a slot the reader may still write is never given back"
+        if s.guess:
+            self.timing.outcome(False)
+        if s.guess and s.state != PENDING:
+            self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
+        s.res.remove(self.key(s.layer, s.expert))
+        s.state = EMPTY
+        s.guess = s.dropped = False
+        s.layer = s.expert = -1
+        s.res = s.transfer = None
+
+    def _settle_owed(self) -> None:
+        for s in self._owed:
+            self._settle(s)
+        self._owed = [s for s in self._owed if s.owed]
+
+    def _settle_busy(self, r: Residency) -> None:
+        for key in list(r.busy):
+            self._settle(self.slots[r.slot_of[key]])
+
+    def _evicted(self, s: Slot) -> None:
+        """Bookkeeping when a READY (or PENDING) slot's expert is evicted."""
+        if s.guess:
+            self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
+            self.timing.outcome(False)
+            s.guess = False
+        if s.transfer is not None and s.transfer.end < 0:
+            self.link.drop(s.transfer, time.monotonic_ns())
+        s.state = EMPTY
+        s.layer = s.expert = -1
+        s.res = s.transfer = None
+
+    def _access_step(self, r: Residency, keys: tuple) -> list:
+        """``Residency.access_step`` for a decode layer, waiting while every evictable slot has a read
+        outstanding."""
+        done = None
+        while True:
+            try:
+                return r.access_step(keys, keys, done)
+            except NoVictim as e:  # a background read is outstanding in every free slot; one will finish
+                done = e.done
+                self._wait_for_room(r, keys)
+
+    def _access(self, r: Residency, key: int, pinned) -> tuple[bool, int]:
+        """``Residency.access``, waiting while every evictable slot has a read outstanding."""
+        while True:
+            try:
+                hit, slot, victim = r.access(key, pinned)
+                break
+            except NoVictim:  # a background read is outstanding in every free slot; one will finish
+                self._wait_for_room(r, pinned)
+        if victim is not None:
+            self._evicted(self.slots[slot])
+        return hit, slot
+
+    def _wait_for_room(self, r: Residency, pinned) -> None:
+        since = self.reader.published()  # before looking: a result published after this wakes the wait
+        self._settle_busy(r)
+        if r.busy and not r.candidates(pinned):
+            self.reader.wait_any(since)
+
+    # ------------------------------------------------------------------ expert source
+    def begin_step(self, step: int) -> None:
+        self.step = step
+        self._prefill = step < 0
+
+    def begin_layer(self, layer: int) -> None:
+        if self.recorder is not None:
+            self._layer_t0 = time.monotonic_ns()
+
+    def routed(self, layer: int, chosen: np.ndarray, weights: np.ndarray, probs: np.ndarray) -> None:
+        if self.recorder is not None:
+            self.recorder.routed(self.step, layer, chosen, weights, probs)
+        if chosen.shape[0] != 1 or self._prefill:  # prefill accesses happen per expert in weights()
+            return
+        st = self.stats
+        if self._all_resident is not None and self.recorder is None:
+            # every expert is resident and nothing is ever evicted: every access is a hit
+            k = chosen.shape[1]
+            st.accesses[layer] += k
+            st.hits[layer] += k
+            self._events = self._all_resident[layer]
+            return
+        ids = chosen[0].tolist()
+        base = self.base[layer]
+        r = self.res_of[layer]
+        now = time.monotonic_ns()
+        self.progress = self.step * self.config.n_layers + layer
+        if self._owed:
+            self._settle_owed()
+        if self._guessed[layer]:
+            self._meet_guesses(layer, ids, now)
+        self.timing.layer_started(now)
+        pinned = self.pinned = tuple(ids) if not base else tuple(base + e for e in ids)
+        if self.signals:
+            r.policy.routed(layer, ids, probs[0], r.now)  # optional per-step signal (Policy.routed)
+        slots, link = self.slots, self.link
+        events = {}
+        misses = 0
+        ready = True  # every chosen expert usable now: compute_order has nothing to sort
+        for e, (hit, slot, victim) in zip(ids, self._access_step(r, pinned)):
+            s = slots[slot]
+            if not hit:
+                if victim is not None:
+                    self._evicted(s)
+                s.layer, s.expert, s.state, s.res = layer, e, EMPTY, r  # read by weights() when the layer needs it
+                # on its way from now, with an emulated link
+                s.transfer = link.book(self.store.expert_nbytes, now, True) if link is not None else None
+                events[e] = [MISS, slot, 0, 0]  # kind, slot, pagein ns, stall ns
+                misses += 1
+                ready = False
+            elif s.guess:
+                s.guess = False
+                self.timing.outcome(True)
+                st.prefetch_used += 1
+                st.prefetch_hits[layer] += 1
+                events[e] = [PREFETCHED, slot, 0, 0]
+                ready = False
+                if s.dropped:  # cancelled a moment ago, the reader still holding it: ask for it again
+                    s.dropped = False
+                    if link is not None:
+                        s.transfer = link.book(self.store.expert_nbytes, now, True)
+                elif s.transfer is not None and s.transfer.end < 0:
+                    link.promote(s.transfer, now)
+                if s.state == LOADING:
+                    self.reader.promote(s.index, s.gen)
+            else:
+                st.hits[layer] += 1
+                events[e] = [HIT, slot, 0, 0]
+                if s.state != READY or s.transfer is not None:
+                    ready = False
+        st.accesses[layer] += len(ids)
+        st.misses[layer] += misses
+        self._events = events
+        self._ready = ready
+
+    def compute_order(self, layer: int, ids: list[int]):
+        """Resident experts first, then those in flight or still to read (outputs are summed in id order anyway)."""
+        if self._prefill or self._ready:
+            return range(len(ids))
+        ev = self._events
+        now = time.monotonic_ns()
+        ready = []
+        slots = self.slots
+        for j, e in enumerate(ids):
+            s = slots[ev[e][1]]
+            if s.state == LOADING:
+                self._settle(s)
+            if s.state == READY and self._usable_at(s, now) <= now:
+                ready.append(j)
+        if len(ready) == len(ids):
+            return range(len(ids))
+        return ready + [j for j in range(len(ids)) if j not in ready]
+
+    def weights(self, layer: int, expert: int):
+        ev = self._events.get(expert)
+        if self._prefill or ev is None:
+            return self._prefill_weights(layer, expert)
+        s = self.slots[ev[1]]
+        if ev[0] == PREFETCHED:  # did the reader copy it in time, or is it the compute thread's to copy?
+            self.timing.copied_here(s.state == PENDING or (s.state == LOADING and rd_poll_none(self.reader, s)))
+        if s.state == READY and s.transfer is None:
+            if ev[0] == PREFETCHED:
+                self._hidden(s, time.monotonic_ns())
+            return self.codec.weights(s.bound)
+        t0 = time.monotonic_ns()
+        if s.state == READY and self._usable_at(s, t0) <= t0:
+            if ev[0] == PREFETCHED:
+                self._hidden(s, t0)
+            s.transfer = None  # arrived: later uses need not ask the link
+            return self.codec.weights(s.bound)
+        if s.state == LOADING:
+            self._settle(s)
+            if s.state == LOADING:  # the reader has not got to it: read it here rather than wait
+                self._take_over(s)
+        elif s.state == PENDING:
+            self._copy(s)
+        if s.state == EMPTY:  # a miss, or a guess whose read failed: read it here
+            ev[2] = self._read_here(s, False)
+        else:
+            self._wait(self._usable_at(s, time.monotonic_ns()))  # the rest of its emulated transfer
+            if ev[0] == PREFETCHED:
+                self._hidden(s, t0)
+        stall = time.monotonic_ns() - t0
+        ev[3] = stall
+        self.stats.stall_ns[layer] += stall
+        s.transfer = None  # arrived: later uses need not ask the link
+        return self.codec.weights(s.bound)
+
+    def _hidden(self, s: Slot, asked: int) -> None:
+        """A used guess: the part of its transfer (or read) done before its layer asked for it was hidden."""
+        t = s.transfer
+        if t is not None:
+            self.link.run(asked)
+            start, end = t.start, self._usable_at(s, asked)
+        else:
+            start, end = s.ready_at - s.read_ns, s.ready_at
+        if start >= 0:
+            self.stats.hidden_ns += max(0, min(end, asked) - start)
+
+    def _copy(self, s: Slot) -> bool:
+        """Copy a PENDING guess's bytes (its emulated transfer is kept by the link).  A guess is advisory:
+        if the read fails, the slot is left EMPTY for a layer that claimed it to read itself (where a
+        lasting fault raises), or given back if none did; False then."""
+        try:
+            ns = self.store.copy_in(s.layer, s.expert, s.buf)
+        except Exception:
+            self.stats.prefetch_failed += 1
+            if s.transfer is not None:
+                self.link.drop(s.transfer, time.monotonic_ns())
+                s.transfer = None
+            if s.guess:
+                s.state = READY  # so that give_back counts it as it does a read guess
+                self._give_back(s)
+            else:
+                s.state = EMPTY
+            return False
+        self.timing.copied(ns)
+        s.state = READY
+        s.read_ns = ns
+        self.stats.bytes_in += self.store.expert_nbytes
+        self.stats.prefetch_ns += ns
+        self.stats.prefetch_copied_here += 1
+        return True
+
+    def _wait(self, deadline: int) -> None:
+        """Wait for an emulated transfer's end, copying waiting guesses meanwhile while there is time."""
+        if self._pending:
+            margin = self.timing.copy_ns
+            pending = self._pending
+            while pending and time.monotonic_ns() + margin < deadline:
+                s = pending.pop(0)
+                if s.state == LOADING:
+                    self._settle(s)
+                    if s.state == LOADING:
+                        self._take_over(s)
+                elif s.state == PENDING:
+                    self._copy(s)
+        wait_until(deadline)
+
+    def _take_over(self, s: Slot) -> None:
+        """Read a LOADING guess on this thread: the reader is told to skip it, and the slot stays out of
+        reach of eviction until the reader answers (it may be copying the same bytes meanwhile, which
+        is harmless: they are the same bytes)."""
+        self.reader.cancel(s.index, s.gen)
+        self.store.copy_in(s.layer, s.expert, s.buf)
+        self.stats.prefetch_copied_here += 1
+        s.state = READY
+        s.owed = True
+        s.ready_at = time.monotonic_ns()
+        self.stats.bytes_in += self.store.expert_nbytes
+        self._owed.append(s)
+
+    def _read_here(self, s: Slot, prefill: bool) -> int:
+        """Read an EMPTY claimed slot on this thread and wait out its emulated transfer; returns the page-in ns."""
+        st = self.stats
+        link = self.link
+        if link is not None and s.transfer is None:
+            s.transfer = link.book(self.store.expert_nbytes, time.monotonic_ns(), True)
+        s.gen += 1
+        try:
+            ns = self.store.copy_in(s.layer, s.expert, s.buf)
+        except BaseException:
+            s.res.remove(self.key(s.layer, s.expert))
+            s.state = EMPTY
+            s.layer = s.expert = -1
+            s.res = s.transfer = None
+            raise
+        now = time.monotonic_ns()
+        s.state = READY
+        s.ready_at = now
+        st.bytes_in += self.store.expert_nbytes
+        t = s.transfer
+        if t is not None:
+            end = max(link.ends(t, now), now)
+            link.hold(t, now)  # a read slower than the link ends when the read did
+            self._wait(end)
+            link.run(end)
+            ns = end - t.start
+        s.read_ns = ns
+        if t is None:  # a real read: what a guess's read will take too
+            self.timing.observed(ns)
+        st.pagein_ns[s.layer] += ns
+        if prefill:
+            st.prefill_loads += 1
+        else:
+            st.demand_loads += 1
+        return ns
+
+    def _prefill_weights(self, layer: int, expert: int):
+        """Prefill: each needed expert is accessed (and paged in) once per layer, pinned alone."""
+        key = self.key(layer, expert)
+        self.progress = max(self.progress, -1)
+        pinned = self.pinned = (key,)
+        r = self.res_of[layer]
+        t0 = time.monotonic_ns()
+        hit, slot = self._access(r, key, pinned)
+        s = self.slots[slot]
+        if hit:
+            s.guess = s.dropped = False
+            if s.transfer is not None and s.transfer.end < 0:
+                self.link.promote(s.transfer, t0)
+            if s.state == LOADING:
+                self._settle(s)
+                if s.state == LOADING:
+                    self._take_over(s)
+            elif s.state == PENDING:
+                self._copy(s)
+        else:
+            s.layer, s.expert, s.state, s.res, s.transfer = layer, expert, EMPTY, r, None
+        if s.state == READY:
+            self._wait(self._usable_at(s, time.monotonic_ns()))  # the rest of an emulated transfer
+        else:
+            self._read_here(s, True)
+        self.stats.stall_ns[layer] += time.monotonic_ns() - t0
+        return self.codec.weights(s.bound)
+
+    def end_layer(self, layer: int) -> None:
+        if self.recorder is not None and not self._prefill:
+            stall = sum(ev[3] for ev in self._events.values())
+            compute = time.monotonic_ns() - self._layer_t0 - stall
+            self.recorder.events(self.step, layer, self._events, compute)
+        self.pinned = ()
+

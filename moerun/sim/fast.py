@@ -1,0 +1,208 @@
+"""Fast paths of the replay: the same hits and misses as the reference path (``replay_plan.generic_misses``).
+
+For the built-in policies (tests/test_replay.py checks equality on random and recorded traces):
+
+- LRU, numpy-vectorised.  With every step's experts pinned and steps no
+  larger than the quota, the resident set before a step is exactly the
+  ``slots`` most recently used experts (proof in ``_lru_misses``), so an
+  access hits iff fewer than ``slots`` distinct experts were used between its
+  previous use and the start of its step.  That count serves every quota at
+  once.  (Pinning does change LRU's choices compared with plain LRU: a step's
+  later expert may be the least recently used one, and pinning keeps it.)
+- FIFO, LFU and the optimum: one tight loop each over plain lists, choosing
+  the same victim as the policy object (ties included).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+
+import numpy as np
+
+from moerun.policies import FIFO, LFU, LRU, Optimal, Policy
+from moerun.sim.steps import LayerPlan, generic_misses
+
+
+def _dense(keys: np.ndarray) -> tuple[np.ndarray, int]:
+    """Expert ids renumbered 0..U-1 (keeping their order), and U; ids below 256 are kept as they are."""
+    if keys.size == 0:
+        return keys.astype(np.int64), 0
+    top = int(keys.max())
+    if top < 256:
+        return keys, top + 1
+    present = np.zeros(top + 1, bool)
+    present[keys] = True
+    remap = np.cumsum(present) - 1
+    return remap[keys], int(remap[-1]) + 1
+
+
+def _lru_misses(plan: LayerPlan, capacities: Sequence[int]) -> dict[int, np.ndarray]:
+    """LRU with pinning for several quotas at once, vectorised.
+
+    Claim: if every step has at most C accesses, all pinned, the resident set
+    before each step is the C most recently used experts (or every expert
+    used so far, if fewer).  Induction over steps: with R the C most recent
+    before step S, the step's hits are S & R (pinned, never evicted during
+    the step), and each miss evicts the least recently used of R - S (pinned
+    experts are never candidates, and the step touches only S, so the order
+    of R - S does not change).  So afterwards R' = S + the most recent
+    C - |S| of R - S, and R - S holds the most recent experts outside S, so
+    R' is the C most recent.  Hence access i of expert x hits iff x was used
+    before and fewer than C distinct experts were used after x's previous use
+    and before the start of i's step: that count is the rank of x in the
+    "last use" row at the step start, computed here for all steps at once.
+    """
+    out: dict[int, np.ndarray] = {}
+    maxstep = int(plan.sizes.max(initial=0))
+    groups: dict[int, list[int]] = {}
+    for c in capacities:
+        groups.setdefault(min(c, max(maxstep, 1)), []).append(c)
+    for split_at, caps in groups.items():
+        p = plan.split(split_at)
+        seen, rank = _lru_ranks(p)
+        for c in caps:
+            out[c] = ~(seen & (rank < c))
+    return out
+
+
+def _lru_ranks(plan: LayerPlan, chunk: int = 1 << 17) -> tuple[np.ndarray, np.ndarray]:
+    """Per access: whether its expert was used before, and its LRU rank at the start of its step.
+
+    Works through the steps in chunks that stay in cache.  ``last[e, r]`` is the
+    last use of expert e before local step r (column 0: before the chunk), one
+    row per expert; the rank of an access is the number of experts whose last use
+    is later than its own previous use.
+    """
+    keys, U = _dense(plan.keys)
+    n = keys.shape[0]
+    seen = np.zeros(n, bool)
+    rank = np.zeros(n, np.int32)
+    if n == 0:
+        return seen, rank
+    dt = np.int32 if n < 2**31 - 1 else np.int64
+    cnt_dt = np.uint8 if U < 256 else np.int32
+    sizes, starts, m = plan.sizes, plan.starts, plan.uniform
+    carry = np.full(U, -1, dt)
+    steps_per_chunk = max(1, chunk // U)
+    s0 = 0
+    while s0 < plan.n_steps:
+        s1 = min(plan.n_steps, s0 + steps_per_chunk)
+        ns = s1 - s0
+        a0, a1 = int(starts[s0]), int(starts[s1])
+        k = keys[a0:a1].astype(np.intp)
+        local = np.arange(a1 - a0) // m if m else np.repeat(np.arange(ns), sizes[s0:s1])
+        last = np.full((U, ns + 1), -1, dt)
+        last[:, 0] = carry
+        flat = last.reshape(-1)
+        where = k * (ns + 1) + local
+        flat[where + 1] = np.arange(a0, a1, dtype=dt)
+        np.maximum.accumulate(last, axis=1, out=last)
+        carry = last[:, -1].copy()
+        before = last[:, :-1]
+        pk = flat[where]  # the previous use of each access's expert
+        seen[a0:a1] = pk >= 0
+        if m:  # every step has m accesses: compare whole rows, no gather of columns
+            for j in range(m):
+                rank[a0 + j : a1 : m] = np.add.reduce((before > pk[j::m]).view(np.uint8), axis=0, dtype=cnt_dt)
+        else:
+            rank[a0:a1] = np.add.reduce((before[:, local] > pk).view(np.uint8), axis=0, dtype=cnt_dt)
+        s0 = s1
+    return seen, rank
+
+
+def _next_use(keys: np.ndarray) -> np.ndarray:
+    """For each access, the index of the next access to the same key; n + 1 if none (as ``Optimal``)."""
+    n = keys.shape[0]
+    nxt = np.full(n, n + 1, np.int64)
+    if n:
+        order = np.argsort(keys, kind="stable")
+        same = keys[order[1:]] == keys[order[:-1]]
+        nxt[order[:-1][same]] = order[1:][same]
+    return nxt
+
+
+def _loop_misses(plan: LayerPlan, capacity: int, mode: str) -> np.ndarray:
+    """FIFO, LFU or the optimum in one plain loop; the same victims as the policy objects.
+
+    Residents are kept in insertion order (the order of ``Residency.slot_of``),
+    so ties pick the same victim as ``min``/``max`` over the candidates there.
+    Scores (lowest is evicted): FIFO load time; LFU count * (n + 2) + last use;
+    optimum minus the next use (the policy's ``n + 1`` for never again).
+    """
+    plan = plan.split(capacity)
+    keys, U = _dense(plan.keys)
+    n = keys.shape[0]
+    kl = keys.tolist()
+    st = plan.starts.tolist()
+    miss = bytearray(n)
+    score = [0] * U
+    count = [0] * U
+    resident = bytearray(U)
+    res: list[int] = []
+    C = capacity
+    is_opt = mode == "optimal"
+    is_lfu = mode == "lfu"
+    nl = (-_next_use(keys)).tolist() if is_opt else None
+    big = n + 2
+    for s in range(len(st) - 1):
+        a = st[s]
+        b = st[s + 1]
+        cand = None
+        for i in range(a, b):
+            x = kl[i]
+            if resident[x]:
+                if is_opt:
+                    score[x] = nl[i]
+                elif is_lfu:
+                    c = count[x] + 1
+                    count[x] = c
+                    score[x] = c * big + i
+                continue
+            miss[i] = 1
+            if len(res) >= C:
+                if cand is None:
+                    step = kl[a:b]  # pinned: never candidates
+                    cand = [y for y in res if y not in step]
+                v = min(cand, key=score.__getitem__)
+                cand.remove(v)
+                res.remove(v)
+                resident[v] = 0
+            res.append(x)
+            resident[x] = 1
+            if is_opt:
+                score[x] = nl[i]
+            elif is_lfu:
+                count[x] = 1
+                score[x] = big + i
+            else:
+                score[x] = i
+    return np.frombuffer(bytes(miss), np.uint8).astype(bool)
+
+
+def _fast_fifo(plan, capacities):
+    return {c: _loop_misses(plan, c, "fifo") for c in capacities}
+
+
+def _fast_lfu(plan, capacities):
+    return {c: _loop_misses(plan, c, "lfu") for c in capacities}
+
+
+def _fast_optimal(plan, capacities):
+    return {c: _loop_misses(plan, c, "optimal") for c in capacities}
+
+
+# Fast paths by exact class: a subclass may change behaviour, so it takes the generic path.
+FAST_PATHS: dict[type, Callable[[LayerPlan, Sequence[int]], dict[int, np.ndarray]]] = {
+    LRU: _lru_misses,
+    FIFO: _fast_fifo,
+    LFU: _fast_lfu,
+    Optimal: _fast_optimal,
+}
+
+
+def layer_misses(plan: LayerPlan, policy_cls: type[Policy], capacities: Sequence[int], fast: bool = True) -> dict[int, np.ndarray]:
+    """Miss flag per access of one layer for each quota, by the fast path when there is one."""
+    f = FAST_PATHS.get(policy_cls) if fast else None
+    if f is not None:
+        return f(plan, capacities)
+    return {c: generic_misses(plan, policy_cls, c) for c in capacities}

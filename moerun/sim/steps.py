@@ -1,0 +1,272 @@
+"""The access schedule of a replay and its one step loop: per-layer plans, the shared plan, ``walk``.
+
+What a replay does (docs/traces.md has the long form):
+
+- Every layer has its own quota of ``slots`` experts and starts empty, as the
+  live pool does under a cap with per-layer quotas; or (``shared_plan``) one
+  pool serves every layer, in the order the live engine accesses it.
+- The first ``prefill_tokens`` tokens (trace meta, default 0) are one prefill
+  block: per layer, each distinct expert of those tokens is accessed once, in
+  ascending id, pinned alone.  These loads are counted as ``prefill_loads``,
+  not as accesses or misses (the live pool counts them the same way).
+- Every later token is a decode step: per layer, its chosen experts are
+  accessed in ascending id with all of them pinned, so none of them can evict
+  another.  When the quota is smaller than the number of chosen experts (the
+  live pool refuses that), they are accessed one after another, each pinned
+  alone.
+
+A replay is a list of *steps* per pool (``LayerPlan``): the accesses of one
+step share one pinned set.  The source of truth is ``generic_misses``, which
+drives ``residency.Residency`` with a policy object from ``moerun.policies``,
+exactly the objects the live pool uses, through ``walk``.  The fast paths of
+``moerun.sim.fast`` give the same hits and misses.
+"""
+
+from __future__ import annotations
+
+import functools
+from collections.abc import Callable
+from dataclasses import dataclass
+
+import numpy as np
+
+from moerun.errors import BadTrace
+from moerun.files.trace import Trace
+from moerun.policies import Policy, make_policy
+from moerun.runtime.residency import Residency
+
+
+@dataclass
+class LayerPlan:
+    """The accesses of one pool in order, grouped into steps that share a pinned set: one layer's
+    quota (keys are expert ids), or the pool shared by all layers (``shared_plan``: keys are
+    ``layer * shared_experts + expert`` and ``layers`` says whose step each one is)."""
+
+    keys: np.ndarray  # int [n] keys in access order
+    sizes: np.ndarray  # int [n_steps] accesses per step
+    counted: np.ndarray  # bool [n_steps]: a decode access (counted) or a prefill load (not counted)
+    token: np.ndarray  # int [n_steps] token index of each step
+    layer: int = 0  # the layer these accesses belong to (for ``Policy.routed``); unused in a shared plan
+    # the router probabilities, if the trace has them: float32 [tokens, n_experts] of ``layer``, or
+    # [tokens, layers, n_experts] in a shared plan
+    probs: np.ndarray | None = None
+    layers: np.ndarray | None = None  # int [n_steps] the layer of each step (a shared plan), None: ``layer``
+    shared_experts: int = 0  # a shared plan: experts per layer (key = layer * shared_experts + expert); 0 otherwise
+
+    @property
+    def n(self) -> int:
+        return int(self.keys.shape[0])
+
+    @property
+    def n_steps(self) -> int:
+        return int(self.sizes.shape[0])
+
+    @functools.cached_property
+    def starts(self) -> np.ndarray:
+        """int64 [n_steps + 1] offsets of the steps in ``keys``."""
+        starts = np.zeros(self.n_steps + 1, np.int64)
+        np.cumsum(self.sizes, out=starts[1:])
+        return starts
+
+    @functools.cached_property
+    def uniform(self) -> int:
+        """m when every step has m > 0 accesses, else 0."""
+        if self.n_steps == 0 or self.sizes[0] <= 0:
+            return 0
+        return int(self.sizes[0]) if (self.sizes == self.sizes[0]).all() else 0
+
+    def counted_per_access(self) -> np.ndarray:
+        return np.repeat(self.counted, self.sizes)
+
+    def split(self, capacity: int) -> LayerPlan:
+        """The same accesses with every step larger than ``capacity`` split into single accesses."""
+        big = self.sizes > capacity
+        if not big.any():
+            return self
+        n_each = np.where(big, self.sizes, 1)
+        sizes = np.where(np.repeat(big, n_each), 1, np.repeat(self.sizes, n_each))
+        layers = np.repeat(self.layers, n_each) if self.layers is not None else None
+        return LayerPlan(self.keys, sizes, np.repeat(self.counted, n_each), np.repeat(self.token, n_each), self.layer, self.probs,
+                         layers, self.shared_experts)
+
+    @property
+    def n_keys(self) -> int:
+        """Size of the key space (a policy's per-key lists)."""
+        if self.shared_experts:
+            return (int(self.layers.max(initial=0)) + 1) * self.shared_experts  # every layer has a step per token
+        return int(self.keys.max(initial=-1)) + 1
+
+    def access_layers(self) -> np.ndarray:
+        """int [n] the layer of each access."""
+        if self.layers is None:
+            return np.full(self.n, self.layer, np.int64)
+        return np.repeat(self.layers, self.sizes)
+
+
+def prefill_tokens(trace: Trace) -> int:
+    """The trace's prefill block length (meta ``prefill_tokens``, default 0), validated."""
+    p = trace.meta.get("prefill_tokens", 0)
+    if p is None:
+        return 0
+    if isinstance(p, bool) or not isinstance(p, int) or not 0 <= p <= trace.n_tokens:
+        raise BadTrace(f"meta prefill_tokens must be a whole number from 0 to the trace's {trace.n_tokens} tokens, got {p!r}")
+    return p
+
+
+def _key_dtype(experts: np.ndarray):
+    top = int(experts.max(initial=0))
+    return np.int16 if top < 2**15 else np.int32 if top < 2**31 else np.int64
+
+
+def _rows(experts: np.ndarray, dt) -> tuple[np.ndarray, np.ndarray]:
+    """Rows sorted ascending with padding dropped: (keys in row order, count per row)."""
+    T, k = experts.shape
+    if k == 1 or (experts[:, 1:] > experts[:, :-1]).all():
+        if T == 0 or experts[:, 0].min() >= 0:  # ascending and unpadded already (every live trace)
+            return experts.astype(dt).reshape(-1), np.full(T, k, np.int32)
+    rows = np.sort(experts, axis=-1)
+    valid = rows >= 0
+    return rows[valid].astype(dt), valid.sum(axis=-1).astype(np.int32)
+
+
+def _layer_plan(experts: np.ndarray, P: int, dt=np.int64) -> LayerPlan:
+    """The steps of one layer: experts [tokens, top_k] of that layer, P prefill tokens."""
+    T = experts.shape[0]
+    parts_keys, parts_sizes, parts_counted, parts_token = [], [], [], []
+    if P >= 1:
+        needed = np.unique(experts[:P])
+        needed = needed[needed >= 0].astype(dt)
+        parts_keys.append(needed)
+        parts_sizes.append(np.ones(needed.shape[0], np.int32))
+        parts_counted.append(np.zeros(needed.shape[0], bool))
+        parts_token.append(np.full(needed.shape[0], P - 1, np.int64))
+    keys, sizes = _rows(experts[P:], dt)
+    parts_keys.append(keys)
+    parts_sizes.append(sizes)
+    parts_counted.append(np.ones(T - P, bool))
+    parts_token.append(np.arange(P, T, dtype=np.int64))
+
+    def cat(parts):
+        return parts[0] if len(parts) == 1 else np.concatenate(parts)
+
+    return LayerPlan(cat(parts_keys), cat(parts_sizes), cat(parts_counted), cat(parts_token))
+
+
+def shared_plan(trace: Trace) -> LayerPlan:
+    """The accesses of one pool shared by all layers, in the order the live engine makes them.
+
+    Keys are ``layer * n_experts + expert``.  Prefill (``prefill_tokens`` > 0): layer by layer, each
+    distinct expert of the prefill tokens once, in ascending id, pinned alone (as ``ExpertPool``'s
+    prefill path, which the model calls per layer and distinct expert).  Then token by token, layer
+    by layer, one step per layer: its chosen experts in ascending id, all pinned.
+    """
+    P = prefill_tokens(trace)
+    T, L, k = trace.experts.shape
+    E = trace.n_experts
+    dt = np.int16 if L * E < 2**15 else np.int32 if L * E < 2**31 else np.int64
+    keys, sizes, counted, token, layers = [], [], [], [], []
+    if P >= 1:
+        for layer in range(L):
+            needed = np.unique(trace.experts[:P, layer])
+            needed = needed[needed >= 0].astype(dt) + dt(layer * E)
+            keys.append(needed)
+            n = needed.shape[0]
+            sizes.append(np.ones(n, np.int32))
+            counted.append(np.zeros(n, bool))
+            token.append(np.full(n, P - 1, np.int64))
+            layers.append(np.full(n, layer, np.int64))
+    rows, n_each = _rows(trace.experts[P:].reshape(-1, k), dt)  # rows in (token, layer) order
+    row_layer = np.tile(np.arange(L, dtype=np.int64), T - P)
+    keys.append((rows + np.repeat(row_layer * E, n_each)).astype(dt))
+    sizes.append(n_each)
+    counted.append(np.ones(row_layer.shape[0], bool))
+    token.append(np.repeat(np.arange(P, T, dtype=np.int64), L))
+    layers.append(row_layer)
+    cat = np.concatenate
+    return LayerPlan(cat(keys), cat(sizes), cat(counted), cat(token), 0, trace.probs, cat(layers), E)
+
+
+def layer_plans(trace: Trace) -> list[LayerPlan]:
+    P = prefill_tokens(trace)
+    dt = _key_dtype(trace.experts)
+    plans = [_layer_plan(trace.experts[:, layer, :], P, dt) for layer in range(trace.n_layers)]
+    for layer, plan in enumerate(plans):
+        plan.layer = layer
+        plan.probs = trace.probs[:, layer, :] if trace.probs is not None else None
+    return plans
+
+
+# ---------------------------------------------------------------------------- the generic path (source of truth)
+
+
+def plan_policy(cls: type[Policy], plan: LayerPlan) -> Policy:
+    """A policy object for replaying one pool: keys are a layer's expert ids, or a shared plan's
+    ``layer * n_experts + expert``, as the live pool's; an offline one gets the access sequence."""
+    return make_policy(cls, plan.n_keys, plan.shared_experts, plan.keys.tolist())
+
+
+def routed_hook(policy: Policy, plan: LayerPlan) -> Callable[[int, int, int, int], None] | None:
+    """``hook(s, a, b, now)`` telling ``policy.routed`` about decode step s (accesses a..b-1), or None.
+
+    None when the policy does not override ``Policy.routed`` (nothing to tell).  As in the live
+    pool, only decode steps are signalled, before their accesses, with the step's layer, its expert
+    ids and the token's router probabilities for that layer (None when the trace holds no ``probs``).
+    """
+    if type(policy).routed is Policy.routed:
+        return None
+    keys, counted, token, probs = plan.keys, plan.counted, plan.token, plan.probs
+    if plan.layers is None:
+        layer = plan.layer
+
+        def hook(s: int, a: int, b: int, now: int) -> None:
+            if counted[s]:
+                policy.routed(layer, keys[a:b].tolist(), probs[token[s]] if probs is not None else None, now)
+
+        return hook
+    layers, E = plan.layers.tolist(), plan.shared_experts
+
+    def shared_hook(s: int, a: int, b: int, now: int) -> None:
+        if counted[s]:
+            layer = layers[s]
+            chosen = (keys[a:b] - layer * E).tolist()
+            policy.routed(layer, chosen, probs[token[s], layer] if probs is not None else None, now)
+
+    return shared_hook
+
+
+def walk(plan: LayerPlan, res: Residency, before: Callable[[int], None] | None = None):
+    """Serve ``plan``'s steps through ``res`` as the live pool does; yields ``(s, a, b, served)`` after each.
+
+    The one step loop of every replay on the reference path (misses, prefetch, pictures; per-layer
+    quotas and the shared pool alike).  For step s, accesses a..b-1: ``before(s)`` if given (a
+    prefetch's inserts), then ``Policy.routed`` for a decode step, then the accesses in order with
+    the whole step pinned, or each pinned alone when the step is larger than the pool (the live pool
+    refuses such quotas).  ``served`` is ``[(hit, slot, evicted key or None), ...]`` per access.
+    """
+    keys = plan.keys.tolist()
+    starts = plan.starts.tolist()
+    hook = routed_hook(res.policy, plan)
+    capacity = res.capacity
+    for s in range(len(starts) - 1):
+        a, b = starts[s], starts[s + 1]
+        if before is not None:
+            before(s)
+        if hook is not None:
+            hook(s, a, b, res.now)
+        step = keys[a:b]
+        if b - a <= capacity:
+            served = res.access_step(step, step)
+        else:
+            served = [res.access(k, (k,)) for k in step]
+        yield s, a, b, served
+
+
+def generic_misses(plan: LayerPlan, policy_cls: type[Policy], capacity: int) -> np.ndarray:
+    """Miss flag per access, from ``Residency`` and a policy object (the live pool's code path)."""
+    res = Residency(capacity, plan_policy(policy_cls, plan))
+    miss = bytearray(plan.n)
+    for _, a, _, served in walk(plan, res):
+        for i, (hit, _, _) in enumerate(served, a):
+            if not hit:
+                miss[i] = 1
+    return np.frombuffer(bytes(miss), np.uint8).astype(bool)

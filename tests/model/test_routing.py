@@ -1,0 +1,53 @@
+"""moerun.model.routing: routing replayed from a trace; with a model's own trace it changes no number."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+import moerun
+from moerun.errors import BadTrace
+from moerun.files.trace import Trace
+from moerun.model.sampling import Sampling
+
+SAMPLING = Sampling(temperature=0.8, top_p=0.95, seed=11)
+
+
+def _bits(a) -> np.ndarray:
+    return np.ascontiguousarray(a, dtype=np.float32).view(np.uint32)
+
+
+def test_a_run_with_its_own_recorded_routing_gives_the_same_logits_and_tokens_bit_for_bit(pebble):
+    prompt = list(range(5, 25))
+    with moerun.load(pebble, tokenizer=False) as eng:
+        eng.start_trace()
+        ref = eng.generate(prompt_ids=prompt, max_new=40, sampling=SAMPLING, keep_logits=True)
+        trace = eng.finish_trace()
+    with moerun.load(pebble, tokenizer=False, routing=trace, mem_cap="13MiB") as eng:
+        got = eng.generate(prompt_ids=prompt, max_new=40, sampling=SAMPLING, keep_logits=True)
+        assert eng.options["routing"] == "routing trace"
+    assert got.new_ids == ref.new_ids
+    assert np.array_equal(_bits(np.stack(got.logits)), _bits(np.stack(ref.logits)))
+
+
+def test_replayed_routing_is_what_the_layers_choose(small_model):
+    # another model's routing: the layers choose exactly the trace's experts, row by row, wrapping round
+    rng = np.random.default_rng(0)
+    T = 7
+    ex = np.sort(np.stack([[rng.choice(8, 2, replace=False) for _ in range(3)] for _ in range(T)]), axis=-1)
+    trace = Trace(ex, meta={"n_experts": 8})
+    with moerun.load(small_model, tokenizer=False, routing=trace) as eng:
+        eng.start_trace()
+        eng.generate(prompt_ids=[1, 2, 3], max_new=10, sampling=SAMPLING)
+        seen = eng.finish_trace().experts
+    assert seen.shape[0] == 3 + 9  # the prompt, then one row per decode step
+    assert np.array_equal(seen, ex[np.arange(12) % T])
+
+
+@pytest.mark.parametrize(
+    "experts, phrase",
+    [(np.zeros((4, 2, 2), np.int64), "layers"), (np.full((4, 3, 2), 9), "outside"), (np.ones((4, 3, 2), np.int64), "twice")],
+)
+def test_routing_that_does_not_fit_the_model_is_refused(small_model, experts, phrase):
+    with pytest.raises(BadTrace, match=phrase):
+        moerun.load(small_model, tokenizer=False, routing=Trace(experts, meta={"n_experts": 10}))

@@ -1,0 +1,234 @@
+"""The planner: the time model against hand-computed values, monotone curves, splits, and bad inputs."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from _planning import US, _costs, _random_trace, _trace  # noqa: F401  (shared with test_timeline)
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from moerun.cli.main import main
+from moerun.errors import BadInput
+from moerun.files.trace import write_trace
+from moerun.planner.search import best_split, even_split, hit_curves, load_shape, predict
+
+# ---------------------------------------------------------------------------- hand-computed
+
+
+# ---------------------------------------------------------------------------- properties
+
+
+@settings(max_examples=15, deadline=None)
+@given(st.integers(0, 10_000))
+def test_predicted_speed_never_falls_as_the_cap_grows_for_lru(seed):
+    # LRU is a stack algorithm (Mattson, Gecsei, Slutz and Traiger, "Evaluation techniques for
+    # storage hierarchies", IBM Systems Journal 9(2), 1970): more slots never add misses, so with
+    # no prefetch the predicted time per token can only fall.
+    trace = _random_trace(np.random.default_rng(seed))
+    costs = _costs(L=3)
+    speeds = [predict(trace, even_split(total, 3, 8), "lru", 0, 1, costs).tok_s for total in range(6, 25)]
+    assert all(b >= a - 1e-9 for a, b in zip(speeds, speeds[1:]))
+
+
+@settings(max_examples=20, deadline=None)
+@given(st.integers(0, 10_000), st.integers(6, 24))
+def test_the_uneven_split_never_has_more_misses_than_the_even_one(seed, total):
+    trace = _random_trace(np.random.default_rng(seed))
+    curves = hit_curves(trace, "lru", 8)
+    even = even_split(total, 3, 8)
+    uneven = best_split(curves, total, 2, 8)
+    assert sum(uneven) <= total
+    assert all(2 <= s <= 8 for s in uneven)
+    misses = lambda split: sum(curves[layer][s - 1] for layer, s in enumerate(split))  # noqa: E731
+    assert misses(uneven) <= misses(even)
+
+
+def test_best_split_matches_exhaustive_search_on_a_small_case():
+    curves = [[9, 5, 4, 4], [9, 8, 2, 1], [9, 6, 5, 0]]
+    import itertools
+
+    brute = min((sum(c[s - 1] for c, s in zip(curves, split)), split)
+                for split in itertools.product(range(1, 5), repeat=3) if sum(split) <= 7)
+    got = best_split(curves, 7, 1, 4)
+    assert sum(c[s - 1] for c, s in zip(curves, got)) == brute[0]
+
+
+# ---------------------------------------------------------------------------- bad inputs
+
+
+def _run(args, capsys):
+    code = main(args)
+    captured = capsys.readouterr()
+    return code, captured.out, captured.err
+
+
+def test_a_cap_below_the_minimum_is_refused_naming_the_smallest_cap(small_model, tmp_path, capsys):
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(0), layers=3, experts=8))
+    code, out, err = _run(["plan", "--model", str(small_model), "--mem-cap", "1000", "--link-speed", "1GB/s",
+                           "--trace", str(trace)], capsys)
+    assert code == 2 and out == ""
+    assert len(err.strip().splitlines()) == 1 and "smallest cap that works is" in err
+
+
+@pytest.mark.parametrize("rate", ["0", "0GB/s", "-1GB/s", "fast"])
+def test_a_zero_negative_or_unreadable_link_speed_is_refused(small_model, rate, capsys):
+    code, out, err = _run(["plan", "--model", str(small_model), "--mem-cap", "1GiB", f"--link-speed={rate}"], capsys)
+    assert code == 2 and out == "" and len(err.strip().splitlines()) == 1
+
+
+def _shape(tmp_path, **over):
+    doc = {"layers": 2, "experts": 4, "top_k": 2, "expert_bytes": 1 << 20, "dense_bytes": 1 << 22,
+           "expert_us": 50.0, "dense_layer_us": 100.0}
+    doc.update(over)
+    p = tmp_path / "shape.json"
+    p.write_text(json.dumps(doc))
+    return p
+
+
+def test_a_shape_file_whose_top_k_exceeds_its_experts_is_refused(tmp_path):
+    with pytest.raises(BadInput, match="contradicts itself"):
+        load_shape(_shape(tmp_path, top_k=5))
+
+
+def test_a_trace_that_disagrees_with_the_shape_file_is_refused(tmp_path, capsys):
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(0), layers=3, experts=4))  # 3 layers, shape says 2
+    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path)), "--trace", str(trace), "--mem-cap", "64MiB",
+                           "--link-speed", "1GB/s"], capsys)
+    assert code == 2 and out == "" and "layers" in err
+
+
+def test_a_shape_file_plans_a_model_too_big_to_run_here(tmp_path, capsys):
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(1), layers=2, experts=4))
+    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path)), "--trace", str(trace), "--mem-cap", "12MiB",
+                           "--link-speed", "1GB/s", "--json"], capsys)
+    assert code == 0, err
+    doc = json.loads(out)
+    assert doc["recommended"]["tok_s"] > 0
+    pts = [p["tok_s"] for p in doc["curve"]["points"]]
+    assert all(b >= a for a, b in zip(pts, pts[1:]))
+
+
+def test_target_answers_the_smallest_cap_whose_plan_reaches_it(tmp_path, capsys):
+    # a model too big to run here (shape file), 4 layers of 8 experts: the curve steps 4 slots (one per layer) at a time,
+    # so the answer must come from a one-slot search; a plan at that cap reaches the target and a plan
+    # one slot below does not (the planner checked against itself: no outside value exists for this)
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(2), layers=4, experts=8))
+    shape = _shape(tmp_path, layers=4, experts=8)
+    common = ["plan", "--shape", str(shape), "--trace", str(trace), "--link-speed", "1GB/s", "--evict", "lru", "--json"]
+    code, out, err = _run([*common, "--mem-cap", "64MiB"], capsys)
+    assert code == 0, err
+    pts = json.loads(out)["curve"]["points"]
+    mid = [(a, b) for a, b in zip(pts, pts[1:]) if b["tok_s"] > a["tok_s"]][len(pts) // 3]
+    target = (mid[0]["tok_s"] + mid[1]["tok_s"]) / 2  # between two curve points
+    code, out, err = _run([*common, "--target", f"{target:.3f}"], capsys)
+    assert code == 0, err
+    cap = json.loads(out)["target"]["smallest_cap_bytes"]
+    assert mid[0]["cap_bytes"] < cap <= mid[1]["cap_bytes"]
+    best = lambda c: json.loads(_run([*common, "--mem-cap", str(c)], capsys)[1])["recommended"]["tok_s"]  # noqa: E731
+    assert best(cap) >= target
+    assert best(cap - (1 << 20)) < target  # one slot (expert_bytes = 1 MiB) less
+
+
+# ---------------------------------------------------------------------------- hostile inputs: cache, shape and probe files
+
+
+@pytest.mark.parametrize(("text", "phrase"), [
+    ("[" * 100_000 + "]" * 100_000, "nested too deeply"),
+    ('{"layers": 1' + "0" * 5000 + "}", "not a JSON document"),  # past Python's 4300-digit limit
+    ("SHAPE_WITH:layers=" + str(10**30), "layers"),
+    ("SHAPE_WITH:dense_bytes=1.5", "dense_bytes"),
+    ("SHAPE_WITH:expert_bytes=2.5", "expert_bytes"),
+    ("SHAPE_WITH:expert_us=1e400", "expert_us"),
+])
+def test_a_hostile_shape_file_gives_one_line(tmp_path, capsys, text, phrase):
+    if text.startswith("SHAPE_WITH:"):
+        key, value = text[len("SHAPE_WITH:") :].split("=")
+        path = _shape(tmp_path, **{key: json.loads(value) if value != "1e400" else 1e400})
+        if value == "1e400":
+            path.write_text(path.read_text().replace("Infinity", "1e400"))
+    else:
+        path = tmp_path / "shape.json"
+        path.write_text(text)
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(0), layers=2, experts=4))
+    code, out, err = _run(["plan", "--shape", str(path), "--trace", str(trace), "--mem-cap", "64MiB", "--link-speed", "1GB/s"], capsys)
+    assert code == 2 and out == "" and len(err.strip().splitlines()) == 1 and phrase in err
+
+
+def _probe_doc() -> dict:
+    run = {"regime": "warm", "verified": True, "reason": None, "runs": 3, "discarded": 0, "p50_ms": 0.1, "p95_ms": 0.2,
+           "p99_ms": 0.3, "max_ms": 0.4, "mean_ms": 0.15, "gb_s": 4.0, "of_ceiling": 0.5}
+    return {"schema": "moerun-probe/1", "machine": {}, "ceiling": {"gb_s": 8.0}, "runs": 3,
+            "blocks": [{"label": "64 KiB", "source": "tempfile", "bytes": 65536, "warm": run, "cold": {**run, "regime": "cold"}}]}
+
+
+@pytest.mark.parametrize("damage", ["huge block size", "fractional block size", "label not UTF-8", "huge run count"])
+def test_a_hostile_probe_file_gives_one_line_in_plan(small_model, tmp_path, capsys, damage):
+    doc = _probe_doc()
+    block = doc["blocks"][0]
+    if damage == "huge block size":
+        block["bytes"] = 10**300
+    elif damage == "fractional block size":
+        block["bytes"] = 65536.5
+    elif damage == "label not UTF-8":
+        block["label"] = "\udcff"
+    else:
+        doc["runs"] = 10**40
+    path = tmp_path / "probe.json"
+    path.write_text(json.dumps(doc))  # ASCII JSON; a lone surrogate is spelled as the escape \\udcff
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(0), layers=3, experts=8))
+    code, out, err = _run(["plan", "--model", str(small_model), "--probe", str(path), "--trace", str(trace), "--mem-cap", "1GiB"], capsys)
+    assert code == 2 and out == "" and len(err.strip().splitlines()) == 1 and str(path) in err
+
+
+def test_the_curve_steps_one_slot_per_layer_as_the_docs_say(tmp_path, capsys):
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(3), layers=4, experts=8))
+    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path, layers=4, experts=8)), "--trace", str(trace),
+                           "--mem-cap", "64MiB", "--link-speed", "1GB/s", "--evict", "lru", "--json"], capsys)
+    assert code == 0, err
+    totals = [p["slots_total"] for p in json.loads(out)["curve"]["points"]]
+    assert totals == list(range(4 * 2, 4 * 8 + 1, 4))  # from top_k per layer to every expert, one slot per layer a step
+
+
+def test_a_trace_without_guesses_is_a_bad_trace_in_plan_and_replay_alike():
+    from moerun import policies
+    from moerun.errors import BadTrace
+    from moerun.sim.report import simulate_prefetch
+
+    t = _trace([0, 1, 0, 1])
+    with pytest.raises(BadTrace, match="no guesses"):
+        predict(t, [1], "lru", 1, 1, _costs())
+    with pytest.raises(BadTrace, match="no guesses"):
+        simulate_prefetch(t, policies.get("lru"), 1, 1, 1)
+
+
+# ---------------------------------------------------------------------------- costs the planner charges
+
+
+def test_bad_inputs_are_refused_before_any_calibration(small_model, tmp_path, capsys):
+    import time
+
+    from moerun.planner.calibration import cache_dir, model_key
+
+    bad = tmp_path / "t.npz"
+    bad.write_bytes(b"not a zip archive")
+    cases = [["--mem-cap", "1GiB", "--link-speed", "1GB/s", "--trace", str(bad)],
+             ["--mem-cap", "1KiB", "--link-speed", "1GB/s", "--trace", str(bad)],
+             ["--mem-cap", "1", "--link-speed", "1GB/s"]]
+    path = cache_dir() / f"calibration-{model_key(small_model)}.json"
+    path.unlink(missing_ok=True)
+    for args in cases:
+        t0 = time.monotonic()
+        assert main(["plan", "--model", str(small_model), *args]) == 2
+        assert time.monotonic() - t0 < 5.0  # a calibration takes far longer
+        assert len(capsys.readouterr().err.strip().splitlines()) == 1
+    assert not path.exists()

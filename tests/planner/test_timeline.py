@@ -1,0 +1,108 @@
+"""moerun.planner.timeline: the planner's time model, hand-computed on traces small enough to add up by hand.
+
+The step time of a decode token is the layer's compute, its experts, the head and the waits for page-ins
+(docs/plan.md, "The time model"); with prefetch off and a pool per layer the sum over steps is exact.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from _planning import US, _costs, _random_trace, _trace
+
+from moerun.files.trace import Trace
+from moerun.planner.search import Costs, predict
+
+
+def test_every_access_a_miss_costs_compute_plus_one_page_in_per_token():
+    # one layer, top-1, one slot, alternating experts: every access misses.
+    # per token: attention 10 + page-in 100 + expert 2 + head 3 = 115 us (worked by hand)
+    p = predict(_trace([0, 1, 0, 1]), [1], "lru", 0, 1, _costs())
+    assert p.misses == 4 and p.accesses == 4
+    assert p.step_s == pytest.approx(115 * US)
+    assert p.tok_s == pytest.approx(1 / (115 * US))
+    assert p.stall_s == pytest.approx(100 * US)
+
+
+def test_two_slots_pay_only_the_first_two_page_ins():
+    # slots 2: misses on the first 0 and the first 1 only: (4 * 15 + 2 * 100) / 4 = 65 us per token
+    p = predict(_trace([0, 1, 0, 1]), [2], "lru", 0, 1, _costs())
+    assert p.misses == 2
+    assert p.step_s == pytest.approx(65 * US)
+
+
+def test_a_blocking_wait_adds_the_measured_wake_up_cost():
+    # as the first case, plus 7 us for each blocking read: 122 us per token
+    p = predict(_trace([0, 1, 0, 1]), [1], "lru", 0, 1, _costs(wait=7))
+    assert p.step_s == pytest.approx(122 * US)
+
+
+def test_prefill_tokens_warm_the_pool_and_are_not_timed():
+    # the first token is a prefill: it loads expert 0 without being timed; then 0, 0, 0 all hit
+    p = predict(_trace([0, 0, 0, 0], prefill=1), [1], "lru", 0, 1, _costs())
+    assert p.accesses == 3 and p.misses == 0
+    assert p.step_s == pytest.approx(15 * US)
+
+
+def test_perfect_guesses_faster_than_the_window_hide_every_page_in():
+    # Two layers, top-1, one slot each.  Layer 1 uses 0, 1, 0, 1 ...; layer 0 always uses 5 and
+    # guesses layer 1 perfectly at its prefetch point.  The page-in (5 us) is shorter than what
+    # follows the prefetch point before layer 1 routes (layer 0's expert 2 + layer 1's attention 10),
+    # so after the first token nothing waits: per token 2 * (10 + 2) + 3 = 27 us.  The first token
+    # also waits 5 us at layer 0 for its own demand read, which goes to the reader before the
+    # guess for layer 1 (the prefetch point follows the layer's routing).
+    n = 8
+    experts = np.zeros((n, 2, 1), np.int64)
+    experts[:, 0, 0] = 5
+    experts[:, 1, 0] = np.arange(n) % 2
+    guesses = np.full((n, 2, 1, 1), -1, np.int64)
+    guesses[:, 0, 0, 0] = experts[:, 1, 0]
+    trace = Trace(experts, guesses=guesses, meta={"n_experts": 6, "prefill_tokens": 0})
+    p = predict(trace, [1, 1], "lru", 1, 1, _costs(L=2, page=5))
+    assert p.misses == 1  # layer 0's first access only
+    assert p.prefetch_loads == n
+    assert p.step_s == pytest.approx(27 * US + 5 * US / n)
+
+
+def test_the_stored_formats_decoding_enters_every_expert_of_the_step():
+    # one layer, top-1, every access a hit after the first: per token attention 10 + expert 2 (+ decoding) + head 3
+    from moerun.planner.calibration import costs_from_shape
+
+    shape = {"layers": 1, "experts": 2, "top_k": 1, "expert_bytes": 1, "dense_bytes": 0, "expert_us": 2, "dense_layer_us": 10,
+             "head_us": 3}
+    trace = _trace([0, 0, 0, 0], prefill=1)
+    plain = predict(trace, [1], "lru", 0, 1, costs_from_shape(shape, 100 * US, "test"))
+    decoded = predict(trace, [1], "lru", 0, 1, costs_from_shape({**shape, "decode_us": 7}, 100 * US, "test"))
+    assert plain.step_s == pytest.approx(15 * US)
+    assert decoded.step_s == pytest.approx(22 * US)  # 7 us more per expert, one expert per token
+
+
+def test_prefetch_off_is_the_same_prediction_step_by_step_and_summed():
+    # the additive path (per-layer miss counts) and the step-by-step simulation are one time model
+    from moerun.planner import timeline
+
+    rng = np.random.default_rng(3)
+    trace = _random_trace(rng, tokens=200, layers=3, experts=8, k=2)
+    costs = Costs([30 * US] * 3, 4 * US, 9 * US, 80 * US, "test", 3 * US, copy=5 * US)
+    for slots in ([2, 2, 2], [3, 4, 5], [8, 8, 8]):
+        a = predict(trace, slots, "lru", 0, 1, costs)
+        b = timeline._simulate(trace, slots, "lru", 0, 1, costs, False, 10**9)
+        assert (a.misses, a.accesses) == (b.misses, b.accesses)
+        # (the simulated link keeps whole nanoseconds: a few ns of rounding over the run)
+        assert a.step_s == pytest.approx(b.step_s, rel=1e-6) and a.stall_s == pytest.approx(b.stall_s, rel=1e-6)
+
+
+@pytest.mark.parametrize("policy", ["orbit", "markov", "lru"])
+def test_the_time_model_of_a_shared_pool_counts_the_misses_replay_counts(policy):
+    # the planner's shared-pool simulation tells the policy the routing as the live pool and replay do,
+    # so its misses equal replay's for every policy (prefetch off), orbit's layer cycle included
+    from moerun.sim.counts import shared_counts
+
+    rng = np.random.default_rng(11)
+    trace = _random_trace(rng, tokens=150, layers=3, experts=8, k=2)
+    costs = Costs([30 * US] * 3, 4 * US, 9 * US, 80 * US, "test", 3 * US, copy=5 * US)
+    for total in (3, 6, 12):
+        p = predict(trace, [total], policy, 0, 1, costs, shared=True, max_tokens=10**9)
+        counts = shared_counts(trace, policy, [total], fast=False)[total]
+        assert (p.accesses, p.misses) == (sum(c.accesses for c in counts), sum(c.misses for c in counts)), total
+        assert p.misses > 0
