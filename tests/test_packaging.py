@@ -42,6 +42,21 @@ def test_a_wheel_carries_the_bundled_model(wheel):
         assert f"moerun_models/pebble/{f}" in names
 
 
+def test_a_wheel_carries_every_subpackage_of_the_tree(wheel):
+    names = set(wheel.namelist())
+    for init in sorted((ROOT / "moerun").rglob("__init__.py")):
+        rel = init.relative_to(ROOT).as_posix()
+        assert rel in names, f"the wheel lacks {rel}: add its package to pyproject.toml"
+
+
+def test_pyprojects_package_list_is_the_tree():
+    import tomllib
+
+    listed = set(tomllib.loads((ROOT / "pyproject.toml").read_text())["tool"]["setuptools"]["packages"])
+    tree = {".".join(init.relative_to(ROOT).parent.parts) for init in (ROOT / "moerun").rglob("__init__.py")}
+    assert listed - {"moerun_models"} == tree
+
+
 def test_a_model_directory_added_later_under_tiny_models_ships_too(wheel):
     names = set(wheel.namelist())
     assert {"moerun_models/later/CARD.md", "moerun_models/later/config.json"} <= names
@@ -54,6 +69,7 @@ def test_a_wheel_carries_the_quantization_benchmark_rows_the_cards_quote(wheel):
 def test_ci_builds_installs_and_runs_a_wheel():
     ci = (ROOT / ".ci" / "run").read_text()
     assert "pip wheel" in ci and "venv" in ci and "generate --max-new 4" in ci
+    assert "pkgutil.walk_packages" in ci  # the installed wheel imports every subpackage of the tree
     readme = (ROOT / "README.md").read_text()
     assert "python3 -m pip install -e '.[test]' && python3 -m pytest" in readme
     assert "python3 -m pip install -e '.[test]' && python3 -m pytest" in ci  # CI runs the README's test command
