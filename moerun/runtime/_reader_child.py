@@ -23,11 +23,14 @@ for a result, blocks on its own.
 Being a separate process, it never competes for the engine's interpreter lock;
 that is its whole point (a reader thread costs the compute thread tens of
 microseconds per read on a 2-vCPU machine, see docs/offload.md).  It exits when
-told to stop, when the engine's process is gone, or when its descriptors fail.
+told to stop, when the engine's process is gone, or when its descriptors fail.  On Linux the
+kernel also ends it when the engine's thread that started it ends (a parent-death signal,
+SIGKILL), so a reader that is stopped (SIGSTOP) or stuck cannot outlive its engine.
 """
 
 from __future__ import annotations
 
+import ctypes
 import mmap
 import os
 import random
@@ -259,10 +262,29 @@ class Server:
             self.nap = LINGER_NAP_S
 
 
+PR_SET_PDEATHSIG = 1  # prctl(2), <linux/prctl.h>
+SIGKILL = 9
+
+
+def die_with_parent(parent: int) -> bool:
+    """Ask the kernel for SIGKILL when the engine goes (prctl PR_SET_PDEATHSIG): it is delivered
+    whatever state this process is in, stopped included.  False when the engine is already gone
+    (it may have died before the request took effect).  Elsewhere than Linux, the checks of
+    ``alive_parent`` remain the only guard."""
+    try:
+        libc = ctypes.CDLL(None, use_errno=True)
+        libc.prctl(PR_SET_PDEATHSIG, SIGKILL, 0, 0, 0)
+    except (OSError, AttributeError):
+        pass
+    return os.getppid() == parent
+
+
 def main(argv: list[str]) -> int:
     mem_fd, model_fd, wake_fd, done_fd, n_slots, slot_size, ring = (int(a) for a in argv[:7])
     mechanism = argv[7]
     parent = int(argv[8])
+    if not die_with_parent(parent):
+        return 0
     try:
         Server(mem_fd, model_fd, wake_fd, done_fd, n_slots, slot_size, ring, mechanism, parent).run()
     except KeyboardInterrupt:

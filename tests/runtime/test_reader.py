@@ -7,6 +7,10 @@ spins (a side with nothing to do blocks).
 
 from __future__ import annotations
 
+import os
+import signal
+import subprocess
+import sys
 import time
 import warnings
 
@@ -182,3 +186,48 @@ def test_a_stalled_reader_is_said_once_on_stderr_as_one_line_by_the_cli(small_mo
     assert code == 0
     lines = [ln for ln in err.splitlines() if "warning" in ln]
     assert len(lines) == 1 and lines[0].startswith("moerun: warning: the prefetch reader made no progress")
+
+
+def _ended(proc, timeout: float) -> bool:
+    """The process is gone, or a zombie (dead, waiting for whoever adopted it to reap it)."""
+    import psutil
+
+    deadline = time.monotonic() + timeout
+    while time.monotonic() < deadline:
+        try:
+            if proc.status() == psutil.STATUS_ZOMBIE:
+                return True
+        except psutil.NoSuchProcess:
+            return True
+        time.sleep(0.05)
+    return False
+
+
+@pytest.mark.parametrize("how", ["SIGKILL", "SIGTERM"])
+def test_a_stopped_reader_ends_with_its_engine_however_the_engine_dies(how):
+    # Linux prctl(2), PR_SET_PDEATHSIG: the kernel sends the child its signal when the parent goes;
+    # SIGKILL reaches a stopped process too (signal(7)).
+    import psutil
+
+    src = (
+        "import sys, time, moerun\n"
+        "eng = moerun.load(mem_cap='14MiB', prefetch=2)\n"
+        "eng.generate('Field notes', max_new=4)\n"
+        "print(eng.prefetcher.reader.proc.pid, flush=True)\n"
+        "time.sleep(60)\n"
+    )
+    engine = subprocess.Popen([sys.executable, "-c", src], stdout=subprocess.PIPE, text=True)
+    try:
+        reader_pid = int(engine.stdout.readline())
+        reader = psutil.Process(reader_pid)
+        os.kill(reader_pid, signal.SIGSTOP)
+        deadline = time.monotonic() + 5.0
+        while reader.status() != psutil.STATUS_STOPPED and time.monotonic() < deadline:
+            time.sleep(0.01)  # the signal is delivered asynchronously
+        assert reader.status() == psutil.STATUS_STOPPED
+        engine.send_signal(getattr(signal, how))
+        engine.wait(timeout=10)
+        assert _ended(reader, 5.0), f"the reader {reader_pid} outlived its engine"
+    finally:
+        if engine.poll() is None:
+            engine.kill()
