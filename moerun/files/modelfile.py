@@ -207,12 +207,15 @@ def header_bytes(entries, digests: dict[str, str], metadata: dict[str, str] | No
     ``moerun.makers.synthetic`` both build theirs here, so their files are byte for byte the same for the same tensors.
     """
     meta = {"format": "moerun/1", **(metadata or {})}
+    record: dict = {"algo": DIGEST_ALGO, "tensors": digests}
+    if metadata:  # descriptive records that change the numbers (a quantization's layout) are covered too
+        record["metadata"] = {k: digest(v.encode("utf-8", "surrogatepass")) for k, v in sorted(metadata.items())}
     header: dict = {}
     offset = 0
     for name, tag, shape, nbytes in entries:
         header[name] = {"dtype": tag, "shape": list(shape), "data_offsets": [offset, offset + nbytes]}
         offset += nbytes
-    meta[DIGEST_KEY] = json.dumps({"algo": DIGEST_ALGO, "tensors": digests}, separators=(",", ":"))
+    meta[DIGEST_KEY] = json.dumps(record, separators=(",", ":"))
     blob = json.dumps({"__metadata__": meta, **header}, separators=(",", ":")).encode("utf-8")
     return blob + b" " * (-len(blob) % 8)
 
@@ -247,7 +250,7 @@ def save_model_file(
                 f.write(arrays[name].data)
 
 
-def recorded_digests(header: Header) -> dict[str, str] | None:
+def _digest_record(header: Header) -> dict | None:
     raw = header.metadata.get(DIGEST_KEY)
     if raw is None:
         return None
@@ -255,6 +258,35 @@ def recorded_digests(header: Header) -> dict[str, str] | None:
         doc = json.loads(raw)
         if doc.get("algo") != DIGEST_ALGO or not isinstance(doc.get("tensors"), dict):
             raise ValueError
-        return {str(k): str(v) for k, v in doc["tensors"].items()}
+        if not isinstance(doc.get("metadata", {}), dict):
+            raise ValueError
+        return doc
     except (ValueError, AttributeError, RecursionError):
         raise BadModelFile(f"{header.path}: metadata {DIGEST_KEY!r} is malformed") from None
+
+
+def recorded_digests(header: Header) -> dict[str, str] | None:
+    """The recorded digest of each tensor, or None when the file records none."""
+    doc = _digest_record(header)
+    return None if doc is None else {str(k): str(v) for k, v in doc["tensors"].items()}
+
+
+def metadata_digest_problems(header: Header) -> list[str]:
+    """The metadata records (besides the format tag and the digests) that their recorded digests do not vouch for:
+    changed since they were written, missing, or never covered.  A file that records no digests at all has
+    nothing to check (empty list); a record written by a moerun that covered only tensors is reported as not
+    covered, since nothing proves it unchanged."""
+    doc = _digest_record(header)
+    if doc is None:
+        return []
+    want = {str(k): str(v) for k, v in doc.get("metadata", {}).items()}
+    have = {k: v for k, v in header.metadata.items() if k not in ("format", DIGEST_KEY)}
+    bad = []
+    for key in sorted(set(want) | set(have)):
+        if key not in have:
+            bad.append(f"metadata {key!r} (missing)")
+        elif key not in want:
+            bad.append(f"metadata {key!r} (not covered by the digests)")
+        elif digest(str(have[key]).encode("utf-8", "surrogatepass")) != want[key]:
+            bad.append(f"metadata {key!r}")
+    return bad

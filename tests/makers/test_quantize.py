@@ -607,3 +607,23 @@ def test_a_quantized_model_whose_config_disagrees_with_its_file_is_refused_by_in
     for extra in ([], ["--check"]):
         err = _one_line_exit_2(capsys, ["inspect", "--model", str(d), *extra])
         assert "group" in err and "17" in err and "16" in err
+
+
+def test_inspect_check_catches_a_quantization_record_edited_alike_in_config_and_file(quantized, tmp_path, capsys):
+    import shutil
+
+    # issue 23, item 11: group 16 -> 17 in config.json and in the weights file's record alike (the blobs keep their
+    # size for these shapes), so the model loads and computes other numbers; the recorded digests cover the record
+    _, make = quantized
+    d = tmp_path / "edited"
+    shutil.copytree(make(4, 16, "rtn", 16), d)
+    assert main(["inspect", "--model", str(d), "--check"]) == 0
+    capsys.readouterr()
+    edit_config(d, lambda c: c["quant"].__setitem__("group", 17))
+    edit_header(d / "model.safetensors", lambda doc: doc["__metadata__"].update(
+        quant=json.dumps({**json.loads(doc["__metadata__"]["quant"]), "group": 17}, separators=(",", ":"))))
+    assert main(["inspect", "--model", str(d)]) == 0  # consistent: it opens
+    capsys.readouterr()
+    assert main(["inspect", "--model", str(d), "--check"]) == 1
+    out = capsys.readouterr().out
+    assert "metadata 'quant'" in out

@@ -9,7 +9,7 @@ from moerun.cli.report import emit_json, table
 from moerun.errors import BadModelFile
 from moerun.files.codec import packed_dense_tensors
 from moerun.files.fileio import read_user_file
-from moerun.files.modelfile import digest, recorded_digests
+from moerun.files.modelfile import digest, metadata_digest_problems, recorded_digests
 from moerun.files.store import ModelStore
 from moerun.model.config import RANDOM_NOTE
 from moerun.model.tokenizer import Tokenizer
@@ -40,7 +40,7 @@ def check_digests(store: ModelStore) -> tuple[list[str], int]:
         if expected != got:
             bad.append(name)
     missing = [n for n in want if n not in store.header.tensors]
-    return bad + missing, len(store.header.tensors)
+    return bad + missing + metadata_digest_problems(store.header), len(store.header.tensors)
 
 
 def check_files(store: ModelStore) -> dict:
