@@ -318,6 +318,25 @@ def _checked_experts(path: Path, experts: np.ndarray, meta: dict, n_experts: int
     return experts, limit
 
 
+# A row's weights are softmax probabilities of the chosen experts, renormalised or not, so their sum is at most 1;
+# the slack allows float32 rounding of the sum (common practice, no source).
+WEIGHT_SUM_SLACK = 1e-3
+
+
+def check_weights(path, weights: np.ndarray, experts: np.ndarray) -> None:
+    """Routing weights a router could have given: finite, above 0, at most 1, each row summing to at most 1.
+    ``path``: what to name in the error (the file, or "routing trace")."""
+    chosen = experts != PAD
+    w = np.where(chosen, weights, 0.0)
+    if not np.isfinite(w).all() or (w[chosen] <= 0).any() or (w > 1).any():
+        raise BadTrace(f"{path}: 'weights' must be routing probabilities, each above 0 and at most 1 "
+                       f"(found {float(np.nanmin(np.where(chosen, weights, np.nan))):.3g}..{float(np.nanmax(np.where(chosen, weights, np.nan))):.3g})")
+    sums = w.astype(np.float64).sum(axis=-1)
+    if (sums > 1 + WEIGHT_SUM_SLACK).any():
+        raise BadTrace(f"{path}: a token's routing weights in one layer sum to {float(sums.max()):.4g}; "
+                       "probabilities of the chosen experts sum to at most 1")
+
+
 def _optional_arrays(path: Path, arrays: dict[str, np.ndarray], experts: np.ndarray, limit: int | None):
     """(weights, guesses, probs, events) checked against the routing's shape; None (or {}) for what is absent."""
     weights = arrays.get("weights")
@@ -325,6 +344,7 @@ def _optional_arrays(path: Path, arrays: dict[str, np.ndarray], experts: np.ndar
         if weights.shape != experts.shape or weights.dtype.kind != "f":
             raise BadTrace(f"{path}: 'weights' must be a float array shaped like 'experts' {list(experts.shape)}")
         weights = weights.astype(np.float32)
+        check_weights(path, weights, experts)
     guesses = arrays.get("guesses")
     if guesses is not None:
         if guesses.ndim != 4 or guesses.shape[:2] != experts.shape[:2] or guesses.dtype.kind not in _INT_KINDS:

@@ -19,7 +19,7 @@ from __future__ import annotations
 import numpy as np
 
 from moerun.errors import BadTrace
-from moerun.files.trace import Trace
+from moerun.files.trace import Trace, check_weights
 from moerun.model.config import ModelConfig
 
 
@@ -40,6 +40,7 @@ class ReplayedRouting:
             raise BadTrace(f"{label}: a token chooses the same expert twice in one layer")
         self.experts = np.sort(ex, axis=-1).astype(np.int64)
         if trace.weights is not None:
+            check_weights(label, trace.weights, ex)
             order = np.argsort(ex, axis=-1, kind="stable")
             self.weights = np.take_along_axis(trace.weights, order, axis=-1).astype(np.float32)
         else:  # no recorded weights: the chosen experts count equally

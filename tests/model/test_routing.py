@@ -51,3 +51,33 @@ def test_replayed_routing_is_what_the_layers_choose(small_model):
 def test_routing_that_does_not_fit_the_model_is_refused(small_model, experts, phrase):
     with pytest.raises(BadTrace, match=phrase):
         moerun.load(small_model, tokenizer=False, routing=Trace(experts, meta={"n_experts": 10}))
+
+
+@pytest.mark.parametrize("bad", [1e30, -0.25, 0.0, float("nan")], ids=["huge", "negative", "zero", "nan"])
+def test_generate_refuses_a_routing_file_whose_weights_no_router_could_give(pebble, tmp_path, capsys, bad):
+    # issue 23, item 15: the weights of a --routing trace are softmax probabilities of the chosen experts
+    # (docs/architecture.md section 3), so each lies in (0, 1] and a row sums to at most 1
+    from moerun.cli.main import main
+    from moerun.files.trace import write_trace
+
+    with moerun.load(pebble, tokenizer=False) as eng:
+        eng.start_trace()
+        eng.generate(prompt_ids=[5, 6, 7], max_new=4, sampling=SAMPLING)
+        trace = eng.finish_trace()
+    path = tmp_path / "routing.npz"
+    write_trace(path, trace)
+    assert main(["generate", "--model", str(pebble), "--routing", str(path), "--max-new", "2", "--quiet"]) == 0
+    capsys.readouterr()
+    trace.weights[1, 0, 0] = bad
+    write_trace(path, trace)
+    assert main(["generate", "--model", str(pebble), "--routing", str(path), "--max-new", "2", "--quiet"]) == 2
+    captured = capsys.readouterr()
+    assert captured.out == "" and len(captured.err.strip().splitlines()) == 1
+    assert "'weights'" in captured.err
+
+
+def test_routing_weights_of_rows_that_sum_past_one_are_refused(small_model):
+    ex = np.tile(np.array([[0, 1]]), (4, 3, 1))
+    weights = np.full(ex.shape, 0.75, np.float32)
+    with pytest.raises(BadTrace, match="sum to"):
+        moerun.load(small_model, tokenizer=False, routing=Trace(ex, weights=weights, meta={"n_experts": 8}))
