@@ -350,8 +350,12 @@ def _optional_arrays(path: Path, arrays: dict[str, np.ndarray], experts: np.ndar
         if guesses.ndim != 4 or guesses.shape[:2] != experts.shape[:2] or guesses.dtype.kind not in _INT_KINDS:
             raise BadTrace(f"{path}: 'guesses' must be an integer array [tokens, layers, lookahead, n] matching 'experts'")
         guesses = guesses.astype(np.int64)
-        if (guesses < PAD).any() or (limit is not None and (guesses >= limit).any()):
-            raise BadTrace(f"{path}: 'guesses' holds ids outside 0..n_experts-1 (or -1 padding)")
+        # without a declared count the trace's experts are those it routes to (Trace.n_experts), and a guess
+        # names one of them, as a routed id names one of the declared
+        bound = limit if limit is not None else int(experts.max(initial=-1)) + 1
+        if (guesses < PAD).any() or (guesses >= bound).any():
+            what = "n_experts-1" if limit is not None else f"{bound - 1} (the highest routed id; the meta declares no n_experts)"
+            raise BadTrace(f"{path}: 'guesses' holds ids outside 0..{what} (or -1 padding)")
     probs = arrays.get("probs")
     if probs is not None:
         if probs.ndim != 3 or probs.shape[:2] != experts.shape[:2] or probs.dtype.kind != "f":

@@ -258,3 +258,22 @@ def test_plan_refuses_a_trace_without_decode_steps(small_model, tmp_path, capsys
         code = e.code
     err = capsys.readouterr().err
     assert code == 2 and len(err.strip().splitlines()) == 1 and "no decode steps" in err
+
+
+def test_replay_prefetch_refuses_guesses_above_every_routed_expert_when_no_count_is_declared(tmp_path, capsys):
+    # issue 23, item 7: guess ids are checked as routed ids are; with no meta n_experts the trace's experts are
+    # those it routes to, so a guess of expert 900 where the routing names 0..3 is refused in one line, exit 2
+    from moerun.cli.main import main
+
+    rng = np.random.default_rng(3)
+    experts = np.sort(np.stack([[rng.choice(4, 2, replace=False) for _ in range(2)] for _ in range(6)]), axis=-1)
+    guesses = np.zeros((6, 2, 1, 2), np.int64)
+    guesses[2, 0, 0] = [1, 900]
+    path = tmp_path / "t.npz"
+    np.savez(path, experts=experts, guesses=guesses, meta=np.array(json.dumps({"lookahead": 1, "guesses": 2})))
+    assert main(["replay", str(path), "--prefetch", "1"]) == 2
+    err = capsys.readouterr().err
+    assert "'guesses'" in err and len(err.strip().splitlines()) == 1
+    guesses[2, 0, 0] = [1, 3]
+    np.savez(path, experts=experts, guesses=guesses, meta=np.array(json.dumps({"lookahead": 1, "guesses": 2})))
+    assert main(["replay", str(path), "--prefetch", "1", "--json"]) == 0
