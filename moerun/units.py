@@ -57,12 +57,15 @@ def parse_rate(text: str | float, what: str = "rate") -> float:
             raise BadOption(f"{what} must be a finite rate, got {text!r}")
     else:
         s = str(text).strip()
-        if s.lower().endswith("/s"):
+        per_second = s.lower().endswith("/s")
+        if per_second:
             s = s[:-2]
         try:
             value = float(parse_size(s, what))
         except BadOption:
             raise BadOption(f"cannot read {what} {text!r}: use forms like 2GB/s, 500MiB/s or 1e9 (bytes per second)") from None
+        if not per_second and not s[-1].isdigit():  # "2GB" is a size; a rate with a unit says per second
+            raise BadOption(f"{what} {text!r} is a size, not a rate: write {s}/s")
     if not value > 0:
         raise BadOption(f"{what} must be greater than zero, got {text!r}")
     return value

@@ -117,6 +117,13 @@ def test_bare_prefix_letters_are_refused_as_ambiguous(text):
         parse_size(text)
 
 
+@pytest.mark.parametrize("text", ["2GB", "500MiB", "1.5 GB"])
+def test_a_size_given_as_a_rate_is_refused_with_the_fix(text):
+    # issue 23, item 22: "2GB" is a size; a rate with a unit says per second
+    with pytest.raises(BadOption, match=r"is a size, not a rate: write .*/s"):
+        parse_rate(text, "--link-speed")
+
+
 def test_an_unreadable_rate_gets_a_hint_about_rates():
     with pytest.raises(BadOption, match="2GB/s"):
         parse_rate("fast", "link speed")
