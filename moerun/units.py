@@ -91,10 +91,6 @@ def fmt_rate(bytes_per_s: float) -> str:
     return f"{bytes_per_s / 1e9:.2f} GB/s"
 
 
-def fmt_ms(ns: float) -> str:
-    return f"{ns / 1e6:.2f} ms"
-
-
 def whole_number(v, lo: int = 0, hi: int = 2**62) -> bool:
     """A JSON value that is a whole number in [lo, hi] (not a bool, not 1.5, not 10**400)."""
     return isinstance(v, int) and not isinstance(v, bool) and lo <= v <= hi
