@@ -20,8 +20,9 @@ before numpy and moerun, and ``_bench`` sets the thread variables.
 
     python scripts/bench_quant.py [--model DIR] [--json] [--write-docs]
 
---write-docs replaces the table in docs/quant.md (between the bench markers)
-and writes moerun/data/quant_bench.json (shipped in the package), which `moerun quantize` quotes in its cards.
+--write-docs replaces the table in docs/research/quant.md (between the bench markers). The
+benchmark writes nothing into the package: the table that `moerun quantize` quotes in its cards is
+built from this script's --json output by scripts/make_quant_table.py.
 """
 
 from __future__ import annotations
@@ -224,7 +225,7 @@ def main() -> int:
     ap.add_argument("--link-speed", default="1GB/s",
                     help="also decode with page-in over an emulated link of this rate, best of 2 runs (default 1GB/s; 0 = skip)")
     ap.add_argument("--json", action="store_true", help="print one JSON document on stdout")
-    ap.add_argument("--write-docs", action="store_true", help="update docs/quant.md and moerun/data/quant_bench.json")
+    ap.add_argument("--write-docs", action="store_true", help="update the table in docs/research/quant.md")
     args = ap.parse_args()
     src = Path(args.model) if args.model else default_model_dir()
     text = read_text_file(src / "heldout.txt")
@@ -295,8 +296,7 @@ def main() -> int:
 def write_docs(doc: dict, t1: str, t2: str) -> None:
     from moerun.files.fileio import write_text_atomic
 
-    write_text_atomic(ROOT / "moerun" / "data" / "quant_bench.json", json.dumps(doc, indent=2) + "\n")
-    path = ROOT / "docs" / "quant.md"
+    path = ROOT / "docs" / "research" / "quant.md"
     md = path.read_text(encoding="utf-8")
     if START not in md or END not in md:
         raise SystemExit(f"{path}: bench markers missing")
