@@ -493,7 +493,7 @@ Beside {cmp['name']}, scored in this run by the same rule on the same token ids
                     f"prefix space), vocabulary {tok.get_vocab_size()}, trained on train.txt")
     card = f"""# {name} — a bundled tiny model
 
-A {cfg['n_layers']}-layer sparse mixture-of-experts model ({shape}) following the model spec of docs/architecture.md,
+A {cfg['n_layers']}-layer sparse mixture-of-experts model ({shape}) following the model spec of docs/design/architecture.md,
 trained on CPU on an invented corpus. It {BLURB[name]}, not to be useful
 for anything else.
 
@@ -591,7 +591,7 @@ perplexity is its exp.
 | file | content |
 |---|---|
 | config.json | model configuration (format `moerun/1`) |
-| model.safetensors | F32 weights, tensor names of the model spec (docs/architecture.md) |
+| model.safetensors | F32 weights, tensor names of the model spec (docs/design/architecture.md) |
 | tokenizer.json | the byte-level BPE tokenizer |
 | heldout.txt | {slice_kb:.0f} KB of whole held-out documents (never trained on) for scoring |
 | reference.npz | `token_ids` int64 [3, 64] (three held-out windows, each starting at a document start, token 0), `logits` float32 [3, 64, {cfg['vocab_size']}] from the PyTorch reference in float32 (`moerun/checks/torch_twin.py`), `torch_version` |

@@ -2,9 +2,9 @@
 """Tune the ``markov`` (or ``--policy orbit``) eviction policy on one part of the text and report it on parts never used for tuning.
 
 With ``--shared``, the pool is one pool shared by all layers and ``--slots`` / ``--objective-slots`` are
-percentages of all experts (docs/policy_research.md, "A rule for the shared pool").
+percentages of all experts (docs/research/policies.md, "A rule for the shared pool").
 
-The protocol, end to end (docs/policy_research.md has the results and the reasoning):
+The protocol, end to end (docs/research/policies.md has the results and the reasoning):
 
 1. Traces.  ``moerun record`` (teacher-forced, fully resident, with router probabilities) over
    - the TUNING text: by default the first ``--tune-bytes`` of whole documents of the training corpus
