@@ -1,4 +1,4 @@
-"""Parsing and formatting of sizes, rates and durations for people."""
+"""Parsing and formatting of sizes and rates for people, and checks of numbers read from JSON."""
 
 from __future__ import annotations
 
