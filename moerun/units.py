@@ -1,4 +1,4 @@
-"""Parsing and formatting of sizes, rates and durations for people."""
+"""Parsing and formatting of sizes and rates for people, and checks of numbers read from JSON."""
 
 from __future__ import annotations
 
@@ -92,10 +92,6 @@ def fmt_exact(n: int) -> str:
 
 def fmt_rate(bytes_per_s: float) -> str:
     return f"{bytes_per_s / 1e9:.2f} GB/s"
-
-
-def fmt_ms(ns: float) -> str:
-    return f"{ns / 1e6:.2f} ms"
 
 
 def whole_number(v, lo: int = 0, hi: int = 2**62) -> bool:

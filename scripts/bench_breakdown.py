@@ -16,6 +16,9 @@ start, is taken off.  Per decode token:
 Every configuration runs the same prompt and seed; configurations are interleaved and the
 best of ``--repeats`` is kept.  The timers add a few per cent, so read this next to
 bench_offload.py's untimed tok/s, not instead of it.
+
+It imports ``_bench`` first, before numpy and moerun: one BLAS thread, and the helpers the
+benchmarks share.
 """
 
 from __future__ import annotations
@@ -25,7 +28,7 @@ import functools
 import json
 import time
 
-import _bench
+import _bench  # first: one BLAS thread before numpy is imported; the shared helpers
 
 import moerun
 from moerun import policies

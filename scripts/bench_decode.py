@@ -6,6 +6,9 @@ cache, inference mode and computes only the chosen experts; both sides use one
 thread (BLAS and torch intra-op pinned to 1).  Also printed: the bandwidth
 bound (weight bytes a decode step must read, divided by this machine's
 measured memory-copy bandwidth) and each engine's share of it.
+
+It imports ``_bench`` first, before numpy and moerun: one BLAS thread, and the helpers the
+benchmarks share.
 """
 
 from __future__ import annotations
@@ -14,7 +17,7 @@ import argparse
 import json
 import time
 
-import _bench
+import _bench  # first: one BLAS thread before numpy is imported; the shared helpers
 
 import moerun
 from moerun.model.sampling import Sampling

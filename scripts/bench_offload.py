@@ -21,6 +21,8 @@ With ``--evict lru,markov`` it compares eviction policies instead, live: a cap o
 as in a server), the link calibrated so that LRU stalls about half the time, each
 policy with prefetch off and on, runs interleaved over ``--repeats``; best and median
 decode tok/s per configuration, and the tokens checked against a resident session.
+
+It imports ``_bench`` before numpy and moerun (one BLAS thread; the shared helpers).
 """
 
 from __future__ import annotations
@@ -28,58 +30,16 @@ from __future__ import annotations
 import argparse
 import json
 
-import _bench  # noqa: F401  (pins BLAS to one thread)
+import _bench  # first: one BLAS thread before numpy is imported; the shared helpers
 
 import moerun
-from moerun.model.sampling import Sampling
 from moerun.runtime.budget import fixed_bytes, slot_bytes
 from moerun.units import fmt_bytes, parse_rate
 
 
-def decode(model, prompt, max_new, seed, gens=1, **kw):
-    """Decode tok/s of ``gens`` generations in one engine (the pool carries over), with the engine's stats."""
-    with moerun.load(model, **kw) as eng:
-        steps = decode_ns = total_ns = 0
-        tokens = []
-        for i in range(gens):
-            gen = eng.generate(prompt, max_new=max_new, sampling=Sampling(temperature=0.8, seed=seed + i))
-            steps += gen.decode_steps
-            decode_ns += gen.decode_ns
-            total_ns += gen.decode_ns + gen.prefill_ns
-            tokens += gen.new_ids
-        stats = eng.stats
-        stall = stats["pool"]["stall_ns"] if "pool" in stats else eng.experts.stall_ns
-    return {"tok_s": steps / (decode_ns / 1e9) if decode_ns else 0.0, "decode_s": decode_ns / 1e9, "tokens": tokens,
-            "stats": stats, "stall_s": (stall or 0) / 1e9, "total_s": total_ns / 1e9}
-
-
-SESSION_PROMPTS = [
-    "<doc>",
-    "<doc>Field notes — ",
-    "<doc>[radio, channel 4, cycle 19 day 132, 05:47]\n",
-    "<doc>== log TF-14",
-    "<doc>TICKET #",
-    "<doc>## Daily ledger",
-    "<doc>## Cart runs",
-    "<doc>## Weekly yield",
-]
-
-
-def session(model, prompts, max_new, seed, **kw):
-    """One engine, the prompts generated one after another (pool and policy carry over): decode tok/s and pool figures."""
-    with moerun.load(model, **kw) as eng:
-        steps = decode_ns = total_ns = 0
-        tokens = []
-        for i, prompt in enumerate(prompts):
-            gen = eng.generate(prompt, max_new=max_new, sampling=Sampling(temperature=0.8, seed=seed + i))
-            steps += gen.decode_steps
-            decode_ns += gen.decode_ns
-            total_ns += gen.decode_ns + gen.prefill_ns
-            tokens.append(gen.new_ids)
-        pool = eng.stats.get("pool", {})
-    return {"tok_s": steps / (decode_ns / 1e9), "decode_s": decode_ns / 1e9, "total_s": total_ns / 1e9, "steps": steps,
-            "tokens": tokens, "hit_rate": pool.get("hit_rate"), "misses": pool.get("misses", 0),
-            "stall_s": pool.get("stall_ns", 0) / 1e9}
+def decode(model, prompt, a, **kw) -> dict:
+    """``a.gens`` generations of one prompt in one engine (the pool carries over): ``_bench.session``."""
+    return _bench.session(model, [prompt] * a.gens, a.max_new, a.seed, **kw)
 
 
 def compare_policies(a, model) -> int:
@@ -89,7 +49,7 @@ def compare_policies(a, model) -> int:
     names = [n.strip() for n in a.evict.split(",") if n.strip()]
     if "lru" not in names:
         names.insert(0, "lru")
-    prompts = SESSION_PROMPTS[: a.session_prompts]
+    prompts = _bench.SESSION_PROMPTS[: a.session_prompts]
     with moerun.load(model, tokenizer=False) as eng:
         st = eng.store
         c = st.config
@@ -98,17 +58,17 @@ def compare_policies(a, model) -> int:
     n = a.slots_per_layer
     slots = [n] * c.n_layers
     cap = d + kv + s + n * c.n_layers * per
-    ref = session(model, prompts, a.max_new, a.seed)
+    ref = _bench.session(model, prompts, a.max_new, a.seed)
     if a.link_speed:
         rate = parse_rate(a.link_speed)
     else:  # LRU at real speed, then the rate at which its page-in time equals its compute time
-        cal = session(model, prompts, a.max_new, a.seed, mem_cap=cap, slots=slots)
+        cal = _bench.session(model, prompts, a.max_new, a.seed, mem_cap=cap, slots=slots)
         rate = cal["misses"] * st.expert_nbytes / max(cal["total_s"] - cal["stall_s"], 1e-6)
     configs = [(name, pf) for name in names for pf in (0, a.prefetch)]
     runs: dict = {cfg: [] for cfg in configs}
     for _ in range(a.repeats):  # interleaved, so every configuration sees the same background load
         for name, pf in configs:
-            runs[(name, pf)].append(session(model, prompts, a.max_new, a.seed, mem_cap=cap, slots=slots, evict=name,
+            runs[(name, pf)].append(_bench.session(model, prompts, a.max_new, a.seed, mem_cap=cap, slots=slots, evict=name,
                                             prefetch=pf, lookahead=a.lookahead, link_speed=rate))
     rows = []
     for (name, pf), rs in runs.items():
@@ -181,7 +141,7 @@ def main() -> int:
     ap.add_argument("--repeats", type=int, default=7, help="runs per configuration, interleaved; median, best and spread are kept")
     ap.add_argument("--evict", default=None, help="compare these eviction policies live instead, e.g. lru,markov")
     ap.add_argument("--slots-per-layer", type=int, default=4, help="with --evict: expert slots per layer (default 4)")
-    ap.add_argument("--session-prompts", type=int, default=len(SESSION_PROMPTS), help="with --evict: prompts per session")
+    ap.add_argument("--session-prompts", type=int, default=len(_bench.SESSION_PROMPTS), help="with --evict: prompts per session")
     ap.add_argument("--json", action="store_true")
     a = ap.parse_args()
     model = a.model or moerun.default_model_dir()
@@ -204,7 +164,7 @@ def main() -> int:
     else:  # calibrate: LRU at real speed, then the rate at which page-in time equals compute time (best of 3)
         rates = []
         for _ in range(3):
-            cal = decode(model, prompt, a.max_new, a.seed, a.gens, mem_cap=cap)
+            cal = decode(model, prompt, a, mem_cap=cap)
             misses = cal["stats"]["pool"]["misses"]
             compute_s = cal["decode_s"] - cal["stall_s"]
             rates.append(misses * st.expert_nbytes / max(compute_s, 1e-6))
@@ -230,12 +190,12 @@ def main() -> int:
     busy_runs: dict = {"lru": [], "prefetch": []}
     for _ in range(a.repeats):  # interleaved, so a slow spell of a shared machine hits every configuration alike
         for key, kw in configs.items():
-            runs[key].append(decode(model, prompt, a.max_new, a.seed, a.gens, **kw))
+            runs[key].append(decode(model, prompt, a, **kw))
         if a.busy:
             procs = busy_processes(a.busy)
             try:
                 for key in busy_runs:
-                    busy_runs[key].append(decode(model, prompt, a.max_new, a.seed, a.gens, **configs[key]))
+                    busy_runs[key].append(decode(model, prompt, a, **configs[key]))
             finally:
                 stop_busy(procs)
     import statistics

@@ -9,6 +9,9 @@ resident-set growth (psutil) and copy bandwidth are measured side by side:
   mmap+madvise   the engine's mmap mechanism: copy from a read-only map, then release the
                  copied range, widened to the kernel's fault-around window (ModelStore.page_in)
   mmap           copy from a read-only map and leave it (for contrast)
+
+It imports ``_bench`` first, before numpy and moerun: one BLAS thread, and the helpers the
+benchmarks share.
 """
 
 from __future__ import annotations
@@ -18,7 +21,7 @@ import json
 import mmap
 import time
 
-import _bench  # noqa: F401
+import _bench  # noqa: F401  (first: one BLAS thread before numpy is imported)
 import numpy as np
 import psutil
 

@@ -15,6 +15,9 @@ resident session of ``--gens`` generations (every capped run routes exactly the 
 offloading never changes numbers), then for every pair the prediction and the measured decode
 speed: ``--repeats`` runs, interleaved over the pairs, median kept and the spread printed beside
 the error.  Goal: max error 10% on the bundled model, 15% at realistic sizes.
+
+It imports ``_bench`` first, before numpy and moerun: one BLAS thread, and the helpers the
+benchmarks share.
 """
 
 from __future__ import annotations
@@ -28,10 +31,9 @@ import sys
 import tempfile
 from pathlib import Path
 
-import _bench
+import _bench  # first: one BLAS thread before numpy is imported; the shared helpers
 
 import moerun
-from moerun.model.sampling import Sampling
 from moerun.planner.calibration import calibrate, costs_from_calibration, describe, page_seconds
 from moerun.planner.timeline import predict
 from moerun.prober.pagein import load_probe
@@ -39,20 +41,10 @@ from moerun.runtime.budget import fixed_bytes, slot_bytes
 from moerun.units import parse_rate
 
 
-def session(model, gens, max_new, seed, **kw):
-    """Decode tok/s of one engine generating ``gens`` times (and its trace, with ``trace=True``)."""
-    want_trace = kw.pop("trace", False)
-    with moerun.load(model, tokenizer=False, **kw) as eng:
-        if want_trace:
-            eng.start_trace()
-        steps = ns = 0
-        for i in range(gens):
-            g = eng.generate(prompt_ids=[i], max_new=max_new, sampling=Sampling(temperature=0.8, seed=seed + i))
-            steps += g.decode_steps
-            ns += g.decode_ns
-        trace = eng.finish_trace() if want_trace else None
-        slots = list(eng.budget.slots)
-    return steps / (ns / 1e9), trace, slots
+def timed_run(model, gens, max_new, seed, **kw):
+    """Decode tok/s of one engine generating ``gens`` times from token i (and its trace, with ``trace=True``)."""
+    got = _bench.session(model, [[i] for i in range(gens)], max_new, seed, tokenizer=False, **kw)
+    return got["tok_s"], got["trace"], got["slots"]
 
 
 def layout(model):
@@ -66,7 +58,7 @@ def measure_pairs(pairs, repeats, gens, max_new, seed):
     runs = {i: [] for i in range(len(pairs))}
     for _ in range(repeats):
         for i, p in enumerate(pairs):
-            runs[i].append(session(p["model"], gens, max_new, seed, **p["load"])[0])
+            runs[i].append(timed_run(p["model"], gens, max_new, seed, **p["load"])[0])
     for i, p in enumerate(pairs):
         tok = runs[i]
         p["measured_tok_s"] = statistics.median(tok)
@@ -90,7 +82,7 @@ def bundled_pairs(a, tmp: Path) -> tuple[list, dict]:
         cal = calibrate(model, recalibrate=True, cache=False)
         cals[fmt] = {"text": describe(cal), "flags": cal["flags"], "step_spread": cal["step_spread"]}
         c, fixed, slot, nbytes = layout(model)
-        _, trace, _ = session(model, a.gens, a.max_new, a.seed, trace=True)
+        _, trace, _ = timed_run(model, a.gens, a.max_new, a.seed, trace=True)
         full = fmt == "F32"
         per_layer = (2, 3, 4, 6) if full else (3, 4)
         for link in links:
@@ -117,10 +109,10 @@ def realistic_pairs(a, tmp: Path) -> tuple[list, dict]:
                    check=True, stdout=subprocess.DEVNULL)
     probe = load_probe(probe_file)
     src = Path(a.model or moerun.default_model_dir())
-    _, routing, _ = session(src, 1, a.real_tokens, a.seed, trace=True)  # a trained model's routing
+    _, routing, _ = timed_run(src, 1, a.real_tokens, a.seed, trace=True)  # a trained model's routing
     cal = calibrate(model, recalibrate=True, cache=False)
     c, fixed, slot, nbytes = layout(model)
-    _, trace, _ = session(model, 1, a.real_tokens, a.seed, trace=True, routing=routing)
+    _, trace, _ = timed_run(model, 1, a.real_tokens, a.seed, trace=True, routing=routing)
     pairs = []
     for regime in ("warm", "cold"):
         page, src_note = page_seconds(nbytes, probe=probe, regime=regime)

@@ -8,6 +8,9 @@ The same loop over a source that does no bookkeeping is timed too and taken off.
 this thread, best of ``--repeats``, policies interleaved.  Replay hit rates of the same trace
 are printed beside the costs, with the time-shuffled baseline, so a cost can be weighed against
 what it buys.
+
+It imports ``_bench`` first, before numpy and moerun: one BLAS thread, and the helpers the
+benchmarks share.
 """
 
 from __future__ import annotations
@@ -16,7 +19,7 @@ import argparse
 import json
 import time
 
-import _bench  # noqa: F401  (pins BLAS to one thread)
+import _bench  # noqa: F401  (first: one BLAS thread before numpy is imported)
 import numpy as np
 
 import moerun

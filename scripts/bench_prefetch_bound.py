@@ -14,6 +14,9 @@ The oracle is the ceiling for every guess rule at this prefetch point: what is l
 no prefetch is all that better guesses could win.  Oracles that are wrong 10% or 20% of the time
 (``--wrong``) show how precise a rule must be to get near it.  The cap defaults to a third of the expert bytes,
 as in bench_offload.py.
+
+It imports ``_bench`` first, before numpy and moerun: one BLAS thread, and the helpers the
+benchmarks share.
 """
 
 from __future__ import annotations
@@ -21,7 +24,7 @@ from __future__ import annotations
 import argparse
 import json
 
-import _bench
+import _bench  # first: one BLAS thread before numpy is imported; the shared helpers
 import numpy as np
 
 import moerun

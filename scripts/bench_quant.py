@@ -15,63 +15,46 @@ For expert bits {8, 4, 3, 2} x attention {16 (float16), 8, 4} x method {rtn, hqq
 * the dequantization cost per expert for each bit width, against the float32
   expert's one-token matmul and its page-in from the page cache.
 
-BLAS is pinned to one thread: the thread variables are set before numpy is
-imported, and threadpoolctl limits the pools too when it is installed.
+BLAS is pinned to one thread: the script imports ``_bench`` (the benchmarks' shared helpers)
+before numpy and moerun, and ``_bench`` sets the thread variables.
 
     python scripts/bench_quant.py [--model DIR] [--json] [--write-docs]
 
---write-docs replaces the table in docs/quant.md (between the bench markers)
-and writes moerun/data/quant_bench.json (shipped in the package), which `moerun quantize` quotes in its cards.
+--write-docs replaces the table in docs/research/quant.md (between the bench markers). The
+benchmark writes nothing into the package: the table that `moerun quantize` quotes in its cards is
+built from this script's --json output by scripts/make_quant_table.py.
 """
 
 from __future__ import annotations
 
+import argparse
+import datetime
+import json
 import os
+import platform
+import sys
+import tempfile
+import time
+from pathlib import Path
 
-for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
-    os.environ[_var] = "1"  # before numpy is imported: one BLAS thread
+import _bench  # first: one BLAS thread before numpy is imported; the shared helpers
+import numpy as np
 
-import argparse  # noqa: E402
-import datetime  # noqa: E402
-import json  # noqa: E402
-import platform  # noqa: E402
-import sys  # noqa: E402
-import tempfile  # noqa: E402
-import time  # noqa: E402
-from pathlib import Path  # noqa: E402
+import moerun
+from moerun.checks.score import score_text
+from moerun.cli.report import table
+from moerun.files.codec import QuantCodec
+from moerun.files.packed import QuantSpec
+from moerun.makers.quantize import quantize_model
+from moerun.model.sampling import Sampling
+from moerun.model.tokenizer import read_text_file
+from moerun.model.transformer import expert
+from moerun.runtime.budget import fixed_bytes, slot_bytes
+from moerun.runtime.engine import default_model_dir
+from moerun.units import fmt_bytes, parse_rate
 
 ROOT = Path(__file__).resolve().parent.parent
-sys.path.insert(0, str(ROOT))
-
-import numpy as np  # noqa: E402
-
-try:
-    from threadpoolctl import threadpool_limits  # type: ignore
-
-    threadpool_limits(1)
-    BLAS_NOTE = "1 thread (threadpoolctl, and thread variables set before numpy import)"
-except ImportError:
-    BLAS_NOTE = "1 thread (OPENBLAS/OMP/MKL_NUM_THREADS=1 set before numpy import; threadpoolctl not installed)"
-
-import moerun  # noqa: E402
-from moerun.checks.score import score_text  # noqa: E402
-from moerun.cli.report import table  # noqa: E402
-from moerun.files.codec import QuantCodec  # noqa: E402
-from moerun.files.packed import QuantSpec  # noqa: E402
-from moerun.makers.quantize import quantize_model  # noqa: E402
-from moerun.model.sampling import Sampling  # noqa: E402
-from moerun.model.tokenizer import read_text_file  # noqa: E402
-from moerun.model.transformer import expert  # noqa: E402
-from moerun.runtime.budget import fixed_bytes, slot_bytes  # noqa: E402
-from moerun.runtime.engine import default_model_dir  # noqa: E402
-from moerun.units import fmt_bytes, parse_rate  # noqa: E402
-
 START, END = "<!-- bench_quant:start -->", "<!-- bench_quant:end -->"
-
-
-def log(msg: str) -> None:
-    sys.stderr.write(msg + "\n")
-    sys.stderr.flush()
 
 
 def machine() -> str:
@@ -117,7 +100,7 @@ def decode_rounds(entries: list[tuple[dict, Path]], prompt_ids, max_new: int, re
     The emulated-link runs (two rounds) follow the same pattern.
     """
     for r in range(reps):
-        log(f"decode round {r + 1}/{reps} ...")
+        _bench.log(f"decode round {r + 1}/{reps} ...")
         for row, d in entries:
             got = decode_once(d, row["cap_bytes"], prompt_ids, max_new)
             if got["tok_s"] > row.get("decode_tok_s", 0.0):
@@ -126,7 +109,7 @@ def decode_rounds(entries: list[tuple[dict, Path]], prompt_ids, max_new: int, re
             row["slots"], row["hit_rate"], row["tokens"] = got["slots"], got["hit_rate"], got["tokens"]
     if link:
         for r in range(2):
-            log(f"decode round {r + 1}/2 over the emulated link ...")
+            _bench.log(f"decode round {r + 1}/2 over the emulated link ...")
             for row, d in entries:
                 got = decode_once(d, row["cap_bytes"], prompt_ids, max_new, link)
                 row["decode_tok_s_link"] = max(row.get("decode_tok_s_link", 0.0), got["tok_s"])
@@ -152,19 +135,6 @@ def measure(model_dir: Path, fp32_expert_total: int, text: str, score_tokens) ->
         }
 
 
-def _best_ns(fn, reps: int = 400, rounds: int = 9) -> float:
-    """CPU time per call: the best of ``rounds`` rounds of ``reps`` calls (process CPU clock)."""
-    for _ in range(30):
-        fn()
-    times = []
-    for _ in range(rounds):
-        t0 = time.process_time_ns()
-        for _ in range(reps):
-            fn()
-        times.append((time.process_time_ns() - t0) / reps)
-    return float(min(times))
-
-
 class Ring:
     def __init__(self, items):
         self.items = list(items)
@@ -182,7 +152,7 @@ def _pagein_ns(store) -> float:
     buf = np.empty(slot_bytes(store.expert_nbytes), np.uint8)
     for layer, e in keys.items:  # warm the page cache
         store.page_in(layer, e, buf)
-    return _best_ns(lambda: store.page_in(*keys.next(), buf), reps=64)
+    return _bench.per_call_ns(lambda: store.page_in(*keys.next(), buf), reps=64)
 
 
 def dequant_costs(src: Path, quantized: dict[int, Path]) -> dict:
@@ -193,7 +163,7 @@ def dequant_costs(src: Path, quantized: dict[int, Path]) -> dict:
         rng = np.random.default_rng(0)
         u = rng.standard_normal((1, s.config.d_model)).astype(np.float32)
         w = [x.copy() for x in s.codec.weights(eng.pool.slots[0].bound)]
-        out["fp32_matmul_ns"] = _best_ns(lambda: expert(u, *w))
+        out["fp32_matmul_ns"] = _bench.per_call_ns(lambda: expert(u, *w))
         out["fp32_pagein_ns"] = _pagein_ns(s)
         out["fp32_expert_bytes"] = s.expert_nbytes
     out["bits"] = {}
@@ -201,8 +171,8 @@ def dequant_costs(src: Path, quantized: dict[int, Path]) -> dict:
         with moerun.load(d, tokenizer=False) as eng:
             codec: QuantCodec = eng.store.codec
             ring = Ring([slot.bound for slot in eng.pool.slots])  # every resident expert in turn, as decode meets them
-            dq = _best_ns(lambda codec=codec, ring=ring: codec.weights(ring.next()))
-            both = _best_ns(lambda codec=codec, ring=ring: expert(u, *codec.weights(ring.next())))
+            dq = _bench.per_call_ns(lambda codec=codec, ring=ring: codec.weights(ring.next()))
+            both = _bench.per_call_ns(lambda codec=codec, ring=ring: expert(u, *codec.weights(ring.next())))
             pin = _pagein_ns(eng.store)
             out["bits"][bits] = {"dequant_ns": dq, "dequant_matmul_ns": both, "pagein_ns": pin,
                                  "expert_bytes": eng.store.expert_nbytes, "scratch_bytes": codec.scratch_bytes()}
@@ -255,7 +225,7 @@ def main() -> int:
     ap.add_argument("--link-speed", default="1GB/s",
                     help="also decode with page-in over an emulated link of this rate, best of 2 runs (default 1GB/s; 0 = skip)")
     ap.add_argument("--json", action="store_true", help="print one JSON document on stdout")
-    ap.add_argument("--write-docs", action="store_true", help="update docs/quant.md and moerun/data/quant_bench.json")
+    ap.add_argument("--write-docs", action="store_true", help="update the table in docs/research/quant.md")
     args = ap.parse_args()
     src = Path(args.model) if args.model else default_model_dir()
     text = read_text_file(src / "heldout.txt")
@@ -267,12 +237,12 @@ def main() -> int:
         name = s.config.name or src.name
         ids = eng.tokenizer.encode(text, bos=False)
         prompt_ids = ids[:48]  # the start of the first held-out document (it begins with <doc>)
-    log(f"fp32 {name}: scoring ...")
+    _bench.log(f"fp32 {name}: scoring ...")
     doc: dict = {
         "model": name,
         "date": datetime.datetime.now().astimezone().strftime("%Y-%m-%d %H:%M %Z"),
         "machine": machine(),
-        "blas_threads": BLAS_NOTE,
+        "blas_threads": _bench.BLAS_THREADS,
         "group": args.group,
         "n_experts_total": n_total,
         "cap_rule": "model's dense + KV cache + scratch (codec scratch included) + one third of the fp32 model's expert bytes",
@@ -300,13 +270,13 @@ def main() -> int:
                     row.update(measure(out, fp32_total, text, args.score_tokens))
                     rows.append(row)
                     entries.append((row, out))
-                    log(f"{bits}-bit experts, attention {attn}, {method}: ppl {row['perplexity']:.4f}, quantized in {qs:.1f} s")
+                    _bench.log(f"{bits}-bit experts, attention {attn}, {method}: ppl {row['perplexity']:.4f}, quantized in {qs:.1f} s")
                     if attn == 16 and method == "rtn":
                         deq_dirs[bits] = out
         decode_rounds(entries, prompt_ids, args.max_new, args.reps, link)
         for row in rows:
             row["same_tokens_as_fp32"] = row.pop("tokens") == doc["fp32"]["tokens"]
-        log("dequantization cost ...")
+        _bench.log("dequantization cost ...")
         doc["dequant"] = dequant_costs(src, deq_dirs)
     doc["fp32"]["same_tokens_as_fp32"] = True
     doc["fp32"].pop("tokens", None)
@@ -319,15 +289,14 @@ def main() -> int:
         sys.stdout.write(json.dumps(doc, indent=2) + "\n")
     else:
         sys.stdout.write(t1 + "\n\n" + t2 + "\n")
-        sys.stdout.write(f"\n{doc['date']}, {doc['machine']}; BLAS {BLAS_NOTE}; {doc['seconds']:.0f} s\n")
+        sys.stdout.write(f"\n{doc['date']}, {doc['machine']}; BLAS {_bench.BLAS_NOTE}; {doc['seconds']:.0f} s\n")
     return 0
 
 
 def write_docs(doc: dict, t1: str, t2: str) -> None:
     from moerun.files.fileio import write_text_atomic
 
-    write_text_atomic(ROOT / "moerun" / "data" / "quant_bench.json", json.dumps(doc, indent=2) + "\n")
-    path = ROOT / "docs" / "quant.md"
+    path = ROOT / "docs" / "research" / "quant.md"
     md = path.read_text(encoding="utf-8")
     if START not in md or END not in md:
         raise SystemExit(f"{path}: bench markers missing")

@@ -16,6 +16,9 @@ building the access schedule from the trace arrays, divided into the number of d
   token rows (``move_to_end`` on a hit, ``popitem(last=False)`` when over the quota)
 
 Usage: python scripts/bench_replay.py [--trace FILE] [--min-accesses N] [--slots N] [--repeat N] [--evict P,P] [--json]
+
+It imports ``_bench`` first, before numpy and moerun: one BLAS thread, and the helpers the
+benchmarks share.
 """
 
 from __future__ import annotations
@@ -27,11 +30,10 @@ import json
 import platform
 import sys
 import tempfile
-import time
 from collections import OrderedDict
 from pathlib import Path
 
-import _bench  # noqa: F401  (one BLAS thread, repo on sys.path)
+import _bench  # first: one BLAS thread before numpy is imported; the shared helpers
 import numpy as np
 
 from moerun.cli import main as cli
@@ -59,15 +61,6 @@ def ordered_dict_lru(experts: np.ndarray, slots: int) -> tuple[int, int]:
                     if len(od) > slots:
                         od.popitem(last=False)
     return accesses, misses
-
-
-def best_of(fn, repeat: int) -> tuple[float, object]:
-    best, out = float("inf"), None
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        out = fn()
-        best = min(best, time.perf_counter() - t0)
-    return best, out
 
 
 def main() -> int:
@@ -104,28 +97,28 @@ def main() -> int:
     # interleaved, so that the fast path and the baseline see the same load on a shared machine
     t_lru = t_all = t_base = float("inf")
     for _ in range(args.repeat):
-        t, lru = best_of(lambda: replay.replay_counts(trace, "lru", [C]), 1)
+        t, lru = _bench.best_of(lambda: replay.replay_counts(trace, "lru", [C]), 1)
         t_lru = min(t_lru, t)
-        t, (n_base, base_misses) = best_of(lambda: ordered_dict_lru(experts, C), 1)
+        t, (n_base, base_misses) = _bench.best_of(lambda: ordered_dict_lru(experts, C), 1)
         t_base = min(t_base, t)
-        t, _ = best_of(lambda: replay.replay_counts(trace, "lru", list(range(1, E + 1))), 1)
+        t, _ = _bench.best_of(lambda: replay.replay_counts(trace, "lru", list(range(1, E + 1))), 1)
         t_all = min(t_all, t)
-    t_opt, opt = best_of(lambda: replay.replay_counts(trace, "optimal", [C]), max(1, args.repeat - 1))
+    t_opt, opt = _bench.best_of(lambda: replay.replay_counts(trace, "optimal", [C]), max(1, args.repeat - 1))
 
     tokens_ref = max(1, args.reference_accesses * trace.n_tokens // n)
     ref_trace = Trace(experts[:tokens_ref], meta=trace.meta, probs=probs[:tokens_ref] if probs is not None else None)
     n_ref = int((ref_trace.experts >= 0).sum())
-    t_ref, ref = best_of(lambda: replay.replay_counts(ref_trace, "lru", [C], fast=False), 1)
+    t_ref, ref = _bench.best_of(lambda: replay.replay_counts(ref_trace, "lru", [C], fast=False), 1)
     fast_prefix = replay.replay_counts(ref_trace, "lru", [C])
     same_prefix = [c.misses for c in ref[C]] == [c.misses for c in fast_prefix[C]]
 
     extra = [name for name in replay.parse_policies(args.evict) if name != "lru"]
     t_pol = dict.fromkeys(extra, float("inf"))
     for _ in range(max(1, args.repeat - 1)):  # interleaved with the lru reference path, same load on a shared machine
-        t, _ = best_of(lambda: replay.replay_counts(ref_trace, "lru", [C], fast=False), 1)
+        t, _ = _bench.best_of(lambda: replay.replay_counts(ref_trace, "lru", [C], fast=False), 1)
         t_ref = min(t_ref, t)
         for name in extra:
-            t, _ = best_of(lambda name=name: replay.replay_counts(ref_trace, name, [C], fast=False), 1)
+            t, _ = _bench.best_of(lambda name=name: replay.replay_counts(ref_trace, name, [C], fast=False), 1)
             t_pol[name] = min(t_pol[name], t)
     ns_per_access = {"lru": 1e9 * t_ref / n_ref, **{name: 1e9 * t / n_ref for name, t in t_pol.items()}}
 

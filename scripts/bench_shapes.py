@@ -19,6 +19,9 @@ median, best and spread of decode tok/s, the stall share, and the tokens checked
 session.  BLAS pinned to one thread.
 
 Usage: python scripts/bench_shapes.py [--json] [--work DIR] [--repeats N] [--no-live]
+
+It imports ``_bench`` first, before numpy and moerun: one BLAS thread, and the helpers the
+benchmarks share.
 """
 
 from __future__ import annotations
@@ -35,9 +38,8 @@ import tempfile
 import time
 from pathlib import Path
 
-import _bench  # noqa: F401  (one BLAS thread, repo on sys.path)
+import _bench  # first: one BLAS thread before numpy is imported; the shared helpers
 import numpy as np
-from bench_offload import SESSION_PROMPTS, session
 
 import moerun
 from moerun import policies
@@ -45,18 +47,13 @@ from moerun.cli import main as cli
 from moerun.cli.report import pct, table
 from moerun.files.trace import Trace, read_trace
 from moerun.runtime.budget import fixed_bytes, slot_bytes
-from moerun.sim.counts import replay_counts, shuffled_trace
+from moerun.sim.counts import shuffled_trace
 
 ROOT = Path(__file__).resolve().parent.parent
 MODELS = ("pebble", "scree")
 POLICIES = ("lru", "lfu", "markov", "orbit", "optimal")
 ONLINE_RULES = ("lfu", "markov", "orbit")
 SHARES = (0.10, 0.25, 0.50)
-
-
-def log(msg: str) -> None:
-    sys.stderr.write(msg + "\n")
-    sys.stderr.flush()
 
 
 def heldout_trace(model: str, work: Path) -> Trace:
@@ -76,20 +73,10 @@ def even_quotas(total: int, L: int, E: int) -> list[int]:
     return [max(1, min(E, base + (1 if i < extra else 0))) for i in range(L)]
 
 
-def hit_rates(trace: Trace, name: str, sizes: list[int], shared: bool) -> dict[int, float]:
+def shape_hit_rates(trace: Trace, name: str, sizes: list[int], shared: bool) -> dict[int, float]:
     """Hit rate over all layers per pool size: one shared pool, or the size split into even quotas."""
-    cls = policies.get(name)
-    L, E = trace.n_layers, trace.n_experts
-    if shared:
-        out = replay_counts(trace, cls, sizes, shared=True)
-        return {c: 1 - sum(x.misses for x in out[c]) / sum(x.accesses for x in out[c]) for c in sizes}
-    quotas = {c: even_quotas(c, L, E) for c in sizes}
-    per_quota = replay_counts(trace, cls, sorted({q for qs in quotas.values() for q in qs}))
-    rates = {}
-    for c, qs in quotas.items():
-        counts = [per_quota[q][layer] for layer, q in enumerate(qs)]
-        rates[c] = 1 - sum(x.misses for x in counts) / sum(x.accesses for x in counts)
-    return rates
+    return _bench.hit_rates(trace, name, sizes, shared=shared,
+                            quotas=lambda c: even_quotas(c, trace.n_layers, trace.n_experts))
 
 
 def replay_part(model: str, work: Path, seed: int) -> dict:
@@ -100,8 +87,8 @@ def replay_part(model: str, work: Path, seed: int) -> dict:
     kinds = {}
     for kind, shared in (("shared", True), ("even", False)):
         t0 = time.monotonic()
-        rates = {n: hit_rates(trace, n, sizes, shared) for n in POLICIES}
-        shuf = {n: hit_rates(shuffled, n, sizes, shared) for n in POLICIES}
+        rates = {n: shape_hit_rates(trace, n, sizes, shared) for n in POLICIES}
+        shuf = {n: shape_hit_rates(shuffled, n, sizes, shared) for n in POLICIES}
         rows = []
         for c in sizes:
             lru, opt = rates["lru"][c], rates["optimal"][c]
@@ -114,7 +101,7 @@ def replay_part(model: str, work: Path, seed: int) -> dict:
                 row[f"{n}_gap_closed"] = (rates[n][c] - lru) / (opt - lru) if opt - lru > 1e-12 else None
             rows.append(row)
         kinds[kind] = rows
-        log(f"{model} {kind}: replayed in {time.monotonic() - t0:.0f} s")
+        _bench.log(f"{model} {kind}: replayed in {time.monotonic() - t0:.0f} s")
     return {"model": model, "tokens": trace.n_tokens, "layers": L, "experts": E, "top_k": k,
             "decode_accesses": int((trace.experts >= 0).sum()), "pool_sizes": sizes, "kinds": kinds}
 
@@ -128,14 +115,14 @@ def live_part(a) -> dict:
         per = slot_bytes(st.expert_nbytes)
     n = max(c.top_k, round(a.live_share * c.n_layers * c.n_experts))
     cap = d + kv + s + n * per
-    prompts = SESSION_PROMPTS[: a.session_prompts]
-    ref = session(model, prompts, a.max_new, a.seed)
+    prompts = _bench.SESSION_PROMPTS[: a.session_prompts]
+    ref = _bench.session(model, prompts, a.max_new, a.seed)
     kw = {"mem_cap": cap, "split": "shared"}
-    cal = session(model, prompts, a.max_new, a.seed, **kw)  # LRU at real speed: its page-in time equal to its compute time
+    cal = _bench.session(model, prompts, a.max_new, a.seed, **kw)  # LRU at real speed: its page-in time equal to its compute time
     rate = cal["misses"] * st.expert_nbytes / max(cal["total_s"] - cal["stall_s"], 1e-6)
     calibration = []
     for _ in range(3):  # then closer to half the time stalled, as LRU measures it at that link
-        got = session(model, prompts, a.max_new, a.seed, link_speed=rate, **kw)
+        got = _bench.session(model, prompts, a.max_new, a.seed, link_speed=rate, **kw)
         share = got["stall_s"] / got["total_s"]
         calibration.append({"link_bytes_per_s": rate, "lru_stall_share": share})
         if 0.4 <= share <= 0.6:
@@ -145,7 +132,7 @@ def live_part(a) -> dict:
     runs: dict = {name: [] for name in names}
     for _ in range(a.repeats):  # interleaved, so both see the same background load
         for name in names:
-            runs[name].append(session(model, prompts, a.max_new, a.seed, evict=name, link_speed=rate, **kw))
+            runs[name].append(_bench.session(model, prompts, a.max_new, a.seed, evict=name, link_speed=rate, **kw))
     rows = []
     for name, rs in runs.items():
         tok = [r["tok_s"] for r in rs]

@@ -25,6 +25,9 @@ first is predicted from the window's earlier tokens; cross-entropy is the mean
 over all predicted positions, perplexity its exp.  With --compare DIR (scree:
 pebble) the other model is scored in the same run by the same rule on the same
 token ids, for the card.
+
+It imports ``_bench`` (the scripts' shared helpers: ``log``, ``split_docs``) before numpy and
+torch, which pins numpy's BLAS to one thread; torch's own threads are set by --threads.
 """
 
 from __future__ import annotations
@@ -34,21 +37,19 @@ import datetime as dt
 import json
 import math
 import os
-import sys
 import time
 from pathlib import Path
 
+import _bench  # first: before numpy; puts the repository on sys.path
 import numpy as np
 import torch
 import torch.nn.functional as F
 from tokenizers import Tokenizer, decoders, models, pre_tokenizers, trainers
 
+from moerun.checks.torch_twin import TorchMoE
+
 ROOT = Path(__file__).resolve().parent.parent
-sys.path.insert(0, str(ROOT))
-
-from moerun.checks.torch_twin import TorchMoE  # noqa: E402  (after the sys.path insert above)
-
-DOC = "<doc>"
+DOC = _bench.DOC
 BUNDLED = ROOT / "tiny_models"
 
 PEBBLE = {
@@ -76,10 +77,6 @@ BLURB = {
 # ------------------------------------------------------------------ helpers
 
 
-def log(msg: str) -> None:
-    print(msg, flush=True)
-
-
 def atomic_write(path: Path, data: bytes) -> None:
     tmp = path.with_name(f".{path.name}.tmp")
     with open(tmp, "wb") as f:
@@ -87,11 +84,6 @@ def atomic_write(path: Path, data: bytes) -> None:
         f.flush()
         os.fsync(f.fileno())
     os.replace(tmp, path)
-
-
-def split_docs(text: str) -> list[str]:
-    """Documents of a corpus file, each including its leading <doc> marker."""
-    return [DOC + d for d in text.split(DOC)[1:]]
 
 
 def register_of(doc: str) -> str:
@@ -212,7 +204,7 @@ def main() -> None:
     args.compare = args.compare or (str(preset["compare"]) if preset["compare"] else None)
 
     if os.environ.get("OMP_WAIT_POLICY", "").upper() != "PASSIVE":
-        log("note: set OMP_WAIT_POLICY=PASSIVE for training on shared cores "
+        _bench.log("note: set OMP_WAIT_POLICY=PASSIVE for training on shared cores "
             "(OMP_WAIT_POLICY=PASSIVE python scripts/train_tiny.py ...)")
     torch.set_num_threads(args.threads)
     torch.manual_seed(args.seed)
@@ -224,11 +216,11 @@ def main() -> None:
     seq = cfg["max_seq_len"]
 
     # -- corpus and tokenizer
-    train_docs = split_docs((corpus / "train.txt").read_text(encoding="utf-8"))
-    held_docs = split_docs((corpus / "heldout.txt").read_text(encoding="utf-8"))
+    train_docs = _bench.split_docs((corpus / "train.txt").read_text(encoding="utf-8"))
+    held_docs = _bench.split_docs((corpus / "heldout.txt").read_text(encoding="utf-8"))
     if args.tokenizer:
         tok = load_tokenizer(Path(args.tokenizer), cfg["vocab_size"])
-        log(f"tokenizer: reused {args.tokenizer}")
+        _bench.log(f"tokenizer: reused {args.tokenizer}")
     else:
         tok = train_tokenizer(train_docs, cfg["vocab_size"])
     for d in held_docs[:50]:
@@ -237,7 +229,7 @@ def main() -> None:
             raise RuntimeError("tokenizer does not round-trip a held-out document")
     train_ids = encode_docs(tok, train_docs)
     held_ids = encode_docs(tok, held_docs)
-    log(f"tokenizer: vocab {tok.get_vocab_size()}; train {len(train_ids):,} tokens "
+    _bench.log(f"tokenizer: vocab {tok.get_vocab_size()}; train {len(train_ids):,} tokens "
         f"({sum(len(d.encode()) for d in train_docs) / len(train_ids):.2f} bytes/token), held-out {len(held_ids):,} tokens")
 
     # bundled held-out slice: whole documents from the start of heldout.txt
@@ -268,7 +260,7 @@ def main() -> None:
     gen = torch.Generator().manual_seed(args.seed)
     data = torch.from_numpy(train_ids)
     max_start = len(train_ids) - seq - 1
-    log(f"model {args.name}: {n_params:,} parameters; {args.steps} steps of {args.batch}x{seq} tokens on {args.threads} threads")
+    _bench.log(f"model {args.name}: {n_params:,} parameters; {args.steps} steps of {args.batch}x{seq} tokens on {args.threads} threads")
     t0 = time.monotonic()
     hist: list[float] = []
     lb_hist: list[float] = []
@@ -290,12 +282,12 @@ def main() -> None:
         lb_hist.append(aux["lb"].item())
         if (step + 1) % 50 == 0 or step == 0:
             recent = hist[-50:]
-            log(f"step {step + 1:5d}/{args.steps}  loss {sum(recent) / len(recent):.4f}  lb {aux['lb'].item():.3f}  "
+            _bench.log(f"step {step + 1:5d}/{args.steps}  loss {sum(recent) / len(recent):.4f}  lb {aux['lb'].item():.3f}  "
                 f"z {aux['z'].item():.2f}  lr {lr_at(step):.2e}  {time.monotonic() - t0:7.1f} s")
         if args.eval_every and (step + 1) % args.eval_every == 0 and step + 1 < args.steps:
             ce_h, _, _ = score(model, held_ids, seq)
             evals.append((step + 1, ce_h))
-            log(f"           held-out {ce_h:.4f} nats/token (ppl {math.exp(ce_h):.3f})")
+            _bench.log(f"           held-out {ce_h:.4f} nats/token (ppl {math.exp(ce_h):.3f})")
     train_seconds = time.monotonic() - t0
     final_train_loss = sum(hist[-50:]) / len(hist[-50:])
     final_lb = sum(lb_hist[-50:]) / len(lb_hist[-50:])
@@ -308,12 +300,12 @@ def main() -> None:
     tr_windows = np.concatenate([train_ids[s:s + seq] for s in rng.integers(0, max_start, 64)])
     ce_train, _, _ = score(model, tr_windows, seq)
     shares = counts / counts.sum(axis=1, keepdims=True)
-    log(f"done in {train_seconds:.0f} s: train loss (last 50 steps) {final_train_loss:.4f}; "
+    _bench.log(f"done in {train_seconds:.0f} s: train loss (last 50 steps) {final_train_loss:.4f}; "
         f"eval-mode train {ce_train:.4f}; held-out {ce_all:.4f} (ppl {math.exp(ce_all):.3f}); "
         f"bundled slice {ce_slice:.4f} (ppl {math.exp(ce_slice):.3f})")
-    log("expert shares per layer (% of top-k assignments):")
+    _bench.log("expert shares per layer (% of top-k assignments):")
     for li in range(cfg["n_layers"]):
-        log(f"  layer {li}: " + " ".join(f"{100 * s:5.1f}" for s in shares[li]))
+        _bench.log(f"  layer {li}: " + " ".join(f"{100 * s:5.1f}" for s in shares[li]))
     compare = None
     if args.compare:  # the other model, scored by the same rule on the same token ids in this run
         other = TorchMoE.from_model_dir(args.compare)
@@ -323,7 +315,7 @@ def main() -> None:
             raise RuntimeError("the comparison model predicted a different number of tokens")
         name = json.loads((Path(args.compare) / "config.json").read_text(encoding="utf-8")).get("name") or Path(args.compare).name
         compare = {"name": name, "dir": args.compare, "ce_all": other_all, "ce_slice": other_slice}
-        log(f"{name}, same rule and tokens: held-out {other_all:.4f} (ppl {math.exp(other_all):.3f}); "
+        _bench.log(f"{name}, same rule and tokens: held-out {other_all:.4f} (ppl {math.exp(other_all):.3f}); "
             f"bundled slice {other_slice:.4f} (ppl {math.exp(other_slice):.3f})")
 
     # -- export
@@ -341,7 +333,7 @@ def main() -> None:
         os.replace(tmp, out / "model.safetensors")
         writer = "safetensors.numpy.save_file (moerun.files.modelfile not available)"
     os.chmod(out / "model.safetensors", 0o644)
-    log(f"model.safetensors written with {writer}")
+    _bench.log(f"model.safetensors written with {writer}")
     tmp = out / ".tokenizer.json.tmp"
     tok.save(str(tmp))
     os.replace(tmp, out / "tokenizer.json")
@@ -369,7 +361,7 @@ def main() -> None:
         np.savez(f, token_ids=ref_ids, logits=ref_logits, torch_version=np.array(torch.__version__))
     os.replace(tmp, out / "reference.npz")
     np_diff = numpy_max_diff(out, ref_ids, ref_logits)
-    log(f"numpy engine vs torch reference on reference.npz: max |logit difference| {np_diff:.2e}")
+    _bench.log(f"numpy engine vs torch reference on reference.npz: max |logit difference| {np_diff:.2e}")
 
     # samples (torch decode path)
     sgen = torch.Generator().manual_seed(args.seed)
@@ -378,7 +370,7 @@ def main() -> None:
                          (DOC + "TICKET", 0.8), (DOC + "## Weekly yield", 0.0), (DOC, 0.8)):
         text = sample(fresh, tok, prompt, 160, temp, sgen)
         samples.append((prompt, temp, text))
-        log(f"--- sample {prompt!r} (temperature {temp}) ---\n{text}")
+        _bench.log(f"--- sample {prompt!r} (temperature {temp}) ---\n{text}")
 
     results = {
         "n_params": n_params, "train_seconds": train_seconds, "final_train_loss": final_train_loss,
@@ -388,7 +380,7 @@ def main() -> None:
         "total_seconds": time.monotonic() - t_start,
     }
     write_card(out, cfg, corpus, args, tok, results)
-    log(f"exported to {out} ({sum(p.stat().st_size for p in out.iterdir()) / 2**20:.1f} MiB) "
+    _bench.log(f"exported to {out} ({sum(p.stat().st_size for p in out.iterdir()) / 2**20:.1f} MiB) "
         f"in {time.monotonic() - t_start:.0f} s total")
 
 
@@ -501,7 +493,7 @@ Beside {cmp['name']}, scored in this run by the same rule on the same token ids
                     f"prefix space), vocabulary {tok.get_vocab_size()}, trained on train.txt")
     card = f"""# {name} — a bundled tiny model
 
-A {cfg['n_layers']}-layer sparse mixture-of-experts model ({shape}) following the model spec of docs/architecture.md,
+A {cfg['n_layers']}-layer sparse mixture-of-experts model ({shape}) following the model spec of docs/design/architecture.md,
 trained on CPU on an invented corpus. It {BLURB[name]}, not to be useful
 for anything else.
 
@@ -599,7 +591,7 @@ perplexity is its exp.
 | file | content |
 |---|---|
 | config.json | model configuration (format `moerun/1`) |
-| model.safetensors | F32 weights, tensor names of the model spec (docs/architecture.md) |
+| model.safetensors | F32 weights, tensor names of the model spec (docs/design/architecture.md) |
 | tokenizer.json | the byte-level BPE tokenizer |
 | heldout.txt | {slice_kb:.0f} KB of whole held-out documents (never trained on) for scoring |
 | reference.npz | `token_ids` int64 [3, 64] (three held-out windows, each starting at a document start, token 0), `logits` float32 [3, 64, {cfg['vocab_size']}] from the PyTorch reference in float32 (`moerun/checks/torch_twin.py`), `torch_version` |

@@ -2,9 +2,9 @@
 """Tune the ``markov`` (or ``--policy orbit``) eviction policy on one part of the text and report it on parts never used for tuning.
 
 With ``--shared``, the pool is one pool shared by all layers and ``--slots`` / ``--objective-slots`` are
-percentages of all experts (docs/policy_research.md, "A rule for the shared pool").
+percentages of all experts (docs/research/policies.md, "A rule for the shared pool").
 
-The protocol, end to end (docs/policy_research.md has the results and the reasoning):
+The protocol, end to end (docs/research/policies.md has the results and the reasoning):
 
 1. Traces.  ``moerun record`` (teacher-forced, fully resident, with router probabilities) over
    - the TUNING text: by default the first ``--tune-bytes`` of whole documents of the training corpus
@@ -32,6 +32,9 @@ code) for the policy and the fast paths for LRU and the optimum.  Traces are cac
 
 Usage: python scripts/tune_policy.py [--work DIR] [--rounds N] [--jobs N] [--no-search] [--json]
        python scripts/tune_policy.py --model tiny_models/scree --policy orbit --shared --slots 10,25,50 --objective-slots 10,25,50
+
+It imports ``_bench`` first, before numpy and moerun: one BLAS thread, and the helpers the
+benchmarks share.
 """
 
 from __future__ import annotations
@@ -48,9 +51,8 @@ import tempfile
 import time
 from pathlib import Path
 
-import _bench  # noqa: F401  (one BLAS thread, repo on sys.path)
+import _bench  # first: one BLAS thread before numpy is imported; the shared helpers
 import numpy as np
-from bench_offload import SESSION_PROMPTS
 
 from moerun.cli import main as cli
 from moerun.cli.report import pct, table
@@ -61,8 +63,7 @@ from moerun.sim import report as replay
 
 ROOT = Path(__file__).resolve().parent.parent
 CORPUS_TRAIN = ROOT / "data" / "corpus" / "train.txt"
-DOC = "<doc>"
-PROMPTS = SESSION_PROMPTS  # one opener per register, and an empty document
+PROMPTS = _bench.SESSION_PROMPTS  # one opener per register, and an empty document
 # The grid the search walks (values per parameter); the class defaults are the starting point.
 GRIDS = {}
 GRIDS["markov"] = GRID = {
@@ -87,19 +88,7 @@ CLASSES = {"markov": Markov, "orbit": Orbit}
 COSTLY_BY = {"markov": ("order", "horizon", "memory"), "orbit": ("horizon",)}
 
 
-def log(msg: str) -> None:
-    sys.stderr.write(msg + "\n")
-    sys.stderr.flush()
-
-
 # ---------------------------------------------------------------------------- texts and traces
-
-
-def split_docs(text: str) -> list[str]:
-    """Whole documents (each starting with the <doc> marker), or lines when there is no marker."""
-    if DOC in text:
-        return [DOC + d for d in text.split(DOC)[1:]]
-    return text.splitlines(keepends=True)
 
 
 def first_bytes(docs: list[str], limit: int) -> list[str]:
@@ -117,9 +106,9 @@ def texts(args, work: Path) -> dict:
     model = Path(args.model) if args.model else default_model_dir()
     heldout = model / "heldout.txt"
     tune_src = Path(args.tune_text) if args.tune_text else (CORPUS_TRAIN if CORPUS_TRAIN.is_file() else None)
-    held_docs = split_docs(heldout.read_text(encoding="utf-8"))
+    held_docs = _bench.split_docs(heldout.read_text(encoding="utf-8"))
     if tune_src is not None:
-        tune_docs = first_bytes(split_docs(tune_src.read_text(encoding="utf-8")), args.tune_bytes)
+        tune_docs = first_bytes(_bench.split_docs(tune_src.read_text(encoding="utf-8")), args.tune_bytes)
         test_docs = held_docs
         tune_label = f"{tune_src} (first {sum(len(d.encode()) for d in tune_docs)} bytes, {len(tune_docs)} documents)"
         test_label = f"{heldout} (all {len(test_docs)} documents)"
@@ -145,9 +134,9 @@ def record(args, work: Path, name: str) -> Trace:
     if not path.exists():
         t0 = time.monotonic()
         _quiet(["record", *(["--model", args.model] if args.model else []), "--text", str(work / f"{name}.txt"), "--trace", str(path), "--json"])
-        log(f"recorded {path} in {time.monotonic() - t0:.0f} s")
+        _bench.log(f"recorded {path} in {time.monotonic() - t0:.0f} s")
     else:
-        log(f"reusing {path}")
+        _bench.log(f"reusing {path}")
     trace = read_trace(path)
     if trace.probs is None:
         raise SystemExit(f"{path} holds no router probabilities; delete it to record it again")
@@ -164,7 +153,7 @@ def generations(args, work: Path) -> list[Trace]:
                 _quiet(["generate", *(["--model", args.model] if args.model else []), "--prompt", prompt, "--seed", str(seed),
                         "--max-new", str(args.gen_tokens), "--trace", str(path), "--json"])
             out.append(read_trace(path))
-    log(f"{len(out)} generation traces ready in {time.monotonic() - t0:.0f} s")
+    _bench.log(f"{len(out)} generation traces ready in {time.monotonic() - t0:.0f} s")
     return out
 
 
@@ -174,17 +163,10 @@ def generations(args, work: Path) -> list[Trace]:
 SHARED = False  # --shared: slots are totals of one pool shared by all layers
 
 
-def hit_rates(traces: list[Trace], policy, slots: list[int], fast: bool = True) -> dict[int, float]:
+def pool_hit_rates(traces: list[Trace], policy, slots: list[int], fast: bool = True) -> dict[int, float]:
     """Overall hit rate per quota (per layer, or per shared pool with --shared), counts summed over
     traces (each replayed from an empty pool)."""
-    acc = dict.fromkeys(slots, 0)
-    miss = dict.fromkeys(slots, 0)
-    for tr in traces:
-        out = replay.replay_counts(tr, policy, slots, fast, shared=SHARED)
-        for c in slots:
-            acc[c] += sum(x.accesses for x in out[c])
-            miss[c] += sum(x.misses for x in out[c])
-    return {c: 1 - miss[c] / acc[c] for c in slots}
+    return _bench.hit_rates(traces, policy, slots, shared=SHARED, fast=fast)
 
 
 def gap_share(pol: float, lru: float, opt: float) -> float | None:
@@ -198,7 +180,7 @@ _CLS = Markov
 
 def _evaluate(params: dict) -> tuple[dict, dict[int, float], float]:
     t0 = time.monotonic()
-    r = hit_rates(_TRACES, _CLS.with_params(**params), _SLOTS, fast=False)
+    r = pool_hit_rates(_TRACES, _CLS.with_params(**params), _SLOTS, fast=False)
     return params, r, time.monotonic() - t0
 
 
@@ -207,8 +189,8 @@ def search(tune: Trace, slots: list[int], rounds: int, jobs: int, min_gain: floa
     global _TRACES, _SLOTS, _CLS
     _TRACES, _SLOTS, _CLS = [tune], slots, CLASSES[name]
     GRID, COSTLY = GRIDS[name], COSTLY_BY[name]
-    lru = hit_rates([tune], LRU, slots)
-    opt = hit_rates([tune], Optimal, slots)
+    lru = pool_hit_rates([tune], LRU, slots)
+    opt = pool_hit_rates([tune], Optimal, slots)
 
     def objective(r: dict[int, float]) -> float:
         return float(np.mean([gap_share(r[c], lru[c], opt[c]) for c in slots]))
@@ -226,7 +208,7 @@ def search(tune: Trace, slots: list[int], rounds: int, jobs: int, min_gain: floa
                 for params, r, dt in pool.imap(_evaluate, todo):
                     seen[tuple(sorted(params.items()))] = r
                     history.append({"params": params, "hit_rate": r, "objective": objective(r), "seconds": dt})
-                    log(f"  round {rnd + 1} {name}={params[name]!s:<6} objective {100 * objective(r):5.1f}% of the gap  "
+                    _bench.log(f"  round {rnd + 1} {name}={params[name]!s:<6} objective {100 * objective(r):5.1f}% of the gap  "
                         + " ".join(f"{c}:{100 * r[c]:.1f}%" for c in slots) + f"  ({dt:.0f} s)")
                 score = {i: objective(seen[tuple(sorted(c.items()))]) for i, c in enumerate(cands)}
                 if name in COSTLY:  # the cheapest value within min_gain of the best
@@ -236,7 +218,7 @@ def search(tune: Trace, slots: list[int], rounds: int, jobs: int, min_gain: floa
                     top = max(cands, key=lambda c: (score[cands.index(c)], c == best))
                 if top != best:
                     best, changed = top, True
-            log(f"after round {rnd + 1}: {best}")
+            _bench.log(f"after round {rnd + 1}: {best}")
             if not changed:
                 break
     return best, history
@@ -251,12 +233,12 @@ def shuffled(traces: list[Trace], seed: int) -> list[Trace]:
 
 def report_set(label: str, traces: list[Trace], policy, slots: list[int], seed: int) -> dict:
     t0 = time.monotonic()
-    lru = hit_rates(traces, LRU, slots)
-    pol = hit_rates(traces, policy, slots, fast=False)
-    opt = hit_rates(traces, Optimal, slots)
+    lru = pool_hit_rates(traces, LRU, slots)
+    pol = pool_hit_rates(traces, policy, slots, fast=False)
+    opt = pool_hit_rates(traces, Optimal, slots)
     shuf = shuffled(traces, seed)
-    lru_s = hit_rates(shuf, LRU, slots)
-    pol_s = hit_rates(shuf, policy, slots, fast=False)
+    lru_s = pool_hit_rates(shuf, LRU, slots)
+    pol_s = pool_hit_rates(shuf, policy, slots, fast=False)
     rows = [
         {
             "slots": c,
@@ -271,7 +253,7 @@ def report_set(label: str, traces: list[Trace], policy, slots: list[int], seed: 
     ]
     tokens = sum(t.n_tokens for t in traces)
     accesses = sum(int((t.experts[replay.prefill_tokens(t):] >= 0).sum()) for t in traces)
-    log(f"reported {label} in {time.monotonic() - t0:.0f} s")
+    _bench.log(f"reported {label} in {time.monotonic() - t0:.0f} s")
     return {"label": label, "traces": len(traces), "tokens": tokens, "decode_accesses": accesses, "rows": rows}
 
 
@@ -345,7 +327,7 @@ def main() -> int:
     if args.no_search:
         params, history = {k: getattr(cls, k) for k in GRID}, []
     else:
-        log(f"searching on the tuning trace ({searched.n_tokens} tokens), slots {obj_slots}")
+        _bench.log(f"searching on the tuning trace ({searched.n_tokens} tokens), slots {obj_slots}")
         params, history = search(searched, obj_slots, args.rounds, args.jobs, args.min_gain, args.policy)
     policy = cls.with_params(**params)
     defaults = {k: getattr(cls, k) for k in GRID}

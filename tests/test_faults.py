@@ -1,6 +1,6 @@
 """Injected faults, corrupted bytes at rest, and the limits of the context.
 
-Faults are injected through the documented test hooks (docs/hardening.md):
+Faults are injected through the documented test hooks (docs/design/testing.md):
 
 - ``store.fault_hook(layer, expert)``: runs before every expert read, on the compute thread (for a read
   handed to the reader process, when it is handed over; raising there fails that hand-over);
@@ -8,7 +8,7 @@ Faults are injected through the documented test hooks (docs/hardening.md):
 - ``prefetcher.reader.set_faults(...)``: random delays before the reader's reads, reported failures of
   every n-th read, or the reader process exiting abruptly with a read outstanding.
 
-A run with a fault ends in one of two ways (docs/architecture.md, invariants: offloading never changes
+A run with a fault ends in one of two ways (docs/design/architecture.md, invariants: offloading never changes
 numbers; prefetch is advisory): a correct finish whose tokens and logits are bit-identical to the fully
 resident engine's, or one clear error (``PageInError``, exit 2 with one stderr line).  It never hangs: every run here goes through a watchdog.  With
 ``generate --trace FILE`` the trace is then either complete or marked ``"partial": true``, readable,

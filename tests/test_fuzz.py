@@ -1,6 +1,6 @@
 """Fuzzing the readers of files that come from outside: the weight file, config.json and routing traces.
 
-Whatever the bytes, every input ends in exactly one of two ways (docs/architecture.md, invariants: files are trusted only after validation):
+Whatever the bytes, every input ends in exactly one of two ways (docs/design/architecture.md, invariants: files are trusted only after validation):
 
 - a model that loads and computes logits, bit-identical to the untouched model's whenever the tensors
   it uses hold the same bytes; or
@@ -495,7 +495,7 @@ def config_edits(draw, base: BaseModel) -> dict:
         if draw(st.integers(0, 5)) == 0:
             raw.pop(key, None)
         elif key == "max_seq_len":
-            # the declared context sizes the KV cache and rotary tables with no cap given (see docs/hardening.md):
+            # the declared context sizes the KV cache and rotary tables with no cap given (see docs/guide/hardening.md):
             # keep it small here so a "valid" draw cannot take the machine's memory
             raw[key] = draw(st.one_of(st.integers(-2, 4096), st.none(), st.booleans(), st.floats(), st.text(max_size=8)))
         else:
@@ -738,7 +738,7 @@ def _justified_bytes(blob: bytes) -> int:
 
 
 def _assert_is_a_valid_trace(t: Trace) -> None:
-    """What read_trace promises to its callers (docs/traces.md)."""
+    """What read_trace promises to its callers (docs/design/file-formats.md)."""
     assert isinstance(t.meta, dict)
     e = t.experts
     assert e.dtype == np.int64 and e.ndim == 3 and e.shape[1] > 0 and e.shape[2] > 0

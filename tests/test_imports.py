@@ -4,7 +4,7 @@ Every module under moerun/ is parsed with ``ast`` (not imported), and every impo
 functions or not, relative or absolute: ``from . import x`` depends on the submodule ``moerun.x`` when there is
 one, on the package's ``__init__`` otherwise (``from . import __version__``).  Importing a submodule also runs
 its package's ``__init__``; that implicit step is how packages work and is not counted as an edge.
-The layering is described in docs/architecture.md (data flow).
+The layering is described in docs/design/architecture.md (data flow).
 """
 
 from __future__ import annotations
@@ -17,7 +17,7 @@ import moerun
 ROOT = Path(moerun.__file__).resolve().parent
 PACKAGE = "moerun"
 
-# The layering, as rules over directories (docs/architecture.md, section 1).  What a decode needs:
+# The layering, as rules over directories (docs/design/architecture.md, section 1).  What a decode needs:
 RUNTIME = ("moerun.model", "moerun.files", "moerun.runtime", "moerun.policies")
 # Shared leaves every layer may use.
 LEAVES = ("moerun.errors", "moerun.units", "moerun._version")

@@ -1,6 +1,6 @@
 """Ctrl-C: a real SIGINT sent to ``python -m moerun ...`` while a command is busy.
 
-Each interrupted command must (docs/architecture.md, moerun.cli.main):
+Each interrupted command must (docs/design/architecture.md, moerun.cli.main):
 
 - exit with code 130 promptly (the requirement is within one second of the signal; the tests allow
   5 s because CI shares two cores with other jobs), printing one "interrupted" line and no traceback;

@@ -1,6 +1,6 @@
 """Offloading as a whole (pool + budget + prefetch + store): it never changes numbers, and the cap is real.
 
-docs/architecture.md invariants 1 (bit-identical logits and tokens under any
+docs/design/architecture.md invariants 1 (bit-identical logits and tokens under any
 cap, policy and prefetch setting), 2 (the memory cap is real) and 4 (prefetch is
 advisory and the reader stops cleanly).
 """

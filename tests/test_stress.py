@@ -5,7 +5,7 @@ resident, even or shared pool or an explicit slot list, eviction policy, prefetc
 prefetch point, page-in mechanism, sometimes an emulated link) and random 0-1 ms delays injected before
 prefetch reads, generates a few tokens, and closes.  After each round:
 
-- the tokens and every step's logits equal the fully resident engine's, bit for bit (docs/architecture.md,
+- the tokens and every step's logits equal the fully resident engine's, bit for bit (docs/design/architecture.md,
   invariants: offloading never changes numbers);
 - the thread count is back to where it was before the round, and so are this process's child processes
   (psutil): a prefetch engine's reader process is gone once the engine is closed (invariants: prefetch is

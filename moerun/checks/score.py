@@ -1,6 +1,6 @@
 """Perplexity of a text under a model, teacher-forced, in windows of the model's context.
 
-The scoring rule (docs/quant.md, "Scoring"):
+The scoring rule (docs/guide/quant.md, "Scoring"):
 
 * ``ids = tokenizer.encode(text)`` without a leading bos token (``encode_array``: the same ids).
 * The ids are cut into consecutive runs of ``max_seq_len - 1`` tokens (the

@@ -1,4 +1,4 @@
-"""PyTorch reference of the moerun model (the model spec, docs/architecture.md), float32.
+"""PyTorch reference of the moerun model (the model spec, docs/design/architecture.md), float32.
 
 Used to train the bundled tiny model, to compute its reference logits and as a
 batch-1 decode baseline for benchmarks. It is only imported where torch is

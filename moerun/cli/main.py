@@ -1,6 +1,6 @@
 """``moerun <command>``: argument parsing, shared options, and the one place errors become exit codes.
 
-Exit codes (docs/architecture.md): 0 success, 1 a check failed, 2 bad input or
+Exit codes (docs/guide/hardening.md): 0 success, 1 a check failed, 2 bad input or
 usage, 130 interrupted.  Library errors (``MoerunError``) become one line on
 stderr; nothing prints a traceback for a user mistake.
 """
@@ -114,7 +114,7 @@ def _given(args, name: str) -> bool:
 
 
 def refuse_without(args, option: str, required: str, how: str = "") -> None:
-    """OPTION means nothing unless REQUIRED is given: refused (one rule for every command, docs/hardening.md)."""
+    """OPTION means nothing unless REQUIRED is given: refused (one rule for every command, docs/guide/hardening.md)."""
     if _given(args, option) and not _given(args, required):
         raise BadOption(f"{_flag(option)} has no effect without {how or _flag(required)}; drop it or add {_flag(required)}")
 

@@ -10,7 +10,7 @@ NOT_ADVICE = "text from a tiny model trained on invented data; not advice"
 RANDOM_NOTE = f"{config_note} and the text is noise"  # what a generation from random weights needs said
 # Peak resident-set growth may exceed --mem-cap by this much before a run is flagged: the interpreter's own
 # small allocations (token lists, the routing recorder, numpy's per-call buffers) that no budget line counts
-# (docs/offload.md, "What the cap covers").
+# (docs/guide/offload.md, "What the cap covers").
 CAP_ALLOWANCE_BYTES = 2 << 20
 
 

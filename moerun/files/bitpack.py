@@ -1,4 +1,4 @@
-"""Low-bit codes packed into bytes, and back: the bit level of the packed format (docs/quant.md).
+"""Low-bit codes packed into bytes, and back: the bit level of the packed format (docs/design/quant.md).
 
 Codes are packed densely and *planar* (``pack_codes`` says how), so that
 unpacking at run time is a handful of whole-array shifts and masks over the

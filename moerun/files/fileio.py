@@ -1,4 +1,4 @@
-"""Every file moerun writes or reads for the user goes through this module (docs/hardening.md, "Outputs and inputs").
+"""Every file moerun writes or reads for the user goes through this module (docs/guide/hardening.md, "Outputs" and "Inputs").
 
 Outputs, one rule for all of them:
 

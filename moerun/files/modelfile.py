@@ -1,7 +1,7 @@
 """The safetensors weight file: parse and validate its header, and write it.
 
 moerun parses the header itself (the reference library exposes no byte
-offsets) and trusts nothing before it is checked (docs/architecture.md, invariants: files are trusted only after validation): header
+offsets) and trusts nothing before it is checked (docs/design/architecture.md, invariants: files are trusted only after validation): header
 length bound, well-formed JSON, known dtypes, sizes that match shapes, offsets
 inside the file and no overlaps.  The writer orders tensors so that each
 expert's matrices form one contiguous byte range and records a digest per

@@ -4,7 +4,7 @@ A quantized model's config.json carries a ``quant`` entry (``QuantSpec``) and
 its weights file stores every expert as ONE uint8 blob
 (``layers.{l}.experts.{e}.packed``) holding the codes of w_gate, w_up and
 w_down as one stream, then the float16 scales and zero points;
-``BlobLayout`` describes the bytes and docs/quant.md draws them.  A matrix
+``BlobLayout`` describes the bytes and docs/design/quant.md draws them.  A matrix
 ``W`` of shape (in, out) is cut along its input axis into groups of ``group``
 consecutive rows (the last group may be shorter); every column of every group
 has its own float16 scale ``s`` and zero point ``z``, and the engine computes
@@ -367,7 +367,7 @@ def read_packed_dense(config: ModelConfig, header: Header, name: str, blob_name:
     if t.dtype != "U8" or t.shape != (layout.nbytes,):
         raise BadModelFile(
             f"{header.path}: tensor {blob_name!r} is {t.dtype} {list(t.shape)}, but {spec.attn_bits}-bit {list(shape)} "
-            f"with group {spec.group} needs U8 [{layout.nbytes}] (layout in docs/quant.md)"
+            f"with group {spec.group} needs U8 [{layout.nbytes}] (layout in docs/design/quant.md)"
         )
     blob = np.frombuffer(read(t.start, t.nbytes), np.uint8)
     deq = Dequantizer(layout)

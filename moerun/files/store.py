@@ -6,7 +6,7 @@ stay in the file: each is one contiguous byte range, and ``page_in`` copies
 one into a caller's buffer (a pool slot) and returns the real time it took in
 nanoseconds.
 
-Page-in mechanisms (measured by ``scripts/bench_pagein.py``, see docs/offload.md):
+Page-in mechanisms (measured by ``scripts/bench_pagein.py``, see docs/guide/offload.md):
 ``pread`` (default) reads exactly the expert's bytes with ``os.preadv`` into
 the slot; nothing of the file is mapped into the process, so copied pages
 never count towards its resident set.  ``mmap`` copies from a read-only map
@@ -196,7 +196,7 @@ class ModelStore:
     # ---------------------------------------------------------------- opening
     @classmethod
     def open(cls, model_dir: str | os.PathLike) -> ModelStore:
-        """Open a model directory, trusting nothing in it before it is checked (docs/architecture.md, invariants).
+        """Open a model directory, trusting nothing in it before it is checked (docs/design/architecture.md, invariants).
 
         config.json, the header, every dense tensor's shape and dtype, the quantization recorded in the file against
         config.json's, and each expert's byte range are validated; then the dense weights are read (BadModelFile for

@@ -1,4 +1,4 @@
-"""Routing traces: recording them from a run, and the ``.npz`` file format (docs/traces.md).
+"""Routing traces: recording them from a run, and the ``.npz`` file format (docs/design/file-formats.md).
 
 A trace file is a numpy ``.npz`` archive:
 
@@ -380,7 +380,7 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
     data = read_user_file(path, BadTrace, "trace file", limit=TRACE_FILE_LIMIT)
     kind = _not_a_zip(data)
     if kind is not None:
-        raise BadTrace(f"{path}: not an .npz archive ({kind}); a trace is a zip of named numpy arrays, see docs/traces.md")
+        raise BadTrace(f"{path}: not an .npz archive ({kind}); a trace is a zip of named numpy arrays, see docs/design/file-formats.md")
     _check_members(path, data)
     arrays = _load_arrays(path, data)
     _check_routing_shape(path, arrays["experts"])

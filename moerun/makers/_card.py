@@ -55,7 +55,7 @@ def setting_tag(spec: QuantSpec) -> str:
 
 
 def bench_rows_path():
-    """The last results of scripts/bench_quant.py, shipped inside the package (moerun/data/quant_bench.json)."""
+    """The last results of scripts/bench_quant.py, shipped inside the package (moerun/data/quant_bench.json, built by scripts/make_quant_table.py)."""
     return files("moerun") / "data" / "quant_bench.json"
 
 
@@ -111,7 +111,7 @@ def _how_section(s: QuantSpec, c: ModelConfig) -> list[str]:
         "",
         ("Embeddings, norms, routers and the shared expert (dense, always resident)" if c.d_shared else "Embeddings, norms and routers")
         + " keep the source's dtype. Each expert is one uint8 tensor "
-        "`layers.{l}.experts.{e}.packed`; the byte layout is in docs/quant.md of moerun.",
+        "`layers.{l}.experts.{e}.packed`; the byte layout is in docs/design/quant.md of moerun.",
     ]
 
 
@@ -154,7 +154,7 @@ def _bench_section(r: QuantReport) -> list[str]:
         "## From the quantization benchmark (not measured in this run)",
         "",
         f"scripts/bench_quant.py, {doc.get('date', '?')} on {doc.get('machine', '?')}; BLAS {doc.get('blas_threads', '?')}. "
-        "Cap: the model's fixed parts plus one third of the float32 model's expert bytes (see docs/quant.md).",
+        "Cap: the model's fixed parts plus one third of the float32 model's expert bytes (see docs/research/quant.md).",
         "",
         "| file | bytes/expert | held-out ppl (fp32) | cap | decode tok/s at cap |"
         + (f" same, {link / 1e9:g} GB/s link (emulated) |" if link else ""),

@@ -7,7 +7,7 @@ is cut) a weight becomes a code ``q`` in ``0 .. 2**bits - 1``::
 
     q = clip(round(W / s + z), 0, 2**bits - 1)        (quantize)
 
-Two ways to choose ``s`` and ``z`` (docs/quant.md has the derivations):
+Two ways to choose ``s`` and ``z`` (docs/design/quant.md has the derivations):
 
 ``rtn``  round to nearest over the group's range, widened to include zero:
          ``lo = min(min W, 0)``, ``hi = max(max W, 0)``, ``s = (hi - lo) / (2**bits - 1)``

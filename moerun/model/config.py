@@ -35,7 +35,7 @@ _INT_FIELDS = (
 
 @dataclass(frozen=True)
 class ModelConfig:
-    """Shape and hyper-parameters of a model (docs/architecture.md, model spec)."""
+    """Shape and hyper-parameters of a model (docs/design/architecture.md, model spec)."""
 
     vocab_size: int
     d_model: int
@@ -156,7 +156,7 @@ class ModelConfig:
             raise BadModelFile(f"{path}: not valid JSON (nested too deeply)") from None
         return cls.from_dict(raw, where=str(path))
 
-    # Expected dense tensors and their shapes (docs/architecture.md, model spec).
+    # Expected dense tensors and their shapes (docs/design/architecture.md, model spec).
     def dense_shapes(self) -> dict[str, tuple[int, ...]]:
         d = self.d_model
         shapes: dict[str, tuple[int, ...]] = {"embed": (self.vocab_size, d), "final_norm": (d,)}

@@ -1,4 +1,4 @@
-"""The transformer of the model spec (docs/architecture.md) in numpy, float32 throughout.
+"""The transformer of the model spec (docs/design/architecture.md) in numpy, float32 throughout.
 
 The layer reads like the math::
 

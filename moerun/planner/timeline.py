@@ -1,6 +1,6 @@
 """The planner's time model: decode simulated token by token along a routing trace, with measured costs.
 
-The simulation follows the live engine (docs/offload.md) with the same code where the engine
+The simulation follows the live engine (docs/design/prefetch.md) with the same code where the engine
 makes decisions: residency and eviction through ``Residency`` and the policies, an emulated
 link's schedule through ``moerun.runtime.link.Link``, and whether a guess is worth reading through
 ``moerun.runtime.guesses`` (with ``Timing`` figures the simulation itself measures as it goes).  Per

@@ -5,7 +5,7 @@ layer (one pool per layer), or ``layer * n_experts + expert`` (one pool shared
 by all layers), and a clock ``now`` that counts accesses.  The pool tells it
 what was inserted, hit and evicted, and asks it to pick a victim among the
 resident keys that may be evicted (never the experts pinned by the layer being
-computed).  See docs/policies.md.
+computed).  See docs/design/policy-interface.md.
 
 State lives in plain lists indexed by key, so a notification is a list store
 and a victim is one ``min`` over the candidates: no per-access allocation.

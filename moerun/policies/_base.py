@@ -187,7 +187,7 @@ class LRFU(Policy):
     """
 
     name = "lrfu"
-    lam = 0.01  # per access; chosen on tuning traces (docs/policy_research.md)
+    lam = 0.01  # per access; chosen on tuning traces (docs/research/policies.md)
 
     def __init__(self, n_keys: int = 0, shared_experts: int = 0):
         super().__init__(n_keys, shared_experts)

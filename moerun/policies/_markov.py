@@ -147,11 +147,11 @@ class Markov(LRFU):
 
     Keys are expert ids (one policy per layer) or ``layer * shared_experts + expert`` (one pool
     shared by all layers: one routing model per layer).  Parameters were chosen on tuning traces
-    and checked on traces never used for tuning (docs/policy_research.md, scripts/tune_policy.py).
+    and checked on traces never used for tuning (docs/research/policies.md, scripts/tune_policy.py).
     """
 
     name = "markov"
-    # chosen by scripts/tune_policy.py on traces of training text (docs/policy_research.md)
+    # chosen by scripts/tune_policy.py on traces of training text (docs/research/policies.md)
     order = 4  # context length, in steps
     gamma = 0.5  # weight of an outcome d steps after its context: gamma ** (d - 1)
     horizon = 8  # outcomes are counted up to this many steps after the context

@@ -39,14 +39,14 @@ class Orbit(Policy):
     With one pool per layer (keys are expert ids, ``shared_experts`` 0) the distance is the same
     for every key and the rule is the routing model with the frequency term.  Without ``routed``
     calls (prefill) the estimate is the expert's overall rate.  Parameters were chosen on a trace of
-    scree's training text and checked on held-out text never used for tuning (docs/policy_research.md,
+    scree's training text and checked on held-out text never used for tuning (docs/research/policies.md,
     scripts/tune_policy.py --policy orbit --shared).
     """
 
     name = "orbit"
     for_shared_pool = True  # the planner always tries it in a shared pool
     # chosen by scripts/tune_policy.py --policy orbit --shared on a trace of scree's training text
-    # (pool sizes 10%, 25%, 50% of all experts), checked on held-out text (docs/policy_research.md)
+    # (pool sizes 10%, 25%, 50% of all experts), checked on held-out text (docs/research/policies.md)
     horizon = 8  # steps of a layer after a decision whose choices count as its follow-up
     gamma = 0.5  # weight of the d-th step after a decision: gamma ** (d - 1)
     memory = 0.75  # weight left to a decision's earlier follow-ups each time it occurs again

@@ -242,7 +242,7 @@ def _settle(fd: int, off: int, nbytes: int, regime: str, dst: np.ndarray) -> tup
 
 def time_regime(fd: int, block: Block, regime: str, runs: int, buf: np.ndarray, ceiling_gb_s: float | None,
                 check_problem: str | None, drop_problem_: str | None, tick: Callable[[], None] | None = None) -> dict:
-    """Time ``runs`` reads of ``block`` in one regime; return its labelled result (see docs/probe.md)."""
+    """Time ``runs`` reads of ``block`` in one regime; return its labelled result (see docs/guide/probe.md)."""
     out: dict = {"regime": regime, "verified": False, "reason": None, "runs": 0, "discarded": 0}
     out["method"] = "read once first, then timed" if regime == "warm" else DROP_METHOD
     out["check"] = None if check_problem else CHECK_METHOD

@@ -1,7 +1,7 @@
 """The saved result of ``moerun probe`` (schema moerun-probe/1): writing it, and reading it back validated.
 
 ``moerun plan`` takes a probe result as this machine's page-in costs, so a file is trusted
-only after every figure in it was checked (docs/architecture.md, invariants): blocks, regimes, runs,
+only after every figure in it was checked (docs/design/architecture.md, invariants): blocks, regimes, runs,
 percentiles in order, nothing unverified without a reason.  The measuring itself is ``moerun.prober.pagein``.
 """
 

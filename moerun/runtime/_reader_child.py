@@ -22,7 +22,7 @@ for a result, blocks on its own.
 
 Being a separate process, it never competes for the engine's interpreter lock;
 that is its whole point (a reader thread costs the compute thread tens of
-microseconds per read on a 2-vCPU machine, see docs/offload.md).  It exits when
+microseconds per read on a 2-vCPU machine, see docs/design/prefetch.md).  It exits when
 told to stop, when the engine's process is gone, or when its descriptors fail.  On Linux the
 kernel also ends it when the engine's thread that started it ends (a parent-death signal,
 SIGKILL), so a reader that is stopped (SIGSTOP) or stuck cannot outlive its engine.

@@ -341,7 +341,7 @@ def load(
     routing=None,
     cold_reads: bool = False,
 ) -> Engine:
-    """Open a model and return an engine (the public entry point, docs/architecture.md).
+    """Open a model and return an engine (the public entry point, docs/design/architecture.md).
 
     mem_cap: bytes (or "48MiB") for dense weights + KV cache + scratch + expert
     pool; None keeps every expert resident.  slots: explicit slots per layer
@@ -351,7 +351,7 @@ def load(
     bare: every expert resident in plain buffers, no pool (speed reference).
     baseline: "whole-layer" or "no-reuse", the naive offloading baselines of the benchmarks.
     reader_timeout: seconds the prefetch reader may go without progress while the engine waits
-    before the engine stops it and reads every expert itself (docs/offload.md).
+    before the engine stops it and reads every expert itself (docs/design/prefetch.md).
     routing: a routing trace (path or moerun.files.trace.Trace): each layer takes its chosen experts and
     weights from it instead of its router, everything else computed for real (moerun.model.routing).
     cold_reads: every expert read comes from the device (each read range is dropped from the page

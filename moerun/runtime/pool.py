@@ -60,7 +60,7 @@ class ExpertPool(GuessPlacement, ExpertSource):
     # What one guess read costs the compute thread, beyond a copy of its own: placing it, handing
     # it over, and the reader's copy competing with compute for the machine.  Measured on the
     # bundled model on a 2-vCPU VM as the extra compute time per token with prefetch on, divided by
-    # the guesses read: 60-120 us (docs/offload.md, "Which guesses are read").
+    # the guesses read: 60-120 us (docs/design/prefetch.md, "Which guesses are read").
     place_ns = 60_000
 
     def __init__(self, store: ModelStore, budget: Budget, evict: str = "lru", reader=None):

@@ -8,7 +8,7 @@ when the reader has blocked on it); the reader publishes each result in the
 slot's words and rings the engine's doorbell.  Both doorbells are eventfds and
 both sides block on them when they have nothing to do: nothing spins.  Nothing
 is shared but memory, so a background read costs the compute thread a few
-microseconds (docs/offload.md has the measured figures).  A layer's own misses
+microseconds (docs/design/prefetch.md has the measured figures).  A layer's own misses
 are read on the compute thread, which would wait for them anyway.
 
 A slot with a request outstanding belongs to the reader until its result is

@@ -1,6 +1,6 @@
 """The access schedule of a replay and its one step loop: per-layer plans, the shared plan, ``walk``.
 
-What a replay does (docs/traces.md has the long form):
+What a replay does (docs/guide/traces.md has the long form):
 
 - Every layer has its own quota of ``slots`` experts and starts empty, as the
   live pool does under a cap with per-layer quotas; or (``shared_plan``) one

@@ -1,7 +1,7 @@
 """moerun.cli.summary: the cap check and the caveats printed with a run.
 
 The cap check compares the measured peak resident-set growth with the cap plus a fixed allowance
-(docs/offload.md, "What the cap covers"); the figures here are the check's own inputs, fed directly.
+(docs/guide/offload.md, "What the cap covers"); the figures here are the check's own inputs, fed directly.
 """
 
 from __future__ import annotations

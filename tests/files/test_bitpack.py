@@ -1,6 +1,6 @@
 """moerun.files.bitpack: low-bit codes packed planar into bytes, and unpacked into buffers allocated once.
 
-The layout (docs/quant.md) is written out again below one code at a time, plainly, as the reference: with
+The layout (docs/design/quant.md) is written out again below one code at a time, plainly, as the reference: with
 k = 8 // width codes per byte and m = ceil(n / k) bytes, byte j holds codes j, j + m, j + 2m, ... from the
 least significant bits up; 3-bit codes are their low two bits as a 2-bit stream followed by their high
 bit as a 1-bit stream.  The 1-bit stream is also checked against numpy.packbits (bitorder="little"), an

@@ -1,4 +1,4 @@
-"""moerun.files.modelfile: header validation (docs/architecture.md, invariants: files are trusted only after validation) and the writer's layout.
+"""moerun.files.modelfile: header validation (docs/design/architecture.md, invariants: files are trusted only after validation) and the writer's layout.
 
 Corrupt files are made by editing the header of a freshly written synthetic model.
 """

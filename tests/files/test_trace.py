@@ -13,7 +13,7 @@ from moerun.cli import main as cli
 from moerun.errors import BadTrace
 from moerun.files.trace import Trace, read_trace, write_trace
 
-DOCS = Path(__file__).resolve().parents[2] / "docs" / "traces.md"
+DOCS = Path(__file__).resolve().parents[2] / "docs" / "guide" / "traces.md"
 
 
 def _save(path: Path, **arrays) -> Path:
@@ -53,7 +53,7 @@ def test_written_trace_reads_back_with_every_array_and_the_meta():
 
 def _docs_writer_example() -> str:
     text = DOCS.read_text()
-    section = text.split("### Writing a trace from another runtime", 1)[1]
+    section = text.split("## Writing a trace from another runtime", 1)[1]
     return re.search(r"```python\n(.*?)```", section, re.S).group(1)
 
 

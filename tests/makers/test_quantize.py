@@ -271,7 +271,7 @@ def test_codec_scratch_is_counted_in_the_budget(quantized):
     ids=["lru", "lfu", "fifo", "prefetch2x2", "shared-prefetch1"],
 )
 def test_capped_quantized_logits_equal_resident_bit_for_bit(quantized, bits, setting):
-    # docs/architecture.md, invariants (offloading never changes numbers), for packed experts: decoding is deterministic and the
+    # docs/design/architecture.md, invariants (offloading never changes numbers), for packed experts: decoding is deterministic and the
     # compute schedule depends only on routing.
     _, make = quantized
     d = make(bits, 8 if bits == 3 else 16, "hqq")

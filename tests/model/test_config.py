@@ -1,4 +1,4 @@
-"""moerun.model.config: the optional fields d_shared and norm_topk (docs/architecture.md, model spec), their defaults and their checks."""
+"""moerun.model.config: the optional fields d_shared and norm_topk (docs/design/architecture.md, model spec), their defaults and their checks."""
 
 from __future__ import annotations
 

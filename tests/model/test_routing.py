@@ -56,7 +56,7 @@ def test_routing_that_does_not_fit_the_model_is_refused(small_model, experts, ph
 @pytest.mark.parametrize("bad", [1e30, -0.25, 0.0, float("nan")], ids=["huge", "negative", "zero", "nan"])
 def test_generate_refuses_a_routing_file_whose_weights_no_router_could_give(pebble, tmp_path, capsys, bad):
     # issue 23, item 15: the weights of a --routing trace are softmax probabilities of the chosen experts
-    # (docs/architecture.md section 3), so each lies in (0, 1] and a row sums to at most 1
+    # (docs/design/architecture.md section 3), so each lies in (0, 1] and a row sums to at most 1
     from moerun.cli.main import main
     from moerun.files.trace import write_trace
 

@@ -1,4 +1,4 @@
-"""moerun.model.transformer: the numpy transformer computes the model spec (docs/architecture.md), in float32, the same way prefilled or decoded.
+"""moerun.model.transformer: the numpy transformer computes the model spec (docs/design/architecture.md), in float32, the same way prefilled or decoded.
 
 Outside reference: PyTorch 2.13.0 (CPU) running moerun.checks.torch_twin, an independent
 implementation of the same math (F.scaled_dot_product_attention, index_add MoE).
@@ -92,7 +92,7 @@ def test_bundled_model_logits_match_live_torch(bundled):
 
 
 def _design_logits(model_dir, ids) -> np.ndarray:
-    """The model spec (docs/architecture.md) written out once more, plainly and in float64: attention head by head,
+    """The model spec (docs/design/architecture.md) written out once more, plainly and in float64: attention head by head,
     the mixture token by token (shared(u) first, then the chosen experts in ascending id).
     Weights as the safetensors library (0.8) reads them, not through moerun's store."""
     from safetensors.numpy import load_file
@@ -170,7 +170,7 @@ def test_shared_expert_model_matches_design_section_3_written_out_again(synth_mo
 
 
 def test_decode_sums_the_shared_term_first_then_experts_in_ascending_id(synth_models, monkeypatch):
-    # Float addition is not associative: the order is part of the spec (docs/architecture.md, model spec), pinned bit for bit.
+    # Float addition is not associative: the order is part of the spec (docs/design/architecture.md, model spec), pinned bit for bit.
     d = synth_models(seed=22, layers=2, experts=12, top_k=4, d_shared=32)
     prompt = _prompt(5, 257, seed=10)
     real_moe = model_mod.moe

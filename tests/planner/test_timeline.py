@@ -1,7 +1,7 @@
 """moerun.planner.timeline: the planner's time model, hand-computed on traces small enough to add up by hand.
 
 The step time of a decode token is the layer's compute, its experts, the head and the waits for page-ins
-(docs/plan.md, "The time model"); with prefetch off and a pool per layer the sum over steps is exact.
+(docs/design/planner.md, "The time model"); with prefetch off and a pool per layer the sum over steps is exact.
 """
 
 from __future__ import annotations

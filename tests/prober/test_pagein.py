@@ -29,7 +29,7 @@ from moerun.prober.pagein import (
 from moerun.prober.saved import SCHEMA, load_probe
 
 KiB, MiB = 1024, 1024 * 1024
-DOC = Path(__file__).resolve().parents[2] / "docs" / "probe.md"
+DOC = Path(__file__).resolve().parents[2] / "docs" / "design" / "file-formats.md"
 
 
 @pytest.fixture(scope="module")
@@ -311,7 +311,7 @@ def test_parse_sizes_reads_binary_and_decimal_units():
 def documented_example() -> dict:
     text = DOC.read_text(encoding="utf-8")
     m = re.search(r"<!-- schema-example -->\s*```json\n(.*?)```", text, re.S)
-    assert m, "docs/probe.md must hold the schema example after <!-- schema-example -->"
+    assert m, "docs/design/file-formats.md must hold the schema example after <!-- schema-example -->"
     return json.loads(m.group(1))
 
 
@@ -319,7 +319,7 @@ def same_shape(got, want, where="$") -> None:
     """Every documented key present and no undocumented one; numbers where numbers are documented."""
     if isinstance(want, dict):
         assert isinstance(got, dict), where
-        assert set(got) == set(want), f"{where}: keys {sorted(set(got) ^ set(want))} differ from docs/probe.md"
+        assert set(got) == set(want), f"{where}: keys {sorted(set(got) ^ set(want))} differ from docs/design/file-formats.md"
         for k in want:
             same_shape(got[k], want[k], f"{where}.{k}")
     elif isinstance(want, list):

@@ -1,6 +1,6 @@
 """moerun.runtime.budget: a memory cap split into dense weights, KV cache, scratch and whole expert slots.
 
-Properties the pool relies on (docs/architecture.md, invariants: the cap is real): nothing planned ever
+Properties the pool relies on (docs/design/architecture.md, invariants: the cap is real): nothing planned ever
 exceeds the cap, the smallest cap is exactly the smallest that plans, every layer can hold its top_k experts,
 and slots are whole 4 KiB pages (the x86-64 and arm64 base page size, common practice, no source).
 """

@@ -8,7 +8,7 @@ from moerun.runtime import clock
 
 
 def test_waits_for_emulated_transfers_sleep_instead_of_spinning():
-    # docs/architecture.md, invariants (nothing spins): a side with nothing to do blocks.  Spinning would use about all of the wall time.
+    # docs/design/architecture.md, invariants (nothing spins): a side with nothing to do blocks.  Spinning would use about all of the wall time.
     cpu0, t0 = time.process_time(), time.monotonic()
     for _ in range(40):
         clock.wait_until(time.monotonic_ns() + 5_000_000)

@@ -1,7 +1,7 @@
 """moerun.runtime.reader and moerun/runtime/_reader_child.py: the reader process never spins, keeps the emulated
 link on a virtual clock, and a reader that stops answering cannot hang decode.
 
-docs/architecture.md, invariants: prefetch is advisory (no wait on the reader is unbounded), and nothing
+docs/design/architecture.md, invariants: prefetch is advisory (no wait on the reader is unbounded), and nothing
 spins (a side with nothing to do blocks).
 """
 
@@ -50,7 +50,7 @@ def _generate(model, max_new=40, setup=None, **kw):
 
 
 def test_idle_reader_uses_under_two_percent_of_a_cpu(small_model):
-    # docs/architecture.md, invariants (nothing spins): with prefetch on and no requests, the reader blocks on its doorbell
+    # docs/design/architecture.md, invariants (nothing spins): with prefetch on and no requests, the reader blocks on its doorbell
     with moerun.load(small_model, tokenizer=False, mem_cap=_min_cap(small_model), prefetch=2) as eng:
         eng.generate(prompt_ids=[1, 2, 3], max_new=8)  # it has served requests and gone idle since
         reader = eng.prefetcher.reader
@@ -114,7 +114,7 @@ def test_a_cancelled_request_the_reader_has_not_started_is_skipped(small_model):
 
 
 def test_reader_that_stops_answering_is_stopped_and_the_output_stays_identical(small_model):
-    # docs/architecture.md, invariants (prefetch is advisory): no unbounded wait.  SIGSTOP keeps the process alive but silent.
+    # docs/design/architecture.md, invariants (prefetch is advisory): no unbounded wait.  SIGSTOP keeps the process alive but silent.
     ref = _generate(small_model)
     cap = _min_cap(small_model)
     before = len(reader_processes())

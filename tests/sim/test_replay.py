@@ -422,7 +422,7 @@ def test_prefetch_beyond_the_traces_guesses_is_refused(recorded, capsys):
 
 
 class MostRecent(Policy):
-    """docs/policies.md's example policy, registered only inside the tests below."""
+    """docs/design/policy-interface.md's example policy, registered only inside the tests below."""
 
     name = "test-mru"
 
