@@ -15,6 +15,15 @@ or a plain list for the bare engine.  The math never knows whether an expert
 was resident, prefetched or just read; the compute schedule (which tokens go
 through which expert, and the order outputs are summed in) depends only on
 routing, so every memory setting gives bit-identical numbers.
+
+Whoever runs a forward pass chooses two more collaborators:
+
+- ``routing(layer, u) -> (chosen, weights, probs)``: the model's own routers
+  (``Transformer.own_routing``, the default), or routing replayed from a trace
+  (``moerun.model.routing.ReplayedRouting``), which keeps its own place in the trace.
+- an observer (``StepObserver``) shown the hidden state after each layer's
+  attention and after the whole layer: the engine's prefetch point and the trace
+  recorder's guesses.  The default, ``NO_OBSERVER``, looks at nothing.
 """
 
 from __future__ import annotations
@@ -124,6 +133,23 @@ class LayerWeights:
     shared: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None  # the shared expert's w_gate, w_up, w_down
 
 
+class StepObserver:
+    """What is shown of a forward pass, layer by layer; this one looks at nothing (``NO_OBSERVER``).
+
+    Any object with these two methods will do.  Neither may change the hidden state it is shown.
+    """
+
+    def after_attention(self, layer: int, h: np.ndarray) -> None:
+        """h [T, d_model]: the hidden state after ``layer``'s attention, once the layer has routed
+        (its expert source has been told the chosen experts, so its own misses are already asked for)."""
+
+    def after_layer(self, layer: int, x: np.ndarray) -> None:
+        """x [T, d_model]: the hidden state leaving ``layer``."""
+
+
+NO_OBSERVER = StepObserver()
+
+
 class KVCache:
     """Preallocated keys and values for every layer up to max_seq_len positions."""
 
@@ -161,7 +187,11 @@ class Transformer:
             )
         self.cos, self.sin = rotary_tables(c)
         self.group = c.n_heads // c.n_kv_heads
-        self.replayed = None  # a moerun.model.routing.ReplayedRouting: routing taken from a trace instead of the routers
+
+    # -------------------------------------------------------------- routing
+    def own_routing(self, layer: int, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The layer's own router (the default routing): ``route(u, router, top_k, norm_topk)``."""
+        return route(u, self.layers[layer].router, self.config.top_k, self.config.norm_topk)
 
     # -------------------------------------------------------------- attention
     def attention(self, x: np.ndarray, layer: int, start: int, cache: KVCache) -> np.ndarray:
@@ -193,35 +223,34 @@ class Transformer:
         return out @ self.layers[layer].wo
 
     # -------------------------------------------------------------- layers
-    def layer(self, x: np.ndarray, layer: int, start: int, cache: KVCache, experts, seen=None) -> np.ndarray:
-        """One layer.  ``seen(layer, where, state)``, if given, is shown the hidden state after attention
-        (once the layer has routed, so its own misses are already asked for) and after the layer:
-        the engine's prefetch points."""
+    def layer(self, x: np.ndarray, layer: int, start: int, cache: KVCache, experts, routing, observer) -> np.ndarray:
+        """One layer: h = x + attention(rmsnorm(x)); u = rmsnorm(h); x' = h + moe(u).
+
+        ``routing(layer, u)`` chooses the experts and ``experts`` serves their weights (module docstring);
+        ``observer`` is shown h once the layer has routed, and x'."""
         w = self.layers[layer]
         experts.begin_layer(layer)
         h = x + self.attention(rmsnorm(x, w.attn_norm, self.eps), layer, start, cache)
         u = rmsnorm(h, w.moe_norm, self.eps)
-        if self.replayed is None:
-            chosen, weights, probs = route(u, w.router, self.config.top_k, self.config.norm_topk)
-        else:  # routing replayed from a trace (moerun.model.routing): everything else is computed for real
-            chosen, weights, probs = self.replayed.route(layer, u.shape[0])
+        chosen, weights, probs = routing(layer, u)
         experts.routed(layer, chosen, weights, probs)
-        if seen is not None:
-            seen(layer, "attention", h)
+        observer.after_attention(layer, h)
         out = h + moe(u, layer, chosen, weights, experts, w.shared)
         experts.end_layer(layer)
-        if seen is not None:
-            seen(layer, "output", out)
+        observer.after_layer(layer, out)
         return out
 
-    def forward(self, ids: np.ndarray, start: int, cache: KVCache, experts, seen=None) -> np.ndarray:
-        """Hidden states leaving the last layer for tokens at positions start.. (not yet normed)."""
+    def forward(self, ids: np.ndarray, start: int, cache: KVCache, experts, routing=None,
+                observer: StepObserver = NO_OBSERVER) -> np.ndarray:
+        """Hidden states leaving the last layer for tokens at positions start.. (not yet normed).
+
+        ``routing`` defaults to the model's own routers (``own_routing``)."""
+        if routing is None:
+            routing = self.own_routing
         x = self.embed[ids]
         for layer in range(self.config.n_layers):
-            x = self.layer(x, layer, start, cache, experts, seen)
+            x = self.layer(x, layer, start, cache, experts, routing, observer)
         cache.length = start + len(ids)
-        if self.replayed is not None:
-            self.replayed.advance(len(ids))
         return x
 
     def logits(self, x: np.ndarray) -> np.ndarray:
