@@ -198,29 +198,31 @@ class Transformer:
         c = self.config
         T = x.shape[0]
         H, Hkv, hd, G = c.n_heads, c.n_kv_heads, c.head_dim, self.group
-        qkv = x @ self.layers[layer].wqkv
-        q = qkv[:, : c.q_dim].reshape(T, H, hd)
-        k = qkv[:, c.q_dim : c.q_dim + c.kv_dim].reshape(T, Hkv, hd)
-        v = qkv[:, c.q_dim + c.kv_dim :].reshape(T, Hkv, hd)
-        cos = self.cos[start : start + T, None, :]
+        qkv = x @ self.layers[layer].wqkv  # [T, q_dim + 2*kv_dim]: q | k | v
+        q = qkv[:, : c.q_dim].reshape(T, H, hd)  # [T, H*hd] -> [T, H, hd]
+        k = qkv[:, c.q_dim : c.q_dim + c.kv_dim].reshape(T, Hkv, hd)  # [T, Hkv*hd] -> [T, Hkv, hd]
+        v = qkv[:, c.q_dim + c.kv_dim :].reshape(T, Hkv, hd)  # [T, Hkv*hd] -> [T, Hkv, hd]
+        cos = self.cos[start : start + T, None, :]  # [T, 1, hd/2]: one row per position, shared by the heads
         sin = self.sin[start : start + T, None, :]
         q = rotate(q, cos, sin)
         k = rotate(k, cos, sin)
         end = start + T
-        cache.k[layer, :, start:end] = k.transpose(1, 0, 2)
-        cache.v[layer, :, start:end] = v.transpose(1, 0, 2)
-        keys = cache.k[layer, :, :end]  # [Hkv, end, hd]
-        vals = cache.v[layer, :, :end]
-        # query head i reads kv head i // G: group queries as [Hkv, G*T, hd]
+        cache.k[layer, :, start:end] = k.transpose(1, 0, 2)  # [T, Hkv, hd] -> [Hkv, T, hd]
+        cache.v[layer, :, start:end] = v.transpose(1, 0, 2)  # [T, Hkv, hd] -> [Hkv, T, hd]
+        keys = cache.k[layer, :, :end]  # [Hkv, end, hd]: every position so far
+        vals = cache.v[layer, :, :end]  # [Hkv, end, hd]
+        # query head i reads kv head i // G: group the queries by kv head,
+        # [T, H, hd] -> [T, Hkv, G, hd] -> [Hkv, G, T, hd] -> [Hkv, G*T, hd]
         qg = q.reshape(T, Hkv, G, hd).transpose(1, 2, 0, 3).reshape(Hkv, G * T, hd)
-        scores = (qg @ keys.transpose(0, 2, 1)) * self.scale  # [Hkv, G*T, end]
+        scores = (qg @ keys.transpose(0, 2, 1)) * self.scale  # [Hkv, G*T, hd] @ [Hkv, hd, end] -> [Hkv, G*T, end]
         if T > 1:
-            pos_q = np.tile(np.arange(start, end), G)
-            mask = np.arange(end)[None, :] > pos_q[:, None]
+            pos_q = np.tile(np.arange(start, end), G)  # [G*T]: the position of each grouped query row
+            mask = np.arange(end)[None, :] > pos_q[:, None]  # [G*T, end]: keys after the query's position
             scores = np.where(mask[None], F32(-np.inf), scores)
-        out = softmax(scores) @ vals  # [Hkv, G*T, hd]
+        out = softmax(scores) @ vals  # [Hkv, G*T, end] @ [Hkv, end, hd] -> [Hkv, G*T, hd]
+        # back to one row per token: [Hkv, G*T, hd] -> [Hkv, G, T, hd] -> [T, Hkv, G, hd] -> [T, H*hd]
         out = out.reshape(Hkv, G, T, hd).transpose(2, 0, 1, 3).reshape(T, H * hd)
-        return out @ self.layers[layer].wo
+        return out @ self.layers[layer].wo  # [T, H*hd] @ [H*hd, d_model] -> [T, d_model]
 
     # -------------------------------------------------------------- layers
     def layer(self, x: np.ndarray, layer: int, start: int, cache: KVCache, experts, routing, observer) -> np.ndarray:
