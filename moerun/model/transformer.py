@@ -4,7 +4,7 @@ The layer reads like the math::
 
     h = x + attention(rmsnorm(x, attn_norm))
     u = rmsnorm(h, moe_norm)
-    x' = h + moe(u, route(u, router), experts, shared)
+    x' = h + moe(u, routing(layer, u), experts, shared)
 
 with ``moe(u) = shared(u) + sum over chosen experts in ascending id of
 weight * expert(u)``; the shared expert (optional, config ``d_shared``) is
@@ -19,7 +19,7 @@ routing, so every memory setting gives bit-identical numbers.
 Whoever runs a forward pass chooses two more collaborators:
 
 - ``routing(layer, u) -> (chosen, weights, probs)``: the model's own routers
-  (``Transformer.own_routing``, the default), or routing replayed from a trace
+  (``Transformer.own_routing``, the default: ``route(u, router)``), or routing replayed from a trace
   (``moerun.model.routing.ReplayedRouting``), which keeps its own place in the trace.
 - an observer (``StepObserver``) shown the hidden state after each layer's
   attention and after the whole layer: the engine's prefetch point and the trace
