@@ -67,13 +67,20 @@ class Trace:
 
 
 class Recorder:
-    """Collects routing, guesses and events per layer while the engine runs."""
+    """Collects routing, guesses and events per layer while the engine runs.
 
-    def __init__(self, n_layers: int, top_k: int, lookahead: int = TRACE_LOOKAHEAD, n_guesses: int = TRACE_GUESSES):
+    Routing and events come from the expert source (``routed``, ``events``); the guesses from the
+    forward pass, which the recorder observes (``moerun.model.transformer.StepObserver``): after each
+    layer's attention, ``guess(layer, h, lookahead, n_guesses)`` gives the prefetch rule's
+    [T, lookahead, n_guesses] guesses for the hidden state h (``Engine.guesses``)."""
+
+    def __init__(self, n_layers: int, top_k: int, lookahead: int = TRACE_LOOKAHEAD, n_guesses: int = TRACE_GUESSES,
+                 guess=None):
         self.L = n_layers
         self.k = top_k
         self.lookahead = lookahead
         self.n_guesses = n_guesses
+        self.guess = guess
         self.experts: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
         self.weights: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
         self.probs: list[list[np.ndarray]] = [[] for _ in range(n_layers)]
@@ -100,6 +107,13 @@ class Recorder:
     def guessed(self, layer: int, g: np.ndarray) -> None:
         """g: [T, lookahead, n] guesses made at layer's prefetch point."""
         self.guesses[layer].append(g.astype(np.int16))
+
+    def after_attention(self, layer: int, h: np.ndarray) -> None:
+        """The forward pass's prefetch point after attention: record the guesses for every row of h."""
+        self.guessed(layer, self.guess(layer, h, self.lookahead, self.n_guesses))
+
+    def after_layer(self, layer: int, x: np.ndarray) -> None:
+        pass
 
     def events(self, step: int, layer: int, events: dict, compute_ns: int) -> None:
         """Per-access events of one decode layer: {expert: [kind, slot, pagein_ns, stall_ns]}."""

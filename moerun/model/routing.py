@@ -6,8 +6,11 @@ layers compute everything for real (attention, the experts' matmuls, page-ins
 from storage) except the router, whose decision comes from the trace.  Rows are
 taken in order, one per token the engine processes (a prefill takes as many
 rows as prompt tokens, each decode step one), across generations, wrapping
-round at the end of the trace.  Every output of such a run says it replayed
-routing (``Engine.options["routing"]``).
+round at the end of the trace.  A ``ReplayedRouting`` is the ``routing``
+callable of the forward pass (``moerun.model.transformer``) and keeps its own
+place: once the last layer has taken a pass's rows, the next pass takes the rows
+after them.  Every output of such a run says it replayed routing
+(``Engine.options["routing"]``).
 
 A run of a model with its own recorded trace as routing computes exactly what
 the normal run computes: the recorded weights are the router's own float32
@@ -53,16 +56,21 @@ class ReplayedRouting:
             np.put_along_axis(self.probs, self.experts, self.weights, axis=-1)
         self.n = T
         self.cursor = 0  # the row of the next token the engine processes
+        self.last_layer = L - 1
         self.label = label
 
     def rows(self, count: int) -> np.ndarray:
         return (self.cursor + np.arange(count)) % self.n
 
-    def route(self, layer: int, count: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-        """(chosen [count, k] ascending, weights [count, k], probs [count, E]) for the next ``count`` tokens."""
+    def __call__(self, layer: int, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The routing of the pass's tokens (the rows of u) at ``layer``, from the trace:
+        (chosen [T, k] ascending, weights [T, k], probs [T, E]).  ``u`` itself is not read."""
+        count = u.shape[0]
         r = self.rows(count)
+        if layer == self.last_layer:  # every layer has taken these rows: the next pass starts after them
+            self.advance(count)
         return self.experts[r, layer], self.weights[r, layer], self.probs[r, layer]
 
     def advance(self, count: int) -> None:
-        """The engine has processed ``count`` more tokens."""
+        """``count`` more tokens have been through every layer."""
         self.cursor = (self.cursor + count) % self.n

@@ -4,7 +4,7 @@ The layer reads like the math::
 
     h = x + attention(rmsnorm(x, attn_norm))
     u = rmsnorm(h, moe_norm)
-    x' = h + moe(u, route(u, router), experts, shared)
+    x' = h + moe(u, routing(layer, u), experts, shared)
 
 with ``moe(u) = shared(u) + sum over chosen experts in ascending id of
 weight * expert(u)``; the shared expert (optional, config ``d_shared``) is
@@ -15,6 +15,15 @@ or a plain list for the bare engine.  The math never knows whether an expert
 was resident, prefetched or just read; the compute schedule (which tokens go
 through which expert, and the order outputs are summed in) depends only on
 routing, so every memory setting gives bit-identical numbers.
+
+Whoever runs a forward pass chooses two more collaborators:
+
+- ``routing(layer, u) -> (chosen, weights, probs)``: the model's own routers
+  (``Transformer.own_routing``, the default: ``route(u, router)``), or routing replayed from a trace
+  (``moerun.model.routing.ReplayedRouting``), which keeps its own place in the trace.
+- an observer (``StepObserver``) shown the hidden state after each layer's
+  attention and after the whole layer: the engine's prefetch point and the trace
+  recorder's guesses.  The default, ``NO_OBSERVER``, looks at nothing.
 """
 
 from __future__ import annotations
@@ -124,6 +133,23 @@ class LayerWeights:
     shared: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None  # the shared expert's w_gate, w_up, w_down
 
 
+class StepObserver:
+    """What is shown of a forward pass, layer by layer; this one looks at nothing (``NO_OBSERVER``).
+
+    Any object with these two methods will do.  Neither may change the hidden state it is shown.
+    """
+
+    def after_attention(self, layer: int, h: np.ndarray) -> None:
+        """h [T, d_model]: the hidden state after ``layer``'s attention, once the layer has routed
+        (its expert source has been told the chosen experts, so its own misses are already asked for)."""
+
+    def after_layer(self, layer: int, x: np.ndarray) -> None:
+        """x [T, d_model]: the hidden state leaving ``layer``."""
+
+
+NO_OBSERVER = StepObserver()
+
+
 class KVCache:
     """Preallocated keys and values for every layer up to max_seq_len positions."""
 
@@ -161,67 +187,72 @@ class Transformer:
             )
         self.cos, self.sin = rotary_tables(c)
         self.group = c.n_heads // c.n_kv_heads
-        self.replayed = None  # a moerun.model.routing.ReplayedRouting: routing taken from a trace instead of the routers
+
+    # -------------------------------------------------------------- routing
+    def own_routing(self, layer: int, u: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The layer's own router (the default routing): ``route(u, router, top_k, norm_topk)``."""
+        return route(u, self.layers[layer].router, self.config.top_k, self.config.norm_topk)
 
     # -------------------------------------------------------------- attention
     def attention(self, x: np.ndarray, layer: int, start: int, cache: KVCache) -> np.ndarray:
         c = self.config
         T = x.shape[0]
         H, Hkv, hd, G = c.n_heads, c.n_kv_heads, c.head_dim, self.group
-        qkv = x @ self.layers[layer].wqkv
-        q = qkv[:, : c.q_dim].reshape(T, H, hd)
-        k = qkv[:, c.q_dim : c.q_dim + c.kv_dim].reshape(T, Hkv, hd)
-        v = qkv[:, c.q_dim + c.kv_dim :].reshape(T, Hkv, hd)
-        cos = self.cos[start : start + T, None, :]
+        qkv = x @ self.layers[layer].wqkv  # [T, q_dim + 2*kv_dim]: q | k | v
+        q = qkv[:, : c.q_dim].reshape(T, H, hd)  # [T, H*hd] -> [T, H, hd]
+        k = qkv[:, c.q_dim : c.q_dim + c.kv_dim].reshape(T, Hkv, hd)  # [T, Hkv*hd] -> [T, Hkv, hd]
+        v = qkv[:, c.q_dim + c.kv_dim :].reshape(T, Hkv, hd)  # [T, Hkv*hd] -> [T, Hkv, hd]
+        cos = self.cos[start : start + T, None, :]  # [T, 1, hd/2]: one row per position, shared by the heads
         sin = self.sin[start : start + T, None, :]
         q = rotate(q, cos, sin)
         k = rotate(k, cos, sin)
         end = start + T
-        cache.k[layer, :, start:end] = k.transpose(1, 0, 2)
-        cache.v[layer, :, start:end] = v.transpose(1, 0, 2)
-        keys = cache.k[layer, :, :end]  # [Hkv, end, hd]
-        vals = cache.v[layer, :, :end]
-        # query head i reads kv head i // G: group queries as [Hkv, G*T, hd]
+        cache.k[layer, :, start:end] = k.transpose(1, 0, 2)  # [T, Hkv, hd] -> [Hkv, T, hd]
+        cache.v[layer, :, start:end] = v.transpose(1, 0, 2)  # [T, Hkv, hd] -> [Hkv, T, hd]
+        keys = cache.k[layer, :, :end]  # [Hkv, end, hd]: every position so far
+        vals = cache.v[layer, :, :end]  # [Hkv, end, hd]
+        # query head i reads kv head i // G: group the queries by kv head,
+        # [T, H, hd] -> [T, Hkv, G, hd] -> [Hkv, G, T, hd] -> [Hkv, G*T, hd]
         qg = q.reshape(T, Hkv, G, hd).transpose(1, 2, 0, 3).reshape(Hkv, G * T, hd)
-        scores = (qg @ keys.transpose(0, 2, 1)) * self.scale  # [Hkv, G*T, end]
+        scores = (qg @ keys.transpose(0, 2, 1)) * self.scale  # [Hkv, G*T, hd] @ [Hkv, hd, end] -> [Hkv, G*T, end]
         if T > 1:
-            pos_q = np.tile(np.arange(start, end), G)
-            mask = np.arange(end)[None, :] > pos_q[:, None]
+            pos_q = np.tile(np.arange(start, end), G)  # [G*T]: the position of each grouped query row
+            mask = np.arange(end)[None, :] > pos_q[:, None]  # [G*T, end]: keys after the query's position
             scores = np.where(mask[None], F32(-np.inf), scores)
-        out = softmax(scores) @ vals  # [Hkv, G*T, hd]
+        out = softmax(scores) @ vals  # [Hkv, G*T, end] @ [Hkv, end, hd] -> [Hkv, G*T, hd]
+        # back to one row per token: [Hkv, G*T, hd] -> [Hkv, G, T, hd] -> [T, Hkv, G, hd] -> [T, H*hd]
         out = out.reshape(Hkv, G, T, hd).transpose(2, 0, 1, 3).reshape(T, H * hd)
-        return out @ self.layers[layer].wo
+        return out @ self.layers[layer].wo  # [T, H*hd] @ [H*hd, d_model] -> [T, d_model]
 
     # -------------------------------------------------------------- layers
-    def layer(self, x: np.ndarray, layer: int, start: int, cache: KVCache, experts, seen=None) -> np.ndarray:
-        """One layer.  ``seen(layer, where, state)``, if given, is shown the hidden state after attention
-        (once the layer has routed, so its own misses are already asked for) and after the layer:
-        the engine's prefetch points."""
+    def layer(self, x: np.ndarray, layer: int, start: int, cache: KVCache, experts, routing, observer) -> np.ndarray:
+        """One layer: h = x + attention(rmsnorm(x)); u = rmsnorm(h); x' = h + moe(u).
+
+        ``routing(layer, u)`` chooses the experts and ``experts`` serves their weights (module docstring);
+        ``observer`` is shown h once the layer has routed, and x'."""
         w = self.layers[layer]
         experts.begin_layer(layer)
         h = x + self.attention(rmsnorm(x, w.attn_norm, self.eps), layer, start, cache)
         u = rmsnorm(h, w.moe_norm, self.eps)
-        if self.replayed is None:
-            chosen, weights, probs = route(u, w.router, self.config.top_k, self.config.norm_topk)
-        else:  # routing replayed from a trace (moerun.model.routing): everything else is computed for real
-            chosen, weights, probs = self.replayed.route(layer, u.shape[0])
+        chosen, weights, probs = routing(layer, u)
         experts.routed(layer, chosen, weights, probs)
-        if seen is not None:
-            seen(layer, "attention", h)
+        observer.after_attention(layer, h)
         out = h + moe(u, layer, chosen, weights, experts, w.shared)
         experts.end_layer(layer)
-        if seen is not None:
-            seen(layer, "output", out)
+        observer.after_layer(layer, out)
         return out
 
-    def forward(self, ids: np.ndarray, start: int, cache: KVCache, experts, seen=None) -> np.ndarray:
-        """Hidden states leaving the last layer for tokens at positions start.. (not yet normed)."""
+    def forward(self, ids: np.ndarray, start: int, cache: KVCache, experts, routing=None,
+                observer: StepObserver = NO_OBSERVER) -> np.ndarray:
+        """Hidden states leaving the last layer for tokens at positions start.. (not yet normed).
+
+        ``routing`` defaults to the model's own routers (``own_routing``)."""
+        if routing is None:
+            routing = self.own_routing
         x = self.embed[ids]
         for layer in range(self.config.n_layers):
-            x = self.layer(x, layer, start, cache, experts, seen)
+            x = self.layer(x, layer, start, cache, experts, routing, observer)
         cache.length = start + len(ids)
-        if self.replayed is not None:
-            self.replayed.advance(len(ids))
         return x
 
     def logits(self, x: np.ndarray) -> np.ndarray:

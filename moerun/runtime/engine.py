@@ -23,7 +23,7 @@ from moerun.model.config import RANDOM_NOTE
 from moerun.model.routing import ReplayedRouting
 from moerun.model.sampling import Sampler, Sampling
 from moerun.model.tokenizer import Tokenizer
-from moerun.model.transformer import KVCache, Transformer
+from moerun.model.transformer import NO_OBSERVER, KVCache, StepObserver, Transformer
 from moerun.runtime.budget import Budget, plan_budget
 from moerun.runtime.memwatch import MemWatch
 from moerun.runtime.pool import ExpertPool
@@ -75,6 +75,21 @@ class Generation:
         return self.decode_steps / (self.decode_ns / 1e9) if self.decode_ns else 0.0
 
 
+class _Observers(StepObserver):
+    """Several step observers, each shown every hidden state in the order given."""
+
+    def __init__(self, observers):
+        self.observers = tuple(observers)
+
+    def after_attention(self, layer: int, h: np.ndarray) -> None:
+        for o in self.observers:
+            o.after_attention(layer, h)
+
+    def after_layer(self, layer: int, x: np.ndarray) -> None:
+        for o in self.observers:
+            o.after_layer(layer, x)
+
+
 class Engine:
     def __init__(
         self,
@@ -105,30 +120,28 @@ class Engine:
         self.prefetcher = None
         if self.pool is not None and options.get("prefetch"):
             rule = GuessRule(self.model, options["lookahead"])
-            self.prefetcher = Prefetcher(self.pool, rule, options["prefetch"], options["lookahead"], reader)
+            self.prefetcher = Prefetcher(self.pool, rule, options["prefetch"], options["lookahead"], reader,
+                                         self.prefetch_from)
+        self.routing = None  # the forward pass's routing: None for the model's own routers, or a ReplayedRouting
 
     def replay_routing(self, routing) -> None:
         """Take every layer's routing from a trace (a path or a Trace) from now on (moerun.model.routing)."""
         label = str(routing) if not isinstance(routing, Trace) else "routing trace"
         trace = routing if isinstance(routing, Trace) else read_trace(routing, n_experts=self.config.n_experts)
-        self.model.replayed = ReplayedRouting(trace, self.config, label)
+        self.routing = ReplayedRouting(trace, self.config, label)
         self.options["routing"] = label
 
-    # ------------------------------------------------------------------ the prefetch point
-    def _seen(self):
-        """The callback the model shows its hidden states to (None when nothing needs them)."""
-        if self.recorder is not None:
-            return self._point
+    # ------------------------------------------------------------------ what observes a forward pass
+    def _observer(self) -> StepObserver:
+        """The prefetch point, then the trace recorder's guesses; NO_OBSERVER when neither is needed."""
+        watching = []
         if self.prefetcher is not None and self.pool._all_resident is None:  # with every expert resident, nothing to fetch
-            return self._point
-        return None
-
-    def _point(self, layer: int, where: str, h: np.ndarray) -> None:
-        """After layer's attention ("attention") and after the whole layer ("output")."""
-        if self.prefetcher is not None and where == self.prefetch_from and h.shape[0] == 1:
-            self.prefetcher(layer, h)
-        if self.recorder is not None and where == "attention":
-            self.recorder.guessed(layer, self.guesses(layer, h, self.recorder.lookahead, self.recorder.n_guesses))
+            watching.append(self.prefetcher)
+        if self.recorder is not None:
+            watching.append(self.recorder)
+        if not watching:
+            return NO_OBSERVER
+        return watching[0] if len(watching) == 1 else _Observers(watching)
 
     def guesses(self, layer: int, h: np.ndarray, lookahead: int, n: int) -> np.ndarray:
         """The prefetch rule for every row of h: [T, lookahead, n] expert ids, -1 past the last layer."""
@@ -173,7 +186,7 @@ class Engine:
         """Float32 logits [len, vocab_size] from one forward pass over the sequence."""
         ids = self._check_ids(token_ids)
         self.experts.begin_step(-1)
-        x = self.model.forward(ids, 0, self.cache, self.experts, self._seen())
+        x = self.model.forward(ids, 0, self.cache, self.experts, self.routing, self._observer())
         return self._finite(self.model.logits(x))
 
     def generate(
@@ -201,9 +214,9 @@ class Engine:
         sampler = Sampler(sampling or Sampling())
         kept: list[np.ndarray] = []
         t0 = time.monotonic_ns()
-        seen = self._seen()
+        observer = self._observer()
         self.experts.begin_step(-1)
-        x = self.model.forward(ids, 0, self.cache, self.experts, seen)
+        x = self.model.forward(ids, 0, self.cache, self.experts, self.routing, observer)
         logits = self._finite(self.model.logits(x[-1:])[0])
         prefill_ns = time.monotonic_ns() - t0
         self.memwatch.sample()
@@ -227,7 +240,7 @@ class Engine:
             t1 = time.monotonic_ns()
             self.experts.begin_step(self._step_clock)
             self._step_clock += 1  # never repeats across generations, so stale guesses stay stale
-            x = self.model.forward(np.array([tok]), pos, self.cache, self.experts, seen)
+            x = self.model.forward(np.array([tok]), pos, self.cache, self.experts, self.routing, observer)
             logits = self._finite(self.model.logits(x)[0])
             decode_ns += time.monotonic_ns() - t1
             steps += 1
@@ -245,7 +258,7 @@ class Engine:
     # ------------------------------------------------------------------ tracing
     def start_trace(self, lookahead: int = TRACE_LOOKAHEAD, n_guesses: int = TRACE_GUESSES) -> None:
         n_guesses = min(n_guesses, self.config.n_experts)  # a model with fewer experts has fewer guesses to give
-        self.recorder = Recorder(self.config.n_layers, self.config.top_k, lookahead, n_guesses)
+        self.recorder = Recorder(self.config.n_layers, self.config.top_k, lookahead, n_guesses, self.guesses)
         self.experts.recorder = self.recorder
 
     def finish_trace(self, partial: bool = False, extra: dict | None = None) -> Trace:

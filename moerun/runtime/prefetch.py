@@ -12,7 +12,10 @@ positive factor ``1 / rms(h)`` is left out, since it changes no ranking.  The
 targets' matrices sit side by side, so one product scores every layer ahead.
 
 The prefetch point is right after layer l's attention, once layer l has routed
-(``--prefetch-from output`` moves it to the end of the layer).  Guesses are
+(``--prefetch-from output`` moves it to the end of the layer): the
+``Prefetcher`` is a step observer of the forward pass
+(``moerun.model.transformer.StepObserver``), shown the hidden state at both
+points and acting, for one token, at its own.  Guesses are
 advisory: the pool reads a guess only if it can arrive about when its layer
 needs it and the policy would rather hold it than what it evicts
 (``ExpertPool.prefetch``); a wrong one costs bandwidth, a failed one is
@@ -83,17 +86,29 @@ class GuessRule:
 
 
 class Prefetcher:
-    """The prefetch point of the live engine: guesses for the layers ahead, placed by the pool."""
+    """The prefetch point of the live engine: guesses for the layers ahead, placed by the pool.
 
-    def __init__(self, pool, rule: GuessRule, n_guesses: int, lookahead: int, reader):
+    A step observer: ``at`` is the point it acts at, "attention" (``after_attention``) or "output"
+    (``after_layer``); a pass over more than one token (a prefill) guesses nothing."""
+
+    def __init__(self, pool, rule: GuessRule, n_guesses: int, lookahead: int, reader, at: str = "attention"):
         self.pool = pool
         self.rule = rule
         self.n = n_guesses
         self.lookahead = lookahead
         self.reader = reader
+        self.at_output = at == "output"
         self.hook = None  # test hook: callable(layer, expert) run before each guess is handed over; raising fails it
 
-    def __call__(self, layer: int, h: np.ndarray) -> None:
+    def after_attention(self, layer: int, h: np.ndarray) -> None:
+        if not self.at_output and h.shape[0] == 1:
+            self.point(layer, h)
+
+    def after_layer(self, layer: int, x: np.ndarray) -> None:
+        if self.at_output and x.shape[0] == 1:
+            self.point(layer, x)
+
+    def point(self, layer: int, h: np.ndarray) -> None:
         """Layer ``layer``'s prefetch point (compute thread, one token)."""
         pool = self.pool
         if not pool.worth_guessing():

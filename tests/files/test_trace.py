@@ -11,7 +11,7 @@ import pytest
 
 from moerun.cli import main as cli
 from moerun.errors import BadTrace
-from moerun.files.trace import Trace, read_trace, write_trace
+from moerun.files.trace import Recorder, Trace, read_trace, write_trace
 
 DOCS = Path(__file__).resolve().parents[2] / "docs" / "guide" / "traces.md"
 
@@ -55,6 +55,25 @@ def _docs_writer_example() -> str:
     text = DOCS.read_text()
     section = text.split("## Writing a trace from another runtime", 1)[1]
     return re.search(r"```python\n(.*?)```", section, re.S).group(1)
+
+
+def test_the_recorder_observes_a_pass_taking_guesses_after_attention_and_nothing_after_the_layer():
+    asked = []
+
+    def guess(layer, h, lookahead, n):  # the prefetch rule's table: [T, lookahead, n]
+        asked.append((layer, h.shape, lookahead, n))
+        return np.full((h.shape[0], lookahead, n), layer, np.int64)
+
+    rec = Recorder(n_layers=2, top_k=1, lookahead=2, n_guesses=3, guess=guess)
+    h = np.zeros((4, 8), np.float32)
+    for layer in range(2):
+        rec.routed(-1, layer, np.zeros((4, 1), np.int64), np.ones((4, 1), np.float32), np.ones((4, 5), np.float32))
+        rec.after_attention(layer, h)
+        rec.after_layer(layer, h)
+    assert asked == [(0, (4, 8), 2, 3), (1, (4, 8), 2, 3)]
+    trace = rec.to_trace({})
+    assert trace.guesses.shape == (4, 2, 2, 3) and trace.guesses.dtype == np.int16
+    assert (trace.guesses[:, 0] == 0).all() and (trace.guesses[:, 1] == 1).all()
 
 
 def test_the_documented_writer_example_makes_a_trace_that_replays(tmp_path, monkeypatch, capsys):

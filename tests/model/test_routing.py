@@ -8,6 +8,7 @@ import pytest
 import moerun
 from moerun.errors import BadTrace
 from moerun.files.trace import Trace
+from moerun.model.routing import ReplayedRouting
 from moerun.model.sampling import Sampling
 
 SAMPLING = Sampling(temperature=0.8, top_p=0.95, seed=11)
@@ -42,6 +43,26 @@ def test_replayed_routing_is_what_the_layers_choose(small_model):
         seen = eng.finish_trace().experts
     assert seen.shape[0] == 3 + 9  # the prompt, then one row per decode step
     assert np.array_equal(seen, ex[np.arange(12) % T])
+
+
+def test_replayed_routing_moves_past_a_passs_rows_once_its_last_layer_has_taken_them(small_model):
+    rng = np.random.default_rng(1)
+    T, L = 5, 3
+    ex = np.sort(np.stack([[rng.choice(8, 2, replace=False) for _ in range(L)] for _ in range(T)]), axis=-1)
+    with moerun.load(small_model, tokenizer=False) as eng:
+        routing = ReplayedRouting(Trace(ex, meta={"n_experts": 8}), eng.config)
+        d = eng.config.d_model
+    taken = []
+    for count in (3, 1, 1, 2):  # a prefill of three tokens, then single tokens, wrapping round at the end
+        u = np.zeros((count, d), np.float32)
+        for layer in range(L):
+            before = routing.cursor
+            chosen, weights, probs = routing(layer, u)
+            assert chosen.shape == (count, 2) and weights.shape == (count, 2) and probs.shape == (count, 8)
+            assert np.array_equal(chosen, ex[(before + np.arange(count)) % T, layer])
+            assert routing.cursor == (before if layer < L - 1 else (before + count) % T)
+        taken.append(chosen)
+    assert np.array_equal(np.concatenate(taken), ex[np.arange(7) % T, L - 1])
 
 
 @pytest.mark.parametrize(

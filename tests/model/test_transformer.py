@@ -15,7 +15,7 @@ from conftest import copy_model, edit_config
 import moerun
 import moerun.model.transformer as model_mod
 from moerun.model.sampling import Sampling
-from moerun.model.transformer import expert, route, softmax
+from moerun.model.transformer import NO_OBSERVER, StepObserver, expert, rmsnorm, route, softmax
 
 GREEDY = Sampling(temperature=0.0)
 TORCH_TOL = 1e-4  # max abs logit difference against PyTorch; measured about 1e-5 on the bundled models
@@ -369,3 +369,111 @@ def test_route_without_renormalisation_weighs_by_the_chosen_probabilities():
     assert np.array_equal(raw, np.take_along_axis(p, chosen, axis=1))
     assert np.allclose(normed, raw / raw.sum(axis=1, keepdims=True), rtol=1e-6)
     assert raw.dtype == np.float32
+
+
+# ---------------------------------------------------------------------------- who routes, who watches
+
+
+class _Logged:
+    """An expert source passing everything through to the engine's, logging the protocol calls in order."""
+
+    def __init__(self, inner, log):
+        self.inner, self.log = inner, log
+        self.asked: set = set()
+
+    def begin_layer(self, layer):
+        self.log.append(("begin_layer", layer))
+        self.inner.begin_layer(layer)
+
+    def routed(self, layer, chosen, weights, probs):
+        self.log.append(("routed", layer, chosen.copy()))
+        self.inner.routed(layer, chosen, weights, probs)
+
+    def compute_order(self, layer, ids):
+        return self.inner.compute_order(layer, ids)
+
+    def weights(self, layer, e):
+        self.asked.add((layer, e))
+        return self.inner.weights(layer, e)
+
+    def end_layer(self, layer):
+        self.log.append(("end_layer", layer))
+        self.inner.end_layer(layer)
+
+
+class _Watcher(StepObserver):
+    def __init__(self, log):
+        self.log = log
+
+    def after_attention(self, layer, h):
+        self.log.append(("after_attention", layer, h.copy()))
+
+    def after_layer(self, layer, x):
+        self.log.append(("after_layer", layer, x.copy()))
+
+
+def _pass(eng, ids, experts=None, **kw):
+    """One forward pass over ids from position 0, through ``experts`` (default: the engine's pool)."""
+    eng.experts.begin_step(-1 if len(ids) > 1 else 0)
+    return eng.model.forward(np.array(ids), 0, eng.cache, experts or eng.experts, **kw)
+
+
+@pytest.mark.parametrize("ids", [[5], [5, 6, 7]])
+def test_an_observer_sees_each_layer_after_it_has_routed_and_after_it_ends(small_model, ids):
+    with moerun.load(small_model, tokenizer=False) as eng:
+        log: list = []
+        x = _pass(eng, ids, experts=_Logged(eng.experts, log), observer=_Watcher(log))
+        c, model = eng.config, eng.model
+    L = c.n_layers
+    assert [e[:2] for e in log] == [
+        (name, layer) for layer in range(L) for name in ("begin_layer", "routed", "after_attention", "end_layer", "after_layer")
+    ]
+    for layer in range(L):
+        routed, h = log[5 * layer + 1][2], log[5 * layer + 2][2]
+        # h is the state the layer routed from: its own router over rmsnorm(h, moe_norm) chooses what the source was told
+        u = rmsnorm(h, model.layers[layer].moe_norm, model.eps)
+        assert np.array_equal(route(u, model.layers[layer].router, c.top_k, c.norm_topk)[0], routed)
+        assert h.shape == (len(ids), c.d_model) and h.dtype == np.float32
+    assert np.array_equal(log[-1][2], x)  # what leaves the last layer is the pass's output
+
+
+def test_observing_a_pass_changes_no_number(small_model):
+    with moerun.load(small_model, tokenizer=False) as eng:
+        plain = _pass(eng, [4, 9, 2, 8]).copy()
+        watched = _pass(eng, [4, 9, 2, 8], observer=_Watcher([]))
+        default = _pass(eng, [4, 9, 2, 8], observer=NO_OBSERVER)
+    assert np.array_equal(plain.view(np.uint32), watched.view(np.uint32))
+    assert np.array_equal(plain.view(np.uint32), default.view(np.uint32))
+
+
+def test_the_default_routing_is_the_models_own_routers(small_model):
+    with moerun.load(small_model, tokenizer=False) as eng:
+        c, model = eng.config, eng.model
+        u = np.random.default_rng(3).standard_normal((4, c.d_model)).astype(np.float32)
+        for layer in range(c.n_layers):
+            got = model.own_routing(layer, u)
+            want = route(u, model.layers[layer].router, c.top_k, c.norm_topk)
+            assert all(np.array_equal(a, b) for a, b in zip(got, want))
+        default = _pass(eng, [4, 9, 2]).copy()
+        own = _pass(eng, [4, 9, 2], routing=model.own_routing)
+    assert np.array_equal(default.view(np.uint32), own.view(np.uint32))
+
+
+def test_the_routing_callable_decides_the_experts_every_layer_uses(small_model):
+    with moerun.load(small_model, tokenizer=False) as eng:
+        c = eng.config
+        E, k = c.n_experts, c.top_k
+        calls = []
+
+        def last_experts(layer, u):  # always the k highest ids, equal weights
+            calls.append((layer, u.shape))
+            T = u.shape[0]
+            chosen = np.tile(np.arange(E - k, E), (T, 1))
+            return chosen, np.full((T, k), 1.0 / k, np.float32), np.full((T, E), 1.0 / E, np.float32)
+
+        log: list = []
+        source = _Logged(eng.experts, log)
+        _pass(eng, [3, 1, 4], experts=source, routing=last_experts)
+    assert calls == [(layer, (3, c.d_model)) for layer in range(c.n_layers)]
+    assert all(np.array_equal(e[2], np.tile(np.arange(E - k, E), (3, 1))) for e in log if e[0] == "routed")
+    assert source.asked == {(layer, e) for layer in range(c.n_layers) for e in range(E - k, E)}
