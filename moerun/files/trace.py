@@ -388,8 +388,27 @@ def _optional_arrays(path: Path, arrays: dict[str, np.ndarray], experts: np.ndar
     return weights, guesses, probs, events
 
 
-def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
-    """Read and validate a trace file; raise BadTrace with one clear line."""
+def shape_text(n_layers: int, n_experts: int | str, top_k: int) -> str:
+    """A routing shape as people read it: ``4 layers × 8 experts, top-2``."""
+    return f"{n_layers} layers × {n_experts} experts, top-{top_k}"
+
+
+def check_fits_model(label, experts: np.ndarray, declared: int | None, model: tuple[int, int, int]) -> None:
+    """BadTrace naming both shapes when routing [tokens, layers, top_k] cannot be the routing of a model of
+    ``model`` = (n_layers, n_experts, top_k).  ``declared``: the trace's own expert count, if it states one (its
+    meta, or its probabilities' columns); without it the highest routed id only bounds the count from below."""
+    L, E, k = model
+    top = int(experts.max(initial=-1)) + 1
+    count = declared if declared is not None else top
+    if experts.shape[1] != L or experts.shape[2] != k or top > E or (declared is not None and declared != E):
+        have = count if declared is not None else f"{count}+"
+        raise BadTrace(f"{label}: routing of another model (trace: {shape_text(experts.shape[1], have, experts.shape[2])}; "
+                       f"model: {shape_text(L, E, k)})")
+
+
+def read_trace(path: str | Path, n_experts: int | None = None, model: tuple[int, int, int] | None = None) -> Trace:
+    """Read and validate a trace file; raise BadTrace with one clear line.  ``model`` = (n_layers, n_experts,
+    top_k): the routing must fit that model (its expert count then bounds the ids, as ``n_experts`` does)."""
     path = Path(path)
     data = read_user_file(path, BadTrace, "trace file", limit=TRACE_FILE_LIMIT)
     kind = _not_a_zip(data)
@@ -399,6 +418,13 @@ def read_trace(path: str | Path, n_experts: int | None = None) -> Trace:
     arrays = _load_arrays(path, data)
     _check_routing_shape(path, arrays["experts"])
     meta = _read_meta(path, arrays)
+    if model is not None:
+        declared = meta.get("n_experts")
+        probs = arrays.get("probs")
+        if not isinstance(declared, int) or isinstance(declared, bool):
+            declared = int(probs.shape[2]) if probs is not None and probs.ndim == 3 else None
+        check_fits_model(path, arrays["experts"].astype(np.int64), declared, model)
+        n_experts = model[1]
     experts, limit = _checked_experts(path, arrays["experts"], meta, n_experts)
     if limit is not None:
         meta["n_experts"] = int(limit)

@@ -22,7 +22,7 @@ from __future__ import annotations
 import numpy as np
 
 from moerun.errors import BadTrace
-from moerun.files.trace import Trace, check_weights
+from moerun.files.trace import Trace, check_weights, shape_text
 from moerun.model.config import ModelConfig
 
 
@@ -31,9 +31,9 @@ class ReplayedRouting:
 
     def __init__(self, trace: Trace, config: ModelConfig, label: str = "trace"):
         T, L, k = trace.experts.shape
-        if L != config.n_layers or k != config.top_k:
-            raise BadTrace(f"{label}: routing for {L} layers and top-{k}, but the model has {config.n_layers} layers and "
-                           f"top-{config.top_k}")
+        if L != config.n_layers or k != config.top_k:  # ids beyond the model's experts are named below
+            raise BadTrace(f"{label}: routing of another model (trace: {shape_text(L, trace.n_experts, k)}; "
+                           f"model: {shape_text(config.n_layers, config.n_experts, config.top_k)})")
         if T == 0:
             raise BadTrace(f"{label}: the trace holds no tokens to take routing from")
         ex = trace.experts

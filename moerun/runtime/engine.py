@@ -127,7 +127,7 @@ class Engine:
     def replay_routing(self, routing) -> None:
         """Take every layer's routing from a trace (a path or a Trace) from now on (moerun.model.routing)."""
         label = str(routing) if not isinstance(routing, Trace) else "routing trace"
-        trace = routing if isinstance(routing, Trace) else read_trace(routing, n_experts=self.config.n_experts)
+        trace = routing if isinstance(routing, Trace) else read_trace(routing, model=(self.config.n_layers, self.config.n_experts, self.config.top_k))
         self.routing = ReplayedRouting(trace, self.config, label)
         self.options["routing"] = label
 

@@ -296,3 +296,22 @@ def test_replay_prefetch_refuses_guesses_above_every_routed_expert_when_no_count
     guesses[2, 0, 0] = [1, 3]
     np.savez(path, experts=experts, guesses=guesses, meta=np.array(json.dumps({"lookahead": 1, "guesses": 2})))
     assert main(["replay", str(path), "--prefetch", "1", "--json"]) == 0
+
+
+@pytest.mark.parametrize("meta, experts_shape, phrase", [
+    ({"n_experts": 8}, (5, 4, 2), "trace: 4 layers × 8 experts, top-2; model: 3 layers × 8 experts, top-2"),
+    ({"n_experts": 16}, (5, 3, 2), "trace: 3 layers × 16 experts, top-2; model: 3 layers × 8 experts, top-2"),
+    ({}, (5, 3, 3), "trace: 3 layers × 6+ experts, top-3; model: 3 layers × 8 experts, top-2"),
+])
+def test_generate_refuses_a_trace_of_another_model_naming_both_shapes(small_model, tmp_path, capsys, meta, experts_shape, phrase):
+    # issue 23, item 21: the refusal is in the user's terms (the two shapes), not the trace's internals
+    T, L, k = experts_shape
+    experts = np.tile(np.arange(k) + (6 - k), (T, L, 1))
+    path = tmp_path / "other.npz"
+    probs = {"probs": np.full((T, L, meta["n_experts"]), 1.0 / meta["n_experts"], np.float32)} if meta else {}
+    np.savez(path, experts=experts, meta=np.array(json.dumps(meta)), **probs)
+    from moerun.cli.main import main
+
+    assert main(["generate", "--model", str(small_model), "--routing", str(path), "--max-new", "1", "--quiet"]) == 2
+    err = capsys.readouterr().err
+    assert phrase in err and len(err.strip().splitlines()) == 1
