@@ -13,11 +13,12 @@ import os
 import signal
 import sys
 
-from moerun import policies
 from moerun._version import __version__
 from moerun.errors import BadInput, BadOption, MoerunError, OutputError
-from moerun.model.tokenizer import read_text_file
-from moerun.runtime.engine import default_model_dir
+
+# This module imports nothing that imports numpy at its top: entry() chooses the BLAS threads before
+# numpy loads (the console script and ``python -m moerun`` import this module, then call entry()).
+BLAS_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 
 COMMANDS = ["generate", "verify", "inspect", "probe", "synth", "record", "replay", "quantize", "score", "plan"]
 
@@ -76,6 +77,8 @@ def add_prompt(p, max_new_default: int = 80) -> None:
 
 
 def add_memory(p) -> None:
+    from moerun import policies
+
     online = policies.names(online_only=True)
     p.add_argument("--mem-cap", metavar="SIZE", help="memory cap for dense weights + KV cache + scratch + expert pool (48MiB, 1.5GB, bytes); default: every expert resident")
     p.add_argument("--slots", metavar="N,N,...", help="expert slots per layer, overriding the even split of the cap (not with --shared-pool)")
@@ -181,6 +184,8 @@ def model_files(model_dir) -> list:
     """Every file of a model directory: a run's inputs, which no output may replace."""
     from pathlib import Path
 
+    from moerun.runtime.engine import default_model_dir
+
     d = Path(model_dir) if model_dir is not None else default_model_dir()
     try:
         return [p for p in d.iterdir() if p.is_file()]
@@ -189,6 +194,8 @@ def model_files(model_dir) -> list:
 
 
 def read_prompt(args) -> str:
+    from moerun.model.tokenizer import read_text_file
+
     if getattr(args, "prompt_file", None):
         return read_text_file(args.prompt_file)
     return args.prompt if args.prompt is not None else ""
@@ -368,7 +375,19 @@ def _first_ctrl_c_only(interrupted: list) -> None:
     signal.signal(signal.SIGINT, on_sigint)
 
 
+def one_blas_thread() -> None:
+    """The command line's choice of BLAS threads, made before numpy loads: one, unless the environment says.
+
+    Batch-1 decode multiplies small matrices: one BLAS thread is faster and far steadier than two on a
+    shared 2-core machine (DEVELOPERS.md, Benchmarks).  Importing moerun as a library changes no
+    environment variable: a program chooses for itself (docs/guide/api.md, "BLAS threads").
+    """
+    for var in BLAS_THREAD_VARIABLES:
+        os.environ.setdefault(var, "1")
+
+
 def entry() -> None:
+    one_blas_thread()  # first: the commands import numpy only after this
     interrupted: list = []
     try:
         _first_ctrl_c_only(interrupted)

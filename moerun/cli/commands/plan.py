@@ -46,7 +46,7 @@ def add_arguments(p) -> None:
 def _record(model_dir: Path, tokens: int):
     from moerun.cli.commands.record import windows
     from moerun.model.tokenizer import read_text_file
-    from moerun.runtime.engine import load
+    from moerun.runtime.options import load
 
     held = model_dir / "heldout.txt"
     if not held.exists():

@@ -15,7 +15,8 @@ from moerun.errors import BadInput, BadOption
 from moerun.files.fileio import check_output
 from moerun.files.trace import write_trace
 from moerun.model.tokenizer import read_text_file
-from moerun.runtime.engine import default_model_dir, load
+from moerun.runtime.engine import default_model_dir
+from moerun.runtime.options import load
 from moerun.units import fmt_bytes
 
 HELP = "route a text through the model, window by window, and write every token's experts and guesses to a trace"

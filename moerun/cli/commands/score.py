@@ -11,7 +11,8 @@ from moerun.cli.report import Progress, emit_json, table
 from moerun.cli.summary import cap_check, cap_warning
 from moerun.errors import BadInput
 from moerun.model.tokenizer import read_text_file
-from moerun.runtime.engine import default_model_dir, load
+from moerun.runtime.engine import default_model_dir
+from moerun.runtime.options import load
 from moerun.units import fmt_bytes
 
 RULE_BOS = "windows of [bos] + the next max_seq_len-1 tokens; every token of the text predicted once"
