@@ -23,6 +23,10 @@ _LAZY = {
     "EngineOptions": "moerun.runtime.options",
     "load": "moerun.runtime.options",
     "Sampling": "moerun.model.sampling",
+    "quantize": "moerun.makers.jobs",
+    "QuantizeResult": "moerun.makers.jobs",
+    "synth": "moerun.makers.jobs",
+    "SynthResult": "moerun.makers.jobs",
 }
 
 __all__ = [
@@ -36,9 +40,13 @@ __all__ = [
     "Generation",
     "ImpossibleBudget",
     "MoerunError",
+    "QuantizeResult",
     "Sampling",
+    "SynthResult",
     "default_model_dir",
     "load",
+    "quantize",
+    "synth",
 ]
 
 
