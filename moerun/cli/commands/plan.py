@@ -44,9 +44,9 @@ def add_arguments(p) -> None:
 
 
 def _record(model_dir: Path, tokens: int):
-    from moerun.cli.commands.record import windows
     from moerun.model.tokenizer import read_text_file
     from moerun.runtime.options import load
+    from moerun.sim.jobs import windows
 
     held = model_dir / "heldout.txt"
     if not held.exists():
