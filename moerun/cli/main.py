@@ -136,16 +136,9 @@ def check_memory_options(args) -> None:
 
 def check_against_model(args, config) -> None:
     """The memory options that only the model can refute: more guesses than experts, guesses past the last layer."""
-    prefetch = getattr(args, "prefetch", 0) or 0
-    if prefetch > config.n_experts:
-        raise BadOption(f"--prefetch {prefetch} is more than the model's {config.n_experts} experts per layer")
-    lookahead = getattr(args, "lookahead", None) or 1
-    if prefetch and lookahead >= config.n_layers:
-        most = config.n_layers - 1
-        raise BadOption(
-            f"--lookahead {lookahead} reaches past the last layer: the model has {config.n_layers} layer(s), "
-            + (f"so at most {most}" if most else "so there is no later layer to prefetch for")
-        )
+    from moerun.runtime.options import check_against_config
+
+    check_against_config(getattr(args, "prefetch", 0), getattr(args, "lookahead", None), config)
 
 
 def add_json(p) -> None:
@@ -153,15 +146,9 @@ def add_json(p) -> None:
 
 
 def parse_slot_list(text: str | None) -> list[int] | None:
-    if text is None:
-        return None
-    try:
-        slots = [int(s) for s in text.split(",") if s.strip()]
-    except ValueError:
-        raise BadOption(f"--slots takes whole numbers separated by commas, got {text!r}") from None
-    if not slots:
-        raise BadOption("--slots is empty")
-    return slots
+    from moerun.runtime.options import parse_slot_list as parse
+
+    return parse(text)
 
 
 def engine_kwargs(args) -> dict:

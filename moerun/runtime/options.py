@@ -143,6 +143,33 @@ class EngineOptions:
         }
 
 
+def parse_slot_list(text: str | None) -> list[int] | None:
+    """``"3,4,3"`` (slots per layer, as --slots gives them) -> [3, 4, 3]; None stays None."""
+    if text is None:
+        return None
+    try:
+        slots = [int(s) for s in text.split(",") if s.strip()]
+    except ValueError:
+        raise BadOption(f"--slots takes whole numbers separated by commas, got {text!r}") from None
+    if not slots:
+        raise BadOption("--slots is empty")
+    return slots
+
+
+def check_against_config(prefetch: int, lookahead: int | None, config) -> None:
+    """The prefetch settings only the model can refute: more guesses than experts, guesses past the last layer."""
+    prefetch = prefetch or 0
+    if prefetch > config.n_experts:
+        raise BadOption(f"--prefetch {prefetch} is more than the model's {config.n_experts} experts per layer")
+    lookahead = lookahead or 1
+    if prefetch and lookahead >= config.n_layers:
+        most = config.n_layers - 1
+        raise BadOption(
+            f"--lookahead {lookahead} reaches past the last layer: the model has {config.n_layers} layer(s), "
+            + (f"so at most {most}" if most else "so there is no later layer to prefetch for")
+        )
+
+
 _FIELDS = frozenset(f.name for f in dataclasses.fields(EngineOptions))
 
 
