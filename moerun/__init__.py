@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import importlib as _importlib
 
-from moerun.errors import BadInput, BadModelFile, BadOption, BadTrace, ImpossibleBudget, MoerunError
+from moerun.errors import BadInput, BadModelFile, BadOption, BadTrace, ImpossibleBudget, MoerunError, OutputError
 
 from ._version import __version__
 
@@ -31,6 +31,8 @@ _LAZY = {
     "RecordResult": "moerun.sim.jobs",
     "replay": "moerun.sim.jobs",
     "ReplayResult": "moerun.sim.jobs",
+    "inspect": "moerun.checks.jobs",
+    "InspectResult": "moerun.checks.jobs",
     "score": "moerun.checks.jobs",
     "ScoreResult": "moerun.checks.jobs",
     "verify": "moerun.checks.jobs",
@@ -51,7 +53,9 @@ __all__ = [
     "EngineOptions",
     "Generation",
     "ImpossibleBudget",
+    "InspectResult",
     "MoerunError",
+    "OutputError",
     "PlanResult",
     "ProbeResult",
     "QuantizeResult",
@@ -62,6 +66,7 @@ __all__ = [
     "SynthResult",
     "VerifyResult",
     "default_model_dir",
+    "inspect",
     "load",
     "plan",
     "probe",

@@ -1,4 +1,5 @@
-"""``moerun.verify`` and ``moerun.score``: bit-exactness of offloaded runs, and perplexity under a cap.
+"""``moerun.inspect``, ``moerun.verify`` and ``moerun.score``: what a model directory holds, bit-exactness of
+offloaded runs, and perplexity under a cap.
 
 Each returns a result whose ``to_json()`` is what the command's ``--json`` prints; errors are
 ``moerun.errors``; progress goes to the callback given, never to a stream.
@@ -11,12 +12,14 @@ from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 
+from moerun.checks.contents import check_digests, check_files, describe
 from moerun.checks.score import Score, n_windows, score_text
 from moerun.checks.verify import Outcome, Setting
 from moerun.checks.verify import verify as verify_settings
 from moerun.errors import BadInput, BadOption
 from moerun.files.store import ModelStore
 from moerun.model.config import RANDOM_NOTE as CONFIG_NOTE
+from moerun.model.config import ModelConfig
 from moerun.model.sampling import Sampling
 from moerun.model.tokenizer import Tokenizer, read_text_file
 from moerun.runtime.capcheck import cap_check, cap_warning
@@ -25,6 +28,70 @@ from moerun.runtime.options import check_against_config, load, parse_slot_list
 from moerun.units import parse_rate, parse_size
 
 RANDOM_NOTE = f"{CONFIG_NOTE} and the text is noise"  # what a run of random weights needs said
+
+# ---------------------------------------------------------------------------------------------- inspect
+
+
+@dataclass
+class InspectResult:
+    """A model directory: its config, every file checked, sizes in the file and in memory, the layout, the
+    smallest caps, every tensor; with ``check``, the digests compared."""
+
+    model_dir: str
+    config: ModelConfig
+    file_bytes: int
+    header_bytes: int
+    dense_file_bytes: int
+    dense_memory_bytes: int
+    d_shared: int
+    norm_topk: bool
+    shared_expert_file_bytes: int
+    shared_expert_memory_bytes: int
+    expert_bytes: int
+    expert_storage: str
+    experts_total_bytes: int
+    expert_share: float  # of the weights' bytes in the file
+    kv_cache_bytes: int
+    scratch_bytes: int
+    min_cap_even_bytes: int
+    min_cap_shared_bytes: int
+    experts_region: list[int]  # [first byte, end] of the experts in the weights file
+    experts_in_layer_order: bool
+    synthetic: bool
+    files: dict[str, str]  # file name -> what reading it found
+    tensors: list[dict]  # name, dtype, shape, offset, bytes; in file order
+    note: str | None = None
+    check: dict | None = None  # {"checked", "recorded", "differ"} with check=True
+
+    @property
+    def ok(self) -> bool:
+        """False when the digests were checked and one differs, or the file records none (exit code 1)."""
+        return self.check is None or (self.check["recorded"] and not self.check["differ"])
+
+    def to_json(self) -> dict:
+        doc = {name: getattr(self, name) for name in self.__dataclass_fields__ if name not in ("note", "check")}
+        doc["config"] = self.config.to_json()
+        if self.note is not None:
+            doc["note"] = self.note
+        if self.check is not None:
+            doc["check"] = self.check
+        return doc
+
+
+def inspect(model_dir: str | os.PathLike | None = None, *, check: bool = False) -> InspectResult:
+    """What is in a model directory and where each byte lives (``moerun inspect``); every file of the directory is
+    read as the other jobs read it (BadModelFile otherwise).  ``check``: compare every tensor with its recorded digest."""
+    store = ModelStore.open(model_dir if model_dir is not None else default_model_dir())
+    try:
+        doc = describe(store, check_files(store))
+        doc["config"] = store.config
+        if check:
+            bad, checked = check_digests(store)
+            doc["check"] = {"checked": checked, "recorded": checked > 0, "differ": bad}
+    finally:
+        store.close()
+    return InspectResult(**doc)
+
 
 # ---------------------------------------------------------------------------------------------- verify
 

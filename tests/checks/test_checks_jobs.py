@@ -1,4 +1,4 @@
-"""moerun.verify and moerun.score: each returns what its command's --json prints (timings aside)."""
+"""moerun.inspect, moerun.verify and moerun.score: each returns what its command's --json prints (timings aside)."""
 
 from __future__ import annotations
 
@@ -15,6 +15,14 @@ def _smallest_cap(model) -> int:
         return minimum_cap(st.config, st.dense_nbytes, st.expert_nbytes, "even", st.codec.scratch_bytes())
     finally:
         st.close()
+
+
+def test_inspect_returns_what_the_command_prints(small_model, capsys):
+    result = moerun.inspect(small_model, check=True)
+    assert isinstance(result, moerun.InspectResult) and result.ok and result.config.n_layers == 3
+    code, doc = cli_json(capsys, "inspect", "--model", small_model, "--check")
+    assert code == 0
+    assert as_json(result.to_json()) == doc  # nothing in it is a timing
 
 
 def test_verify_with_verify_s_own_settings_returns_what_the_command_prints(small_model, capsys):
