@@ -59,3 +59,26 @@ def test_the_entry_point_keeps_a_choice_the_environment_made():
     code = "import os, moerun.cli.main as m; m.one_blas_thread(); print(os.environ['OPENBLAS_NUM_THREADS'])"
     out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True, timeout=120, check=True)
     assert out.stdout.strip() == "2"
+
+
+def test_python_dash_m_moerun_sets_one_blas_thread_before_numpy_loads():
+    # 'python -m moerun --version' as it runs: the package, then moerun.__main__ -> entry(), then the commands (numpy);
+    # a finder placed first on sys.meta_path notes the variable at the moment numpy is first imported
+    got = _python(
+        "import json, os, runpy, sys\n"
+        "seen = {}\n"
+        "class Spy:\n"
+        "    def find_spec(self, name, path=None, target=None):\n"
+        "        if name == 'numpy' and 'at_numpy' not in seen:\n"
+        "            seen['at_numpy'] = os.environ.get('OPENBLAS_NUM_THREADS')\n"
+        "        return None\n"
+        "sys.meta_path.insert(0, Spy())\n"
+        "sys.argv = ['moerun', '--version']\n"
+        "out, sys.stdout = sys.stdout, open(os.devnull, 'w')\n"
+        "try:\n"
+        "    runpy.run_module('moerun', run_name='__main__', alter_sys=True)\n"
+        "except SystemExit:\n"
+        "    pass\n"
+        "out.write(json.dumps(seen) + '\\n')\n"
+    )
+    assert got == {"at_numpy": "1"}
