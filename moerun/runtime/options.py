@@ -18,6 +18,7 @@ import numpy as np
 from moerun import policies
 from moerun.errors import BadOption
 from moerun.files.store import MECHANISMS, ModelStore
+from moerun.files.trace import Trace
 from moerun.model.tokenizer import Tokenizer
 from moerun.runtime.budget import Budget, plan_budget
 from moerun.runtime.engine import Engine, default_model_dir
@@ -70,7 +71,7 @@ class EngineOptions:
     tokenizer: bool = True
     baseline: str | None = None
     reader_timeout: float = STALL_TIMEOUT_S
-    routing: object = None
+    routing: str | os.PathLike | Trace | None = None
     cold_reads: bool = False
 
     def __post_init__(self) -> None:
