@@ -64,7 +64,7 @@ class ReplayResult:
         return doc
 
 
-def replay(trace: str | os.PathLike, evict: str | Sequence[str] = DEFAULT_POLICIES, slots: str | Sequence[int] | None = None,
+def replay(trace: str | os.PathLike, evict: str | Sequence[str] = tuple(DEFAULT_POLICIES), slots: str | Sequence[int] | None = None,
            *, shared_pool: bool = False, prefetch: int = 0, lookahead: int | None = None,
            expert_bytes: int | str | None = None, seed: int = 0, baselines: bool = True, generic: bool = False,
            progress: Callable[[int, int, str], None] | None = None,
