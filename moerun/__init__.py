@@ -1,18 +1,47 @@
-"""moerun: a CPU-only reference engine and workbench for offloaded mixture-of-experts inference."""
+"""moerun: a CPU-only reference engine and workbench for offloaded mixture-of-experts inference.
 
-import os as _os
+The public API (docs/guide/api.md): ``load`` and ``EngineOptions`` for the engine, and one function
+per job of the command line (``plan``, ``replay``, ``record``, ``verify``, ``score``, ``probe``,
+``quantize``, ``synth``), each returning a result whose ``to_json()`` is what the command's ``--json``
+prints.  Names are imported on first use (PEP 562), so ``import moerun`` loads neither numpy nor an
+offline tool, and changes no environment variable (BLAS threads: docs/guide/api.md).
+"""
 
-# Batch-1 decode multiplies small matrices: one BLAS thread is faster and far steadier than two
-# on a shared 2-core machine (DEVELOPERS.md, Benchmarks).  This only takes effect when moerun is imported
-# before numpy; set OPENBLAS_NUM_THREADS (or OMP_NUM_THREADS) yourself to choose otherwise.
-for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
-    _os.environ.setdefault(_var, "1")
+from __future__ import annotations
 
-from moerun.errors import BadInput, BadModelFile, BadOption, BadTrace, ImpossibleBudget, MoerunError  # noqa: E402
-from moerun.model.sampling import Sampling  # noqa: E402
-from moerun.runtime.engine import Engine, Generation, default_model_dir, load  # noqa: E402
+import importlib as _importlib
 
-from ._version import __version__  # noqa: E402
+from moerun.errors import BadInput, BadModelFile, BadOption, BadTrace, ImpossibleBudget, MoerunError, OutputError
+
+from ._version import __version__
+
+# public name -> the module that owns it
+_LAZY = {
+    "Engine": "moerun.runtime.engine",
+    "Generation": "moerun.runtime.engine",
+    "default_model_dir": "moerun.runtime.engine",
+    "EngineOptions": "moerun.runtime.options",
+    "load": "moerun.runtime.options",
+    "Sampling": "moerun.model.sampling",
+    "plan": "moerun.planner.jobs",
+    "PlanResult": "moerun.planner.jobs",
+    "probe": "moerun.prober.jobs",
+    "ProbeResult": "moerun.prober.jobs",
+    "record": "moerun.sim.jobs",
+    "RecordResult": "moerun.sim.jobs",
+    "replay": "moerun.sim.jobs",
+    "ReplayResult": "moerun.sim.jobs",
+    "inspect": "moerun.checks.jobs",
+    "InspectResult": "moerun.checks.jobs",
+    "score": "moerun.checks.jobs",
+    "ScoreResult": "moerun.checks.jobs",
+    "verify": "moerun.checks.jobs",
+    "VerifyResult": "moerun.checks.jobs",
+    "quantize": "moerun.makers.jobs",
+    "QuantizeResult": "moerun.makers.jobs",
+    "synth": "moerun.makers.jobs",
+    "SynthResult": "moerun.makers.jobs",
+}
 
 __all__ = [
     "__version__",
@@ -21,10 +50,43 @@ __all__ = [
     "BadOption",
     "BadTrace",
     "Engine",
+    "EngineOptions",
     "Generation",
     "ImpossibleBudget",
+    "InspectResult",
     "MoerunError",
+    "OutputError",
+    "PlanResult",
+    "ProbeResult",
+    "QuantizeResult",
+    "RecordResult",
+    "ReplayResult",
     "Sampling",
+    "ScoreResult",
+    "SynthResult",
+    "VerifyResult",
     "default_model_dir",
+    "inspect",
     "load",
+    "plan",
+    "probe",
+    "quantize",
+    "record",
+    "replay",
+    "score",
+    "synth",
+    "verify",
 ]
+
+
+def __getattr__(name: str):
+    owner = _LAZY.get(name)
+    if owner is None:
+        raise AttributeError(f"module 'moerun' has no attribute {name!r}")
+    value = getattr(_importlib.import_module(owner), name)
+    globals()[name] = value  # later lookups skip this function
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_LAZY))

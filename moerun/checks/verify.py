@@ -13,7 +13,7 @@ import numpy as np
 from moerun import policies
 from moerun.model.sampling import Sampling
 from moerun.runtime.budget import minimum_cap
-from moerun.runtime.engine import load
+from moerun.runtime.options import load
 
 
 @dataclass

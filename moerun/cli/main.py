@@ -13,11 +13,12 @@ import os
 import signal
 import sys
 
-from moerun import policies
 from moerun._version import __version__
 from moerun.errors import BadInput, BadOption, MoerunError, OutputError
-from moerun.model.tokenizer import read_text_file
-from moerun.runtime.engine import default_model_dir
+
+# This module imports nothing that imports numpy at its top: entry() chooses the BLAS threads before
+# numpy loads (the console script and ``python -m moerun`` import this module, then call entry()).
+BLAS_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 
 COMMANDS = ["generate", "verify", "inspect", "probe", "synth", "record", "replay", "quantize", "score", "plan"]
 
@@ -76,6 +77,8 @@ def add_prompt(p, max_new_default: int = 80) -> None:
 
 
 def add_memory(p) -> None:
+    from moerun import policies
+
     online = policies.names(online_only=True)
     p.add_argument("--mem-cap", metavar="SIZE", help="memory cap for dense weights + KV cache + scratch + expert pool (48MiB, 1.5GB, bytes); default: every expert resident")
     p.add_argument("--slots", metavar="N,N,...", help="expert slots per layer, overriding the even split of the cap (not with --shared-pool)")
@@ -133,16 +136,9 @@ def check_memory_options(args) -> None:
 
 def check_against_model(args, config) -> None:
     """The memory options that only the model can refute: more guesses than experts, guesses past the last layer."""
-    prefetch = getattr(args, "prefetch", 0) or 0
-    if prefetch > config.n_experts:
-        raise BadOption(f"--prefetch {prefetch} is more than the model's {config.n_experts} experts per layer")
-    lookahead = getattr(args, "lookahead", None) or 1
-    if prefetch and lookahead >= config.n_layers:
-        most = config.n_layers - 1
-        raise BadOption(
-            f"--lookahead {lookahead} reaches past the last layer: the model has {config.n_layers} layer(s), "
-            + (f"so at most {most}" if most else "so there is no later layer to prefetch for")
-        )
+    from moerun.runtime.options import check_against_config
+
+    check_against_config(getattr(args, "prefetch", 0), getattr(args, "lookahead", None), config)
 
 
 def add_json(p) -> None:
@@ -150,15 +146,9 @@ def add_json(p) -> None:
 
 
 def parse_slot_list(text: str | None) -> list[int] | None:
-    if text is None:
-        return None
-    try:
-        slots = [int(s) for s in text.split(",") if s.strip()]
-    except ValueError:
-        raise BadOption(f"--slots takes whole numbers separated by commas, got {text!r}") from None
-    if not slots:
-        raise BadOption("--slots is empty")
-    return slots
+    from moerun.runtime.options import parse_slot_list as parse
+
+    return parse(text)
 
 
 def engine_kwargs(args) -> dict:
@@ -181,6 +171,8 @@ def model_files(model_dir) -> list:
     """Every file of a model directory: a run's inputs, which no output may replace."""
     from pathlib import Path
 
+    from moerun.runtime.engine import default_model_dir
+
     d = Path(model_dir) if model_dir is not None else default_model_dir()
     try:
         return [p for p in d.iterdir() if p.is_file()]
@@ -189,6 +181,8 @@ def model_files(model_dir) -> list:
 
 
 def read_prompt(args) -> str:
+    from moerun.model.tokenizer import read_text_file
+
     if getattr(args, "prompt_file", None):
         return read_text_file(args.prompt_file)
     return args.prompt if args.prompt is not None else ""
@@ -368,7 +362,19 @@ def _first_ctrl_c_only(interrupted: list) -> None:
     signal.signal(signal.SIGINT, on_sigint)
 
 
+def one_blas_thread() -> None:
+    """The command line's choice of BLAS threads, made before numpy loads: one, unless the environment says.
+
+    Batch-1 decode multiplies small matrices: one BLAS thread is faster and far steadier than two on a
+    shared 2-core machine (DEVELOPERS.md, Benchmarks).  Importing moerun as a library changes no
+    environment variable: a program chooses for itself (docs/guide/api.md, "BLAS threads").
+    """
+    for var in BLAS_THREAD_VARIABLES:
+        os.environ.setdefault(var, "1")
+
+
 def entry() -> None:
+    one_blas_thread()  # first: the commands import numpy only after this
     interrupted: list = []
     try:
         _first_ctrl_c_only(interrupted)

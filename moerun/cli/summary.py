@@ -4,36 +4,11 @@ from __future__ import annotations
 
 from moerun.cli.report import pct, table
 from moerun.model.config import RANDOM_NOTE as config_note
+from moerun.runtime.capcheck import CAP_ALLOWANCE_BYTES, cap_check, cap_warning  # noqa: F401 (the commands' names for them)
 from moerun.units import fmt_bytes, fmt_rate
 
 NOT_ADVICE = "text from a tiny model trained on invented data; not advice"
 RANDOM_NOTE = f"{config_note} and the text is noise"  # what a generation from random weights needs said
-# Peak resident-set growth may exceed --mem-cap by this much before a run is flagged: the interpreter's own
-# small allocations (token lists, the routing recorder, numpy's per-call buffers) that no budget line counts
-# (docs/guide/offload.md, "What the cap covers").
-CAP_ALLOWANCE_BYTES = 2 << 20
-
-
-def cap_check(engine) -> dict | None:
-    """Measured peak resident-set growth against the cap: None without a cap."""
-    cap = engine.budget.cap
-    if cap is None:
-        return None
-    growth = engine.memwatch.peak_growth()
-    return {"cap_bytes": cap, "allowance_bytes": CAP_ALLOWANCE_BYTES, "peak_rss_growth_bytes": growth,
-            "exceeded": growth > cap + CAP_ALLOWANCE_BYTES}
-
-
-def cap_warning(engine) -> str | None:
-    """One line for stderr when the measured peak exceeded the cap (plus the allowance), else None."""
-    chk = cap_check(engine)
-    if chk is None or not chk["exceeded"]:
-        return None
-    over = chk["peak_rss_growth_bytes"] - chk["cap_bytes"]
-    return (f"peak resident-set growth {fmt_bytes(chk['peak_rss_growth_bytes'])} exceeded the memory cap "
-            f"{fmt_bytes(chk['cap_bytes'])} by {fmt_bytes(over)} (allowance {fmt_bytes(CAP_ALLOWANCE_BYTES)})")
-
-
 def model_note(config) -> str:
     """The caveat printed with any output of this model."""
     return RANDOM_NOTE if config.extra.get("synthetic") else NOT_ADVICE

@@ -64,7 +64,7 @@ from moerun.files.store import ModelStore
 from moerun.makers._card import QuantReport, card_text, setting_tag
 from moerun.model.config import RANDOM_NOTE, ModelConfig, expert_tensor_name
 from moerun.model.tokenizer import read_text_file
-from moerun.runtime.engine import load
+from moerun.runtime.options import load
 
 # hqq keeps an iterate only if it lowers a group's lp error by more than this
 # relative margin, so float summation order can never flip the comparison.

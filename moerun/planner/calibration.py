@@ -36,7 +36,7 @@ from moerun.model.transformer import expert
 from moerun.planner.timeline import Costs
 from moerun.runtime.budget import minimum_cap, plan_budget
 from moerun.runtime.clock import fine_timer
-from moerun.runtime.engine import load
+from moerun.runtime.options import load
 from moerun.runtime.pool import ExpertPool
 from moerun.runtime.prefetch import GuessRule
 from moerun.units import finite_number, whole_number

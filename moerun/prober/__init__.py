@@ -1,3 +1,3 @@
-"""Probing: page-in latency and bandwidth on the user's storage, and the saved probe file the planner reads. Offline."""
+"""Probing (moerun.probe, in jobs): page-in latency and bandwidth on the user's storage, and the saved probe file the planner reads. Offline."""
 
-__all__ = ["pagein", "saved"]
+__all__ = ["jobs", "pagein", "saved"]

@@ -1,6 +1,6 @@
-"""The engine: a model with its store, pool, prefetcher and tokenizer; ``moerun.load``.
+"""The engine: a model with its store, pool, prefetcher and tokenizer.
 
-``load(model_dir, mem_cap=...)`` sizes the budget, allocates the pool once,
+``load(model_dir, mem_cap=...)`` (moerun.runtime.options) sizes the budget, allocates the pool once,
 starts the prefetch reader process if asked, and returns an ``Engine`` whose
 ``logits`` and ``generate`` run the numpy transformer with experts served by
 the pool.  ``engine.stats`` holds the run's measured figures.
@@ -15,22 +15,19 @@ from pathlib import Path
 
 import numpy as np
 
-from moerun import policies
 from moerun.errors import BadModelFile, BadOption
-from moerun.files.store import MECHANISMS, ModelStore
+from moerun.files.store import ModelStore
 from moerun.files.trace import TRACE_GUESSES, TRACE_LOOKAHEAD, Recorder, Trace, read_trace
 from moerun.model.config import RANDOM_NOTE
 from moerun.model.routing import ReplayedRouting
 from moerun.model.sampling import Sampler, Sampling
 from moerun.model.tokenizer import Tokenizer
 from moerun.model.transformer import NO_OBSERVER, KVCache, StepObserver, Transformer
-from moerun.runtime.budget import Budget, plan_budget
+from moerun.runtime.budget import Budget
 from moerun.runtime.memwatch import MemWatch
 from moerun.runtime.pool import ExpertPool
 from moerun.runtime.prefetch import GuessRule, Prefetcher
-from moerun.runtime.reader import STALL_TIMEOUT_S, Reader
-from moerun.runtime.sources import BareExperts, NoReuseExperts, WholeLayerExperts
-from moerun.units import parse_rate, parse_size
+from moerun.runtime.reader import Reader
 
 
 def _bundled_model() -> Path:
@@ -309,152 +306,3 @@ class Engine:
 
     def __exit__(self, *exc):
         self.close()
-
-
-def _whole(v) -> bool:
-    return isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_))
-
-
-def _check_arguments(model_dir, evict, prefetch, lookahead, slots, split, mechanism, baseline, flags: dict) -> None:
-    """Types of load()'s arguments: the API refuses a float lookahead or string slots with BadOption, as the CLI does."""
-    if model_dir is not None and not isinstance(model_dir, (str, os.PathLike)):
-        raise BadOption(f"model_dir must be a path, got {type(model_dir).__name__}")
-    for name, v in (("evict", evict), ("split", split), ("mechanism", mechanism)):
-        if not isinstance(v, str):
-            raise BadOption(f"{name} must be text, got {v!r:.40}")
-    if baseline is not None and not isinstance(baseline, str):
-        raise BadOption(f"baseline must be text or None, got {baseline!r:.40}")
-    for name, v in (("prefetch", prefetch), ("lookahead", lookahead)):
-        if not _whole(v):
-            raise BadOption(f"{name} must be a whole number, got {v!r:.40}")
-    if slots is not None and (isinstance(slots, (str, bytes)) or not hasattr(slots, "__iter__")
-                              or not all(_whole(n) for n in slots)):
-        raise BadOption(f"slots must be a list of whole numbers (slots per layer), got {slots!r:.60}")
-    for name, v in flags.items():
-        if not isinstance(v, bool):
-            raise BadOption(f"{name} must be True or False, got {v!r:.40}")
-
-
-def load(
-    model_dir: str | os.PathLike | None = None,
-    mem_cap: int | str | None = None,
-    evict: str = "lru",
-    prefetch: int = 0,
-    lookahead: int = 1,
-    prefetch_from: str = "attention",
-    slots: list[int] | None = None,
-    split: str = "even",
-    link_speed: float | str | None = None,
-    cold: bool = False,
-    mechanism: str = "pread",
-    bare: bool = False,
-    tokenizer: bool = True,
-    baseline: str | None = None,
-    reader_timeout: float = STALL_TIMEOUT_S,
-    routing=None,
-    cold_reads: bool = False,
-) -> Engine:
-    """Open a model and return an engine (the public entry point, docs/design/architecture.md).
-
-    mem_cap: bytes (or "48MiB") for dense weights + KV cache + scratch + expert
-    pool; None keeps every expert resident.  slots: explicit slots per layer
-    (overrides split).  split: "even" per-layer quotas or "shared".
-    prefetch: guesses per layer (0 = off), lookahead: layers ahead.
-    link_speed: bytes/s (or "2GB/s") of an emulated slower link.
-    bare: every expert resident in plain buffers, no pool (speed reference).
-    baseline: "whole-layer" or "no-reuse", the naive offloading baselines of the benchmarks.
-    reader_timeout: seconds the prefetch reader may go without progress while the engine waits
-    before the engine stops it and reads every expert itself (docs/design/prefetch.md).
-    routing: a routing trace (path or moerun.files.trace.Trace): each layer takes its chosen experts and
-    weights from it instead of its router, everything else computed for real (moerun.model.routing).
-    cold_reads: every expert read comes from the device (each read range is dropped from the page
-    cache right after it is copied, as ``moerun probe``'s cold path does); ``cold`` drops the file once.
-    """
-    _check_arguments(model_dir, evict, prefetch, lookahead, slots, split, mechanism, baseline,
-                     {"cold": cold, "bare": bare, "tokenizer": tokenizer, "cold_reads": cold_reads})
-    _check_values(evict, prefetch, prefetch_from, lookahead, mechanism, split, slots, reader_timeout, baseline)
-    cap = parse_size(mem_cap, "memory cap") if mem_cap is not None else None
-    rate = parse_rate(link_speed, "link speed") if link_speed is not None else None
-    watch = MemWatch()
-    store = ModelStore.open(model_dir if model_dir is not None else default_model_dir())
-    reader = None
-    try:
-        c = store.config
-        tok = Tokenizer.load(store.model_dir, c.vocab_size, c.bos_token_id) if tokenizer else None
-        if cold or cold_reads:
-            store.drop_cache()
-        store.cold_reads = cold_reads
-        store.set_mechanism(mechanism)
-        chosen_split = list(slots) if slots is not None else split
-        budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, cap, chosen_split, store.codec.scratch_bytes())
-        store.link_rate = rate
-        if prefetch > 0 and not bare and baseline is None:  # guesses are read by the reader process
-            reader = Reader(store, budget.n_slots, budget.slot, reader_timeout)
-        experts = _expert_source(store, budget, evict, reader, bare, baseline, cap is None)
-        options = {
-            "mem_cap": cap,
-            "evict": evict,
-            "prefetch": prefetch,
-            "lookahead": lookahead,
-            "prefetch_from": prefetch_from,
-            "link_speed": rate,
-            "cold": cold,
-            "cold_reads": cold_reads,
-            "mechanism": mechanism,
-            "bare": bare,
-            "baseline": baseline,
-            "routing": None,
-        }
-        engine = Engine(store, tok, budget, experts, reader, watch, options)
-        if routing is not None:
-            engine.replay_routing(routing)
-        return engine
-    except BaseException:
-        if reader is not None:
-            reader.close()
-        store.close()
-        raise
-
-
-def _check_values(evict, prefetch, prefetch_from, lookahead, mechanism, split, slots, reader_timeout, baseline) -> None:
-    """load()'s settings, each against what it may be: one BadOption naming the first one out of range.
-
-    Checked before the model is opened, so a bad setting costs no file access and leaves nothing open.
-    """
-    policies.get(evict)
-    if prefetch < 0:
-        raise BadOption(f"--prefetch must be 0 (off) or a positive number of guesses, got {prefetch}")
-    if prefetch_from not in ("attention", "output"):
-        raise BadOption(f"prefetch point must be 'attention' or 'output', got {prefetch_from!r}")
-    if lookahead < 1:
-        raise BadOption(f"--lookahead must be at least 1, got {lookahead}")
-    if mechanism not in MECHANISMS:
-        raise BadOption(f"unknown page-in mechanism {mechanism!r}; known: {', '.join(MECHANISMS)}")
-    if split not in ("even", "shared"):
-        raise BadOption(f"split must be 'even' or 'shared', got {split!r}")
-    if isinstance(reader_timeout, bool) or not isinstance(reader_timeout, (int, float)) or not reader_timeout > 0:
-        raise BadOption(f"reader_timeout must be a positive number of seconds, got {reader_timeout!r:.40}")
-    if slots is not None and split == "shared":
-        raise BadOption("slots (per-layer quotas) and split='shared' (one pool for every layer) contradict each other; give one")
-    if baseline is not None and baseline not in BASELINES:
-        raise BadOption(f"unknown baseline {baseline!r}; known: {', '.join(BASELINES)}")
-
-
-BASELINES = {"whole-layer": WholeLayerExperts, "no-reuse": NoReuseExperts}
-
-
-def _expert_source(store: ModelStore, budget: Budget, evict: str, reader: Reader | None, bare: bool,
-                   baseline: str | None, all_resident: bool):
-    """Where the model gets its experts: the pool (the engine proper), or a reference without one.
-
-    ``bare`` keeps every expert in plain buffers (the speed reference); a ``baseline`` is one of the naive
-    offloading schemes the benchmarks compare against.  Without a cap the pool is filled up front.
-    """
-    if bare:
-        return BareExperts(store)
-    if baseline is not None:
-        return BASELINES[baseline](store)
-    pool = ExpertPool(store, budget, evict, reader)
-    if all_resident:
-        pool.preload_all()
-    return pool

@@ -380,12 +380,12 @@ def test_load_probe_rejects_what_a_planner_cannot_use(tmp_path):
 
 
 def test_probe_refuses_its_save_destination_before_measuring_anything(tmp_path, capsys, monkeypatch):
-    import moerun.cli.commands.probe as probe_cmd
+    import moerun.prober.jobs as probe_job  # the library function the command calls
 
     def must_not_run(*a, **k):
         raise AssertionError("measured although the destination was refused")
 
-    monkeypatch.setattr(probe_cmd, "run_probe", must_not_run)
+    monkeypatch.setattr(probe_job, "run_probe", must_not_run)
     taken = tmp_path / "taken.json"
     taken.write_text("the user's")
     assert cli.main(["probe", "--sizes", "64KiB", "--save", str(taken)]) == 2

@@ -16,7 +16,7 @@ from moerun.errors import BadOption
 from moerun.files.fileio import check_output
 from moerun.files.trace import write_trace
 from moerun.model.sampling import Sampling
-from moerun.runtime.engine import load
+from moerun.runtime.options import load
 
 HELP = "generate text under a memory cap (text on stdout; speed, hits, stalls and memory on stderr)"
 

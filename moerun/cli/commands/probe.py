@@ -6,11 +6,8 @@ import sys
 
 from moerun.cli import main as cli
 from moerun.cli.report import Progress, emit_json, table
-from moerun.errors import BadModelFile
-from moerun.files.fileio import check_output
-from moerun.prober.pagein import DEFAULT_RUNS, parse_sizes, run_probe
-from moerun.prober.saved import load_probe, save_probe
-from moerun.runtime.engine import default_model_dir
+from moerun.prober.jobs import probe
+from moerun.prober.pagein import DEFAULT_RUNS
 from moerun.units import fmt_bytes
 
 HELP = (
@@ -101,15 +98,6 @@ def render(doc: dict) -> str:
 
 
 def run(args) -> int:
-    sizes = parse_sizes(args.sizes) if args.sizes is not None else []
-    model = args.model
-    if model is None and not sizes:
-        model = default_model_dir()
-        if not model.is_dir():
-            raise BadModelFile(f"{model}: the default model is not there; give --model DIR or --sizes LIST")
-    inputs = cli.model_files(model) if model is not None else []
-    if args.save:  # refused now, not after minutes of measuring
-        check_output(args.save, args.force, inputs, "--save")
     progress = Progress("probe")
 
     def report(done: int, total: int, what: str) -> None:
@@ -117,16 +105,14 @@ def run(args) -> int:
         progress.update(done, what)
 
     try:
-        doc = run_probe(model, sizes, runs=args.runs, work_dir=args.dir, report=report)
+        result = probe(args.model, args.sizes, runs=args.runs, work_dir=args.dir, save=args.save, force=args.force,
+                       progress=report)
     finally:
         progress.close()
-    if args.save:
-        save_probe(args.save, doc, force=args.force, inputs=inputs)
-        load_probe(args.save)  # what a planner will read must validate
     if args.json:
-        emit_json(doc)
+        emit_json(result.to_json())
     else:
-        sys.stdout.write(render(doc))
+        sys.stdout.write(render(result.to_json()))
         if args.save:
             sys.stdout.write(f"saved: {args.save}\n")
     return 0

@@ -7,10 +7,8 @@ import sys
 
 from moerun.cli import main as cli
 from moerun.cli.report import Progress, emit_json, table
-from moerun.errors import BadOption
-from moerun.files.packed import ATTN_BITS, EXPERT_BITS, METHODS, QuantSpec
-from moerun.makers.quantize import quantize_model
-from moerun.runtime.engine import default_model_dir
+from moerun.files.packed import ATTN_BITS, EXPERT_BITS, METHODS
+from moerun.makers.jobs import quantize
 from moerun.units import fmt_bytes
 
 HELP = "write a quantized copy of a model: group-wise 8/4/3/2-bit packed experts (rtn or hqq), float16/8/4-bit attention"
@@ -32,9 +30,6 @@ def add_arguments(p) -> None:
 
 
 def run(args) -> int:
-    spec = QuantSpec.checked(args.expert_bits, args.attn_bits, args.group, args.method, BadOption)
-    cli.refuse_together(args, "max_tokens", "no_score", "--max-tokens says how much of heldout.txt to score, --no-score skips scoring")
-    src = args.model or default_model_dir()
     progress = Progress("quantizing experts", enabled=None if not args.json else False)
     command = "moerun " + shlex.join(sys.argv[1:]) if sys.argv and sys.argv[0].endswith(("moerun", "__main__.py")) else None
 
@@ -43,13 +38,15 @@ def run(args) -> int:
         progress.update(done)
 
     try:
-        rep = quantize_model(src, args.out, spec, force=args.force, score=not args.no_score,
-                             score_tokens=args.max_tokens, on_progress=on_progress, command=command)
+        rep = quantize(args.out, args.model, expert_bits=args.expert_bits, attn_bits=args.attn_bits, group=args.group,
+                       method=args.method, force=args.force, score=not args.no_score, max_tokens=args.max_tokens,
+                       progress=on_progress, command=command)
     finally:
         progress.close()
     if args.json:
         emit_json(rep.to_json())
         return 0
+    spec = rep.spec
     rows = [
         ["written", rep.out_dir],
         ["setting", f"{spec.expert_bits}-bit experts, {'float16' if spec.attn_bits == 16 else f'{spec.attn_bits}-bit'} attention, "

@@ -9,9 +9,9 @@ from moerun.cli import main as cli
 from moerun.cli.report import Progress, emit_json, pct, table
 from moerun.errors import BadOption
 from moerun.files.fileio import check_output
-from moerun.files.trace import read_trace
-from moerun.sim.report import DEFAULT_POLICIES, overall, parse_policies, parse_slots, run_replay
-from moerun.units import fmt_bytes, parse_size
+from moerun.sim.jobs import replay
+from moerun.sim.report import DEFAULT_POLICIES, overall
+from moerun.units import fmt_bytes
 
 HELP = "replay a routing trace through eviction policies: hit rate per layer and slot count, the offline bound, baselines, prefetch"
 
@@ -155,46 +155,33 @@ def _render_prefetch(doc: dict, shared: bool) -> list[str]:
 
 
 def run(args) -> int:
-    names = parse_policies(args.evict)
-    slots = parse_slots(args.slots) if args.slots is not None else None
-    if args.prefetch < 0:
-        raise BadOption(f"--prefetch must be 0 (off) or a number of guesses, got {args.prefetch}")
-    if args.lookahead is not None and args.lookahead < 1:
-        raise BadOption(f"--lookahead must be at least 1, got {args.lookahead}")
-    cli.refuse_without(args, "lookahead", "prefetch", "--prefetch N (N > 0)")
     cli.refuse_without(args, "plot_layer", "plot", "--plot FILE")
-    lookahead = args.lookahead or 1
     plot_layer = args.plot_layer or 0
-    eb = parse_size(args.expert_bytes, "expert size") if args.expert_bytes is not None else None
-    if eb is not None and eb <= 0:
-        raise BadOption("--expert-bytes must be more than zero")
-    trace = read_trace(args.trace)
-    if plot_layer < 0 or plot_layer >= trace.n_layers:
-        raise BadOption(f"--plot-layer must be 0..{trace.n_layers - 1} for this trace")
-    if args.plot:
-        from moerun.cli.plot import require_matplotlib
+    traces = []
 
-        check_output(args.plot, args.force, [args.trace], "--plot")
-        require_matplotlib()
+    def check_plot(trace) -> None:  # the trace is read: the --plot options are checked before any replaying
+        traces.append(trace)
+        if plot_layer < 0 or plot_layer >= trace.n_layers:
+            raise BadOption(f"--plot-layer must be 0..{trace.n_layers - 1} for this trace")
+        if args.plot:
+            from moerun.cli.plot import require_matplotlib
+
+            check_output(args.plot, args.force, [args.trace], "--plot")
+            require_matplotlib()
+
     prog = Progress("replay", enabled=None if not args.json else False)
-    doc = run_replay(
-        trace,
-        names,
-        slots,
-        expert_bytes=eb,
-        seed=args.seed,
-        prefetch=(args.prefetch, lookahead) if args.prefetch else None,
-        baselines=not args.no_baselines,
-        fast=not args.generic,
-        shared=args.shared_pool,
-        progress=lambda i, n, label: prog.update(i, label),
-    )
-    prog.close()
-    doc["trace"]["file"] = args.trace
+    try:
+        result = replay(args.trace, args.evict, args.slots, shared_pool=args.shared_pool, prefetch=args.prefetch,
+                        lookahead=args.lookahead, expert_bytes=args.expert_bytes, seed=args.seed,
+                        baselines=not args.no_baselines, generic=args.generic,
+                        progress=lambda i, n, label: prog.update(i, label), on_trace=check_plot)
+    finally:
+        prog.close()
     if args.plot:
         from moerun.cli.plot import plot_replay
 
-        doc["plot"] = plot_replay(args.plot, trace, doc, plot_layer, force=args.force, inputs=[args.trace])
+        result.plot = plot_replay(args.plot, traces[0], result.to_json(), plot_layer, force=args.force, inputs=[args.trace])
+    doc = result.to_json()
     if args.json:
         emit_json(doc)
     else:

@@ -5,17 +5,11 @@ from __future__ import annotations
 import sys
 from pathlib import Path
 
-from moerun.checks.score import n_windows, score_text
+from moerun.checks.jobs import score
 from moerun.cli import main as cli
 from moerun.cli.report import Progress, emit_json, table
-from moerun.cli.summary import cap_check, cap_warning
-from moerun.errors import BadInput
-from moerun.model.tokenizer import read_text_file
-from moerun.runtime.engine import default_model_dir, load
 from moerun.units import fmt_bytes
 
-RULE_BOS = "windows of [bos] + the next max_seq_len-1 tokens; every token of the text predicted once"
-RULE_PLAIN = "windows of max_seq_len tokens, no bos inserted; every token but each window's first predicted"
 HELP = "perplexity of a text (default: the model's heldout.txt), teacher-forced in context-sized windows, with tok/s"
 
 
@@ -30,79 +24,49 @@ def add_arguments(p) -> None:
 
 
 def run(args) -> int:
-    model_dir = Path(args.model) if args.model else default_model_dir()
     kwargs = cli.engine_kwargs(args)
-    kwargs["model_dir"] = model_dir
-    engine = load(**kwargs)  # the model is checked first: its problems are the likelier ones
-    with engine:
-        cli.check_against_model(args, engine.config)
-        if args.text:
-            text_path = Path(args.text)
-        else:
-            text_path = model_dir / "heldout.txt"
-            if not text_path.exists():
-                raise BadInput(f"{model_dir} has no heldout.txt; name a text with --text FILE")
-        text = read_text_file(text_path)
-        c = engine.config
-        ids = engine.tokenizer.encode_array(text, args.max_tokens)
-        n_tok = ids.size
-        bos = None if args.plain_windows else c.bos_token_id
-        progress = Progress("scoring", n_windows(n_tok, c.max_seq_len, bos), enabled=None if not args.json else False)
-        try:
-            result = score_text(engine, text, args.max_tokens, on_window=progress.update, plain=args.plain_windows, ids=ids)
-        finally:
-            progress.close()
-        engine.memwatch.sample()
-        st = engine.stats
-        pool = st.get("pool") or {}
-        doc = {
-            "model_dir": str(engine.store.model_dir),
-            "model": c.name,
-            "text": str(text_path),
-            "expert_storage": engine.store.codec.name,
-            "expert_bytes": engine.store.expert_nbytes,
-            "rule": RULE_PLAIN if bos is None else RULE_BOS,
-            **result.to_json(),
-            "bytes_paged_in": pool.get("bytes_paged_in"),
-            "expert_loads": pool.get("prefill_loads"),
-            "stall_ms": pool.get("stall_ns", 0) / 1e6 if pool else None,
-            **{k: v for k, v in st.items() if k != "pool"},
-            "link_emulated": engine.options.get("link_speed") is not None,
-        }
-        chk = cap_check(engine)
-        if chk is not None:
-            doc["cap_exceeded"] = chk["exceeded"]
-            doc["cap_allowance_bytes"] = chk["allowance_bytes"]
-        warning = cap_warning(engine)
-        if warning:
-            sys.stderr.write(f"moerun score: warning: {warning}\n")
-        if c.extra.get("synthetic"):
-            doc["note"] = "random weights: the perplexity means nothing"
-        if args.json:
-            emit_json(doc)
-            return 0
-        out = sys.stdout
-        b = engine.budget
-        rows = [
-            ["text", f"{text_path} ({result.predicted:,} tokens predicted in {result.windows} windows)"],
-            ["rule", doc["rule"]],
-            ["experts", f"{engine.store.codec.name}, {engine.store.expert_nbytes:,} B each"],
-            ["cross-entropy", f"{result.cross_entropy:.4f} nats/token"],
-            ["perplexity", f"{result.perplexity:.3f}"],
-            ["speed", f"{result.tok_s:,.0f} tok/s ({result.forward_ns / 1e6:.0f} ms of forward passes)"],
-        ]
-        if b.cap is not None:
-            rows.append(["memory cap", f"{fmt_bytes(b.cap)}; slots per layer {','.join(map(str, b.slots))}"
-                         + (" (one shared pool)" if b.split == "shared" else "")])
-            rows.append(["page-ins", f"{pool.get('prefill_loads', 0):,} experts, {fmt_bytes(pool.get('bytes_paged_in', 0))}, "
-                         f"stalled {doc['stall_ms']:.1f} ms"])
-        if engine.options.get("link_speed") is not None:
-            rows.append(["link", f"{engine.options['link_speed'] / 1e9:.2f} GB/s (emulated)"])
-        if engine.options.get("cold"):
-            rows.append(["cold start", "the model file's pages were dropped from the OS page cache first"])
-        rows.append(["peak RSS growth", fmt_bytes(st["peak_rss_growth_bytes"])])
-        out.write(f"model {c.name or engine.store.model_dir.name} ({engine.store.model_dir})\n")
-        if doc.get("note"):
-            out.write(f"note: {doc['note']}\n")
-        out.write(table(["", "value"], rows, "ll") + "\n")
+    model_dir = kwargs.pop("model_dir")
+    progress = Progress("scoring", enabled=None if not args.json else False)
+
+    def report(done: int, total: int) -> None:
+        progress.total = total
+        progress.update(done)
+
+    try:
+        result = score(model_dir, args.text, max_tokens=args.max_tokens, plain_windows=args.plain_windows,
+                       progress=report, **kwargs)
+    finally:
+        progress.close()
+    if result.warning:
+        sys.stderr.write(f"moerun score: warning: {result.warning}\n")
+    doc = result.to_json()
+    if args.json:
+        emit_json(doc)
+        return 0
+    out = sys.stdout
+    r = result.score
+    b = doc["budget"]
+    options = doc["options"]
+    rows = [
+        ["text", f"{doc['text']} ({r.predicted:,} tokens predicted in {r.windows} windows)"],
+        ["rule", doc["rule"]],
+        ["experts", f"{doc['expert_storage']}, {doc['expert_bytes']:,} B each"],
+        ["cross-entropy", f"{r.cross_entropy:.4f} nats/token"],
+        ["perplexity", f"{r.perplexity:.3f}"],
+        ["speed", f"{r.tok_s:,.0f} tok/s ({r.forward_ns / 1e6:.0f} ms of forward passes)"],
+    ]
+    if b["cap_bytes"] is not None:
+        rows.append(["memory cap", f"{fmt_bytes(b['cap_bytes'])}; slots per layer {','.join(map(str, b['slots']))}"
+                     + (" (one shared pool)" if b["split"] == "shared" else "")])
+        rows.append(["page-ins", f"{doc['expert_loads'] or 0:,} experts, {fmt_bytes(doc['bytes_paged_in'] or 0)}, "
+                     f"stalled {doc['stall_ms']:.1f} ms"])
+    if options.get("link_speed") is not None:
+        rows.append(["link", f"{options['link_speed'] / 1e9:.2f} GB/s (emulated)"])
+    if options.get("cold"):
+        rows.append(["cold start", "the model file's pages were dropped from the OS page cache first"])
+    rows.append(["peak RSS growth", fmt_bytes(doc["peak_rss_growth_bytes"])])
+    out.write(f"model {doc['model'] or Path(doc['model_dir']).name} ({doc['model_dir']})\n")
+    if doc.get("note"):
+        out.write(f"note: {doc['note']}\n")
+    out.write(table(["", "value"], rows, "ll") + "\n")
     return 0

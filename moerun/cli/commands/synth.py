@@ -2,14 +2,12 @@
 
 from __future__ import annotations
 
-import shlex
 import sys
 
 from moerun.cli import main as cli
 from moerun.cli.report import Progress, emit_json, table
-from moerun.errors import BadModelFile, BadOption
-from moerun.makers.synthetic import BITS, RANDOM_NOTE, synth_config, synthesize
-from moerun.model.config import ModelConfig
+from moerun.makers.jobs import synth
+from moerun.makers.synthetic import BITS, RANDOM_NOTE
 from moerun.units import fmt_bytes
 
 HELP = (
@@ -54,68 +52,7 @@ def add_arguments(p) -> None:
     cli.add_json(p)
 
 
-def config_from_args(args) -> ModelConfig:
-    def positive(value, option: str) -> int:
-        if value is None or value < 1:
-            raise BadOption(f"{option} must be a positive whole number, got {value}")
-        return value
-
-    layers = positive(args.layers, "--layers")
-    experts = positive(args.experts, "--experts")
-    d_model = positive(args.d_model, "--d-model")
-    d_expert = positive(args.d_expert, "--d-expert")
-    top_k = positive(args.top_k, "--top-k")
-    if top_k > experts:
-        raise BadOption(f"--top-k {top_k} is more than --experts {experts}")
-    heads = positive(args.heads, "--heads") if args.heads is not None else max(1, d_model // 64)
-    if args.head_dim is not None:
-        head_dim = positive(args.head_dim, "--head-dim")
-    else:
-        if d_model % heads:
-            raise BadOption(f"--d-model {d_model} is not a multiple of {heads} heads; give --head-dim")
-        head_dim = d_model // heads
-    if head_dim % 2:
-        raise BadOption(f"head width {head_dim} must be even (rotary embeddings); give --heads or --head-dim")
-    kv_heads = positive(args.kv_heads, "--kv-heads") if args.kv_heads is not None else heads
-    if heads % kv_heads:
-        raise BadOption(f"--heads {heads} must be a multiple of --kv-heads {kv_heads}")
-    vocab = positive(args.vocab, "--vocab")
-    if vocab < 257:
-        raise BadOption(f"--vocab must be at least 257 (the byte tokenizer's 256 bytes and <doc>), got {vocab}")
-    context = positive(args.context, "--context")
-    if args.d_shared < 0:
-        raise BadOption(f"--d-shared must be 0 (no shared expert) or a positive whole number, got {args.d_shared}")
-    name = args.name if args.name is not None else args.out.rstrip("/").split("/")[-1] or "synthetic"
-    try:
-        return synth_config(
-            layers=layers, experts=experts, top_k=top_k, d_model=d_model, d_expert=d_expert, n_heads=heads,
-            n_kv_heads=kv_heads, head_dim=head_dim, max_seq_len=context, vocab_size=vocab, name=name,
-            dtype=BITS[args.bits], tied_embeddings=not args.untied, seed=args.seed,
-            d_shared=args.d_shared, norm_topk=not args.no_renorm,
-        )
-    except BadModelFile as e:  # the config's own checks, phrased for options
-        raise BadOption(str(e).replace("config.json: ", "")) from None
-
-
-def command_line(args, c: ModelConfig) -> str:
-    """The command that rebuilds this model, every shape option spelled out (for CARD.md)."""
-    parts = [
-        "moerun", "synth", args.out, "--layers", c.n_layers, "--experts", c.n_experts, "--d-model", c.d_model,
-        "--d-expert", c.d_expert, "--top-k", c.top_k, "--heads", c.n_heads, "--kv-heads", c.n_kv_heads,
-        "--head-dim", c.head_dim, "--vocab", c.vocab_size, "--context", c.max_seq_len, "--bits", args.bits,
-        "--seed", args.seed, "--name", c.name,
-    ]
-    if not c.tied_embeddings:
-        parts.append("--untied")
-    if c.d_shared:
-        parts += ["--d-shared", c.d_shared]
-    if not c.norm_topk:
-        parts.append("--no-renorm")
-    return " ".join(shlex.quote(str(p)) for p in parts)
-
-
 def run(args) -> int:
-    config = config_from_args(args)
     progress = Progress(f"synth {args.out}")
     megabyte = float(1 << 20)
 
@@ -123,17 +60,20 @@ def run(args) -> int:
         progress.total = int(total / megabyte)
         progress.update(int(done / megabyte), "MiB written")
 
-    command = command_line(args, config)
     try:
-        doc = synthesize(args.out, config, seed=args.seed, progress=report, command=command, force=args.force)
+        result = synth(args.out, layers=args.layers, experts=args.experts, d_model=args.d_model, d_expert=args.d_expert,
+                       top_k=args.top_k, heads=args.heads, kv_heads=args.kv_heads, head_dim=args.head_dim,
+                       vocab=args.vocab, context=args.context, untied=args.untied, d_shared=args.d_shared,
+                       renorm=not args.no_renorm, bits=args.bits, seed=args.seed, name=args.name, force=args.force,
+                       progress=report)
     finally:
         progress.close()
     if args.json:
-        emit_json(doc)
+        emit_json(result.to_json())
         return 0
-    c = config
+    c = result.config
     out = sys.stdout
-    out.write(f"wrote {doc['model_dir']} in {doc['seconds']:.1f} s\n")
+    out.write(f"wrote {result.model_dir} in {result.seconds:.1f} s\n")
     out.write(f"note: {RANDOM_NOTE}; use it for sizes, page-in and budgets, not for policies\n")
     out.write(
         f"{c.n_layers} layers, d_model {c.d_model}, {c.n_heads} heads ({c.n_kv_heads} KV) of {c.head_dim}, "
@@ -141,11 +81,11 @@ def run(args) -> int:
     )
     if c.d_shared or not c.norm_topk:
         out.write(f"shared expert d_shared {c.d_shared}; norm_topk {str(c.norm_topk).lower()}\n")
-    share = doc["experts_total_bytes"] / doc["file_bytes"]
+    share = result.experts_total_bytes / result.file_bytes
     rows = [
-        ["weights file", fmt_bytes(doc["file_bytes"])],
-        [f"one expert ({c.dtype})", f"{doc['expert_bytes']:,} B"],
-        [f"all experts ({c.n_layers} x {c.n_experts})", f"{fmt_bytes(doc['experts_total_bytes'])} ({100 * share:.1f}% of the file)"],
+        ["weights file", fmt_bytes(result.file_bytes)],
+        [f"one expert ({c.dtype})", f"{result.expert_bytes:,} B"],
+        [f"all experts ({c.n_layers} x {c.n_experts})", f"{fmt_bytes(result.experts_total_bytes)} ({100 * share:.1f}% of the file)"],
     ]
     out.write(table(["", "size"], rows) + "\n")
     return 0

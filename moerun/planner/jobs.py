@@ -1,0 +1,262 @@
+"""``moerun.plan``: predicted decode tok/s for a memory budget and a link; the best split, policy and prefetch.
+
+The result's ``to_json()`` is what ``moerun plan --json`` prints; errors are ``moerun.errors``; progress
+goes to the callback given, never to a stream.
+"""
+
+from __future__ import annotations
+
+import math
+import os
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+from moerun import policies
+from moerun.errors import BadInput, BadOption, ImpossibleBudget
+from moerun.files.trace import Trace, read_trace
+from moerun.model.config import RANDOM_NOTE
+from moerun.planner.calibration import calibrate, costs_from_calibration, costs_from_shape, describe, load_shape, page_seconds
+from moerun.planner.search import PREFETCH_CANDIDATES, Space, check_decode_steps, check_trace_shape
+from moerun.planner.timeline import Costs, Prediction
+from moerun.runtime.budget import fixed_bytes, slot_bytes
+from moerun.runtime.engine import default_model_dir
+from moerun.sim.report import parse_policies
+from moerun.units import fmt_bytes, fmt_exact, parse_rate, parse_size
+
+DEFAULT_TOKENS = 2048
+
+
+@dataclass
+class PlanResult:
+    """The plan: costs, the settings searched at ``mem_cap`` with the recommended one, the curve of predicted
+    speed against cap, and the smallest cap for a target speed.  Fields without a value were not asked for."""
+
+    planned_for: str
+    costs: Costs
+    calibration: str  # where the compute times came from, and the calibration's age and spread
+    calibration_flags: list
+    calibration_age_s: float | None
+    calibration_spread: float | None
+    trace: dict
+    fixed_bytes: int
+    slot_bytes: int
+    min_cap_bytes: int
+    all_resident_cap_bytes: int
+    curve: dict  # {"policy": ..., "points": [{cap_bytes, slots_total, slots, prefetch, stall_share, tok_s, ...}]}
+    layers: int  # (not in the document: the model's layers, for the text)
+    note: str | None = None
+    mem_cap_bytes: int | None = None
+    slots_total: int | None = None
+    candidates: list[tuple[str, Prediction]] | None = None  # (split label, prediction), every setting searched
+    recommended_split: str | None = None
+    recommended: Prediction | None = None
+    split_comparison: dict | None = None
+    target: dict | None = None  # {"tok_s", "smallest_cap_bytes", "reachable", "best_tok_s"}
+
+    @property
+    def ok(self) -> bool:
+        """False when a target was given and no cap reaches it (the command's exit code 1)."""
+        return self.target is None or self.target["reachable"]
+
+    def to_json(self) -> dict:
+        doc: dict = {
+            "planned_for": self.planned_for,
+            "costs": self.costs.to_json(),
+            "calibration": self.calibration,
+            "calibration_flags": self.calibration_flags,
+            "calibration_age_s": self.calibration_age_s,
+            "calibration_spread": self.calibration_spread,
+            "trace": self.trace,
+            "fixed_bytes": self.fixed_bytes,
+            "slot_bytes": self.slot_bytes,
+            "min_cap_bytes": self.min_cap_bytes,
+            "all_resident_cap_bytes": self.all_resident_cap_bytes,
+        }
+        if self.note:
+            doc["note"] = self.note
+        if self.recommended is not None:
+            doc["mem_cap_bytes"] = self.mem_cap_bytes
+            doc["slots_total"] = self.slots_total
+            doc["candidates"] = [{"split": lab, **pr.to_json()} for lab, pr in self.candidates]
+            doc["recommended"] = {"split": self.recommended_split, **self.recommended.to_json()}
+            doc["split_comparison"] = self.split_comparison
+        doc["curve"] = self.curve
+        if self.target is not None:
+            doc["target"] = self.target
+        return doc
+
+
+def _record(model_dir: Path, tokens: int) -> Trace:
+    from moerun.model.tokenizer import read_text_file
+    from moerun.runtime.options import load
+    from moerun.sim.jobs import windows
+
+    held = model_dir / "heldout.txt"
+    if not held.exists():
+        raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --trace FILE")
+    with load(model_dir) as eng:
+        ids = eng.tokenizer.encode_array(read_text_file(held), tokens).tolist()
+        eng.start_trace()
+        for w in windows(ids, eng.config.max_seq_len, eng.config.bos_token_id):
+            eng.logits(w)
+        return eng.finish_trace(extra={"source": "record", "text": str(held), "prefill_tokens": 0})
+
+
+def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict) -> dict:
+    """Every input checked before any work: options, probe, shape, model, trace, cap (then calibration)."""
+    if link_speed is not None and probe is not None:
+        raise BadOption("--link-speed and --probe contradict each other (both say how fast a page-in is); give one")
+    if regime is not None and probe is None:
+        raise BadOption("--regime has no effect without --probe FILE (the regime picks its warm or cold figures); "
+                        "drop it or add --probe")
+    if max_tokens is not None and trace is not None:
+        raise BadOption("--max-tokens and --trace contradict each other (--max-tokens says how much to record when "
+                        "there is no --trace); give one")
+    if mem_cap is None and target is None:
+        raise BadOption("give --mem-cap SIZE (and/or --target TOK_S)")
+    if target is not None and not (target > 0 and math.isfinite(target)):
+        raise BadOption(f"--target must be a positive speed in tok/s, got {target}")
+    tokens = DEFAULT_TOKENS if max_tokens is None else max_tokens
+    if tokens < 16:
+        raise BadOption(f"--max-tokens must be at least 16, got {tokens}")
+    if evict is None:
+        names = policies.names(online_only=True)
+    else:
+        names = parse_policies(evict if isinstance(evict, str) else ",".join(evict))
+    for n in names:
+        if not getattr(policies.get(n), "online", True):
+            raise BadOption(f"policy {n!r} reads the future; plan considers online policies only")
+    rate = parse_rate(link_speed, "link speed") if link_speed else None
+    cap = parse_size(mem_cap, "memory cap") if mem_cap is not None else None
+    probe_doc = None
+    if probe:
+        from moerun.prober.saved import load_probe
+
+        probe_doc = load_probe(probe)
+    if shape:
+        if not trace:
+            raise BadOption("--shape needs --trace FILE: routing of that model, in the trace import format")
+        sh = load_shape(shape)
+        model = {"L": sh["layers"], "E": sh["experts"], "k": sh["top_k"], "expert_bytes": sh["expert_bytes"],
+                 "fixed": sh["dense_bytes"] + sh.get("kv_cache_bytes", 0) + sh.get("scratch_bytes", 0),
+                 "shape": sh, "what": f"shape {shape}", "note": None}
+    else:
+        from moerun.files.store import ModelStore
+
+        model_dir = Path(model_dir) if model_dir else default_model_dir()
+        store = ModelStore.open(model_dir)
+        c = store.config
+        model = {"L": c.n_layers, "E": c.n_experts, "k": c.top_k, "expert_bytes": store.expert_nbytes,
+                 "fixed": sum(fixed_bytes(c, store.dense_nbytes, store.codec.scratch_bytes())), "dir": model_dir,
+                 "what": f"model {model_dir}", "note": RANDOM_NOTE if c.extra.get("synthetic") else None}
+        store.close()
+        if not trace and not (model_dir / "heldout.txt").exists():
+            raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --trace FILE")
+    routing = None
+    if trace:
+        routing = read_trace(trace, n_experts=model["E"])
+        check_trace_shape(routing, model["L"], model["E"], model["k"], model["what"])
+        check_decode_steps(routing, trace)
+    slot = slot_bytes(model["expert_bytes"])
+    min_cap = model["fixed"] + model["L"] * model["k"] * slot
+    if cap is not None and cap < min_cap:
+        raise ImpossibleBudget(
+            f"memory cap {fmt_exact(cap)} is too small: fixed parts take {fmt_bytes(model['fixed'])} and each of {model['L']} "
+            f"layers needs {model['k']} slots of {fmt_bytes(slot)}; the smallest cap that works is {fmt_exact(min_cap)}"
+        )
+    page = page_seconds(model["expert_bytes"], rate, probe_doc, regime or "warm")
+    return {"names": names, "cap": cap, "tokens": tokens, "model": model, "trace": routing, "slot": slot, "page": page,
+            "emulated": rate is not None}
+
+
+def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int, str], None]) -> tuple[Space, str, dict | None]:
+    m = inp["model"]
+    page, page_src = inp["page"]
+    cal = None
+    if "shape" in m:
+        costs = costs_from_shape(m["shape"], page, page_src, inp["emulated"])
+        cal_note = "compute times from the shape file"
+    else:
+        cal = calibrate(m["dir"], recalibrate=recalibrate, progress=lambda what: step(0, f"calibrating: {what}"))
+        costs = costs_from_calibration(cal, page, page_src, inp["emulated"])
+        cal_note = describe(cal)
+    trace = inp["trace"]
+    if trace is None:
+        step(1, "recording a routing trace from the held-out text")
+        trace = _record(m["dir"], inp["tokens"])
+        check_decode_steps(trace, "the recorded trace")
+    step(2, "hit curves")
+    pf = [pc for pc in PREFETCH_CANDIDATES if pc[0] == 0 or trace.guesses is not None]
+    space = Space(trace, costs, m["L"], m["E"], m["k"], m["fixed"], inp["slot"], inp["names"], pf, bool(shared_pool))
+    return space, cal_note, cal
+
+
+def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None = None, *, target: float | None = None,
+         link_speed: float | str | None = None, probe: str | os.PathLike | None = None, regime: str | None = None,
+         trace: str | os.PathLike | None = None, max_tokens: int | None = None, shape: str | os.PathLike | None = None,
+         evict: str | Sequence[str] | None = None, shared_pool: bool = False, recalibrate: bool = False,
+         progress: Callable[[int, str], None] | None = None) -> PlanResult:
+    """Predict decode speed for ``mem_cap`` and recommend slots per layer, policy and prefetch (``moerun plan``).
+
+    Page-in costs come from ``link_speed`` (emulated link) or a saved ``probe`` file (its ``regime``, "warm"
+    or "cold"); routing from a ``trace`` file, or recorded now from the model's held-out text (its first
+    ``max_tokens`` tokens, default 2048); ``shape`` plans for a model described by a JSON shape file (with
+    ``trace``).  ``evict``: the policies to consider (default every online one); ``shared_pool`` also
+    considers one pool for all layers; ``target``: also find the smallest cap reaching this tok/s.
+    ``progress(step, what)`` as the work advances (steps 0 to 5).
+    """
+    def step(i: int, what: str) -> None:
+        if progress is not None:
+            progress(i, what)
+
+    inp = _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict)
+    space, cal_note, cal = _space(inp, shared_pool, recalibrate, step)
+    m = inp["model"]
+    result = PlanResult(
+        planned_for=m["what"],
+        costs=space.costs,
+        calibration=cal_note,
+        calibration_flags=cal["flags"] if cal else [],
+        calibration_age_s=time.time() - cal["created_unix"] if cal else None,
+        calibration_spread=cal["step_spread"] if cal else None,
+        trace={"tokens": inp["trace"].n_tokens if inp["trace"] is not None else space.trace.n_tokens,
+               "searched_tokens": space.trace.n_tokens, "source": space.trace.meta.get("source", "import"),
+               "file": str(trace) if isinstance(trace, os.PathLike) else trace},
+        fixed_bytes=space.fixed,
+        slot_bytes=space.slot,
+        min_cap_bytes=space.min_cap,
+        all_resident_cap_bytes=space.full_cap,
+        curve={},
+        layers=space.layers,
+        note=m["note"],
+    )
+    rec = None
+    if inp["cap"] is not None:
+        step(3, "settings for the cap")
+        total = space.slots_for(inp["cap"])
+        cands = space.candidates(total)
+        rec_label, rec = max(cands, key=lambda c: c[1].tok_s)
+        pick = {lab: next(pr for la, pr in cands if la == lab and pr.policy == rec.policy and pr.prefetch == 0)
+                for lab in ("even", "uneven")}
+        result.mem_cap_bytes = inp["cap"]
+        result.slots_total = total
+        result.candidates = cands
+        result.recommended_split = rec_label
+        result.recommended = rec
+        result.split_comparison = {"policy": rec.policy, **{
+            lab: {"slots": pr.slots, "per_layer_hit_rate": pr.per_layer_hit_rate, "hits": pr.accesses - pr.misses,
+                  "tok_s": pr.tok_s}
+            for lab, pr in pick.items()}}
+    step(4, "speed against cap")
+    curve_policy = rec.policy if rec else "lru"
+    curve_pf = [(rec.prefetch, rec.lookahead or 1)] if rec else space.prefetches
+    curve = space.curve(curve_policy, curve_pf)
+    result.curve = {"policy": curve_policy, "points": curve}
+    if target is not None:
+        step(5, "the smallest cap for the target")
+        smallest = space.smallest_cap(target, curve_policy, curve_pf, curve)
+        result.target = {"tok_s": target, "smallest_cap_bytes": smallest, "reachable": smallest is not None,
+                         "best_tok_s": curve[-1]["tok_s"]}
+    return result

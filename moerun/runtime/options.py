@@ -1,0 +1,240 @@
+"""``moerun.load`` and its settings, ``EngineOptions``: one frozen dataclass, checked in one place.
+
+``load(model_dir, mem_cap="14MiB", evict="lru", ...)`` (the keyword form, the public API the README
+shows) and ``load(model_dir, options=EngineOptions(mem_cap="14MiB", ...))`` are the same call: the
+keywords build an ``EngineOptions``; given both, the keywords replace those fields of ``options``.
+The settings are checked when the ``EngineOptions`` is made, before any file is opened, so a bad
+setting costs no file access and leaves nothing open.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import os
+from dataclasses import dataclass
+
+import numpy as np
+
+from moerun import policies
+from moerun.errors import BadOption
+from moerun.files.store import MECHANISMS, ModelStore
+from moerun.files.trace import Trace
+from moerun.model.tokenizer import Tokenizer
+from moerun.runtime.budget import Budget, plan_budget
+from moerun.runtime.engine import Engine, default_model_dir
+from moerun.runtime.memwatch import MemWatch
+from moerun.runtime.pool import ExpertPool
+from moerun.runtime.reader import STALL_TIMEOUT_S, Reader
+from moerun.runtime.sources import BareExperts, NoReuseExperts, WholeLayerExperts
+from moerun.units import parse_rate, parse_size
+
+BASELINES = {"whole-layer": WholeLayerExperts, "no-reuse": NoReuseExperts}
+
+
+def _whole(v) -> bool:
+    return isinstance(v, (int, np.integer)) and not isinstance(v, (bool, np.bool_))
+
+
+@dataclass(frozen=True)
+class EngineOptions:
+    """How ``load`` builds an engine: every setting but the model directory.
+
+    mem_cap: bytes (or "48MiB") for dense weights + KV cache + scratch + expert pool; None keeps
+    every expert resident (stored as bytes once checked).  slots: explicit slots per layer
+    (overrides split; stored as a tuple).  split: "even" per-layer quotas or "shared".
+    evict: the eviction policy's name (moerun.policies).  prefetch: guesses per layer (0 = off);
+    lookahead: layers ahead; prefetch_from: "attention" or "output", the point the guesses are made.
+    link_speed: bytes/s (or "2GB/s") of an emulated slower link (stored as bytes/s).
+    cold: drop the model file from the page cache once, first.  cold_reads: every expert read
+    comes from the device (each read range is dropped from the page cache right after it is copied).
+    mechanism: the page-in read ("pread" and the others of moerun.files.store.MECHANISMS).
+    bare: every expert resident in plain buffers, no pool (speed reference).
+    tokenizer: load the tokenizer (False for a weights-only directory).
+    baseline: "whole-layer" or "no-reuse", the naive offloading baselines of the benchmarks.
+    reader_timeout: seconds the prefetch reader may go without progress while the engine waits
+    before the engine stops it and reads every expert itself (docs/design/prefetch.md).
+    routing: a routing trace (path or moerun.files.trace.Trace): each layer takes its chosen
+    experts and weights from it instead of its router (moerun.model.routing).
+    """
+
+    mem_cap: int | str | None = None
+    evict: str = "lru"
+    prefetch: int = 0
+    lookahead: int = 1
+    prefetch_from: str = "attention"
+    slots: tuple[int, ...] | None = None
+    split: str = "even"
+    link_speed: float | str | None = None
+    cold: bool = False
+    mechanism: str = "pread"
+    bare: bool = False
+    tokenizer: bool = True
+    baseline: str | None = None
+    reader_timeout: float = STALL_TIMEOUT_S
+    routing: str | os.PathLike | Trace | None = None
+    cold_reads: bool = False
+
+    def __post_init__(self) -> None:
+        self._check_types()
+        self._check_values()
+        if self.slots is not None:
+            object.__setattr__(self, "slots", tuple(int(n) for n in self.slots))
+        if self.mem_cap is not None:
+            object.__setattr__(self, "mem_cap", parse_size(self.mem_cap, "memory cap"))
+        if self.link_speed is not None:
+            object.__setattr__(self, "link_speed", parse_rate(self.link_speed, "link speed"))
+
+    def _check_types(self) -> None:
+        """The API refuses a float lookahead or string slots with BadOption, as the CLI does."""
+        for name in ("evict", "split", "mechanism"):
+            v = getattr(self, name)
+            if not isinstance(v, str):
+                raise BadOption(f"{name} must be text, got {v!r:.40}")
+        if self.baseline is not None and not isinstance(self.baseline, str):
+            raise BadOption(f"baseline must be text or None, got {self.baseline!r:.40}")
+        for name in ("prefetch", "lookahead"):
+            v = getattr(self, name)
+            if not _whole(v):
+                raise BadOption(f"{name} must be a whole number, got {v!r:.40}")
+        slots = self.slots
+        if slots is not None and (isinstance(slots, (str, bytes)) or not hasattr(slots, "__iter__")
+                                  or not all(_whole(n) for n in slots)):
+            raise BadOption(f"slots must be a list of whole numbers (slots per layer), got {slots!r:.60}")
+        for name in ("cold", "bare", "tokenizer", "cold_reads"):
+            v = getattr(self, name)
+            if not isinstance(v, bool):
+                raise BadOption(f"{name} must be True or False, got {v!r:.40}")
+
+    def _check_values(self) -> None:
+        """Each setting against what it may be: one BadOption naming the first one out of range."""
+        policies.get(self.evict)
+        if self.prefetch < 0:
+            raise BadOption(f"--prefetch must be 0 (off) or a positive number of guesses, got {self.prefetch}")
+        if self.prefetch_from not in ("attention", "output"):
+            raise BadOption(f"prefetch point must be 'attention' or 'output', got {self.prefetch_from!r}")
+        if self.lookahead < 1:
+            raise BadOption(f"--lookahead must be at least 1, got {self.lookahead}")
+        if self.mechanism not in MECHANISMS:
+            raise BadOption(f"unknown page-in mechanism {self.mechanism!r}; known: {', '.join(MECHANISMS)}")
+        if self.split not in ("even", "shared"):
+            raise BadOption(f"split must be 'even' or 'shared', got {self.split!r}")
+        t = self.reader_timeout
+        if isinstance(t, bool) or not isinstance(t, (int, float)) or not t > 0:
+            raise BadOption(f"reader_timeout must be a positive number of seconds, got {t!r:.40}")
+        if self.slots is not None and self.split == "shared":
+            raise BadOption("slots (per-layer quotas) and split='shared' (one pool for every layer) contradict each other; give one")
+        if self.baseline is not None and self.baseline not in BASELINES:
+            raise BadOption(f"unknown baseline {self.baseline!r}; known: {', '.join(BASELINES)}")
+
+    def engine_dict(self) -> dict:
+        """The settings as ``Engine.options`` (and ``engine.stats["options"]``) show them."""
+        return {
+            "mem_cap": self.mem_cap,
+            "evict": self.evict,
+            "prefetch": self.prefetch,
+            "lookahead": self.lookahead,
+            "prefetch_from": self.prefetch_from,
+            "link_speed": self.link_speed,
+            "cold": self.cold,
+            "cold_reads": self.cold_reads,
+            "mechanism": self.mechanism,
+            "bare": self.bare,
+            "baseline": self.baseline,
+            "routing": None,
+        }
+
+
+def parse_slot_list(text: str | None) -> list[int] | None:
+    """``"3,4,3"`` (slots per layer, as --slots gives them) -> [3, 4, 3]; None stays None."""
+    if text is None:
+        return None
+    try:
+        slots = [int(s) for s in text.split(",") if s.strip()]
+    except ValueError:
+        raise BadOption(f"--slots takes whole numbers separated by commas, got {text!r}") from None
+    if not slots:
+        raise BadOption("--slots is empty")
+    return slots
+
+
+def check_against_config(prefetch: int, lookahead: int | None, config) -> None:
+    """The prefetch settings only the model can refute: more guesses than experts, guesses past the last layer."""
+    prefetch = prefetch or 0
+    if prefetch > config.n_experts:
+        raise BadOption(f"--prefetch {prefetch} is more than the model's {config.n_experts} experts per layer")
+    lookahead = lookahead or 1
+    if prefetch and lookahead >= config.n_layers:
+        most = config.n_layers - 1
+        raise BadOption(
+            f"--lookahead {lookahead} reaches past the last layer: the model has {config.n_layers} layer(s), "
+            + (f"so at most {most}" if most else "so there is no later layer to prefetch for")
+        )
+
+
+_FIELDS = frozenset(f.name for f in dataclasses.fields(EngineOptions))
+
+
+def load(model_dir: str | os.PathLike | None = None, options: EngineOptions | None = None, **settings) -> Engine:
+    """Open a model and return an engine (the public entry point, docs/guide/api.md).
+
+    ``settings`` are the fields of ``EngineOptions`` given as keywords (``mem_cap="14MiB"``,
+    ``evict="lru"``, ``prefetch=2``, ...); with ``options`` as well, they replace those fields of it.
+    """
+    if model_dir is not None and not isinstance(model_dir, (str, os.PathLike)):
+        raise BadOption(f"model_dir must be a path, got {type(model_dir).__name__}")
+    unknown = sorted(set(settings) - _FIELDS)
+    if unknown:
+        raise TypeError(f"load() got an unexpected keyword argument {unknown[0]!r}")
+    if options is None:
+        options = EngineOptions(**settings)
+    elif not isinstance(options, EngineOptions):
+        raise BadOption(f"options must be an EngineOptions (settings go by keyword), got {options!r:.40}")
+    elif settings:
+        options = dataclasses.replace(options, **settings)
+    return open_engine(model_dir, options)
+
+
+def open_engine(model_dir, o: EngineOptions) -> Engine:
+    """The engine of checked options: sizes the budget, allocates the pool, starts the reader if asked."""
+    watch = MemWatch()
+    store = ModelStore.open(model_dir if model_dir is not None else default_model_dir())
+    reader = None
+    try:
+        c = store.config
+        tok = Tokenizer.load(store.model_dir, c.vocab_size, c.bos_token_id) if o.tokenizer else None
+        if o.cold or o.cold_reads:
+            store.drop_cache()
+        store.cold_reads = o.cold_reads
+        store.set_mechanism(o.mechanism)
+        chosen_split = list(o.slots) if o.slots is not None else o.split
+        budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, o.mem_cap, chosen_split, store.codec.scratch_bytes())
+        store.link_rate = o.link_speed
+        if o.prefetch > 0 and not o.bare and o.baseline is None:  # guesses are read by the reader process
+            reader = Reader(store, budget.n_slots, budget.slot, o.reader_timeout)
+        experts = _expert_source(store, budget, o.evict, reader, o.bare, o.baseline, o.mem_cap is None)
+        engine = Engine(store, tok, budget, experts, reader, watch, o.engine_dict())
+        if o.routing is not None:
+            engine.replay_routing(o.routing)
+        return engine
+    except BaseException:
+        if reader is not None:
+            reader.close()
+        store.close()
+        raise
+
+
+def _expert_source(store: ModelStore, budget: Budget, evict: str, reader: Reader | None, bare: bool,
+                   baseline: str | None, all_resident: bool):
+    """Where the model gets its experts: the pool (the engine proper), or a reference without one.
+
+    ``bare`` keeps every expert in plain buffers (the speed reference); a ``baseline`` is one of the naive
+    offloading schemes the benchmarks compare against.  Without a cap the pool is filled up front.
+    """
+    if bare:
+        return BareExperts(store)
+    if baseline is not None:
+        return BASELINES[baseline](store)
+    pool = ExpertPool(store, budget, evict, reader)
+    if all_resident:
+        pool.preload_all()
+    return pool
