@@ -416,6 +416,13 @@ class Checkpoint:
                 self._spans.append(None)
                 continue
             fused = names.fused_gate_up(layer) in self.tensors or names.fused_down(layer) in self.tensors
+            if fused:
+                prefix = f"model.layers.{layer}.mlp.experts."
+                loose = next((n for n in self.tensors if n.startswith(prefix) and n[len(prefix):].split(".")[0].isdigit()), None)
+                if loose is not None:
+                    raise BadModelFile(
+                        f"{self._path_of(loose)}: layer {layer} holds its experts in both layouts, fused and per expert ({loose!r})"
+                    )
             row, used_here = (self._fused_layer if fused else self._per_expert_layer)(layer)
             layouts.append("fused" if fused else "per_expert")
             used.update(used_here)
@@ -425,7 +432,7 @@ class Checkpoint:
         if stray:
             name = _natural(stray)[0]
             more = f" (and {len(stray) - 1} more)" if len(stray) > 1 else ""
-            raise BadModelFile(f"{self._path_of(name)}: tensor {name!r} is not part of a {c.model_type} model with this config.json{more}")
+            raise BadModelFile(f"{self._path_of(name)}: tensor {name!r} is not part of the {c.model_type} model config.json describes{more}")
 
     def _path_of(self, name: str) -> Path:
         return self.files[self.tensors[name].file]
@@ -434,7 +441,7 @@ class Checkpoint:
         loc = self.tensors.get(name)
         if loc is None:
             where = self.files[0] if len(self.files) == 1 else self.directory
-            raise BadModelFile(f"{where}: missing tensor {name!r} (config.json implies {self.config.model_type} {list(shape)})")
+            raise BadModelFile(f"{where}: missing tensor {name!r} (config.json implies a {self.config.model_type} model with it, shape {list(shape)})")
         if loc.info.shape != shape:
             raise BadModelFile(
                 f"{self._path_of(name)}: tensor {name!r} has shape {list(loc.info.shape)}, config.json implies {list(shape)}"
