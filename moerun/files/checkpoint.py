@@ -172,6 +172,15 @@ class ExpertSpans:
     def reads_in(self, file: int) -> tuple[Read, ...]:
         return tuple(r for r in self.reads if r.file == file)
 
+    def views(self, dst) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``(gate, up, down)`` as views of the destination ``dst`` (stored dtype, [out, in]), without reading:
+        what a pool binds to a slot once, to find the parts after each ``read_expert`` into it."""
+        view = memoryview(dst).cast("B")
+        if len(view) < self.slot_nbytes:
+            raise ValueError(f"the destination must hold at least {self.slot_nbytes} bytes, got {len(view)}")
+        g, u, d = (stored_view(view, p.dtype, p.shape, o) for p, o in zip(self.parts, self.dst_offsets))
+        return g, u, d
+
 
 def _align(n: int) -> int:
     return -(-n // SLOT_ALIGN) * SLOT_ALIGN
@@ -234,7 +243,7 @@ def read_expert(fds: Sequence[int], spans: ExpertSpans, dst, paths: Sequence | N
             raise PageInError(
                 f"{where}: {why} while reading expert {spans.expert} of layer {spans.layer} (file changed while open?)"
             ) from None
-    return tuple(stored_view(view, p.dtype, p.shape, o) for p, o in zip(spans.parts, spans.dst_offsets))
+    return spans.views(view)
 
 
 # ---------------------------------------------------------------------------- sizes
@@ -321,6 +330,7 @@ class Checkpoint:
         self.eos_ids: tuple[int, ...] = ()
         self.tokenizer_path: Path | None = None
         self._files: list = []  # open file objects, one per shard
+        self._fds: tuple[int, ...] = ()
         self._maps: dict[int, mmap.mmap] = {}
         self._spans: list[list[ExpertSpans] | None] = []
 
@@ -386,6 +396,7 @@ class Checkpoint:
             files.append(path)
             headers.append(header)
         self.files, self.headers = tuple(files), tuple(headers)
+        self._fds = tuple(f.fileno() for f in self._files)
         return weight_map
 
     def _check_tensors(self, weight_map: dict[str, str] | None) -> None:
@@ -510,11 +521,13 @@ class Checkpoint:
     @property
     def fds(self) -> tuple[int, ...]:
         """The open descriptor of each shard (valid until ``close``)."""
-        return tuple(f.fileno() for f in self._files)
+        return self._fds
 
     def page_in(self, layer: int, expert: int, dst):
         """Read one expert into ``dst`` (at least ``sizes().expert_slot`` bytes); ``(gate, up, down)`` views as stored."""
-        return read_expert(self.fds, self.expert_spans(layer, expert), dst, self.files)
+        if not self._fds:
+            raise ValueError("the checkpoint is closed")
+        return read_expert(self._fds, self.expert_spans(layer, expert), dst, self.files)
 
     # ---------------------------------------------------------------- dense tensors
     def mapping(self, file: int) -> mmap.mmap:
@@ -574,6 +587,7 @@ class Checkpoint:
             with contextlib.suppress(OSError):
                 f.close()
         self._files.clear()
+        self._fds = ()
 
     def __enter__(self) -> Checkpoint:
         return self

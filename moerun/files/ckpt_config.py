@@ -8,7 +8,7 @@ library's default for that type, except the fields that give tensor shapes: thos
 a guessed shape is a silent wrong answer.
 
 Refused, in one line naming the field: any other model type, a rope type other than ``default``, a sliding
-window in use, a quantized checkpoint (``quantization_config``), an activation other than ``silu``, and
+window in use (or ``layer_types`` naming anything but full attention), a quantized checkpoint (``quantization_config``), an activation other than ``silu``, and
 attention biases where the type's math has none.  Nothing is guessed or skipped.
 
 Also here: telling an open checkpoint from a moerun model directory, and the BOS/EOS token ids.
@@ -276,6 +276,13 @@ def parse_checkpoint_config(raw: object, where: str = "config.json") -> Checkpoi
                     f"{where}: use_sliding_window is true with sliding_window {window} < max_position_embeddings {max_pos}: "
                     "sliding-window attention is not supported"
                 )
+    kinds = raw.get("layer_types")
+    if kinds is not None:  # the 5.x library spells per-layer attention kinds out (sliding windows among them)
+        if not isinstance(kinds, list) or len(kinds) != layers:
+            raise BadModelFile(f"{where}: layer_types must be a list of {layers} attention kinds, got {kinds!r:.60}")
+        other = next((k for k in kinds if k != "full_attention"), None)
+        if other is not None:
+            raise BadModelFile(f"{where}: layer_types names {other!r:.40} layers: only 'full_attention' is supported")
     implied = layers * (3 * experts + 24)
     if implied > MAX_TENSORS:
         raise BadModelFile(f"{where}: {layers} layers x {experts} experts imply {implied:,} tensors, more than any plausible model")

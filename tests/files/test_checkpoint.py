@@ -1,10 +1,12 @@
 """moerun.files.checkpoint: open checkpoints read in place; span maps, page-in, dtypes and sizes against the tensors written.
 
 The checkpoints are built here, tiny, for the three supported types, per-expert and fused, in one file and in
-shards where an expert's three matrices sit in different files, with 4.x and 5.x config spellings.  F16 and F32
-files are written by the safetensors library (``safetensors.numpy.save_file``, version 0.8.0); numpy has no
-bfloat16, so BF16 files are written here byte by byte following the safetensors format specification (8-byte
-little-endian header length, JSON header with dtype tag "BF16", shape and data_offsets, then the data).
+shards where an expert's three matrices sit in different files, with 4.x and 5.x config spellings.  Files are
+written by the safetensors library (version 0.8.0): F16 and F32 with ``safetensors.numpy.save_file``, BF16 (numpy
+has no bfloat16) from uint16 bits with ``safetensors.serialize_file`` and a ``TensorSpec`` of dtype "bfloat16".
+Files whose tensors must lie in a chosen order (the library orders them itself) are written here byte by byte
+following the safetensors format specification (8-byte little-endian header length, JSON header with dtype tag
+"BF16"/"F16"/"F32", shape and data_offsets, then the data); a test checks the library reads those identically.
 The expected tensor names are written out by hand below, from /work/shared/OPEN-CHECKPOINTS.md, not taken
 from the module under test.  The builder is imported by the other test_checkpoint_* files.
 """
@@ -19,6 +21,7 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+import safetensors
 from safetensors.numpy import save_file
 
 from moerun.errors import PageInError
@@ -205,8 +208,12 @@ def build(
     files = ["model.safetensors"] if shards == 1 else [f"model-{i + 1:05d}-of-{shards:05d}.safetensors" for i in range(shards)]
     for fname, group in zip(files, groups):
         group = order(group) if order else group
-        if tag == "BF16" or order is not None:
+        if order is not None or (tag == "BF16" and not hasattr(safetensors, "TensorSpec")):
             write_safetensors(directory / fname, {n: (tag, stored(values[n], tag)) for n in group})
+        elif tag == "BF16":
+            keep = {n: stored(values[n], tag) for n in group}  # alive while the library reads them
+            specs = {n: safetensors.TensorSpec(dtype="bfloat16", shape=list(a.shape), data_ptr=a.ctypes.data, data_len=a.nbytes) for n, a in keep.items()}
+            safetensors.serialize_file(specs, str(directory / fname), metadata={"format": "pt"})
         else:
             save_file({n: stored(values[n], tag) for n in group}, str(directory / fname), metadata={"format": "pt"})
     if shards > 1:
@@ -221,6 +228,36 @@ def build(
 
 def bits(a: np.ndarray) -> bytes:
     return np.ascontiguousarray(a).tobytes()
+
+
+def test_files_written_by_hand_here_read_back_identically_in_the_safetensors_library(tmp_path):
+    rng = np.random.default_rng(5)
+    arrays = {
+        "z": ("BF16", rng.integers(0, 1 << 16, (3, 5), dtype=np.uint16).astype("<u2")),
+        "a": ("F16", rng.standard_normal((4,)).astype("<f2")),
+        "m": ("F32", rng.standard_normal((2, 2, 2)).astype("<f4")),
+    }
+    write_safetensors(tmp_path / "x.safetensors", arrays)
+    lib = dict(safetensors.deserialize((tmp_path / "x.safetensors").read_bytes()))  # reference reader: safetensors 0.8.0
+    assert set(lib) == set(arrays)
+    for name, (tag, a) in arrays.items():
+        assert lib[name]["dtype"] == tag and list(lib[name]["shape"]) == list(a.shape)
+        assert bytes(lib[name]["data"]) == bits(a)
+
+
+@pytest.mark.parametrize("layout", ["per_expert", "fused"])
+def test_every_tensor_read_in_place_equals_the_safetensors_librarys_bytes(tmp_path, layout):
+    b = build(tmp_path / "ck", "qwen2_moe", layout, "BF16", shards=2)
+    with Checkpoint.open(b.dir) as ck:
+        seen = set()
+        for path in ck.files:
+            for name, t in safetensors.deserialize(path.read_bytes()):  # reference reader: safetensors 0.8.0
+                v = ck.tensor(name)
+                assert ck.files[ck.tensors[name].file] == path
+                assert t["dtype"] == ck.tensors[name].info.dtype and list(t["shape"]) == list(v.shape)
+                assert bytes(t["data"]) == bits(v)
+                seen.add(name)
+        assert seen == set(ck.tensors)
 
 
 # ---------------------------------------------------------------------------- names and shapes
@@ -425,6 +462,20 @@ def test_read_expert_works_on_the_callers_own_descriptors_and_buffer(tmp_path):
     finally:
         for fd in fds:
             os.close(fd)
+
+
+def test_a_slot_bound_once_shows_each_expert_read_into_it_after(tmp_path):
+    b = build(tmp_path / "ck", "qwen3_moe", "fused", "F16", shards=2)
+    with Checkpoint.open(b.dir) as ck:
+        slot = np.zeros(ck.sizes().expert_slot, np.uint8)
+        bound = ck.expert_spans(0, 0).views(slot)  # every expert has the same destination layout
+        for (layer, e), want in b.experts.items():
+            assert ck.expert_spans(layer, e).dst_offsets == ck.expert_spans(0, 0).dst_offsets
+            ck.page_in(layer, e, slot)
+            for arr, part in zip(bound, ("gate", "up", "down")):
+                assert bits(arr) == bits(stored(want[part], "F16"))
+    with pytest.raises(ValueError, match="closed"):
+        ck.page_in(0, 0, slot)
 
 
 def test_expert_spans_of_a_dense_layer_or_out_of_range_are_refused(tmp_path):

@@ -148,6 +148,13 @@ def test_a_sliding_window_in_use_is_refused_and_one_not_in_use_is_read(mt):
         parse_checkpoint_config(raw_config(mt, max_position_embeddings=128, **over))
 
 
+def test_layer_types_naming_anything_but_full_attention_are_refused():
+    parse_checkpoint_config(raw_config("qwen3_moe", "5x", layer_types=["full_attention"] * 3))
+    refused(raw_config("qwen3_moe", "5x", layer_types=["full_attention", "sliding_attention", "full_attention"]),
+            "layer_types", "'sliding_attention'")
+    refused(raw_config("qwen2_moe", "5x", layer_types=["full_attention"]), "layer_types", "list of 3")
+
+
 def test_a_quantized_checkpoint_is_refused_naming_quantization_config():
     refused(raw_config("qwen3_moe", quantization_config={"quant_method": "fp8", "weight_block_size": [128, 128]}),
             "quantization_config", "fp8", "quantized")
