@@ -288,7 +288,12 @@ def _plain_name(directory: Path, name: object, where: Path) -> str:
     ``directory``, reached by no link that leads out of it."""
     if not isinstance(name, str) or not name:
         raise BadModelFile(f"{where}: weight_map names file {name!r:.60}; expected a plain file name")
-    if "/" in name or "\\" in name or "\0" in name or name in (".", "..") or os.path.isabs(name):
+    try:
+        name.encode("utf-8")
+        printable = not any(ord(ch) < 32 or ord(ch) == 127 for ch in name)
+    except UnicodeEncodeError:  # a lone surrogate spelled with a JSON escape
+        printable = False
+    if not printable or "/" in name or "\\" in name or name in (".", "..") or os.path.isabs(name):
         raise BadModelFile(f"{where}: weight_map names {name!r:.80}; only plain file names inside the checkpoint directory are allowed")
     path = directory / name
     try:

@@ -66,7 +66,7 @@ def test_a_missing_shard_is_refused_naming_it_and_the_index(sharded):
 
 
 @pytest.mark.parametrize("name", ["../model-00002-of-00003.safetensors", "sub/model.safetensors", "/etc/passwd", "..", ".",
-                                  "", "a\\b.safetensors", 7, None])
+                                  "", "a\\b.safetensors", "x\n.safetensors", "\0", "\ud800.safetensors", 7, None])
 def test_an_index_naming_anything_but_a_plain_file_name_inside_the_directory_is_refused(sharded, name):
     doc = index(sharded)
     first = sorted(doc["weight_map"])[0]
