@@ -261,8 +261,6 @@ def parse_checkpoint_config(raw: object, where: str = "config.json") -> Checkpoi
         qkv_bias = False
     if mt != "qwen2_moe" and _bool(raw, "attention_bias", where, False):
         raise BadModelFile(f"{where}: attention_bias true is not supported for {mt} (its published checkpoints have none)")
-    if mt == "qwen2_moe" and raw.get("attention_bias") is not None and "qkv_bias" not in raw:
-        qkv_bias = _bool(raw, "attention_bias", where, True)
     clip = None
     if mt == "olmoe" and raw.get("clip_qkv") is not None:
         clip = _pos_float(raw, "clip_qkv", where, None)

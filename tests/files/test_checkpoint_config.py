@@ -110,6 +110,54 @@ def test_rope_theta_is_read_from_the_top_level_or_rope_parameters():
     assert parse_checkpoint_config(raw_config("qwen3_moe", rope_scaling={"rope_type": "default"})).rope_theta == 1e6
 
 
+# Configs shaped like the published ones (4.x files: every field the library writes, most of them ignored here)
+PUBLISHED = {
+    "qwen3_moe": {
+        "architectures": ["Qwen3MoeForCausalLM"], "attention_bias": False, "attention_dropout": 0.0, "bos_token_id": 151643,
+        "decoder_sparse_step": 1, "eos_token_id": 151645, "head_dim": 128, "hidden_act": "silu", "hidden_size": 2048,
+        "initializer_range": 0.02, "intermediate_size": 6144, "max_position_embeddings": 40960, "max_window_layers": 48,
+        "mlp_only_layers": [], "model_type": "qwen3_moe", "moe_intermediate_size": 768, "norm_topk_prob": True,
+        "num_attention_heads": 32, "num_experts": 128, "num_experts_per_tok": 8, "num_hidden_layers": 48,
+        "num_key_value_heads": 4, "output_router_logits": False, "rms_norm_eps": 1e-06, "rope_scaling": None,
+        "rope_theta": 1000000.0, "router_aux_loss_coef": 0.001, "sliding_window": None, "tie_word_embeddings": False,
+        "torch_dtype": "bfloat16", "transformers_version": "4.51.0", "use_cache": True, "use_sliding_window": False,
+        "vocab_size": 151936,
+    },
+    "qwen2_moe": {
+        "architectures": ["Qwen2MoeForCausalLM"], "attention_dropout": 0.0, "bos_token_id": 151643, "decoder_sparse_step": 1,
+        "eos_token_id": 151643, "hidden_act": "silu", "hidden_size": 2048, "initializer_range": 0.02, "intermediate_size": 5632,
+        "max_position_embeddings": 8192, "max_window_layers": 21, "model_type": "qwen2_moe", "moe_intermediate_size": 1408,
+        "norm_topk_prob": False, "num_attention_heads": 16, "num_experts": 60, "num_experts_per_tok": 4,
+        "num_hidden_layers": 24, "num_key_value_heads": 16, "output_router_logits": False, "rms_norm_eps": 1e-06,
+        "rope_theta": 1000000.0, "router_aux_loss_coef": 0.001, "shared_expert_intermediate_size": 5632,
+        "sliding_window": 32768, "tie_word_embeddings": False, "torch_dtype": "bfloat16", "use_cache": True,
+        "use_sliding_window": False, "vocab_size": 151936,
+    },
+    "olmoe": {
+        "architectures": ["OlmoeForCausalLM"], "attention_bias": False, "attention_dropout": 0.0, "bos_token_id": None,
+        "clip_qkv": None, "eos_token_id": 50279, "hidden_act": "silu", "hidden_size": 2048, "initializer_range": 0.02,
+        "intermediate_size": 1024, "max_position_embeddings": 4096, "model_type": "olmoe", "norm_topk_prob": False,
+        "num_attention_heads": 16, "num_experts": 64, "num_experts_per_tok": 8, "num_hidden_layers": 16,
+        "num_key_value_heads": 16, "output_router_logits": False, "pad_token_id": 1, "rms_norm_eps": 1e-05,
+        "rope_scaling": None, "rope_theta": 10000.0, "router_aux_loss_coef": 0.01, "tie_word_embeddings": False,
+        "torch_dtype": "bfloat16", "use_cache": True, "vocab_size": 50304,
+    },
+}
+
+
+def test_configs_shaped_like_the_published_ones_are_read_with_the_pages_figures():
+    q3 = parse_checkpoint_config(PUBLISHED["qwen3_moe"])
+    assert (q3.num_layers, q3.hidden_size, q3.num_experts, q3.expert_width, q3.top_k) == (48, 2048, 128, 768, 8)
+    assert (q3.num_heads, q3.num_kv_heads, q3.head_dim, q3.norm_topk_prob, q3.qk_norm) == (32, 4, 128, True, "per_head")
+    q2 = parse_checkpoint_config(PUBLISHED["qwen2_moe"])
+    assert (q2.num_layers, q2.num_experts, q2.expert_width, q2.top_k, q2.shared_expert_width) == (24, 60, 1408, 4, 5632)
+    assert q2.qkv_bias and q2.head_dim == 128 and q2.moe_layers == tuple(range(24))
+    ol = parse_checkpoint_config(PUBLISHED["olmoe"])
+    assert (ol.num_layers, ol.num_experts, ol.expert_width, ol.top_k, ol.rms_norm_eps) == (16, 64, 1024, 8, 1e-5)
+    assert ol.qk_norm == "full" and ol.clip_qkv is None and ol.dense_width == 0
+    assert {c.dtype for c in (q3, q2, ol)} == {"BF16"}
+
+
 # ---------------------------------------------------------------------------- refusals, one line each
 
 
