@@ -392,7 +392,8 @@ class Checkpoint:
         files, headers = [], []
         for name in file_names:
             path = d / name
-            f = open_regular(path, BadModelFile, "safetensors shard", missing=f"{path}: missing (named by {INDEX_FILE})")
+            named = f" (named by {INDEX_FILE})" if weight_map is not None else " (a link to nothing?)"
+            f = open_regular(path, BadModelFile, "safetensors shard", missing=f"{path}: missing{named}")
             self._files.append(f)
             header = read_header(path)
             st, now = os.fstat(f.fileno()), os.stat(path)

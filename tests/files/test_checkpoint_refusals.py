@@ -92,6 +92,13 @@ def test_a_shard_that_is_a_link_inside_the_directory_is_read(sharded):
         assert len(ck.files) == 3
 
 
+def test_a_weights_file_that_is_a_dangling_link_is_refused_as_missing(single):
+    os.unlink(single / "model.safetensors")
+    os.symlink("gone.safetensors", single / "model.safetensors")
+    msg = refused(single, str(single / "model.safetensors"), "missing")
+    assert INDEX_FILE not in msg
+
+
 def test_a_shard_that_is_a_directory_or_a_fifo_is_refused(sharded):
     os.unlink(sharded / SHARDS[0])
     os.mkdir(sharded / SHARDS[0])
