@@ -12,8 +12,9 @@ Any problem is one ``BadModelFile`` line naming the file and the field.
 The checkpoint is never converted or copied.  Shards stay open (one descriptor each) and are memory-mapped
 read-only on demand (``tensor`` gives a view of a tensor as stored).  Routed experts are described by a
 span map built from the headers alone: for each (layer, expert) the byte spans of its gate, up and down
-matrices, which may lie in several shard files, grouped into reads (one ``os.preadv`` per run of adjacent
-spans in one file, in offset order).  ``read_expert`` performs exactly those reads into a caller's buffer and
+matrices, which may lie in several shard files, grouped into reads (one ``os.preadv`` per run of spans in one
+file, in offset order; gaps of up to GAP_LIMIT bytes inside a run are read and dropped).  A per-expert file has
+one run per file; a fused layer two (the expert's gate and up rows, and its down rows, lie a whole tensor apart).  ``read_expert`` performs exactly those reads into a caller's buffer and
 returns the three matrices as views of it, [out, in] as stored.  ``widen_into`` turns a stored part (BF16,
 F16, F32) into float32 in a caller's scratch without allocating.
 """
@@ -49,6 +50,8 @@ __all__ = [
     "Read",
     "Span",
     "SINGLE_FILE",
+    "DISCARD",
+    "GAP_LIMIT",
     "INDEX_FILE",
     "STORED_DTYPES",
     "decode_bf16",
@@ -64,6 +67,11 @@ INDEX_FILE = "model.safetensors.index.json"
 TOKENIZER_FILE = "tokenizer.json"
 INDEX_LIMIT = 64 << 20  # bytes of an index (a 100k-tensor index is a few MB)
 SLOT_ALIGN = 64  # each part of an expert starts at a multiple of this in a page-in destination
+# Parts of one expert in one file separated by at most this many bytes (padding, a small tensor between them) are
+# fetched by one preadv that reads the gap into a throwaway buffer; farther apart, each run gets its own call.
+GAP_LIMIT = 4096
+DISCARD = -1  # the destination offset of a gap's piece in a Read
+_DISCARD_BUF = memoryview(bytearray(GAP_LIMIT))  # gaps land here; nobody reads it, so concurrent reads may share it
 # The dtypes a checkpoint's tensors may have, and their little-endian numpy types as stored (BF16 as its raw bits).
 STORED_DTYPES = {"BF16": np.dtype("<u2"), "F16": np.dtype("<f2"), "F32": np.dtype("<f4")}
 
@@ -124,7 +132,9 @@ class Span:
 @dataclass(frozen=True)
 class Read:
     """One ``os.preadv``: ``nbytes`` from byte ``offset`` of shard ``file``, scattered as ``pieces``
-    ((destination offset, nbytes), in file order) into the page-in destination."""
+    ((destination offset, nbytes), in file order) into the page-in destination.  A piece whose destination
+    offset is ``DISCARD`` is a small gap between two parts (at most ``GAP_LIMIT`` bytes), read and dropped so
+    that the parts around it take one call."""
 
     file: int
     offset: int
@@ -186,8 +196,10 @@ def _align(n: int) -> int:
     return -(-n // SLOT_ALIGN) * SLOT_ALIGN
 
 
-def make_expert_spans(layer: int, expert: int, parts: Sequence[Span]) -> ExpertSpans:
-    """Destination offsets (gate, up, down, each aligned) and the reads for an expert's three spans."""
+def make_expert_spans(layer: int, expert: int, parts: Sequence[Span], gap_limit: int = GAP_LIMIT) -> ExpertSpans:
+    """Destination offsets (gate, up, down, each aligned) and the reads for an expert's three spans: one read per
+    run of parts in one file whose gaps are at most ``gap_limit`` bytes (at most GAP_LIMIT)."""
+    gap_limit = min(gap_limit, GAP_LIMIT)
     dst = []
     pos = 0
     for p in parts:
@@ -200,8 +212,11 @@ def make_expert_spans(layer: int, expert: int, parts: Sequence[Span]) -> ExpertS
         p = parts[i]
         if p.nbytes == 0:
             continue
-        if cur is not None and cur[0] == p.file and cur[1] + cur[2] == p.offset:
-            cur[2] += p.nbytes
+        if cur is not None and cur[0] == p.file and 0 <= p.offset - (cur[1] + cur[2]) <= gap_limit:
+            gap = p.offset - (cur[1] + cur[2])
+            if gap:
+                cur[3].append((DISCARD, gap))
+            cur[2] += gap + p.nbytes
             cur[3].append((dst[i], p.nbytes))
         else:
             if cur is not None:
@@ -236,7 +251,7 @@ def read_expert(fds: Sequence[int], spans: ExpertSpans, dst, paths: Sequence | N
         raise ValueError(f"the destination must be a writable buffer of at least {spans.slot_nbytes} bytes, got {len(view)}")
     for r in spans.reads:
         try:
-            _preadv_exact(fds[r.file], [view[o : o + n] for o, n in r.pieces], r.offset)
+            _preadv_exact(fds[r.file], [view[o : o + n] if o != DISCARD else _DISCARD_BUF[:n] for o, n in r.pieces], r.offset)
         except (EOFError, OSError) as e:
             where = paths[r.file] if paths is not None else f"shard {r.file}"
             why = "file ended" if isinstance(e, EOFError) else f"read failed ({e.strerror or e})"

@@ -22,6 +22,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import safetensors
+from conftest import read_raw, write_raw
 from safetensors.numpy import save_file
 
 from moerun.errors import PageInError
@@ -327,7 +328,7 @@ def test_experts_straddling_three_shards_have_spans_in_several_files_and_reads_i
                     assert r.nbytes == sum(n for _, n in r.pieces)
                     assert sp.reads_in(r.file)[0].file == r.file
                 # every part is read exactly once, into its own destination
-                covered = sorted(p for r in sp.reads for p in r.pieces)
+                covered = sorted(p for r in sp.reads for p in r.pieces if p[0] != ckmod.DISCARD)
                 assert covered == sorted(zip(sp.dst_offsets, (p.nbytes for p in sp.parts)))
                 for p in sp.parts:
                     info = ck.tensors[p.tensor].info
@@ -363,7 +364,7 @@ def test_a_library_written_per_expert_file_pages_each_expert_in_with_one_preadv(
         assert all(sizes == [H * I_EXP * 4] * 3 for _, _, sizes in calls)
 
 
-def test_a_fused_layer_reads_gate_and_up_in_one_preadv_and_down_in_another(tmp_path, monkeypatch):
+def test_a_fused_expert_is_one_block_of_each_fused_tensor_with_the_gate_rows_first(tmp_path, monkeypatch):
     b = build(tmp_path / "ck", "qwen2_moe", "fused", "BF16")
     with Checkpoint.open(b.dir) as ck:
         gu = ck.tensors["model.layers.1.mlp.experts.gate_up_proj"].info
@@ -373,11 +374,60 @@ def test_a_fused_layer_reads_gate_and_up_in_one_preadv_and_down_in_another(tmp_p
             assert sp.gate.offset == gu.start + e * 2 * I_EXP * H * 2  # expert e: one contiguous block of the tensor
             assert sp.up.offset == sp.gate.offset + I_EXP * H * 2  # the gate's rows first
             assert sp.down.offset == dn.start + e * H * I_EXP * 2
-            assert [len(r.pieces) for r in sp.reads] in ([2, 1], [1, 2])
+            assert sp.gate.tensor == sp.up.tensor == gu.name and sp.down.tensor == dn.name
         slot = np.zeros(ck.sizes().expert_slot, np.uint8)
         calls = _count_preadv(monkeypatch)
-        ck.page_in(2, 3, slot)
-        assert len(calls) == 2
+        for e in range(E):
+            ck.page_in(2, e, slot)
+        assert len(calls) == sum(len(ck.expert_spans(2, e).reads) for e in range(E))
+
+
+def _span(file, offset, nbytes, shape=(2, 2)):
+    return ckmod.Span(file, offset, nbytes, "F32", shape, "t")
+
+
+def test_reads_group_an_experts_parts_into_runs_per_file_in_offset_order():
+    G = ckmod.GAP_LIMIT
+    # adjacent in one file, stored down, gate, up (the library's name order): one read, three pieces
+    sp = ckmod.make_expert_spans(0, 0, [_span(0, 116, 16), _span(0, 132, 16), _span(0, 100, 16)])
+    assert sp.dst_offsets == (0, 64, 128)
+    assert sp.reads == (ckmod.Read(0, 100, 48, ((128, 16), (0, 16), (64, 16))),)
+    # a small gap is read and dropped within the same call
+    sp = ckmod.make_expert_spans(0, 0, [_span(0, 100, 16), _span(0, 116 + 40, 16), _span(0, 172, 16)])
+    assert sp.reads == (ckmod.Read(0, 100, 88, ((0, 16), (ckmod.DISCARD, 40), (64, 16), (128, 16))),)
+    # a gap larger than the limit (a fused layer's down rows, a whole tensor away) starts another call
+    sp = ckmod.make_expert_spans(0, 0, [_span(0, 0, 16), _span(0, 16, 16), _span(0, 32 + G + 1, 16)])
+    assert [(r.offset, r.nbytes) for r in sp.reads] == [(0, 32), (32 + G + 1, 16)]
+    assert ckmod.make_expert_spans(0, 0, [_span(0, 0, 16), _span(0, 16, 16), _span(0, 32 + G, 16)]).reads[0].nbytes == 48 + G
+    # three files: one read each, by file number whatever the part order
+    sp = ckmod.make_expert_spans(0, 0, [_span(2, 8, 16), _span(0, 8, 16), _span(1, 8, 16)])
+    assert [(r.file, r.pieces) for r in sp.reads] == [(0, ((64, 16),)), (1, ((128, 16),)), (2, ((0, 16),))]
+    assert sp.files == (0, 1, 2) and sp.nbytes == 48 and sp.slot_nbytes == 192
+    # no merging at all when asked
+    assert len(ckmod.make_expert_spans(0, 0, [_span(0, 0, 16), _span(0, 20, 16), _span(0, 36, 16)], gap_limit=0).reads) == 2
+
+
+def test_parts_with_padding_between_them_are_still_paged_in_with_one_preadv(tmp_path, monkeypatch):
+    b = build(tmp_path / "ck", "olmoe", "per_expert", "F32")
+    path = b.dir / "model.safetensors"
+    doc, data = read_raw(path)
+    arrays = [(n, doc[n]) for n in sorted((n for n in doc if n != "__metadata__"), key=lambda n: doc[n]["data_offsets"][0])]
+    out, new_doc = b"", {"__metadata__": doc.get("__metadata__", {})}
+    for n, entry in arrays:  # another tool's layout: each tensor followed by 24 bytes of padding
+        b0, b1 = entry["data_offsets"]
+        new_doc[n] = {**entry, "data_offsets": [len(out), len(out) + b1 - b0]}
+        out += data[b0:b1] + b"\xee" * 24
+    write_raw(path, new_doc, out)
+    with Checkpoint.open(b.dir) as ck:
+        slot = np.zeros(ck.sizes().expert_slot, np.uint8)
+        calls = _count_preadv(monkeypatch)
+        for (layer, e), want in b.experts.items():
+            sp = ck.expert_spans(layer, e)
+            assert len(sp.reads) == 1 and [n for o, n in sp.reads[0].pieces if o == ckmod.DISCARD] == [24, 24]
+            got = ck.page_in(layer, e, slot)
+            for arr, part in zip(got, ("gate", "up", "down")):
+                assert bits(arr) == bits(want[part])
+        assert len(calls) == len(b.experts)
 
 
 def test_parts_stored_out_of_order_with_gaps_are_read_with_one_preadv_per_run(tmp_path):
