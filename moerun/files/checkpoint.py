@@ -25,8 +25,9 @@ import contextlib
 import mmap
 import os
 import stat
+import threading
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import asdict, dataclass
 from pathlib import Path
 
 import numpy as np
@@ -352,6 +353,7 @@ class Checkpoint:
         self._files: list = []  # open file objects, one per shard
         self._fds: tuple[int, ...] = ()
         self._maps: dict[int, mmap.mmap] = {}
+        self._map_lock = threading.Lock()
         self._spans: list[list[ExpertSpans] | None] = []
 
     # ---------------------------------------------------------------- opening
@@ -553,11 +555,14 @@ class Checkpoint:
     # ---------------------------------------------------------------- dense tensors
     def mapping(self, file: int) -> mmap.mmap:
         """Shard ``file`` mapped read-only (made on first use, kept until ``close``)."""
-        m = self._maps.get(file)
-        if m is None:
-            m = mmap.mmap(self._files[file].fileno(), 0, prot=mmap.PROT_READ)
-            self._maps[file] = m
-        return m
+        with self._map_lock:
+            m = self._maps.get(file)
+            if m is None:
+                if not self._fds:
+                    raise ValueError("the checkpoint is closed")
+                m = mmap.mmap(self._fds[file], 0, prot=mmap.PROT_READ)
+                self._maps[file] = m
+            return m
 
     def tensor(self, name: str) -> np.ndarray:
         """A read-only view of a tensor as stored (BF16 as uint16 bits), on the shard's read-only mapping.
@@ -578,6 +583,19 @@ class Checkpoint:
             out = np.empty(t.shape, np.float32)
         return widen_into(self.tensor(name), t.dtype, out)
 
+    def rows_f32(self, name: str, rows, out: np.ndarray) -> np.ndarray:
+        """Rows ``rows`` of a 2-D tensor (the embedding table) widened into ``out`` [len(rows), width], read from the
+        mapping on demand: only the pages of those rows are touched.  IndexError for a row out of range."""
+        v = self.tensor(name)
+        dtype = self.tensors[name].info.dtype
+        if v.ndim != 2 or out.shape != (len(rows), v.shape[1]):
+            raise ValueError(f"out must have shape ({len(rows)}, {v.shape[1] if v.ndim == 2 else '?'}) for tensor {name!r}")
+        for i, r in enumerate(rows):
+            if not 0 <= int(r) < v.shape[0]:
+                raise IndexError(f"row {r} of tensor {name!r} out of range 0..{v.shape[0] - 1}")
+            widen_into(v[int(r)], dtype, out[i])
+        return out
+
     # ---------------------------------------------------------------- sizes
     def sizes(self) -> CheckpointSizes:
         c = self.config
@@ -597,6 +615,23 @@ class Checkpoint:
             embed_f32=4 * (emb.nbytes // DTYPE_SIZES[emb.dtype]),
             tied=c.tie_word_embeddings,
         )
+
+    def summary(self) -> dict:
+        """What ``inspect`` will show, as plain JSON values: the architecture, the shards, the expert layout and
+        the bytes as stored and as float32."""
+        s = self.sizes()
+        return {
+            "directory": str(self.directory),
+            "config": asdict(self.config),
+            "shards": [{"file": p.name, "bytes": h.file_size, "tensors": len(h.tensors)} for p, h in zip(self.files, self.headers)],
+            "layouts": list(self.layouts),
+            "expert_dtype": self.expert_dtype,
+            "experts_straddling_files": sum(len(sp.files) > 1 for row in self._spans if row for sp in row),
+            "reads_per_expert": max((len(sp.reads) for row in self._spans if row for sp in row), default=0),
+            "sizes": {**asdict(s), "experts_stored": s.experts_stored, "experts_f32": s.experts_f32},
+            "bos_ids": list(self.bos_ids),
+            "eos_ids": list(self.eos_ids),
+        }
 
     # ---------------------------------------------------------------- closing
     def close(self) -> None:

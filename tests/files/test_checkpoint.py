@@ -558,6 +558,33 @@ def test_dense_tensors_are_read_only_views_of_the_shard_mapping_never_copies(tmp
         del v, base
 
 
+def test_embedding_rows_are_widened_on_demand_into_the_callers_buffer(tmp_path):
+    b = build(tmp_path / "ck", "qwen3_moe", "per_expert", "BF16", shards=3)
+    name = "model.embed_tokens.weight"
+    with Checkpoint.open(b.dir) as ck:
+        out = np.empty((4, H), np.float32)
+        assert ck.rows_f32(name, [3, 0, 31, 3], out) is out
+        assert bits(out) == bits(b.values[name][[3, 0, 31, 3]])
+        with pytest.raises(IndexError, match="row 32"):
+            ck.rows_f32(name, [32], np.empty((1, H), np.float32))
+        with pytest.raises(ValueError):
+            ck.rows_f32(name, [1, 2], np.empty((1, H), np.float32))
+
+
+def test_the_summary_is_plain_json_with_the_architecture_shards_and_bytes(tmp_path):
+    b = build(tmp_path / "ck", "qwen2_moe", "per_expert", "F16", shards=3, spelling="5x")
+    with Checkpoint.open(b.dir) as ck:
+        doc = json.loads(json.dumps(ck.summary()))
+        s = ck.sizes()
+    assert doc["config"]["model_type"] == "qwen2_moe" and doc["config"]["shared_expert_width"] == SHARED
+    assert [x["file"] for x in doc["shards"]] == [f"model-0000{i}-of-00003.safetensors" for i in (1, 2, 3)]
+    assert sum(x["tensors"] for x in doc["shards"]) == len(b.values)
+    assert doc["layouts"] == [None, "per_expert", "per_expert"] and doc["expert_dtype"] == "F16"
+    assert doc["experts_straddling_files"] > 0 and doc["reads_per_expert"] >= 2
+    assert doc["sizes"]["expert_stored"] == s.expert_stored and doc["sizes"]["experts_f32"] == s.experts_f32
+    assert doc["bos_ids"] == [1] and doc["eos_ids"] == [2]
+
+
 def test_opening_maps_nothing_and_reads_no_tensor_data(tmp_path):
     b = build(tmp_path / "ck", "qwen3_moe", "per_expert", "F32")
     with Checkpoint.open(b.dir) as ck:
