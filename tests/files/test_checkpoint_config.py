@@ -8,6 +8,8 @@ from __future__ import annotations
 import json
 
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from test_checkpoint import TYPES, raw_config
 
 from moerun.errors import BadModelFile
@@ -276,3 +278,29 @@ def test_loading_names_the_file_for_bad_json_and_for_a_bad_field(tmp_path):
         load_checkpoint_config(tmp_path)
     with pytest.raises(BadModelFile, match="missing"):
         load_checkpoint_config(tmp_path / "absent")
+
+
+# ---------------------------------------------------------------------------- fuzzing
+
+_json = st.recursive(
+    st.none() | st.booleans() | st.integers(-(2**70), 2**70) | st.floats(allow_nan=True) | st.text(max_size=8)
+    | st.sampled_from(["default", "yarn", "bfloat16", "full_attention", "silu"]),
+    lambda inner: st.lists(inner, max_size=3) | st.dictionaries(st.sampled_from(["rope_type", "type", "rope_theta", "quant_method", "x"]), inner, max_size=3),
+    max_leaves=6,
+)
+_fields = sorted({k for mt in TYPES for k in raw_config(mt, "4x")} | {k for mt in TYPES for k in raw_config(mt, "5x")}
+                 | {"layer_types", "quantization_config", "num_local_experts", "qkv_bias", "clip_qkv"})
+
+
+@settings(max_examples=300, deadline=None)
+@given(mt=st.sampled_from(TYPES), spelling=st.sampled_from(["4x", "5x"]),
+       edits=st.dictionaries(st.sampled_from(_fields), _json, max_size=3), drop=st.sets(st.sampled_from(_fields), max_size=2))
+def test_any_edit_of_a_config_is_read_or_refused_with_one_line(mt, spelling, edits, drop):
+    raw = {k: v for k, v in raw_config(mt, spelling).items() if k not in drop}
+    raw.update(edits)
+    try:
+        c = parse_checkpoint_config(raw, where="ck/config.json")
+    except BadModelFile as e:
+        assert "\n" not in str(e) and str(e).startswith("ck/config.json: ")
+    else:
+        assert c.model_type in SUPPORTED_TYPES and c.top_k <= c.num_experts and c.num_heads % c.num_kv_heads == 0
