@@ -245,7 +245,7 @@ def _preadv_exact(fd: int, bufs: list[memoryview], offset: int) -> None:
 def read_expert(fds: Sequence[int], spans: ExpertSpans, dst, paths: Sequence | None = None):
     """Page one expert in: perform ``spans.reads`` (one ``os.preadv`` each) on the shard descriptors ``fds`` into
     the writable buffer ``dst`` (at least ``spans.slot_nbytes`` bytes; a pool slot) and return ``(gate, up, down)``
-    as views of ``dst`` in their stored dtype (BF16 as uint16 bits) and shape [out, in].  Nothing is allocated
+    as views of ``dst`` in their stored dtype (BF16 as uint16 bits) and shape [out, in].  No array is allocated
     and nothing transposed.  PageInError, naming the shard (``paths``), if a file ended or a read failed."""
     view = memoryview(dst).cast("B")
     if view.readonly or len(view) < spans.slot_nbytes:
