@@ -1,3 +1,3 @@
-from moerun.cli.main import entry
+from moerun.cli import entry
 
 entry()

@@ -51,5 +51,14 @@ class ReaderError(MoerunError):
     """The prefetch reader process could not be started."""
 
 
+EXIT_INTERRUPTED = 130  # 128 + SIGINT: the shells' convention for a process ended by a signal
+EXIT_TERMINATED = 143  # 128 + SIGTERM
+
+
+class Terminated(KeyboardInterrupt):
+    """SIGTERM, raised the way Ctrl-C raises KeyboardInterrupt (the command line's handler): every clean-up
+    that runs on Ctrl-C runs on it too (partial traces written, temporaries removed, the reader stopped)."""
+
+
 class ReaderStalled(UserWarning):
     """Warning: the prefetch reader stopped making progress; the engine read experts itself from then on."""

@@ -1,7 +1,7 @@
 """``moerun <command>``: argument parsing, shared options, and the one place errors become exit codes.
 
 Exit codes (docs/guide/hardening.md): 0 success, 1 a check failed, 2 bad input or
-usage, 130 interrupted.  Library errors (``MoerunError``) become one line on
+usage, 130 interrupted (Ctrl-C), 143 terminated (SIGTERM).  Library errors (``MoerunError``) become one line on
 stderr; nothing prints a traceback for a user mistake.
 """
 
@@ -14,7 +14,7 @@ import signal
 import sys
 
 from moerun._version import __version__
-from moerun.errors import BadInput, BadOption, MoerunError, OutputError
+from moerun.errors import EXIT_INTERRUPTED, EXIT_TERMINATED, BadInput, BadOption, MoerunError, OutputError, Terminated
 
 # This module imports nothing that imports numpy at its top: entry() chooses the BLAS threads before
 # numpy loads (the console script and ``python -m moerun`` import this module, then call entry()).
@@ -301,17 +301,16 @@ def main(argv: list[str] | None = None) -> int:
         detail = str(e).splitlines()[0][:200] if str(e) else "allocation failed"
         sys.stderr.write(f"moerun {args.command}: out of memory ({detail}); --mem-cap checks the budget before the run\n")
         return 2
-    except KeyboardInterrupt:
-        sys.stderr.write(f"\nmoerun {args.command}: interrupted\n")
-        return 130
+    except KeyboardInterrupt as e:
+        return _stopped(e, args.command)
     except Exception as e:
         # Ctrl-C landing inside a library call can surface as another error raised while the
         # KeyboardInterrupt unwound (numpy's savez closing a half-written zip raises ValueError):
         # that is still an interruption, not a crash
-        if not _raised_while_interrupted(e):
+        cause = _raised_while_interrupted(e)
+        if cause is None:
             raise
-        sys.stderr.write(f"\nmoerun {args.command}: interrupted\n")
-        return 130
+        return _stopped(cause, args.command)
     finally:
         sys.stdout = real_stdout
 
@@ -333,33 +332,26 @@ def _numeric_warnings_off():
     return stack
 
 
-def _raised_while_interrupted(e: BaseException) -> bool:
+def _raised_while_interrupted(e: BaseException) -> KeyboardInterrupt | None:
+    """The interruption (Ctrl-C or SIGTERM) this error was raised while unwinding, if any."""
     seen = set()
     cur: BaseException | None = e
     while cur is not None and id(cur) not in seen:
         if isinstance(cur, KeyboardInterrupt):
-            return True
+            return cur
         seen.add(id(cur))
         cur = cur.__cause__ or cur.__context__
-    return False
+    return None
 
 
-def _first_ctrl_c_only(interrupted: list) -> None:
-    """SIGINT raises KeyboardInterrupt once; later ones are ignored while that one unwinds.
-
-    The first Ctrl-C stops the command, whose clean-up (stopping the prefetch reader process, at most a
-    couple of seconds; writing a partial trace; removing temporary files) must run to the end: a
-    second Ctrl-C landing inside it would leave temporary files or print a traceback from inside a
-    library.  Only the process entry point installs this, never ``main()`` (which tests call).
-    """
-
-    def on_sigint(signum, frame):
-        if interrupted:
-            return
-        interrupted.append(signum)
-        raise KeyboardInterrupt
-
-    signal.signal(signal.SIGINT, on_sigint)
+def _stopped(e: KeyboardInterrupt, command: str | None) -> int:
+    """One line for a command stopped by Ctrl-C (exit 130) or SIGTERM (exit 143)."""
+    who = f"moerun {command}" if command else "moerun"
+    if isinstance(e, Terminated):
+        sys.stderr.write(f"\n{who}: terminated\n")
+        return EXIT_TERMINATED
+    sys.stderr.write(f"\n{who}: interrupted\n")
+    return EXIT_INTERRUPTED
 
 
 def one_blas_thread() -> None:
@@ -373,19 +365,26 @@ def one_blas_thread() -> None:
         os.environ.setdefault(var, "1")
 
 
-def entry() -> None:
+def run_process(stopping: list) -> None:
+    """The rest of the process entry point (``moerun.cli.entry``, which installed the signal handlers: the
+    first SIGINT raises KeyboardInterrupt, the first SIGTERM ``Terminated``, later ones are ignored while
+    that one unwinds, so a command's clean-up runs to the end)."""
     one_blas_thread()  # first: the commands import numpy only after this
-    interrupted: list = []
     try:
-        _first_ctrl_c_only(interrupted)
         code = main()
-    except KeyboardInterrupt:  # Ctrl-C before a command started
-        sys.stderr.write("\nmoerun: interrupted\n")
-        code = 130
-    if code == 130 or interrupted:
-        # the command has stopped; a Ctrl-C now would only interrupt the interpreter's shutdown:
-        # let it end the process at once, as SIGINT does by default
-        signal.signal(signal.SIGINT, signal.SIG_DFL)
+    except KeyboardInterrupt as e:  # before a command started
+        code = _stopped(e, None)
+    except Exception as e:  # numpy's import turns an interruption inside it into an ImportError
+        cause = _raised_while_interrupted(e)
+        if cause is None:
+            raise
+        code = _stopped(cause, None)
+    if code in (EXIT_INTERRUPTED, EXIT_TERMINATED) or stopping:
+        # the command has stopped; a signal now would only interrupt the interpreter's shutdown:
+        # let it end the process at once, as the signal does by default
+        for signum in (signal.SIGINT, signal.SIGTERM):
+            if signal.getsignal(signum) != signal.SIG_IGN:
+                signal.signal(signum, signal.SIG_DFL)
     if sys.stdout is not None:
         try:
             sys.stdout.flush()
@@ -395,3 +394,10 @@ def entry() -> None:
                 sys.stderr.write("moerun: cannot write to standard output\n")
                 code = 2
     raise SystemExit(code)
+
+
+def entry() -> None:
+    """The process entry point, kept for callers of its old home (moerun.cli.entry installs the handlers)."""
+    from moerun.cli import entry as cli_entry
+
+    cli_entry()

@@ -29,8 +29,10 @@ import errno
 import fcntl
 import os
 import shutil
+import signal
 import stat
 import tempfile
+import threading
 from collections.abc import Iterable, Iterator
 from pathlib import Path
 
@@ -271,6 +273,47 @@ def check_output(path: str | os.PathLike, force: bool = False, inputs: Iterable 
     return path
 
 
+class SignalsHeld:
+    """Ctrl-C and SIGTERM wait from here until ``release()``: for the instant between making a temporary
+    file or directory and entering the ``try`` that removes it, where an interruption would leave it behind.
+
+    Python runs signal handlers in the main thread only, between instructions; while held, the handlers
+    only note the signal, and ``release()`` puts the handlers back and calls the first noted one, so its
+    KeyboardInterrupt (or the command line's ``Terminated``) is raised there, inside that ``try``.  Outside
+    the main thread nothing can be interrupted this way and nothing is held.  A handler that was the
+    system default (SIGTERM in a program that set none) is delivered again with ``os.kill``, so the
+    process still ends as it would have.
+    """
+
+    SIGNALS = (signal.SIGINT, signal.SIGTERM)
+
+    def __init__(self):
+        self.noted: list[int] = []
+        self.saved: dict | None = None
+        if threading.current_thread() is threading.main_thread():
+            self.saved = {s: signal.getsignal(s) for s in self.SIGNALS}
+            for s in self.SIGNALS:
+                signal.signal(s, self._note)
+
+    def _note(self, signum, frame) -> None:
+        self.noted.append(signum)
+
+    def release(self) -> None:
+        if self.saved is None:
+            return
+        saved, self.saved = self.saved, None
+        for s, handler in saved.items():
+            signal.signal(s, handler)
+        if not self.noted:
+            return
+        signum = self.noted[0]
+        handler = saved[signum]
+        if callable(handler):
+            handler(signum, None)
+        elif handler == signal.SIG_DFL:
+            os.kill(os.getpid(), signum)
+
+
 @contextlib.contextmanager
 def atomic_path(path: str | os.PathLike, suffix: str = "", force: bool = True, inputs: Iterable = (),
                 what: str = "") -> Iterator[Path]:
@@ -284,12 +327,15 @@ def atomic_path(path: str | os.PathLike, suffix: str = "", force: bool = True, i
     inputs = list(inputs)
     check_output(path, force, inputs, what)
     remove_stale_temporaries(path)
+    held = SignalsHeld()
     try:
         fd, tmp = tempfile.mkstemp(prefix=_tmp_prefix(path), suffix=suffix or path.suffix, dir=path.parent)
     except OSError as e:
+        held.release()
         raise OutputError(f"{_label(path, what)}: cannot write in {path.parent} ({_os_reason(e)})", e.errno) from None
     tmp_path = Path(tmp)
     try:
+        held.release()  # an interruption since mkstemp is raised here, where the temporary is removed
         fcntl.flock(fd, fcntl.LOCK_EX)  # a run still writing it holds this; see remove_stale_temporaries
         os.fchmod(fd, 0o666 & ~_umask())  # mkstemp makes 0600; give the final file ordinary permissions
         yield tmp_path
@@ -415,12 +461,16 @@ def atomic_dir(path: str | os.PathLike, force: bool = False, protect: Iterable =
     protect = list(protect)
     check_output_dir(path, force, protect, what, allow_empty)
     remove_stale_temporaries(path)
+    held = SignalsHeld()
     try:
         tmp = Path(tempfile.mkdtemp(prefix=_tmp_prefix(path), dir=path.parent))
     except OSError as e:
+        held.release()
         raise OutputError(f"{_label(path, what)}: cannot write in {path.parent} ({_os_reason(e)})", e.errno) from None
-    fd = _lock(tmp)
+    fd = None
     try:
+        fd = _lock(tmp)
+        held.release()  # an interruption since mkdtemp is raised here, where the temporary is removed
         yield tmp
         _ordinary_modes(tmp)
         _install_dir(tmp, path, force, protect, what, allow_empty)

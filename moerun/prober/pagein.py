@@ -41,6 +41,7 @@ import numpy as np
 
 from moerun._version import __version__
 from moerun.errors import BadInput, BadModelFile, BadOption, OutputError
+from moerun.files.fileio import SignalsHeld
 from moerun.files.modelfile import expert_span, read_header
 from moerun.files.pagecache import PAGE, drop_pages, drop_problem, residency_problem, resident_pages
 from moerun.files.store import pread_into
@@ -363,11 +364,18 @@ def _check_dir(d: Path) -> None:
 
 
 def _new_scratch(base: Path, nbytes: int, created: list[Path]) -> Path:
-    fd, name = tempfile.mkstemp(prefix=".moerun-probe-", suffix=".bin", dir=base)
-    os.close(fd)
-    path = Path(name)
-    created.append(path)
-    return path
+    """A scratch file in ``base``, listed in ``created`` (which the caller removes) before any interruption."""
+    held = SignalsHeld()
+    try:
+        fd, name = tempfile.mkstemp(prefix=".moerun-probe-", suffix=".bin", dir=base)
+        os.close(fd)
+        created.append(Path(name))
+    except OSError as e:
+        raise OutputError(f"cannot write a scratch file in {base} ({e.strerror or e}); "
+                          "probe needs a writable directory (--dir DIR)") from None
+    finally:
+        held.release()
+    return created[-1]
 
 
 def _fit_slots(base: Path, nbytes: int) -> int:
@@ -505,8 +513,15 @@ def run_probe(
         _check_dir(Path(work_dir))
     for i, nbytes in enumerate(sizes):
         blocks.append(Block(size_label(nbytes), "tempfile", Path(), nbytes, [], {"index": i}))
-    base = Path(tempfile.mkdtemp(prefix="moerun-probe-")) if own_dir else Path(work_dir)
+    held = SignalsHeld()
     try:
+        base = Path(tempfile.mkdtemp(prefix="moerun-probe-")) if own_dir else Path(work_dir)
+    except OSError as e:
+        held.release()
+        raise OutputError(f"cannot make a scratch directory in {tempfile.gettempdir()} ({e.strerror or e}); "
+                          "give a writable one with --dir DIR") from None
+    try:
+        held.release()  # an interruption since mkdtemp is raised here, where the directory is removed
         ceiling, results = _measure_blocks(blocks, base, runs, seed, report)
     finally:
         if own_dir:
