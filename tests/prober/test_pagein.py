@@ -405,3 +405,25 @@ def test_too_little_disk_for_probes_temporary_file_is_an_output_error(tmp_path, 
     with pytest.raises(OutputError) as e:
         probe_mod._fit_slots(tmp_path, 1 << 20)
     assert not isinstance(e.value, BadOption)
+
+
+@pytest.mark.parametrize("where", ["--dir", "TMPDIR"])
+def test_probe_on_a_read_only_file_system_is_one_line_and_exit_2(tmp_path, capsys, monkeypatch, where):
+    # issue 23, item 8: a scratch file or directory that cannot be made is refused, not a traceback from tempfile
+    import tempfile
+
+    from conftest import tmpfs
+
+    from moerun.cli.main import main
+
+    with tmpfs(tmp_path / "ro", read_only=True) as ro:
+        if where == "TMPDIR":
+            monkeypatch.setattr(tempfile, "tempdir", str(ro))
+            argv = ["probe", "--sizes", "1MiB", "--runs", "1"]
+        else:
+            argv = ["probe", "--sizes", "1MiB", "--runs", "1", "--dir", str(ro)]
+        code = main(argv)
+    captured = capsys.readouterr()
+    assert code == 2 and captured.out == ""
+    lines = captured.err.strip().splitlines()
+    assert len(lines) == 1 and "read-only" in lines[0].lower() and "--dir" in lines[0]
