@@ -212,6 +212,13 @@ class StdoutError(OutputError):
     """Standard output refused our text: closed (a pipe whose reader left) or full (/dev/full, a full disk)."""
 
 
+class StdoutClosed(StdoutError):
+    """Standard output's reader went away (``moerun generate | head -3``): the command ends quietly, with the
+    exit status of a process ended by SIGPIPE, as the tools of a pipeline do (128 + 13)."""
+
+    exit_code = 141
+
+
 class _GuardedStdout:
     """Standard output whose write and flush failures become StdoutError, so cli.main reports them in one line."""
 
@@ -219,8 +226,9 @@ class _GuardedStdout:
         self._stream = stream
 
     def _failed(self, e: OSError):
-        reason = "closed by its reader" if isinstance(e, BrokenPipeError) else (e.strerror or str(e))
-        return StdoutError(f"cannot write to standard output ({reason}); output stopped")
+        if isinstance(e, BrokenPipeError):
+            return StdoutClosed("standard output was closed by its reader")
+        return StdoutError(f"cannot write to standard output ({e.strerror or e}); output stopped")
 
     def write(self, text: str) -> int:
         try:
@@ -295,7 +303,8 @@ def main(argv: list[str] | None = None) -> int:
     except MoerunError as e:
         if isinstance(e, StdoutError):
             _silence_stdout(real_stdout)
-        sys.stderr.write(f"moerun {args.command}: {e}\n")
+        if not isinstance(e, StdoutClosed):  # the reader left on purpose: nothing to say
+            sys.stderr.write(f"moerun {args.command}: {e}\n")
         return e.exit_code
     except MemoryError as e:  # e.g. a config whose context needs a KV cache larger than the machine
         detail = str(e).splitlines()[0][:200] if str(e) else "allocation failed"
@@ -388,9 +397,11 @@ def run_process(stopping: list) -> None:
     if sys.stdout is not None:
         try:
             sys.stdout.flush()
-        except OSError:
+        except OSError as e:
             _silence_stdout(sys.stdout)
-            if code == 0:
+            if code == 0 and isinstance(e, BrokenPipeError):
+                code = StdoutClosed.exit_code
+            elif code == 0:
                 sys.stderr.write("moerun: cannot write to standard output\n")
                 code = 2
     raise SystemExit(code)
