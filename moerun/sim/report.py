@@ -173,6 +173,9 @@ def run_replay(
     slots = list(slots) if slots else shared_slots(trace.n_layers * E) if shared else default_slots(E)
     if shared and max(slots) > trace.n_layers * E:
         raise BadOption(f"--slots of a shared pool must be at most the trace's {trace.n_layers * E} experts")
+    if not shared and max(slots) > E:
+        raise BadOption(f"--slots {max(slots)} is more than the {E} experts a layer of this trace has; "
+                        f"a layer holds at most {E} (try --slots 1-{E})")
     if expert_bytes is None:
         eb = trace.meta.get("expert_bytes")
         expert_bytes = eb if isinstance(eb, int) and not isinstance(eb, bool) and eb > 0 else None

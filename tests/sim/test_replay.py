@@ -593,3 +593,13 @@ def test_replay_refuses_a_shared_pool_larger_than_every_expert_in_one_line(recor
     code = cli.main(["replay", str(recorded[0]), "--shared-pool", "--slots", str(tr.n_layers * tr.n_experts + 1)])
     out, err = capsys.readouterr()
     assert code == 2 and out == "" and len(err.strip().splitlines()) == 1 and "shared pool" in err
+
+
+def test_replay_refuses_more_slots_per_layer_than_a_layer_has_experts_with_the_fix(recorded, capsys):
+    # issue 23, item 22: --slots 9 on a trace of 8 experts per layer was accepted silently
+    trace = read_trace(recorded[0])
+    E = trace.n_experts
+    assert cli.main(["replay", str(recorded[0]), "--slots", str(E + 1)]) == 2
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1 and f"--slots 1-{E}" in err
+    assert cli.main(["replay", str(recorded[0]), "--slots", str(E), "--json"]) == 0
