@@ -198,11 +198,15 @@ def verify(model_dir: str | os.PathLike | None = None, prompt: str | None = None
     if prompt is not None or prompt_file:
         text = read_text_file(prompt_file) if prompt_file else prompt
         ids = [tok.encode(text)]
+        if len(ids[0]) > c.max_seq_len:  # refused as generate refuses it: a cut prompt is not the one asked about
+            raise BadOption(f"{len(ids[0])} tokens exceed the model's context of {c.max_seq_len}")
+        # a generation stops when the context is full: report the tokens that are compared, no more
+        max_new = min(max_new, c.max_seq_len - len(ids[0]))
     else:
         if prompts < 1:
             raise BadInput("--prompts must be at least 1")
         ids = default_prompts(model_dir, tok, prompts)
-    ids = [p[: max(1, c.max_seq_len - max_new)] for p in ids]
+        ids = [p[: max(1, c.max_seq_len - max_new)] for p in ids]  # our own excerpts: cut to leave room
     chosen = _given_setting(c, settings)
     sampling = Sampling(temperature, top_p, seed)
     outcomes, info = verify_settings(model_dir, ids, chosen, max_new, sampling, progress=progress)

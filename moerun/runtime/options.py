@@ -162,6 +162,8 @@ def check_against_config(prefetch: int, lookahead: int | None, config) -> None:
     prefetch = prefetch or 0
     if prefetch > config.n_experts:
         raise BadOption(f"--prefetch {prefetch} is more than the model's {config.n_experts} experts per layer")
+    if prefetch and config.n_layers == 1:
+        raise BadOption(f"--prefetch {prefetch} has nothing to do: the model has one layer, so no later layer to guess for")
     lookahead = lookahead or 1
     if prefetch and lookahead >= config.n_layers:
         most = config.n_layers - 1

@@ -33,3 +33,36 @@ def test_the_default_set_has_a_shared_pool_with_its_own_rule_and_with_lru():
     settings = default_settings(1000, 5000, 100)
     shared = {s.kwargs.get("evict", "lru") for s in settings if s.kwargs.get("split") == "shared"}
     assert {"lru", "orbit"} <= shared
+
+
+def test_verify_refuses_a_prompt_longer_than_the_context_as_generate_does(small_model, capsys):
+    # issue 23, item 13: the prompt was cut silently and tokens it never compared were reported
+
+    from moerun.files.store import ModelStore
+
+    st = ModelStore.open(small_model)
+    context = st.config.max_seq_len
+    st.close()
+    long_prompt = "stone river " * context  # more tokens than the context under any tokenizer of this model
+    for command in ("generate", "verify"):
+        assert cli.main([command, "--model", str(small_model), "--prompt", long_prompt, "--max-new", "2"]) == 2
+        err = capsys.readouterr().err
+        assert len(err.strip().splitlines()) == 1 and f"exceed the model's context of {context}" in err
+
+
+def test_verify_reports_only_the_tokens_it_compared_when_the_context_fills(small_model, capsys):
+    import json
+
+    from moerun.files.store import ModelStore
+    from moerun.model.tokenizer import Tokenizer
+
+    st = ModelStore.open(small_model)
+    c = st.config
+    st.close()
+    tok = Tokenizer.load(small_model, c.vocab_size, c.bos_token_id)
+    prompt = "stone river " * 4
+    n = len(tok.encode(prompt))
+    room = c.max_seq_len - n
+    assert cli.main(["verify", "--model", str(small_model), "--prompt", prompt, "--max-new", str(room + 50), "--json"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["max_new"] == room

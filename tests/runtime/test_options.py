@@ -43,3 +43,13 @@ def test_a_setting_load_does_not_know_is_a_type_error_and_options_must_be_engine
         moerun.load(small_model, memcap="14MiB")
     with pytest.raises(BadOption, match="EngineOptions"):
         moerun.load(small_model, "14MiB")
+
+
+def test_prefetch_on_a_one_layer_model_is_refused_for_what_it_is_not_for_a_lookahead_never_given(synth_models, capsys):
+    # issue 23, item 14
+    from moerun.cli.main import main
+
+    one = synth_models(seed=9, layers=1, experts=4, top_k=2)
+    assert main(["generate", "--model", str(one), "--prefetch", "1", "--max-new", "1", "--prompt", "a"]) == 2
+    err = capsys.readouterr().err
+    assert len(err.strip().splitlines()) == 1 and "one layer" in err and "--lookahead" not in err
