@@ -17,13 +17,13 @@ from moerun.checks.score import Score, n_windows, score_text
 from moerun.checks.verify import Outcome, Setting
 from moerun.checks.verify import verify as verify_settings
 from moerun.errors import BadInput, BadOption
+from moerun.files.bundled import resolve_model
 from moerun.files.store import ModelStore
 from moerun.model.config import RANDOM_NOTE as CONFIG_NOTE
 from moerun.model.config import ModelConfig
 from moerun.model.sampling import Sampling
 from moerun.model.tokenizer import Tokenizer, read_text_file
 from moerun.runtime.capcheck import cap_check, cap_warning
-from moerun.runtime.engine import default_model_dir
 from moerun.runtime.options import check_against_config, load, parse_slot_list
 from moerun.units import parse_rate, parse_size
 
@@ -81,7 +81,7 @@ class InspectResult:
 def inspect(model_dir: str | os.PathLike | None = None, *, check: bool = False) -> InspectResult:
     """What is in a model directory and where each byte lives (``moerun inspect``); every file of the directory is
     read as the other jobs read it (BadModelFile otherwise).  ``check``: compare every tensor with its recorded digest."""
-    store = ModelStore.open(model_dir if model_dir is not None else default_model_dir())
+    store = ModelStore.open(resolve_model(model_dir))
     try:
         doc = describe(store, check_files(store))
         doc["config"] = store.config
@@ -190,7 +190,7 @@ def verify(model_dir: str | os.PathLike | None = None, prompt: str | None = None
     or ``slots``, verify's own set of caps, policies and prefetch settings.
     ``progress(done, total, setting)`` before each setting.  ``ok`` is False on any difference.
     """
-    model_dir = Path(model_dir) if model_dir is not None else default_model_dir()
+    model_dir = resolve_model(model_dir)
     store = ModelStore.open(model_dir)
     c = store.config
     store.close()
@@ -276,7 +276,7 @@ def score(model_dir: str | os.PathLike | None = None, text: str | os.PathLike | 
     ``plain_windows``: windows of max_seq_len tokens with no bos inserted.  ``progress(windows_done,
     windows_total)`` after each window.
     """
-    model_dir = Path(model_dir) if model_dir is not None else default_model_dir()
+    model_dir = resolve_model(model_dir)
     engine = load(model_dir, **settings)  # the model is checked first: its problems are the likelier ones
     with engine:
         check_against_config(settings.get("prefetch", 0), settings.get("lookahead"), engine.config)

@@ -15,6 +15,7 @@ import sys
 
 from moerun._version import __version__
 from moerun.errors import EXIT_INTERRUPTED, EXIT_TERMINATED, BadInput, BadOption, MoerunError, OutputError, Terminated
+from moerun.files.bundled import DEFAULT, bundled_models, resolve_model
 
 # This module imports nothing that imports numpy at its top: entry() chooses the BLAS threads before
 # numpy loads (the console script and ``python -m moerun`` import this module, then call entry()).
@@ -34,8 +35,17 @@ class ArgParser(argparse.ArgumentParser):
 # ---------------------------------------------------------------------- shared options
 
 
+def model_value(text: str) -> str:
+    """--model: a directory, or a bundled model's short name, which becomes that model's directory
+    (moerun.files.bundled.resolve_model); anything else is passed on as it was written."""
+    found = resolve_model(text)
+    return str(found) if found.is_absolute() and not os.path.isabs(text) else text
+
+
 def add_model(p) -> None:
-    p.add_argument("--model", metavar="DIR", help="model directory (default: the bundled tiny model)")
+    names = ", ".join(bundled_models()) or "none found"
+    p.add_argument("--model", metavar="DIR", type=model_value,
+                   help=f"model directory, or the name of a bundled model ({names}; default: {DEFAULT})")
 
 
 def whole_number_at_least(flag: str, low: int):
@@ -169,11 +179,9 @@ def engine_kwargs(args) -> dict:
 
 def model_files(model_dir) -> list:
     """Every file of a model directory: a run's inputs, which no output may replace."""
-    from pathlib import Path
 
-    from moerun.runtime.engine import default_model_dir
 
-    d = Path(model_dir) if model_dir is not None else default_model_dir()
+    d = resolve_model(model_dir)
     try:
         return [p for p in d.iterdir() if p.is_file()]
     except OSError:

@@ -12,12 +12,12 @@ from collections.abc import Callable
 from dataclasses import dataclass
 
 from moerun.errors import BadModelFile, BadOption
+from moerun.files.bundled import resolve_model
 from moerun.files.packed import QuantSpec
 from moerun.makers._card import QuantReport
 from moerun.makers.quantize import quantize_model
 from moerun.makers.synthetic import BITS, synth_config, synthesize
 from moerun.model.config import ModelConfig
-from moerun.runtime.engine import default_model_dir
 
 # What moerun.quantize returns: the report quantize_model makes (its to_json is the --json document).
 QuantizeResult = QuantReport
@@ -154,6 +154,6 @@ def quantize(out: str | os.PathLike, model_dir: str | os.PathLike | None = None,
     if max_tokens is not None and not score:
         raise BadOption("--max-tokens and --no-score contradict each other (--max-tokens says how much of heldout.txt "
                         "to score, --no-score skips scoring); give one")
-    src = model_dir if model_dir is not None else default_model_dir()
+    src = resolve_model(model_dir)
     return quantize_model(src, out, spec, force=force, score=score, score_tokens=max_tokens, on_progress=progress,
                           command=command)

@@ -15,13 +15,13 @@ from pathlib import Path
 
 from moerun import policies
 from moerun.errors import BadInput, BadOption, ImpossibleBudget
+from moerun.files.bundled import resolve_model
 from moerun.files.trace import Trace, read_trace
 from moerun.model.config import RANDOM_NOTE
 from moerun.planner.calibration import calibrate, costs_from_calibration, costs_from_shape, describe, load_shape, page_seconds
 from moerun.planner.search import PREFETCH_CANDIDATES, Space, check_decode_steps, check_trace_shape
 from moerun.planner.timeline import Costs, Prediction
 from moerun.runtime.budget import fixed_bytes, slot_bytes
-from moerun.runtime.engine import default_model_dir
 from moerun.sim.report import parse_policies
 from moerun.units import fmt_bytes, fmt_exact, parse_rate, parse_size
 
@@ -145,7 +145,7 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
     else:
         from moerun.files.store import ModelStore
 
-        model_dir = Path(model_dir) if model_dir else default_model_dir()
+        model_dir = resolve_model(model_dir or None)
         store = ModelStore.open(model_dir)
         c = store.config
         model = {"L": c.n_layers, "E": c.n_experts, "k": c.top_k, "expert_bytes": store.expert_nbytes,

@@ -11,6 +11,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from moerun.errors import BadModelFile
+from moerun.files.bundled import resolve_model
 from moerun.files.fileio import check_output
 from moerun.prober.pagein import DEFAULT_RUNS, parse_sizes, run_probe
 from moerun.prober.saved import load_probe, save_probe
@@ -79,6 +80,8 @@ def probe(model_dir: str | os.PathLike | None = None, sizes: str | Sequence[int 
         model_dir = default_model_dir()
         if not Path(model_dir).is_dir():
             raise BadModelFile(f"{model_dir}: the default model is not there; give --model DIR or --sizes LIST")
+    if model_dir is not None:
+        model_dir = resolve_model(model_dir)
     inputs = _model_inputs(model_dir) if model_dir is not None else []
     if save:  # refused now, not after minutes of measuring
         check_output(save, force, inputs, "--save")

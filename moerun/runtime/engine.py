@@ -8,7 +8,6 @@ the pool.  ``engine.stats`` holds the run's measured figures.
 
 from __future__ import annotations
 
-import os
 import time
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -16,6 +15,7 @@ from pathlib import Path
 import numpy as np
 
 from moerun.errors import BadModelFile, BadOption
+from moerun.files.bundled import DEFAULT, bundled_root, resolve_model
 from moerun.files.store import ModelStore
 from moerun.files.trace import TRACE_GUESSES, TRACE_LOOKAHEAD, Recorder, Trace, read_trace
 from moerun.model.config import RANDOM_NOTE
@@ -29,27 +29,12 @@ from moerun.runtime.pool import ExpertPool
 from moerun.runtime.prefetch import GuessRule, Prefetcher
 from moerun.runtime.reader import Reader
 
-
-def _bundled_model() -> Path:
-    """tiny_models/pebble: shipped as the package ``moerun_models`` (pyproject.toml maps it to tiny_models/),
-    found through importlib.resources in any install; the source tree's copy when moerun runs uninstalled."""
-    try:
-        from importlib.resources import files
-
-        found = Path(str(files("moerun_models") / "pebble"))
-        if (found / "config.json").is_file():
-            return found
-    except (ImportError, TypeError, ValueError):
-        pass
-    return Path(__file__).resolve().parent.parent / "tiny_models" / "pebble"
-
-
-BUNDLED_MODEL = _bundled_model()
+BUNDLED_MODEL = bundled_root() / DEFAULT
 
 
 def default_model_dir() -> Path:
-    env = os.environ.get("MOERUN_MODEL")
-    return Path(env) if env else BUNDLED_MODEL
+    """``$MOERUN_MODEL`` if set, else the bundled default model (moerun.files.bundled)."""
+    return resolve_model(None)
 
 
 @dataclass

@@ -17,11 +17,12 @@ import numpy as np
 
 from moerun import policies
 from moerun.errors import BadOption
+from moerun.files.bundled import resolve_model
 from moerun.files.store import MECHANISMS, ModelStore
 from moerun.files.trace import Trace
 from moerun.model.tokenizer import Tokenizer
 from moerun.runtime.budget import Budget, plan_budget
-from moerun.runtime.engine import Engine, default_model_dir
+from moerun.runtime.engine import Engine
 from moerun.runtime.memwatch import MemWatch
 from moerun.runtime.pool import ExpertPool
 from moerun.runtime.reader import STALL_TIMEOUT_S, Reader
@@ -199,7 +200,7 @@ def load(model_dir: str | os.PathLike | None = None, options: EngineOptions | No
 def open_engine(model_dir, o: EngineOptions) -> Engine:
     """The engine of checked options: sizes the budget, allocates the pool, starts the reader if asked."""
     watch = MemWatch()
-    store = ModelStore.open(model_dir if model_dir is not None else default_model_dir())
+    store = ModelStore.open(resolve_model(model_dir))
     reader = None
     try:
         c = store.config

@@ -16,10 +16,10 @@ import numpy as np
 
 from moerun.checks.score import window_nll
 from moerun.errors import BadInput, BadOption
+from moerun.files.bundled import resolve_model
 from moerun.files.fileio import check_output
 from moerun.files.trace import Trace, read_trace, write_trace
 from moerun.model.tokenizer import read_text_file
-from moerun.runtime.engine import default_model_dir
 from moerun.runtime.options import load
 from moerun.sim.report import DEFAULT_POLICIES, parse_policies, parse_slots, run_replay
 from moerun.units import parse_size
@@ -191,7 +191,7 @@ def record(trace: str | os.PathLike, model_dir: str | os.PathLike | None = None,
     Teacher-forced, window by window; an interrupted run writes the windows it routed as a partial trace.
     ``progress(windows_done, windows_total, tokens_routed)`` after each window.
     """
-    model_dir = Path(model_dir) if model_dir is not None else default_model_dir()
+    model_dir = resolve_model(model_dir)
     text_path = Path(text) if text is not None else model_dir / "heldout.txt"
     if text is None and not text_path.exists():
         raise BadInput(f"{model_dir} has no heldout.txt; name a text with --text FILE")
