@@ -106,3 +106,58 @@ def test_the_time_model_of_a_shared_pool_counts_the_misses_replay_counts(policy)
         counts = shared_counts(trace, policy, [total], fast=False)[total]
         assert (p.accesses, p.misses) == (sum(c.accesses for c in counts), sum(c.misses for c in counts)), total
         assert p.misses > 0
+
+
+def _lru_that_admits_nothing():
+    """LRU whose ``admits`` always keeps the victim: a guess may fill a free slot, never evict."""
+    from moerun.policies import LRU
+
+    class NoAdmitLRU(LRU):
+        name = "lru-no-admit"
+
+        def admits(self, key, victim, now):
+            return False
+
+    return NoAdmitLRU
+
+
+@pytest.mark.xfail(strict=True, reason="issue 21: the planner never asks Policy.admits (fixed by the decision core)")
+def test_the_time_model_places_no_guess_the_policy_does_not_admit(monkeypatch):
+    # The pool and replay ask Policy.admits before a guess evicts; so must the time model.  Two layers,
+    # top-1, one slot each: layer 0 always uses 5, layer 1 alternates 0, 1 and layer 0 guesses it
+    # perfectly.  Only the first guess finds a free slot; every later one would evict and is refused.
+    from moerun import policies
+    from moerun.sim.prefetch import simulate_prefetch
+
+    cls = _lru_that_admits_nothing()
+    monkeypatch.setitem(policies._REGISTRY, cls.name, cls)
+    n = 8
+    experts = np.zeros((n, 2, 1), np.int64)
+    experts[:, 0, 0] = 5
+    experts[:, 1, 0] = np.arange(n) % 2
+    guesses = np.full((n, 2, 1, 1), -1, np.int64)
+    guesses[:, 0, 0, 0] = experts[:, 1, 0]
+    trace = Trace(experts, guesses=guesses, meta={"n_experts": 6, "prefill_tokens": 0})
+    p = predict(trace, [1, 1], cls.name, 1, 1, _costs(L=2, page=5))
+    replayed = simulate_prefetch(trace, cls, 1, 1, 1)
+    assert p.prefetch_loads == sum(c.loads for c in replayed) == 1
+    assert p.misses == sum(c.misses for c in replayed) == n  # layer 0's first access, then every access of layer 1
+
+
+@pytest.mark.xfail(strict=True, reason="issue 21: in a shared pool the time model lets a guess evict the current layer's expert")
+def test_a_guess_in_a_shared_pool_never_evicts_an_expert_the_current_layer_computes():
+    # One shared slot, top-1: at layer 0's prefetch point the only resident is the expert layer 0 is about
+    # to compute, so a guess for layer 1 has nowhere to go (the pool and replay pin the current layer).
+    from moerun.policies import LRU
+    from moerun.sim.prefetch import simulate_prefetch
+
+    n = 8
+    experts = np.zeros((n, 2, 1), np.int64)
+    experts[:, 0, 0] = 5
+    experts[:, 1, 0] = 1
+    guesses = np.full((n, 2, 1, 1), -1, np.int64)
+    guesses[:, 0, 0, 0] = 2  # a wrong guess
+    trace = Trace(experts, guesses=guesses, meta={"n_experts": 6, "prefill_tokens": 0})
+    p = predict(trace, [1], "lru", 1, 1, _costs(L=2, page=5), shared=True)
+    replayed = simulate_prefetch(trace, LRU, 1, 1, 1, shared=True)
+    assert p.prefetch_loads == sum(c.loads for c in replayed) == 0
