@@ -121,7 +121,6 @@ def _lru_that_admits_nothing():
     return NoAdmitLRU
 
 
-@pytest.mark.xfail(strict=True, reason="issue 21: the planner never asks Policy.admits (fixed by the decision core)")
 def test_the_time_model_places_no_guess_the_policy_does_not_admit(monkeypatch):
     # The pool and replay ask Policy.admits before a guess evicts; so must the time model.  Two layers,
     # top-1, one slot each: layer 0 always uses 5, layer 1 alternates 0, 1 and layer 0 guesses it
@@ -144,7 +143,6 @@ def test_the_time_model_places_no_guess_the_policy_does_not_admit(monkeypatch):
     assert p.misses == sum(c.misses for c in replayed) == n  # layer 0's first access, then every access of layer 1
 
 
-@pytest.mark.xfail(strict=True, reason="issue 21: in a shared pool the time model lets a guess evict the current layer's expert")
 def test_a_guess_in_a_shared_pool_never_evicts_an_expert_the_current_layer_computes():
     # One shared slot, top-1: at layer 0's prefetch point the only resident is the expert layer 0 is about
     # to compute, so a guess for layer 1 has nowhere to go (the pool and replay pin the current layer).
