@@ -64,9 +64,8 @@ def prefill_schedule(rows: Iterable[Iterable[int]]) -> list[int]:
 class Decisions:
     """A pool's decisions over its ``Residency`` objects (one per layer, or one shared by all)."""
 
-    shared = False
-
-    def __init__(self, res_of: list[Residency], base: list[int]):
+    def __init__(self, res_of: list[Residency], base: list[int], shared: bool = False):
+        self.shared = shared  # one pool for every layer: a guess never evicts the current layer's experts
         self.res_of = res_of
         self.base = base  # key of (layer, expert): base[layer] + expert
         self.pinned: tuple = ()  # keys of the layer being computed (never victims, never evicted by a guess)
@@ -87,13 +86,18 @@ class Decisions:
         return self.base[layer] + expert in self.res_of[layer].slot_of
 
     # ------------------------------------------------------------------ a layer's accesses
-    def route(self, layer: int, ids: Sequence[int], probs=None) -> tuple:
+    def route(self, layer: int, ids: Sequence[int] | None, probs=None, keys: tuple | None = None) -> tuple:
         """A decode layer has routed to ``ids`` (ascending): pin them, tell the policy (``Policy.routed``);
-        returns the pinned keys."""
+        returns the pinned keys.  A driver that holds the keys already passes them (``ids`` may then be
+        None: they are worked out only if the policy listens)."""
         base = self.base[layer]
-        keys = self.pinned = tuple(ids) if not base else tuple(base + e for e in ids)
+        if keys is None:
+            keys = tuple(ids) if not base else tuple(base + e for e in ids)
+        self.pinned = keys
         if self.signals:
             r = self.res_of[layer]
+            if ids is None:
+                ids = [k - base for k in keys]
             r.policy.routed(layer, ids, probs, r.now)
         return keys
 
@@ -141,10 +145,17 @@ class Decisions:
         key = self.base[layer] + expert
         self.pinned = (key,)
         hit, slot, victim = self.res_of[layer].access(key, self.pinned)
-        fresh = self.fresh
+        used, wasted, fresh = self.used, self.wasted, self.fresh
+        used.clear()
+        wasted.clear()
         if fresh:
-            fresh.discard(key)
-            fresh.discard(victim)
+            if hit:
+                if key in fresh:
+                    fresh.discard(key)
+                    used.append(key)
+            elif victim in fresh:
+                fresh.discard(victim)
+                wasted.append(victim)
         return hit, slot, victim
 
     def done(self) -> None:
@@ -152,9 +163,6 @@ class Decisions:
         self.pinned = ()
 
     # ------------------------------------------------------------------ guesses
-    def _protected(self, keys: tuple) -> tuple:
-        return keys
-
     def place(self, target: int, guesses: Sequence[int], pays: Callable[[], bool] | None = None) -> Iterator[Placed | Declined]:
         """Place the guesses for layer ``target`` (best first): one record per guess, in order.
 
@@ -166,7 +174,9 @@ class Decisions:
         ``forget``."""
         r = self.res_of[target]
         base = self.base[target]
-        keep = self._protected(tuple(base + e for e in guesses))
+        keep = tuple(base + e for e in guesses)
+        if self.shared:
+            keep += self.pinned
         fresh = self.fresh
         for e in guesses:
             key = base + e
@@ -233,18 +243,21 @@ class Quotas(Decisions):
         super().__init__(res_of, [0] * len(res_of))
 
 
+    @classmethod
+    def of_layer(cls, layer: int, capacity: int, policy: Policy) -> Quotas:
+        """The quota of one layer alone (replay walks one layer's accesses at a time)."""
+        one = cls.__new__(cls)
+        Decisions.__init__(one, [Residency(capacity, policy)] * (layer + 1), [0] * (layer + 1))
+        return one
+
+
 class Shared(Decisions):
     """One pool for every layer; keys are ``layer * n_experts + expert``.  A guess never evicts an expert
     the layer being computed has chosen."""
 
-    shared = True
-
     def __init__(self, capacity: int, policy: Policy, n_layers: int, n_experts: int):
         r = Residency(capacity, policy)
-        super().__init__([r] * n_layers, [layer * n_experts for layer in range(n_layers)])
-
-    def _protected(self, keys: tuple) -> tuple:
-        return keys + self.pinned
+        super().__init__([r] * n_layers, [layer * n_experts for layer in range(n_layers)], shared=True)
 
 
 def make_decisions(policy_for: Callable[[int], Policy], capacities: Sequence[int], n_layers: int, n_experts: int,
