@@ -236,7 +236,8 @@ class _Sim:
         self.timing = Timing(self.c["page"])
         self.timing.copy_ns = self.c["copy"]
         self.timing.late = costs.late
-        self.arrive: dict = {}  # key -> (Transfer or reader end time) of reads not yet taken in
+        self.arrive: dict = {}  # (layer, expert) as one number -> Transfer or reader end time, of reads not yet taken in
+        self.off = [0] * L if shared else [layer * E for layer in range(L)]  # a pool key + off[layer]: that number
         self.now = 0.0
         self.stall = 0.0
         self.loads = 0
@@ -256,16 +257,17 @@ class _Sim:
         core.done()
 
     def access_layer(self, layer: int, chosen: list[int], probs) -> tuple[list, set]:
-        """The layer's routing: drop its unchosen guesses, access its experts; returns the keys whose bytes
-        may not be there yet, and the keys that missed."""
-        core, link, timing = self.core, self.link, self.timing
+        """The layer's routing: drop its unchosen guesses, access its experts; returns the experts (as keys
+        of ``arrive``) whose bytes may not be there yet, and those that missed."""
+        core, link, timing, arrive = self.core, self.link, self.timing, self.arrive
         now = int(self.now)
+        off = self.off[layer]
 
         def drop(key: int) -> bool:  # a guess not chosen: its link time given back, unless it has begun
-            a = self.arrive.get(key)
+            a = arrive.get(key + off)
             if link is None or a is None or link.drop(a, now):
                 core.forget(layer, key)
-                self.arrive.pop(key, None)
+                arrive.pop(key + off, None)
                 timing.outcome(False)
                 return True
             return False
@@ -280,18 +282,19 @@ class _Sim:
             if victim is not None:
                 if victim in wasted:
                     timing.outcome(False)
-                self.arrive.pop(victim, None)
+                arrive.pop(victim + off, None)
+            key += off
             if hit:
-                if key in used:
+                if key - off in used:
                     timing.outcome(True)
-                    a = self.arrive.get(key)
+                    a = arrive.get(key)
                     if link is not None and a is not None and a.end < 0:
                         link.promote(a, now)
-                if key in self.arrive:
+                if key in arrive:
                     waiting.append(key)
             else:
                 missing.add(key)
-                self.arrive[key] = link.book(self.page, now, True) if link is not None else None
+                arrive[key] = link.book(self.page, now, True) if link is not None else None
                 waiting.append(key)
         return waiting, missing
 
@@ -307,14 +310,15 @@ class _Sim:
                 arrival = max(self.reader_free, self.now) + self.page
             return guess_pays(t, self.c["page"], arrival, need, self.c["place"])
 
+        off = self.off[target]
         for out in self.core.place(target, guesses, pays):
             if type(out) is not Placed:
                 continue
-            key = out.key
+            key = out.key + off
             if out.victim is not None:
                 if out.wasted:
                     t.outcome(False)
-                self.arrive.pop(out.victim, None)
+                self.arrive.pop(out.victim + off, None)
             self.now += self.c["place"]
             self.loads += 1
             if self.link is not None:

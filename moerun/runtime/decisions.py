@@ -69,7 +69,8 @@ class Decisions:
         self.res_of = res_of
         self.base = base  # key of (layer, expert): base[layer] + expert
         self.pinned: tuple = ()  # keys of the layer being computed (never victims, never evicted by a guess)
-        self.fresh: set[Key] = set()  # keys a guess placed that no layer has used since
+        # per layer, keys a guess placed that no layer has used since (one set for a shared pool)
+        self.fresh_of: list[set[Key]] = [set()] * len(res_of) if shared else [set() for _ in res_of]
         self.guessed: list[list[Key]] = [[] for _ in res_of]  # guesses placed for each layer, not yet met by it
         self.used: list[Key] = []  # of the last step: fresh guesses it hit
         self.wasted: list[Key] = []  # of the last step: fresh guesses it evicted
@@ -117,7 +118,7 @@ class Decisions:
                     out.append(r.access(keys[i], (keys[i],)))
                 except NoVictim:
                     raise NoVictim(out) from None
-        fresh = self.fresh
+        fresh = self.fresh_of[layer]
         if fresh:
             used, wasted = self.used, self.wasted
             used.clear()
@@ -145,7 +146,7 @@ class Decisions:
         key = self.base[layer] + expert
         self.pinned = (key,)
         hit, slot, victim = self.res_of[layer].access(key, self.pinned)
-        used, wasted, fresh = self.used, self.wasted, self.fresh
+        used, wasted, fresh = self.used, self.wasted, self.fresh_of[layer]
         used.clear()
         wasted.clear()
         if fresh:
@@ -177,7 +178,7 @@ class Decisions:
         keep = tuple(base + e for e in guesses)
         if self.shared:
             keep += self.pinned
-        fresh = self.fresh
+        fresh = self.fresh_of[target]
         for e in guesses:
             key = base + e
             if key in r.slot_of:
@@ -211,7 +212,7 @@ class Decisions:
         if not keys:
             return []
         self.guessed[layer] = []
-        base, fresh = self.base[layer], self.fresh
+        base, fresh = self.base[layer], self.fresh_of[layer]
         out = []
         seen = set()
         for key in keys:
@@ -223,12 +224,12 @@ class Decisions:
 
     def forget(self, layer: int, key: Key) -> int:
         """A key's load failed or was dropped: it leaves the pool; returns its slot, now free."""
-        self.fresh.discard(key)
+        self.fresh_of[layer].discard(key)
         return self.res_of[layer].remove(key)
 
-    def claim(self, key: Key) -> None:
-        """A guess a layer now uses otherwise than through an access (it is no longer fresh)."""
-        self.fresh.discard(key)
+    def fresh(self, layer: int) -> set[Key]:
+        """Keys of ``layer``'s pool a guess placed that no layer has used since."""
+        return self.fresh_of[layer]
 
 
 class Quotas(Decisions):

@@ -157,6 +157,6 @@ def _prefetch_walk(plan: LayerPlan, core: Decisions, before, after, n_layers: in
                     pc.prefill_loads += 1
                 if victim in wasted:
                     out[owner[victim]].wasted += 1
-    for key in core.fresh:
+    for key in core.fresh(plan.layer):
         out[owner[key]].wasted += 1
     return out

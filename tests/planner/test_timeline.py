@@ -159,3 +159,24 @@ def test_a_guess_in_a_shared_pool_never_evicts_an_expert_the_current_layer_compu
     p = predict(trace, [1], "lru", 1, 1, _costs(L=2, page=5), shared=True)
     replayed = simulate_prefetch(trace, LRU, 1, 1, 1, shared=True)
     assert p.prefetch_loads == sum(c.loads for c in replayed) == 0
+
+
+@pytest.mark.parametrize("emulated", [True, False], ids=["emulated link", "real reads"])
+def test_quotas_per_layer_do_not_depend_on_which_ids_other_layers_use(emulated):
+    # Each layer's quota is its own: giving every layer its own range of expert ids (layer l's expert e
+    # becomes l * E + e) changes no prediction.  (Before the decision core, the time model kept one
+    # table of guesses and transfers keyed by expert id for every layer, so layers shared entries.)
+    rng = np.random.default_rng(4)
+    base = _random_trace(rng, tokens=80, layers=3, experts=8, k=2)
+    guesses = rng.integers(0, 8, (80, 3, 2, 3))
+    costs = Costs([30 * US] * 3, 4 * US, 9 * US, 80 * US, "test", 3 * US, emulated=emulated, copy=5 * US, place=2 * US)
+    off = (np.arange(3) * 8)[None, :, None]
+    same = Trace(base.experts, guesses=guesses, meta={"n_experts": 8, "prefill_tokens": 0})
+    target = np.arange(3)[:, None] + np.arange(1, 3)[None, :]  # guesses [src, j - 1] are for layer src + j
+    moved = guesses + np.where(target < 3, target * 8, 0)[None, :, :, None]
+    apart = Trace(base.experts + off, guesses=moved, meta={"n_experts": 24, "prefill_tokens": 0})
+    for slots in ([3, 3, 3], [2, 4, 5]):
+        a = predict(same, slots, "lru", 2, 2, costs)
+        b = predict(apart, slots, "lru", 2, 2, costs)
+        assert (a.misses, a.prefetch_loads) == (b.misses, b.prefetch_loads)
+        assert a.step_s == pytest.approx(b.step_s, rel=1e-12)
