@@ -347,7 +347,7 @@ def test_ctrl_c_during_an_expert_read_exits_130_with_a_partial_trace(synth_model
     def load(**kw):
         eng = real_load(**kw)
 
-        def hook(layer, expert):
+        def hook(layer, expert, guess):
             if threading.current_thread().name != "moerun-prefetch" and eng.pool.step >= 5:
                 raise KeyboardInterrupt
 

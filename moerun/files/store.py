@@ -186,7 +186,9 @@ class ModelStore:
         self.mechanism = "pread"
         self.link: Link | None = None  # an emulated link (set link_rate), None = real speed
         self.cold_reads = False  # drop each expert's pages from the page cache after reading it: every read is cold
-        self.fault_hook = None  # test hook: called as hook(layer, expert) before each read
+        # the one fault seam (tests): hook(layer, expert, guess) before every expert read; for a guess the
+        # reader process reads, when it is handed over.  Raising fails that read.
+        self.fault_hook = None
         self._fd = os.open(self.path, os.O_RDONLY)
         self._map: mmap.mmap | None = None
         self._map_addr = 0
@@ -326,13 +328,19 @@ class ModelStore:
             wait_until(max(end, now))
         return time.monotonic_ns() - t0
 
-    def copy_in(self, layer: int, expert: int, dst: np.ndarray) -> int:
-        """Copy one expert's bytes into ``dst`` at the storage's real speed (no emulated link); return ns."""
+    def fault(self, layer: int, expert: int, guess: bool = False) -> None:
+        """The fault seam: runs ``fault_hook`` (if set) before a read of the expert; ``guess`` for a guess's read."""
+        if self.fault_hook is not None:
+            self.fault_hook(layer, expert, guess)
+
+    def copy_in(self, layer: int, expert: int, dst: np.ndarray, guess: bool = False) -> int:
+        """Copy one expert's bytes into ``dst`` at the storage's real speed (no emulated link); return ns.
+        ``guess``: the read is a guess's (as the fault seam is told)."""
         r = self.ranges[layer][expert]
         t0 = time.monotonic_ns()
         try:
             if self.fault_hook is not None:
-                self.fault_hook(layer, expert)
+                self.fault_hook(layer, expert, guess)
             if self.mechanism == "pread":
                 try:
                     pread_into(self._fd, r.start, dst[: r.nbytes])

@@ -39,7 +39,8 @@ from moerun.files.store import ModelStore
 from moerun.runtime import _reader_child as reader_child
 from moerun.runtime.budget import Budget
 from moerun.runtime.clock import wait_until
-from moerun.runtime.guesses import GuessPlacement, Timing
+from moerun.runtime.decisions import RESIDENT, Placed, make_decisions
+from moerun.runtime.guesses import Timing, guess_pays, worth_guessing
 from moerun.runtime.residency import NoVictim, Residency
 from moerun.runtime.slots import EMPTY, HIT, LOADING, MISS, PENDING, PREFETCHED, READY, PoolStats, Slot
 from moerun.runtime.sources import ExpertSource, aligned_block
@@ -50,7 +51,7 @@ def rd_poll_none(reader, s: Slot) -> bool:
     return reader is None or reader.poll(s.index, s.gen) is None
 
 
-class ExpertPool(GuessPlacement, ExpertSource):
+class ExpertPool(ExpertSource):
     """Slots, residency per layer (or shared), and the expert-source interface for the model.
 
     Everything here runs on the compute thread; with a reader (prefetch on), guesses are read by
@@ -83,24 +84,16 @@ class ExpertPool(GuessPlacement, ExpertSource):
             raise BadOption(f"policy {evict!r} needs the future of the trace; use it with 'moerun replay' only")
         self.evict = evict
         if self.shared:
-            r = Residency(n_slots, policies.make_policy(policy_cls, L * E, E))
-            self.res_of = [r] * L
-            self.base = [layer * E for layer in range(L)]  # key of (layer, expert): base[layer] + expert
+            self.core = make_decisions(lambda _: policies.make_policy(policy_cls, L * E, E), [n_slots], L, E, True)
         else:
-            self.res_of = []
-            start = 0
-            for n in budget.slots:
-                self.res_of.append(Residency(n, policies.make_policy(policy_cls, E), list(range(start, start + n))))
-                start += n
-            self.base = [0] * L
-        self.signals = type(self.res_of[0].policy).routed is not policies.Policy.routed
-        self.pinned: tuple = ()
+            self.core = make_decisions(lambda _: policies.make_policy(policy_cls, E), budget.slots, L, E, False)
+        self.res_of = self.core.res_of
+        self.base = self.core.base  # key of (layer, expert): base[layer] + expert
         self.stats = PoolStats(L)
         self.progress = -1  # step * n_layers + layer of the layer being computed
         self.reader = reader  # guesses are read by it while it is alive (real reads only)
         self.link = store.link  # the emulated link, or None
         self.timing = Timing(self.link.ns(store.expert_nbytes) if self.link is not None else 100_000.0)
-        self._guessed: list[list[Slot]] = [[] for _ in range(L)]  # guesses placed for each layer, not yet met by it
         self._owed: list[Slot] = []  # slots read here while the reader still held them
         self._pending: list[Slot] = []  # guesses booked on the emulated link, bytes not copied yet
         self._prefill = False
@@ -111,6 +104,11 @@ class ExpertPool(GuessPlacement, ExpertSource):
     # ------------------------------------------------------------------ keys
     def key(self, layer: int, expert: int) -> int:
         return self.base[layer] + expert
+
+    @property
+    def pinned(self) -> tuple:
+        """Keys of the layer being computed (the decision core's)."""
+        return self.core.pinned
 
     def residency(self, layer: int) -> Residency:
         return self.res_of[layer]
@@ -222,7 +220,7 @@ class ExpertPool(GuessPlacement, ExpertSource):
             self.timing.outcome(False)
         if s.guess and s.state != PENDING:
             self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
-        s.res.remove(self.key(s.layer, s.expert))
+        self.core.forget(s.layer, self.key(s.layer, s.expert))
         s.state = EMPTY
         s.guess = s.dropped = False
         s.layer = s.expert = -1
@@ -249,25 +247,25 @@ class ExpertPool(GuessPlacement, ExpertSource):
         s.layer = s.expert = -1
         s.res = s.transfer = None
 
-    def _access_step(self, r: Residency, keys: tuple) -> list:
-        """``Residency.access_step`` for a decode layer, waiting while every evictable slot has a read
+    def _serve(self, layer: int, r: Residency, keys: tuple) -> list:
+        """The decision core's accesses for a decode layer, waiting while every evictable slot has a read
         outstanding."""
         done = None
         while True:
             try:
-                return r.access_step(keys, keys, done)
+                return self.core.serve(layer, done)
             except NoVictim as e:  # a background read is outstanding in every free slot; one will finish
                 done = e.done
                 self._wait_for_room(r, keys)
 
-    def _access(self, r: Residency, key: int, pinned) -> tuple[bool, int]:
-        """``Residency.access``, waiting while every evictable slot has a read outstanding."""
+    def _prefill_access(self, layer: int, expert: int) -> tuple[bool, int]:
+        """The decision core's prefill access, waiting while every evictable slot has a read outstanding."""
         while True:
             try:
-                hit, slot, victim = r.access(key, pinned)
+                hit, slot, victim = self.core.prefill(layer, expert)
                 break
             except NoVictim:  # a background read is outstanding in every free slot; one will finish
-                self._wait_for_room(r, pinned)
+                self._wait_for_room(self.res_of[layer], self.core.pinned)
         if victim is not None:
             self._evicted(self.slots[slot])
         return hit, slot
@@ -301,23 +299,21 @@ class ExpertPool(GuessPlacement, ExpertSource):
             self._events = self._all_resident[layer]
             return
         ids = chosen[0].tolist()
-        base = self.base[layer]
         r = self.res_of[layer]
+        core = self.core
         now = time.monotonic_ns()
         self.progress = self.step * self.config.n_layers + layer
         if self._owed:
             self._settle_owed()
-        if self._guessed[layer]:
+        if core.guessed[layer]:
             self._meet_guesses(layer, ids, now)
         self.timing.layer_started(now)
-        pinned = self.pinned = tuple(ids) if not base else tuple(base + e for e in ids)
-        if self.signals:
-            r.policy.routed(layer, ids, probs[0], r.now)  # optional per-step signal (Policy.routed)
+        pinned = core.route(layer, ids, probs[0])  # pins them; the optional per-step signal (Policy.routed)
         slots, link = self.slots, self.link
         events = {}
         misses = 0
         ready = True  # every chosen expert usable now: compute_order has nothing to sort
-        for e, (hit, slot, victim) in zip(ids, self._access_step(r, pinned)):
+        for e, (hit, slot, victim) in zip(ids, self._serve(layer, r, pinned)):
             s = slots[slot]
             if not hit:
                 if victim is not None:
@@ -422,7 +418,7 @@ class ExpertPool(GuessPlacement, ExpertSource):
         if the read fails, the slot is left EMPTY for a layer that claimed it to read itself (where a
         lasting fault raises), or given back if none did; False then."""
         try:
-            ns = self.store.copy_in(s.layer, s.expert, s.buf)
+            ns = self.store.copy_in(s.layer, s.expert, s.buf, True)
         except Exception:
             self.stats.prefetch_failed += 1
             if s.transfer is not None:
@@ -480,7 +476,7 @@ class ExpertPool(GuessPlacement, ExpertSource):
         try:
             ns = self.store.copy_in(s.layer, s.expert, s.buf)
         except BaseException:
-            s.res.remove(self.key(s.layer, s.expert))
+            self.core.forget(s.layer, self.key(s.layer, s.expert))
             s.state = EMPTY
             s.layer = s.expert = -1
             s.res = s.transfer = None
@@ -508,12 +504,10 @@ class ExpertPool(GuessPlacement, ExpertSource):
 
     def _prefill_weights(self, layer: int, expert: int):
         """Prefill: each needed expert is accessed (and paged in) once per layer, pinned alone."""
-        key = self.key(layer, expert)
         self.progress = max(self.progress, -1)
-        pinned = self.pinned = (key,)
         r = self.res_of[layer]
         t0 = time.monotonic_ns()
-        hit, slot = self._access(r, key, pinned)
+        hit, slot = self._prefill_access(layer, expert)
         s = self.slots[slot]
         if hit:
             s.guess = s.dropped = False
@@ -539,5 +533,121 @@ class ExpertPool(GuessPlacement, ExpertSource):
             stall = sum(ev[3] for ev in self._events.values())
             compute = time.monotonic_ns() - self._layer_t0 - stall
             self.recorder.events(self.step, layer, self._events, compute)
-        self.pinned = ()
+        self.core.done()
 
+
+    # ------------------------------------------------------------------ guesses (the decision core places them)
+    def _meet_guesses(self, layer: int, ids: list[int], now: int) -> None:
+        """The layer has routed: the decision core offers its unchosen guesses for dropping; each is dropped
+        (its link time and slot given back) unless its transfer has begun, or (no link) it was read."""
+        link, slots, r = self.link, self.slots, self.res_of[layer]
+
+        def drop(key: int) -> bool:
+            s = slots[r.slot_of[key]]
+            if link is not None:
+                if s.transfer is not None and not link.drop(s.transfer, now):
+                    return False  # its transfer had begun: it arrives and stays resident, unused so far
+            elif s.state != LOADING:
+                return False  # already read: keep it
+            self.stats.prefetch_dropped += 1
+            if s.state == LOADING or s.owed:  # the reader may still write it: given back once it answers
+                if s.state == LOADING:
+                    self.reader.cancel(s.index, s.gen)
+                s.dropped = True
+            else:  # never (officially) arrived: its bytes, copied or not, are not to be used
+                self._give_back(s)
+            return True
+
+        self.core.meet(layer, ids, drop)
+        if self._pending:
+            self._pending = [s for s in self._pending if s.state in (PENDING, LOADING) and s.guess]
+
+    def _arrival(self, now: int) -> int:
+        """When a guess handed over now should arrive."""
+        if self.link is not None:
+            return self.link.backlog_until(now) + self.link.ns(self.store.expert_nbytes)
+        return now + (self.timing.outstanding + 1) * self.timing.read_ns
+
+    def worth_guessing(self) -> bool:
+        """Could any guess pay at all?  Not when even one arriving in time would save less than it costs
+        (``prefetch``'s rule with no lateness): then the prefetch point is skipped, guess rule included."""
+        return self._all_resident is None and worth_guessing(self.timing, self._read_ns(), self.place_ns)
+
+    def _read_ns(self) -> float:
+        """One expert read: over the emulated link, or as the reader's reads have taken."""
+        return self.timing.read_ns if self.link is None else self.link.ns(self.store.expert_nbytes)
+
+    def prefetch_point(self) -> None:
+        """The model reached a prefetch point (its guesses are placed next): a lingering reader is told
+        when to expect the next one."""
+        nxt = self.timing.point(time.monotonic_ns())
+        if self.reader is not None:
+            self.reader.expect(nxt)
+
+    def prefetch(self, layer: int, guesses: list[int], target: int) -> None:
+        """Place the guesses for ``layer`` (best first) and hand their reads to the reader (compute thread).
+
+        The decision core (``Decisions.place``) decides which are read and where: a guess already
+        resident or in flight costs nothing more; another is read only if it pays (its expected saving,
+        the read time it would save its layer if used times the share of guesses used so far, must
+        exceed what it costs the compute thread: placing it, and a copy of its own as often as the
+        reader has been late; ``moerun.runtime.guesses``), and the policy must rather hold it than its
+        victim (``Policy.admits``).  It never evicts an expert pinned by the layer being computed
+        (shared pool), a slot being read, or another guess of the same round.  Here each placed guess
+        is handed over; one the fault seam refuses is forgotten.
+        """
+        st = self.stats
+        st.prefetch_guesses += len(guesses)
+        if not self._reading():
+            return
+        now = time.monotonic_ns()
+        timing = self.timing
+        timing.mark = now
+        need_at = timing.need_at(now, target - self.progress)
+        read = self._read_ns()
+        link, nbytes, slots, r = self.link, self.store.expert_nbytes, self.slots, self.res_of[layer]
+
+        def pays() -> bool:
+            return guess_pays(timing, read, self._arrival(now), need_at, self.place_ns)
+
+        for out in self.core.place(layer, guesses, pays):
+            if type(out) is not Placed:
+                if out.why is RESIDENT:
+                    st.prefetch_resident += 1
+                else:
+                    st.prefetch_declined += 1
+                continue
+            s = slots[out.slot]
+            if out.victim is not None:
+                self._evicted(s)
+            s.layer, s.expert, s.guess, s.res = layer, out.key - self.base[layer], True, r
+            st.prefetch_loads += 1
+            if not self._hand_over(s):
+                st.prefetch_failed += 1  # forget the guess; its layer reads the expert if it needs it
+                s.guess = False
+                self.core.forget(layer, out.key)
+                s.layer = s.expert = -1
+                s.res = None
+                continue
+            if link is not None:
+                s.transfer = link.book(nbytes, now, False)
+
+    def _hand_over(self, s: Slot) -> bool:
+        """Give a guess's read to the reader (with an emulated link and no live reader, mark it PENDING
+        for the compute thread to copy); False (slot left as it was) if the fault seam refused it."""
+        s.gen += 1
+        if self.link is not None and not (self.reader is not None and self.reader.alive):
+            self._pending.append(s)
+            s.state = PENDING  # the copy meets the fault seam
+            return True
+        try:
+            self.store.fault(s.layer, s.expert, True)  # the reader's read meets the seam here, when handed over
+        except Exception:
+            return False
+        if self.link is not None:
+            self._pending.append(s)  # the compute thread may take it over while it waits anyway
+        s.state = LOADING
+        s.res.busy.add(self.key(s.layer, s.expert))
+        self.timing.outstanding += 1
+        self.reader.submit(s.index, s.gen, s.layer, s.expert)
+        return True

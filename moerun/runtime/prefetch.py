@@ -91,7 +91,6 @@ class Prefetcher:
         self.n = n_guesses
         self.lookahead = lookahead
         self.reader = reader
-        self.hook = None  # test hook: callable(layer, expert) run before each guess is handed over; raising fails it
 
     def __call__(self, layer: int, h: np.ndarray) -> None:
         """Layer ``layer``'s prefetch point (compute thread, one token)."""
@@ -101,7 +100,7 @@ class Prefetcher:
         base = pool.step * pool.config.n_layers
         pool.prefetch_point()
         for j, guesses in enumerate(self.rule.top(layer, h, self.n), 1):
-            pool.prefetch(layer + j, guesses, base + layer + j, self.hook)
+            pool.prefetch(layer + j, guesses, base + layer + j)
 
     @property
     def alive(self) -> bool:
