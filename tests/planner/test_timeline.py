@@ -92,22 +92,6 @@ def test_prefetch_off_is_the_same_prediction_step_by_step_and_summed():
         assert a.step_s == pytest.approx(b.step_s, rel=1e-6) and a.stall_s == pytest.approx(b.stall_s, rel=1e-6)
 
 
-@pytest.mark.parametrize("policy", ["orbit", "markov", "lru"])
-def test_the_time_model_of_a_shared_pool_counts_the_misses_replay_counts(policy):
-    # the planner's shared-pool simulation tells the policy the routing as the live pool and replay do,
-    # so its misses equal replay's for every policy (prefetch off), orbit's layer cycle included
-    from moerun.sim.counts import shared_counts
-
-    rng = np.random.default_rng(11)
-    trace = _random_trace(rng, tokens=150, layers=3, experts=8, k=2)
-    costs = Costs([30 * US] * 3, 4 * US, 9 * US, 80 * US, "test", 3 * US, copy=5 * US)
-    for total in (3, 6, 12):
-        p = predict(trace, [total], policy, 0, 1, costs, shared=True, max_tokens=10**9)
-        counts = shared_counts(trace, policy, [total], fast=False)[total]
-        assert (p.accesses, p.misses) == (sum(c.accesses for c in counts), sum(c.misses for c in counts)), total
-        assert p.misses > 0
-
-
 def _lru_that_admits_nothing():
     """LRU whose ``admits`` always keeps the victim: a guess may fill a free slot, never evict."""
     from moerun.policies import LRU
