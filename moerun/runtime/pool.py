@@ -42,7 +42,7 @@ from moerun.runtime.clock import wait_until
 from moerun.runtime.decisions import RESIDENT, Placed, make_decisions
 from moerun.runtime.guesses import Timing, guess_pays, worth_guessing
 from moerun.runtime.residency import NoVictim, Residency
-from moerun.runtime.slots import EMPTY, HIT, LOADING, MISS, PENDING, PREFETCHED, READY, PoolStats, Slot
+from moerun.runtime.slots import EMPTY, HIT, LOADING, MISS, PENDING, PREFETCHED, READY, Event, PoolStats, Slot
 from moerun.runtime.sources import ExpertSource, aligned_block
 
 
@@ -136,12 +136,13 @@ class ExpertPool(ExpertSource):
                     break
                 slot, _ = r.insert(self.key(layer, e))
                 s = self.slots[slot]
-                self.store.copy_in(layer, e, s.buf)
-                s.layer, s.expert, s.state, s.res = layer, e, READY, r
+                s.claim(layer, e, r)
+                ns = self.store.copy_in(layer, e, s.buf)
+                s.fill(time.monotonic_ns(), ns)
         E = c.n_experts
         if all(all(self.resident(layer, e) for e in range(E)) for layer in range(c.n_layers)):
             self._all_resident = [
-                {e: [HIT, self.res_of[layer].slot_of[self.key(layer, e)], 0, 0] for e in range(E)} for layer in range(c.n_layers)
+                {e: Event(HIT, self.res_of[layer].slot_of[self.key(layer, e)]) for e in range(E)} for layer in range(c.n_layers)
             ]
 
     def _usable_at(self, s: Slot, now: int) -> int:
@@ -176,19 +177,17 @@ class ExpertPool(ExpertSource):
             return
         st = self.stats
         if s.dropped and (result != reader_child.OK or s.transfer is not None):
-            s.state = EMPTY
+            s.let_go()
             self._unclaimed(s, key)  # dropped while the reader held it: its bytes never (emulated: officially) arrived
             return
         s.dropped = False
         if result == reader_child.OK:
-            s.state = READY
-            s.ready_at = start + ns
-            s.read_ns = ns
+            s.arrive(start + ns, ns)
             self.timing.observed(ns)
             st.bytes_in += self.store.expert_nbytes
             st.prefetch_ns += ns
             return
-        s.state = EMPTY  # the reader has let go of it, without its bytes
+        s.let_go()  # the reader has let go of it, without its bytes
         if result == reader_child.FAILED:
             st.prefetch_failed += 1
         if s.guess:  # a guess no layer has claimed: forget it
@@ -207,24 +206,21 @@ class ExpertPool(ExpertSource):
 
     def _claimed_empty(self, s: Slot) -> None:
         """The slot stays with its expert, empty: the layer that wants it reads it (as a miss would)."""
-        s.state = EMPTY
-        s.guess = s.dropped = False
+        s.empty()
         if s.transfer is not None:
             self.link.drop(s.transfer, time.monotonic_ns())
             s.transfer = None
 
-    def _give_back(self, s: Slot) -> None:
-        """Forget a guess's slot: it becomes free (never while the reader may still write it)."""
+    def _give_back(self, s: Slot, read: bool | None = None) -> None:
+        """Forget a guess's slot: it becomes free (never while the reader may still write it).  A guess
+        counts as wasted bytes if it was ``read`` (by default: unless it is still PENDING)."""
         assert s.state != LOADING and not s.owed, "a slot the reader may still write is never given back"
         if s.guess:
             self.timing.outcome(False)
-        if s.guess and s.state != PENDING:
-            self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
+            if read if read is not None else s.state != PENDING:
+                self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
         self.core.forget(s.layer, self.key(s.layer, s.expert))
-        s.state = EMPTY
-        s.guess = s.dropped = False
-        s.layer = s.expert = -1
-        s.res = s.transfer = None
+        s.clear()
 
     def _settle_owed(self) -> None:
         for s in self._owed:
@@ -243,9 +239,7 @@ class ExpertPool(ExpertSource):
             s.guess = False
         if s.transfer is not None and s.transfer.end < 0:
             self.link.drop(s.transfer, time.monotonic_ns())
-        s.state = EMPTY
-        s.layer = s.expert = -1
-        s.res = s.transfer = None
+        s.clear()
 
     def _serve(self, layer: int, r: Residency, keys: tuple) -> list:
         """The decision core's accesses for a decode layer, waiting while every evictable slot has a read
@@ -318,10 +312,10 @@ class ExpertPool(ExpertSource):
             if not hit:
                 if victim is not None:
                     self._evicted(s)
-                s.layer, s.expert, s.state, s.res = layer, e, EMPTY, r  # read by weights() when the layer needs it
+                s.claim(layer, e, r)  # read by weights() when the layer needs it
                 # on its way from now, with an emulated link
                 s.transfer = link.book(self.store.expert_nbytes, now, True) if link is not None else None
-                events[e] = [MISS, slot, 0, 0]  # kind, slot, pagein ns, stall ns
+                events[e] = s.event.reset(MISS)
                 misses += 1
                 ready = False
             elif s.guess:
@@ -329,7 +323,7 @@ class ExpertPool(ExpertSource):
                 self.timing.outcome(True)
                 st.prefetch_used += 1
                 st.prefetch_hits[layer] += 1
-                events[e] = [PREFETCHED, slot, 0, 0]
+                events[e] = s.event.reset(PREFETCHED)
                 ready = False
                 if s.dropped:  # cancelled a moment ago, the reader still holding it: ask for it again
                     s.dropped = False
@@ -341,7 +335,7 @@ class ExpertPool(ExpertSource):
                     self.reader.promote(s.index, s.gen)
             else:
                 st.hits[layer] += 1
-                events[e] = [HIT, slot, 0, 0]
+                events[e] = s.event.reset(HIT)
                 if s.state != READY or s.transfer is not None:
                     ready = False
         st.accesses[layer] += len(ids)
@@ -358,7 +352,7 @@ class ExpertPool(ExpertSource):
         ready = []
         slots = self.slots
         for j, e in enumerate(ids):
-            s = slots[ev[e][1]]
+            s = slots[ev[e].slot]
             if s.state == LOADING:
                 self._settle(s)
             if s.state == READY and self._usable_at(s, now) <= now:
@@ -371,33 +365,29 @@ class ExpertPool(ExpertSource):
         ev = self._events.get(expert)
         if self._prefill or ev is None:
             return self._prefill_weights(layer, expert)
-        s = self.slots[ev[1]]
-        if ev[0] == PREFETCHED:  # did the reader copy it in time, or is it the compute thread's to copy?
+        s = self.slots[ev.slot]
+        kind = ev.kind
+        if kind == PREFETCHED:  # did the reader copy it in time, or is it the compute thread's to copy?
             self.timing.copied_here(s.state == PENDING or (s.state == LOADING and rd_poll_none(self.reader, s)))
         if s.state == READY and s.transfer is None:
-            if ev[0] == PREFETCHED:
+            if kind == PREFETCHED:
                 self._hidden(s, time.monotonic_ns())
             return self.codec.weights(s.bound)
         t0 = time.monotonic_ns()
         if s.state == READY and self._usable_at(s, t0) <= t0:
-            if ev[0] == PREFETCHED:
+            if kind == PREFETCHED:
                 self._hidden(s, t0)
             s.transfer = None  # arrived: later uses need not ask the link
             return self.codec.weights(s.bound)
-        if s.state == LOADING:
-            self._settle(s)
-            if s.state == LOADING:  # the reader has not got to it: read it here rather than wait
-                self._take_over(s)
-        elif s.state == PENDING:
-            self._copy(s)
+        self._bring_in(s)
         if s.state == EMPTY:  # a miss, or a guess whose read failed: read it here
-            ev[2] = self._read_here(s, False)
+            ev.pagein_ns = self._read_here(s, False)
         else:
             self._wait(self._usable_at(s, time.monotonic_ns()))  # the rest of its emulated transfer
-            if ev[0] == PREFETCHED:
+            if kind == PREFETCHED:
                 self._hidden(s, t0)
         stall = time.monotonic_ns() - t0
-        ev[3] = stall
+        ev.stall_ns = stall
         self.stats.stall_ns[layer] += stall
         s.transfer = None  # arrived: later uses need not ask the link
         return self.codec.weights(s.bound)
@@ -425,14 +415,12 @@ class ExpertPool(ExpertSource):
                 self.link.drop(s.transfer, time.monotonic_ns())
                 s.transfer = None
             if s.guess:
-                s.state = READY  # so that give_back counts it as it does a read guess
-                self._give_back(s)
+                self._give_back(s, read=True)  # counted as a read guess is
             else:
-                s.state = EMPTY
+                s.empty()
             return False
         self.timing.copied(ns)
-        s.state = READY
-        s.read_ns = ns
+        s.fill(time.monotonic_ns(), ns)
         self.stats.bytes_in += self.store.expert_nbytes
         self.stats.prefetch_ns += ns
         self.stats.prefetch_copied_here += 1
@@ -444,14 +432,18 @@ class ExpertPool(ExpertSource):
             margin = self.timing.copy_ns
             pending = self._pending
             while pending and time.monotonic_ns() + margin < deadline:
-                s = pending.pop(0)
-                if s.state == LOADING:
-                    self._settle(s)
-                    if s.state == LOADING:
-                        self._take_over(s)
-                elif s.state == PENDING:
-                    self._copy(s)
+                self._bring_in(pending.pop(0))
         wait_until(deadline)
+
+    def _bring_in(self, s: Slot) -> None:
+        """The one settle / take-over / copy sequence: a LOADING slot takes the reader's result if it is
+        there, else is read here (``_take_over``); a PENDING guess is copied here (``_copy``)."""
+        if s.state == LOADING:
+            self._settle(s)
+            if s.state == LOADING:  # the reader has not got to it: read it here rather than wait
+                self._take_over(s)
+        elif s.state == PENDING:
+            self._copy(s)
 
     def _take_over(self, s: Slot) -> None:
         """Read a LOADING guess on this thread: the reader is told to skip it, and the slot stays out of
@@ -460,9 +452,7 @@ class ExpertPool(ExpertSource):
         self.reader.cancel(s.index, s.gen)
         self.store.copy_in(s.layer, s.expert, s.buf)
         self.stats.prefetch_copied_here += 1
-        s.state = READY
-        s.owed = True
-        s.ready_at = time.monotonic_ns()
+        s.take_over(time.monotonic_ns())
         self.stats.bytes_in += self.store.expert_nbytes
         self._owed.append(s)
 
@@ -477,13 +467,10 @@ class ExpertPool(ExpertSource):
             ns = self.store.copy_in(s.layer, s.expert, s.buf)
         except BaseException:
             self.core.forget(s.layer, self.key(s.layer, s.expert))
-            s.state = EMPTY
-            s.layer = s.expert = -1
-            s.res = s.transfer = None
+            s.clear()
             raise
         now = time.monotonic_ns()
-        s.state = READY
-        s.ready_at = now
+        s.fill(now, ns)
         st.bytes_in += self.store.expert_nbytes
         t = s.transfer
         if t is not None:
@@ -513,14 +500,10 @@ class ExpertPool(ExpertSource):
             s.guess = s.dropped = False
             if s.transfer is not None and s.transfer.end < 0:
                 self.link.promote(s.transfer, t0)
-            if s.state == LOADING:
-                self._settle(s)
-                if s.state == LOADING:
-                    self._take_over(s)
-            elif s.state == PENDING:
-                self._copy(s)
+            self._bring_in(s)
         else:
-            s.layer, s.expert, s.state, s.res, s.transfer = layer, expert, EMPTY, r, None
+            s.claim(layer, expert, r)
+            s.transfer = None
         if s.state == READY:
             self._wait(self._usable_at(s, time.monotonic_ns()))  # the rest of an emulated transfer
         else:
@@ -530,7 +513,7 @@ class ExpertPool(ExpertSource):
 
     def end_layer(self, layer: int) -> None:
         if self.recorder is not None and not self._prefill:
-            stall = sum(ev[3] for ev in self._events.values())
+            stall = sum(ev.stall_ns for ev in self._events.values())
             compute = time.monotonic_ns() - self._layer_t0 - stall
             self.recorder.events(self.step, layer, self._events, compute)
         self.core.done()
@@ -620,14 +603,13 @@ class ExpertPool(ExpertSource):
             s = slots[out.slot]
             if out.victim is not None:
                 self._evicted(s)
-            s.layer, s.expert, s.guess, s.res = layer, out.key - self.base[layer], True, r
+            s.claim(layer, out.key - self.base[layer], r)
+            s.guess = True
             st.prefetch_loads += 1
             if not self._hand_over(s):
                 st.prefetch_failed += 1  # forget the guess; its layer reads the expert if it needs it
-                s.guess = False
                 self.core.forget(layer, out.key)
-                s.layer = s.expert = -1
-                s.res = None
+                s.clear()
                 continue
             if link is not None:
                 s.transfer = link.book(nbytes, now, False)
@@ -638,7 +620,7 @@ class ExpertPool(ExpertSource):
         s.gen += 1
         if self.link is not None and not (self.reader is not None and self.reader.alive):
             self._pending.append(s)
-            s.state = PENDING  # the copy meets the fault seam
+            s.book()  # the copy meets the fault seam
             return True
         try:
             self.store.fault(s.layer, s.expert, True)  # the reader's read meets the seam here, when handed over
@@ -646,7 +628,7 @@ class ExpertPool(ExpertSource):
             return False
         if self.link is not None:
             self._pending.append(s)  # the compute thread may take it over while it waits anyway
-        s.state = LOADING
+        s.hand_over()
         s.res.busy.add(self.key(s.layer, s.expert))
         self.timing.outstanding += 1
         self.reader.submit(s.index, s.gen, s.layer, s.expert)
