@@ -92,7 +92,7 @@ class ExpertPool(ExpertSource):
         self.stats = PoolStats(L)
         self.progress = -1  # step * n_layers + layer of the layer being computed
         self.reader = reader  # guesses are read by it while it is alive (real reads only)
-        self.link = store.link  # the emulated link, or None
+        # self.link (ExpertSource): the emulated link, owned here, or None
         self.timing = Timing(self.link.ns(store.expert_nbytes) if self.link is not None else 100_000.0)
         self._owed: list[Slot] = []  # slots read here while the reader still held them
         self._pending: list[Slot] = []  # guesses booked on the emulated link, bytes not copied yet
