@@ -106,7 +106,8 @@ class Decisions:
         """The pinned accesses of ``route``, in order: ``[(hit, slot, victim), ...]``.  All pinned at once,
         or each pinned alone when they outnumber the pool (the live pool refuses such quotas).  Raises
         NoVictim (with ``done``, the accesses served so far) when every evictable slot is busy; call
-        again with ``done`` to go on.  ``used`` and ``wasted`` then name the fresh guesses hit and evicted."""
+        again with ``done`` to go on.  ``used`` and ``wasted`` then name the fresh guesses hit and evicted
+        (drivers that read them call ``serve``, not ``step``)."""
         r = self.res_of[layer]
         keys = self.pinned
         if len(keys) <= r.capacity:
@@ -137,9 +138,16 @@ class Decisions:
         return out
 
     def step(self, layer: int, ids: Sequence[int], probs=None) -> list:
-        """``route`` then ``serve`` (drivers that never wait for room)."""
-        self.route(layer, ids, probs)
-        return self.serve(layer)
+        """``route`` then ``serve``, in one call (the live pool's decode path).  On NoVictim the step is
+        routed and ``done`` served: go on with ``serve(layer, done)``."""
+        base = self.base[layer]
+        keys = self.pinned = tuple(ids) if not base else tuple(base + e for e in ids)
+        r = self.res_of[layer]
+        if self.signals:
+            r.policy.routed(layer, ids, probs, r.now)
+        if self.fresh_of[layer] or len(keys) > r.capacity:
+            return self.serve(layer)
+        return r.access_step(keys, keys)  # no fresh guess to track (``used`` and ``wasted`` are left as they were)
 
     def prefill(self, layer: int, expert: int) -> Served:
         """A prefill access, pinned alone (the clock advances; no ``Policy.routed``).  Raises NoVictim."""

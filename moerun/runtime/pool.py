@@ -232,25 +232,23 @@ class ExpertPool(ExpertSource):
             self._settle(self.slots[r.slot_of[key]])
 
     def _evicted(self, s: Slot) -> None:
-        """Bookkeeping when a READY (or PENDING) slot's expert is evicted."""
+        """Bookkeeping when a READY (or PENDING) slot's expert is evicted; the caller then claims the slot
+        for its new expert (``Slot.claim``)."""
         if s.guess:
             self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
             self.timing.outcome(False)
-            s.guess = False
         if s.transfer is not None and s.transfer.end < 0:
             self.link.drop(s.transfer, time.monotonic_ns())
-        s.clear()
 
-    def _serve(self, layer: int, r: Residency, keys: tuple) -> list:
-        """The decision core's accesses for a decode layer, waiting while every evictable slot has a read
-        outstanding."""
-        done = None
+    def _serve(self, layer: int, r: Residency, keys: tuple, done: list) -> list:
+        """The rest of the decision core's accesses for a decode layer (``done`` served so far), waiting
+        while every evictable slot has a read outstanding."""
         while True:
+            self._wait_for_room(r, keys)
             try:
                 return self.core.serve(layer, done)
-            except NoVictim as e:  # a background read is outstanding in every free slot; one will finish
+            except NoVictim as e:
                 done = e.done
-                self._wait_for_room(r, keys)
 
     def _prefill_access(self, layer: int, expert: int) -> tuple[bool, int]:
         """The decision core's prefill access, waiting while every evictable slot has a read outstanding."""
@@ -301,29 +299,38 @@ class ExpertPool(ExpertSource):
             self._settle_owed()
         if core.guessed[layer]:
             self._meet_guesses(layer, ids, now)
-        self.timing.layer_started(now)
-        pinned = core.route(layer, ids, probs[0])  # pins them; the optional per-step signal (Policy.routed)
+        if self.timing.mark:  # a prefetch point was passed since the last layer started
+            self.timing.layer_started(now)
         slots, link = self.slots, self.link
         events = {}
-        misses = 0
+        misses = prefetched = 0
         ready = True  # every chosen expert usable now: compute_order has nothing to sort
-        for e, (hit, slot, victim) in zip(ids, self._serve(layer, r, pinned)):
+        try:  # pins them, the optional per-step signal (Policy.routed), the accesses
+            served = core.step(layer, ids, probs[0])
+        except NoVictim as e:  # a background read is outstanding in every free slot; one will finish
+            served = self._serve(layer, r, core.pinned, e.done)
+        for e, (hit, slot, victim) in zip(ids, served):
             s = slots[slot]
             if not hit:
-                if victim is not None:
-                    self._evicted(s)
+                if victim is not None and (s.guess or s.transfer is not None):
+                    self._evicted(s)  # its bookkeeping (a plain resident needs none)
                 s.claim(layer, e, r)  # read by weights() when the layer needs it
                 # on its way from now, with an emulated link
                 s.transfer = link.book(self.store.expert_nbytes, now, True) if link is not None else None
-                events[e] = s.event.reset(MISS)
+                ev = events[e] = s.event
+                ev.kind = MISS
+                ev.pagein_ns = ev.stall_ns = 0
                 misses += 1
                 ready = False
             elif s.guess:
                 s.guess = False
                 self.timing.outcome(True)
+                prefetched += 1
                 st.prefetch_used += 1
                 st.prefetch_hits[layer] += 1
-                events[e] = s.event.reset(PREFETCHED)
+                ev = events[e] = s.event
+                ev.kind = PREFETCHED
+                ev.pagein_ns = ev.stall_ns = 0
                 ready = False
                 if s.dropped:  # cancelled a moment ago, the reader still holding it: ask for it again
                     s.dropped = False
@@ -334,12 +341,14 @@ class ExpertPool(ExpertSource):
                 if s.state == LOADING:
                     self.reader.promote(s.index, s.gen)
             else:
-                st.hits[layer] += 1
-                events[e] = s.event.reset(HIT)
+                ev = events[e] = s.event
+                ev.kind = HIT
+                ev.pagein_ns = ev.stall_ns = 0
                 if s.state != READY or s.transfer is not None:
                     ready = False
         st.accesses[layer] += len(ids)
         st.misses[layer] += misses
+        st.hits[layer] += len(ids) - misses - prefetched
         self._events = events
         self._ready = ready
 
@@ -379,7 +388,8 @@ class ExpertPool(ExpertSource):
                 self._hidden(s, t0)
             s.transfer = None  # arrived: later uses need not ask the link
             return self.codec.weights(s.bound)
-        self._bring_in(s)
+        if s.state == LOADING or s.state == PENDING:
+            self._bring_in(s)
         if s.state == EMPTY:  # a miss, or a guess whose read failed: read it here
             ev.pagein_ns = self._read_here(s, False)
         else:
@@ -516,7 +526,7 @@ class ExpertPool(ExpertSource):
             stall = sum(ev.stall_ns for ev in self._events.values())
             compute = time.monotonic_ns() - self._layer_t0 - stall
             self.recorder.events(self.step, layer, self._events, compute)
-        self.core.done()
+        self.core.pinned = ()  # Decisions.done(), inline: the decode path
 
 
     # ------------------------------------------------------------------ guesses (the decision core places them)

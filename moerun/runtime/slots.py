@@ -15,7 +15,7 @@ through the transitions of ``TRANSITIONS`` (one ``Slot`` method each; any other 
          |               fill (a demand read)     |
          +--------------------------------------->+
 
-        clear, empty: EMPTY, PENDING, READY -> EMPTY        claim: EMPTY -> EMPTY
+        claim, clear, empty: EMPTY, PENDING, READY -> EMPTY (never LOADING, nor READY and owed)
 
 EMPTY: claimed or free, no bytes.  PENDING: a guess booked on the emulated link with no live reader;
 the compute thread copies its bytes.  LOADING: the reader process owns the bytes until it answers.
@@ -41,11 +41,14 @@ class State(enum.IntEnum):
     PENDING = 3  # a guess booked on the emulated link, with no reader, whose bytes the compute thread has not copied
 
 
-EMPTY, LOADING, READY, PENDING = State.EMPTY, State.LOADING, State.READY, State.PENDING
+# the values a slot's ``state`` holds (plain ints: compared on every access of the decode path)
+EMPTY, LOADING, READY, PENDING = int(State.EMPTY), int(State.LOADING), int(State.READY), int(State.PENDING)
 
 # transition -> {from state: to state}: the only changes of state there are
-TRANSITIONS: dict[str, dict[State, State]] = {
-    "claim": {EMPTY: EMPTY},  # a layer (or a guess) takes the slot for an expert; nothing read yet
+TRANSITIONS: dict[str, dict[int, int]] = {
+    # a layer (or a guess) takes the slot for an expert, nothing read yet; an evicted expert's bytes are
+    # dropped with it (never a slot the reader may write: LOADING, or READY and owed)
+    "claim": {EMPTY: EMPTY, PENDING: EMPTY, READY: EMPTY},
     "book": {EMPTY: PENDING},  # a guess over the emulated link, no live reader: the compute thread copies it
     "hand_over": {EMPTY: LOADING},  # a guess's read handed to the reader process
     "arrive": {LOADING: READY},  # the reader published the bytes
@@ -89,7 +92,7 @@ class Slot:
     index: int
     buf: np.ndarray
     bound: object  # the codec's views of buf
-    state: State = EMPTY
+    state: int = EMPTY  # a State
     layer: int = -1  # the expert it holds or is being read into (-1: none)
     expert: int = -1
     res: Residency | None = None  # the residency that holds it
@@ -105,51 +108,86 @@ class Slot:
     def __post_init__(self):
         self.event = Event(HIT, self.index)
 
-    def _go(self, name: str) -> None:
-        to = TRANSITIONS[name].get(self.state)
-        if to is None:
-            raise IllegalTransition(f"slot {self.index}: {name} from {self.state.name}")
-        self.state = to
+    def _illegal(self, name: str):
+        owed = " (owed)" if self.owed else ""
+        return IllegalTransition(f"slot {self.index}: {name} from {State(self.state).name}{owed}")
 
+    # one method per transition; each looks its target up in its row of TRANSITIONS (_TO, by state)
     def claim(self, layer: int, expert: int, res: Residency) -> None:
-        self._go("claim")
+        """Hold ``expert`` of ``layer`` from now, nothing read yet (whatever it held is forgotten)."""
+        to = _CLAIM[self.state]
+        if to is None or self.owed:
+            raise self._illegal("claim")
+        self.state = to
         self.layer, self.expert, self.res = layer, expert, res
+        self.guess = self.dropped = False
+        self.transfer = None
 
     def book(self) -> None:
-        self._go("book")
+        to = _BOOK[self.state]
+        if to is None:
+            raise self._illegal("book")
+        self.state = to
 
     def hand_over(self) -> None:
-        self._go("hand_over")
+        to = _HAND_OVER[self.state]
+        if to is None:
+            raise self._illegal("hand_over")
+        self.state = to
 
     def arrive(self, at: int, ns: int) -> None:
-        self._go("arrive")
+        to = _ARRIVE[self.state]
+        if to is None:
+            raise self._illegal("arrive")
+        self.state = to
         self.ready_at = at
         self.read_ns = ns
 
     def let_go(self) -> None:
-        self._go("let_go")
+        to = _LET_GO[self.state]
+        if to is None:
+            raise self._illegal("let_go")
+        self.state = to
 
     def take_over(self, at: int) -> None:
-        self._go("take_over")
+        to = _TAKE_OVER[self.state]
+        if to is None:
+            raise self._illegal("take_over")
+        self.state = to
         self.owed = True
         self.ready_at = at
 
     def fill(self, at: int, ns: int) -> None:
-        self._go("fill")
+        to = _FILL[self.state]
+        if to is None:
+            raise self._illegal("fill")
+        self.state = to
         self.ready_at = at
         self.read_ns = ns
 
     def empty(self) -> None:
         """Its bytes are not to be used; it stays with its expert, for the layer that wants it to read."""
-        self._go("empty")
+        to = _EMPTY[self.state]
+        if to is None:
+            raise self._illegal("empty")
+        self.state = to
         self.guess = self.dropped = False
 
     def clear(self) -> None:
         """Hold nothing: the slot is free again."""
-        self._go("clear")
+        to = _CLEAR[self.state]
+        if to is None or self.owed:
+            raise self._illegal("clear")
+        self.state = to
         self.guess = self.dropped = False
         self.layer = self.expert = -1
         self.res = self.transfer = None
+
+
+# TRANSITIONS as rows indexed by the state's number (a tuple lookup, for the decode path)
+_TO: dict[str, tuple] = {name: tuple(row.get(st) for st in State) for name, row in TRANSITIONS.items()}
+_CLAIM, _BOOK, _HAND_OVER, _ARRIVE, _LET_GO, _TAKE_OVER, _FILL, _EMPTY, _CLEAR = (
+    _TO[name] for name in ("claim", "book", "hand_over", "arrive", "let_go", "take_over", "fill", "empty", "clear"))
 
 
 @dataclass
