@@ -89,11 +89,18 @@ def test_prefill_schedule_is_each_distinct_expert_once_ascending():
 
 def _record(core, log):
     """Wrap a core's methods so that every outcome it hands its driver is appended to ``log``."""
-    serve, prefill, place, meet = core.serve, core.prefill, core.place, core.meet
+    serve, step, prefill, place, meet = core.serve, core.step, core.prefill, core.place, core.meet
 
     def rserve(layer, done=None):
         out = serve(layer, done)
         log.append(("step", layer, tuple((k, h, v) for k, (h, _, v) in zip(core.pinned, out))))
+        return out
+
+    def rstep(layer, ids, probs=None):  # route and serve in one call (the pool's decode path)
+        n = len(log)
+        out = step(layer, ids, probs)
+        if len(log) == n:  # served without calling serve
+            log.append(("step", layer, tuple((k, h, v) for k, (h, _, v) in zip(core.pinned, out))))
         return out
 
     def rprefill(layer, expert):
@@ -114,7 +121,7 @@ def _record(core, log):
             log.append(("drop", layer, tuple(out)))
         return out
 
-    core.serve, core.prefill, core.place, core.meet = rserve, rprefill, rplace, rmeet
+    core.serve, core.step, core.prefill, core.place, core.meet = rserve, rstep, rprefill, rplace, rmeet
     return core
 
 
