@@ -7,7 +7,12 @@ resident experts first, and ``weights`` returns an expert's float32 matrices
 once its bytes are in a slot.
 
 Slots are one preallocated, page-aligned block, written only by page-in; each
-has one ``Slot`` record.  Everything here runs on the compute thread.
+has one ``Slot`` record whose state changes only through its transitions
+(``moerun.runtime.slots``).  Everything here runs on the compute thread.  What
+is decided (hits, misses, victims, which guesses are read and where, which are
+dropped) is the decision core's (``moerun.runtime.decisions``, shared with
+replay and the planner); the pool executes it with buffers, the reader and the
+emulated link, which it owns (``ExpertSource.link``).
 
 - A layer's own misses are read on the compute thread when the layer needs
   them (it would wait for them anyway).  With an emulated link they are booked
