@@ -239,9 +239,12 @@ def routings(draw, shared):
 @pytest.mark.parametrize("prefetch", [False, True], ids=["no prefetch", "prefetch"])
 @pytest.mark.parametrize("shared", [False, True], ids=["quotas", "shared"])
 def test_pool_replay_and_planner_agree_step_by_step_on_random_routing(pebble_store, shared, prefetch):
+    ran = []
+
     @settings(max_examples=200, deadline=None, suppress_health_check=list(HealthCheck), database=None)
     @given(routings(shared))
     def check(case):
+        ran.append(1)
         trace, slots, policy, n_guesses, lookahead = case
         n = n_guesses if prefetch else 0
         with ExitStack() as stack:
@@ -253,3 +256,4 @@ def test_pool_replay_and_planner_agree_step_by_step_on_random_routing(pebble_sto
         assert any(e[0] == "step" for e in pool)
 
     check()
+    assert len(ran) >= 200  # random routings, each driven through all three
