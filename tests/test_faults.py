@@ -2,9 +2,9 @@
 
 Faults are injected through the documented test hooks (docs/design/testing.md):
 
-- ``store.fault_hook(layer, expert)``: runs before every expert read, on the compute thread (for a read
-  handed to the reader process, when it is handed over; raising there fails that hand-over);
-- ``prefetcher.hook(layer, expert)``: runs before each guess is handed to the reader; raising fails the guess;
+- ``store.fault_hook(layer, expert, guess)``: the one fault seam; runs before every expert read, on the compute
+  thread (for a read handed to the reader process, when it is handed over; raising there fails that
+  hand-over); ``guess`` says the read is a guess's, so a hook can fail guesses only;
 - ``prefetcher.reader.set_faults(...)``: random delays before the reader's reads, reported failures of
   every n-th read, or the reader process exiting abruptly with a read outstanding.
 
@@ -127,10 +127,11 @@ def _assert_bit_identical(reference, gen) -> None:
 
 def _prefetch_hook_raising(exc):
     def setup(eng):
-        def hook(layer, expert):
-            raise exc
+        def hook(layer, expert, guess):
+            if guess:
+                raise exc
 
-        eng.prefetcher.hook = hook
+        eng.store.fault_hook = hook
 
     return setup
 
@@ -153,7 +154,7 @@ def _reader_dies_after(n):
 
 
 def _slow_page_in(eng):
-    def hook(layer, expert):  # every read (or hand-over to the reader) takes 1 ms longer
+    def hook(layer, expert, guess):  # every read (or hand-over to the reader) takes 1 ms longer
         time.sleep(0.001)
 
     eng.store.fault_hook = hook
@@ -240,10 +241,11 @@ def test_reader_process_killed_mid_run_is_reported_and_the_run_goes_on(model, re
 def test_reader_dying_with_a_demand_read_outstanding_does_not_hang_the_layer(model, reference):
     def run():
         with moerun.load(model, tokenizer=False, mem_cap=reference["cap"], prefetch=2) as eng:
-            def guess_fails(layer, expert):  # guesses fail harmlessly, so the reader's reads are demand misses
-                raise RuntimeError("injected")
+            def guess_fails(layer, expert, guess):  # guesses fail harmlessly, so the reader's reads are demand misses
+                if guess:
+                    raise RuntimeError("injected")
 
-            eng.prefetcher.hook = guess_fails
+            eng.store.fault_hook = guess_fails
             eng.prefetcher.reader.set_faults(die_after=1)  # it dies holding its second read
             return _generate(eng)
 
@@ -263,7 +265,7 @@ def _failing_reads_from(at_step: int, how: str):
         store, pool = eng.store, eng.pool
         fired = [False]
 
-        def hook(layer, expert):
+        def hook(layer, expert, guess):
             if pool.step < at_step or (fired[0] and how in ("EISDIR", "truncate", "EIO once")):
                 return
             fired[0] = True

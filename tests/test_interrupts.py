@@ -229,7 +229,7 @@ def test_second_ctrl_c_while_stopping_still_leaves_no_temporary_or_half_written_
     run.proc.send_signal(signal.SIGINT)
     time.sleep(0.005)  # an impatient second Ctrl-C, while the first one is being handled
     elapsed = run.interrupt()
-    # the second Ctrl-C is ignored while the first unwinds (moerun.cli.main.entry); exit 130, or death by
+    # the second Ctrl-C is ignored while the first unwinds (moerun.cli.entry); exit 130, or death by
     # SIGINT's default action if it lands after the command returned (a shell shows 130 for both)
     assert run.proc.returncode in (130, -signal.SIGINT), run.stderr_text[-800:]
     assert elapsed < EXIT_BOUND_S
@@ -357,7 +357,7 @@ def test_ctrl_c_during_an_expert_read_exits_130_with_a_partial_trace(synth_model
     def load(**kw):
         eng = real_load(**kw)
 
-        def hook(layer, expert):
+        def hook(layer, expert, guess):
             if threading.current_thread().name != "moerun-prefetch" and eng.pool.step >= 5:
                 raise KeyboardInterrupt
 

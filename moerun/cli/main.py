@@ -413,10 +413,3 @@ def run_process(stopping: list) -> None:
                 sys.stderr.write("moerun: cannot write to standard output\n")
                 code = 2
     raise SystemExit(code)
-
-
-def entry() -> None:
-    """The process entry point, kept for callers of its old home (moerun.cli.entry installs the handlers)."""
-    from moerun.cli import entry as cli_entry
-
-    cli_entry()

@@ -3,7 +3,7 @@
 ``Checkpoint.open(dir)`` reads a directory in the open layout (/work/shared/OPEN-CHECKPOINTS.md):
 ``config.json`` (``moerun.files.ckpt_config``), ``model.safetensors`` or shards with
 ``model.safetensors.index.json``, ``tokenizer.json``, and the BOS/EOS ids.  Nothing is trusted before it is
-checked (docs/architecture.md, invariants): every shard's header goes through ``modelfile.read_header`` (bounded
+checked (docs/design/architecture.md, invariants): every shard's header goes through ``modelfile.read_header`` (bounded
 header, offsets inside the file, no overlaps, sizes that match shapes), the index may name only plain file names
 inside the directory, every tensor must be expected by the config with the shape it implies and every expected
 tensor present (``moerun.files.ckpt_tensors``), and the index and the shards must agree tensor for tensor.

@@ -33,8 +33,6 @@ from moerun.files.modelfile import NUMPY_DTYPES, Header, TensorInfo, expert_span
 from moerun.files.packed import read_packed_dense, recorded_quant_problem
 from moerun.files.pagecache import drop_pages, drop_problem
 from moerun.model.config import ModelConfig, expert_tensor_name
-from moerun.runtime.clock import wait_until
-from moerun.runtime.link import Link
 
 PAGE = mmap.PAGESIZE
 # Linux maps up to this many bytes of already-cached file pages around a read fault
@@ -184,9 +182,13 @@ class ModelStore:
         self.expert_nbytes = expert_nbytes
         self.path = header.path
         self.mechanism = "pread"
-        self.link: Link | None = None  # an emulated link (set link_rate), None = real speed
+        # bytes/s of an emulated link, None = real speed: a setting only; the expert source that reads
+        # the experts owns the link (moerun.runtime.sources.ExpertSource.link)
+        self.link_rate: float | None = None
         self.cold_reads = False  # drop each expert's pages from the page cache after reading it: every read is cold
-        self.fault_hook = None  # test hook: called as hook(layer, expert) before each read
+        # the one fault seam (tests): hook(layer, expert, guess) before every expert read; for a guess the
+        # reader process reads, when it is handed over.  Raising fails that read.
+        self.fault_hook = None
         self._fd = os.open(self.path, os.O_RDONLY)
         self._map: mmap.mmap | None = None
         self._map_addr = 0
@@ -299,40 +301,26 @@ class ModelStore:
             self._map = m
         self.mechanism = mechanism
 
-    @property
-    def link_rate(self) -> float | None:
-        """Bytes/s of the emulated link, None for real speed."""
-        return self.link.rate if self.link is not None else None
-
-    @link_rate.setter
-    def link_rate(self, rate: float | None) -> None:
-        self.link = Link(rate) if rate else None
-
     def page_in(self, layer: int, expert: int, dst: np.ndarray) -> int:
-        """Copy one expert's bytes into ``dst`` (uint8, at least expert_nbytes); return real ns.
-
-        With an emulated link (``link_rate`` bytes/s) the transfer is booked on the
-        link's one channel when the read starts and the call returns when it ends
-        (``moerun.runtime.link``): page-ins queue behind each other.
-        """
+        """Copy one expert's bytes into ``dst`` (uint8, at least expert_nbytes) at the storage's real
+        speed; return ns.  (An emulated link is its expert source's: ``ExpertSource.page_in``.)"""
         t0 = time.monotonic_ns()
-        link = self.link
-        t = link.book(self.expert_nbytes, t0, True) if link is not None else None
         self.copy_in(layer, expert, dst)
-        if t is not None:
-            now = time.monotonic_ns()
-            end = link.ends(t, now)
-            link.hold(t, now)  # a read slower than the link ends when the read did
-            wait_until(max(end, now))
         return time.monotonic_ns() - t0
 
-    def copy_in(self, layer: int, expert: int, dst: np.ndarray) -> int:
-        """Copy one expert's bytes into ``dst`` at the storage's real speed (no emulated link); return ns."""
+    def fault(self, layer: int, expert: int, guess: bool = False) -> None:
+        """The fault seam: runs ``fault_hook`` (if set) before a read of the expert; ``guess`` for a guess's read."""
+        if self.fault_hook is not None:
+            self.fault_hook(layer, expert, guess)
+
+    def copy_in(self, layer: int, expert: int, dst: np.ndarray, guess: bool = False) -> int:
+        """Copy one expert's bytes into ``dst`` at the storage's real speed (no emulated link); return ns.
+        ``guess``: the read is a guess's (as the fault seam is told)."""
         r = self.ranges[layer][expert]
         t0 = time.monotonic_ns()
         try:
             if self.fault_hook is not None:
-                self.fault_hook(layer, expert)
+                self.fault_hook(layer, expert, guess)
             if self.mechanism == "pread":
                 try:
                     pread_into(self._fd, r.start, dst[: r.nbytes])

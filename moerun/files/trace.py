@@ -116,11 +116,12 @@ class Recorder:
         pass
 
     def events(self, step: int, layer: int, events: dict, compute_ns: int) -> None:
-        """Per-access events of one decode layer: {expert: [kind, slot, pagein_ns, stall_ns]}."""
+        """Per-access events of one decode layer: {expert: record with kind, slot, pagein_ns, stall_ns}
+        (``moerun.runtime.slots.Event``; the figures are copied here, the records are reused)."""
         last = self.experts[layer][-1][0].tolist()
-        self.kind[layer].append(np.array([[events[e][0] for e in last]], np.int8))
-        self.pagein[layer].append(np.array([[events[e][2] for e in last]], np.int64))
-        self.stall[layer].append(np.array([[events[e][3] for e in last]], np.int64))
+        self.kind[layer].append(np.array([[events[e].kind for e in last]], np.int8))
+        self.pagein[layer].append(np.array([[events[e].pagein_ns for e in last]], np.int64))
+        self.stall[layer].append(np.array([[events[e].stall_ns for e in last]], np.int64))
         self.compute[layer].append(np.array([compute_ns], np.int64))
 
     def to_trace(self, meta: dict) -> Trace:

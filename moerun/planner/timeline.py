@@ -1,7 +1,8 @@
 """The planner's time model: decode simulated token by token along a routing trace, with measured costs.
 
 The simulation follows the live engine (docs/design/prefetch.md) with the same code where the engine
-makes decisions: residency and eviction through ``Residency`` and the policies, an emulated
+makes decisions: hits, misses, victims, guess placement and dropping through the pool's decision
+core (``moerun.runtime.decisions``, the live pool's own), an emulated
 link's schedule through ``moerun.runtime.link.Link``, and whether a guess is worth reading through
 ``moerun.runtime.guesses`` (with ``Timing`` figures the simulation itself measures as it goes).  Per
 decode token and layer:
@@ -35,9 +36,9 @@ import numpy as np
 from moerun import policies
 from moerun.errors import BadOption, BadTrace
 from moerun.files.trace import Trace
+from moerun.runtime.decisions import Placed, Quotas, Shared, prefill_schedule
 from moerun.runtime.guesses import Timing, guess_pays, worth_guessing
 from moerun.runtime.link import Link
-from moerun.runtime.residency import Residency
 from moerun.sim.fast import layer_misses
 from moerun.sim.steps import layer_plans, plan_policy, prefill_tokens
 
@@ -213,21 +214,18 @@ def _additive(trace: Trace, slots: list[int], policy: str, costs: Costs, cached=
 
 
 class _Sim:
-    """The simulated engine: pools, link or reader queue, guesses in flight, and the clock (ns)."""
+    """The simulated engine: the pool's decisions (``moerun.runtime.decisions``) on simulated time, the
+    link or the reader's queue, and the clock (ns)."""
 
     def __init__(self, trace, slots, policy, costs, shared, prefetch):
         L, E = trace.n_layers, max(trace.n_experts, 1)
         cls = policies.get(policy)
         self.L, self.E, self.k = L, E, trace.top_k
         if shared:
-            r = Residency(max(slots[0], 1), policies.make_policy(cls, L * E, E))
-            self.res = [r] * L
-            self.base = [layer * E for layer in range(L)]
+            self.core = Shared(max(slots[0], 1), policies.make_policy(cls, L * E, E), L, E)
         else:
             plans = layer_plans(trace)
-            self.res = [Residency(max(s, 1), plan_policy(cls, plans[layer])) for layer, s in enumerate(slots)]
-            self.base = [0] * L
-        self.signals = type(self.res[0].policy).routed is not policies.Policy.routed
+            self.core = Quotas([max(s, 1) for s in slots], [plan_policy(cls, plan) for plan in plans])
         ns = 1e9
         self.c = {name: getattr(costs, name) * ns for name in ("expert", "head", "page", "wait", "copy", "guess", "place")}
         self.attn = [a * ns + (costs.pool + costs.policy.get(policy, 0.0)) * ns * self.k for a in costs.attn]
@@ -238,9 +236,8 @@ class _Sim:
         self.timing = Timing(self.c["page"])
         self.timing.copy_ns = self.c["copy"]
         self.timing.late = costs.late
-        self.arrive: dict = {}  # key -> (Transfer or reader end time) of reads not yet taken in
-        self.guess_of: dict = {}  # key -> True while it holds a guess no layer has used
-        self.guessed: list[list[int]] = [[] for _ in range(L)]
+        self.arrive: dict = {}  # (layer, expert) as one number -> Transfer or reader end time, of reads not yet taken in
+        self.off = [0] * L if shared else [layer * E for layer in range(L)]  # a pool key + off[layer]: that number
         self.now = 0.0
         self.stall = 0.0
         self.loads = 0
@@ -252,77 +249,78 @@ class _Sim:
             return 0.0
         return float(self.link.ends(a, int(self.now))) if self.link is not None else a
 
+    def prefill(self, layer: int, rows) -> None:
+        """The prefill block of one layer (``prefill_schedule``), untimed: it only warms the pool."""
+        core = self.core
+        for e in prefill_schedule(rows):
+            core.prefill(layer, e)
+        core.done()
+
     def access_layer(self, layer: int, chosen: list[int], probs) -> tuple[list, set]:
-        """The layer's routing: drop its unchosen guesses, access its experts; returns the keys whose bytes
-        may not be there yet, and the keys that missed."""
-        r, base = self.res[layer], self.base[layer]
+        """The layer's routing: drop its unchosen guesses, access its experts; returns the experts (as keys
+        of ``arrive``) whose bytes may not be there yet, and those that missed."""
+        core, link, timing, arrive = self.core, self.link, self.timing, self.arrive
         now = int(self.now)
-        for key in self.guessed[layer]:
-            if self.guess_of.get(key) and key - base not in chosen and key in r:
-                a = self.arrive.get(key)
-                if self.link is None or a is None or self.link.drop(a, now):
-                    r.remove(key)
-                    self._forget(key)
-                    self.timing.outcome(False)
-        self.guessed[layer] = []
-        self.timing.layer_started(now)
-        keys = [base + e for e in chosen]
-        if self.signals:
-            r.policy.routed(layer, chosen, probs, r.now)
-        out = r.access_step(keys, keys if len(keys) <= r.capacity else ())
+        off = self.off[layer]
+
+        def drop(key: int) -> bool:  # a guess not chosen: its link time given back, unless it has begun
+            a = arrive.get(key + off)
+            if link is None or a is None or link.drop(a, now):
+                core.forget(layer, key)
+                arrive.pop(key + off, None)
+                timing.outcome(False)
+                return True
+            return False
+
+        core.meet(layer, chosen, drop)
+        timing.layer_started(now)
+        keys = core.route(layer, chosen, probs)
+        out = core.serve(layer)
+        used, wasted = core.used, core.wasted
         waiting, missing = [], set()
         for key, (hit, _, victim) in zip(keys, out):
             if victim is not None:
-                if self.guess_of.get(victim):
-                    self.timing.outcome(False)
-                self._forget(victim)
+                if victim in wasted:
+                    timing.outcome(False)
+                arrive.pop(victim + off, None)
+            key += off
             if hit:
-                if self.guess_of.pop(key, False):
-                    self.timing.outcome(True)
-                    a = self.arrive.get(key)
-                    if self.link is not None and a is not None and a.end < 0:
-                        self.link.promote(a, now)
-                if key in self.arrive:
+                if key - off in used:
+                    timing.outcome(True)
+                    a = arrive.get(key)
+                    if link is not None and a is not None and a.end < 0:
+                        link.promote(a, now)
+                if key in arrive:
                     waiting.append(key)
             else:
                 missing.add(key)
-                self.arrive[key] = self.link.book(self.page, now, True) if self.link is not None else None
+                arrive[key] = link.book(self.page, now, True) if link is not None else None
                 waiting.append(key)
         return waiting, missing
 
-    def _forget(self, key) -> None:
-        self.arrive.pop(key, None)
-        self.guess_of.pop(key, None)
-
     def place(self, layer: int, target: int, guesses: list[int]) -> None:
         """The prefetch point of ``layer``: its guesses for ``target``, read if they pay (moerun.runtime.guesses)."""
-        r, base = self.res[target], self.base[target]
-        keep = tuple(base + e for e in guesses)
         t = self.timing
         need = t.need_at(self.now, target - layer)
-        for e in guesses:
-            key = base + e
-            if key in r:
-                continue
+
+        def pays() -> bool:
             if self.link is not None:
                 arrival = self.link.backlog_until(int(self.now)) + self.page
             else:
                 arrival = max(self.reader_free, self.now) + self.page
-            if not guess_pays(t, self.c["page"], arrival, need, self.c["place"]):
+            return guess_pays(t, self.c["page"], arrival, need, self.c["place"])
+
+        off = self.off[target]
+        for out in self.core.place(target, guesses, pays):
+            if type(out) is not Placed:
                 continue
-            try:
-                victim = r.victim(keep)
-            except Exception:  # NoVictim: nowhere to put it
-                continue
-            _, victim = r.place(key, victim)
-            if victim is not None:
-                if self.guess_of.get(victim):
+            key = out.key + off
+            if out.victim is not None:
+                if out.wasted:
                     t.outcome(False)
-                self._forget(victim)
+                self.arrive.pop(out.victim + off, None)
             self.now += self.c["place"]
             self.loads += 1
-            self.guess_of[key] = True
-            self.guessed[target].append(key)
             if self.link is not None:
                 self.arrive[key] = self.link.book(self.page, int(self.now), False)
             else:
@@ -330,7 +328,7 @@ class _Sim:
                 self.arrive[key] = self.reader_free
 
     def experts(self, waiting: list[int], k: int, missing: set) -> None:
-        """Compute the layer's experts: those there first, then the others as they arrive."""
+        """Compute the layer's experts: those there first, then the others as they arrive; then the layer is done."""
         c = self.c
         now = self.now
         late = [(0.0 if key in missing and not self.emulated else self.arrival(key), key) for key in waiting]
@@ -354,6 +352,7 @@ class _Sim:
             now += c["expert"]
             self.arrive.pop(key, None)
         self.now = now
+        self.core.done()
 
 
 def _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_tokens) -> Prediction:
@@ -363,9 +362,7 @@ def _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_toke
     sim = _Sim(trace, slots, policy, costs, shared, prefetch)
     ex = trace.experts.tolist()
     for layer in range(L):  # prefill: each layer's distinct experts once, ascending, pinned alone (as the pool does)
-        r, base = sim.res[layer], sim.base[layer]
-        for e in sorted({e for t in range(P) for e in ex[t][layer] if e >= 0}):
-            r.access(base + e, (base + e,))
+        sim.prefill(layer, (ex[t][layer] for t in range(P)))
     g = trace.guesses.tolist() if prefetch else None
     probs = trace.probs
     accesses = misses = 0

@@ -7,7 +7,12 @@ resident experts first, and ``weights`` returns an expert's float32 matrices
 once its bytes are in a slot.
 
 Slots are one preallocated, page-aligned block, written only by page-in; each
-has one ``Slot`` record.  Everything here runs on the compute thread.
+has one ``Slot`` record whose state changes only through its transitions
+(``moerun.runtime.slots``).  Everything here runs on the compute thread.  What
+is decided (hits, misses, victims, which guesses are read and where, which are
+dropped) is the decision core's (``moerun.runtime.decisions``, shared with
+replay and the planner); the pool executes it with buffers, the reader and the
+emulated link, which it owns (``ExpertSource.link``).
 
 - A layer's own misses are read on the compute thread when the layer needs
   them (it would wait for them anyway).  With an emulated link they are booked
@@ -39,9 +44,10 @@ from moerun.files.store import ModelStore
 from moerun.runtime import _reader_child as reader_child
 from moerun.runtime.budget import Budget
 from moerun.runtime.clock import wait_until
-from moerun.runtime.guesses import GuessPlacement, Timing
+from moerun.runtime.decisions import RESIDENT, Placed, make_decisions
+from moerun.runtime.guesses import Timing, guess_pays, worth_guessing
 from moerun.runtime.residency import NoVictim, Residency
-from moerun.runtime.slots import EMPTY, HIT, LOADING, MISS, PENDING, PREFETCHED, READY, PoolStats, Slot
+from moerun.runtime.slots import EMPTY, HIT, LOADING, MISS, PENDING, PREFETCHED, READY, Event, PoolStats, Slot
 from moerun.runtime.sources import ExpertSource, aligned_block
 
 
@@ -50,7 +56,7 @@ def rd_poll_none(reader, s: Slot) -> bool:
     return reader is None or reader.poll(s.index, s.gen) is None
 
 
-class ExpertPool(GuessPlacement, ExpertSource):
+class ExpertPool(ExpertSource):
     """Slots, residency per layer (or shared), and the expert-source interface for the model.
 
     Everything here runs on the compute thread; with a reader (prefetch on), guesses are read by
@@ -83,24 +89,16 @@ class ExpertPool(GuessPlacement, ExpertSource):
             raise BadOption(f"policy {evict!r} needs the future of the trace; use it with 'moerun replay' only")
         self.evict = evict
         if self.shared:
-            r = Residency(n_slots, policies.make_policy(policy_cls, L * E, E))
-            self.res_of = [r] * L
-            self.base = [layer * E for layer in range(L)]  # key of (layer, expert): base[layer] + expert
+            self.core = make_decisions(lambda _: policies.make_policy(policy_cls, L * E, E), [n_slots], L, E, True)
         else:
-            self.res_of = []
-            start = 0
-            for n in budget.slots:
-                self.res_of.append(Residency(n, policies.make_policy(policy_cls, E), list(range(start, start + n))))
-                start += n
-            self.base = [0] * L
-        self.signals = type(self.res_of[0].policy).routed is not policies.Policy.routed
-        self.pinned: tuple = ()
+            self.core = make_decisions(lambda _: policies.make_policy(policy_cls, E), budget.slots, L, E, False)
+        self.res_of = self.core.res_of
+        self.base = self.core.base  # key of (layer, expert): base[layer] + expert
         self.stats = PoolStats(L)
         self.progress = -1  # step * n_layers + layer of the layer being computed
         self.reader = reader  # guesses are read by it while it is alive (real reads only)
-        self.link = store.link  # the emulated link, or None
+        # self.link (ExpertSource): the emulated link, owned here, or None
         self.timing = Timing(self.link.ns(store.expert_nbytes) if self.link is not None else 100_000.0)
-        self._guessed: list[list[Slot]] = [[] for _ in range(L)]  # guesses placed for each layer, not yet met by it
         self._owed: list[Slot] = []  # slots read here while the reader still held them
         self._pending: list[Slot] = []  # guesses booked on the emulated link, bytes not copied yet
         self._prefill = False
@@ -111,6 +109,11 @@ class ExpertPool(GuessPlacement, ExpertSource):
     # ------------------------------------------------------------------ keys
     def key(self, layer: int, expert: int) -> int:
         return self.base[layer] + expert
+
+    @property
+    def pinned(self) -> tuple:
+        """Keys of the layer being computed (the decision core's)."""
+        return self.core.pinned
 
     def residency(self, layer: int) -> Residency:
         return self.res_of[layer]
@@ -138,12 +141,13 @@ class ExpertPool(GuessPlacement, ExpertSource):
                     break
                 slot, _ = r.insert(self.key(layer, e))
                 s = self.slots[slot]
-                self.store.copy_in(layer, e, s.buf)
-                s.layer, s.expert, s.state, s.res = layer, e, READY, r
+                s.claim(layer, e, r)
+                ns = self.store.copy_in(layer, e, s.buf)
+                s.fill(time.monotonic_ns(), ns)
         E = c.n_experts
         if all(all(self.resident(layer, e) for e in range(E)) for layer in range(c.n_layers)):
             self._all_resident = [
-                {e: [HIT, self.res_of[layer].slot_of[self.key(layer, e)], 0, 0] for e in range(E)} for layer in range(c.n_layers)
+                {e: Event(HIT, self.res_of[layer].slot_of[self.key(layer, e)]) for e in range(E)} for layer in range(c.n_layers)
             ]
 
     def _usable_at(self, s: Slot, now: int) -> int:
@@ -178,19 +182,17 @@ class ExpertPool(GuessPlacement, ExpertSource):
             return
         st = self.stats
         if s.dropped and (result != reader_child.OK or s.transfer is not None):
-            s.state = EMPTY
+            s.let_go()
             self._unclaimed(s, key)  # dropped while the reader held it: its bytes never (emulated: officially) arrived
             return
         s.dropped = False
         if result == reader_child.OK:
-            s.state = READY
-            s.ready_at = start + ns
-            s.read_ns = ns
+            s.arrive(start + ns, ns)
             self.timing.observed(ns)
             st.bytes_in += self.store.expert_nbytes
             st.prefetch_ns += ns
             return
-        s.state = EMPTY  # the reader has let go of it, without its bytes
+        s.let_go()  # the reader has let go of it, without its bytes
         if result == reader_child.FAILED:
             st.prefetch_failed += 1
         if s.guess:  # a guess no layer has claimed: forget it
@@ -209,24 +211,21 @@ class ExpertPool(GuessPlacement, ExpertSource):
 
     def _claimed_empty(self, s: Slot) -> None:
         """The slot stays with its expert, empty: the layer that wants it reads it (as a miss would)."""
-        s.state = EMPTY
-        s.guess = s.dropped = False
+        s.empty()
         if s.transfer is not None:
             self.link.drop(s.transfer, time.monotonic_ns())
             s.transfer = None
 
-    def _give_back(self, s: Slot) -> None:
-        """Forget a guess's slot: it becomes free (never while the reader may still write it)."""
+    def _give_back(self, s: Slot, read: bool | None = None) -> None:
+        """Forget a guess's slot: it becomes free (never while the reader may still write it).  A guess
+        counts as wasted bytes if it was ``read`` (by default: unless it is still PENDING)."""
         assert s.state != LOADING and not s.owed, "a slot the reader may still write is never given back"
         if s.guess:
             self.timing.outcome(False)
-        if s.guess and s.state != PENDING:
-            self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
-        s.res.remove(self.key(s.layer, s.expert))
-        s.state = EMPTY
-        s.guess = s.dropped = False
-        s.layer = s.expert = -1
-        s.res = s.transfer = None
+            if read if read is not None else s.state != PENDING:
+                self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
+        self.core.forget(s.layer, self.key(s.layer, s.expert))
+        s.clear()
 
     def _settle_owed(self) -> None:
         for s in self._owed:
@@ -238,36 +237,32 @@ class ExpertPool(GuessPlacement, ExpertSource):
             self._settle(self.slots[r.slot_of[key]])
 
     def _evicted(self, s: Slot) -> None:
-        """Bookkeeping when a READY (or PENDING) slot's expert is evicted."""
+        """Bookkeeping when a READY (or PENDING) slot's expert is evicted; the caller then claims the slot
+        for its new expert (``Slot.claim``)."""
         if s.guess:
             self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
             self.timing.outcome(False)
-            s.guess = False
         if s.transfer is not None and s.transfer.end < 0:
             self.link.drop(s.transfer, time.monotonic_ns())
-        s.state = EMPTY
-        s.layer = s.expert = -1
-        s.res = s.transfer = None
 
-    def _access_step(self, r: Residency, keys: tuple) -> list:
-        """``Residency.access_step`` for a decode layer, waiting while every evictable slot has a read
-        outstanding."""
-        done = None
+    def _serve(self, layer: int, r: Residency, keys: tuple, done: list) -> list:
+        """The rest of the decision core's accesses for a decode layer (``done`` served so far), waiting
+        while every evictable slot has a read outstanding."""
         while True:
+            self._wait_for_room(r, keys)
             try:
-                return r.access_step(keys, keys, done)
-            except NoVictim as e:  # a background read is outstanding in every free slot; one will finish
+                return self.core.serve(layer, done)
+            except NoVictim as e:
                 done = e.done
-                self._wait_for_room(r, keys)
 
-    def _access(self, r: Residency, key: int, pinned) -> tuple[bool, int]:
-        """``Residency.access``, waiting while every evictable slot has a read outstanding."""
+    def _prefill_access(self, layer: int, expert: int) -> tuple[bool, int]:
+        """The decision core's prefill access, waiting while every evictable slot has a read outstanding."""
         while True:
             try:
-                hit, slot, victim = r.access(key, pinned)
+                hit, slot, victim = self.core.prefill(layer, expert)
                 break
             except NoVictim:  # a background read is outstanding in every free slot; one will finish
-                self._wait_for_room(r, pinned)
+                self._wait_for_room(self.res_of[layer], self.core.pinned)
         if victim is not None:
             self._evicted(self.slots[slot])
         return hit, slot
@@ -301,39 +296,46 @@ class ExpertPool(GuessPlacement, ExpertSource):
             self._events = self._all_resident[layer]
             return
         ids = chosen[0].tolist()
-        base = self.base[layer]
         r = self.res_of[layer]
+        core = self.core
         now = time.monotonic_ns()
         self.progress = self.step * self.config.n_layers + layer
         if self._owed:
             self._settle_owed()
-        if self._guessed[layer]:
+        if core.guessed[layer]:
             self._meet_guesses(layer, ids, now)
-        self.timing.layer_started(now)
-        pinned = self.pinned = tuple(ids) if not base else tuple(base + e for e in ids)
-        if self.signals:
-            r.policy.routed(layer, ids, probs[0], r.now)  # optional per-step signal (Policy.routed)
+        if self.timing.mark:  # a prefetch point was passed since the last layer started
+            self.timing.layer_started(now)
         slots, link = self.slots, self.link
         events = {}
-        misses = 0
+        misses = prefetched = 0
         ready = True  # every chosen expert usable now: compute_order has nothing to sort
-        for e, (hit, slot, victim) in zip(ids, self._access_step(r, pinned)):
+        try:  # pins them, the optional per-step signal (Policy.routed), the accesses
+            served = core.step(layer, ids, probs[0])
+        except NoVictim as e:  # a background read is outstanding in every free slot; one will finish
+            served = self._serve(layer, r, core.pinned, e.done)
+        for e, (hit, slot, victim) in zip(ids, served):
             s = slots[slot]
             if not hit:
-                if victim is not None:
-                    self._evicted(s)
-                s.layer, s.expert, s.state, s.res = layer, e, EMPTY, r  # read by weights() when the layer needs it
+                if victim is not None and (s.guess or s.transfer is not None):
+                    self._evicted(s)  # its bookkeeping (a plain resident needs none)
+                s.claim(layer, e, r)  # read by weights() when the layer needs it
                 # on its way from now, with an emulated link
                 s.transfer = link.book(self.store.expert_nbytes, now, True) if link is not None else None
-                events[e] = [MISS, slot, 0, 0]  # kind, slot, pagein ns, stall ns
+                ev = events[e] = s.event
+                ev.kind = MISS
+                ev.pagein_ns = ev.stall_ns = 0
                 misses += 1
                 ready = False
             elif s.guess:
                 s.guess = False
                 self.timing.outcome(True)
+                prefetched += 1
                 st.prefetch_used += 1
                 st.prefetch_hits[layer] += 1
-                events[e] = [PREFETCHED, slot, 0, 0]
+                ev = events[e] = s.event
+                ev.kind = PREFETCHED
+                ev.pagein_ns = ev.stall_ns = 0
                 ready = False
                 if s.dropped:  # cancelled a moment ago, the reader still holding it: ask for it again
                     s.dropped = False
@@ -344,12 +346,14 @@ class ExpertPool(GuessPlacement, ExpertSource):
                 if s.state == LOADING:
                     self.reader.promote(s.index, s.gen)
             else:
-                st.hits[layer] += 1
-                events[e] = [HIT, slot, 0, 0]
+                ev = events[e] = s.event
+                ev.kind = HIT
+                ev.pagein_ns = ev.stall_ns = 0
                 if s.state != READY or s.transfer is not None:
                     ready = False
         st.accesses[layer] += len(ids)
         st.misses[layer] += misses
+        st.hits[layer] += len(ids) - misses - prefetched
         self._events = events
         self._ready = ready
 
@@ -362,7 +366,7 @@ class ExpertPool(GuessPlacement, ExpertSource):
         ready = []
         slots = self.slots
         for j, e in enumerate(ids):
-            s = slots[ev[e][1]]
+            s = slots[ev[e].slot]
             if s.state == LOADING:
                 self._settle(s)
             if s.state == READY and self._usable_at(s, now) <= now:
@@ -375,33 +379,30 @@ class ExpertPool(GuessPlacement, ExpertSource):
         ev = self._events.get(expert)
         if self._prefill or ev is None:
             return self._prefill_weights(layer, expert)
-        s = self.slots[ev[1]]
-        if ev[0] == PREFETCHED:  # did the reader copy it in time, or is it the compute thread's to copy?
+        s = self.slots[ev.slot]
+        kind = ev.kind
+        if kind == PREFETCHED:  # did the reader copy it in time, or is it the compute thread's to copy?
             self.timing.copied_here(s.state == PENDING or (s.state == LOADING and rd_poll_none(self.reader, s)))
         if s.state == READY and s.transfer is None:
-            if ev[0] == PREFETCHED:
+            if kind == PREFETCHED:
                 self._hidden(s, time.monotonic_ns())
             return self.codec.weights(s.bound)
         t0 = time.monotonic_ns()
         if s.state == READY and self._usable_at(s, t0) <= t0:
-            if ev[0] == PREFETCHED:
+            if kind == PREFETCHED:
                 self._hidden(s, t0)
             s.transfer = None  # arrived: later uses need not ask the link
             return self.codec.weights(s.bound)
-        if s.state == LOADING:
-            self._settle(s)
-            if s.state == LOADING:  # the reader has not got to it: read it here rather than wait
-                self._take_over(s)
-        elif s.state == PENDING:
-            self._copy(s)
+        if s.state == LOADING or s.state == PENDING:
+            self._bring_in(s)
         if s.state == EMPTY:  # a miss, or a guess whose read failed: read it here
-            ev[2] = self._read_here(s, False)
+            ev.pagein_ns = self._read_here(s, False)
         else:
             self._wait(self._usable_at(s, time.monotonic_ns()))  # the rest of its emulated transfer
-            if ev[0] == PREFETCHED:
+            if kind == PREFETCHED:
                 self._hidden(s, t0)
         stall = time.monotonic_ns() - t0
-        ev[3] = stall
+        ev.stall_ns = stall
         self.stats.stall_ns[layer] += stall
         s.transfer = None  # arrived: later uses need not ask the link
         return self.codec.weights(s.bound)
@@ -422,21 +423,19 @@ class ExpertPool(GuessPlacement, ExpertSource):
         if the read fails, the slot is left EMPTY for a layer that claimed it to read itself (where a
         lasting fault raises), or given back if none did; False then."""
         try:
-            ns = self.store.copy_in(s.layer, s.expert, s.buf)
+            ns = self.store.copy_in(s.layer, s.expert, s.buf, True)
         except Exception:
             self.stats.prefetch_failed += 1
             if s.transfer is not None:
                 self.link.drop(s.transfer, time.monotonic_ns())
                 s.transfer = None
             if s.guess:
-                s.state = READY  # so that give_back counts it as it does a read guess
-                self._give_back(s)
+                self._give_back(s, read=True)  # counted as a read guess is
             else:
-                s.state = EMPTY
+                s.empty()
             return False
         self.timing.copied(ns)
-        s.state = READY
-        s.read_ns = ns
+        s.fill(time.monotonic_ns(), ns)
         self.stats.bytes_in += self.store.expert_nbytes
         self.stats.prefetch_ns += ns
         self.stats.prefetch_copied_here += 1
@@ -448,14 +447,18 @@ class ExpertPool(GuessPlacement, ExpertSource):
             margin = self.timing.copy_ns
             pending = self._pending
             while pending and time.monotonic_ns() + margin < deadline:
-                s = pending.pop(0)
-                if s.state == LOADING:
-                    self._settle(s)
-                    if s.state == LOADING:
-                        self._take_over(s)
-                elif s.state == PENDING:
-                    self._copy(s)
+                self._bring_in(pending.pop(0))
         wait_until(deadline)
+
+    def _bring_in(self, s: Slot) -> None:
+        """The one settle / take-over / copy sequence: a LOADING slot takes the reader's result if it is
+        there, else is read here (``_take_over``); a PENDING guess is copied here (``_copy``)."""
+        if s.state == LOADING:
+            self._settle(s)
+            if s.state == LOADING:  # the reader has not got to it: read it here rather than wait
+                self._take_over(s)
+        elif s.state == PENDING:
+            self._copy(s)
 
     def _take_over(self, s: Slot) -> None:
         """Read a LOADING guess on this thread: the reader is told to skip it, and the slot stays out of
@@ -464,9 +467,7 @@ class ExpertPool(GuessPlacement, ExpertSource):
         self.reader.cancel(s.index, s.gen)
         self.store.copy_in(s.layer, s.expert, s.buf)
         self.stats.prefetch_copied_here += 1
-        s.state = READY
-        s.owed = True
-        s.ready_at = time.monotonic_ns()
+        s.take_over(time.monotonic_ns())
         self.stats.bytes_in += self.store.expert_nbytes
         self._owed.append(s)
 
@@ -480,14 +481,11 @@ class ExpertPool(GuessPlacement, ExpertSource):
         try:
             ns = self.store.copy_in(s.layer, s.expert, s.buf)
         except BaseException:
-            s.res.remove(self.key(s.layer, s.expert))
-            s.state = EMPTY
-            s.layer = s.expert = -1
-            s.res = s.transfer = None
+            self.core.forget(s.layer, self.key(s.layer, s.expert))
+            s.clear()
             raise
         now = time.monotonic_ns()
-        s.state = READY
-        s.ready_at = now
+        s.fill(now, ns)
         st.bytes_in += self.store.expert_nbytes
         t = s.transfer
         if t is not None:
@@ -508,25 +506,19 @@ class ExpertPool(GuessPlacement, ExpertSource):
 
     def _prefill_weights(self, layer: int, expert: int):
         """Prefill: each needed expert is accessed (and paged in) once per layer, pinned alone."""
-        key = self.key(layer, expert)
         self.progress = max(self.progress, -1)
-        pinned = self.pinned = (key,)
         r = self.res_of[layer]
         t0 = time.monotonic_ns()
-        hit, slot = self._access(r, key, pinned)
+        hit, slot = self._prefill_access(layer, expert)
         s = self.slots[slot]
         if hit:
             s.guess = s.dropped = False
             if s.transfer is not None and s.transfer.end < 0:
                 self.link.promote(s.transfer, t0)
-            if s.state == LOADING:
-                self._settle(s)
-                if s.state == LOADING:
-                    self._take_over(s)
-            elif s.state == PENDING:
-                self._copy(s)
+            self._bring_in(s)
         else:
-            s.layer, s.expert, s.state, s.res, s.transfer = layer, expert, EMPTY, r, None
+            s.claim(layer, expert, r)
+            s.transfer = None
         if s.state == READY:
             self._wait(self._usable_at(s, time.monotonic_ns()))  # the rest of an emulated transfer
         else:
@@ -536,8 +528,123 @@ class ExpertPool(GuessPlacement, ExpertSource):
 
     def end_layer(self, layer: int) -> None:
         if self.recorder is not None and not self._prefill:
-            stall = sum(ev[3] for ev in self._events.values())
+            stall = sum(ev.stall_ns for ev in self._events.values())
             compute = time.monotonic_ns() - self._layer_t0 - stall
             self.recorder.events(self.step, layer, self._events, compute)
-        self.pinned = ()
+        self.core.pinned = ()  # Decisions.done(), inline: the decode path
 
+
+    # ------------------------------------------------------------------ guesses (the decision core places them)
+    def _meet_guesses(self, layer: int, ids: list[int], now: int) -> None:
+        """The layer has routed: the decision core offers its unchosen guesses for dropping; each is dropped
+        (its link time and slot given back) unless its transfer has begun, or (no link) it was read."""
+        link, slots, r = self.link, self.slots, self.res_of[layer]
+
+        def drop(key: int) -> bool:
+            s = slots[r.slot_of[key]]
+            if link is not None:
+                if s.transfer is not None and not link.drop(s.transfer, now):
+                    return False  # its transfer had begun: it arrives and stays resident, unused so far
+            elif s.state != LOADING:
+                return False  # already read: keep it
+            self.stats.prefetch_dropped += 1
+            if s.state == LOADING or s.owed:  # the reader may still write it: given back once it answers
+                if s.state == LOADING:
+                    self.reader.cancel(s.index, s.gen)
+                s.dropped = True
+            else:  # never (officially) arrived: its bytes, copied or not, are not to be used
+                self._give_back(s)
+            return True
+
+        self.core.meet(layer, ids, drop)
+        if self._pending:
+            self._pending = [s for s in self._pending if s.state in (PENDING, LOADING) and s.guess]
+
+    def _arrival(self, now: int) -> int:
+        """When a guess handed over now should arrive."""
+        if self.link is not None:
+            return self.link.backlog_until(now) + self.link.ns(self.store.expert_nbytes)
+        return now + (self.timing.outstanding + 1) * self.timing.read_ns
+
+    def worth_guessing(self) -> bool:
+        """Could any guess pay at all?  Not when even one arriving in time would save less than it costs
+        (``prefetch``'s rule with no lateness): then the prefetch point is skipped, guess rule included."""
+        return self._all_resident is None and worth_guessing(self.timing, self._read_ns(), self.place_ns)
+
+    def _read_ns(self) -> float:
+        """One expert read: over the emulated link, or as the reader's reads have taken."""
+        return self.timing.read_ns if self.link is None else self.link.ns(self.store.expert_nbytes)
+
+    def prefetch_point(self) -> None:
+        """The model reached a prefetch point (its guesses are placed next): a lingering reader is told
+        when to expect the next one."""
+        nxt = self.timing.point(time.monotonic_ns())
+        if self.reader is not None:
+            self.reader.expect(nxt)
+
+    def prefetch(self, layer: int, guesses: list[int], target: int) -> None:
+        """Place the guesses for ``layer`` (best first) and hand their reads to the reader (compute thread).
+
+        The decision core (``Decisions.place``) decides which are read and where: a guess already
+        resident or in flight costs nothing more; another is read only if it pays (its expected saving,
+        the read time it would save its layer if used times the share of guesses used so far, must
+        exceed what it costs the compute thread: placing it, and a copy of its own as often as the
+        reader has been late; ``moerun.runtime.guesses``), and the policy must rather hold it than its
+        victim (``Policy.admits``).  It never evicts an expert pinned by the layer being computed
+        (shared pool), a slot being read, or another guess of the same round.  Here each placed guess
+        is handed over; one the fault seam refuses is forgotten.
+        """
+        st = self.stats
+        st.prefetch_guesses += len(guesses)
+        if not self._reading():
+            return
+        now = time.monotonic_ns()
+        timing = self.timing
+        timing.mark = now
+        need_at = timing.need_at(now, target - self.progress)
+        read = self._read_ns()
+        link, nbytes, slots, r = self.link, self.store.expert_nbytes, self.slots, self.res_of[layer]
+
+        def pays() -> bool:
+            return guess_pays(timing, read, self._arrival(now), need_at, self.place_ns)
+
+        for out in self.core.place(layer, guesses, pays):
+            if type(out) is not Placed:
+                if out.why is RESIDENT:
+                    st.prefetch_resident += 1
+                else:
+                    st.prefetch_declined += 1
+                continue
+            s = slots[out.slot]
+            if out.victim is not None:
+                self._evicted(s)
+            s.claim(layer, out.key - self.base[layer], r)
+            s.guess = True
+            st.prefetch_loads += 1
+            if not self._hand_over(s):
+                st.prefetch_failed += 1  # forget the guess; its layer reads the expert if it needs it
+                self.core.forget(layer, out.key)
+                s.clear()
+                continue
+            if link is not None:
+                s.transfer = link.book(nbytes, now, False)
+
+    def _hand_over(self, s: Slot) -> bool:
+        """Give a guess's read to the reader (with an emulated link and no live reader, mark it PENDING
+        for the compute thread to copy); False (slot left as it was) if the fault seam refused it."""
+        s.gen += 1
+        if self.link is not None and not (self.reader is not None and self.reader.alive):
+            self._pending.append(s)
+            s.book()  # the copy meets the fault seam
+            return True
+        try:
+            self.store.fault(s.layer, s.expert, True)  # the reader's read meets the seam here, when handed over
+        except Exception:
+            return False
+        if self.link is not None:
+            self._pending.append(s)  # the compute thread may take it over while it waits anyway
+        s.hand_over()
+        s.res.busy.add(self.key(s.layer, s.expert))
+        self.timing.outstanding += 1
+        self.reader.submit(s.index, s.gen, s.layer, s.expert)
+        return True

@@ -98,7 +98,6 @@ class Prefetcher:
         self.lookahead = lookahead
         self.reader = reader
         self.at_output = at == "output"
-        self.hook = None  # test hook: callable(layer, expert) run before each guess is handed over; raising fails it
 
     def after_attention(self, layer: int, h: np.ndarray) -> None:
         if not self.at_output and h.shape[0] == 1:
@@ -116,7 +115,7 @@ class Prefetcher:
         base = pool.step * pool.config.n_layers
         pool.prefetch_point()
         for j, guesses in enumerate(self.rule.top(layer, h, self.n), 1):
-            pool.prefetch(layer + j, guesses, base + layer + j, self.hook)
+            pool.prefetch(layer + j, guesses, base + layer + j)
 
     @property
     def alive(self) -> bool:

@@ -94,11 +94,18 @@ class Residency:
                 policy.hit(key, now)
                 out.append((True, slot, None))
             else:
-                try:
-                    victim = self.victim(pinned)
-                except NoVictim:
-                    raise NoVictim(out) from None
-                slot, victim = self._take_slot(victim)
+                if self.free:  # victim() and _take_slot(), inline: the decode path
+                    slot, victim = self.free.pop(), None
+                else:
+                    busy = self.busy
+                    candidates = [k for k in slot_of if k not in pinned and k not in busy]
+                    if not candidates:
+                        raise NoVictim(out)
+                    victim = policy.victim(candidates, now)
+                    if victim not in slot_of or victim in pinned or victim in busy:
+                        raise RuntimeError(f"policy {policy.name!r} chose {victim!r}, which is not an evictable resident")
+                    policy.evicted(victim)
+                    slot = slot_of.pop(victim)
                 slot_of[key] = slot
                 policy.inserted(key, now)
                 out.append((False, slot, victim))

@@ -1,13 +1,31 @@
-"""One slot's record, the states a slot goes through, and what the pool counts.
+"""One slot's record and its state machine, a decode layer's per-access event, and what the pool counts.
 
-A slot is one expert-sized buffer of the pool.  Its state says who owns its bytes: EMPTY (claimed,
-not read), PENDING (a guess booked on the emulated link whose bytes the compute thread has not
-copied yet), LOADING (the reader process owns the bytes until it answers), READY.
-``PoolStats.to_json`` is ``engine.stats["pool"]``.
+A slot is one expert-sized buffer of the pool.  Its state says who owns its bytes, and changes only
+through the transitions of ``TRANSITIONS`` (one ``Slot`` method each; any other change raises
+``IllegalTransition``)::
+
+                  book                fill
+        EMPTY ----------> PENDING ----------> READY
+         |  |                                  ^  ^
+         |  |  hand_over             arrive    |  |
+         |  +-----------> LOADING -------------+  |
+         |                 |   |   take_over      |
+         |      let_go     |   +----(owed)------->|
+         |<----------------+                      |
+         |               fill (a demand read)     |
+         +--------------------------------------->+
+
+        claim, clear, empty: EMPTY, PENDING, READY -> EMPTY (never LOADING, nor READY and owed)
+
+EMPTY: claimed or free, no bytes.  PENDING: a guess booked on the emulated link with no live reader;
+the compute thread copies its bytes.  LOADING: the reader process owns the bytes until it answers.
+READY: the bytes are there.  A READY slot read here while the reader still held it is ``owed``: not
+evictable until the reader answers.  ``PoolStats.to_json`` is ``engine.stats["pool"]``.
 """
 
 from __future__ import annotations
 
+import enum
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -15,11 +33,56 @@ import numpy as np
 from moerun.runtime.link import Transfer
 from moerun.runtime.residency import Residency
 
-# PENDING: a guess booked on the emulated link, with no reader, whose bytes the compute thread has
-# not copied yet; LOADING: the reader process owns the slot's bytes until it publishes
-EMPTY, PENDING, LOADING, READY = 0, 3, 1, 2
+
+class State(enum.IntEnum):
+    EMPTY = 0
+    LOADING = 1  # the reader process owns the slot's bytes until it publishes
+    READY = 2
+    PENDING = 3  # a guess booked on the emulated link, with no reader, whose bytes the compute thread has not copied
+
+
+# the values a slot's ``state`` holds (plain ints: compared on every access of the decode path)
+EMPTY, LOADING, READY, PENDING = int(State.EMPTY), int(State.LOADING), int(State.READY), int(State.PENDING)
+
+# transition -> {from state: to state}: the only changes of state there are
+TRANSITIONS: dict[str, dict[int, int]] = {
+    # a layer (or a guess) takes the slot for an expert, nothing read yet; an evicted expert's bytes are
+    # dropped with it (never a slot the reader may write: LOADING, or READY and owed)
+    "claim": {EMPTY: EMPTY, PENDING: EMPTY, READY: EMPTY},
+    "book": {EMPTY: PENDING},  # a guess over the emulated link, no live reader: the compute thread copies it
+    "hand_over": {EMPTY: LOADING},  # a guess's read handed to the reader process
+    "arrive": {LOADING: READY},  # the reader published the bytes
+    "let_go": {LOADING: EMPTY},  # the reader answered without the bytes (failed, skipped, or dropped)
+    "take_over": {LOADING: READY},  # read here while the reader still holds it: owed until it answers
+    "fill": {EMPTY: READY, PENDING: READY},  # the compute thread read the bytes
+    "empty": {EMPTY: EMPTY, PENDING: EMPTY, READY: EMPTY},  # its bytes are not to be used; it keeps its expert
+    "clear": {EMPTY: EMPTY, PENDING: EMPTY, READY: EMPTY},  # evicted or given back: it holds nothing
+}
+
+
+class IllegalTransition(RuntimeError):
+    """A slot asked to change state in a way ``TRANSITIONS`` does not allow (a bug, never a user error)."""
+
+
 HIT, PREFETCHED, MISS = 0, 1, 2
 KIND_NAMES = {HIT: "hit", PREFETCHED: "prefetched", MISS: "miss"}
+
+
+@dataclass(eq=False, slots=True)
+class Event:
+    """What one access of a decode layer was, and what it cost: its kind (HIT, PREFETCHED, MISS), its
+    slot, the page-in and the stall it took (ns).  One record per slot, reused by every access it serves
+    (the recorder copies the figures at the end of the layer), so the decode path allocates none."""
+
+    kind: int = HIT
+    slot: int = -1
+    pagein_ns: int = 0
+    stall_ns: int = 0
+
+    def reset(self, kind: int) -> Event:
+        self.kind = kind
+        self.pagein_ns = self.stall_ns = 0
+        return self
 
 
 @dataclass(eq=False, slots=True)
@@ -29,7 +92,7 @@ class Slot:
     index: int
     buf: np.ndarray
     bound: object  # the codec's views of buf
-    state: int = EMPTY
+    state: int = EMPTY  # a State
     layer: int = -1  # the expert it holds or is being read into (-1: none)
     expert: int = -1
     res: Residency | None = None  # the residency that holds it
@@ -40,6 +103,91 @@ class Slot:
     transfer: Transfer | None = None  # its emulated transfer, with a link
     ready_at: int = 0  # when its bytes arrived (no link)
     read_ns: int = 0  # how long its last read took
+    event: Event = field(init=False)  # its access's record in the current decode layer
+
+    def __post_init__(self):
+        self.event = Event(HIT, self.index)
+
+    def _illegal(self, name: str):
+        owed = " (owed)" if self.owed else ""
+        return IllegalTransition(f"slot {self.index}: {name} from {State(self.state).name}{owed}")
+
+    # one method per transition; each looks its target up in its row of TRANSITIONS (_TO, by state)
+    def claim(self, layer: int, expert: int, res: Residency) -> None:
+        """Hold ``expert`` of ``layer`` from now, nothing read yet (whatever it held is forgotten)."""
+        to = _CLAIM[self.state]
+        if to is None or self.owed:
+            raise self._illegal("claim")
+        self.state = to
+        self.layer, self.expert, self.res = layer, expert, res
+        self.guess = self.dropped = False
+        self.transfer = None
+
+    def book(self) -> None:
+        to = _BOOK[self.state]
+        if to is None:
+            raise self._illegal("book")
+        self.state = to
+
+    def hand_over(self) -> None:
+        to = _HAND_OVER[self.state]
+        if to is None:
+            raise self._illegal("hand_over")
+        self.state = to
+
+    def arrive(self, at: int, ns: int) -> None:
+        to = _ARRIVE[self.state]
+        if to is None:
+            raise self._illegal("arrive")
+        self.state = to
+        self.ready_at = at
+        self.read_ns = ns
+
+    def let_go(self) -> None:
+        to = _LET_GO[self.state]
+        if to is None:
+            raise self._illegal("let_go")
+        self.state = to
+
+    def take_over(self, at: int) -> None:
+        to = _TAKE_OVER[self.state]
+        if to is None:
+            raise self._illegal("take_over")
+        self.state = to
+        self.owed = True
+        self.ready_at = at
+
+    def fill(self, at: int, ns: int) -> None:
+        to = _FILL[self.state]
+        if to is None:
+            raise self._illegal("fill")
+        self.state = to
+        self.ready_at = at
+        self.read_ns = ns
+
+    def empty(self) -> None:
+        """Its bytes are not to be used; it stays with its expert, for the layer that wants it to read."""
+        to = _EMPTY[self.state]
+        if to is None:
+            raise self._illegal("empty")
+        self.state = to
+        self.guess = self.dropped = False
+
+    def clear(self) -> None:
+        """Hold nothing: the slot is free again."""
+        to = _CLEAR[self.state]
+        if to is None or self.owed:
+            raise self._illegal("clear")
+        self.state = to
+        self.guess = self.dropped = False
+        self.layer = self.expert = -1
+        self.res = self.transfer = None
+
+
+# TRANSITIONS as rows indexed by the state's number (a tuple lookup, for the decode path)
+_TO: dict[str, tuple] = {name: tuple(row.get(st) for st in State) for name, row in TRANSITIONS.items()}
+_CLAIM, _BOOK, _HAND_OVER, _ARRIVE, _LET_GO, _TAKE_OVER, _FILL, _EMPTY, _CLEAR = (
+    _TO[name] for name in ("claim", "book", "hand_over", "arrive", "let_go", "take_over", "fill", "empty", "clear"))
 
 
 @dataclass

@@ -31,6 +31,8 @@ import numpy as np
 
 from moerun.files.store import ModelStore
 from moerun.runtime.budget import slot_bytes
+from moerun.runtime.clock import wait_until
+from moerun.runtime.link import Link
 
 
 def aligned_block(nbytes: int) -> tuple[np.ndarray, np.ndarray]:
@@ -54,6 +56,8 @@ class ExpertSource:
         self.codec = store.codec
         self.stall_ns = 0
         self.bytes_in = 0
+        # the emulated link's one owner: the source that reads the experts (None: real speed)
+        self.link: Link | None = Link(store.link_rate) if store.link_rate else None
 
     def begin_step(self, step: int) -> None:
         self.step = step
@@ -74,10 +78,23 @@ class ExpertSource:
     def end_layer(self, layer: int) -> None:
         pass
 
-    def _page_in(self, layer: int, expert: int, dst: np.ndarray) -> None:
+    def page_in(self, layer: int, expert: int, dst: np.ndarray) -> int:
+        """Copy one expert's bytes into ``dst``; return ns.  With an emulated link the transfer is booked
+        on its one channel when the read starts and the call returns when it ends (``moerun.runtime.link``):
+        page-ins queue behind each other."""
         t0 = time.monotonic_ns()
-        self.store.page_in(layer, expert, dst)
-        self.stall_ns += time.monotonic_ns() - t0
+        link = self.link
+        t = link.book(self.store.expert_nbytes, t0, True) if link is not None else None
+        self.store.copy_in(layer, expert, dst)
+        if t is not None:
+            now = time.monotonic_ns()
+            end = link.ends(t, now)
+            link.hold(t, now)  # a read slower than the link ends when the read did
+            wait_until(max(end, now))
+        return time.monotonic_ns() - t0
+
+    def _page_in(self, layer: int, expert: int, dst: np.ndarray) -> None:
+        self.stall_ns += self.page_in(layer, expert, dst)
         self.bytes_in += self.store.expert_nbytes
 
 
@@ -95,7 +112,7 @@ class BareExperts(ExpertSource):
             for e in range(c.n_experts):
                 i = layer * c.n_experts + e
                 slot = block[i * size : (i + 1) * size]
-                store.page_in(layer, e, slot)
+                self.page_in(layer, e, slot)
                 row.append(store.codec.bind(slot))
             self.table.append(row)
 

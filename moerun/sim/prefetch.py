@@ -7,9 +7,9 @@ from dataclasses import dataclass
 from moerun.errors import BadOption, BadTrace
 from moerun.files.trace import Trace
 from moerun.policies import Policy
-from moerun.runtime.residency import NoVictim, Residency
+from moerun.runtime.decisions import Decisions, Placed
 from moerun.sim.counts import Counts
-from moerun.sim.steps import LayerPlan, layer_plans, plan_policy, shared_plan, walk
+from moerun.sim.steps import LayerPlan, layer_plans, plan_decisions, shared_plan, walk
 
 RECALL_GUESSES = 4
 RECALL_LOOKAHEAD = 3
@@ -73,18 +73,16 @@ def simulate_prefetch(
 ) -> list[PrefetchCounts]:
     """Replay with speculative loads, by the generic path, one ``PrefetchCounts`` per layer.
 
-    Guesses are placed where the live pool places them, and loaded at once, as if the link had no
-    delay: a guess already resident is skipped, one that finds no evictable slot or that the policy
-    declines (``Policy.admits``) is dropped, and a guess never evicts another guess of its round.
+    The live pool's decision core (``moerun.runtime.decisions``) places the guesses; their loads take no
+    time, so every guess pays and none is dropped (its load is over before its layer routes).
 
     - Per-layer quotas: before each decode step of layer m, the guesses made for layer m at the
       prefetch points of layers m-lookahead .. m-1 of the same token, furthest lookahead first,
       each layer's in rank order (layer m's quota is not touched in between, so this is when they
       were made, as far as that quota can tell).
     - ``shared`` (one pool of ``capacity`` slots for all layers): right after the step of layer l
-      (its prefetch point), the guesses made there for layers l+1 .. l+lookahead, nearest first,
-      with layer l's chosen experts pinned too, as in ``ExpertPool.prefetch``.  A guess's loads and
-      waste count for the layer it was made for.
+      (its prefetch point, with layer l's chosen experts pinned), the guesses made there for layers
+      l+1 .. l+lookahead, nearest first.  A guess's loads and waste count for the layer it was made for.
     """
     g = trace.guesses
     if g is None:
@@ -99,83 +97,66 @@ def simulate_prefetch(
     L = trace.n_layers
     if shared:
         plan = plans[0] if plans else shared_plan(trace)
-        E = plan.shared_experts
-        layers, tokens, counted, keys, starts = plan.layers.tolist(), plan.token.tolist(), plan.counted.tolist(), plan.keys.tolist(), plan.starts.tolist()
+        layers, tokens, counted = plan.layers.tolist(), plan.token.tolist(), plan.counted.tolist()
 
-        def shared_rounds(s: int):
-            src = layers[s] - 1  # the step before is layer src's of the same token
-            if counted[s] and src >= 0:
-                t, pinned = tokens[s], keys[starts[s - 1] : starts[s]]
+        def shared_rounds(s: int):  # after step s: its layer's prefetch point
+            src = layers[s]
+            if counted[s]:
+                t = tokens[s]
                 for j in range(1, min(lookahead, L - 1 - src) + 1):
-                    ks = [(src + j) * E + e for e in gl[t][src][j - 1] if e >= 0]
-                    yield ks, set(ks).union(pinned)
+                    yield src + j, [e for e in gl[t][src][j - 1] if e >= 0]
 
-        return _prefetch_walk(plan, policy_cls, capacity, shared_rounds, L, E)
+        return _prefetch_walk(plan, plan_decisions(plan, policy_cls, capacity), None, shared_rounds, L, plan.shared_experts)
     out = []
     for m, plan in enumerate(plans if plans is not None else layer_plans(trace)):
         counted, tokens = plan.counted.tolist(), plan.token.tolist()
 
-        def rounds(s: int, m=m, counted=counted, tokens=tokens):
+        def rounds(s: int, m=m, counted=counted, tokens=tokens):  # before step s of layer m
             if counted[s]:
                 t = tokens[s]
                 for j in range(min(lookahead, m), 0, -1):
-                    ks = [e for e in gl[t][m - j][j - 1] if e >= 0]
-                    yield ks, set(ks)
+                    yield m, [e for e in gl[t][m - j][j - 1] if e >= 0]
 
-        out.append(_prefetch_walk(plan, policy_cls, capacity, rounds, L, trace.n_experts)[m])
+        core = plan_decisions(plan, policy_cls, capacity)
+        out.append(_prefetch_walk(plan, core, rounds, None, L, trace.n_experts)[m])
     return out
 
 
-def _prefetch_walk(plan: LayerPlan, policy_cls: type[Policy], capacity: int, rounds, n_layers: int, n_experts: int) -> list[PrefetchCounts]:
-    """``walk`` with the guess rounds ``rounds(s)`` (``(keys, protected)`` pairs) placed before step s."""
-    res = Residency(capacity, plan_policy(policy_cls, plan))
-    policy = res.policy
+def _prefetch_walk(plan: LayerPlan, core: Decisions, before, after, n_layers: int, n_experts: int) -> list[PrefetchCounts]:
+    """``walk`` with guess rounds (``(target layer, expert ids)`` pairs) placed ``before`` or ``after`` steps."""
     out = [PrefetchCounts() for _ in range(n_layers)]
     E, layer = plan.shared_experts, plan.layer
     # key -> the layer it counts for (a per-layer plan's guesses may name experts its trace never chose)
     owner = [k // E for k in range(plan.n_keys)] if E else [layer] * max(plan.n_keys, n_experts)
-    fresh: set = set()  # loaded by a guess, not used yet
 
-    def place(s: int) -> None:
-        for ks, protect in rounds(s):
-            for key in ks:
-                pc = out[owner[key]]
+    def place(rounds, s: int) -> None:
+        for target, ids in rounds(s):
+            for o in core.place(target, ids):
+                pc = out[owner[o.key]]
                 pc.guesses += 1
-                if key in res:
-                    continue
-                try:
-                    victim = res.victim(protect)
-                except NoVictim:
-                    continue
-                if victim is not None and not policy.admits(key, victim, res.now):
-                    continue
-                _, victim = res.place(key, victim)
-                pc.loads += 1
-                fresh.add(key)
-                if victim in fresh:
-                    fresh.discard(victim)
-                    out[owner[victim]].wasted += 1
+                if type(o) is Placed:
+                    pc.loads += 1
+                    if o.wasted:
+                        out[owner[o.victim]].wasted += 1
 
     keys, counted = plan.keys.tolist(), plan.counted.tolist()
-    for s, a, b, served in walk(plan, res, place):
+    for s, a, b, served in walk(plan, core, before and (lambda s: place(before, s)), after and (lambda s: place(after, s))):
         c = counted[s]
+        used, wasted = core.used, core.wasted
         for x, (hit, _, victim) in zip(keys[a:b], served):
             pc = out[owner[x]]
             if c:
                 pc.accesses += 1
             if hit:
-                if x in fresh:
-                    fresh.discard(x)
-                    if c:
-                        pc.prefetch_hits += 1
+                if c and x in used:
+                    pc.prefetch_hits += 1
             else:
                 if c:
                     pc.misses += 1
                 else:
                     pc.prefill_loads += 1
-                if victim in fresh:
-                    fresh.discard(victim)
+                if victim in wasted:
                     out[owner[victim]].wasted += 1
-    for key in fresh:
+    for key in core.fresh(plan.layer):
         out[owner[key]].wasted += 1
     return out

@@ -15,7 +15,6 @@ import numpy as np
 from moerun import policies
 from moerun.errors import BadOption, BadTrace
 from moerun.files.trace import Trace
-from moerun.runtime.residency import Residency
 from moerun.sim.counts import (
     Counts,
     count_layer,
@@ -27,12 +26,21 @@ from moerun.sim.counts import (
 )
 from moerun.sim.fast import FAST_PATHS, layer_misses
 from moerun.sim.prefetch import RECALL_GUESSES, RECALL_LOOKAHEAD, PrefetchCounts, prefetch_recall, simulate_prefetch
-from moerun.sim.steps import LayerPlan, generic_misses, layer_plans, plan_policy, prefill_tokens, routed_hook, shared_plan, walk
+from moerun.sim.steps import (
+    LayerPlan,
+    generic_misses,
+    layer_plans,
+    plan_decisions,
+    plan_policy,
+    prefill_tokens,
+    shared_plan,
+    walk,
+)
 
 __all__ = ["DEFAULT_POLICIES", "FAST_PATHS", "RECALL_GUESSES", "RECALL_LOOKAHEAD", "Counts", "LayerPlan", "PrefetchCounts", "count_layer",
            "count_shared", "default_slots", "describe", "generic_misses", "layer_misses", "layer_plans", "overall", "parse_policies",
            "parse_slots", "plan_policy", "prefetch_recall", "prefill_tokens", "random_routing_trace", "replay_counts",
-           "residency_picture", "routed_hook", "run_replay", "shared_counts", "shared_slots", "shared_plan", "shuffled_trace", "simulate_prefetch", "walk"]
+           "residency_picture", "run_replay", "shared_counts", "shared_slots", "shared_plan", "shuffled_trace", "simulate_prefetch", "walk"]
 
 DEFAULT_POLICIES = ["lru", "lfu", "fifo", "optimal"]
 
@@ -244,13 +252,14 @@ def residency_picture(trace: Trace, layer: int, policy: str, capacity: int, t0: 
     path (``shared``: the layer's experts in one pool of ``capacity`` slots for all layers):
     0 absent, 1 resident, 2 used and resident before (hit), 3 used and loaded (miss)."""
     plan = shared_plan(trace) if shared else layer_plans(trace)[layer]
-    res = Residency(capacity, plan_policy(policies.get(policy), plan))
+    core = plan_decisions(plan, policies.get(policy), capacity)
+    res = core.res_of[0]
     keys, tokens, counted = plan.keys.tolist(), plan.token.tolist(), plan.counted.tolist()
     step_layer = plan.layers.tolist() if shared else None
     E = trace.n_experts
     base = layer * E if shared else 0
     pic = np.zeros((E, t1 - t0), np.int8)
-    for s, a, b, served in walk(plan, res):
+    for s, a, b, served in walk(plan, core):
         t = tokens[s]
         if t >= t1:
             break

@@ -17,8 +17,9 @@ What a replay does (docs/guide/traces.md has the long form):
 
 A replay is a list of *steps* per pool (``LayerPlan``): the accesses of one
 step share one pinned set.  The source of truth is ``generic_misses``, which
-drives ``residency.Residency`` with a policy object from ``moerun.policies``,
-exactly the objects the live pool uses, through ``walk``.  The fast paths of
+drives the live pool's decision core (``moerun.runtime.decisions``) with a
+policy object from ``moerun.policies``, exactly the objects the live pool
+uses, through ``walk``.  The fast paths of
 ``moerun.sim.fast`` give the same hits and misses.
 """
 
@@ -33,6 +34,7 @@ import numpy as np
 from moerun.errors import BadTrace
 from moerun.files.trace import Trace
 from moerun.policies import Policy, make_policy
+from moerun.runtime.decisions import Decisions
 from moerun.runtime.residency import Residency
 
 
@@ -205,67 +207,63 @@ def plan_policy(cls: type[Policy], plan: LayerPlan) -> Policy:
     return make_policy(cls, plan.n_keys, plan.shared_experts, plan.keys.tolist())
 
 
-def routed_hook(policy: Policy, plan: LayerPlan) -> Callable[[int, int, int, int], None] | None:
-    """``hook(s, a, b, now)`` telling ``policy.routed`` about decode step s (accesses a..b-1), or None.
-
-    None when the policy does not override ``Policy.routed`` (nothing to tell).  As in the live
-    pool, only decode steps are signalled, before their accesses, with the step's layer, its expert
-    ids and the token's router probabilities for that layer (None when the trace holds no ``probs``).
-    """
-    if type(policy).routed is Policy.routed:
-        return None
-    keys, counted, token, probs = plan.keys, plan.counted, plan.token, plan.probs
-    if plan.layers is None:
-        layer = plan.layer
-
-        def hook(s: int, a: int, b: int, now: int) -> None:
-            if counted[s]:
-                policy.routed(layer, keys[a:b].tolist(), probs[token[s]] if probs is not None else None, now)
-
-        return hook
-    layers, E = plan.layers.tolist(), plan.shared_experts
-
-    def shared_hook(s: int, a: int, b: int, now: int) -> None:
-        if counted[s]:
-            layer = layers[s]
-            chosen = (keys[a:b] - layer * E).tolist()
-            policy.routed(layer, chosen, probs[token[s], layer] if probs is not None else None, now)
-
-    return shared_hook
-
-
-def walk(plan: LayerPlan, res: Residency, before: Callable[[int], None] | None = None):
-    """Serve ``plan``'s steps through ``res`` as the live pool does; yields ``(s, a, b, served)`` after each.
+def walk(plan: LayerPlan, core: Decisions | Residency, before: Callable[[int], None] | None = None,
+         after: Callable[[int], None] | None = None):
+    """Serve ``plan``'s steps through the decision core as the live pool does; yields ``(s, a, b, served)``.
 
     The one step loop of every replay on the reference path (misses, prefetch, pictures; per-layer
-    quotas and the shared pool alike).  For step s, accesses a..b-1: ``before(s)`` if given (a
-    prefetch's inserts), then ``Policy.routed`` for a decode step, then the accesses in order with
-    the whole step pinned, or each pinned alone when the step is larger than the pool (the live pool
-    refuses such quotas).  ``served`` is ``[(hit, slot, evicted key or None), ...]`` per access.
+    quotas and the shared pool alike).  For step s, accesses a..b-1: ``before(s)`` if given, then a
+    prefill load (``Decisions.prefill``, pinned alone) or a decode step (``Decisions.route``, which
+    tells ``Policy.routed`` the layer, its expert ids and the token's router probabilities, None when
+    the trace holds none; then ``serve``).  ``served`` is ``[(hit, slot, evicted key or None), ...]``
+    per access; after the caller has seen it, ``after(s)`` (the step's prefetch point), then the layer
+    is done.  ``core`` may be a bare ``Residency`` (the plan's pool kind is built around it).
     """
+    if isinstance(core, Residency):
+        core = decisions_over(plan, core)
     keys = plan.keys.tolist()
     starts = plan.starts.tolist()
-    hook = routed_hook(res.policy, plan)
-    capacity = res.capacity
+    counted, token, probs = plan.counted.tolist(), plan.token.tolist(), plan.probs
+    layers = plan.layers.tolist() if plan.layers is not None else None
+    E = plan.shared_experts
+    listens = core.signals and probs is not None
     for s in range(len(starts) - 1):
         a, b = starts[s], starts[s + 1]
+        layer = layers[s] if layers is not None else plan.layer
         if before is not None:
             before(s)
-        if hook is not None:
-            hook(s, a, b, res.now)
-        step = keys[a:b]
-        if b - a <= capacity:
-            served = res.access_step(step, step)
+        if counted[s]:
+            p = None
+            if listens:
+                p = probs[token[s], layer] if layers is not None else probs[token[s]]
+            core.route(layer, None, p, tuple(keys[a:b]))
+            served = core.serve(layer)
         else:
-            served = [res.access(k, (k,)) for k in step]
+            base = layer * E if layers is not None else 0
+            served = [core.prefill(layer, k - base) for k in keys[a:b]]
         yield s, a, b, served
+        if after is not None:
+            after(s)
+        core.done()
+
+
+def plan_decisions(plan: LayerPlan, policy_cls: type[Policy], capacity: int) -> Decisions:
+    """The decision core replaying one plan: a shared plan's pool, or one layer's quota."""
+    return decisions_over(plan, Residency(capacity, plan_policy(policy_cls, plan)))
+
+
+def decisions_over(plan: LayerPlan, res: Residency) -> Decisions:
+    """The decision core of ``plan``'s pool kind over ``res`` (the shared pool, or the plan's layer's quota)."""
+    if plan.layers is not None:
+        n_layers = int(plan.layers.max(initial=0)) + 1
+        return Decisions([res] * n_layers, [layer * plan.shared_experts for layer in range(n_layers)], shared=True)
+    return Decisions([res] * (plan.layer + 1), [0] * (plan.layer + 1))
 
 
 def generic_misses(plan: LayerPlan, policy_cls: type[Policy], capacity: int) -> np.ndarray:
     """Miss flag per access, from ``Residency`` and a policy object (the live pool's code path)."""
-    res = Residency(capacity, plan_policy(policy_cls, plan))
     miss = bytearray(plan.n)
-    for _, a, _, served in walk(plan, res):
+    for _, a, _, served in walk(plan, plan_decisions(plan, policy_cls, capacity)):
         for i, (hit, _, _) in enumerate(served, a):
             if not hit:
                 miss[i] = 1

@@ -92,17 +92,75 @@ def test_prefetch_off_is_the_same_prediction_step_by_step_and_summed():
         assert a.step_s == pytest.approx(b.step_s, rel=1e-6) and a.stall_s == pytest.approx(b.stall_s, rel=1e-6)
 
 
-@pytest.mark.parametrize("policy", ["orbit", "markov", "lru"])
-def test_the_time_model_of_a_shared_pool_counts_the_misses_replay_counts(policy):
-    # the planner's shared-pool simulation tells the policy the routing as the live pool and replay do,
-    # so its misses equal replay's for every policy (prefetch off), orbit's layer cycle included
-    from moerun.sim.counts import shared_counts
+def _lru_that_admits_nothing():
+    """LRU whose ``admits`` always keeps the victim: a guess may fill a free slot, never evict."""
+    from moerun.policies import LRU
 
-    rng = np.random.default_rng(11)
-    trace = _random_trace(rng, tokens=150, layers=3, experts=8, k=2)
-    costs = Costs([30 * US] * 3, 4 * US, 9 * US, 80 * US, "test", 3 * US, copy=5 * US)
-    for total in (3, 6, 12):
-        p = predict(trace, [total], policy, 0, 1, costs, shared=True, max_tokens=10**9)
-        counts = shared_counts(trace, policy, [total], fast=False)[total]
-        assert (p.accesses, p.misses) == (sum(c.accesses for c in counts), sum(c.misses for c in counts)), total
-        assert p.misses > 0
+    class NoAdmitLRU(LRU):
+        name = "lru-no-admit"
+
+        def admits(self, key, victim, now):
+            return False
+
+    return NoAdmitLRU
+
+
+def test_the_time_model_places_no_guess_the_policy_does_not_admit(monkeypatch):
+    # The pool and replay ask Policy.admits before a guess evicts; so must the time model.  Two layers,
+    # top-1, one slot each: layer 0 always uses 5, layer 1 alternates 0, 1 and layer 0 guesses it
+    # perfectly.  Only the first guess finds a free slot; every later one would evict and is refused.
+    from moerun import policies
+    from moerun.sim.prefetch import simulate_prefetch
+
+    cls = _lru_that_admits_nothing()
+    monkeypatch.setitem(policies._REGISTRY, cls.name, cls)
+    n = 8
+    experts = np.zeros((n, 2, 1), np.int64)
+    experts[:, 0, 0] = 5
+    experts[:, 1, 0] = np.arange(n) % 2
+    guesses = np.full((n, 2, 1, 1), -1, np.int64)
+    guesses[:, 0, 0, 0] = experts[:, 1, 0]
+    trace = Trace(experts, guesses=guesses, meta={"n_experts": 6, "prefill_tokens": 0})
+    p = predict(trace, [1, 1], cls.name, 1, 1, _costs(L=2, page=5))
+    replayed = simulate_prefetch(trace, cls, 1, 1, 1)
+    assert p.prefetch_loads == sum(c.loads for c in replayed) == 1
+    assert p.misses == sum(c.misses for c in replayed) == n  # layer 0's first access, then every access of layer 1
+
+
+def test_a_guess_in_a_shared_pool_never_evicts_an_expert_the_current_layer_computes():
+    # One shared slot, top-1: at layer 0's prefetch point the only resident is the expert layer 0 is about
+    # to compute, so a guess for layer 1 has nowhere to go (the pool and replay pin the current layer).
+    from moerun.policies import LRU
+    from moerun.sim.prefetch import simulate_prefetch
+
+    n = 8
+    experts = np.zeros((n, 2, 1), np.int64)
+    experts[:, 0, 0] = 5
+    experts[:, 1, 0] = 1
+    guesses = np.full((n, 2, 1, 1), -1, np.int64)
+    guesses[:, 0, 0, 0] = 2  # a wrong guess
+    trace = Trace(experts, guesses=guesses, meta={"n_experts": 6, "prefill_tokens": 0})
+    p = predict(trace, [1], "lru", 1, 1, _costs(L=2, page=5), shared=True)
+    replayed = simulate_prefetch(trace, LRU, 1, 1, 1, shared=True)
+    assert p.prefetch_loads == sum(c.loads for c in replayed) == 0
+
+
+@pytest.mark.parametrize("emulated", [True, False], ids=["emulated link", "real reads"])
+def test_quotas_per_layer_do_not_depend_on_which_ids_other_layers_use(emulated):
+    # Each layer's quota is its own: giving every layer its own range of expert ids (layer l's expert e
+    # becomes l * E + e) changes no prediction.  (Before the decision core, the time model kept one
+    # table of guesses and transfers keyed by expert id for every layer, so layers shared entries.)
+    rng = np.random.default_rng(4)
+    base = _random_trace(rng, tokens=80, layers=3, experts=8, k=2)
+    guesses = rng.integers(0, 8, (80, 3, 2, 3))
+    costs = Costs([30 * US] * 3, 4 * US, 9 * US, 80 * US, "test", 3 * US, emulated=emulated, copy=5 * US, place=2 * US)
+    off = (np.arange(3) * 8)[None, :, None]
+    same = Trace(base.experts, guesses=guesses, meta={"n_experts": 8, "prefill_tokens": 0})
+    target = np.arange(3)[:, None] + np.arange(1, 3)[None, :]  # guesses [src, j - 1] are for layer src + j
+    moved = guesses + np.where(target < 3, target * 8, 0)[None, :, :, None]
+    apart = Trace(base.experts + off, guesses=moved, meta={"n_experts": 24, "prefill_tokens": 0})
+    for slots in ([3, 3, 3], [2, 4, 5]):
+        a = predict(same, slots, "lru", 2, 2, costs)
+        b = predict(apart, slots, "lru", 2, 2, costs)
+        assert (a.misses, a.prefetch_loads) == (b.misses, b.prefetch_loads)
+        assert a.step_s == pytest.approx(b.step_s, rel=1e-12)

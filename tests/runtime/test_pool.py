@@ -151,7 +151,7 @@ def test_a_chosen_guess_whose_read_failed_keeps_its_slot_while_the_layer_waits_f
         # the chosen guess is 2: the pool looks at 1's answer first, so a slot given back for 2 would
         # be the last one freed, the one the miss takes
         pool.routed(0, np.array([[2, 3]]), np.full((1, 2), 0.5, np.float32), np.full((1, E), 1 / E, np.float32))
-        slots = {e: pool._events[e][1] for e in (2, 3)}
+        slots = {e: pool._events[e].slot for e in (2, 3)}
         assert slots[2] != slots[3]
         for e in (2, 3):
             w_gate, w_up, w_down = pool.weights(0, e)
