@@ -55,11 +55,11 @@ import moerun
 from moerun.cli import main as cli
 from moerun.cli.commands.inspect import check_digests
 from moerun.errors import BadModelFile, BadTrace, MoerunError
+from moerun.files.config import ModelConfig
 from moerun.files.modelfile import DIGEST_KEY, DTYPE_SIZES, MAX_HEADER_BYTES, Header, read_header, recorded_digests
 from moerun.files.store import ModelStore
 from moerun.files.trace import Trace, read_trace, write_trace
 from moerun.makers.synthetic import synth_config, write_model
-from moerun.model.config import ModelConfig
 
 # A model small enough that one load + forward pass costs about a millisecond: 2 layers, 4 experts, top-2.
 SHAPE = dict(layers=2, experts=4, top_k=2, d_model=16, d_expert=16, n_heads=2, n_kv_heads=1, head_dim=8, max_seq_len=16)
@@ -516,7 +516,7 @@ def _check_config_outcome(base: BaseModel, raw: dict) -> str:
             return "refused by the config reader"
         # What a config may make the loader allocate before the weight file contradicts it: the KV cache
         # and rotary tables for its context (at most 4096 here) and the names of the tensors it implies
-        # (about 160 bytes each, measured; at most moerun.model.config.MAX_TENSORS of them).
+        # (about 160 bytes each, measured; at most moerun.files.config.MAX_TENSORS of them).
         implied = config.n_layers * (7 + 3 * config.n_experts + (3 if config.d_shared else 0))
         assert peak[0] <= base.load_peak + 64 * 4096 * SHAPE["d_model"] + 256 * implied + LOAD_SLACK
         if logits is None:

@@ -9,10 +9,10 @@ from __future__ import annotations
 
 from moerun.errors import BadModelFile
 from moerun.files.codec import packed_dense_tensors
+from moerun.files.config import RANDOM_NOTE
 from moerun.files.fileio import read_user_file
 from moerun.files.modelfile import digest, metadata_digest_problems, recorded_digests
 from moerun.files.store import ModelStore
-from moerun.model.config import RANDOM_NOTE
 from moerun.model.tokenizer import Tokenizer
 from moerun.model.transformer import KVCache
 from moerun.runtime.budget import minimum_cap, scratch_bytes

@@ -18,9 +18,9 @@ from moerun.checks.verify import Outcome, Setting
 from moerun.checks.verify import verify as verify_settings
 from moerun.errors import BadInput, BadOption
 from moerun.files.bundled import resolve_model
+from moerun.files.config import RANDOM_NOTE as CONFIG_NOTE
+from moerun.files.config import ModelConfig
 from moerun.files.store import ModelStore
-from moerun.model.config import RANDOM_NOTE as CONFIG_NOTE
-from moerun.model.config import ModelConfig
 from moerun.model.sampling import Sampling
 from moerun.model.tokenizer import Tokenizer, read_text_file
 from moerun.runtime.capcheck import cap_check, cap_warning

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from moerun.cli.report import pct, table
-from moerun.model.config import RANDOM_NOTE as config_note
+from moerun.files.config import RANDOM_NOTE as config_note
 from moerun.runtime.capcheck import CAP_ALLOWANCE_BYTES, cap_check, cap_warning  # noqa: F401 (the commands' names for them)
 from moerun.units import fmt_bytes, fmt_rate
 

@@ -1,3 +1,7 @@
-"""File formats and I/O: the safetensors header, the opened model (store) and its page-ins, page-cache residency, expert codecs and the packed low-bit format, routing traces, and the rules every output follows (fileio)."""
+"""File formats and I/O: config.json's fields (config), the safetensors header (modelfile), the opened
+model (store) and its page-ins, page-cache residency, expert codecs and the packed low-bit format, routing
+traces, the open checkpoint layout (checkpoint, ckpt_config, ckpt_tensors), the bundled models by name,
+and the rules every output follows (fileio)."""
 
-__all__ = ["bitpack", "checkpoint", "ckpt_config", "ckpt_tensors", "codec", "fileio", "modelfile", "packed", "pagecache", "store", "trace"]
+__all__ = ["bitpack", "bundled", "checkpoint", "ckpt_config", "ckpt_tensors", "codec", "config", "fileio",
+           "modelfile", "packed", "pagecache", "store", "trace"]

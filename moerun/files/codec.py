@@ -14,9 +14,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from moerun.files.config import ModelConfig
 from moerun.files.modelfile import DTYPE_SIZES
 from moerun.files.packed import Dequantizer, QuantSpec, expert_layout, packed_dense_names
-from moerun.model.config import ModelConfig
 
 
 @dataclass(frozen=True)

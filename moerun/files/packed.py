@@ -26,8 +26,8 @@ import numpy as np
 
 from moerun.errors import BadModelFile, BadOption
 from moerun.files.bitpack import ceil_div, pack_codes, packed_nbytes, unpack_codes, unpack_into, unpack_scratch_len, unpacked_len
+from moerun.files.config import ModelConfig
 from moerun.files.modelfile import Header
-from moerun.model.config import ModelConfig
 
 FORMAT = "moerun-packed/1"
 EXPERT_BITS = (8, 4, 3, 2)

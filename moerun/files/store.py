@@ -29,10 +29,10 @@ import numpy as np
 
 from moerun.errors import BadModelFile, BadOption, PageInError
 from moerun.files.codec import Codec, codec_for, packed_dense_tensors
+from moerun.files.config import ModelConfig, expert_tensor_name
 from moerun.files.modelfile import NUMPY_DTYPES, Header, TensorInfo, expert_span, read_header
 from moerun.files.packed import read_packed_dense, recorded_quant_problem
 from moerun.files.pagecache import drop_pages, drop_problem
-from moerun.model.config import ModelConfig, expert_tensor_name
 
 PAGE = mmap.PAGESIZE
 # Linux maps up to this many bytes of already-cached file pages around a read fault

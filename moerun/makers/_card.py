@@ -13,8 +13,8 @@ import json
 from dataclasses import dataclass
 from importlib.resources import files
 
+from moerun.files.config import ModelConfig
 from moerun.files.packed import QuantSpec
-from moerun.model.config import ModelConfig
 
 
 @dataclass

@@ -13,11 +13,11 @@ from dataclasses import dataclass
 
 from moerun.errors import BadModelFile, BadOption
 from moerun.files.bundled import resolve_model
+from moerun.files.config import ModelConfig
 from moerun.files.packed import QuantSpec
 from moerun.makers._card import QuantReport
 from moerun.makers.quantize import quantize_model
 from moerun.makers.synthetic import BITS, synth_config, synthesize
-from moerun.model.config import ModelConfig
 
 # What moerun.quantize returns: the report quantize_model makes (its to_json is the --json document).
 QuantizeResult = QuantReport

@@ -41,6 +41,7 @@ import numpy as np
 from moerun._version import __version__
 from moerun.checks.score import score_text
 from moerun.errors import BadOption
+from moerun.files.config import RANDOM_NOTE, ModelConfig, expert_tensor_name
 from moerun.files.fileio import atomic_dir, write_text_atomic
 from moerun.files.modelfile import save_model_file
 from moerun.files.packed import (
@@ -62,7 +63,6 @@ from moerun.files.packed import (
 )
 from moerun.files.store import ModelStore
 from moerun.makers._card import QuantReport, card_text, setting_tag
-from moerun.model.config import RANDOM_NOTE, ModelConfig, expert_tensor_name
 from moerun.model.tokenizer import read_text_file
 from moerun.runtime.options import load
 

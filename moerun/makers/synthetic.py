@@ -35,9 +35,9 @@ from pathlib import Path
 import numpy as np
 
 from moerun.errors import BadOption, OutputError
+from moerun.files.config import FORMAT_TAG, RANDOM_NOTE, ModelConfig
 from moerun.files.fileio import atomic_dir, atomic_path, check_output_dir, remove_stale_temporaries, write_text_atomic
 from moerun.files.modelfile import DIGEST_ALGO, DTYPE_SIZES, digest, header_bytes, save_model_file, storage_order
-from moerun.model.config import FORMAT_TAG, RANDOM_NOTE, ModelConfig
 
 
 def byte_tokenizer_json() -> str:

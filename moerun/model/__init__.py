@@ -1,3 +1,4 @@
-"""The model and its math: config.json's fields, the transformer of docs/design/architecture.md section 3, the tokenizer, sampling, and routing replayed from a trace."""
+"""The model and its math: the transformer of docs/design/architecture.md section 3, the tokenizer,
+sampling, and routing replayed from a trace.  (config.json's fields are a file format: moerun.files.config.)"""
 
-__all__ = ["config", "routing", "sampling", "tokenizer", "transformer"]
+__all__ = ["routing", "sampling", "tokenizer", "transformer"]

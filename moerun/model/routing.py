@@ -22,8 +22,8 @@ from __future__ import annotations
 import numpy as np
 
 from moerun.errors import BadTrace
+from moerun.files.config import ModelConfig
 from moerun.files.trace import Trace, check_weights, shape_text
-from moerun.model.config import ModelConfig
 
 
 class ReplayedRouting:

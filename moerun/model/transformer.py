@@ -32,7 +32,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from moerun.model.config import ModelConfig
+from moerun.files.config import ModelConfig
 
 F32 = np.float32
 

@@ -28,9 +28,9 @@ import numpy as np
 from moerun import policies
 from moerun._version import __version__
 from moerun.errors import BadInput, BadOption
+from moerun.files.config import ModelConfig
 from moerun.files.fileio import read_json_file, write_text_atomic
 from moerun.files.store import ModelStore
-from moerun.model.config import ModelConfig
 from moerun.model.sampling import Sampling
 from moerun.model.transformer import expert
 from moerun.planner.timeline import Costs

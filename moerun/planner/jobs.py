@@ -16,8 +16,8 @@ from pathlib import Path
 from moerun import policies
 from moerun.errors import BadInput, BadOption, ImpossibleBudget
 from moerun.files.bundled import resolve_model
+from moerun.files.config import RANDOM_NOTE
 from moerun.files.trace import Trace, read_trace
-from moerun.model.config import RANDOM_NOTE
 from moerun.planner.calibration import calibrate, costs_from_calibration, costs_from_shape, describe, load_shape, page_seconds
 from moerun.planner.search import PREFETCH_CANDIDATES, Space, check_decode_steps, check_trace_shape
 from moerun.planner.timeline import Costs, Prediction

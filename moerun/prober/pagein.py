@@ -41,11 +41,11 @@ import numpy as np
 
 from moerun._version import __version__
 from moerun.errors import BadInput, BadModelFile, BadOption, OutputError
+from moerun.files.config import RANDOM_NOTE, ModelConfig
 from moerun.files.fileio import SignalsHeld
 from moerun.files.modelfile import expert_span, read_header
 from moerun.files.pagecache import PAGE, drop_pages, drop_problem, residency_problem, resident_pages
 from moerun.files.store import pread_into
-from moerun.model.config import RANDOM_NOTE, ModelConfig
 from moerun.prober.saved import REGIMES, SCHEMA, STAT_KEYS, load_probe, save_probe  # noqa: F401 - their old home (commands/plan.py, scripts/bench_plan.py)
 from moerun.units import parse_size
 

@@ -12,7 +12,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 from moerun.errors import ImpossibleBudget
-from moerun.model.config import ModelConfig
+from moerun.files.config import ModelConfig
 from moerun.model.transformer import KVCache
 from moerun.units import fmt_bytes, fmt_exact
 

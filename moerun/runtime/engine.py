@@ -16,9 +16,9 @@ import numpy as np
 
 from moerun.errors import BadModelFile, BadOption
 from moerun.files.bundled import DEFAULT, bundled_root, resolve_model
+from moerun.files.config import RANDOM_NOTE
 from moerun.files.store import ModelStore
 from moerun.files.trace import TRACE_GUESSES, TRACE_LOOKAHEAD, Recorder, Trace, read_trace
-from moerun.model.config import RANDOM_NOTE
 from moerun.model.routing import ReplayedRouting
 from moerun.model.sampling import Sampler, Sampling
 from moerun.model.tokenizer import Tokenizer

@@ -13,9 +13,9 @@ from pathlib import Path
 import pytest
 
 import moerun
+from moerun.files.config import ModelConfig
 from moerun.files.packed import QuantSpec
 from moerun.makers import _card
-from moerun.model.config import ModelConfig
 
 ROOT = Path(__file__).resolve().parents[2]
 

@@ -9,7 +9,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from moerun.errors import BadInput, BadModelFile
-from moerun.model.config import ModelConfig
+from moerun.files.config import ModelConfig
 from moerun.model.tokenizer import Tokenizer, read_text_file
 
 TEXTS = [

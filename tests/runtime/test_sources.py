@@ -12,8 +12,8 @@ import numpy as np
 import pytest
 
 import moerun
+from moerun.files.config import expert_tensor_name
 from moerun.files.store import ModelStore
-from moerun.model.config import expert_tensor_name
 from moerun.model.sampling import Sampling
 from moerun.runtime.sources import BareExperts, NoReuseExperts, WholeLayerExperts, aligned_block
 

@@ -1,12 +1,12 @@
-"""moerun.model.config: the optional fields d_shared and norm_topk (docs/design/architecture.md, model spec), their defaults and their checks."""
+"""moerun.files.config: the optional fields d_shared and norm_topk (docs/design/architecture.md, model spec), their defaults and their checks."""
 
 from __future__ import annotations
 
 import pytest
 
 from moerun.errors import BadModelFile
+from moerun.files.config import ModelConfig
 from moerun.makers.synthetic import synth_config
-from moerun.model.config import ModelConfig
 
 BASE = synth_config(layers=2, experts=32, top_k=4).to_json()
 
