@@ -121,21 +121,24 @@ class Decisions:
                     raise NoVictim(out) from None
         fresh = self.fresh_of[layer]
         if fresh:
-            used, wasted = self.used, self.wasted
-            used.clear()
-            wasted.clear()
+            self.used.clear()
+            self.wasted.clear()
             for key, (hit, _, victim) in zip(keys, out):
-                if hit:
-                    if key in fresh:
-                        fresh.discard(key)
-                        used.append(key)
-                elif victim in fresh:
-                    fresh.discard(victim)
-                    wasted.append(victim)
+                self._met(fresh, key, hit, victim)
         elif self.used or self.wasted:
             self.used.clear()
             self.wasted.clear()
         return out
+
+    def _met(self, fresh: set, key, hit: bool, victim) -> None:
+        """One access against the fresh guesses: a fresh guess hit is used, one evicted unhit is wasted."""
+        if hit:
+            if key in fresh:
+                fresh.discard(key)
+                self.used.append(key)
+        elif victim in fresh:
+            fresh.discard(victim)
+            self.wasted.append(victim)
 
     def step(self, layer: int, ids: Sequence[int], probs=None) -> list:
         """``route`` then ``serve``, in one call (the live pool's decode path).  On NoVictim the step is
@@ -154,17 +157,11 @@ class Decisions:
         key = self.base[layer] + expert
         self.pinned = (key,)
         hit, slot, victim = self.res_of[layer].access(key, self.pinned)
-        used, wasted, fresh = self.used, self.wasted, self.fresh_of[layer]
-        used.clear()
-        wasted.clear()
+        self.used.clear()
+        self.wasted.clear()
+        fresh = self.fresh_of[layer]
         if fresh:
-            if hit:
-                if key in fresh:
-                    fresh.discard(key)
-                    used.append(key)
-            elif victim in fresh:
-                fresh.discard(victim)
-                wasted.append(victim)
+            self._met(fresh, key, hit, victim)
         return hit, slot, victim
 
     def done(self) -> None:
