@@ -698,8 +698,8 @@ def test_a_real_size_checkpoint_in_sparse_shards_opens_with_its_real_span_map_an
 
 
 def test_bf16_hand_picked_values_widen_exactly():
-    # Outside definition: bfloat16 is the top 16 bits of an IEEE-754 binary32 (Google's "bfloat16" format, as
-    # described in Intel's "BFLOAT16 - Hardware Numerics Definition", 2018): sign, 8 exponent bits, 7 fraction bits.
+    # Outside definition: bfloat16 is the top 16 bits of an IEEE-754 binary32 (as described in Intel's
+    # "BFLOAT16 - Hardware Numerics Definition", 2018): sign, 8 exponent bits, 7 fraction bits.
     cases = {
         0x3F80: 1.0,
         0xC000: -2.0,
@@ -774,10 +774,10 @@ def test_an_open_checkpoint_is_told_from_a_moerun_model_directory(tmp_path, smal
     assert not is_open_checkpoint(small_model)  # moerun's own: format tag and d_model
     assert not is_open_checkpoint(tmp_path / "nowhere")
     (tmp_path / "odd").mkdir()
-    (tmp_path / "odd" / "config.json").write_text('{"model_type": "llama", "format": "moerun/1"}')
+    (tmp_path / "odd" / "config.json").write_text('{"model_type": "lichen_dense", "format": "moerun/1"}')
     assert not is_open_checkpoint(tmp_path / "odd")
     (tmp_path / "other").mkdir()
-    (tmp_path / "other" / "config.json").write_text('{"model_type": "llama"}')
+    (tmp_path / "other" / "config.json").write_text('{"model_type": "lichen_dense"}')
     assert is_open_checkpoint(tmp_path / "other")  # open, though not a supported type: Checkpoint.open says so
 
 

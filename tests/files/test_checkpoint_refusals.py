@@ -178,9 +178,9 @@ def test_a_directory_without_weights_or_tokenizer_or_config_is_refused(single):
 
 
 def test_an_unsupported_model_type_is_refused_before_any_weight_is_read(single):
-    (single / "config.json").write_text(json.dumps({**raw_config("qwen2_moe"), "model_type": "mixtral"}))
+    (single / "config.json").write_text(json.dumps({**raw_config("qwen2_moe"), "model_type": "tarn_moe"}))
     os.unlink(single / "model.safetensors")
-    refused(single, str(single / "config.json"), "'mixtral'", "qwen3_moe, qwen2_moe, olmoe")
+    refused(single, str(single / "config.json"), "'tarn_moe'", "qwen3_moe, qwen2_moe, olmoe")
 
 
 @pytest.mark.parametrize("source,field", [("generation_config.json", "eos_token_id"), ("tokenizer_config.json", "bos_token_id")])
