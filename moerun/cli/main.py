@@ -100,6 +100,7 @@ def add_memory(p) -> None:
                    help="prefetch point, with --prefetch: after a layer's attention (default; more time to hide a read) or after the whole layer (better guesses)")
     p.add_argument("--link-speed", metavar="RATE", help="emulate a slower link for page-in, e.g. 2GB/s (labelled emulated)")
     p.add_argument("--cold", action="store_true", help="drop the model file from the OS page cache first")
+    p.set_defaults(_engine_cap=True)  # --mem-cap caps the engine: the out-of-memory line may point at it
 
 
 def add_force(p, what: str = "the output") -> None:
@@ -316,7 +317,9 @@ def main(argv: list[str] | None = None) -> int:
         return e.exit_code
     except MemoryError as e:  # e.g. a config whose context needs a KV cache larger than the machine
         detail = str(e).splitlines()[0][:200] if str(e) else "allocation failed"
-        sys.stderr.write(f"moerun {args.command}: out of memory ({detail}); --mem-cap checks the budget before the run\n")
+        # the hint only where --mem-cap is the engine's cap (plan's plans for a budget; replay has none)
+        hint = "; --mem-cap checks the budget before the run" if getattr(args, "_engine_cap", False) else ""
+        sys.stderr.write(f"moerun {args.command}: out of memory ({detail}){hint}\n")
         return 2
     except KeyboardInterrupt as e:
         return _stopped(e, args.command)
