@@ -652,7 +652,7 @@ def test_a_trace_that_uses_every_id_is_replayed_as_it_is():
 
 
 def _tiny_trace_declaring_a_million_experts(path: Path) -> Path:
-    """About 8 KB: 256 tokens, 4 layers, top-2, ids below 10**6, meta n_experts 2**20 (issue 23, item 2)."""
+    """A few KB (under 12 KB): 256 tokens, 4 layers, top-2, ids below 10**6, meta n_experts 2**20 (issue 23, item 2)."""
     rng = np.random.default_rng(23)
     pool = rng.choice(1_000_000, size=(4, 40), replace=False)  # a few dozen experts per layer, spread wide
     ex = np.array([[np.sort(rng.choice(pool[layer], 2, replace=False)) for layer in range(4)] for _ in range(256)])
