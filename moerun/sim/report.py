@@ -35,13 +35,15 @@ from moerun.sim.steps import (
     plan_policy,
     prefill_tokens,
     shared_plan,
+    used_ids,
     walk,
 )
 
 __all__ = ["DEFAULT_POLICIES", "FAST_PATHS", "RECALL_GUESSES", "RECALL_LOOKAHEAD", "Counts", "LayerPlan", "PrefetchCounts", "compact", "count_layer",
            "count_shared", "default_slots", "describe", "generic_misses", "layer_misses", "layer_plans", "overall", "parse_policies",
            "parse_slots", "plan_policy", "prefetch_recall", "prefill_tokens", "random_routing_trace", "replay_counts",
-           "residency_picture", "run_replay", "shared_counts", "shared_slots", "shared_plan", "shuffled_trace", "simulate_prefetch", "walk"]
+           "residency_picture", "run_replay", "shared_counts", "shared_slots", "shared_plan", "shuffled_trace", "simulate_prefetch", "used_ids",
+           "walk"]
 
 DEFAULT_POLICIES = ["lru", "lfu", "fifo", "optimal"]
 
@@ -254,6 +256,10 @@ def residency_picture(trace: Trace, layer: int, policy: str, capacity: int, t0: 
     """[n_experts, t1 - t0] codes for tokens t0..t1-1 of one layer after each of its steps, by the generic
     path (``shared``: the layer's experts in one pool of ``capacity`` slots for all layers):
     0 absent, 1 resident, 2 used and resident before (hit), 3 used and loaded (miss)."""
+    full_E = trace.n_experts
+    dense = compact(trace)  # the policy's state sized by the experts the trace uses; rows put back below
+    used = used_ids(trace) if dense is not trace else None
+    trace = dense
     plan = shared_plan(trace) if shared else layer_plans(trace)[layer]
     core = plan_decisions(plan, policies.get(policy), capacity)
     res = core.res_of[0]
@@ -275,4 +281,8 @@ def residency_picture(trace: Trace, layer: int, policy: str, capacity: int, t0: 
             for k, (hit, _, _) in zip(keys[a:b], served):
                 if 0 <= k - base < E:
                     col[k - base] = 2 if hit else 3
-    return pic
+    if used is None:
+        return pic
+    out = np.zeros((full_E, t1 - t0), np.int8)
+    out[used] = pic[: used.size]
+    return out

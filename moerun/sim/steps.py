@@ -123,6 +123,14 @@ def prefill_tokens(trace: Trace) -> int:
     return p
 
 
+def used_ids(trace: Trace) -> np.ndarray:
+    """The expert ids a trace routes to or guesses, ascending."""
+    parts = [trace.experts[trace.experts >= 0]]
+    if trace.guesses is not None:
+        parts.append(trace.guesses[trace.guesses >= 0])
+    return np.unique(np.concatenate(parts))
+
+
 def compact(trace: Trace) -> Trace:
     """The trace with its expert ids renumbered 0..U-1 in ascending order, U the ids it routes to or guesses
     (``meta.n_experts`` becomes U; ``probs`` keeps those columns); the trace itself when it uses every id.
@@ -133,10 +141,7 @@ def compact(trace: Trace) -> Trace:
     labels of first use, not by id), tests/sim/test_replay.py checks it for every policy and both pool kinds.
     """
     ex = trace.experts
-    parts = [ex[ex >= 0]]
-    if trace.guesses is not None:
-        parts.append(trace.guesses[trace.guesses >= 0])
-    used = np.unique(np.concatenate(parts))
+    used = used_ids(trace)
     if used.size == trace.n_experts and (used.size == 0 or used[-1] == used.size - 1):
         return trace
     lut = np.full(int(used[-1]) + 2 if used.size else 1, -1, np.int64)  # lut[-1]: the padding stays -1

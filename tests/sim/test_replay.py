@@ -691,3 +691,16 @@ def test_out_of_memory_in_replay_names_no_option_replay_does_not_have(recorded, 
     code = cli.main(["replay", str(recorded[0]), "--no-baselines"])
     err = capsys.readouterr().err
     assert code == 2 and "out of memory" in err and "--mem-cap" not in err and len(err.strip().splitlines()) == 1
+
+
+@pytest.mark.parametrize("shared", [False, True], ids=["per-layer", "shared"])
+@pytest.mark.parametrize("policy", ["orbit", "lru", "optimal"])
+def test_the_residency_picture_of_renumbered_ids_puts_the_same_rows_at_the_ids_the_trace_uses(shared, policy):
+    dense = _random_trace(5, 60, 2, 6, 2, 0.1, 3)
+    sparse = _spread(dense, 9, 5000)
+    used = replay.used_ids(sparse)
+    c = 5 if shared else 3
+    pic = replay.residency_picture(sparse, 1, policy, c, 3, 60, shared)
+    want = replay.residency_picture(replay.compact(sparse), 1, policy, c, 3, 60, shared)
+    assert pic.shape == (5000, 57) and np.array_equal(pic[used], want[: used.size])
+    assert not pic[np.setdiff1d(np.arange(5000), used)].any()
