@@ -86,20 +86,34 @@ def add_prompt(p, max_new_default: int = 80) -> None:
     p.add_argument("--top-p", type=float, default=0.95, metavar="P", help="nucleus sampling mass (default 0.95)")
 
 
+class LazyHelp(str):
+    """An option's help made only when ``--help`` prints it (argparse formats a help with ``%``): the list of
+    installed policies reads the packages' metadata, which no other run needs (moerun.policies.listing)."""
+
+    def __new__(cls, make):
+        text = super().__new__(cls, "(see --help)")
+        text.make = make
+        return text
+
+    def __mod__(self, params):
+        return self.make()
+
+
 def add_memory(p) -> None:
     from moerun import policies
 
-    online = policies.names(online_only=True)
     p.add_argument("--mem-cap", metavar="SIZE", help="memory cap for dense weights + KV cache + scratch + expert pool (48MiB, 1.5GB, bytes); default: every expert resident")
     p.add_argument("--slots", metavar="N,N,...", help="expert slots per layer, overriding the even split of the cap (not with --shared-pool)")
     p.add_argument("--shared-pool", action="store_true", help="one pool shared by all layers instead of per-layer quotas")
-    p.add_argument("--evict", default="lru", metavar="POLICY", help=f"eviction policy: {', '.join(online)} (default lru)")
+    p.add_argument("--evict", default="lru", metavar="POLICY",
+                   help=LazyHelp(lambda: f"eviction policy: {policies.listing(online_only=True)} (default lru)"))
     p.add_argument("--prefetch", type=int, default=0, metavar="N", help="speculative guesses per layer (0 = off, at most the experts per layer)")
     p.add_argument("--lookahead", type=int, default=None, metavar="L", help="layers ahead to guess, with --prefetch (default 1)")
     p.add_argument("--prefetch-from", choices=("attention", "output"), default=None,
                    help="prefetch point, with --prefetch: after a layer's attention (default; more time to hide a read) or after the whole layer (better guesses)")
     p.add_argument("--link-speed", metavar="RATE", help="emulate a slower link for page-in, e.g. 2GB/s (labelled emulated)")
     p.add_argument("--cold", action="store_true", help="drop the model file from the OS page cache first")
+    p.set_defaults(_engine_cap=True)  # --mem-cap caps the engine: the out-of-memory line may point at it
 
 
 def add_force(p, what: str = "the output") -> None:
@@ -316,7 +330,9 @@ def main(argv: list[str] | None = None) -> int:
         return e.exit_code
     except MemoryError as e:  # e.g. a config whose context needs a KV cache larger than the machine
         detail = str(e).splitlines()[0][:200] if str(e) else "allocation failed"
-        sys.stderr.write(f"moerun {args.command}: out of memory ({detail}); --mem-cap checks the budget before the run\n")
+        # the hint only where --mem-cap is the engine's cap (plan's plans for a budget; replay has none)
+        hint = "; --mem-cap checks the budget before the run" if getattr(args, "_engine_cap", False) else ""
+        sys.stderr.write(f"moerun {args.command}: out of memory ({detail}){hint}\n")
         return 2
     except KeyboardInterrupt as e:
         return _stopped(e, args.command)

@@ -77,6 +77,10 @@ class Orbit(Policy):
         self.recent: list[deque] = []  # per layer: its last ``horizon`` decisions' buckets, newest first
         self.powers = [self.gamma**d for d in range(self.horizon)]  # weight of the d+1-th step after a decision
         self.current: list[int] = []  # per layer: bucket of its last decision (-1: none yet)
+        # per layer: expert id -> its label, in the order the layer first chose them.  A decision's bucket
+        # is the hash of its labels, not of its ids, so renumbering the experts (replay keeps only the ids
+        # a trace uses, moerun.sim.steps.compact) changes no decision of the policy
+        self.labels: list[dict[int, int]] = []
         self.seen: list[list[int]] = []  # per layer: steps that chose each expert
         self.steps: list[int] = []
         self.next_use: list[float] = []  # per layer: the layer step of its next possible use
@@ -95,6 +99,7 @@ class Orbit(Policy):
             self.inc.append([1.0] * B)
             self.recent.append(deque(maxlen=self.horizon))
             self.current.append(-1)
+            self.labels.append({})
             self.seen.append([0] * self.E)
             self.steps.append(0)
             self.next_use.append(float(self.clock + layer))
@@ -149,7 +154,14 @@ class Orbit(Policy):
                 E = self.E
         elif layer >= self.L:
             self._add_layers(layer + 1)
-        decision = tuple(chosen)
+        labels = self.labels[layer]
+        try:
+            decision = tuple(map(labels.__getitem__, chosen))
+        except KeyError:  # the layer chooses an expert for the first time
+            for e in chosen:
+                if e not in labels:
+                    labels[e] = len(labels)
+            decision = tuple([labels[e] for e in chosen])
         b = hash(decision) & self.mask
         decisions, rows, total, inc = self.decisions[layer], self.rows[layer], self.total[layer], self.inc[layer]
         if decisions[b] != decision:  # a new decision, or another one in its bucket: it starts empty

@@ -101,6 +101,12 @@ def shuffled_trace(trace: Trace, seed: int = 0) -> Trace:
     return Trace(experts, meta=dict(trace.meta), probs=probs)
 
 
+# Above this many experts per layer the random baseline draws each row's experts by ``Generator.choice``
+# (work per row by its top_k, not by the expert count a trace may declare); at or below it, one random key per
+# expert, as always (the same draws, so the same baseline figures as before).
+RANDOM_BY_CHOICE = 4096
+
+
 def random_routing_trace(trace: Trace, n_experts: int, seed: int = 0) -> Trace:
     """Each decode token and layer picks as many distinct experts as the trace, uniformly (seeded)."""
     P = prefill_tokens(trace)
@@ -108,14 +114,21 @@ def random_routing_trace(trace: Trace, n_experts: int, seed: int = 0) -> Trace:
     experts = trace.experts.copy()
     dec = experts[P:]
     T, L, k = dec.shape
-    n_valid = (dec >= 0).sum(axis=-1)
-    chunk = max(1, (1 << 22) // max(1, L * n_experts))
-    for t0 in range(0, T, chunk):
-        t1 = min(T, t0 + chunk)
-        picks = np.argsort(rng.random((t1 - t0, L, n_experts)), axis=-1)[..., :k]
-        if k > n_experts:
-            raise BadTrace(f"top_k {k} exceeds n_experts {n_experts}")
+    rows = dec.reshape(-1, k)  # (token, layer) rows, in the order the draws were always made
+    if rows.shape[0] and k > n_experts:
+        raise BadTrace(f"top_k {k} exceeds n_experts {n_experts}")
+    n_valid = (rows >= 0).sum(axis=-1)
+    keep = np.arange(k)[None, :] < n_valid[:, None]
+    if n_experts > RANDOM_BY_CHOICE:
+        picks = np.array([np.sort(rng.choice(n_experts, size=k, replace=False)) for _ in range(rows.shape[0])],
+                         np.int64).reshape(-1, k)
+        rows[:] = np.where(keep, picks, -1)
+        return Trace(experts, meta=dict(trace.meta))
+    chunk = max(1, (1 << 22) // max(1, n_experts))
+    for r0 in range(0, rows.shape[0], chunk):
+        r1 = min(rows.shape[0], r0 + chunk)
+        # the k smallest of the keys, as a set (their order is sorted away): the first k of an argsort
+        picks = np.argpartition(rng.random((r1 - r0, n_experts)), k - 1, axis=-1)[:, :k]
         picks = np.sort(picks, axis=-1)
-        keep = np.arange(k)[None, None, :] < n_valid[t0:t1, :, None]
-        dec[t0:t1] = np.where(keep, picks, -1)
+        rows[r0:r1] = np.where(keep[r0:r1], picks, -1)
     return Trace(experts, meta=dict(trace.meta))

@@ -28,19 +28,22 @@ from moerun.sim.fast import FAST_PATHS, layer_misses
 from moerun.sim.prefetch import RECALL_GUESSES, RECALL_LOOKAHEAD, PrefetchCounts, prefetch_recall, simulate_prefetch
 from moerun.sim.steps import (
     LayerPlan,
+    compact,
     generic_misses,
     layer_plans,
     plan_decisions,
     plan_policy,
     prefill_tokens,
     shared_plan,
+    used_ids,
     walk,
 )
 
-__all__ = ["DEFAULT_POLICIES", "FAST_PATHS", "RECALL_GUESSES", "RECALL_LOOKAHEAD", "Counts", "LayerPlan", "PrefetchCounts", "count_layer",
+__all__ = ["DEFAULT_POLICIES", "FAST_PATHS", "RECALL_GUESSES", "RECALL_LOOKAHEAD", "Counts", "LayerPlan", "PrefetchCounts", "compact", "count_layer",
            "count_shared", "default_slots", "describe", "generic_misses", "layer_misses", "layer_plans", "overall", "parse_policies",
            "parse_slots", "plan_policy", "prefetch_recall", "prefill_tokens", "random_routing_trace", "replay_counts",
-           "residency_picture", "run_replay", "shared_counts", "shared_slots", "shared_plan", "shuffled_trace", "simulate_prefetch", "walk"]
+           "residency_picture", "run_replay", "shared_counts", "shared_slots", "shared_plan", "shuffled_trace", "simulate_prefetch", "used_ids",
+           "walk"]
 
 DEFAULT_POLICIES = ["lru", "lfu", "fifo", "optimal"]
 
@@ -187,6 +190,8 @@ def run_replay(
     if expert_bytes is None:
         eb = trace.meta.get("expert_bytes")
         expert_bytes = eb if isinstance(eb, int) and not isinstance(eb, bool) and eb > 0 else None
+    full = trace
+    trace = compact(trace)  # the state of every policy and pool is sized by the experts the trace uses
     plans = [shared_plan(trace)] if shared else layer_plans(trace)
     units = len(policy_names) + (2 if baselines else 0) + (len([p for p in policy_names if getattr(policies.get(p), "online", True)]) * len(slots) if prefetch else 0)
     done = 0
@@ -202,7 +207,7 @@ def run_replay(
         results += _records(name, replay_counts(trace, name, slots, fast, plans, shared), expert_bytes)
         tick(name)
     doc: dict = {
-        "trace": describe(trace),
+        "trace": describe(full),
         "slots": slots,
         "pool": "shared" if shared else "per-layer",
         "policies": list(policy_names),
@@ -213,7 +218,7 @@ def run_replay(
         base = []
         for label, make in (
             ("shuffled", lambda: shuffled_trace(trace, seed)),
-            ("random", lambda: random_routing_trace(trace, E, seed)),
+            ("random", lambda: compact(random_routing_trace(full, E, seed))),
         ):
             recs = _records("lru", replay_counts(make(), "lru", slots, fast, shared=shared), expert_bytes)
             for r in recs:
@@ -222,7 +227,7 @@ def run_replay(
             tick(label)
         doc["baselines"] = base
         doc["baseline_seed"] = seed
-    doc["prefetch_recall"] = prefetch_recall(trace)
+    doc["prefetch_recall"] = prefetch_recall(full)
     if prefetch is not None:
         n, la = prefetch
         pf = []
@@ -251,6 +256,10 @@ def residency_picture(trace: Trace, layer: int, policy: str, capacity: int, t0: 
     """[n_experts, t1 - t0] codes for tokens t0..t1-1 of one layer after each of its steps, by the generic
     path (``shared``: the layer's experts in one pool of ``capacity`` slots for all layers):
     0 absent, 1 resident, 2 used and resident before (hit), 3 used and loaded (miss)."""
+    full_E = trace.n_experts
+    dense = compact(trace)  # the policy's state sized by the experts the trace uses; rows put back below
+    used = used_ids(trace) if dense is not trace else None
+    trace = dense
     plan = shared_plan(trace) if shared else layer_plans(trace)[layer]
     core = plan_decisions(plan, policies.get(policy), capacity)
     res = core.res_of[0]
@@ -272,4 +281,8 @@ def residency_picture(trace: Trace, layer: int, policy: str, capacity: int, t0: 
             for k, (hit, _, _) in zip(keys[a:b], served):
                 if 0 <= k - base < E:
                     col[k - base] = 2 if hit else 3
-    return pic
+    if used is None:
+        return pic
+    out = np.zeros((full_E, t1 - t0), np.int8)
+    out[used] = pic[: used.size]
+    return out

@@ -54,6 +54,7 @@ class LayerPlan:
     probs: np.ndarray | None = None
     layers: np.ndarray | None = None  # int [n_steps] the layer of each step (a shared plan), None: ``layer``
     shared_experts: int = 0  # a shared plan: experts per layer (key = layer * shared_experts + expert); 0 otherwise
+    n_experts: int = 0  # a layer's plan: the experts of its layer, guesses included (0: not known)
 
     @property
     def n(self) -> int:
@@ -89,7 +90,7 @@ class LayerPlan:
         sizes = np.where(np.repeat(big, n_each), 1, np.repeat(self.sizes, n_each))
         layers = np.repeat(self.layers, n_each) if self.layers is not None else None
         return LayerPlan(self.keys, sizes, np.repeat(self.counted, n_each), np.repeat(self.token, n_each), self.layer, self.probs,
-                         layers, self.shared_experts)
+                         layers, self.shared_experts, self.n_experts)
 
     @property
     def n_keys(self) -> int:
@@ -97,6 +98,13 @@ class LayerPlan:
         if self.shared_experts:
             return (int(self.layers.max(initial=0)) + 1) * self.shared_experts  # every layer has a step per token
         return int(self.keys.max(initial=-1)) + 1
+
+    @property
+    def key_space(self) -> int | None:
+        """Keys its pool can ever hold, guesses included (None: not known): a pool of more slots never evicts."""
+        if self.shared_experts:
+            return self.n_keys
+        return max(self.n_keys, self.n_experts) if self.n_experts else None
 
     def access_layers(self) -> np.ndarray:
         """int [n] the layer of each access."""
@@ -113,6 +121,38 @@ def prefill_tokens(trace: Trace) -> int:
     if isinstance(p, bool) or not isinstance(p, int) or not 0 <= p <= trace.n_tokens:
         raise BadTrace(f"meta prefill_tokens must be a whole number from 0 to the trace's {trace.n_tokens} tokens, got {p!r}")
     return p
+
+
+def used_ids(trace: Trace) -> np.ndarray:
+    """The expert ids a trace routes to or guesses, ascending."""
+    parts = [trace.experts[trace.experts >= 0]]
+    if trace.guesses is not None:
+        parts.append(trace.guesses[trace.guesses >= 0])
+    return np.unique(np.concatenate(parts))
+
+
+def compact(trace: Trace) -> Trace:
+    """The trace with its expert ids renumbered 0..U-1 in ascending order, U the ids it routes to or guesses
+    (``meta.n_experts`` becomes U; ``probs`` keeps those columns); the trace itself when it uses every id.
+
+    A replay's state is then sized by what the trace holds, never by the expert count it declares (a trace of
+    8 KB may declare 2**20 experts).  The counts are unchanged: the renumbering keeps the order of the ids,
+    which is all that a policy's tie-breaks and the access order read (``orbit`` buckets its decisions by
+    labels of first use, not by id), tests/sim/test_replay.py checks it for every policy and both pool kinds.
+    """
+    ex = trace.experts
+    used = used_ids(trace)
+    if used.size == trace.n_experts and (used.size == 0 or used[-1] == used.size - 1):
+        return trace
+    lut = np.full(int(used[-1]) + 2 if used.size else 1, -1, np.int64)  # lut[-1]: the padding stays -1
+    lut[used] = np.arange(used.size)
+
+    def relabel(a):
+        return None if a is None else np.where(a >= 0, lut[a], -1)
+
+    probs = trace.probs[:, :, used] if trace.probs is not None else None
+    meta = dict(trace.meta, n_experts=max(int(used.size), 1))
+    return Trace(relabel(ex), trace.weights, relabel(trace.guesses), meta, trace.events, probs)
 
 
 def _key_dtype(experts: np.ndarray):
@@ -194,6 +234,7 @@ def layer_plans(trace: Trace) -> list[LayerPlan]:
     plans = [_layer_plan(trace.experts[:, layer, :], P, dt) for layer in range(trace.n_layers)]
     for layer, plan in enumerate(plans):
         plan.layer = layer
+        plan.n_experts = trace.n_experts
         plan.probs = trace.probs[:, layer, :] if trace.probs is not None else None
     return plans
 
@@ -248,7 +289,11 @@ def walk(plan: LayerPlan, core: Decisions | Residency, before: Callable[[int], N
 
 
 def plan_decisions(plan: LayerPlan, policy_cls: type[Policy], capacity: int) -> Decisions:
-    """The decision core replaying one plan: a shared plan's pool, or one layer's quota."""
+    """The decision core replaying one plan: a shared plan's pool, or one layer's quota.  A pool of more
+    slots than keys it can hold is made with as many as it can hold: it never evicts either way."""
+    space = plan.key_space
+    if space is not None:
+        capacity = min(capacity, max(space, 1))
     return decisions_over(plan, Residency(capacity, plan_policy(policy_cls, plan)))
 
 

@@ -21,6 +21,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 import moerun
+from moerun import policies
 from moerun.cli import main as cli
 from moerun.files.trace import Trace, read_trace, write_trace
 from moerun.model.sampling import Sampling
@@ -603,3 +604,103 @@ def test_replay_refuses_more_slots_per_layer_than_a_layer_has_experts_with_the_f
     err = capsys.readouterr().err
     assert len(err.strip().splitlines()) == 1 and f"--slots 1-{E}" in err
     assert cli.main(["replay", str(recorded[0]), "--slots", str(E), "--json"]) == 0
+
+
+# ---------------------------------------------------------------------------- state bounded by what the trace holds
+
+
+def _spread(trace: Trace, seed: int, declared: int, guesses: bool = False) -> Trace:
+    """The trace with its ids sent to random larger ones in the same order (a monotonic relabelling), declaring
+    ``declared`` experts; ``guesses``: oracle guesses plus a few ids the trace never routes to."""
+    E = trace.n_experts
+    rng = np.random.default_rng(seed)
+    new = np.sort(rng.choice(declared, size=E, replace=False))  # new[e] > new[e'] iff e > e'
+    ex = np.where(trace.experts >= 0, new[np.maximum(trace.experts, 0)], -1)
+    g = None
+    if guesses:
+        dense = _oracle_guesses(trace, 2, max(2, trace.top_k))
+        noise = rng.integers(0, E, dense.shape)
+        dense = np.where((dense >= 0) & (rng.random(dense.shape) < 0.3), noise, dense)
+        g = np.where(dense >= 0, new[np.maximum(dense, 0)], -1)
+    return Trace(ex, guesses=g, meta=dict(trace.meta, n_experts=declared))
+
+
+@settings(max_examples=40, deadline=None)
+@given(trace_params, st.booleans(), st.integers(0, 2**31 - 1))
+def test_replay_counts_are_the_same_with_the_ids_the_trace_uses_renumbered_for_every_policy_and_pool_kind(params, shared, seed):
+    seed0, tokens, layers, experts, k, pad, prefill, _ = params
+    sparse = _spread(_random_trace(seed0, tokens, layers, experts, k, pad, prefill), seed, 4000, guesses=True)
+    dense = replay.compact(sparse)
+    used = np.unique(np.concatenate([sparse.experts[sparse.experts >= 0], sparse.guesses[sparse.guesses >= 0]]))
+    assert dense.n_experts == max(used.size, 1) and (dense.experts < dense.n_experts).all()
+    sizes = sorted({1, 2, 3, layers * experts})
+    # orbit with a table of 4 buckets: decisions share buckets often, so a bucket that depended on the ids
+    # themselves (not on the order the layer first chose them) would show here
+    for cls in [policies.get(name) for name in policies.names()] + [policies.Orbit.with_params(table_bits=2)]:
+        name = cls.name
+        assert replay.replay_counts(sparse, cls, sizes, fast=False, shared=shared) == \
+            replay.replay_counts(dense, cls, sizes, fast=False, shared=shared), name
+        if getattr(cls, "online", True) and layers > 1:
+            for c in sizes[:2]:
+                assert replay.simulate_prefetch(sparse, cls, c, 2, 1, shared=shared) == \
+                    replay.simulate_prefetch(dense, cls, c, 2, 1, shared=shared), (name, c)
+
+
+def test_a_trace_that_uses_every_id_is_replayed_as_it_is():
+    trace = _random_trace(1, 50, 2, 4, 4, 0.0, 0)  # top-4 of 4: every id used
+    assert replay.compact(trace) is trace
+
+
+def _tiny_trace_declaring_a_million_experts(path: Path) -> Path:
+    """A few KB (under 12 KB): 256 tokens, 4 layers, top-2, ids below 10**6, meta n_experts 2**20 (issue 23, item 2)."""
+    rng = np.random.default_rng(23)
+    pool = rng.choice(1_000_000, size=(4, 40), replace=False)  # a few dozen experts per layer, spread wide
+    ex = np.array([[np.sort(rng.choice(pool[layer], 2, replace=False)) for layer in range(4)] for _ in range(256)])
+    np.savez_compressed(path, experts=ex.astype(np.int32), meta=np.array(json.dumps({"n_experts": 2**20})))
+    return path
+
+
+def test_a_tiny_trace_declaring_a_million_experts_replays_in_a_shared_pool_under_a_1_gib_address_space(tmp_path):
+    import resource
+    import subprocess
+    import sys
+
+    path = _tiny_trace_declaring_a_million_experts(tmp_path / "tiny.npz")
+    assert path.stat().st_size < 12_000
+    limit = 1 << 30
+
+    def cap():  # the child cannot take the machine down, whatever it tries to allocate
+        resource.setrlimit(resource.RLIMIT_AS, (limit, limit))
+
+    run = subprocess.run([sys.executable, "-m", "moerun", "replay", str(path), "--shared-pool", "--evict", "orbit,lru,markov", "--json"],
+                         capture_output=True, text=True, preexec_fn=cap, timeout=300)
+    assert run.returncode == 0, run.stderr
+    doc = json.loads(run.stdout)
+    assert doc["trace"]["n_experts"] == 2**20 and doc["slots"][-1] == 4 * 2**20
+    orbit = replay.overall(doc["results"], "orbit")
+    assert orbit[4 * 2**20]["misses"] == len({(layer, e) for layer in range(4) for e in np.unique(read_trace(path).experts[:, layer])})
+
+
+def test_out_of_memory_in_replay_names_no_option_replay_does_not_have(recorded, capsys, monkeypatch):
+    from moerun.sim import jobs
+
+    def boom(*a, **k):
+        raise MemoryError
+
+    monkeypatch.setattr(jobs, "run_replay", boom)
+    code = cli.main(["replay", str(recorded[0]), "--no-baselines"])
+    err = capsys.readouterr().err
+    assert code == 2 and "out of memory" in err and "--mem-cap" not in err and len(err.strip().splitlines()) == 1
+
+
+@pytest.mark.parametrize("shared", [False, True], ids=["per-layer", "shared"])
+@pytest.mark.parametrize("policy", ["orbit", "lru", "optimal"])
+def test_the_residency_picture_of_renumbered_ids_puts_the_same_rows_at_the_ids_the_trace_uses(shared, policy):
+    dense = _random_trace(5, 60, 2, 6, 2, 0.1, 3)
+    sparse = _spread(dense, 9, 5000)
+    used = replay.used_ids(sparse)
+    c = 5 if shared else 3
+    pic = replay.residency_picture(sparse, 1, policy, c, 3, 60, shared)
+    want = replay.residency_picture(replay.compact(sparse), 1, policy, c, 3, 60, shared)
+    assert pic.shape == (5000, 57) and np.array_equal(pic[used], want[: used.size])
+    assert not pic[np.setdiff1d(np.arange(5000), used)].any()

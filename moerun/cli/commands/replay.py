@@ -22,7 +22,7 @@ def add_arguments(p) -> None:
         "--evict",
         default=",".join(DEFAULT_POLICIES),
         metavar="P,P,...",
-        help=f"policies to compare (default {','.join(DEFAULT_POLICIES)}; known: {', '.join(policies.names())})",
+        help=cli.LazyHelp(lambda: f"policies to compare (default {','.join(DEFAULT_POLICIES)}; known: {policies.listing()})"),
     )
     p.add_argument("--slots", metavar="N,N,...",
                    help="expert slots per layer to try, e.g. 1,2,4 or 1-8 (default: 1 up to the expert count); with --shared-pool, "
