@@ -1,7 +1,7 @@
 """``moerun.plan``: predicted decode tok/s for a memory budget and a link; the best split, policy and prefetch.
 
 The result's ``to_json()`` is what ``moerun plan --json`` prints; errors are ``moerun.errors``; progress
-goes to the callback given, never to a stream.
+and notices go to the callbacks given, never to a stream.
 """
 
 from __future__ import annotations
@@ -171,7 +171,8 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
             "emulated": rate is not None}
 
 
-def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int, str], None]) -> tuple[Space, str, dict | None]:
+def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int, str], None],
+           notice: Callable[[str], None] | None) -> tuple[Space, str, dict | None]:
     m = inp["model"]
     page, page_src = inp["page"]
     cal = None
@@ -179,7 +180,8 @@ def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int,
         costs = costs_from_shape(m["shape"], page, page_src, inp["emulated"])
         cal_note = "compute times from the shape file"
     else:
-        cal = calibrate(m["dir"], recalibrate=recalibrate, progress=lambda what: step(0, f"calibrating: {what}"))
+        cal = calibrate(m["dir"], recalibrate=recalibrate, progress=lambda what: step(0, f"calibrating: {what}"),
+                        notice=notice)
         costs = costs_from_calibration(cal, page, page_src, inp["emulated"])
         cal_note = describe(cal)
     trace = inp["trace"]
@@ -197,7 +199,7 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
          link_speed: float | str | None = None, probe: str | os.PathLike | None = None, regime: str | None = None,
          trace: str | os.PathLike | None = None, max_tokens: int | None = None, shape: str | os.PathLike | None = None,
          evict: str | Sequence[str] | None = None, shared_pool: bool = False, recalibrate: bool = False,
-         progress: Callable[[int, str], None] | None = None) -> PlanResult:
+         progress: Callable[[int, str], None] | None = None, notice: Callable[[str], None] | None = None) -> PlanResult:
     """Predict decode speed for ``mem_cap`` and recommend slots per layer, policy and prefetch (``moerun plan``).
 
     Page-in costs come from ``link_speed`` (emulated link) or a saved ``probe`` file (its ``regime``, "warm"
@@ -205,14 +207,15 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
     ``max_tokens`` tokens, default 2048); ``shape`` plans for a model described by a JSON shape file (with
     ``trace``).  ``evict``: the policies to consider (default every online one); ``shared_pool`` also
     considers one pool for all layers; ``target``: also find the smallest cap reaching this tok/s.
-    ``progress(step, what)`` as the work advances (steps 0 to 5).
+    ``progress(step, what)`` as the work advances (steps 0 to 5); ``notice(line)`` when something the user
+    should know happens on the way (a cached calibration that is not valid, measured again).
     """
     def step(i: int, what: str) -> None:
         if progress is not None:
             progress(i, what)
 
     inp = _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict)
-    space, cal_note, cal = _space(inp, shared_pool, recalibrate, step)
+    space, cal_note, cal = _space(inp, shared_pool, recalibrate, step, notice)
     m = inp["model"]
     result = PlanResult(
         planned_for=m["what"],

@@ -33,10 +33,17 @@ def add_arguments(p) -> None:
 
 def run(args) -> int:
     prog = Progress("plan", enabled=None if not args.json else False)
+
+    def notice(line: str) -> None:  # one line on stderr, whatever stderr is and with --json too
+        prog.close()  # (clears the progress line, if there is one; it comes back with the next update)
+        sys.stderr.write(f"moerun plan: {line}\n")
+        sys.stderr.flush()
+
     try:
         result = plan(args.model, args.mem_cap, target=args.target, link_speed=args.link_speed, probe=args.probe,
                       regime=args.regime, trace=args.trace, max_tokens=args.max_tokens, shape=args.shape,
-                      evict=args.evict, shared_pool=args.shared_pool, recalibrate=args.recalibrate, progress=prog.update)
+                      evict=args.evict, shared_pool=args.shared_pool, recalibrate=args.recalibrate, progress=prog.update,
+                      notice=notice)
     finally:
         prog.close()
     code = 0 if result.ok else 1
