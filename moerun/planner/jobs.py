@@ -19,7 +19,7 @@ from moerun.files.bundled import resolve_model
 from moerun.files.config import RANDOM_NOTE
 from moerun.files.trace import Trace, read_trace
 from moerun.planner.calibration import calibrate, costs_from_calibration, costs_from_shape, describe, load_shape, page_seconds
-from moerun.planner.search import PREFETCH_CANDIDATES, Space, check_decode_steps, check_trace_shape
+from moerun.planner.search import PREFETCH_CANDIDATES, Space, check_decode_steps, check_trace_shape, minimum_cap
 from moerun.planner.timeline import Costs, Prediction
 from moerun.runtime.budget import fixed_bytes, slot_bytes
 from moerun.sim.report import parse_policies
@@ -42,7 +42,8 @@ class PlanResult:
     trace: dict
     fixed_bytes: int
     slot_bytes: int
-    min_cap_bytes: int
+    min_cap_bytes: int  # the smallest cap searched (a shared pool's with shared_pool)
+    per_layer_min_cap_bytes: int  # the smallest cap of one pool per layer
     all_resident_cap_bytes: int
     curve: dict  # {"policy": ..., "points": [{cap_bytes, slots_total, slots, prefetch, stall_share, tok_s, ...}]}
     layers: int  # (not in the document: the model's layers, for the text)
@@ -52,7 +53,7 @@ class PlanResult:
     candidates: list[tuple[str, Prediction]] | None = None  # (split label, prediction), every setting searched
     recommended_split: str | None = None
     recommended: Prediction | None = None
-    split_comparison: dict | None = None
+    split_comparison: dict | None = None  # None when only a shared pool fits the cap
     target: dict | None = None  # {"tok_s", "smallest_cap_bytes", "reachable", "best_tok_s"}
 
     @property
@@ -72,6 +73,7 @@ class PlanResult:
             "fixed_bytes": self.fixed_bytes,
             "slot_bytes": self.slot_bytes,
             "min_cap_bytes": self.min_cap_bytes,
+            "per_layer_min_cap_bytes": self.per_layer_min_cap_bytes,
             "all_resident_cap_bytes": self.all_resident_cap_bytes,
         }
         if self.note:
@@ -104,7 +106,7 @@ def _record(model_dir: Path, tokens: int) -> Trace:
         return eng.finish_trace(extra={"source": "record", "text": str(held), "prefill_tokens": 0})
 
 
-def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict) -> dict:
+def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict, shared_pool) -> dict:
     """Every input checked before any work: options, probe, shape, model, trace, cap (then calibration)."""
     if link_speed is not None and probe is not None:
         raise BadOption("--link-speed and --probe contradict each other (both say how fast a page-in is); give one")
@@ -160,11 +162,16 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
         check_trace_shape(routing, model["L"], model["E"], model["k"], model["what"])
         check_decode_steps(routing, trace)
     slot = slot_bytes(model["expert_bytes"])
-    min_cap = model["fixed"] + model["L"] * model["k"] * slot
-    if cap is not None and cap < min_cap:
+    per_layer = minimum_cap(model["fixed"], slot, model["L"], model["k"])
+    shared = minimum_cap(model["fixed"], slot, model["L"], model["k"], shared=True)
+    if cap is not None and cap < (shared if shared_pool else per_layer):
+        fixed = f"memory cap {fmt_exact(cap)} is too small: fixed parts take {fmt_bytes(model['fixed'])} and "
+        if shared_pool:
+            raise ImpossibleBudget(f"{fixed}one pool shared by all layers needs {model['k']} slots of {fmt_bytes(slot)}; "
+                                   f"the smallest cap that works is {fmt_exact(shared)}")
         raise ImpossibleBudget(
-            f"memory cap {fmt_exact(cap)} is too small: fixed parts take {fmt_bytes(model['fixed'])} and each of {model['L']} "
-            f"layers needs {model['k']} slots of {fmt_bytes(slot)}; the smallest cap that works is {fmt_exact(min_cap)}"
+            f"{fixed}each of {model['L']} layers needs {model['k']} slots of {fmt_bytes(slot)}; the smallest cap that "
+            f"works is {fmt_exact(per_layer)}" + (f" (with --shared-pool, {fmt_exact(shared)})" if shared < per_layer else "")
         )
     page = page_seconds(model["expert_bytes"], rate, probe_doc, regime or "warm")
     return {"names": names, "cap": cap, "tokens": tokens, "model": model, "trace": routing, "slot": slot, "page": page,
@@ -214,7 +221,7 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
         if progress is not None:
             progress(i, what)
 
-    inp = _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict)
+    inp = _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict, shared_pool)
     space, cal_note, cal = _space(inp, shared_pool, recalibrate, step, notice)
     m = inp["model"]
     result = PlanResult(
@@ -230,6 +237,7 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
         fixed_bytes=space.fixed,
         slot_bytes=space.slot,
         min_cap_bytes=space.min_cap,
+        per_layer_min_cap_bytes=space.per_layer_min_cap,
         all_resident_cap_bytes=space.full_cap,
         curve={},
         layers=space.layers,
@@ -241,17 +249,18 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
         total = space.slots_for(inp["cap"])
         cands = space.candidates(total)
         rec_label, rec = max(cands, key=lambda c: c[1].tok_s)
-        pick = {lab: next(pr for la, pr in cands if la == lab and pr.policy == rec.policy and pr.prefetch == 0)
-                for lab in ("even", "uneven")}
         result.mem_cap_bytes = inp["cap"]
         result.slots_total = total
         result.candidates = cands
         result.recommended_split = rec_label
         result.recommended = rec
-        result.split_comparison = {"policy": rec.policy, **{
-            lab: {"slots": pr.slots, "per_layer_hit_rate": pr.per_layer_hit_rate, "hits": pr.accesses - pr.misses,
-                  "tok_s": pr.tok_s}
-            for lab, pr in pick.items()}}
+        if total >= space.layers * space.top_k:  # per-layer pools fit (below, only a shared pool does)
+            pick = {lab: next(pr for la, pr in cands if la == lab and pr.policy == rec.policy and pr.prefetch == 0)
+                    for lab in ("even", "uneven")}
+            result.split_comparison = {"policy": rec.policy, **{
+                lab: {"slots": pr.slots, "per_layer_hit_rate": pr.per_layer_hit_rate, "hits": pr.accesses - pr.misses,
+                      "tok_s": pr.tok_s}
+                for lab, pr in pick.items()}}
     step(4, "speed against cap")
     curve_policy = rec.policy if rec else "lru"
     curve_pf = [(rec.prefetch, rec.lookahead or 1)] if rec else space.prefetches

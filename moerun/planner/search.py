@@ -69,6 +69,12 @@ def even_split(total: int, L: int, high: int) -> list[int]:
     return [min(high, base + (1 if i < extra else 0)) for i in range(L)]
 
 
+def minimum_cap(fixed: int, slot: int, layers: int, top_k: int, shared: bool = False) -> int:
+    """The smallest cap that works: top_k slots in every layer's pool, or top_k in one pool shared by all layers
+    (as moerun.runtime.budget.minimum_cap, for a model given by its shape too)."""
+    return fixed + (top_k if shared else layers * top_k) * slot
+
+
 @dataclass
 class Space:
     """What the planner searches over for one model or shape."""
@@ -107,7 +113,12 @@ class Space:
 
     @property
     def min_cap(self) -> int:
-        return self.fixed + self.layers * self.top_k * self.slot
+        """The smallest cap searched: a shared pool's when one is considered, else per-layer pools'."""
+        return minimum_cap(self.fixed, self.slot, self.layers, self.top_k, self.shared)
+
+    @property
+    def per_layer_min_cap(self) -> int:
+        return minimum_cap(self.fixed, self.slot, self.layers, self.top_k)
 
     @property
     def full_cap(self) -> int:
@@ -121,18 +132,23 @@ class Space:
         out = []
         L, E, k = self.layers, self.experts, self.top_k
         names = policy_names or self.policies
-        splits = {n: {"even": even_split(total, L, E), "uneven": best_split(self.curves[n], total, k, E)} for n in names}
-        for n in names:
-            for label, sl in splits[n].items():
-                out.append((label, self._predict(sl, n, 0, 1)))
-        ranked = sorted(names, key=lambda n: -max(pr.tok_s for _, pr in out if pr.policy == n))
-        for n in ranked[:PREFETCH_POLICIES]:
-            for pf, la in prefetches or self.prefetches:
-                if pf:
-                    for label, sl in splits[n].items():
-                        out.append((label, self._predict(sl, n, pf, la)))
-        if self.shared:  # the best per-layer policies and those made for a shared pool, then prefetch for the best two there
-            pick = ranked[:PREFETCH_POLICIES] + [n for n in ranked[PREFETCH_POLICIES:] if getattr(policies.get(n), "for_shared_pool", False)]
+        per_layer = total >= L * k  # below, only a shared pool fits
+        ranked = list(names)
+        if per_layer:
+            splits = {n: {"even": even_split(total, L, E), "uneven": best_split(self.curves[n], total, k, E)} for n in names}
+            for n in names:
+                for label, sl in splits[n].items():
+                    out.append((label, self._predict(sl, n, 0, 1)))
+            ranked = sorted(names, key=lambda n: -max(pr.tok_s for _, pr in out if pr.policy == n))
+            for n in ranked[:PREFETCH_POLICIES]:
+                for pf, la in prefetches or self.prefetches:
+                    if pf:
+                        for label, sl in splits[n].items():
+                            out.append((label, self._predict(sl, n, pf, la)))
+        if self.shared:  # the best per-layer policies and those made for a shared pool (every policy when per-layer
+            # pools do not fit), then prefetch for the best two there
+            pick = ranked if not per_layer else ranked[:PREFETCH_POLICIES] + [
+                n for n in ranked[PREFETCH_POLICIES:] if getattr(policies.get(n), "for_shared_pool", False)]
             plain = {n: self._predict([total], n, 0, 1, shared=True) for n in pick}
             out += [("shared", pr) for pr in plain.values()]
             for n in sorted(pick, key=lambda n: -plain[n].tok_s)[:PREFETCH_POLICIES]:
@@ -145,11 +161,13 @@ class Space:
         return max(self.candidates(total, policy_names, prefetches), key=lambda c: c[1].tok_s)
 
     def curve(self, policy: str, prefetches) -> list[dict]:
-        """Predicted tok/s against cap, one more slot per layer at a time.  A bigger cap can always leave slots
-        unused, so each point keeps the best figure seen so far."""
+        """Predicted tok/s against cap, one more slot per layer at a time, from the smallest cap (a shared pool's
+        below the per-layer minimum, when one is considered).  A bigger cap can always leave slots unused, so each
+        point keeps the best figure seen so far."""
         out, best = [], None
         L, E, k = self.layers, self.experts, self.top_k
-        for total in range(L * k, L * E + 1, L):
+        below = range(k, L * k, L) if self.shared else range(0)
+        for total in [*below, *range(L * k, L * E + 1, L)]:
             _, pr = self.best(total, [policy], prefetches)
             if best is None or pr.tok_s > best.tok_s:
                 best = pr

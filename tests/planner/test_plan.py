@@ -232,3 +232,53 @@ def test_bad_inputs_are_refused_before_any_calibration(small_model, tmp_path, ca
         assert time.monotonic() - t0 < 5.0  # a calibration takes far longer
         assert len(capsys.readouterr().err.strip().splitlines()) == 1
     assert not path.exists()
+
+
+# ---------------------------------------------------------------------------- a shared pool's smallest cap (issue 23, item 12)
+
+MIB = 1 << 20
+
+
+def test_plan_with_a_shared_pool_accepts_a_cap_only_a_shared_pool_fits(tmp_path, capsys):
+    # 4 layers, top-2, 1 MiB slots, 4 MiB fixed: one pool per layer needs 4 + 4 * 2 = 12 MiB, a shared pool 4 + 2 = 6 MiB
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(5), layers=4, experts=8))
+    common = ["plan", "--shape", str(_shape(tmp_path, layers=4, experts=8)), "--trace", str(trace), "--link-speed", "1GB/s",
+              "--mem-cap", "8MiB"]
+    code, out, err = _run([*common, "--shared-pool", "--json"], capsys)
+    assert code == 0, err
+    doc = json.loads(out)
+    assert doc["min_cap_bytes"] == 6 * MIB and doc["per_layer_min_cap_bytes"] == 12 * MIB
+    assert doc["slots_total"] == 4 and doc["recommended"]["shared"] and doc["split_comparison"] is None
+    assert all(c["split"] == "shared" for c in doc["candidates"])
+    assert [p["slots_total"] for p in doc["curve"]["points"]] == [2, 6, *range(8, 33, 4)]  # from the shared pool's minimum
+    assert doc["curve"]["points"][0]["cap_bytes"] == 6 * MIB and doc["curve"]["points"][0]["shared"]
+    code, out, err = _run([*common, "--shared-pool"], capsys)
+    assert code == 0, err
+    assert "recommended: one shared pool" in out and "only a shared pool fits this cap" in out
+    code, out, err = _run(common, capsys)  # without --shared-pool the cap is too small, and the message says what fits
+    assert code == 2 and out == "" and len(err.strip().splitlines()) == 1
+    assert f"smallest cap that works is {12 * MIB} bytes" in err and f"--shared-pool, {6 * MIB} bytes" in err
+    code, out, err = _run([*common[:-1], "5MiB", "--shared-pool"], capsys)
+    assert code == 2 and "one pool shared by all layers" in err and f"smallest cap that works is {6 * MIB} bytes" in err
+
+
+def test_plans_smallest_caps_are_the_engines(small_model, tmp_path):
+    # checked against moerun.runtime.budget.minimum_cap, the budget the engine runs with
+    import moerun
+    from moerun.errors import ImpossibleBudget
+    from moerun.files.store import ModelStore
+    from moerun.runtime.budget import minimum_cap
+
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(0), layers=3, experts=8))
+    store = ModelStore.open(small_model)
+    args = (store.config, store.dense_nbytes, store.expert_nbytes)
+    shared, even = (minimum_cap(*args, split, store.codec.scratch_bytes()) for split in ("shared", "even"))
+    store.close()
+    assert shared < even
+    result = moerun.plan(small_model, shared, trace=str(trace), link_speed="2GB/s", evict="lru", shared_pool=True)
+    assert (result.min_cap_bytes, result.per_layer_min_cap_bytes) == (shared, even)
+    assert result.recommended.shared and result.slots_total == 2
+    with pytest.raises(ImpossibleBudget, match="shared"):
+        moerun.plan(small_model, shared - 1, trace=str(trace), link_speed="2GB/s", evict="lru", shared_pool=True)

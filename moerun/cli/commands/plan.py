@@ -66,8 +66,11 @@ def _text(out, args, result) -> None:
               f"({c.page_source})\n{cal_note}\n")
     tr = doc["trace"]
     searched = f", the first {tr['searched_tokens']} searched" if tr["searched_tokens"] < tr["tokens"] else ""
+    smallest = fmt_bytes(result.min_cap_bytes)
+    if result.min_cap_bytes != result.per_layer_min_cap_bytes:
+        smallest += f" (shared pool; one pool per layer {fmt_bytes(result.per_layer_min_cap_bytes)})"
     out.write(f"routing: {tr['tokens']} tokens ({tr['source']}{searched}); fixed parts {fmt_bytes(result.fixed_bytes)}, slot "
-              f"{fmt_bytes(result.slot_bytes)}, smallest cap {fmt_bytes(result.min_cap_bytes)}, all resident {fmt_bytes(result.all_resident_cap_bytes)}\n\n")
+              f"{fmt_bytes(result.slot_bytes)}, smallest cap {smallest}, all resident {fmt_bytes(result.all_resident_cap_bytes)}\n\n")
     if rec is not None:
         top = sorted(cands, key=lambda x: -x[1].tok_s)
         rows = [[lab, ",".join(map(str, pr.slots)), pr.policy, f"{pr.prefetch}x{pr.lookahead}" if pr.prefetch else "off",
@@ -79,11 +82,14 @@ def _text(out, args, result) -> None:
                   + (f"--prefetch {rec.prefetch} --lookahead {rec.lookahead}" if rec.prefetch else "no prefetch")
                   + f": {rec.tok_s:.0f} tok/s predicted, {pct(rec.stall_share)} stalled\n\n")
         sc = doc["split_comparison"]
-        rows = [[str(layer), sc["even"]["slots"][layer], pct(sc["even"]["per_layer_hit_rate"][layer]),
-                 sc["uneven"]["slots"][layer], pct(sc["uneven"]["per_layer_hit_rate"][layer])] for layer in range(L)]
-        rows.append(["hits", sum(sc["even"]["slots"]), sc["even"]["hits"], sum(sc["uneven"]["slots"]), sc["uneven"]["hits"]])
-        out.write(f"even against uneven split ({sc['policy']}, no prefetch):\n")
-        out.write(table(["layer", "even slots", "hit rate", "uneven slots", "hit rate"], rows) + "\n\n")
+        if sc is None:
+            out.write(f"only a shared pool fits this cap (one pool per layer needs {fmt_bytes(result.per_layer_min_cap_bytes)})\n\n")
+        else:
+            rows = [[str(layer), sc["even"]["slots"][layer], pct(sc["even"]["per_layer_hit_rate"][layer]),
+                     sc["uneven"]["slots"][layer], pct(sc["uneven"]["per_layer_hit_rate"][layer])] for layer in range(L)]
+            rows.append(["hits", sum(sc["even"]["slots"]), sc["even"]["hits"], sum(sc["uneven"]["slots"]), sc["uneven"]["hits"]])
+            out.write(f"even against uneven split ({sc['policy']}, no prefetch):\n")
+            out.write(table(["layer", "even slots", "hit rate", "uneven slots", "hit rate"], rows) + "\n\n")
     curve = doc["curve"]["points"]
     rows = [[fmt_bytes(p["cap_bytes"]), p["slots_total"], "shared" if p["shared"] else ",".join(map(str, p["slots"])),
              f"{p['prefetch']}" if p["prefetch"] else "off", pct(p["stall_share"]), f"{p['tok_s']:.0f}"] for p in curve]
