@@ -19,7 +19,7 @@ from moerun.files.bundled import resolve_model
 from moerun.files.config import RANDOM_NOTE
 from moerun.files.trace import Trace, read_trace
 from moerun.planner.calibration import calibrate, costs_from_calibration, costs_from_shape, describe, load_shape, page_seconds
-from moerun.planner.search import PREFETCH_CANDIDATES, Space, check_decode_steps, check_trace_shape, minimum_cap
+from moerun.planner.search import PREFETCH_CANDIDATES, Space, check_decode_steps, check_trace_shape, choose, minimum_cap
 from moerun.planner.timeline import Costs, Prediction
 from moerun.runtime.budget import fixed_bytes, slot_bytes
 from moerun.sim.report import parse_policies
@@ -248,7 +248,7 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
         step(3, "settings for the cap")
         total = space.slots_for(inp["cap"])
         cands = space.candidates(total)
-        rec_label, rec = max(cands, key=lambda c: c[1].tok_s)
+        rec_label, rec = choose(cands)
         result.mem_cap_bytes = inp["cap"]
         result.slots_total = total
         result.candidates = cands

@@ -29,6 +29,13 @@ PREFETCH_CANDIDATES = [(0, 1), (1, 1), (2, 1), (2, 2), (3, 1)]
 PREFETCH_POLICIES = 2  # prefetch is simulated for the policies that do best without it
 SEARCH_TOKENS = 2048  # decode tokens each prefetch setting is simulated over in the search
 REPLAY_TOKENS = 6144  # decode tokens of the trace the search replays (the first ones): a long trace plans in seconds
+# Settings whose predicted speeds are within TIE (relative) of the best are ties, and the simplest of them is
+# chosen (``simplicity``): so a prefetch setting, an uneven split or another policy is recommended only for a
+# predicted gain of at least 0.5%.  Three significant digits (what ``moerun plan`` shows) resolve 0.1% to 1% of
+# a speed; the costs the prediction rests on are measured to 5% (calibration.SPREAD).  The figure itself: common
+# practice, no source.
+TIE = 0.005
+SPLITS = ("even", "shared", "uneven")  # simplest first: no option, one flag, a slot count per layer
 
 
 def hit_curves(trace: Trace, policy: str, max_slots: int) -> list[list[int]]:
@@ -67,6 +74,20 @@ def best_split(curves: list[list[int]], total: int, low: int, high: int) -> list
 def even_split(total: int, L: int, high: int) -> list[int]:
     base, extra = divmod(min(total, L * high), L)
     return [min(high, base + (1 if i < extra else 0)) for i in range(L)]
+
+
+def simplicity(label: str, pr: Prediction) -> tuple:
+    """Sorts settings simplest first: prefetch off, then fewer guesses and layers ahead; an even split, a shared
+    pool, an uneven split; the engine's default policy (lru), then the others in their registered order."""
+    order = policies.names()
+    rank = 0 if pr.policy == "lru" else 1 + (order.index(pr.policy) if pr.policy in order else len(order))
+    return (pr.prefetch > 0, pr.prefetch, pr.lookahead, SPLITS.index(label) if label in SPLITS else len(SPLITS), rank)
+
+
+def choose(cands: list[tuple[str, Prediction]]) -> tuple[str, Prediction]:
+    """The setting to recommend: the simplest of those within TIE of the fastest (see TIE)."""
+    top = max(pr.tok_s for _, pr in cands)
+    return min((c for c in cands if c[1].tok_s >= top * (1 - TIE)), key=lambda c: simplicity(*c))
 
 
 def minimum_cap(fixed: int, slot: int, layers: int, top_k: int, shared: bool = False) -> int:
@@ -158,7 +179,7 @@ class Space:
         return out
 
     def best(self, total: int, policy_names=None, prefetches=None) -> tuple[str, Prediction]:
-        return max(self.candidates(total, policy_names, prefetches), key=lambda c: c[1].tok_s)
+        return choose(self.candidates(total, policy_names, prefetches))
 
     def curve(self, policy: str, prefetches) -> list[dict]:
         """Predicted tok/s against cap, one more slot per layer at a time, from the smallest cap (a shared pool's
