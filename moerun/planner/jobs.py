@@ -46,7 +46,8 @@ class PlanResult:
     per_layer_min_cap_bytes: int  # the smallest cap of one pool per layer
     all_resident_cap_bytes: int
     curve: dict  # {"policy": ..., "points": [{cap_bytes, slots_total, slots, prefetch, stall_share, tok_s, ...}]}
-    layers: int  # (not in the document: the model's layers, for the text)
+    layers: int  # (not in the document: the model's layers and experts per layer, for the text)
+    experts: int
     note: str | None = None
     mem_cap_bytes: int | None = None
     slots_total: int | None = None
@@ -241,6 +242,7 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
         all_resident_cap_bytes=space.full_cap,
         curve={},
         layers=space.layers,
+        experts=space.experts,
         note=m["note"],
     )
     rec = None

@@ -358,7 +358,11 @@ def test_identical_settings_are_shown_once():
     reads_nothing = ("even", _pred(99.9, prefetch=1, lookahead=1, loads=0))  # prefetch that reads no guess
     reads = ("even", _pred(99.9, prefetch=2, lookahead=1, loads=40))
     other = ("uneven", _pred(100.0, slots=(3, 5)))
-    assert _rows([reads_nothing, same_split, reads, other, even]) == [even, other, reads]
+    assert _rows([reads_nothing, same_split, reads, other, even], 2, 8) == [even, other, reads]
+    resident = ("even", _pred(300.0, slots=(8, 8)))
+    shared_resident = ("shared", _pred(300.0, slots=(16,), shared=True))  # every expert resident either way
+    assert _rows([shared_resident, resident, ("shared", _pred(200.0, slots=(15,), shared=True))], 2, 8)[:1] == [resident]
+    assert len(_rows([shared_resident, resident], 2, 8)) == 1
 
 
 def test_plan_says_how_the_shared_pool_did_in_one_line(tmp_path, capsys):

@@ -67,19 +67,23 @@ def speed(tok_s: float) -> str:
     return f"{r:.{2 - math.floor(math.log10(r))}f}"
 
 
-def _setting(lab: str, pr) -> tuple:
-    """What a setting does: the same for even and uneven splits with equal slots, and for prefetch that reads no
-    guess (the planner predicts it changes nothing but the guess rule's cost)."""
-    return (pr.shared, tuple(pr.slots), pr.policy, (pr.prefetch, pr.lookahead) if pr.prefetch and pr.prefetch_loads else None)
+def _setting(pr, layers: int, experts: int) -> tuple:
+    """What a setting does: the same for even and uneven splits with equal slots, for a shared pool and per-layer
+    pools that both hold every expert, and for prefetch that reads no guess (the planner predicts it changes
+    nothing but the guess rule's cost)."""
+    everything = sum(pr.slots) >= layers * experts if pr.shared else all(s >= experts for s in pr.slots)
+    pool = "all resident" if everything else (pr.shared, tuple(pr.slots))
+    return (pool, pr.policy, (pr.prefetch, pr.lookahead) if pr.prefetch and pr.prefetch_loads else None)
 
 
-def _rows(cands) -> list:
+def _rows(cands, layers: int, experts: int) -> list:
     """The settings, fastest first (as shown; the simplest first where they read the same), rows that are the same
     setting with the same prediction (within TIE) shown once, as the simplest of them."""
     ordered = sorted(cands, key=lambda c: (-float(speed(c[1].tok_s)), simplicity(*c)))
     kept: list = []
     for lab, pr in ordered:
-        same = [k for k in kept if _setting(*k) == _setting(lab, pr) and abs(k[1].tok_s - pr.tok_s) <= TIE * k[1].tok_s]
+        setting = _setting(pr, layers, experts)
+        same = [k for k in kept if _setting(k[1], layers, experts) == setting and abs(k[1].tok_s - pr.tok_s) <= TIE * k[1].tok_s]
         if not same:
             kept.append((lab, pr))
     return kept
@@ -128,7 +132,7 @@ def _text(out, args, result) -> None:
     out.write(f"routing: {tr['tokens']} tokens ({tr['source']}{searched}); fixed parts {fmt_bytes(result.fixed_bytes)}, slot "
               f"{fmt_bytes(result.slot_bytes)}, smallest cap {smallest}, all resident {fmt_bytes(result.all_resident_cap_bytes)}\n\n")
     if rec is not None:
-        top = _rows(cands)
+        top = _rows(cands, L, result.experts)
         rows = [[lab, ",".join(map(str, pr.slots)), pr.policy, f"{pr.prefetch}x{pr.lookahead}" if pr.prefetch else "off",
                  pct(pr.hit_rate), pct(pr.stall_share), speed(pr.tok_s)] for lab, pr in top[:12]]
         out.write(f"cap {fmt_bytes(doc['mem_cap_bytes'])}: {doc['slots_total']} slots; best {min(12, len(top))} of {len(top)} "
@@ -138,7 +142,7 @@ def _text(out, args, result) -> None:
         out.write(f"recommended: {how}, --evict {rec.policy}, "
                   + (f"--prefetch {rec.prefetch} --lookahead {rec.lookahead}" if rec.prefetch else "no prefetch")
                   + f": {speed(rec.tok_s)} tok/s predicted, {pct(rec.stall_share)} stalled"
-                  + f" (settings within {100 * TIE:g}% of the fastest count as equal; the simplest is recommended)\n")
+                  + f" (ties within {100 * TIE:g}% go to the simpler setting)\n")
         if args.shared_pool:
             out.write(_shared_line(result) + "\n")
         out.write("\n")
