@@ -28,7 +28,8 @@ def add_arguments(p) -> None:
     p.add_argument("--shape", metavar="FILE", help="plan for a model described by a JSON shape file (needs --trace)")
     p.add_argument("--evict", default=None, metavar="P,P",
                    help=f"policies to consider (default: every online policy, {','.join(policies.names(online_only=True))})")
-    p.add_argument("--shared-pool", action="store_true", help="also consider one pool shared by all layers")
+    p.add_argument("--shared-pool", action="store_true",
+                   help="also consider one pool shared by all layers (it fits caps down to top_k slots)")
     p.add_argument("--recalibrate", action="store_true", help="measure compute times again instead of using the cache")
     cli.add_json(p)
 
