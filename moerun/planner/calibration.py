@@ -12,7 +12,9 @@ limit), and the spread is kept.  The calibration records when, where (host, CPUs
 load (the load average, and other processes' CPU use while it ran) it was taken; ``flags`` says
 when it should not be trusted: a large spread, or other work on the machine.  It is cached per
 model file (size and time), host, numpy and moerun version, and measured again when any of them
-changes or the cache holds anything but sane numbers.
+changes, or when the cache is not wholly valid and plausible (``check_cache``: every field of the
+type and range it is written with, descriptive fields included, and each cost above a floor that no
+CPU beats for the model's shapes, ``Floors``).
 """
 
 from __future__ import annotations
@@ -20,7 +22,9 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import re
 import time
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -53,12 +57,55 @@ MAX_LAYERS = 1 << 16
 MAX_EXPERTS = 1 << 20
 MAX_BYTES = 1 << 60
 MAX_US = 1e12  # microseconds: eleven days per operation
+MIN_RUNS, MAX_RUNS = 3, 9  # a timing's runs (settle)
+
+# Floors of plausible costs (``Floors``, ``check_cache``).  A cost is at least the time to read the bytes it
+# must touch at BANDWIDTH, and at least one numpy call made from Python (CALL_S).
+BANDWIDTH = 10e12  # bytes/s: ten times the fastest memory a CPU reads today, 1-2 TB/s (HBM2e on Intel's Xeon Max,
+#                    vendor figures); the factor ten leaves room for caches (common practice, no source)
+CALL_S = 20e-9  # s: one call into numpy from Python; CPython's function call alone takes tens of ns on the
+#                 fastest cores (common practice, no source)
+MIN_STORED_BITS = 2  # the fewest bits per weight any stored expert format has (2-bit quantization)
+
+
+@dataclass(frozen=True)
+class Floors:
+    """The least time (s) each cost can take on any CPU for a model's shapes: the bytes the operation must touch
+    at ``BANDWIDTH``, and at least one numpy call (``CALL_S``).  Dense weights are float32 in memory; an expert is
+    computed from float32 matrices whatever its stored format; its stored bytes are at least ``MIN_STORED_BITS`` per
+    weight."""
+
+    attn: tuple[float, ...]  # per layer: attention, norms, router and the shared expert
+    head: float  # final norm and output projection
+    expert: float  # one expert's three float32 matrices
+    copy: float  # one expert's stored bytes
+    guess: float  # the guess rule: one layer's norm-scaled router (none on a one-layer model)
+    step_experts: int  # experts computed per decode step: top_k in every layer
+
+    @property
+    def step(self) -> float:
+        """A fully resident decode step: every layer, its experts and the head."""
+        return sum(self.attn) + self.head + self.step_experts * self.expert
+
+    @classmethod
+    def for_config(cls, c: ModelConfig) -> Floors:
+        def at_least(nbytes: float) -> float:
+            return max(CALL_S, nbytes / BANDWIDTH)
+
+        shapes = c.dense_shapes()
+        elements = lambda names: sum(int(np.prod(shapes[n])) for n in names)  # noqa: E731
+        attn = tuple(at_least(4 * elements([n for n in shapes if n.startswith(f"layers.{layer}.")])) for layer in range(c.n_layers))
+        head = at_least(4 * elements(["final_norm", "embed" if c.tied_embeddings else "lm_head"]))
+        weights = sum(a * b for a, b in c.expert_shapes().values())
+        guess = at_least(4 * c.d_model * c.n_experts) if c.n_layers > 1 else 0.0
+        return cls(attn, head, at_least(4 * weights), at_least(weights * MIN_STORED_BITS / 8), guess,
+                   c.n_layers * c.top_k)
 
 
 # ---------------------------------------------------------------------------- repeated timing
 
 
-def settle(fn, min_runs: int = 3, max_runs: int = 9, limit_s: float = TIME_LIMIT_S) -> tuple[float, float, int]:
+def settle(fn, min_runs: int = MIN_RUNS, max_runs: int = MAX_RUNS, limit_s: float = TIME_LIMIT_S) -> tuple[float, float, int]:
     """Run ``fn`` (returning seconds) until its best three results agree within SPREAD, or max_runs or
     limit_s is reached: (best, spread of the best three, runs)."""
     got: list[float] = []
@@ -144,7 +191,7 @@ def _sleep_lateness() -> float:
         t0 = time.monotonic_ns()
         time.sleep(100e-6)
         late.append(time.monotonic_ns() - t0 - 100_000)
-    return float(np.median(late)) / 1e9
+    return max(0.0, float(np.median(late)) / 1e9)
 
 
 def _policy_costs(model_dir, trace, names) -> dict:
@@ -212,6 +259,7 @@ def measure(model_dir, tokens: int = 96, progress=None) -> dict:
     with load(model_dir, tokenizer=False) as eng:
         ec = _expert_costs(eng)
         k = eng.config.top_k
+        floor = Floors.for_config(eng.config)
         eng.start_trace()  # routing for the policies' timing
         eng.generate(prompt_ids=[0], max_new=tokens + 1, sampling=Sampling(temperature=0.8, seed=1))
         trace = eng.finish_trace()
@@ -221,10 +269,12 @@ def measure(model_dir, tokens: int = 96, progress=None) -> dict:
     pool_s, pol = _policy_costs(model_dir, trace, policies.names(online_only=True))
     say("how often the reader is late with a guess")
     late = _late_share(model_dir, tokens)
-    others = _others_cpu_s() - others0
+    others = max(0.0, _others_cpu_s() - others0)  # (processes that ended meanwhile take their CPU time with them)
     wall = time.monotonic() - t0
-    attn = [max(0.0, ls - k * ec["expert_s"]) for ls in layer_s]
-    head = max(0.0, step - sum(layer_s))
+    # attention and head are differences of timings: noise can take them below what they can cost, so they are
+    # kept at their floors (a calibration holds only plausible figures, check_cache)
+    attn = [max(f, ls - k * ec["expert_s"]) for f, ls in zip(floor.attn, layer_s)]
+    head = max(floor.head, step - sum(layer_s))
     ncpu = os.cpu_count() or 1
     flags = []
     if step_spread > MAX_SPREAD:
@@ -237,7 +287,7 @@ def measure(model_dir, tokens: int = 96, progress=None) -> dict:
         "model_dir": str(model_dir.resolve()),
         "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
         "created_unix": time.time(),
-        "host": os.uname().nodename,
+        "host": host_name(),
         "cpus": ncpu,
         "load_average": load0,
         "others_cpu_s": others,
@@ -274,14 +324,25 @@ def model_key(model_dir: Path) -> str:
     return hashlib.blake2b(raw.encode(), digest_size=8).hexdigest()
 
 
-def calibrate(model_dir, tokens: int = 96, recalibrate: bool = False, cache: bool = True, progress=None) -> dict:
-    """The model's costs on this machine, measured now or taken from the cache (see the module docstring)."""
+def host_name() -> str:
+    """This machine's name as a calibration records it: printable text (a name that is not is escaped)."""
+    name = os.uname().nodename
+    return name if name.isprintable() else ascii(name)[1:-1]
+
+
+def calibrate(model_dir, tokens: int = 96, recalibrate: bool = False, cache: bool = True, progress=None,
+              notice=None) -> dict:
+    """The model's costs on this machine, measured now or taken from the cache (see the module docstring).
+
+    ``notice(text)`` is told, in one line, why a cache file that is there is measured again."""
     model_dir = Path(model_dir)
     path = cache_dir() / f"calibration-{model_key(model_dir)}.json"
     if cache and not recalibrate:
-        doc = cached(path, ModelConfig.load(model_dir).n_layers)
+        doc, why = cached(path, ModelConfig.load(model_dir), model_dir)
         if doc is not None:
             return doc
+        if why is not None and notice is not None:
+            notice(f"the cached calibration {path} {why}; measuring again")
     doc = measure(model_dir, tokens, progress)
     if cache:
         try:
@@ -292,35 +353,102 @@ def calibrate(model_dir, tokens: int = 96, recalibrate: bool = False, cache: boo
     return doc
 
 
-def cached(path: Path, n_layers: int) -> dict | None:
-    """A cached calibration that is whole and sane, or None (then it is measured again and the file replaced).
+def cached(path: Path, config: ModelConfig, model_dir: Path) -> tuple[dict | None, str | None]:
+    """A cached calibration that is wholly valid and plausible: ``(doc, None)``; ``(None, why)`` when the file is
+    there but is not (then it is measured again and the file replaced); ``(None, None)`` when there is none.
 
-    The cache is ours but lives in the user's directory: a file that parses yet holds negative, infinite or
-    missing figures, or the figures of another layer count, is not trusted.
+    The cache is ours but lives in the user's directory: nothing in it is trusted before ``check_cache``.
     """
-    if not path.exists():
-        return None
     try:
+        if not path.exists():
+            return None, None
         doc = read_json_file(path, BadInput, "calibration cache")
-    except BadInput:
-        return None
-    if not isinstance(doc, dict) or doc.get("schema") != SCHEMA:
-        return None
-    attn = doc.get("attn_s")
-    if not isinstance(attn, list) or len(attn) != n_layers or not all(finite_number(a, 0.0, 1.0) for a in attn):
-        return None
-    if not finite_number(doc.get("expert_s"), 1e-12, 1.0) or not finite_number(doc.get("resident_step_s"), 1e-12, 10.0):
-        return None
-    for key in ("head_s", "wait_s", "decode_s", "copy_s", "guess_s", "place_s", "late_share", "step_spread", "pool_s"):
-        if not finite_number(doc.get(key), 0.0, 10.0):
-            return None
-    pol = doc.get("policy_s")
-    if not isinstance(pol, dict) or not all(isinstance(k, str) and finite_number(v, 0.0, 1.0) for k, v in pol.items()):
-        return None
-    if not isinstance(doc.get("flags"), list) or not finite_number(doc.get("created_unix"), 0.0, 1e11):
-        return None
+    except (BadInput, OSError, ValueError):  # ValueError: a path the file system cannot name
+        return None, "cannot be read as JSON"
+    why = check_cache(doc, config, model_dir)
+    if why is not None:
+        return None, why
     doc["cached"] = str(path)
-    return doc
+    return doc, None
+
+
+_CREATED = re.compile(r"\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}Z")
+MAX_TEXT = 2000  # characters of one descriptive text (a flag, the note, a path)
+MAX_FLAGS = 16
+
+
+def _text(v) -> bool:
+    """Printable text that UTF-8 encodes (no lone surrogate, no control character), of a sane length."""
+    return isinstance(v, str) and len(v) <= MAX_TEXT and v.isprintable()
+
+
+def check_cache(doc, config: ModelConfig, model_dir: Path) -> str | None:
+    """None when ``doc`` is a calibration of this model on this machine that is wholly valid and plausible; else
+    why not, in a few words.
+
+    Valid: exactly the fields ``measure`` writes, each of its type and range.  Plausible: each cost at or above
+    its floor for the model's shapes (``Floors``) and below a ceiling (a second per layer, a second per expert,
+    ten per operation or token: common practice, no source); the resident step at least the floors of what it
+    computes.  Never raises."""
+    if not isinstance(doc, dict):
+        return "is not a JSON object"
+    if doc.get("schema") != SCHEMA:
+        return f"is not of schema {SCHEMA}"
+    fields = {"schema", "model_dir", "created", "created_unix", "host", "cpus", "load_average", "others_cpu_s",
+              "seconds", "moerun", "attn_s", "head_s", "resident_step_s", "step_spread", "step_runs", "expert_s",
+              "decode_s", "copy_s", "guess_s", "wait_s", "policy_s", "pool_s", "late_share", "place_s", "flags", "note"}
+    missing = sorted(fields - doc.keys())
+    if missing:
+        return f"holds no {', '.join(missing)}"
+    extra = sorted(k for k in doc if k not in fields)
+    if extra:
+        return f"holds fields moerun does not write ({', '.join(map(ascii, extra))[:200]})"
+    # what it was measured for
+    for key, want in (("model_dir", str(Path(model_dir).resolve())), ("host", host_name()), ("moerun", __version__)):
+        if doc[key] != want:
+            return f"names another {key.replace('_', ' ')} ({ascii(doc[key])[:80]})"
+    if not _text(doc["created"]) or not _CREATED.fullmatch(doc["created"]):
+        return "has a creation date that is not a UTC time as YYYY-MM-DDThh:mm:ssZ"
+    if not finite_number(doc["created_unix"], 0.0, time.time() + 86400):  # a clock set back by up to a day
+        return "has a creation time that is not a number of seconds up to now"
+    if not whole_number(doc["cpus"], 1, 1 << 20):
+        return "has a CPU count that is not a whole number from 1"
+    if not whole_number(doc["step_runs"], MIN_RUNS, MAX_RUNS):
+        return f"has a run count that is not a whole number from {MIN_RUNS} to {MAX_RUNS}"
+    for key in ("load_average", "others_cpu_s", "seconds", "step_spread"):
+        if not finite_number(doc[key], 0.0, 1e9):
+            return f"has a {key} that is not a finite number from 0"
+    flags = doc["flags"]
+    if not isinstance(flags, list) or len(flags) > MAX_FLAGS or not all(_text(f) for f in flags):
+        return "has flags that are not a list of printable texts"
+    if not _text(doc["note"]):
+        return "has a note that is not printable text"
+    # the costs: types and ceilings
+    attn = doc["attn_s"]
+    if not isinstance(attn, list) or len(attn) != config.n_layers:
+        return f"holds attn_s that is not a list of {config.n_layers} numbers (one per layer)"
+    ceilings = {"expert_s": 1.0, "resident_step_s": 10.0, "late_share": 1.0}
+    for key in ("head_s", "resident_step_s", "expert_s", "decode_s", "copy_s", "guess_s", "wait_s", "pool_s",
+                "late_share", "place_s"):
+        if not finite_number(doc[key], 0.0, ceilings.get(key, 10.0)):
+            return f"holds {key} {ascii(doc[key])[:40]}, not a number of seconds from 0 to {ceilings.get(key, 10.0):g}"
+    if not all(finite_number(a, 0.0, 1.0) for a in attn):
+        return "holds attn_s figures that are not numbers of seconds from 0 to 1"
+    pol = doc["policy_s"]
+    if not isinstance(pol, dict) or not all(_text(k) and k and finite_number(v, 0.0, 1.0) for k, v in pol.items()):
+        return "holds policy_s that is not policy names with numbers of seconds from 0 to 1"
+    if doc["place_s"] != PLACE_S:
+        return f"holds place_s {doc['place_s']!r}, not moerun's {PLACE_S!r}"
+    # plausible: no CPU is faster than the floors
+    floor = Floors.for_config(config)
+    lows = [(f"attn_s of layer {i}", a, f) for i, (a, f) in enumerate(zip(attn, floor.attn))]
+    lows += [("head_s", doc["head_s"], floor.head), ("expert_s", doc["expert_s"], floor.expert),
+             ("copy_s", doc["copy_s"], floor.copy), ("guess_s", doc["guess_s"], floor.guess),
+             ("pool_s", doc["pool_s"], CALL_S), ("resident_step_s", doc["resident_step_s"], floor.step)]
+    for what, v, f in lows:
+        if v < f:
+            return f"holds {what} {v:.3g} s, below the {f:.3g} s no CPU beats for this model"
+    return None
 
 
 def describe(cal: dict) -> str:

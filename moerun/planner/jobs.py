@@ -1,7 +1,7 @@
 """``moerun.plan``: predicted decode tok/s for a memory budget and a link; the best split, policy and prefetch.
 
 The result's ``to_json()`` is what ``moerun plan --json`` prints; errors are ``moerun.errors``; progress
-goes to the callback given, never to a stream.
+and notices go to the callbacks given, never to a stream.
 """
 
 from __future__ import annotations
@@ -19,7 +19,7 @@ from moerun.files.bundled import resolve_model
 from moerun.files.config import RANDOM_NOTE
 from moerun.files.trace import Trace, read_trace
 from moerun.planner.calibration import calibrate, costs_from_calibration, costs_from_shape, describe, load_shape, page_seconds
-from moerun.planner.search import PREFETCH_CANDIDATES, Space, check_decode_steps, check_trace_shape
+from moerun.planner.search import PREFETCH_CANDIDATES, Space, check_decode_steps, check_trace_shape, choose, minimum_cap
 from moerun.planner.timeline import Costs, Prediction
 from moerun.runtime.budget import fixed_bytes, slot_bytes
 from moerun.sim.report import parse_policies
@@ -42,17 +42,19 @@ class PlanResult:
     trace: dict
     fixed_bytes: int
     slot_bytes: int
-    min_cap_bytes: int
+    min_cap_bytes: int  # the smallest cap searched (a shared pool's with shared_pool)
+    per_layer_min_cap_bytes: int  # the smallest cap of one pool per layer
     all_resident_cap_bytes: int
     curve: dict  # {"policy": ..., "points": [{cap_bytes, slots_total, slots, prefetch, stall_share, tok_s, ...}]}
-    layers: int  # (not in the document: the model's layers, for the text)
+    layers: int  # (not in the document: the model's layers and experts per layer, for the text)
+    experts: int
     note: str | None = None
     mem_cap_bytes: int | None = None
     slots_total: int | None = None
     candidates: list[tuple[str, Prediction]] | None = None  # (split label, prediction), every setting searched
     recommended_split: str | None = None
     recommended: Prediction | None = None
-    split_comparison: dict | None = None
+    split_comparison: dict | None = None  # None when only a shared pool fits the cap
     target: dict | None = None  # {"tok_s", "smallest_cap_bytes", "reachable", "best_tok_s"}
 
     @property
@@ -72,6 +74,7 @@ class PlanResult:
             "fixed_bytes": self.fixed_bytes,
             "slot_bytes": self.slot_bytes,
             "min_cap_bytes": self.min_cap_bytes,
+            "per_layer_min_cap_bytes": self.per_layer_min_cap_bytes,
             "all_resident_cap_bytes": self.all_resident_cap_bytes,
         }
         if self.note:
@@ -104,7 +107,7 @@ def _record(model_dir: Path, tokens: int) -> Trace:
         return eng.finish_trace(extra={"source": "record", "text": str(held), "prefill_tokens": 0})
 
 
-def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict) -> dict:
+def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict, shared_pool) -> dict:
     """Every input checked before any work: options, probe, shape, model, trace, cap (then calibration)."""
     if link_speed is not None and probe is not None:
         raise BadOption("--link-speed and --probe contradict each other (both say how fast a page-in is); give one")
@@ -160,18 +163,24 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
         check_trace_shape(routing, model["L"], model["E"], model["k"], model["what"])
         check_decode_steps(routing, trace)
     slot = slot_bytes(model["expert_bytes"])
-    min_cap = model["fixed"] + model["L"] * model["k"] * slot
-    if cap is not None and cap < min_cap:
+    per_layer = minimum_cap(model["fixed"], slot, model["L"], model["k"])
+    shared = minimum_cap(model["fixed"], slot, model["L"], model["k"], shared=True)
+    if cap is not None and cap < (shared if shared_pool else per_layer):
+        fixed = f"memory cap {fmt_exact(cap)} is too small: fixed parts take {fmt_bytes(model['fixed'])} and "
+        if shared_pool:
+            raise ImpossibleBudget(f"{fixed}one pool shared by all layers needs {model['k']} slots of {fmt_bytes(slot)}; "
+                                   f"the smallest cap that works is {fmt_exact(shared)}")
         raise ImpossibleBudget(
-            f"memory cap {fmt_exact(cap)} is too small: fixed parts take {fmt_bytes(model['fixed'])} and each of {model['L']} "
-            f"layers needs {model['k']} slots of {fmt_bytes(slot)}; the smallest cap that works is {fmt_exact(min_cap)}"
+            f"{fixed}each of {model['L']} layers needs {model['k']} slots of {fmt_bytes(slot)}; the smallest cap that "
+            f"works is {fmt_exact(per_layer)}" + (f" (with --shared-pool, {fmt_exact(shared)})" if shared < per_layer else "")
         )
     page = page_seconds(model["expert_bytes"], rate, probe_doc, regime or "warm")
     return {"names": names, "cap": cap, "tokens": tokens, "model": model, "trace": routing, "slot": slot, "page": page,
             "emulated": rate is not None}
 
 
-def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int, str], None]) -> tuple[Space, str, dict | None]:
+def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int, str], None],
+           notice: Callable[[str], None] | None) -> tuple[Space, str, dict | None]:
     m = inp["model"]
     page, page_src = inp["page"]
     cal = None
@@ -179,7 +188,8 @@ def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int,
         costs = costs_from_shape(m["shape"], page, page_src, inp["emulated"])
         cal_note = "compute times from the shape file"
     else:
-        cal = calibrate(m["dir"], recalibrate=recalibrate, progress=lambda what: step(0, f"calibrating: {what}"))
+        cal = calibrate(m["dir"], recalibrate=recalibrate, progress=lambda what: step(0, f"calibrating: {what}"),
+                        notice=notice)
         costs = costs_from_calibration(cal, page, page_src, inp["emulated"])
         cal_note = describe(cal)
     trace = inp["trace"]
@@ -197,7 +207,7 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
          link_speed: float | str | None = None, probe: str | os.PathLike | None = None, regime: str | None = None,
          trace: str | os.PathLike | None = None, max_tokens: int | None = None, shape: str | os.PathLike | None = None,
          evict: str | Sequence[str] | None = None, shared_pool: bool = False, recalibrate: bool = False,
-         progress: Callable[[int, str], None] | None = None) -> PlanResult:
+         progress: Callable[[int, str], None] | None = None, notice: Callable[[str], None] | None = None) -> PlanResult:
     """Predict decode speed for ``mem_cap`` and recommend slots per layer, policy and prefetch (``moerun plan``).
 
     Page-in costs come from ``link_speed`` (emulated link) or a saved ``probe`` file (its ``regime``, "warm"
@@ -205,14 +215,15 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
     ``max_tokens`` tokens, default 2048); ``shape`` plans for a model described by a JSON shape file (with
     ``trace``).  ``evict``: the policies to consider (default every online one); ``shared_pool`` also
     considers one pool for all layers; ``target``: also find the smallest cap reaching this tok/s.
-    ``progress(step, what)`` as the work advances (steps 0 to 5).
+    ``progress(step, what)`` as the work advances (steps 0 to 5); ``notice(line)`` when something the user
+    should know happens on the way (a cached calibration that is not valid, measured again).
     """
     def step(i: int, what: str) -> None:
         if progress is not None:
             progress(i, what)
 
-    inp = _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict)
-    space, cal_note, cal = _space(inp, shared_pool, recalibrate, step)
+    inp = _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict, shared_pool)
+    space, cal_note, cal = _space(inp, shared_pool, recalibrate, step, notice)
     m = inp["model"]
     result = PlanResult(
         planned_for=m["what"],
@@ -227,9 +238,11 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
         fixed_bytes=space.fixed,
         slot_bytes=space.slot,
         min_cap_bytes=space.min_cap,
+        per_layer_min_cap_bytes=space.per_layer_min_cap,
         all_resident_cap_bytes=space.full_cap,
         curve={},
         layers=space.layers,
+        experts=space.experts,
         note=m["note"],
     )
     rec = None
@@ -237,18 +250,19 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
         step(3, "settings for the cap")
         total = space.slots_for(inp["cap"])
         cands = space.candidates(total)
-        rec_label, rec = max(cands, key=lambda c: c[1].tok_s)
-        pick = {lab: next(pr for la, pr in cands if la == lab and pr.policy == rec.policy and pr.prefetch == 0)
-                for lab in ("even", "uneven")}
+        rec_label, rec = choose(cands)
         result.mem_cap_bytes = inp["cap"]
         result.slots_total = total
         result.candidates = cands
         result.recommended_split = rec_label
         result.recommended = rec
-        result.split_comparison = {"policy": rec.policy, **{
-            lab: {"slots": pr.slots, "per_layer_hit_rate": pr.per_layer_hit_rate, "hits": pr.accesses - pr.misses,
-                  "tok_s": pr.tok_s}
-            for lab, pr in pick.items()}}
+        if total >= space.layers * space.top_k:  # per-layer pools fit (below, only a shared pool does)
+            pick = {lab: next(pr for la, pr in cands if la == lab and pr.policy == rec.policy and pr.prefetch == 0)
+                    for lab in ("even", "uneven")}
+            result.split_comparison = {"policy": rec.policy, **{
+                lab: {"slots": pr.slots, "per_layer_hit_rate": pr.per_layer_hit_rate, "hits": pr.accesses - pr.misses,
+                      "tok_s": pr.tok_s}
+                for lab, pr in pick.items()}}
     step(4, "speed against cap")
     curve_policy = rec.policy if rec else "lru"
     curve_pf = [(rec.prefetch, rec.lookahead or 1)] if rec else space.prefetches

@@ -29,6 +29,13 @@ PREFETCH_CANDIDATES = [(0, 1), (1, 1), (2, 1), (2, 2), (3, 1)]
 PREFETCH_POLICIES = 2  # prefetch is simulated for the policies that do best without it
 SEARCH_TOKENS = 2048  # decode tokens each prefetch setting is simulated over in the search
 REPLAY_TOKENS = 6144  # decode tokens of the trace the search replays (the first ones): a long trace plans in seconds
+# Settings whose predicted speeds are within TIE (relative) of the best are ties, and the simplest of them is
+# chosen (``simplicity``): so a prefetch setting, an uneven split or another policy is recommended only for a
+# predicted gain of at least 0.5%.  Three significant digits (what ``moerun plan`` shows) resolve 0.1% to 1% of
+# a speed; the costs the prediction rests on are measured to 5% (calibration.SPREAD).  The figure itself: common
+# practice, no source.
+TIE = 0.005
+SPLITS = ("even", "shared", "uneven")  # simplest first: no option, one flag, a slot count per layer
 
 
 def hit_curves(trace: Trace, policy: str, max_slots: int) -> list[list[int]]:
@@ -69,6 +76,26 @@ def even_split(total: int, L: int, high: int) -> list[int]:
     return [min(high, base + (1 if i < extra else 0)) for i in range(L)]
 
 
+def simplicity(label: str, pr: Prediction) -> tuple:
+    """Sorts settings simplest first: prefetch off, then fewer guesses and layers ahead; an even split, a shared
+    pool, an uneven split; the engine's default policy (lru), then the others in their registered order."""
+    order = policies.names()
+    rank = 0 if pr.policy == "lru" else 1 + (order.index(pr.policy) if pr.policy in order else len(order))
+    return (pr.prefetch > 0, pr.prefetch, pr.lookahead, SPLITS.index(label) if label in SPLITS else len(SPLITS), rank)
+
+
+def choose(cands: list[tuple[str, Prediction]]) -> tuple[str, Prediction]:
+    """The setting to recommend: the simplest of those within TIE of the fastest (see TIE)."""
+    top = max(pr.tok_s for _, pr in cands)
+    return min((c for c in cands if c[1].tok_s >= top * (1 - TIE)), key=lambda c: simplicity(*c))
+
+
+def minimum_cap(fixed: int, slot: int, layers: int, top_k: int, shared: bool = False) -> int:
+    """The smallest cap that works: top_k slots in every layer's pool, or top_k in one pool shared by all layers
+    (as moerun.runtime.budget.minimum_cap, for a model given by its shape too)."""
+    return fixed + (top_k if shared else layers * top_k) * slot
+
+
 @dataclass
 class Space:
     """What the planner searches over for one model or shape."""
@@ -107,7 +134,12 @@ class Space:
 
     @property
     def min_cap(self) -> int:
-        return self.fixed + self.layers * self.top_k * self.slot
+        """The smallest cap searched: a shared pool's when one is considered, else per-layer pools'."""
+        return minimum_cap(self.fixed, self.slot, self.layers, self.top_k, self.shared)
+
+    @property
+    def per_layer_min_cap(self) -> int:
+        return minimum_cap(self.fixed, self.slot, self.layers, self.top_k)
 
     @property
     def full_cap(self) -> int:
@@ -121,18 +153,23 @@ class Space:
         out = []
         L, E, k = self.layers, self.experts, self.top_k
         names = policy_names or self.policies
-        splits = {n: {"even": even_split(total, L, E), "uneven": best_split(self.curves[n], total, k, E)} for n in names}
-        for n in names:
-            for label, sl in splits[n].items():
-                out.append((label, self._predict(sl, n, 0, 1)))
-        ranked = sorted(names, key=lambda n: -max(pr.tok_s for _, pr in out if pr.policy == n))
-        for n in ranked[:PREFETCH_POLICIES]:
-            for pf, la in prefetches or self.prefetches:
-                if pf:
-                    for label, sl in splits[n].items():
-                        out.append((label, self._predict(sl, n, pf, la)))
-        if self.shared:  # the best per-layer policies and those made for a shared pool, then prefetch for the best two there
-            pick = ranked[:PREFETCH_POLICIES] + [n for n in ranked[PREFETCH_POLICIES:] if getattr(policies.get(n), "for_shared_pool", False)]
+        per_layer = total >= L * k  # below, only a shared pool fits
+        ranked = list(names)
+        if per_layer:
+            splits = {n: {"even": even_split(total, L, E), "uneven": best_split(self.curves[n], total, k, E)} for n in names}
+            for n in names:
+                for label, sl in splits[n].items():
+                    out.append((label, self._predict(sl, n, 0, 1)))
+            ranked = sorted(names, key=lambda n: -max(pr.tok_s for _, pr in out if pr.policy == n))
+            for n in ranked[:PREFETCH_POLICIES]:
+                for pf, la in prefetches or self.prefetches:
+                    if pf:
+                        for label, sl in splits[n].items():
+                            out.append((label, self._predict(sl, n, pf, la)))
+        if self.shared:  # the best per-layer policies and those made for a shared pool (every policy when per-layer
+            # pools do not fit), then prefetch for the best two there
+            pick = ranked if not per_layer else ranked[:PREFETCH_POLICIES] + [
+                n for n in ranked[PREFETCH_POLICIES:] if getattr(policies.get(n), "for_shared_pool", False)]
             plain = {n: self._predict([total], n, 0, 1, shared=True) for n in pick}
             out += [("shared", pr) for pr in plain.values()]
             for n in sorted(pick, key=lambda n: -plain[n].tok_s)[:PREFETCH_POLICIES]:
@@ -142,14 +179,16 @@ class Space:
         return out
 
     def best(self, total: int, policy_names=None, prefetches=None) -> tuple[str, Prediction]:
-        return max(self.candidates(total, policy_names, prefetches), key=lambda c: c[1].tok_s)
+        return choose(self.candidates(total, policy_names, prefetches))
 
     def curve(self, policy: str, prefetches) -> list[dict]:
-        """Predicted tok/s against cap, one more slot per layer at a time.  A bigger cap can always leave slots
-        unused, so each point keeps the best figure seen so far."""
+        """Predicted tok/s against cap, one more slot per layer at a time, from the smallest cap (a shared pool's
+        below the per-layer minimum, when one is considered).  A bigger cap can always leave slots unused, so each
+        point keeps the best figure seen so far."""
         out, best = [], None
         L, E, k = self.layers, self.experts, self.top_k
-        for total in range(L * k, L * E + 1, L):
+        below = range(k, L * k, L) if self.shared else range(0)
+        for total in [*below, *range(L * k, L * E + 1, L)]:
             _, pr = self.best(total, [policy], prefetches)
             if best is None or pr.tok_s > best.tok_s:
                 best = pr

@@ -232,3 +232,148 @@ def test_bad_inputs_are_refused_before_any_calibration(small_model, tmp_path, ca
         assert time.monotonic() - t0 < 5.0  # a calibration takes far longer
         assert len(capsys.readouterr().err.strip().splitlines()) == 1
     assert not path.exists()
+
+
+# ---------------------------------------------------------------------------- a shared pool's smallest cap (issue 23, item 12)
+
+MIB = 1 << 20
+
+
+def test_plan_with_a_shared_pool_accepts_a_cap_only_a_shared_pool_fits(tmp_path, capsys):
+    # 4 layers, top-2, 1 MiB slots, 4 MiB fixed: one pool per layer needs 4 + 4 * 2 = 12 MiB, a shared pool 4 + 2 = 6 MiB
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(5), layers=4, experts=8))
+    common = ["plan", "--shape", str(_shape(tmp_path, layers=4, experts=8)), "--trace", str(trace), "--link-speed", "1GB/s",
+              "--mem-cap", "8MiB"]
+    code, out, err = _run([*common, "--shared-pool", "--json"], capsys)
+    assert code == 0, err
+    doc = json.loads(out)
+    assert doc["min_cap_bytes"] == 6 * MIB and doc["per_layer_min_cap_bytes"] == 12 * MIB
+    assert doc["slots_total"] == 4 and doc["recommended"]["shared"] and doc["split_comparison"] is None
+    assert all(c["split"] == "shared" for c in doc["candidates"])
+    assert [p["slots_total"] for p in doc["curve"]["points"]] == [2, 6, *range(8, 33, 4)]  # from the shared pool's minimum
+    assert doc["curve"]["points"][0]["cap_bytes"] == 6 * MIB and doc["curve"]["points"][0]["shared"]
+    code, out, err = _run([*common, "--shared-pool"], capsys)
+    assert code == 0, err
+    assert "recommended: one shared pool" in out and "shared pool: the only kind of pool that fits this cap" in out
+    code, out, err = _run(common, capsys)  # without --shared-pool the cap is too small, and the message says what fits
+    assert code == 2 and out == "" and len(err.strip().splitlines()) == 1
+    assert f"smallest cap that works is {12 * MIB} bytes" in err and f"--shared-pool, {6 * MIB} bytes" in err
+    code, out, err = _run([*common[:-1], "5MiB", "--shared-pool"], capsys)
+    assert code == 2 and "one pool shared by all layers" in err and f"smallest cap that works is {6 * MIB} bytes" in err
+
+
+def test_plans_smallest_caps_are_the_engines(small_model, tmp_path):
+    # checked against moerun.runtime.budget.minimum_cap, the budget the engine runs with
+    import moerun
+    from moerun.errors import ImpossibleBudget
+    from moerun.files.store import ModelStore
+    from moerun.runtime.budget import minimum_cap
+
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(0), layers=3, experts=8))
+    store = ModelStore.open(small_model)
+    args = (store.config, store.dense_nbytes, store.expert_nbytes)
+    shared, even = (minimum_cap(*args, split, store.codec.scratch_bytes()) for split in ("shared", "even"))
+    store.close()
+    assert shared < even
+    result = moerun.plan(small_model, shared, trace=str(trace), link_speed="2GB/s", evict="lru", shared_pool=True)
+    assert (result.min_cap_bytes, result.per_layer_min_cap_bytes) == (shared, even)
+    assert result.recommended.shared and result.slots_total == 2
+    with pytest.raises(ImpossibleBudget, match="shared"):
+        moerun.plan(small_model, shared - 1, trace=str(trace), link_speed="2GB/s", evict="lru", shared_pool=True)
+
+
+# ---------------------------------------------------------------------------- speeds people can tell apart (issue 23, item 18)
+
+
+def test_plan_shows_speeds_with_three_significant_digits():
+    from moerun.cli.commands.plan import speed
+
+    cases = {4.2734: "4.27", 42.734: "42.7", 427.34: "427", 4273.4: "4273", 0.042734: "0.0427", 9.9996: "10.0",
+             99.96: "100", 1.0: "1.00", 0.0: "0"}
+    assert {x: speed(x) for x in cases} == cases
+
+
+def test_plan_on_a_slow_model_shows_its_speeds_apart_and_keeps_full_precision_in_json(tmp_path, capsys):
+    # tens of ms per layer, as on a realistic model here: every setting used to read "4 tok/s"
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(6), layers=4, experts=8))
+    shape = _shape(tmp_path, layers=4, experts=8, dense_layer_us=50_000.0, expert_us=9_000.0, expert_bytes=64 * MIB)
+    common = ["plan", "--shape", str(shape), "--trace", str(trace), "--link-speed", "2GB/s", "--mem-cap", "900MiB"]
+    code, out, err = _run(common, capsys)
+    assert code == 0, err
+    table_rows = out.split("best ")[1].split("recommended:")[0].strip().splitlines()[3:]
+    speeds = [row.split()[-1] for row in table_rows]
+    assert all(len(s.replace(".", "").lstrip("0")) == 3 for s in speeds), speeds  # 3 significant digits below 100 tok/s
+    assert len(set(speeds)) > 1  # told apart
+    code, out, err = _run([*common, "--json"], capsys)
+    doc = json.loads(out)
+    x = doc["recommended"]["tok_s"]
+    assert isinstance(x, float) and x != float(f"{x:.3g}")  # a number with every digit, not a rounded string
+    assert all(isinstance(p["tok_s"], float) for p in doc["curve"]["points"])
+
+
+def _pred(tok_s, policy="lru", prefetch=0, lookahead=0, slots=(4, 4), shared=False, loads=0):
+    from moerun.planner.timeline import Prediction
+
+    return Prediction(list(slots), policy, prefetch, lookahead, tok_s, 1 / tok_s, 0.0, 100, 10, loads, [0.9, 0.9], shared)
+
+
+def test_ties_go_to_the_simpler_setting():
+    from moerun.planner.search import TIE, choose
+
+    assert TIE == 0.005
+    even = ("even", _pred(100.0))
+    cands = [("uneven", _pred(100.2, slots=(3, 5))), ("shared", _pred(100.3, slots=(8,), shared=True)),
+             ("even", _pred(100.4, prefetch=1, lookahead=1, loads=5)), ("even", _pred(100.1, policy="lfu")), even]
+    assert choose(cands) == even  # everything within 0.5%: prefetch off, even split, lru
+    faster = ("uneven", _pred(101.0, slots=(3, 5)))
+    assert choose([*cands, faster]) == faster  # 1% is a gain
+    assert choose([("uneven", _pred(100.2, slots=(3, 5))), ("shared", _pred(100.0, slots=(8,), shared=True))])[0] == "shared"
+
+
+def test_a_prefetch_setting_the_planner_predicts_changes_nothing_is_never_recommended():
+    # guesses that are never used: prefetch reads nothing the layers need; the time model predicts the same speed
+    # (to rounding) with and without it, and the recommendation is prefetch off
+    from moerun.files.trace import Trace
+    from moerun.planner.search import PREFETCH_CANDIDATES, Space, choose
+
+    base = _random_trace(np.random.default_rng(7), tokens=200, layers=3, experts=8)
+    guesses = np.full((200, 3, 2, 3), -1, np.int64)
+    trace = Trace(base.experts, guesses=guesses, meta={"n_experts": 8, "prefill_tokens": 0})
+    costs = _costs(L=3, page=80)
+    space = Space(trace, costs, 3, 8, 2, 0, 1, ["lru"], PREFETCH_CANDIDATES)
+    cands = space.candidates(12)
+    assert any(pr.prefetch for _, pr in cands)
+    label, rec = choose(cands)
+    assert rec.prefetch == 0 and (label, rec) == choose([c for c in cands if not c[1].prefetch])
+
+
+def test_identical_settings_are_shown_once():
+    from moerun.cli.commands.plan import _rows
+
+    even = ("even", _pred(100.0))
+    same_split = ("uneven", _pred(100.0))  # the uneven split came out even
+    reads_nothing = ("even", _pred(99.9, prefetch=1, lookahead=1, loads=0))  # prefetch that reads no guess
+    reads = ("even", _pred(99.9, prefetch=2, lookahead=1, loads=40))
+    other = ("uneven", _pred(100.0, slots=(3, 5)))
+    assert _rows([reads_nothing, same_split, reads, other, even], 2, 8) == [even, other, reads]
+    resident = ("even", _pred(300.0, slots=(8, 8)))
+    shared_resident = ("shared", _pred(300.0, slots=(16,), shared=True))  # every expert resident either way
+    assert _rows([shared_resident, resident, ("shared", _pred(200.0, slots=(15,), shared=True))], 2, 8)[:1] == [resident]
+    assert len(_rows([shared_resident, resident], 2, 8)) == 1
+
+
+def test_plan_says_how_the_shared_pool_did_in_one_line(tmp_path, capsys):
+    trace = tmp_path / "t.npz"
+    write_trace(trace, _random_trace(np.random.default_rng(8), layers=4, experts=8))
+    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path, layers=4, experts=8)), "--trace", str(trace),
+                           "--link-speed", "1GB/s", "--mem-cap", "20MiB", "--shared-pool"], capsys)
+    assert code == 0, err
+    lines = [line for line in out.splitlines() if line.startswith("shared pool:")]
+    assert len(lines) == 1
+    assert any(w in lines[0] for w in ("faster than", "slower than", "as fast as")) and "one pool per layer" in lines[0]
+    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path, layers=4, experts=8)), "--trace", str(trace),
+                           "--link-speed", "1GB/s", "--mem-cap", "20MiB"], capsys)
+    assert "shared pool:" not in out  # only when asked for

@@ -2,12 +2,14 @@
 
 from __future__ import annotations
 
+import math
 import sys
 
 from moerun import policies
 from moerun.cli import main as cli
 from moerun.cli.report import Progress, emit_json, pct, table
 from moerun.planner.jobs import DEFAULT_TOKENS, plan
+from moerun.planner.search import TIE, choose, simplicity
 from moerun.units import fmt_bytes
 
 HELP = "predict decode tok/s for a memory cap and a link; recommend slots per layer, policy and prefetch"
@@ -27,17 +29,25 @@ def add_arguments(p) -> None:
     p.add_argument("--evict", default=None, metavar="P,P",
                    help=cli.LazyHelp(lambda: f"policies to consider (default: every online policy, {','.join(policies.names(online_only=True))}; "
                                              f"known: {policies.listing(online_only=True)})"))
-    p.add_argument("--shared-pool", action="store_true", help="also consider one pool shared by all layers")
+    p.add_argument("--shared-pool", action="store_true",
+                   help="also consider one pool shared by all layers (it fits caps down to top_k slots)")
     p.add_argument("--recalibrate", action="store_true", help="measure compute times again instead of using the cache")
     cli.add_json(p)
 
 
 def run(args) -> int:
     prog = Progress("plan", enabled=None if not args.json else False)
+
+    def notice(line: str) -> None:  # one line on stderr, whatever stderr is and with --json too
+        prog.close()  # (clears the progress line, if there is one; it comes back with the next update)
+        sys.stderr.write(f"moerun plan: {line}\n")
+        sys.stderr.flush()
+
     try:
         result = plan(args.model, args.mem_cap, target=args.target, link_speed=args.link_speed, probe=args.probe,
                       regime=args.regime, trace=args.trace, max_tokens=args.max_tokens, shape=args.shape,
-                      evict=args.evict, shared_pool=args.shared_pool, recalibrate=args.recalibrate, progress=prog.update)
+                      evict=args.evict, shared_pool=args.shared_pool, recalibrate=args.recalibrate, progress=prog.update,
+                      notice=notice)
     finally:
         prog.close()
     code = 0 if result.ok else 1
@@ -46,6 +56,64 @@ def run(args) -> int:
         return code
     _text(sys.stdout, args, result)
     return code
+
+
+def speed(tok_s: float) -> str:
+    """A predicted speed for people: three significant digits, whole numbers from 100 tok/s up (4.27, 42.7, 427,
+    4270); the JSON keeps every digit."""
+    if not tok_s > 0:
+        return "0"
+    r = float(f"{tok_s:.3g}")
+    if r >= 100:
+        return f"{tok_s:.0f}"
+    return f"{r:.{2 - math.floor(math.log10(r))}f}"
+
+
+def _setting(pr, layers: int, experts: int) -> tuple:
+    """What a setting does: the same for even and uneven splits with equal slots, for a shared pool and per-layer
+    pools that both hold every expert, and for prefetch that reads no guess (the planner predicts it changes
+    nothing but the guess rule's cost)."""
+    everything = sum(pr.slots) >= layers * experts if pr.shared else all(s >= experts for s in pr.slots)
+    pool = "all resident" if everything else (pr.shared, tuple(pr.slots))
+    return (pool, pr.policy, (pr.prefetch, pr.lookahead) if pr.prefetch and pr.prefetch_loads else None)
+
+
+def _rows(cands, layers: int, experts: int) -> list:
+    """The settings, fastest first (as shown; the simplest first where they read the same), rows that are the same
+    setting with the same prediction (within TIE) shown once, as the simplest of them."""
+    ordered = sorted(cands, key=lambda c: (-float(speed(c[1].tok_s)), simplicity(*c)))
+    kept: list = []
+    for lab, pr in ordered:
+        setting = _setting(pr, layers, experts)
+        same = [k for k in kept if _setting(k[1], layers, experts) == setting and abs(k[1].tok_s - pr.tok_s) <= TIE * k[1].tok_s]
+        if not same:
+            kept.append((lab, pr))
+    return kept
+
+
+def _how(lab: str, pr) -> str:
+    pf = f"prefetch {pr.prefetch}x{pr.lookahead}" if pr.prefetch else "no prefetch"
+    return f"{pr.policy}, {pf}" if pr.shared else f"{lab} split, {pr.policy}, {pf}"
+
+
+def _shared_line(result) -> str:
+    """How the shared pool did, in one line."""
+    shared = [c for c in result.candidates if c[1].shared]
+    per_layer = [c for c in result.candidates if not c[1].shared]
+    if not shared:
+        return "shared pool: no shared-pool setting was searched"
+    lab, best = choose(shared)
+    if not per_layer:
+        return (f"shared pool: the only kind of pool that fits this cap (one pool per layer needs "
+                f"{fmt_bytes(result.per_layer_min_cap_bytes)}); best {_how(lab, best)}: {speed(best.tok_s)} tok/s")
+    plab, other = choose(per_layer)
+    ratio = best.tok_s / other.tok_s - 1 if other.tok_s else 0.0
+    if abs(ratio) <= TIE:
+        cmp = "as fast as"
+    else:
+        cmp = f"{100 * abs(ratio):.1f}% {'faster' if ratio > 0 else 'slower'} than"
+    return (f"shared pool: best {_how(lab, best)}: {speed(best.tok_s)} tok/s, {cmp} the best with one pool per layer "
+            f"({_how(plab, other)}: {speed(other.tok_s)} tok/s)")
 
 
 def _text(out, args, result) -> None:
@@ -60,27 +128,36 @@ def _text(out, args, result) -> None:
               f"({c.page_source})\n{cal_note}\n")
     tr = doc["trace"]
     searched = f", the first {tr['searched_tokens']} searched" if tr["searched_tokens"] < tr["tokens"] else ""
+    smallest = fmt_bytes(result.min_cap_bytes)
+    if result.min_cap_bytes != result.per_layer_min_cap_bytes:
+        smallest += f" (shared pool; one pool per layer {fmt_bytes(result.per_layer_min_cap_bytes)})"
     out.write(f"routing: {tr['tokens']} tokens ({tr['source']}{searched}); fixed parts {fmt_bytes(result.fixed_bytes)}, slot "
-              f"{fmt_bytes(result.slot_bytes)}, smallest cap {fmt_bytes(result.min_cap_bytes)}, all resident {fmt_bytes(result.all_resident_cap_bytes)}\n\n")
+              f"{fmt_bytes(result.slot_bytes)}, smallest cap {smallest}, all resident {fmt_bytes(result.all_resident_cap_bytes)}\n\n")
     if rec is not None:
-        top = sorted(cands, key=lambda x: -x[1].tok_s)
+        top = _rows(cands, L, result.experts)
         rows = [[lab, ",".join(map(str, pr.slots)), pr.policy, f"{pr.prefetch}x{pr.lookahead}" if pr.prefetch else "off",
-                 pct(pr.hit_rate), pct(pr.stall_share), f"{pr.tok_s:.0f}"] for lab, pr in top[:12]]
-        out.write(f"cap {fmt_bytes(doc['mem_cap_bytes'])}: {doc['slots_total']} slots; best {min(12, len(top))} of {len(top)} settings\n")
+                 pct(pr.hit_rate), pct(pr.stall_share), speed(pr.tok_s)] for lab, pr in top[:12]]
+        out.write(f"cap {fmt_bytes(doc['mem_cap_bytes'])}: {doc['slots_total']} slots; best {min(12, len(top))} of {len(top)} "
+                  f"settings ({len(cands)} searched; the same setting with the same prediction shown once)\n")
         out.write(table(["split", "slots", "policy", "prefetch", "hit rate", "stall", "tok/s"], rows, "lllllrr") + "\n")
         how = "one shared pool" if rec.shared else f"{rec_label} split {','.join(map(str, rec.slots))}"
         out.write(f"recommended: {how}, --evict {rec.policy}, "
                   + (f"--prefetch {rec.prefetch} --lookahead {rec.lookahead}" if rec.prefetch else "no prefetch")
-                  + f": {rec.tok_s:.0f} tok/s predicted, {pct(rec.stall_share)} stalled\n\n")
+                  + f": {speed(rec.tok_s)} tok/s predicted, {pct(rec.stall_share)} stalled"
+                  + f" (ties within {100 * TIE:g}% go to the simpler setting)\n")
+        if args.shared_pool:
+            out.write(_shared_line(result) + "\n")
+        out.write("\n")
         sc = doc["split_comparison"]
-        rows = [[str(layer), sc["even"]["slots"][layer], pct(sc["even"]["per_layer_hit_rate"][layer]),
-                 sc["uneven"]["slots"][layer], pct(sc["uneven"]["per_layer_hit_rate"][layer])] for layer in range(L)]
-        rows.append(["hits", sum(sc["even"]["slots"]), sc["even"]["hits"], sum(sc["uneven"]["slots"]), sc["uneven"]["hits"]])
-        out.write(f"even against uneven split ({sc['policy']}, no prefetch):\n")
-        out.write(table(["layer", "even slots", "hit rate", "uneven slots", "hit rate"], rows) + "\n\n")
+        if sc is not None:
+            rows = [[str(layer), sc["even"]["slots"][layer], pct(sc["even"]["per_layer_hit_rate"][layer]),
+                     sc["uneven"]["slots"][layer], pct(sc["uneven"]["per_layer_hit_rate"][layer])] for layer in range(L)]
+            rows.append(["hits", sum(sc["even"]["slots"]), sc["even"]["hits"], sum(sc["uneven"]["slots"]), sc["uneven"]["hits"]])
+            out.write(f"even against uneven split ({sc['policy']}, no prefetch):\n")
+            out.write(table(["layer", "even slots", "hit rate", "uneven slots", "hit rate"], rows) + "\n\n")
     curve = doc["curve"]["points"]
     rows = [[fmt_bytes(p["cap_bytes"]), p["slots_total"], "shared" if p["shared"] else ",".join(map(str, p["slots"])),
-             f"{p['prefetch']}" if p["prefetch"] else "off", pct(p["stall_share"]), f"{p['tok_s']:.0f}"] for p in curve]
+             f"{p['prefetch']}" if p["prefetch"] else "off", pct(p["stall_share"]), speed(p["tok_s"])] for p in curve]
     out.write(f"predicted decode speed against cap ({doc['curve']['policy']}):\n")
     out.write(table(["cap", "slots", "split", "prefetch", "stall", "tok/s"], rows) + "\n")
     if args.target is not None:
@@ -88,4 +165,4 @@ def _text(out, args, result) -> None:
         if t["reachable"]:
             out.write(f"target {args.target:g} tok/s: smallest cap {fmt_bytes(t['smallest_cap_bytes'])} ({t['smallest_cap_bytes']} bytes)\n")
         else:
-            out.write(f"target {args.target:g} tok/s is out of reach: at most {t['best_tok_s']:.0f} tok/s with every expert resident\n")
+            out.write(f"target {args.target:g} tok/s is out of reach: at most {speed(t['best_tok_s'])} tok/s with every expert resident\n")
