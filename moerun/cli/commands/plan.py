@@ -32,7 +32,7 @@ def add_arguments(p) -> None:
 
 
 def run(args) -> int:
-    prog = Progress("plan", enabled=None if not args.json else False)
+    prog = Progress("plan")
     try:
         result = plan(args.model, args.mem_cap, target=args.target, link_speed=args.link_speed, probe=args.probe,
                       regime=args.regime, trace=args.trace, max_tokens=args.max_tokens, shape=args.shape,
