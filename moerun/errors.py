@@ -37,6 +37,12 @@ class PageInError(MoerunError):
     """Reading an expert from storage failed (I/O error, file changed under us)."""
 
 
+class ModelFileChanged(PageInError):
+    """The opened model file was written to during the run (rewritten in place: its size, modification or
+    change time moved since it was opened): what was computed from it cannot be trusted.  A file renamed
+    over the path is another file and changes nothing (the open descriptor keeps the one opened)."""
+
+
 class OutputError(MoerunError):
     """An output that cannot or must not be written: a destination that is not ours to replace, a missing
     parent directory, a full disk, a read-only file system.  Not a bad option: the same command may work

@@ -39,7 +39,7 @@ from conftest import ROOT, copy_model, edit_config, reader_processes
 
 import moerun
 from moerun.cli import main as cli
-from moerun.errors import BadOption, PageInError
+from moerun.errors import BadOption, ModelFileChanged, PageInError
 from moerun.files.modelfile import read_header
 from moerun.files.trace import read_trace
 from moerun.makers.synthetic import synth_config, write_model
@@ -301,7 +301,9 @@ def test_read_that_fails_mid_run_raises_page_in_error_and_stops_cleanly(model, r
 
     err, fired, trace, proc = _within(WATCHDOG_S, run)
     assert fired
-    assert phrase in str(err) and "expert" in str(err) and "layer" in str(err)
+    # a read on the compute thread meets the broken file first, or, when the rest of the pass had only
+    # the reader's reads, the store's check after the pass (the descriptor names another file, or a shorter one)
+    assert (phrase in str(err) and "expert" in str(err) and "layer" in str(err)) or isinstance(err, ModelFileChanged)
     assert proc.poll() is not None and len(reader_processes()) == before
     # the routing recorded before the failure is the start of the complete run's routing
     assert trace.meta["partial"] is True
@@ -467,7 +469,8 @@ def test_generate_whose_read_fails_mid_run_exits_2_with_one_line_and_a_partial_t
     assert code == 2
     assert out == ""  # --json prints its document only at the end
     lines = err.strip().splitlines()
-    assert len(lines) == 1 and lines[0].startswith("moerun generate: ") and phrase in lines[0]
+    assert len(lines) == 1 and lines[0].startswith("moerun generate: ")
+    assert phrase in lines[0] or "the model file changed while this run was using it" in lines[0]  # or the check after the pass
     assert "Traceback" not in err
     _assert_partial_prefix(trace_path, cli_reference["trace"])
 

@@ -22,6 +22,10 @@ def entry() -> None:
         _stopped_loading(e)
     except Exception as e:  # a library's import may wrap an interruption in an ImportError
         stop = e.__context__ if isinstance(e.__context__, KeyboardInterrupt) else None
+        if stop is None and stopping:  # the chain was cut, but a signal came
+            from moerun.errors import Terminated
+
+            stop = Terminated() if stopping[0] == _signal.SIGTERM else KeyboardInterrupt()
         if stop is None:
             raise
         _stopped_loading(stop)

@@ -409,6 +409,8 @@ def run_process(stopping: list) -> None:
         code = _stopped(e, None)
     except Exception as e:  # numpy's import turns an interruption inside it into an ImportError
         cause = _raised_while_interrupted(e)
+        if cause is None and stopping:  # the chain was cut (a C extension's import), but a signal came
+            cause = Terminated() if stopping[0] == signal.SIGTERM else KeyboardInterrupt()
         if cause is None:
             raise
         code = _stopped(cause, None)

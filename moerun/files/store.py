@@ -27,7 +27,7 @@ from pathlib import Path
 
 import numpy as np
 
-from moerun.errors import BadModelFile, BadOption, PageInError
+from moerun.errors import BadModelFile, BadOption, ModelFileChanged, PageInError
 from moerun.files.codec import Codec, codec_for, packed_dense_tensors
 from moerun.files.config import ModelConfig, expert_tensor_name
 from moerun.files.modelfile import NUMPY_DTYPES, Header, TensorInfo, expert_span, read_header
@@ -39,6 +39,13 @@ PAGE = mmap.PAGESIZE
 # (fault_around_bytes, default 64 KiB; a multiple of the page size).
 FAULT_AROUND = max(PAGE, 64 * 1024)
 MECHANISMS = ("pread", "mmap")
+
+
+def file_stamp(st: os.stat_result) -> tuple[int, int, int, int, int, int]:
+    """What identifies an opened file and moves when anything writes to it: device and inode, size,
+    modification time, change time (which the kernel sets on every write, and also when a writer puts the
+    modification time back with ``utime``), and the link count (whose changes move the change time too)."""
+    return st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns, st.st_ctime_ns, st.st_nlink
 
 
 @dataclass(frozen=True)
@@ -190,6 +197,7 @@ class ModelStore:
         # reader process reads, when it is handed over.  Raising fails that read.
         self.fault_hook = None
         self._fd = os.open(self.path, os.O_RDONLY)
+        self._stamp = file_stamp(os.fstat(self._fd))  # the file as opened (check_unchanged)
         self._map: mmap.mmap | None = None
         self._map_addr = 0
         self.dense: dict[str, np.ndarray] = {}
@@ -231,7 +239,45 @@ class ModelStore:
         data = os.pread(self._fd, nbytes, start)
         if len(data) != nbytes:
             raise BadModelFile(f"{self.path}: file ended early (changed while open?)")
+        self.check_unchanged()
         return data
+
+    def check_unchanged(self) -> None:
+        """ModelFileChanged if the opened file has been written to since it was opened.
+
+        One ``fstat`` of the open descriptor (about a microsecond), compared with ``file_stamp`` at opening.
+        Called after every read (a read that returned rewritten bytes ran after the write, and the write had
+        already moved the change time) and by the engine after every forward pass (which covers the reader
+        process's reads: they were done before the pass ended).  A new file renamed over the path changes
+        nothing here: the descriptor keeps the file that was opened, whose link count alone changes.
+        Other changes of the file's status also move its change time (chmod, chown, renaming the file
+        itself) and are taken for a change: a run is stopped rather than trusted.  (On a kernel with coarse timestamps, a rewrite of the same size within one clock tick, a few
+        milliseconds, of the file's previous change would leave both times as they were.)
+        """
+        if self._fd < 0:
+            return
+        try:
+            now = file_stamp(os.fstat(self._fd))
+        except OSError as e:
+            raise PageInError(f"{self.path}: cannot check the file ({e.strerror or e})") from None
+        was = self._stamp
+        if now == was:
+            return
+        if now[:4] == was[:4] and now[5] != was[5]:
+            # only its links changed (a new file renamed over the path unlinks this one; a hard link was made
+            # or removed): the change time moved with them, and no byte did
+            self._stamp = now
+            return
+        if now[:2] != was[:2]:
+            what = "its descriptor now names another file"
+        elif now[2] != was[2]:
+            what = f"{was[2]:,} bytes when opened, {now[2]:,} now"
+        else:
+            what = "rewritten in place: the same size, but its modification or change time moved"
+        raise ModelFileChanged(
+            f"{self.path}: the model file changed while this run was using it ({what}); results computed from it "
+            f"cannot be trusted. Replace a model by renaming a new file over it, never by writing into it"
+        )
 
     def _load_dense(self) -> None:
         packed = packed_dense_tensors(self.config)
@@ -351,6 +397,7 @@ class ModelStore:
         except OSError as e:
             raise PageInError(f"{self.path}: reading expert {expert} of layer {layer} failed ({e.strerror or e})") from None
         ns = time.monotonic_ns() - t0
+        self.check_unchanged()  # after the read: a write that reached the bytes read had moved the stamp first
         if self.cold_reads:
             if drop_problem() is None:
                 with contextlib.suppress(OSError):  # advice only: a refused drop leaves a warm read, not a wrong one

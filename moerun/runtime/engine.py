@@ -169,6 +169,7 @@ class Engine:
         ids = self._check_ids(token_ids)
         self.experts.begin_step(-1)
         x = self.model.forward(ids, 0, self.cache, self.experts, self.routing, self._observer())
+        self.store.check_unchanged()
         return self._finite(self.model.logits(x))
 
     def generate(
@@ -199,6 +200,7 @@ class Engine:
         observer = self._observer()
         self.experts.begin_step(-1)
         x = self.model.forward(ids, 0, self.cache, self.experts, self.routing, observer)
+        self.store.check_unchanged()  # after every pass: the reader process's reads too were done before it ended
         logits = self._finite(self.model.logits(x[-1:])[0])
         prefill_ns = time.monotonic_ns() - t0
         self.memwatch.sample()
@@ -223,6 +225,7 @@ class Engine:
             self.experts.begin_step(self._step_clock)
             self._step_clock += 1  # never repeats across generations, so stale guesses stay stale
             x = self.model.forward(np.array([tok]), pos, self.cache, self.experts, self.routing, observer)
+            self.store.check_unchanged()
             logits = self._finite(self.model.logits(x)[0])
             decode_ns += time.monotonic_ns() - t1
             steps += 1

@@ -10,7 +10,7 @@ from __future__ import annotations
 import sys
 
 from moerun.cli import main as cli
-from moerun.cli.report import emit_json
+from moerun.cli.report import Progress, emit_json
 from moerun.cli.summary import cap_warning, model_note, run_json, run_text
 from moerun.errors import BadOption
 from moerun.files.fileio import check_output
@@ -57,6 +57,7 @@ def run(args) -> int:
     def on_token(tok: int) -> None:
         nonlocal shown
         new.append(tok)
+        progress.update(len(new), "tokens")
         if not stream:
             return
         show_prompt()  # only once prefill succeeded: a prompt the model refuses is never echoed
@@ -72,10 +73,13 @@ def run(args) -> int:
         if args.trace:
             engine.start_trace()
         partial = True
+        # under --json nothing streams: progress lines say the run is alive (otherwise the text is its progress)
+        progress = Progress("generate", args.max_new, enabled=None if args.json else False)
         try:
             gen = engine.generate(prompt, max_new=args.max_new, sampling=sampling, on_token=on_token)
             partial = False
         finally:
+            progress.close()
             if args.trace and engine.recorder is not None:
                 write_trace(args.trace, engine.finish_trace(partial=partial, extra={"text": "generate"}),
                             force=args.force, inputs=inputs, what="--trace")

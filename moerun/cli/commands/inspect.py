@@ -8,7 +8,7 @@ from pathlib import Path
 from moerun.checks.contents import check_digests, check_files, describe  # noqa: F401 (their names here before)
 from moerun.checks.jobs import inspect
 from moerun.cli import main as cli
-from moerun.cli.report import emit_json, table
+from moerun.cli.report import Progress, emit_json, table
 from moerun.units import fmt_bytes
 
 HELP = "show a model's config, tensors, expert sizes and file layout; checks every file of the directory; --check verifies digests"
@@ -84,7 +84,11 @@ def _write_text(doc: dict, c, name: str, all_tensors: bool, out) -> None:
 
 
 def run(args) -> int:
-    result = inspect(args.model, check=args.check)
+    progress = Progress("inspect --check" if args.check else "inspect")  # reading digests of a large file takes a while
+    try:
+        result = inspect(args.model, check=args.check)
+    finally:
+        progress.close()
     doc = result.to_json()
     if args.json:
         emit_json(doc)

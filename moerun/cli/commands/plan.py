@@ -36,12 +36,10 @@ def add_arguments(p) -> None:
 
 
 def run(args) -> int:
-    prog = Progress("plan", enabled=None if not args.json else False)
+    prog = Progress("plan")
 
     def notice(line: str) -> None:  # one line on stderr, whatever stderr is and with --json too
-        prog.close()  # (clears the progress line, if there is one; it comes back with the next update)
-        sys.stderr.write(f"moerun plan: {line}\n")
-        sys.stderr.flush()
+        prog.note(f"moerun plan: {line}")
 
     try:
         result = plan(args.model, args.mem_cap, target=args.target, link_speed=args.link_speed, probe=args.probe,

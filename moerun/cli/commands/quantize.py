@@ -30,7 +30,7 @@ def add_arguments(p) -> None:
 
 
 def run(args) -> int:
-    progress = Progress("quantizing experts", enabled=None if not args.json else False)
+    progress = Progress("quantizing experts")
     command = "moerun " + shlex.join(sys.argv[1:]) if sys.argv and sys.argv[0].endswith(("moerun", "__main__.py")) else None
 
     def on_progress(done: int, total: int) -> None:

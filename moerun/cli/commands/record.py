@@ -34,7 +34,7 @@ def _summary_text(doc: dict, window_tokens: int) -> str:
 
 
 def run(args) -> int:
-    prog = Progress("record", enabled=None if not args.json else False)
+    prog = Progress("record")
 
     def report(done: int, total: int, routed: int) -> None:
         prog.total = total

@@ -169,7 +169,7 @@ def run(args) -> int:
             check_output(args.plot, args.force, [args.trace], "--plot")
             require_matplotlib()
 
-    prog = Progress("replay", enabled=None if not args.json else False)
+    prog = Progress("replay")
     try:
         result = replay(args.trace, args.evict, args.slots, shared_pool=args.shared_pool, prefetch=args.prefetch,
                         lookahead=args.lookahead, expert_bytes=args.expert_bytes, seed=args.seed,

@@ -26,7 +26,7 @@ def add_arguments(p) -> None:
 def run(args) -> int:
     kwargs = cli.engine_kwargs(args)
     model_dir = kwargs.pop("model_dir")
-    progress = Progress("scoring", enabled=None if not args.json else False)
+    progress = Progress("scoring")
 
     def report(done: int, total: int) -> None:
         progress.total = total

@@ -46,7 +46,7 @@ def _write_text(outcomes, n_prompts: int, max_new: int, synthetic: bool, ok: boo
 
 def run(args) -> int:
     cli.check_memory_options(args)
-    prog = Progress("verify", enabled=None if not args.json else False)
+    prog = Progress("verify")
     try:
         result = verify(args.model, args.prompt, prompt_file=args.prompt_file, prompts=args.prompts, max_new=args.max_new,
                         temperature=args.temperature, top_p=args.top_p, seed=args.seed,
