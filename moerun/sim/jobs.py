@@ -19,7 +19,6 @@ from moerun.errors import BadInput, BadOption
 from moerun.files.bundled import resolve_model
 from moerun.files.fileio import check_output
 from moerun.files.trace import Trace, read_trace, write_trace
-from moerun.model.tokenizer import read_text_file
 from moerun.runtime.options import load
 from moerun.sim.report import DEFAULT_POLICIES, parse_policies, parse_slots, run_replay
 from moerun.units import parse_size
@@ -200,10 +199,10 @@ def record(trace: str | os.PathLike, model_dir: str | os.PathLike | None = None,
     except OSError:
         inputs = [text_path]
     check_output(trace, force, inputs, "--trace")
-    body = read_text_file(text_path)
     with load(model_dir) as engine:
         c = engine.config
-        ids = engine.tokenizer.encode_array(body, max_tokens).tolist()
+        # read and encoded only as far as max_tokens needs, before any window is routed
+        ids = engine.tokenizer.encode_file(text_path, max_tokens).tolist()
         if not ids:
             raise BadInput(f"{text_path}: no tokens to route (the text is empty)")
         wins = windows(ids, c.max_seq_len, c.bos_token_id)
