@@ -394,13 +394,16 @@ def run_process(stopping: list) -> None:
     """The rest of the process entry point (``moerun.cli.entry``, which installed the signal handlers: the
     first SIGINT raises KeyboardInterrupt, the first SIGTERM ``Terminated``, later ones are ignored while
     that one unwinds, so a command's clean-up runs to the end)."""
-    one_blas_thread()  # first: the commands import numpy only after this
     try:
+        one_blas_thread()  # first: the commands import numpy only after this
         code = main()
     except KeyboardInterrupt as e:  # before a command started
         code = _stopped(e, None)
     except Exception as e:  # numpy's import turns an interruption inside it into an ImportError
         cause = _raised_while_interrupted(e)
+        if cause is None and stopping:  # one that drops the interruption from its chain: "PyCapsule_Import
+            # could not import module datetime" when the signal lands in numpy's C start-up
+            cause = Terminated() if stopping[0] == signal.SIGTERM else KeyboardInterrupt()
         if cause is None:
             raise
         code = _stopped(cause, None)
