@@ -116,3 +116,18 @@ def test_a_text_valid_where_it_is_read_and_invalid_past_max_tokens_is_scored(sma
     assert doc["code"] == 0, err
     doc, err, _ = _run("score", "--model", small_model, "--text", p, "--json")
     assert doc["code"] == 2 and err.strip().splitlines() == [err.strip()] and "not UTF-8" in err and doc["out"] == ""
+    trace = tmp_path / "t.npz"
+    doc, err, _ = _run("record", "--model", small_model, "--text", p, "--trace", trace, "--json")
+    assert doc["code"] == 2 and err.strip().splitlines() == [err.strip()] and "not UTF-8" in err and doc["out"] == ""
+    assert not trace.exists() and list(tmp_path.iterdir()) == [p]  # no trace, partial or whole, and no temporary
+
+
+def test_a_huge_prompt_given_to_the_engine_is_refused_without_encoding_it_whole(small_model):
+    import moerun
+    from moerun.errors import BadOption
+
+    with moerun.load(small_model) as eng:
+        t0 = time.monotonic()
+        with pytest.raises(BadOption, match="^at least [0-9]+ tokens exceed the model's context of 64$"):
+            eng.generate("stone river " * 3_000_000, max_new=1)
+        assert time.monotonic() - t0 < 10

@@ -195,6 +195,14 @@ def test_the_longest_token_bound_comes_from_the_vocabulary(request, which):
     want = max([_byte_level_bytes(t) for t in tok._tok.get_vocab(with_added_tokens=False) if t not in added]
                + [len(a.encode("utf-8")) for a in added])
     assert tok.longest_token_bytes == want
+    # the text that comes closest to the bound: the longest tokens' own bytes, over and over
+    from tokenizers import decoders
+
+    longest = max((t for t in tok._tok.get_vocab(with_added_tokens=False) if t not in added), key=len)
+    raw = decoders.ByteLevel().decode([longest]).encode("utf-8", "surrogatepass")
+    for text in ((raw * 50).decode("utf-8", "replace"), "<doc>" * 50):
+        n = len(tok.encode(text, bos=False))
+        assert n * tok.longest_token_bytes >= len(text.encode("utf-8"))
 
 
 TRICKY = ["Grüße aus Köln — naïve café", "日本語のテキスト", "🦔🚀 e\u0301", "<doc>", " ", "  ", "\n", "\t", ". ", "x" * 300,
