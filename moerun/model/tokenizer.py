@@ -70,12 +70,18 @@ class Tokenizer:
             self._exact_pieces = False
         self.longest_token_bytes = self._longest_token_bytes() if self._exact_pieces else None
 
-    def _longest_token_bytes(self) -> int:
+    def _longest_token_bytes(self) -> int | None:
         """The most bytes of text one token stands for, from the vocabulary: a byte-level token's characters
         are one byte each (the ByteLevel alphabet); an added token is its content, matched in the text as
-        it is written.  A text of B bytes therefore has at least B / this many tokens."""
+        it is written.  A text of B bytes therefore has at least B / this many tokens, provided every byte
+        has a token (else a byte could vanish: None, no bound)."""
+        from tokenizers import pre_tokenizers
+
+        vocab = self._tok.get_vocab(with_added_tokens=False)
+        if not all(ch in vocab for ch in pre_tokenizers.ByteLevel.alphabet()):
+            return None
         added = {t.content for t in self._tok.get_added_tokens_decoder().values()}
-        byte_level = (len(t) for t in self._tok.get_vocab(with_added_tokens=False) if t not in added)
+        byte_level = (len(t) for t in vocab if t not in added)
         return max(max(byte_level, default=1), max((len(a.encode("utf-8")) for a in added), default=1))
 
     @property
