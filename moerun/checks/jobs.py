@@ -196,10 +196,11 @@ def verify(model_dir: str | os.PathLike | None = None, prompt: str | None = None
     store.close()
     tok = Tokenizer.load(model_dir, c.vocab_size, c.bos_token_id)
     if prompt is not None or prompt_file:
-        text = read_text_file(prompt_file) if prompt_file else prompt
-        ids = [tok.encode(text)]
-        if len(ids[0]) > c.max_seq_len:  # refused as generate refuses it: a cut prompt is not the one asked about
-            raise BadOption(f"{len(ids[0])} tokens exceed the model's context of {c.max_seq_len}")
+        # refused as generate refuses it (a cut prompt is not the one asked about), read only as far as the context
+        if prompt_file:
+            ids = [tok.encode_prompt(context=c.max_seq_len, path=prompt_file)[1]]
+        else:
+            ids = [tok.encode_prompt(prompt, c.max_seq_len)[1]]
         # a generation stops when the context is full: report the tokens that are compared, no more
         max_new = min(max_new, c.max_seq_len - len(ids[0]))
     else:
@@ -286,13 +287,15 @@ def score(model_dir: str | os.PathLike | None = None, text: str | os.PathLike | 
             text_path = model_dir / "heldout.txt"
             if not text_path.exists():
                 raise BadInput(f"{model_dir} has no heldout.txt; name a text with --text FILE")
-        body = read_text_file(text_path)
+        if max_tokens is not None and (isinstance(max_tokens, bool) or not isinstance(max_tokens, int) or max_tokens < 1):
+            raise BadOption(f"--max-tokens must be a whole number of at least 1, got {max_tokens!r}")
         c = engine.config
-        ids = engine.tokenizer.encode_array(body, max_tokens)
+        # read and encoded only as far as max_tokens needs; the ids kept take 4 bytes a token
+        ids = engine.tokenizer.encode_file(text_path, max_tokens)
         bos = None if plain_windows else c.bos_token_id
         total = n_windows(ids.size, c.max_seq_len, bos)
         on_window = (lambda done: progress(done, total)) if progress is not None else None
-        result = score_text(engine, body, max_tokens, on_window=on_window, plain=plain_windows, ids=ids)
+        result = score_text(engine, None, max_tokens, on_window=on_window, plain=plain_windows, ids=ids)
         engine.memwatch.sample()
         st = engine.stats
         pool = st.get("pool") or {}

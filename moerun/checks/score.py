@@ -2,7 +2,8 @@
 
 The scoring rule (docs/guide/quant.md, "Scoring"):
 
-* ``ids = tokenizer.encode(text)`` without a leading bos token (``encode_array``: the same ids).
+* ``ids = tokenizer.encode(text)`` without a leading bos token (``encode_array``, and ``encode_file``
+  for a file read only as far as ``max_tokens`` needs: the same ids).
 * The ids are cut into consecutive runs of ``max_seq_len - 1`` tokens (the
   last run may be shorter); each window is ``[bos] + run``, so every window
   fits the context and every token of the text is predicted exactly once.
@@ -21,9 +22,10 @@ same rule inside each, so a test can feed recorded reference windows.
 
 from __future__ import annotations
 
+import itertools
 import math
 import time
-from collections.abc import Callable, Iterable, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -89,14 +91,23 @@ def window_nll(logits: np.ndarray, ids: np.ndarray) -> tuple[float, int]:
 
 def text_windows(ids: Sequence[int] | np.ndarray, context: int, bos: int | None) -> list[np.ndarray]:
     """Cut a token stream into scoring windows (the rule in the module docstring)."""
-    ids = np.asarray(ids, np.int64).reshape(-1)
+    return list(iter_windows(ids, context, bos))
+
+
+def iter_windows(ids: Sequence[int] | np.ndarray, context: int, bos: int | None) -> Iterator[np.ndarray]:
+    """text_windows one at a time: only the window being scored is made (int64, the engine's ids)."""
+    ids = np.asarray(ids).reshape(-1)
     if context < 2:
         raise BadOption(f"a context of {context} tokens leaves nothing to predict")
     if bos is None:
-        return [ids[i : i + context] for i in range(0, ids.size, context) if ids[i : i + context].size >= 2]
+        for i in range(0, ids.size, context):
+            if ids[i : i + context].size >= 2:
+                yield ids[i : i + context].astype(np.int64)
+        return
     run = context - 1
     head = np.array([bos], np.int64)
-    return [np.concatenate([head, ids[i : i + run]]) for i in range(0, ids.size, run)]
+    for i in range(0, ids.size, run):
+        yield np.concatenate([head, ids[i : i + run].astype(np.int64)])
 
 
 def score_windows(engine, windows: Iterable, on_window: Callable[[int], None] | None = None) -> Score:
@@ -133,10 +144,12 @@ def score_text(engine, text: str, max_tokens: int | None = None, on_window=None,
     if max_tokens is not None:
         ids = ids[:max_tokens]
     c = engine.config
-    windows = text_windows(ids, c.max_seq_len, None if plain else c.bos_token_id)
-    if not windows:
+    bos = None if plain else c.bos_token_id
+    windows = iter_windows(ids, c.max_seq_len, bos)
+    first = next(windows, None)
+    if first is None:
         raise BadInput("the text has too few tokens to score")
-    return score_windows(engine, windows, on_window)
+    return score_windows(engine, itertools.chain([first], windows), on_window)
 
 
 def n_windows(n_tokens: int, context: int, bos: int | None) -> int:

@@ -202,12 +202,20 @@ def model_files(model_dir) -> list:
         return []
 
 
-def read_prompt(args) -> str:
-    from moerun.model.tokenizer import read_text_file
+def check_prompt_file(args) -> None:
+    """A --prompt-file that is missing, not a regular file or too large: refused before the model loads."""
+    from moerun.files.fileio import TEXT_LIMIT, open_regular
 
     if getattr(args, "prompt_file", None):
-        return read_text_file(args.prompt_file)
-    return args.prompt if args.prompt is not None else ""
+        open_regular(args.prompt_file, BadInput, "file", limit=TEXT_LIMIT).close()
+
+
+def read_prompt(args, tokenizer, context: int) -> tuple[str, list[int]]:
+    """The prompt's text and ids (--prompt or --prompt-file), read and encoded only as far as ``context``
+    tokens reach: a prompt that does not fit is refused (BadOption) without reading or encoding it whole."""
+    if getattr(args, "prompt_file", None):
+        return tokenizer.encode_prompt(context=context, path=args.prompt_file)
+    return tokenizer.encode_prompt(args.prompt if args.prompt is not None else "", context)
 
 
 # ---------------------------------------------------------------------- main
@@ -402,8 +410,8 @@ def run_process(stopping: list) -> None:
     """The rest of the process entry point (``moerun.cli.entry``, which installed the signal handlers: the
     first SIGINT raises KeyboardInterrupt, the first SIGTERM ``Terminated``, later ones are ignored while
     that one unwinds, so a command's clean-up runs to the end)."""
-    one_blas_thread()  # first: the commands import numpy only after this
     try:
+        one_blas_thread()  # first: the commands import numpy only after this
         code = main()
     except KeyboardInterrupt as e:  # before a command started
         code = _stopped(e, None)

@@ -2,22 +2,27 @@
 
 from __future__ import annotations
 
+import codecs
 import json
+import os
+from collections.abc import Iterable, Iterator
 from pathlib import Path
 
 import numpy as np
 
-from moerun.errors import BadInput, BadModelFile
-from moerun.files.fileio import read_user_file
+from moerun.errors import BadInput, BadModelFile, BadOption
+from moerun.files.fileio import TEXT_LIMIT, open_regular, read_user_file
 
 TOKENIZER_LIMIT = 256 << 20  # bytes of a tokenizer.json (large published vocabularies take about 10-20 MB)
 CHUNK_CHARS = 4096  # long texts are encoded in pieces of about this many characters (see Tokenizer.encode)
+READ_BYTES = 1 << 16  # a text file is read and decoded this many bytes at a time (read_text_chunks)
 
 
 def _pieces_are_exact(doc: dict) -> bool:
     """Whether encoding a text piece by piece, cut before a space between two non-space characters, gives the
     ids of encoding it whole: true for byte-level BPE with the regex pre-tokenizer, no normalizer and no prefix
-    space (the space then always opens the next pre-token; common practice, no source; tests check it)."""
+    space (the space then always opens the next pre-token; common practice, no source; tests check it).  An added
+    token holding a space could straddle such a cut: a tokenizer with one is encoded whole."""
     pre = doc.get("pre_tokenizer") or {}
     model = doc.get("model") or {}
     return (
@@ -28,6 +33,7 @@ def _pieces_are_exact(doc: dict) -> bool:
         and model.get("type") == "BPE"
         and not model.get("dropout")
         and not doc.get("added_tokens_decoder")
+        and not any(any(ch.isspace() for ch in str(t.get("content", ""))) for t in doc.get("added_tokens") or [])
     )
 
 
@@ -62,6 +68,21 @@ class Tokenizer:
             self._exact_pieces = _pieces_are_exact(json.loads(text))
         except (ValueError, RecursionError, AttributeError):
             self._exact_pieces = False
+        self.longest_token_bytes = self._longest_token_bytes() if self._exact_pieces else None
+
+    def _longest_token_bytes(self) -> int | None:
+        """The most bytes of text one token stands for, from the vocabulary: a byte-level token's characters
+        are one byte each (the ByteLevel alphabet); an added token is its content, matched in the text as
+        it is written.  A text of B bytes therefore has at least B / this many tokens, provided every byte
+        has a token (else a byte could vanish: None, no bound)."""
+        from tokenizers import pre_tokenizers
+
+        vocab = self._tok.get_vocab(with_added_tokens=False)
+        if not all(ch in vocab for ch in pre_tokenizers.ByteLevel.alphabet()):
+            return None
+        added = {t.content for t in self._tok.get_added_tokens_decoder().values()}
+        byte_level = (len(t) for t in vocab if t not in added)
+        return max(max(byte_level, default=1), max((len(a.encode("utf-8")) for a in added), default=1))
 
     @property
     def vocab_size(self) -> int:
@@ -91,19 +112,109 @@ class Tokenizer:
     def encode_array(self, text: str, limit: int | None = None) -> np.ndarray:
         """The ids of ``text`` (no bos) as an int32 array, stopping after ``limit`` tokens: 4 bytes per token
         instead of a Python list's 36, and a long text's tail beyond the limit is never encoded."""
-        problem = text_problem(text)
-        if problem:
-            raise BadInput(f"the text is {problem}")
+        return self._collect(self._stream(_str_chunks(text)), limit)
+
+    def encode_file(self, path: str | os.PathLike, limit: int | None = None) -> np.ndarray:
+        """The ids of a UTF-8 text file (no bos) as an int32 array: the ids of ``encode_array`` on its whole
+        text, but read ``READ_BYTES`` at a time and only as far as the first ``limit`` tokens need (the file
+        is read up to the first place where the text can be cut after them).  Memory: 4 bytes a token kept,
+        plus the text not yet cut (a few pieces; all of a run without a cuttable space)."""
+        return self._collect(self._stream(read_text_chunks(path)), limit)
+
+    @staticmethod
+    def _collect(stream, limit: int | None) -> np.ndarray:
         parts: list[np.ndarray] = []
         n = 0
-        for piece in self._pieces(text):
-            if limit is not None and n >= limit:
-                break
-            a = np.asarray(self._tok.encode(piece, add_special_tokens=False).ids, np.int32)
-            parts.append(a)
-            n += a.size
+        try:
+            for ids, _ in stream:
+                parts.append(ids)
+                n += ids.size
+                if limit is not None and n >= limit:
+                    break
+        finally:
+            stream.close()
         ids = np.concatenate(parts) if parts else np.zeros(0, np.int32)
         return ids if limit is None else ids[:limit]
+
+    def encode_prompt(self, text: str | None = None, context: int = 0, *, path: str | os.PathLike | None = None,
+                      bos: bool = True) -> tuple[str, list[int]]:
+        """A prompt's text and ids (bos first), which must fit ``context`` tokens: ``text``, or the UTF-8 file
+        at ``path``, read and encoded only as far as needed to know.
+
+        BadOption as soon as the count passes the context: "N tokens exceed the model's context of C" when the
+        whole text was encoded, "at least N tokens ..." when it stopped early.  N also counts, for the text not
+        yet cut into pieces, its characters divided by ``longest_token_bytes`` (a token covers at most that
+        many bytes, a character at least one), so a run without spaces is refused without encoding it.
+        """
+        kept: list[str] = []
+
+        def keep(chunks):
+            for chunk in chunks:
+                kept.append(chunk)
+                yield chunk
+
+        chunks = read_text_chunks(path) if path is not None else _str_chunks(text or "")
+        head = [self.bos] if bos and self.bos is not None else []
+        parts: list[np.ndarray] = []
+        n = len(head)
+        longest = self.longest_token_bytes
+        stream = self._stream(keep(chunks))
+        try:
+            for ids, pending in stream:
+                parts.append(ids)
+                n += ids.size
+                least = n + (-(-pending // longest) if longest and pending else 0)
+                if least > context:
+                    some = "" if pending == 0 else "at least "  # pending is 0 only once the whole text is encoded
+                    raise BadOption(f"{some}{least} tokens exceed the model's context of {context}")
+        finally:
+            stream.close()
+            chunks.close()
+        ids = head + (np.concatenate(parts).tolist() if parts else [])
+        return ("".join(kept) if path is not None else (text or "")), ids
+
+    def _stream(self, chunks: Iterable[str]) -> Iterator[tuple[np.ndarray, int]]:
+        """Encode a text given in successive chunks: yields (int32 ids, characters given but not yet encoded)
+        after each chunk, then once more for the rest (0 characters left: only then).
+
+        The ids are exactly those of encoding the whole text: the text is cut only where ``_pieces`` would cut
+        it (a space between two non-space characters), the last such place in the text given so far, and what
+        lies before it is encoded in ``_pieces``.  A tokenizer that cannot be cut (``_pieces_are_exact``) gets
+        the whole text at the end.
+        """
+        empty = np.zeros(0, np.int32)
+        start = end = 0  # character offsets: the text from start to end is given but not encoded
+        pending: list[str] = []
+        tail = ""  # the last two characters given
+        for chunk in chunks:
+            if not chunk:
+                continue
+            problem = text_problem(chunk)
+            if problem:
+                raise BadInput(f"the text is {_shift(problem, end)}")
+            pending.append(chunk)
+            if not self._exact_pieces:
+                end += len(chunk)
+                yield empty, end - start
+                continue
+            window = tail + chunk  # cuts at end - 1 .. need the characters on both sides
+            base = end - len(tail)
+            cut = _last_cut(window, max(1, len(tail) - 1), len(window))
+            end += len(chunk)
+            tail = window[-2:]
+            ids = empty
+            if cut is not None and base + cut > start:
+                text = "".join(pending)
+                k = base + cut - start
+                pending = [text[k:]]
+                start = base + cut
+                ids = self._encode_pieces(text[:k])
+            yield ids, end - start
+        yield self._encode_pieces("".join(pending)), 0
+
+    def _encode_pieces(self, text: str) -> np.ndarray:
+        parts = [np.asarray(self._tok.encode(piece, add_special_tokens=False).ids, np.int32) for piece in self._pieces(text)]
+        return np.concatenate(parts) if parts else np.zeros(0, np.int32)
 
     def _pieces(self, text: str):
         if not self._exact_pieces or len(text) <= CHUNK_CHARS:
@@ -141,6 +252,47 @@ def _first_cut(text: str, lo: int, hi: int) -> int | None:
     while i != -1 and not _cuttable(text, i):
         i = text.find(" ", i + 1, hi)
     return None if i == -1 else i
+
+
+def _shift(problem: str, offset: int) -> str:
+    """text_problem's message for a chunk that starts ``offset`` characters into the text."""
+    head, _, rest = problem.rpartition("(character ")
+    return f"{head}(character {int(rest.rstrip(')')) + offset})" if head else problem
+
+
+def _str_chunks(text: str, size: int = READ_BYTES) -> Iterator[str]:
+    for i in range(0, len(text), size):
+        yield text[i : i + size]
+
+
+def read_text_chunks(path: str | os.PathLike, limit: int = TEXT_LIMIT) -> Iterator[str]:
+    """The text of a UTF-8 file the user named (a regular file, at most ``limit`` bytes), ``READ_BYTES`` at a
+    time: what is read is checked as it is decoded, and a reader that stops early never reads the rest.
+
+    Errors are read_text_file's (one line, BadInput), with the offset of a bad byte counted from the start
+    of the file; a character cut between two reads is decoded whole.
+    """
+    path = Path(path)
+    decoder = codecs.getincrementaldecoder("utf-8")("strict")
+    with open_regular(path, BadInput, "file", limit=limit) as f:
+        total = 0
+        while True:
+            try:
+                data = f.read(READ_BYTES)
+            except OSError as e:
+                raise BadInput(f"{path}: cannot read ({e.strerror or e})") from None
+            held = len(decoder.getstate()[0])
+            try:
+                text = decoder.decode(data, final=not data)
+            except UnicodeDecodeError as e:
+                raise BadInput(f"{path}: not UTF-8 text (bad byte at offset {total - held + e.start})") from None
+            total += len(data)
+            if total > limit:  # it grew while being read
+                raise BadInput(f"{path}: more than the {limit:,} bytes a file may hold")
+            if text:
+                yield text
+            if not data:
+                return
 
 
 def read_text_file(path: str | Path) -> str:

@@ -189,7 +189,8 @@ class Engine:
         if prompt_ids is None:
             if self.tokenizer is None:
                 raise BadOption("this engine has no tokenizer; pass prompt_ids")
-            prompt_ids = self.tokenizer.encode(prompt or "")
+            # encoded only as far as the context reaches: a prompt that cannot fit is refused without encoding it whole
+            prompt_ids = self.tokenizer.encode_prompt(prompt or "", self.config.max_seq_len)[1]
         if not prompt_ids:
             bos = self.config.bos_token_id
             prompt_ids = [bos if bos is not None else 0]

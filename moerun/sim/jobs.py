@@ -19,7 +19,6 @@ from moerun.errors import BadInput, BadOption
 from moerun.files.bundled import resolve_model
 from moerun.files.fileio import check_output
 from moerun.files.trace import Trace, read_trace, write_trace
-from moerun.model.tokenizer import read_text_file
 from moerun.runtime.options import load
 from moerun.sim.report import DEFAULT_POLICIES, parse_policies, parse_slots, run_replay
 from moerun.units import parse_size
@@ -105,13 +104,15 @@ def replay(trace: str | os.PathLike, evict: str | Sequence[str] = tuple(DEFAULT_
 _LIVE_ONLY = ("evict", "slots", "split", "prefetch", "lookahead", "link_speed_emulated")
 
 
-def windows(ids: list[int], max_seq_len: int, bos: int | None) -> list[list[int]]:
-    """Split text tokens into model-sized windows, each starting with bos when the model has one."""
+def windows(ids, max_seq_len: int, bos: int | None) -> list[np.ndarray]:
+    """Split text tokens (a list or an array) into model-sized windows, each starting with bos when the model
+    has one: int32 arrays, 4 bytes a token."""
     body = max_seq_len - 1 if bos is not None else max_seq_len
     if body < 1:
         raise BadOption(f"the model's context of {max_seq_len} tokens leaves no room for text after the bos token")
-    head = [bos] if bos is not None else []
-    return [head + ids[i : i + body] for i in range(0, len(ids), body)]
+    ids = np.asarray(ids, np.int32).reshape(-1)
+    head = np.array([bos] if bos is not None else [], np.int32)
+    return [np.concatenate([head, ids[i : i + body]]) for i in range(0, ids.size, body)]
 
 
 @dataclass
@@ -157,7 +158,7 @@ class RecordResult:
         }
 
 
-def _finished_trace(engine, wins: list[list[int]], done: int, text_path: Path) -> Trace:
+def _finished_trace(engine, wins: list[np.ndarray], done: int, text_path: Path) -> Trace:
     """The trace of the first ``done`` windows, as a file of routing only (partial if interrupted).
 
     A teacher-forced pass routes each token as decoding the text would, so every token replays as a decode
@@ -200,11 +201,11 @@ def record(trace: str | os.PathLike, model_dir: str | os.PathLike | None = None,
     except OSError:
         inputs = [text_path]
     check_output(trace, force, inputs, "--trace")
-    body = read_text_file(text_path)
     with load(model_dir) as engine:
         c = engine.config
-        ids = engine.tokenizer.encode_array(body, max_tokens).tolist()
-        if not ids:
+        # read and encoded only as far as max_tokens needs, before any window is routed
+        ids = engine.tokenizer.encode_file(text_path, max_tokens)
+        if not ids.size:
             raise BadInput(f"{text_path}: no tokens to route (the text is empty)")
         wins = windows(ids, c.max_seq_len, c.bos_token_id)
         engine.start_trace()

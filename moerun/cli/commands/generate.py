@@ -36,7 +36,7 @@ def add_arguments(p) -> None:
 def run(args) -> int:
     if args.max_new < 0:  # refuse before loading the model or echoing the prompt
         raise BadOption(f"--max-new must be zero or more, got {args.max_new}")
-    prompt = cli.read_prompt(args)
+    cli.check_prompt_file(args)  # read once the model (its tokenizer and context) is known
     inputs = cli.model_files(args.model) + ([args.prompt_file] if args.prompt_file else []) + ([args.routing] if args.routing else [])
     if args.trace:
         check_output(args.trace, args.force, inputs, "--trace")
@@ -70,13 +70,14 @@ def run(args) -> int:
 
     with engine:
         cli.check_against_model(args, engine.config)
+        prompt, prompt_ids = cli.read_prompt(args, engine.tokenizer, engine.config.max_seq_len)
         if args.trace:
             engine.start_trace()
         partial = True
         # under --json nothing streams: progress lines say the run is alive (otherwise the text is its progress)
         progress = Progress("generate", args.max_new, enabled=None if args.json else False)
         try:
-            gen = engine.generate(prompt, max_new=args.max_new, sampling=sampling, on_token=on_token)
+            gen = engine.generate(prompt_ids=prompt_ids, max_new=args.max_new, sampling=sampling, on_token=on_token)
             partial = False
         finally:
             progress.close()
