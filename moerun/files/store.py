@@ -247,7 +247,7 @@ class ModelStore:
 
         One ``fstat`` of the open descriptor (about a microsecond), compared with ``file_stamp`` at opening.
         Called after every read (a read that returned rewritten bytes ran after the write, and the write had
-        already moved the change time) and by the engine after every forward pass (which covers the reader
+        already moved the change time) and by the engine after every forward pass of a run with the reader (which covers the reader
         process's reads: they were done before the pass ended).  A new file renamed over the path changes
         nothing here: the descriptor keeps the file that was opened, whose link count alone changes.
         Other changes of the file's status also move its change time (chmod, chown, renaming the file
