@@ -28,6 +28,7 @@ from pathlib import Path
 import numpy as np
 
 from moerun.errors import BadModelFile, BadOption, ModelFileChanged, PageInError
+from moerun.files.ckpt_config import is_open_checkpoint
 from moerun.files.codec import Codec, codec_for, packed_dense_tensors
 from moerun.files.config import ModelConfig, expert_tensor_name
 from moerun.files.modelfile import NUMPY_DTYPES, Header, TensorInfo, expert_span, read_header
@@ -201,6 +202,7 @@ class ModelStore:
         self._map: mmap.mmap | None = None
         self._map_addr = 0
         self.dense: dict[str, np.ndarray] = {}
+        self.embed = None  # the embedding table is dense["embed"] (an open checkpoint's store reads rows on demand)
         self._dense_nbytes = 0
 
     # ---------------------------------------------------------------- opening
@@ -217,6 +219,11 @@ class ModelStore:
             raise BadModelFile(f"{model_dir}: no such model directory")
         if not model_dir.is_dir():
             raise BadModelFile(f"{model_dir}: not a directory (--model takes a model directory)")
+        if is_open_checkpoint(model_dir):  # the callers that take one open it with moerun.files.ckpt_store.open_store
+            raise BadModelFile(
+                f"{model_dir}: an open checkpoint (config.json names a model_type); this command does not run on "
+                "open checkpoints yet (generate, verify, inspect, record and score do)"
+            )
         config = ModelConfig.load(model_dir)
         header = read_header(model_dir / "model.safetensors")
         _check_dense_tensors(config, header)
