@@ -8,8 +8,9 @@ the checkpoint is converted or copied to disk.
 
 Orientation: the checkpoint stores matrices [out, in] and the model computes ``x @ w`` with ``w`` [in, out],
 so every matrix is handed over as the transposed *view* of its [out, in] array (BLAS reads it transposed; no
-transposed copy is made).  The embedding table is not held: its rows are read from the mapping when a token
-needs them (``EmbeddingRows``), unless the output matrix is tied to it.
+transposed copy is made).  The embedding table is not held: its rows are read from the shard when a token
+needs them (``EmbeddingRows``), unless the output matrix is tied to it.  Everything is read with ``os.preadv``:
+nothing of the checkpoint is mapped, so no page of it counts in the resident set.
 
 Not yet here (refused with one line where asked for): the prefetch reader process (an expert's spans lie in
 several places, and the reader reads one range), the ``mmap`` page-in mechanism, and keeping dense weights in
@@ -27,7 +28,7 @@ import numpy as np
 
 from moerun.errors import BadModelFile, BadOption, ModelFileChanged, PageInError
 from moerun.files import ckpt_tensors as names
-from moerun.files.checkpoint import Checkpoint, ExpertSpans, read_expert, widen_into
+from moerun.files.checkpoint import STORED_DTYPES, Checkpoint, ExpertSpans, preadv_exact, read_expert, widen_into
 from moerun.files.codec import Codec
 from moerun.files.config import ModelConfig
 from moerun.files.pagecache import drop_pages, drop_problem
@@ -67,18 +68,41 @@ class CheckpointCodec(Codec):
         return 0 if self._scratch is None else sum(s.nbytes for s in self._scratch)
 
 
+def read_f32(ck: Checkpoint, name: str, rows: tuple[int, int] | None = None) -> np.ndarray:
+    """Tensor ``name`` (or its rows [r0, r1)) widened to float32, read with ``os.preadv`` from its shard: no page
+    of the file is mapped, so nothing read stays in the resident set.  F32 is read straight into the result;
+    BF16 and F16 through a buffer of their own size."""
+    loc = ck.tensors[name]
+    t = loc.info
+    shape = t.shape
+    start = t.start
+    if rows is not None:
+        r0, r1 = rows
+        row_bytes = t.nbytes // shape[0]
+        start += r0 * row_bytes
+        shape = (r1 - r0, *shape[1:])
+    out = np.empty(shape, np.float32)
+    stored = out if t.dtype == "F32" else np.empty(shape, STORED_DTYPES[t.dtype])
+    try:
+        preadv_exact(ck.fds[loc.file], [memoryview(stored).cast("B")], start)
+    except (EOFError, OSError) as e:
+        why = "the file ended" if isinstance(e, EOFError) else f"a read failed ({e.strerror or e})"
+        raise PageInError(f"{ck.files[loc.file]}: {why} while reading tensor {name!r} (changed while open?)") from None
+    return out if stored is out else widen_into(stored, t.dtype, out)
+
+
 class EmbeddingRows:
-    """``rows[ids]`` -> float32 [len(ids), d_model]: the embedding rows of ``ids``, read from the checkpoint's
-    mapping (only the pages of those rows are touched) into a new array."""
+    """``rows[ids]`` -> float32 [len(ids), d_model]: the embedding rows of ``ids``, each read from the shard when
+    asked for (``read_f32``): the table is never held, and nothing read stays resident."""
 
     def __init__(self, checkpoint: Checkpoint):
         self.ck = checkpoint
-        self.width = checkpoint.config.hidden_size
+        self.vocab = checkpoint.tensors[names.EMBED].info.shape[0]
 
     def __getitem__(self, ids) -> np.ndarray:
         ids = np.atleast_1d(np.asarray(ids))
-        out = np.empty((len(ids), self.width), np.float32)
-        return self.ck.rows_f32(names.EMBED, ids.tolist(), out)
+        rows = [read_f32(self.ck, names.EMBED, (int(i), int(i) + 1)) for i in ids.tolist()]
+        return np.concatenate(rows) if rows else np.empty((0, self.ck.config.hidden_size), np.float32)
 
 
 def model_config(ck: Checkpoint, bos_token_id: int | None, context: int = DEFAULT_CONTEXT) -> ModelConfig:
@@ -117,6 +141,18 @@ def leading_special_id(tokenizer_path: Path | None) -> int | None:
     return None
 
 
+def pieces_of(spans: ExpertSpans) -> tuple[tuple[int, int, int, int], ...]:
+    """An expert's parts as (file, offset, nbytes, slot offset), in file order, neighbours in both joined."""
+    out: list[list[int]] = []
+    for p, at in sorted(zip(spans.parts, spans.dst_offsets), key=lambda x: (x[0].file, x[0].offset)):
+        last = out[-1] if out else None
+        if last is not None and last[0] == p.file and last[1] + last[2] == p.offset and last[3] + last[2] == at:
+            last[2] += p.nbytes
+        else:
+            out.append([p.file, p.offset, p.nbytes, at])
+    return tuple(tuple(x) for x in out)
+
+
 class CheckpointStore:
     """An opened, validated open checkpoint, serving the engine as a ``ModelStore`` does."""
 
@@ -132,6 +168,7 @@ class CheckpointStore:
                 if sp.dst_offsets != first.dst_offsets or [p.dtype for p in sp.parts] != [p.dtype for p in first.parts]:
                     raise BadModelFile(f"{ck.files[sp.gate.file]}: expert {sp.expert} is not laid out like the others")
         self.codec = CheckpointCodec(first)
+        self._pieces = [[pieces_of(sp) for sp in row] for row in self.spans]
         stored = first.nbytes
         # what a page-in reads; a slot (this rounded up to a page) must also hold the parts' alignment padding
         fits = -(-stored // _PAGE_ALIGN) * _PAGE_ALIGN >= first.slot_nbytes
@@ -159,7 +196,7 @@ class CheckpointStore:
         return store
 
     def _f32(self, name: str) -> np.ndarray:
-        a = self.checkpoint.tensor_f32(name)
+        a = read_f32(self.checkpoint, name)
         if not np.all(np.isfinite(a)):
             raise BadModelFile(f"{self.checkpoint.files[self.checkpoint.tensors[name].file]}: tensor {name!r} holds NaN or infinite values")
         return a
@@ -237,6 +274,16 @@ class CheckpointStore:
             )
 
     # ---------------------------------------------------------------- page-in
+    @property
+    def fds(self) -> tuple[int, ...]:
+        """The shards' open descriptors, as ``read_pieces`` numbers them."""
+        return self.checkpoint.fds
+
+    def read_pieces(self, layer: int, expert: int) -> tuple[tuple[int, int, int, int], ...]:
+        """How the reader process copies an expert: ((file, offset, nbytes, slot offset), ...), one per part,
+        parts contiguous in both the file and the slot joined (at most three)."""
+        return self._pieces[layer][expert]
+
     def set_mechanism(self, mechanism: str) -> None:
         if mechanism != "pread":
             raise BadOption(f"page-in mechanism {mechanism!r} is not available for an open checkpoint yet; use 'pread'")

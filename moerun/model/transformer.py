@@ -35,6 +35,10 @@ import numpy as np
 from moerun.files.config import ModelConfig
 
 F32 = np.float32
+# A prompt longer than this is run in passes of this many tokens: a pass's working memory (its attention scores
+# over every cached position, above all) grows with its length, and the budget counts one pass of it
+# (moerun.runtime.budget.scratch_bytes).  The bundled models' context is this long, so they run in one pass.
+PREFILL_CHUNK = 256
 
 
 # ---------------------------------------------------------------------------- math
@@ -317,9 +321,15 @@ class Transformer:
                 observer: StepObserver = NO_OBSERVER) -> np.ndarray:
         """Hidden states leaving the last layer for tokens at positions start.. (not yet normed).
 
-        ``routing`` defaults to the model's own routers (``own_routing``)."""
+        ``routing`` defaults to the model's own routers (``own_routing``).  More than PREFILL_CHUNK tokens are
+        run in passes of that many (each pass the expert source and the observer see as a pass of its own)."""
         if routing is None:
             routing = self.own_routing
+        if len(ids) > PREFILL_CHUNK:  # in passes, each over the cache the ones before it filled
+            return np.concatenate([
+                self.forward(ids[i : i + PREFILL_CHUNK], start + i, cache, experts, routing, observer)
+                for i in range(0, len(ids), PREFILL_CHUNK)
+            ])
         x = self.embed[ids]
         for b, layer in enumerate(self.routed_of):
             if layer is None:

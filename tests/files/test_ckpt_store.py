@@ -21,7 +21,6 @@ import pytest
 
 import moerun
 from moerun.cli import main as cli
-from moerun.errors import BadOption
 from moerun.files.ckpt_store import CheckpointStore, open_store
 from moerun.files.store import ModelStore
 from moerun.model.sampling import Sampling
@@ -206,9 +205,28 @@ def test_generate_runs_on_an_open_checkpoint_from_the_command_line(capsys):
     assert doc
 
 
-def test_prefetch_on_an_open_checkpoint_is_refused_in_one_line():
-    with pytest.raises(BadOption, match="open checkpoint"):
-        moerun.load(FIXTURES / "olmoe-f32", mem_cap="4MiB", prefetch=1)
+@pytest.mark.parametrize("variant", ["qwen2_moe-bf16-sharded-v4", "qwen3_moe-bf16-fused-sharded"])
+def test_prefetch_reads_an_open_checkpoints_spans_in_the_reader_process_bit_identically(variant):
+    ref = _ref(variant)
+    prompt = ref["tokens_2"].tolist()
+    resident = moerun.load(FIXTURES / variant)
+    caps = _caps(resident.store)
+    caps["shared"] = (caps["shared"] + resident.budget.total) // 2  # room beside the experts a layer pins
+    want = resident.generate(prompt_ids=prompt, max_new=16, sampling=Sampling(temperature=0.9, seed=5), keep_logits=True)
+    resident.close()
+    # a slow emulated link (20 MB/s), so that guesses pay on experts this small and are read
+    for settings in ({"prefetch": 1}, {"prefetch": 2, "lookahead": 2}, {"prefetch": 1, "split": "shared", "cold_reads": True}):
+        settings = {**settings, "link_speed": 2e7}
+        cap = caps["shared" if settings.get("split") == "shared" else "even"]
+        eng = moerun.load(FIXTURES / variant, mem_cap=cap, **settings)
+        try:
+            got = eng.generate(prompt_ids=prompt, max_new=16, sampling=Sampling(temperature=0.9, seed=5), keep_logits=True)
+            st = eng.pool.stats
+            assert st.prefetch_loads > 0 and st.prefetch_failed == 0 and st.prefetch_copied_here < st.prefetch_loads, settings
+            assert got.new_ids == want.new_ids, settings
+            assert all(np.array_equal(a, b) for a, b in zip(got.logits, want.logits)), settings
+        finally:
+            eng.close()
 
 
 def test_a_command_that_does_not_take_open_checkpoints_yet_says_so_in_one_line(capsys, tmp_path):
@@ -263,3 +281,42 @@ def test_a_bad_checkpoint_gets_one_line_and_exit_2(ck_copy, capsys, breaker):
     out, err = capsys.readouterr()
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1 and "Traceback" not in err
+
+
+def test_a_prompt_longer_than_one_pass_runs_in_passes_and_stays_bit_identical_offloaded(tmp_path, monkeypatch):
+    from moerun.makers.synth_open import OpenShape, synthesize_open
+    from moerun.model import transformer
+
+    d = tmp_path / "long"
+    synthesize_open(d, OpenShape("qwen3_moe", layers=3, experts=8, hidden=64, expert_width=32, head_dim=16, context=1024), seed=2)
+    ids = np.random.default_rng(0).integers(2, 258, 3 * transformer.PREFILL_CHUNK - 40).tolist()
+    resident = moerun.load(d)
+    caps = _caps(resident.store)
+    want = resident.generate(prompt_ids=ids, max_new=6, sampling=Sampling(seed=1), keep_logits=True)
+    in_passes = resident.logits(ids)
+    monkeypatch.setattr(transformer, "PREFILL_CHUNK", 10**9)
+    in_one = resident.logits(ids)
+    monkeypatch.undo()
+    resident.close()
+    assert np.abs(in_passes - in_one).max() < 1e-3  # the same numbers, up to the order of float32 sums
+    eng = moerun.load(d, mem_cap=caps["even"])
+    try:
+        got = eng.generate(prompt_ids=ids, max_new=6, sampling=Sampling(seed=1), keep_logits=True)
+        assert sum(eng.pool.stats.misses) > 0
+        assert got.new_ids == want.new_ids and all(np.array_equal(a, b) for a, b in zip(got.logits, want.logits))
+    finally:
+        eng.close()
+
+
+def test_the_scratch_of_a_long_context_counts_one_pass_not_the_whole_prompt():
+    from moerun.files.config import ModelConfig
+    from moerun.model.transformer import PREFILL_CHUNK
+    from moerun.runtime.budget import scratch_bytes
+
+    def config(context):
+        return ModelConfig(vocab_size=1000, d_model=256, n_layers=2, n_heads=8, n_kv_heads=2, head_dim=32, n_experts=8,
+                           top_k=2, d_expert=128, max_seq_len=context, rope_theta=1e4, norm_eps=1e-6, tied_embeddings=False)
+
+    # the scores of one pass are 3 x heads x PREFILL_CHUNK x context floats: linear in the context past one pass
+    one_pass = 3 * 8 * PREFILL_CHUNK * 4
+    assert scratch_bytes(config(8192)) - scratch_bytes(config(4096)) == 4096 * (one_pass + 4 * 32)
