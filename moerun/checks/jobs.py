@@ -245,13 +245,6 @@ def _given_setting(c, settings: dict) -> list[Setting] | None:
     return [Setting("as given", kw)]
 
 
-def _verify_note(c: ModelConfig, info: dict) -> str | None:
-    notes = [RANDOM_NOTE] if c.extra.get("synthetic") else []
-    if info.get("skipped_prefetch"):
-        notes.append(f"{info['skipped_prefetch']} prefetch settings left out: prefetch does not run on open checkpoints yet")
-    return "; ".join(notes) or None
-
-
 def verify(model_dir: str | os.PathLike | None = None, prompt: str | None = None, *, prompt_file=None,
            prompts: int = 3, max_new: int = 24, temperature: float = 0.8, top_p: float = 0.95, seed: int = 0,
            progress: Callable[[int, int, str], None] | None = None, **settings) -> VerifyResult:
@@ -287,7 +280,7 @@ def verify(model_dir: str | os.PathLike | None = None, prompt: str | None = None
     return VerifyResult(
         ok=all(o.ok for o in outcomes), prompts=len(ids), max_new=max_new, min_cap=info["min_cap"],
         resident_cap=info["resident_cap"], resident_slots=info["resident_slots"], outcomes=outcomes,
-        note=_verify_note(c, info),
+        note=RANDOM_NOTE if c.extra.get("synthetic") else None,
     )
 
 

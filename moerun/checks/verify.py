@@ -91,13 +91,8 @@ def verify(model_dir, prompts: list[list[int]], settings: list[Setting] | None =
         min_cap = minimum_cap(st.config, st.dense_nbytes, st.expert_nbytes, "even", st.codec.scratch_bytes())
         full_cap = eng.budget.total
         slot = eng.budget.slot
-        open_checkpoint = bool(eng.config.arch)
-    skipped = 0
     if settings is None:
         settings = default_settings(min_cap, full_cap, slot)
-        if open_checkpoint:  # the prefetch reader does not read an open checkpoint's spans yet (moerun.files.ckpt_store)
-            kept = [s for s in settings if not s.kwargs.get("prefetch")]
-            skipped, settings = len(settings) - len(kept), kept
     ref, ref_slots, _ = run_once(model_dir, {}, prompts, max_new, sampling)
     outcomes = []
     for i, s in enumerate(settings):
@@ -106,5 +101,5 @@ def verify(model_dir, prompts: list[list[int]], settings: list[Setting] | None =
         got, slots, hit = run_once(model_dir, s.kwargs, prompts, max_new, sampling)
         le, te, diff = compare(ref, got)
         outcomes.append(Outcome(s, slots, le, te, diff, hit))
-    info = {"min_cap": min_cap, "resident_cap": full_cap, "resident_slots": ref_slots, "skipped_prefetch": skipped}
+    info = {"min_cap": min_cap, "resident_cap": full_cap, "resident_slots": ref_slots}
     return outcomes, info

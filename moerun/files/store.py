@@ -334,6 +334,16 @@ class ModelStore:
         return np.frombuffer(raw, dtype=np.dtype(NUMPY_DTYPES[t.dtype]).newbyteorder("<")).reshape(t.shape).copy()
 
     # ---------------------------------------------------------------- page-in
+    @property
+    def fds(self) -> tuple[int, ...]:
+        """The weight files' open descriptors (one here), as ``read_pieces`` numbers them."""
+        return (self._fd,)
+
+    def read_pieces(self, layer: int, expert: int) -> tuple[tuple[int, int, int, int], ...]:
+        """How the reader process copies an expert: ((file, offset, nbytes, slot offset),): one range here."""
+        r = self.ranges[layer][expert]
+        return ((0, r.start, r.nbytes, 0),)
+
     def set_mechanism(self, mechanism: str) -> None:
         if mechanism not in MECHANISMS:
             raise ValueError(f"unknown page-in mechanism {mechanism!r}")

@@ -214,11 +214,6 @@ def open_engine(model_dir, o: EngineOptions) -> Engine:
         budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, o.mem_cap, chosen_split, store.codec.scratch_bytes())
         store.link_rate = o.link_speed
         if o.prefetch > 0 and not o.bare and o.baseline is None:  # guesses are read by the reader process
-            if c.arch:
-                raise BadOption(
-                    "--prefetch does not run on an open checkpoint yet: its experts lie in several byte spans, and the "
-                    "reader process reads one range per expert; run without --prefetch"
-                )
             reader = Reader(store, budget.n_slots, budget.slot, o.reader_timeout)
         experts = _expert_source(store, budget, o.evict, reader, o.bare, o.baseline, o.mem_cap is None)
         engine = Engine(store, tok, budget, experts, reader, watch, o.engine_dict())
