@@ -27,7 +27,7 @@ from moerun.model.sampling import Sampling
 from moerun.model.tokenizer import Tokenizer, read_text_file
 from moerun.runtime.budget import fixed_bytes, minimum_cap
 from moerun.runtime.capcheck import cap_check, cap_warning
-from moerun.runtime.options import check_against_config, load, parse_slot_list
+from moerun.runtime.options import EngineOptions, check_against_config, load, parse_slot_list
 from moerun.units import parse_rate, parse_size
 
 RANDOM_NOTE = f"{CONFIG_NOTE} and the text is noise"  # what a run of random weights needs said
@@ -247,17 +247,20 @@ def _given_setting(c, settings: dict) -> list[Setting] | None:
 
 def verify(model_dir: str | os.PathLike | None = None, prompt: str | None = None, *, prompt_file=None,
            prompts: int = 3, max_new: int = 24, temperature: float = 0.8, top_p: float = 0.95, seed: int = 0,
-           progress: Callable[[int, int, str], None] | None = None, **settings) -> VerifyResult:
+           max_context: int | None = None, progress: Callable[[int, int, str], None] | None = None,
+           **settings) -> VerifyResult:
     """Run the same prompts fully resident and offloaded, and compare logits and tokens bit for bit (``moerun verify``).
 
     ``prompt`` (or the text of ``prompt_file``): one prompt; otherwise ``prompts`` held-out ones.
     ``settings``: one offloaded setting to compare, as ``load`` takes it (``mem_cap``, ``slots``, ``evict``,
     ``prefetch``, ``lookahead``, ``prefetch_from``, ``split``, ``link_speed``, ``cold``); without ``mem_cap``
     or ``slots``, verify's own set of caps, policies and prefetch settings.
+    ``max_context``: the KV cache's positions in every run, the reference included (``load``'s).
     ``progress(done, total, setting)`` before each setting.  ``ok`` is False on any difference.
     """
     model_dir = resolve_model(model_dir)
-    store = open_store(model_dir)
+    EngineOptions(max_context=max_context)  # checked before anything is opened
+    store = open_store(model_dir, max_context)
     c = store.config
     store.close()
     tok = Tokenizer.load(model_dir, c.vocab_size, c.bos_token_id)
@@ -276,7 +279,8 @@ def verify(model_dir: str | os.PathLike | None = None, prompt: str | None = None
         ids = [p[: max(1, c.max_seq_len - max_new)] for p in ids]  # our own excerpts: cut to leave room
     chosen = _given_setting(c, settings)
     sampling = Sampling(temperature, top_p, seed)
-    outcomes, info = verify_settings(model_dir, ids, chosen, max_new, sampling, progress=progress)
+    outcomes, info = verify_settings(model_dir, ids, chosen, max_new, sampling, progress=progress,
+                                     base={} if max_context is None else {"max_context": max_context})
     return VerifyResult(
         ok=all(o.ok for o in outcomes), prompts=len(ids), max_new=max_new, min_cap=info["min_cap"],
         resident_cap=info["resident_cap"], resident_slots=info["resident_slots"], outcomes=outcomes,

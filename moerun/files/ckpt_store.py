@@ -20,6 +20,7 @@ their stored dtype.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import os
 import time
 from pathlib import Path
@@ -332,11 +333,17 @@ class CheckpointStore:
             self.close()
 
 
-def open_store(model_dir: str | os.PathLike):
-    """The store of a model directory: a ``CheckpointStore`` for an open checkpoint, else a ``ModelStore``."""
+def open_store(model_dir: str | os.PathLike, max_context: int | None = None):
+    """The store of a model directory: a ``CheckpointStore`` for an open checkpoint, else a ``ModelStore``.
+
+    ``max_context``: the positions the KV cache is sized for, at most the model's own context (default: the
+    model's context; an open checkpoint's, at most DEFAULT_CONTEXT: its own is often 32k-256k positions)."""
     from moerun.files.ckpt_config import is_open_checkpoint
     from moerun.files.store import ModelStore
 
     if Path(model_dir).is_dir() and is_open_checkpoint(model_dir):
-        return CheckpointStore.open(model_dir)
-    return ModelStore.open(model_dir)
+        return CheckpointStore.open(model_dir, max_context or DEFAULT_CONTEXT)
+    store = ModelStore.open(model_dir)
+    if max_context is not None and max_context < store.config.max_seq_len:
+        store.config = dataclasses.replace(store.config, max_seq_len=max_context)
+    return store

@@ -48,7 +48,7 @@ def run(args) -> int:
     prog = Progress("verify")
     try:
         result = verify(args.model, args.prompt, prompt_file=args.prompt_file, prompts=args.prompts, max_new=args.max_new,
-                        temperature=args.temperature, top_p=args.top_p, seed=args.seed,
+                        temperature=args.temperature, top_p=args.top_p, seed=args.seed, max_context=args.max_context,
                         progress=lambda i, n, label: prog.update(i, f"{label}"),
                         mem_cap=args.mem_cap, evict=args.evict, prefetch=args.prefetch, lookahead=args.lookahead,
                         prefetch_from=args.prefetch_from, slots=args.slots,
