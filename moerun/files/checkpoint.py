@@ -354,6 +354,7 @@ class Checkpoint:
         self.bos_ids: tuple[int, ...] = ()
         self.eos_ids: tuple[int, ...] = ()
         self.tokenizer_path: Path | None = None
+        self.random_weights = False
         self._files: list = []  # open file objects, one per shard
         self._fds: tuple[int, ...] = ()
         self._maps: dict[int, mmap.mmap] = {}
@@ -379,6 +380,7 @@ class Checkpoint:
                     pass
                 ck.tokenizer_path = tok
             ck.bos_ids, ck.eos_ids = special_token_ids(directory, config.vocab_size, raw)
+            ck.random_weights = raw.get("moerun_random_weights") is True  # moerun synth --open-type wrote it
             weight_map = ck._open_files()
             ck._check_tensors(weight_map)
         except BaseException:

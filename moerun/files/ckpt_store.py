@@ -178,6 +178,7 @@ def model_config(ck: Checkpoint, bos_token_id: int | None, context: int = DEFAUL
         dense_layers=tuple(b for b in range(c.num_layers) if b not in set(routed)), d_dense=c.dense_width,
         qk_norm=c.qk_norm, qkv_bias=c.qkv_bias, clip_qkv=c.clip_qkv, shared_gate=bool(c.shared_expert_width),
         eos_token_ids=tuple(ck.eos_ids),
+        extra={"synthetic": True} if ck.random_weights else {},
     )
 
 

@@ -40,6 +40,7 @@ _ARCH_NAMES = {"qwen3_moe": "Qwen3MoeForCausalLM", "qwen2_moe": "Qwen2MoeForCaus
 BOS, EOS = "<|bos|>", "<|eos|>"
 METADATA = {"format": "pt"}  # what the library asks of a safetensors file's metadata
 DEFAULT_SHARD = 4 << 30
+SYNTHETIC_KEY = "moerun_random_weights"  # in config.json: written by synth_open
 
 
 @dataclass(frozen=True)
@@ -93,6 +94,7 @@ class OpenShape:
             "eos_token_id": 1,
             "dtype": _TORCH_NAMES[self.dtype],
             "use_cache": True,
+            SYNTHETIC_KEY: True,  # moerun's outputs about it say its weights are random (other readers ignore it)
         }
         if mt == "olmoe":
             if self.dense_layers or self.shared_width:

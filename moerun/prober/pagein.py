@@ -40,7 +40,8 @@ from pathlib import Path
 import numpy as np
 
 from moerun._version import __version__
-from moerun.errors import BadInput, BadModelFile, BadOption, OutputError
+from moerun.errors import BadInput, BadModelFile, BadOption, OutputError, PageInError
+from moerun.files.checkpoint import Checkpoint, read_expert
 from moerun.files.ckpt_config import is_open_checkpoint
 from moerun.files.config import RANDOM_NOTE, ModelConfig
 from moerun.files.fileio import SignalsHeld
@@ -121,7 +122,11 @@ def memcpy_ceiling(nbytes: int = MEMCPY_BYTES, repeats: int = MEMCPY_REPEATS) ->
 
 @dataclass
 class Block:
-    """What to read: ``nbytes`` at each of ``offsets`` in ``path`` (read in turn, run after run)."""
+    """What to read: ``nbytes`` at each of ``offsets`` in ``path`` (read in turn, run after run).
+
+    An open checkpoint's experts (``spans``: one ``ExpertSpans`` per sample) lie in pieces in the files ``paths``;
+    each is read as the engine reads it (``moerun.files.checkpoint.read_expert``), and ``offsets`` number the
+    samples."""
 
     label: str
     source: str  # "model" or "tempfile"
@@ -129,6 +134,28 @@ class Block:
     nbytes: int
     offsets: list[int]
     info: dict = field(default_factory=dict)
+    spans: list | None = None
+    paths: tuple = ()
+
+    def ranges(self, sample: int) -> list[tuple[int, int, int]]:
+        """(file, offset, bytes) that one sample's read touches."""
+        if self.spans is None:
+            return [(0, sample, self.nbytes)]
+        return [(r.file, r.offset, r.nbytes) for r in self.spans[sample].reads]
+
+    def read(self, fds: list[int], sample: int, dst: np.ndarray) -> None:
+        """The engine's page-in of one sample into ``dst``."""
+        if self.spans is None:
+            pread_into(fds[0], sample, dst[: self.nbytes])
+        else:
+            try:
+                read_expert(fds, self.spans[sample], dst, self.paths)
+            except PageInError:
+                raise EOFError from None
+
+    @property
+    def buffer_bytes(self) -> int:
+        return self.nbytes if self.spans is None else max(self.nbytes, self.spans[0].slot_nbytes)
 
 
 def model_block(model_dir: str | os.PathLike, max_offsets: int) -> Block:
@@ -140,10 +167,7 @@ def model_block(model_dir: str | os.PathLike, max_offsets: int) -> Block:
     if not model_dir.is_dir():
         raise BadModelFile(f"{model_dir}: no such model directory")
     if is_open_checkpoint(model_dir):
-        raise BadModelFile(
-            f"{model_dir}: an open checkpoint (config.json names a model_type); probe does not read the expert spans of open "
-            "checkpoints yet (probe --dir measures the storage itself)"
-        )
+        return checkpoint_block(model_dir, max_offsets)
     config = ModelConfig.load(model_dir)
     header = read_header(model_dir / "model.safetensors")
     by_expert: dict[tuple[int, int], list] = {}
@@ -175,6 +199,33 @@ def model_block(model_dir: str | os.PathLike, max_offsets: int) -> Block:
     if info["synthetic"]:
         info["note"] = RANDOM_NOTE
     return Block(f"expert of {name}", "model", header.path, nbytes, [spans[i][0] for i in pick], info)
+
+
+def checkpoint_block(model_dir: Path, max_offsets: int) -> Block:
+    """The routed experts of an open checkpoint: each read as the engine reads it, its pieces in the shards
+    (``read_expert``), samples spread over the layers.  Reads the headers only."""
+    with Checkpoint.open(model_dir, require_tokenizer=False) as ck:
+        spans = [sp for row in ck.span_map if row is not None for sp in row]
+        files = ck.files
+        info = {
+            "dir": str(model_dir),
+            "name": model_dir.name,
+            "expert_bytes": spans[0].nbytes if spans else 0,
+            "experts": len(spans),
+            "dtype": ck.expert_dtype,
+            "model_type": ck.config.model_type,
+            "files": len(files),
+            "reads_per_expert": max((len(sp.reads) for sp in spans), default=0),
+            "synthetic": ck.random_weights,
+        }
+    if not spans:
+        raise BadModelFile(f"{model_dir}: no layer routes to experts; nothing to probe")
+    pick = np.unique(np.linspace(0, len(spans) - 1, min(len(spans), max(1, max_offsets))).round().astype(int)).tolist()
+    if info["synthetic"]:
+        info["note"] = RANDOM_NOTE
+    chosen = [spans[i] for i in pick]
+    return Block(f"expert of {model_dir.name}", "model", files[chosen[0].reads[0].file], info["expert_bytes"],
+                 list(range(len(chosen))), info, spans=chosen, paths=tuple(files))
 
 
 def scratch_slots(nbytes: int) -> int:
@@ -225,29 +276,34 @@ def _expect(regime: str, resident: int, total: int) -> bool:
     return resident == total if regime == "warm" else resident == 0
 
 
-def _settle(fd: int, off: int, nbytes: int, regime: str, dst: np.ndarray) -> tuple[int, int]:
-    """Bring the block into the regime's state and return its (resident, total) pages just before the read.
+def _settle(fds: list[int], block: Block, sample: int, regime: str, dst: np.ndarray) -> tuple[int, int]:
+    """Bring one sample's pages into the regime's state and return its (resident, total) pages just before the read.
 
-    Cold: drop the file's pages; pages still under read-ahead I/O from the
+    Cold: drop the files' pages; pages still under read-ahead I/O from the
     previous read are locked and survive a drop, so wait briefly and drop again
     (a few times) before giving up.  Warm: if memory pressure evicted part of
     the block, read it once more (untimed).
     """
     resident, total = 0, 0
+    ranges = block.ranges(sample)
     for wait in (0.0, 0.002, 0.02, 0.1):
         if wait:
             time.sleep(wait)
         if regime == "cold":
-            drop_pages(fd)
-        resident, total = resident_pages(fd, off, nbytes)
+            for file in {f for f, _, _ in ranges}:
+                drop_pages(fds[file])
+        resident = total = 0
+        for file, off, nbytes in ranges:
+            r, t = resident_pages(fds[file], off, nbytes)
+            resident, total = resident + r, total + t
         if _expect(regime, resident, total):
             break
         if regime == "warm":
-            pread_into(fd, off, dst)
+            block.read(fds, sample, dst)
     return resident, total
 
 
-def time_regime(fd: int, block: Block, regime: str, runs: int, buf: np.ndarray, ceiling_gb_s: float | None,
+def time_regime(fds: list[int], block: Block, regime: str, runs: int, buf: np.ndarray, ceiling_gb_s: float | None,
                 check_problem: str | None, drop_problem_: str | None, tick: Callable[[], None] | None = None) -> dict:
     """Time ``runs`` reads of ``block`` in one regime; return its labelled result (see docs/guide/probe.md)."""
     out: dict = {"regime": regime, "verified": False, "reason": None, "runs": 0, "discarded": 0}
@@ -257,15 +313,16 @@ def time_regime(fd: int, block: Block, regime: str, runs: int, buf: np.ndarray, 
         out["reason"] = f"not measured: {drop_problem_}"
         out.update(latency_stats([], block.nbytes, ceiling_gb_s))
         return out
-    dst = buf[: block.nbytes]
+    dst = buf[: block.buffer_bytes]
     # Offsets in descending order: read-ahead runs forward from a read, so the
     # next read never starts in a range the previous one may have pulled in.
-    block = Block(block.label, block.source, block.path, block.nbytes, sorted(block.offsets, reverse=True), block.info)
+    block = Block(block.label, block.source, block.path, block.nbytes, sorted(block.offsets, reverse=True), block.info,
+                  block.spans, block.paths)
     if regime == "warm":
         # Untimed: bring every block into the page cache, then a few more reads so
         # the first timed ones do not carry one-off start-up costs.
         for off in block.offsets + block.offsets[: min(5, runs)]:
-            pread_into(fd, off, dst)
+            block.read(fds, off, dst)
     times: list[int] = []
     leftovers: list[int] = []  # resident pages found before a cold read (or missing before a warm one)
     attempts = 0
@@ -274,14 +331,15 @@ def time_regime(fd: int, block: Block, regime: str, runs: int, buf: np.ndarray, 
         off = block.offsets[attempts % len(block.offsets)]
         attempts += 1
         if check_problem is None:
-            resident, total = _settle(fd, off, block.nbytes, regime, dst)
+            resident, total = _settle(fds, block, off, regime, dst)
             ok = _expect(regime, resident, total)
         else:
             if regime == "cold":
-                drop_pages(fd)
+                for fd in fds:
+                    drop_pages(fd)
             resident, total, ok = 0, 0, True
         t0 = time.monotonic_ns()
-        pread_into(fd, off, dst)
+        block.read(fds, off, dst)
         dt = time.monotonic_ns() - t0
         if ok:
             times.append(dt)
@@ -398,17 +456,20 @@ def _fit_slots(base: Path, nbytes: int) -> int:
 
 def _measure(block: Block, runs: int, ceiling_gb_s: float, tick: Callable[[str], Callable[[], None]]) -> dict:
     check = residency_problem(block.path)
-    buf = aligned_buffer(block.nbytes)
-    fd = os.open(block.path, os.O_RDONLY)
+    buf = aligned_buffer(block.buffer_bytes)
+    fds: list[int] = []
     try:
+        for path in block.paths or (block.path,):
+            fds.append(os.open(path, os.O_RDONLY))
         regimes = {
-            r: time_regime(fd, block, r, runs, buf, ceiling_gb_s, check, drop_problem(), tick(f"{block.label}, {r}"))
+            r: time_regime(fds, block, r, runs, buf, ceiling_gb_s, check, drop_problem(), tick(f"{block.label}, {r}"))
             for r in REGIMES
         }
     except EOFError:
         raise BadInput(f"{block.path}: file ended early (changed while probing?)") from None
     finally:
-        os.close(fd)
+        for fd in fds:
+            os.close(fd)
     entry = {
         "label": block.label,
         "source": block.source,
@@ -536,7 +597,8 @@ def run_probe(
         "schema": SCHEMA,
         "created": datetime.datetime.now(datetime.UTC).strftime("%Y-%m-%dT%H:%M:%SZ"),
         "machine": machine_info(),
-        "read": "moerun.files.store.pread_into: os.preadv into a preallocated 4 KiB-aligned buffer (the engine's page-in)",
+        "read": "moerun.files.store.pread_into: os.preadv into a preallocated 4 KiB-aligned buffer (the engine's page-in); "
+                "an open checkpoint's expert: moerun.files.checkpoint.read_expert, one os.preadv per run of its pieces in a shard",
         "cold_method": DROP_METHOD,
         "cold_scope": "out of this machine's page cache; a hypervisor or disk below it may still cache the data",
         "check_method": CHECK_METHOD,

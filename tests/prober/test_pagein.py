@@ -427,3 +427,35 @@ def test_probe_on_a_read_only_file_system_is_one_line_and_exit_2(tmp_path, capsy
     assert code == 2 and captured.out == ""
     lines = captured.err.strip().splitlines()
     assert len(lines) == 1 and "read-only" in lines[0].lower() and "--dir" in lines[0]
+
+
+@pytest.mark.parametrize("variant", ["qwen2_moe-bf16-sharded-v4", "qwen3_moe-bf16-fused-sharded"])
+def test_an_open_checkpoints_experts_are_probed_as_the_engine_reads_them_from_their_shards(variant):
+    """tests/fixtures/open: checkpoints the transformers library wrote, experts straddling shard files."""
+    import numpy as np
+
+    from moerun.files.ckpt_store import open_store
+    from moerun.prober.pagein import aligned_buffer, model_block
+
+    d = Path(__file__).resolve().parent.parent / "fixtures" / "open" / variant
+    block = model_block(d, 6)
+    store = open_store(d)
+    fds = [os.open(p, os.O_RDONLY) for p in block.paths]
+    try:
+        assert block.info["model_type"] == variant.split("-")[0] and block.info["files"] == len(block.paths) > 1
+        assert block.nbytes == store.expert_nbytes and len(block.offsets) == 6
+        buf = aligned_buffer(block.buffer_bytes)
+        own = np.zeros(store.slot_nbytes, np.uint8)
+        for sample in block.offsets:
+            sp = block.spans[sample]
+            block.read(fds, sample, buf)
+            store.copy_in(store.config.routed_blocks().index(sp.layer), sp.expert, own)  # spans number stack layers
+            assert bytes(buf[: store.slot_nbytes]) == own.tobytes()
+    finally:
+        for fd in fds:
+            os.close(fd)
+        store.close()
+    doc = probe_mod.run_probe(d, runs=3)
+    (entry,) = doc["blocks"]
+    assert entry["source"] == "model" and entry["model"]["reads_per_expert"] >= 2
+    assert entry["warm"]["verified"] and entry["warm"]["runs"] == 3
