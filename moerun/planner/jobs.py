@@ -16,10 +16,12 @@ from pathlib import Path
 from moerun import policies
 from moerun.errors import BadInput, BadOption, ImpossibleBudget
 from moerun.files.bundled import resolve_model
+from moerun.files.ckpt_config import is_open_checkpoint
 from moerun.files.config import RANDOM_NOTE
 from moerun.files.trace import Trace, read_trace
 from moerun.planner.calibration import calibrate, costs_from_calibration, costs_from_shape, describe, load_shape, page_seconds
 from moerun.planner.search import PREFETCH_CANDIDATES, Space, check_decode_steps, check_trace_shape, choose, minimum_cap
+from moerun.planner.shape_costs import checkpoint_shape, measure_shape
 from moerun.planner.timeline import Costs, Prediction
 from moerun.runtime.budget import fixed_bytes, slot_bytes
 from moerun.sim.report import parse_policies
@@ -145,6 +147,15 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
         model = {"L": sh["layers"], "E": sh["experts"], "k": sh["top_k"], "expert_bytes": sh["expert_bytes"],
                  "fixed": sh["dense_bytes"] + sh.get("kv_cache_bytes", 0) + sh.get("scratch_bytes", 0),
                  "shape": sh, "what": f"shape {shape}", "note": None}
+    elif model_dir and is_open_checkpoint(resolve_model(model_dir)):
+        model_dir = resolve_model(model_dir)
+        if not trace:
+            raise BadInput(f"{model_dir} is an open checkpoint: give a routing trace of it with --trace FILE "
+                           f"(moerun record --model {model_dir} --text FILE --trace FILE --mem-cap SIZE makes one)")
+        sh, c = checkpoint_shape(model_dir)
+        model = {"L": sh["layers"], "E": sh["experts"], "k": sh["top_k"], "expert_bytes": sh["expert_bytes"],
+                 "fixed": sh["dense_bytes"] + sh["kv_cache_bytes"] + sh["scratch_bytes"], "checkpoint": (sh, c),
+                 "what": f"open checkpoint {model_dir}", "note": RANDOM_NOTE if sh["random_weights"] else None}
     else:
         from moerun.files.store import ModelStore
 
@@ -187,6 +198,12 @@ def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int,
     if "shape" in m:
         costs = costs_from_shape(m["shape"], page, page_src, inp["emulated"])
         cal_note = "compute times from the shape file"
+    elif "checkpoint" in m:
+        sh, c = m["checkpoint"]
+        step(0, "timing one layer at the checkpoint's shape")
+        timed = measure_shape(c, c.dtype)
+        costs = costs_from_shape({**sh, **timed}, page, page_src, inp["emulated"])
+        cal_note = f"compute times from {timed['measured']}, now"
     else:
         cal = calibrate(m["dir"], recalibrate=recalibrate, progress=lambda what: step(0, f"calibrating: {what}"),
                         notice=notice)
