@@ -174,11 +174,15 @@ class VerifyResult:
     resident_slots: list[int]
     outcomes: list[Outcome]
     note: str | None = None  # a synthetic model's warning
+    # what the runs were compared with: "resident" (every expert resident) or "whole-layer" (each layer's experts
+    # all read when it runs, one layer's worth at a time: a model too large for the memory available)
+    reference: str = "resident"
 
     def to_json(self) -> dict:
         return {
             "ok": self.ok,
             **({"note": self.note} if self.note is not None else {}),
+            "reference": self.reference,
             "prompts": self.prompts,
             "max_new": self.max_new,
             "min_cap": self.min_cap,
@@ -284,7 +288,7 @@ def verify(model_dir: str | os.PathLike | None = None, prompt: str | None = None
     return VerifyResult(
         ok=all(o.ok for o in outcomes), prompts=len(ids), max_new=max_new, min_cap=info["min_cap"],
         resident_cap=info["resident_cap"], resident_slots=info["resident_slots"], outcomes=outcomes,
-        note=RANDOM_NOTE if c.extra.get("synthetic") else None,
+        note=RANDOM_NOTE if c.extra.get("synthetic") else None, reference=info["reference"],
     )
 
 

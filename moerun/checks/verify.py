@@ -11,8 +11,9 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from moerun import policies
+from moerun.files.ckpt_store import open_store
 from moerun.model.sampling import Sampling
-from moerun.runtime.budget import minimum_cap
+from moerun.runtime.budget import minimum_cap, plan_budget
 from moerun.runtime.options import load
 
 
@@ -48,6 +49,16 @@ def default_settings(min_cap: int, full_cap: int, slot: int) -> list[Setting]:
         Setting("smallest cap, shared pool, orbit", {"mem_cap": min_cap, "split": "shared", "evict": "orbit"}),
         Setting("smallest cap, prefetch 2, link 1 GB/s (emulated)", {"mem_cap": min_cap, "prefetch": 2, "link_speed": 1e9}),
     ]
+
+
+RESIDENT_SHARE = 0.8  # the reference runs every expert resident when that takes at most this share of free memory
+
+
+def available_memory() -> int:
+    """Bytes of memory available now (psutil)."""
+    import psutil
+
+    return int(psutil.virtual_memory().available)
 
 
 def _bits(a: np.ndarray) -> np.ndarray:
@@ -88,14 +99,21 @@ def verify(model_dir, prompts: list[list[int]], settings: list[Setting] | None =
     """Every setting's run against the resident one; ``base``: ``load`` settings of every run (max_context)."""
     sampling = sampling or Sampling(temperature=0.8, top_p=0.95, seed=0)
     base = base or {}
-    with load(model_dir, tokenizer=False, **base) as eng:
-        st = eng.store
-        min_cap = minimum_cap(st.config, st.dense_nbytes, st.expert_nbytes, "even", st.codec.scratch_bytes())
-        full_cap = eng.budget.total
-        slot = eng.budget.slot
+    st = open_store(model_dir, base.get("max_context"))  # the dense weights only: no expert is read here
+    try:
+        c, scratch = st.config, st.codec.scratch_bytes()
+        min_cap = minimum_cap(c, st.dense_nbytes, st.expert_nbytes, "even", scratch, st.slot_nbytes)
+        every = plan_budget(c, st.dense_nbytes, st.expert_nbytes, None, "even", scratch, st.slot_nbytes)
+        full_cap, slot = every.total, every.slot
+    finally:
+        st.close()
     if settings is None:
         settings = default_settings(min_cap, full_cap, slot)
-    ref, ref_slots, _ = run_once(model_dir, dict(base), prompts, max_new, sampling)
+    ref_kwargs = dict(base)
+    reference = "resident"
+    if full_cap > RESIDENT_SHARE * available_memory():  # too large to hold whole: one layer's experts at a time
+        ref_kwargs["baseline"] = reference = "whole-layer"
+    ref, ref_slots, _ = run_once(model_dir, ref_kwargs, prompts, max_new, sampling)
     outcomes = []
     for i, s in enumerate(settings):
         if progress:
@@ -103,5 +121,5 @@ def verify(model_dir, prompts: list[list[int]], settings: list[Setting] | None =
         got, slots, hit = run_once(model_dir, {**base, **s.kwargs}, prompts, max_new, sampling)
         le, te, diff = compare(ref, got)
         outcomes.append(Outcome(s, slots, le, te, diff, hit))
-    info = {"min_cap": min_cap, "resident_cap": full_cap, "resident_slots": ref_slots}
+    info = {"min_cap": min_cap, "resident_cap": full_cap, "resident_slots": ref_slots, "reference": reference}
     return outcomes, info

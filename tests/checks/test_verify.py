@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import pytest
 
+import moerun
 from moerun import policies
 from moerun.checks.verify import default_settings
 from moerun.cli import main as cli
@@ -66,3 +67,18 @@ def test_verify_reports_only_the_tokens_it_compared_when_the_context_fills(small
     assert cli.main(["verify", "--model", str(small_model), "--prompt", prompt, "--max-new", str(room + 50), "--json"]) == 0
     doc = json.loads(capsys.readouterr().out)
     assert doc["max_new"] == room
+
+
+def test_a_model_larger_than_free_memory_is_verified_against_one_layer_at_a_time(monkeypatch):
+    """The reference of a model that cannot be held whole reads each layer's experts when the layer runs
+    (the whole-layer source): the same bits as every expert resident, in one layer's memory."""
+    from moerun.checks import verify as verify_mod
+
+    with moerun.load("pebble") as eng:
+        ids = eng.tokenizer.encode("The keepers check the mesh")
+    resident = verify_mod.run_once("pebble", {}, [ids], 6, verify_mod.Sampling(seed=2))[0]
+    layered = verify_mod.run_once("pebble", {"baseline": "whole-layer"}, [ids], 6, verify_mod.Sampling(seed=2))[0]
+    assert verify_mod.compare(resident, layered)[:2] == (True, True)
+    monkeypatch.setattr(verify_mod, "available_memory", lambda: 1 << 20)  # 1 MiB free: pebble does not fit
+    result = moerun.verify("pebble", "The keepers check the mesh", max_new=6, mem_cap="12MiB")
+    assert result.reference == "whole-layer" and result.ok and result.to_json()["reference"] == "whole-layer"

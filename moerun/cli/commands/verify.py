@@ -20,7 +20,13 @@ def add_arguments(p) -> None:
     cli.add_json(p)
 
 
-def _write_text(outcomes, n_prompts: int, max_new: int, note: str | None, ok: bool) -> None:
+REFERENCES = {
+    "resident": "every expert resident",
+    "whole-layer": "each layer with all its experts read when it runs (the whole model does not fit in memory)",
+}
+
+
+def _write_text(outcomes, n_prompts: int, max_new: int, note: str | None, ok: bool, reference: str = "resident") -> None:
     """One row a setting: its cap and slots, and whether logits and tokens were the same bits as the resident run's."""
     rows = []
     for o in outcomes:
@@ -36,7 +42,7 @@ def _write_text(outcomes, n_prompts: int, max_new: int, note: str | None, ok: bo
     if note:
         sys.stdout.write(f"note: {note}\n")
     sys.stdout.write(
-        f"reference: every expert resident; {n_prompts} prompt(s), {max_new} sampled tokens each, "
+        f"reference: {REFERENCES[reference]}; {n_prompts} prompt(s), {max_new} sampled tokens each, "
         f"logits compared as raw float32 bits\n"
     )
     sys.stdout.write(table(["setting", "cap", "slots", "logits", "tokens", "hit rate"], rows, "llllll") + "\n")
@@ -58,5 +64,5 @@ def run(args) -> int:
     if args.json:
         emit_json(result.to_json())
     else:
-        _write_text(result.outcomes, result.prompts, result.max_new, result.note, result.ok)
+        _write_text(result.outcomes, result.prompts, result.max_new, result.note, result.ok, result.reference)
     return 0 if result.ok else 1
