@@ -98,7 +98,7 @@ def _record(model_dir: Path, tokens: int) -> Trace:
 
     held = model_dir / "heldout.txt"
     if not held.exists():
-        raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --trace FILE")
+        raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --routing FILE")
     with load(model_dir) as eng:
         ids = eng.tokenizer.encode_array(read_text_file(held), tokens).tolist()
         eng.start_trace()
@@ -115,8 +115,8 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
         raise BadOption("--regime has no effect without --probe FILE (the regime picks its warm or cold figures); "
                         "drop it or add --probe")
     if max_tokens is not None and trace is not None:
-        raise BadOption("--max-tokens and --trace contradict each other (--max-tokens says how much to record when "
-                        "there is no --trace); give one")
+        raise BadOption("--max-tokens and --routing contradict each other (--max-tokens says how much to record when "
+                        "there is no --routing); give one")
     if mem_cap is None and target is None:
         raise BadOption("give --mem-cap SIZE (and/or --target TOK_S)")
     if target is not None and not (target > 0 and math.isfinite(target)):
@@ -140,7 +140,7 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
         probe_doc = load_probe(probe)
     if shape:
         if not trace:
-            raise BadOption("--shape needs --trace FILE: routing of that model, in the trace import format")
+            raise BadOption("--shape needs --routing FILE: routing of that model, in the trace import format")
         sh = load_shape(shape)
         model = {"L": sh["layers"], "E": sh["experts"], "k": sh["top_k"], "expert_bytes": sh["expert_bytes"],
                  "fixed": sh["dense_bytes"] + sh.get("kv_cache_bytes", 0) + sh.get("scratch_bytes", 0),
@@ -156,7 +156,7 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
                  "what": f"model {model_dir}", "note": RANDOM_NOTE if c.extra.get("synthetic") else None}
         store.close()
         if not trace and not (model_dir / "heldout.txt").exists():
-            raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --trace FILE")
+            raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --routing FILE")
     routing = None
     if trace:
         routing = read_trace(trace, n_experts=model["E"])

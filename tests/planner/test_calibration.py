@@ -101,7 +101,7 @@ def _plan_with_cache(small_model, tmp_path, capsys, monkeypatch, doc) -> tuple[i
     trace = tmp_path / "t.npz"
     write_trace(trace, _random_trace(np.random.default_rng(0), layers=3, experts=8))
     capsys.readouterr()
-    code = main(["plan", "--model", str(small_model), "--mem-cap", "1GiB", "--link-speed", "2GB/s", "--trace", str(trace),
+    code = main(["plan", "--model", str(small_model), "--mem-cap", "1GiB", "--link-speed", "2GB/s", "--routing", str(trace),
                  "--evict", "lru", "--json"])
     out, err = capsys.readouterr()
     assert json.loads(path.read_text()) == good  # the cache file replaced

@@ -40,7 +40,7 @@ def test_replay_returns_what_the_command_prints(small_model, text_file, tmp_path
     moerun.record(trace, small_model, text_file)
     result = moerun.replay(str(trace), **extra)
     assert isinstance(result, moerun.ReplayResult)
-    argv = ["replay", trace]
+    argv = ["replay", "--routing", trace]
     for key, value in extra.items():
         flag = "--" + key.replace("_", "-")
         if key == "baselines":

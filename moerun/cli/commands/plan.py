@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import argparse
 import math
 import sys
 
@@ -22,10 +23,11 @@ def add_arguments(p) -> None:
     p.add_argument("--link-speed", metavar="RATE", help="page-in over a link of this speed, e.g. 2GB/s")
     p.add_argument("--probe", metavar="FILE", help="page-in times from 'moerun probe --save FILE'")
     p.add_argument("--regime", choices=("warm", "cold"), default=None, help="which probe figures to use, with --probe (default warm)")
-    p.add_argument("--trace", metavar="FILE", help="routing trace (default: recorded now from the model's held-out text)")
+    cli.add_routing(p, "routing trace to plan on (default: recorded now from the model's held-out text)")
+    p.add_argument("--trace", dest="old_trace", metavar="FILE", help=argparse.SUPPRESS)  # the old spelling of --routing
     p.add_argument("--max-tokens", type=int, default=None, metavar="N",
-                   help=f"tokens of held-out text to record when there is no --trace (default {DEFAULT_TOKENS})")
-    p.add_argument("--shape", metavar="FILE", help="plan for a model described by a JSON shape file (needs --trace)")
+                   help=f"tokens of held-out text to record when there is no --routing (default {DEFAULT_TOKENS})")
+    p.add_argument("--shape", metavar="FILE", help="plan for a model described by a JSON shape file (needs --routing)")
     p.add_argument("--evict", default=None, metavar="P,P",
                    help=cli.LazyHelp(lambda: f"policies to consider (default: every online policy, {','.join(policies.names(online_only=True))}; "
                                              f"known: {policies.listing(online_only=True)})"))
@@ -36,6 +38,7 @@ def add_arguments(p) -> None:
 
 
 def run(args) -> int:
+    cli.routing_from_old(args, "plan", "old_trace", "--trace FILE (a trace to read)")
     prog = Progress("plan")
 
     def notice(line: str) -> None:  # one line on stderr, whatever stderr is and with --json too
@@ -43,7 +46,7 @@ def run(args) -> int:
 
     try:
         result = plan(args.model, args.mem_cap, target=args.target, link_speed=args.link_speed, probe=args.probe,
-                      regime=args.regime, trace=args.trace, max_tokens=args.max_tokens, shape=args.shape,
+                      regime=args.regime, trace=args.routing, max_tokens=args.max_tokens, shape=args.shape,
                       evict=args.evict, shared_pool=args.shared_pool, recalibrate=args.recalibrate, progress=prog.update,
                       notice=notice)
     finally:

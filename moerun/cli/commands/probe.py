@@ -5,7 +5,7 @@ from __future__ import annotations
 import sys
 
 from moerun.cli import main as cli
-from moerun.cli.report import Progress, emit_json, table
+from moerun.cli.report import Progress, emit_json, table, written
 from moerun.prober.jobs import probe
 from moerun.prober.pagein import DEFAULT_RUNS
 from moerun.units import fmt_bytes
@@ -113,6 +113,6 @@ def run(args) -> int:
         emit_json(result.to_json())
     else:
         sys.stdout.write(render(result.to_json()))
-        if args.save:
-            sys.stdout.write(f"saved: {args.save}\n")
+    if args.save:
+        written("probe", "results", args.save)
     return 0

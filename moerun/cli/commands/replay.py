@@ -2,11 +2,12 @@
 
 from __future__ import annotations
 
+import argparse
 import sys
 
 from moerun import policies
 from moerun.cli import main as cli
-from moerun.cli.report import Progress, emit_json, pct, table
+from moerun.cli.report import Progress, emit_json, pct, table, written
 from moerun.errors import BadOption
 from moerun.files.fileio import check_output
 from moerun.sim.jobs import replay
@@ -17,7 +18,8 @@ HELP = "replay a routing trace through eviction policies: hit rate per layer and
 
 
 def add_arguments(p) -> None:
-    p.add_argument("trace", metavar="TRACE", help="trace file (.npz) from 'moerun record', 'moerun generate --trace' or another runtime")
+    cli.add_routing(p, "the routing trace to replay (.npz) from 'moerun record', 'moerun generate --trace' or another runtime")
+    p.add_argument("old_trace", nargs="?", metavar="TRACE", help=argparse.SUPPRESS)  # the old spelling: the trace as the first argument
     p.add_argument(
         "--evict",
         default=",".join(DEFAULT_POLICIES),
@@ -155,6 +157,9 @@ def _render_prefetch(doc: dict, shared: bool) -> list[str]:
 
 
 def run(args) -> int:
+    cli.routing_from_old(args, "replay", "old_trace", "the trace as a bare argument ('moerun replay FILE')")
+    if args.routing is None:
+        raise BadOption("no routing trace given: add --routing FILE")
     cli.refuse_without(args, "plot_layer", "plot", "--plot FILE")
     plot_layer = args.plot_layer or 0
     traces = []
@@ -166,12 +171,12 @@ def run(args) -> int:
         if args.plot:
             from moerun.cli.plot import require_matplotlib
 
-            check_output(args.plot, args.force, [args.trace], "--plot")
+            check_output(args.plot, args.force, [args.routing], "--plot")
             require_matplotlib()
 
     prog = Progress("replay")
     try:
-        result = replay(args.trace, args.evict, args.slots, shared_pool=args.shared_pool, prefetch=args.prefetch,
+        result = replay(args.routing, args.evict, args.slots, shared_pool=args.shared_pool, prefetch=args.prefetch,
                         lookahead=args.lookahead, expert_bytes=args.expert_bytes, seed=args.seed,
                         baselines=not args.no_baselines, generic=args.generic,
                         progress=lambda i, n, label: prog.update(i, label), on_trace=check_plot)
@@ -180,12 +185,12 @@ def run(args) -> int:
     if args.plot:
         from moerun.cli.plot import plot_replay
 
-        result.plot = plot_replay(args.plot, traces[0], result.to_json(), plot_layer, force=args.force, inputs=[args.trace])
+        result.plot = plot_replay(args.plot, traces[0], result.to_json(), plot_layer, force=args.force, inputs=[args.routing])
     doc = result.to_json()
     if args.json:
         emit_json(doc)
     else:
         sys.stdout.write(render(doc, args.per_layer) + "\n")
-        if args.plot:
-            sys.stdout.write(f"plot written to {args.plot}\n")
+    if args.plot:
+        written("replay", "plot", args.plot)
     return 0

@@ -5,7 +5,7 @@ from __future__ import annotations
 import sys
 
 from moerun.cli import main as cli
-from moerun.cli.report import Progress, emit_json, table
+from moerun.cli.report import Progress, emit_json, table, written
 from moerun.makers.jobs import synth
 from moerun.makers.synthetic import BITS, RANDOM_NOTE
 from moerun.units import fmt_bytes
@@ -70,10 +70,10 @@ def run(args) -> int:
         progress.close()
     if args.json:
         emit_json(result.to_json())
+        written("synth", "model directory", result.model_dir, f"{result.seconds:.1f} s")
         return 0
     c = result.config
     out = sys.stdout
-    out.write(f"wrote {result.model_dir} in {result.seconds:.1f} s\n")
     out.write(f"note: {RANDOM_NOTE}; use it for sizes, page-in and budgets, not for policies\n")
     out.write(
         f"{c.n_layers} layers, d_model {c.d_model}, {c.n_heads} heads ({c.n_kv_heads} KV) of {c.head_dim}, "
@@ -88,4 +88,5 @@ def run(args) -> int:
         [f"all experts ({c.n_layers} x {c.n_experts})", f"{fmt_bytes(result.experts_total_bytes)} ({100 * share:.1f}% of the file)"],
     ]
     out.write(table(["", "size"], rows) + "\n")
+    written("synth", "model directory", result.model_dir, f"{result.seconds:.1f} s")
     return 0

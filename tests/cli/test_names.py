@@ -1,0 +1,167 @@
+"""One name, one direction, one unit (issue 23, item 19): a trace the command reads is --routing FILE and a
+trace it writes is --trace FILE; every JSON duration is in seconds; a prefetch setting and a shared pool are
+written one way; "written to" notices go to stderr."""
+
+from __future__ import annotations
+
+import argparse
+import json
+
+import numpy as np
+import pytest
+from _planning import _random_trace
+
+from moerun.cli import main as cli
+from moerun.files.trace import write_trace
+
+
+def _run(capsys, *argv):
+    """Exit code, stdout and stderr of ``moerun ARGV`` run in this process (usage errors end in SystemExit)."""
+    try:
+        code = cli.main([str(a) for a in argv])
+    except SystemExit as e:
+        code = e.code
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+def _options(command: str) -> dict:
+    """{option string: its argparse action} of one command, hidden options left out."""
+    parser = cli.build_parser()
+    sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction)).choices[command]
+    return {s: a for a in sub._actions if a.help is not argparse.SUPPRESS for s in a.option_strings}
+
+
+def _shape(tmp_path):
+    p = tmp_path / "shape.json"
+    p.write_text(json.dumps({"layers": 2, "experts": 4, "top_k": 2, "expert_bytes": 1 << 20, "dense_bytes": 1 << 22,
+                             "expert_us": 50.0, "dense_layer_us": 100.0}))
+    return p
+
+
+@pytest.fixture
+def small_trace(tmp_path):
+    path = tmp_path / "t.npz"
+    write_trace(path, _random_trace(np.random.default_rng(1), layers=2, experts=4))
+    return path
+
+
+# ---------------------------------------------------------------------------- one spelling per direction
+
+
+def test_a_trace_read_is_routing_and_a_trace_written_is_trace_in_every_command():
+    readers, writers = set(), set()
+    for command in cli.COMMANDS:
+        opts = _options(command)
+        if "--routing" in opts:
+            readers.add(command)
+            assert opts["--routing"].metavar == "FILE"
+        if "--trace" in opts:
+            writers.add(command)
+            assert "write" in opts["--trace"].help
+        # no positional trace argument is shown anywhere
+        parser = cli.build_parser()
+        sub = next(a for a in parser._actions if isinstance(a, argparse._SubParsersAction)).choices[command]
+        assert not [a for a in sub._actions if not a.option_strings and a.help is not argparse.SUPPRESS
+                    and "trace" in (a.help or "").lower()]
+    assert readers == {"generate", "plan", "replay"}
+    assert writers == {"generate", "record"}
+
+
+def test_replay_reads_its_trace_from_routing(small_trace, capsys):
+    code, out, err = _run(capsys, "replay", "--routing", small_trace, "--slots", "2", "--no-baselines", "--json")
+    assert code == 0, err
+    assert json.loads(out)["trace"]["file"] == str(small_trace)
+    assert "deprecated" not in err
+
+
+def test_replay_without_a_trace_is_refused_naming_routing(capsys):
+    code, out, err = _run(capsys, "replay", "--slots", "2")
+    assert code == 2 and out == ""
+    assert err.strip().splitlines() == ["moerun replay: no routing trace given: add --routing FILE"]
+
+
+def test_the_old_bare_replay_argument_still_works_with_a_one_line_deprecation_note(small_trace, capsys):
+    code, out, err = _run(capsys, "replay", small_trace, "--slots", "2", "--no-baselines", "--json")
+    assert code == 0, err
+    assert json.loads(out)["trace"]["file"] == str(small_trace)
+    notes = [line for line in err.splitlines() if "deprecated" in line]
+    assert len(notes) == 1 and "--routing FILE" in notes[0] and notes[0].startswith("moerun replay: note:")
+
+
+def test_the_old_plan_trace_option_still_reads_the_trace_with_a_one_line_deprecation_note(tmp_path, small_trace, capsys):
+    common = ["plan", "--shape", _shape(tmp_path), "--mem-cap", "12MiB", "--link-speed", "1GB/s", "--evict", "lru", "--json"]
+    code, new_out, err = _run(capsys, *common, "--routing", small_trace)
+    assert code == 0, err
+    assert "deprecated" not in err
+    code, old_out, err = _run(capsys, *common, "--trace", small_trace)
+    assert code == 0, err
+    notes = [line for line in err.splitlines() if "deprecated" in line]
+    assert len(notes) == 1 and notes[0].startswith("moerun plan: note: --trace FILE") and "--routing FILE" in notes[0]
+    assert json.loads(old_out)["trace"]["file"] == json.loads(new_out)["trace"]["file"] == str(small_trace)
+
+
+@pytest.mark.parametrize("argv", [
+    ("replay", "{t}", "--routing", "{t}"),
+    ("plan", "--shape", "{s}", "--mem-cap", "12MiB", "--link-speed", "1GB/s", "--trace", "{t}", "--routing", "{t}"),
+])
+def test_a_trace_given_in_both_spellings_is_refused_in_one_line(tmp_path, small_trace, capsys, argv):
+    argv = [a.format(t=small_trace, s=_shape(tmp_path)) for a in argv]
+    code, out, err = _run(capsys, *argv)
+    assert code == 2 and out == ""
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and "given twice" in lines[0] and "--routing FILE" in lines[0]
+
+
+# ---------------------------------------------------------------------------- "written to" notices
+
+
+_TEXT = "stone river lamp the bright cold runs under over " * 20
+
+
+def _writer_argv(kind: str, model, tmp_path, dest) -> list:
+    text = tmp_path / "in.txt"
+    text.write_text(_TEXT)
+    return {
+        "generate": ["generate", "--model", model, "--prompt", "hi", "--max-new", "2", "--trace", dest],
+        "record": ["record", "--model", model, "--text", text, "--trace", dest],
+        "probe": ["probe", "--sizes", "64KiB", "--runs", "1", "--dir", tmp_path, "--save", dest],
+        "quantize": ["quantize", "--model", model, dest, "--no-score", "--method", "rtn"],
+        "synth": ["synth", dest, "--layers", "1", "--experts", "2", "--d-model", "16", "--d-expert", "16"],
+    }[kind]
+
+
+@pytest.mark.parametrize("json_flag", [[], ["--json"]], ids=["text", "json"])
+@pytest.mark.parametrize(("kind", "what"), [("generate", "trace"), ("record", "trace"), ("probe", "results"),
+                                            ("quantize", "model directory"), ("synth", "model directory")])
+def test_every_written_to_notice_goes_to_stderr_as_one_line(small_model, tmp_path, capsys, kind, what, json_flag):
+    dest = tmp_path / ("out" if kind in ("quantize", "synth") else "out.file")
+    code, out, err = _run(capsys, *_writer_argv(kind, small_model, tmp_path, dest), *json_flag)
+    assert code == 0, err
+    if json_flag:
+        json.loads(out)  # stdout is the document alone (which may name the file as data)
+    else:
+        assert str(dest) not in out and "written" not in out and "wrote" not in out and "saved" not in out
+    notices = [line for line in err.splitlines() if "written to" in line]
+    assert notices == [line for line in notices if line.startswith(f"moerun {kind}: {what} written to {dest}")]
+    assert len(notices) == 1
+
+
+def test_replay_writes_its_plot_notice_to_stderr(monkeypatch, small_trace, tmp_path, capsys):
+    import moerun.cli.plot as plot
+
+    dest = tmp_path / "p.png"
+    monkeypatch.setattr(plot, "require_matplotlib", lambda: None)
+    monkeypatch.setattr(plot, "plot_replay", lambda path, *a, **k: (open(path, "wb").close(), {"file": str(path)})[1])
+    code, out, err = _run(capsys, "replay", "--routing", small_trace, "--slots", "2", "--no-baselines", "--plot", dest)
+    assert code == 0, err
+    assert str(dest) not in out
+    assert [line for line in err.splitlines() if "written to" in line] == [f"moerun replay: plot written to {dest}"]
+
+
+def test_generate_quiet_prints_no_written_to_notice(small_model, tmp_path, capsys):
+    dest = tmp_path / "t.npz"
+    code, out, err = _run(capsys, "generate", "--model", small_model, "--prompt", "hi", "--max-new", "2", "--trace", dest,
+                          "--quiet")
+    assert code == 0 and dest.exists()
+    assert err == ""
