@@ -23,10 +23,10 @@ def run_json(engine, gen=None) -> dict:
                 "prompt_tokens": len(gen.prompt_ids),
                 "new_tokens": len(gen.new_ids),
                 "stop": gen.stop,
-                "prefill_ms": gen.prefill_ns / 1e6,
+                "prefill_s": gen.prefill_ns / 1e9,
                 "prefill_tok_s": gen.prefill_tok_s,
                 "decode_steps": gen.decode_steps,
-                "decode_ms": gen.decode_ns / 1e6,
+                "decode_s": gen.decode_ns / 1e9,
                 "decode_tok_s": gen.decode_tok_s,
             }
         )
@@ -40,7 +40,7 @@ def run_json(engine, gen=None) -> dict:
         doc["cap_exceeded"] = chk["exceeded"]
         doc["cap_allowance_bytes"] = chk["allowance_bytes"]
     if gen is not None and "pool" in st and gen.decode_ns + gen.prefill_ns:
-        doc["stall_share"] = st["pool"]["stall_ns"] / (gen.decode_ns + gen.prefill_ns)
+        doc["stall_share"] = st["pool"]["stall_s"] * 1e9 / (gen.decode_ns + gen.prefill_ns)
     return doc
 
 
@@ -81,12 +81,12 @@ def run_text(engine, gen=None) -> str:
             lines.append(
                 f"prefetch: {pf['guesses']} guesses, {pf['loads']} loads, {pf['used']} used "
                 f"({pct(pf['accuracy'])} accurate), {fmt_bytes(pf['wasted_bytes'])} wasted, "
-                f"{pf['hidden_ns'] / 1e6:.1f} ms of page-in hidden"
+                f"{pf['hidden_s'] * 1e3:.1f} ms of page-in hidden"
                 + ("" if doc.get("reader_alive", True) else "; the reader process exited, so the engine read for itself")
             )
         stall = doc.get("stall_share")
         lines.append(
-            f"paged in {fmt_bytes(pool['bytes_paged_in'])}; stalled {pool['stall_ns'] / 1e6:.1f} ms"
+            f"paged in {fmt_bytes(pool['bytes_paged_in'])}; stalled {pool['stall_s'] * 1e3:.1f} ms"
             + (f" ({pct(stall)} of run time)" if stall is not None else "")
         )
     cap = f" (cap {fmt_bytes(b.cap)})" if b.cap is not None else ""

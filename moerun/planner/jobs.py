@@ -65,7 +65,7 @@ class PlanResult:
     def to_json(self) -> dict:
         doc: dict = {
             "planned_for": self.planned_for,
-            "costs": self.costs.to_json(),
+            "costs": costs_json(self.costs),
             "calibration": self.calibration,
             "calibration_flags": self.calibration_flags,
             "calibration_age_s": self.calibration_age_s,
@@ -89,6 +89,30 @@ class PlanResult:
         if self.target is not None:
             doc["target"] = self.target
         return doc
+
+
+def _seconds(value, factor: float):
+    """A duration (or a list or mapping of them) in ``1 / factor`` seconds, as seconds."""
+    if isinstance(value, dict):
+        return {k: v / factor for k, v in value.items()}
+    if isinstance(value, list):
+        return [v / factor for v in value]
+    return value / factor
+
+
+def costs_json(costs: Costs) -> dict:
+    """The time model's costs with every duration in seconds, as every JSON document gives durations
+    (docs/guide/api.md, "Units"): ``attn_s``, ``expert_s``, ..., ``policy_s_per_access``.  (Costs.to_json
+    writes microseconds; the plan's document converts them here.)"""
+    doc: dict = {}
+    for key, value in costs.to_json().items():
+        if key.endswith("_us_per_access"):
+            doc[key.removesuffix("_us_per_access") + "_s_per_access"] = _seconds(value, 1e6)
+        elif key.endswith("_us"):
+            doc[key.removesuffix("_us") + "_s"] = _seconds(value, 1e6)
+        else:
+            doc[key] = value
+    return doc
 
 
 def _record(model_dir: Path, tokens: int) -> Trace:

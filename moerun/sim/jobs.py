@@ -133,7 +133,7 @@ class RecordResult:
     guesses: int
     cross_entropy_nats_per_token: float | None
     seconds: float
-    tokens_per_s: float | None
+    tok_s: float | None
     file_bytes: int
     window_tokens: int = 0  # the model's context (not in the JSON document: the text summary says it)
 
@@ -153,7 +153,7 @@ class RecordResult:
             "guesses": self.guesses,
             "cross_entropy_nats_per_token": self.cross_entropy_nats_per_token,
             "seconds": self.seconds,
-            "tokens_per_s": self.tokens_per_s,
+            "tok_s": self.tok_s,
             "file_bytes": self.file_bytes,
         }
 
@@ -243,7 +243,7 @@ def record(trace: str | os.PathLike, model_dir: str | os.PathLike | None = None,
             guesses=int(tr.guesses.shape[3]) if tr.guesses is not None else 0,
             cross_entropy_nats_per_token=nll / predicted if predicted else None,
             seconds=elapsed,
-            tokens_per_s=tr.n_tokens / elapsed if elapsed else None,
+            tok_s=tr.n_tokens / elapsed if elapsed else None,
             file_bytes=Path(trace).stat().st_size,
             window_tokens=c.max_seq_len,
         )

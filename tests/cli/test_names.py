@@ -165,3 +165,91 @@ def test_generate_quiet_prints_no_written_to_notice(small_model, tmp_path, capsy
                           "--quiet")
     assert code == 0 and dest.exists()
     assert err == ""
+
+
+# ---------------------------------------------------------------------------- one unit
+
+
+RATES = {"tok_s", "gb_s"}  # a rate's key names its unit over seconds: tokens per second, 10^9 bytes per second
+OTHER_UNITS = ("_ns", "_us", "_ms", "_millis", "_micros", "_nanos", "_minutes", "_hours")
+
+
+def _keys(doc, path="$"):
+    """Every (path, key, value) of a JSON document."""
+    if isinstance(doc, dict):
+        for k, v in doc.items():
+            yield path, k, v
+            yield from _keys(v, f"{path}.{k}")
+    elif isinstance(doc, list):
+        for i, v in enumerate(doc):
+            yield from _keys(v, f"{path}[{i}]")
+
+
+def _json_documents(small_model, small_trace, tmp_path, capsys) -> dict:
+    text = tmp_path / "in.txt"
+    text.write_text(_TEXT)
+    runs = {
+        "generate": ["generate", "--model", small_model, "--prompt", "hi", "--max-new", "6", "--mem-cap", "1GiB",
+                     "--slots", "2,2,2", "--prefetch", "1"],
+        "score": ["score", "--model", small_model, "--text", text, "--slots", "2,2,2"],
+        "verify": ["verify", "--model", small_model, "--prompt", "hi", "--max-new", "2", "--slots", "2,2,2"],
+        "record": ["record", "--model", small_model, "--text", text, "--trace", tmp_path / "r.npz"],
+        "replay": ["replay", "--routing", tmp_path / "r.npz", "--slots", "2", "--prefetch", "1", "--no-baselines"],
+        "probe": ["probe", "--sizes", "64KiB", "--runs", "1", "--dir", tmp_path],
+        "plan": ["plan", "--shape", _shape(tmp_path), "--routing", small_trace, "--mem-cap", "12MiB", "--link-speed", "1GB/s",
+                 "--evict", "lru"],
+        "synth": ["synth", tmp_path / "syn", "--layers", "1", "--experts", "2", "--d-model", "16", "--d-expert", "16"],
+        "inspect": ["inspect", "--model", small_model],
+    }
+    docs = {}
+    for name, argv in runs.items():
+        code, out, err = _run(capsys, *argv, "--json")
+        assert code == 0, (name, err)
+        docs[name] = json.loads(out)
+    return docs
+
+
+def test_every_json_duration_is_in_seconds(small_model, small_trace, tmp_path, capsys):
+    docs = _json_documents(small_model, small_trace, tmp_path, capsys)
+    for name, doc in docs.items():
+        for path, key, value in _keys(doc):
+            assert not key.endswith(OTHER_UNITS) and not any(f"{u}_" in key for u in OTHER_UNITS), f"{name}: {path}.{key}"
+            assert "per_s" not in key, f"{name}: {path}.{key} (a rate is written <unit>_s: tok_s, gb_s)"
+            if key.endswith("_s") and key not in RATES and value is not None:
+                assert isinstance(value, (int, float, list, dict)), f"{name}: {path}.{key}"
+    # the figures are seconds, not another unit under a new name
+    g = docs["generate"]
+    assert g["decode_s"] == pytest.approx(g["decode_steps"] / g["decode_tok_s"], rel=1e-6)
+    assert 0 <= g["pool"]["stall_s"] <= g["prefill_s"] + g["decode_s"]
+    assert g["stall_share"] == pytest.approx(g["pool"]["stall_s"] / (g["prefill_s"] + g["decode_s"]), rel=1e-6)
+    assert 0 <= g["pool"]["prefetch"]["hidden_s"] < 60 and 0 <= g["pool"]["pagein_s"] < 60
+    s = docs["score"]
+    assert s["tok_s"] == pytest.approx(s["predicted_tokens"] / s["forward_s"], rel=1e-6)
+    assert 0 <= s["stall_s"] <= s["forward_s"]
+    r = docs["record"]
+    assert r["tok_s"] == pytest.approx(r["tokens"] / r["seconds"], rel=1e-6)
+    p = docs["plan"]
+    assert p["costs"]["expert_s"] == pytest.approx(50e-6)  # the shape file's 50 us
+    assert p["costs"]["attn_s"] == pytest.approx([100e-6, 100e-6])
+    assert p["recommended"]["step_s"] == pytest.approx(1 / p["recommended"]["tok_s"], rel=1e-6)
+    for block in docs["probe"]["blocks"]:
+        warm = block["warm"]
+        assert warm["gb_s"] == pytest.approx(block["bytes"] / warm["p50_s"] / 1e9, rel=1e-4)
+    assert docs["probe"]["schema"] == "moerun-probe/2"
+
+
+def test_a_saved_probe_of_the_old_schema_in_milliseconds_is_read_as_seconds(tmp_path):
+    from moerun.prober.saved import load_probe
+
+    run = {"regime": "warm", "verified": True, "reason": None, "runs": 3, "discarded": 0, "p50_ms": 0.1, "p95_ms": 0.2,
+           "p99_ms": 0.3, "max_ms": 0.4, "mean_ms": 0.15, "gb_s": 4.0, "of_ceiling": 0.5}
+    old = {"schema": "moerun-probe/1", "machine": {}, "ceiling": {"gb_s": 8.0, "best_ms": 2.0}, "runs": 3,
+           "blocks": [{"label": "64 KiB", "source": "tempfile", "bytes": 65536, "warm": run, "cold": {**run, "regime": "cold"}}]}
+    path = tmp_path / "old.json"
+    path.write_text(json.dumps(old))
+    doc = load_probe(path)
+    assert doc["schema"] == "moerun-probe/2"
+    assert doc["ceiling"]["best_s"] == pytest.approx(2e-3) and "best_ms" not in doc["ceiling"]
+    warm = doc["blocks"][0]["warm"]
+    assert (warm["p50_s"], warm["p95_s"], warm["p99_s"], warm["max_s"], warm["mean_s"]) == pytest.approx((1e-4, 2e-4, 3e-4, 4e-4, 1.5e-4))
+    assert not [k for k in warm if k.endswith("_ms")]

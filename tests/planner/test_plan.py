@@ -163,9 +163,9 @@ def test_a_hostile_shape_file_gives_one_line(tmp_path, capsys, text, phrase):
 
 
 def _probe_doc() -> dict:
-    run = {"regime": "warm", "verified": True, "reason": None, "runs": 3, "discarded": 0, "p50_ms": 0.1, "p95_ms": 0.2,
-           "p99_ms": 0.3, "max_ms": 0.4, "mean_ms": 0.15, "gb_s": 4.0, "of_ceiling": 0.5}
-    return {"schema": "moerun-probe/1", "machine": {}, "ceiling": {"gb_s": 8.0}, "runs": 3,
+    run = {"regime": "warm", "verified": True, "reason": None, "runs": 3, "discarded": 0, "p50_s": 1e-4, "p95_s": 2e-4,
+           "p99_s": 3e-4, "max_s": 4e-4, "mean_s": 1.5e-4, "gb_s": 4.0, "of_ceiling": 0.5}
+    return {"schema": "moerun-probe/2", "machine": {}, "ceiling": {"gb_s": 8.0}, "runs": 3,
             "blocks": [{"label": "64 KiB", "source": "tempfile", "bytes": 65536, "warm": run, "cold": {**run, "regime": "cold"}}]}
 
 

@@ -25,7 +25,7 @@ def _summary_text(doc: dict, window_tokens: int) -> str:
     ce = doc["cross_entropy_nats_per_token"]
     return (
         f"routed {doc['tokens']} tokens ({doc['text_tokens']} of text in {doc['windows']} windows of up to {window_tokens}, "
-        f"each opened by the bos token) through {doc['layers']} layers in {doc['seconds']:.1f} s ({doc['tokens_per_s']:.0f} tok/s)\n"
+        f"each opened by the bos token) through {doc['layers']} layers in {doc['seconds']:.1f} s ({doc['tok_s']:.0f} tok/s)\n"
         f"{doc['expert_accesses']} expert accesses (top-{doc['top_k']} of {doc['n_experts']}); guesses for {doc['lookahead']} layers ahead, "
         f"top {doc['guesses']} each\n"
         + (f"cross-entropy on this text {ce:.4f} nats/token\n" if ce is not None else "")

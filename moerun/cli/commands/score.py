@@ -59,7 +59,7 @@ def run(args) -> int:
         rows.append(["memory cap", f"{fmt_bytes(b['cap_bytes'])}; slots per layer {','.join(map(str, b['slots']))}"
                      + (" (one shared pool)" if b["split"] == "shared" else "")])
         rows.append(["page-ins", f"{doc['expert_loads'] or 0:,} experts, {fmt_bytes(doc['bytes_paged_in'] or 0)}, "
-                     f"stalled {doc['stall_ms']:.1f} ms"])
+                     f"stalled {doc['stall_s'] * 1e3:.1f} ms"])
     if options.get("link_speed") is not None:
         rows.append(["link", f"{options['link_speed'] / 1e9:.2f} GB/s (emulated)"])
     if options.get("cold"):
