@@ -5,13 +5,20 @@ from __future__ import annotations
 from moerun.cli.report import pct, table
 from moerun.files.config import RANDOM_NOTE as config_note
 from moerun.runtime.capcheck import CAP_ALLOWANCE_BYTES, cap_check, cap_warning  # noqa: F401 (the commands' names for them)
-from moerun.units import fmt_bytes, fmt_rate
+from moerun.units import SHARED_POOL, fmt_bytes, fmt_prefetch, fmt_rate
 
 NOT_ADVICE = "text from a tiny model trained on invented data; not advice"
 RANDOM_NOTE = f"{config_note} and the text is noise"  # what a generation from random weights needs said
 def model_note(config) -> str:
     """The caveat printed with any output of this model."""
     return RANDOM_NOTE if config.extra.get("synthetic") else NOT_ADVICE
+
+
+def slots_text(split: str, slots) -> str:
+    """The pool's slots in text: ``slots: 8 (shared pool)`` or ``slots per layer: 2,2,2``."""
+    if split == "shared":
+        return f"slots: {sum(slots)} ({SHARED_POOL})"
+    return f"slots per layer: {','.join(map(str, slots))}"
 
 
 def run_json(engine, gen=None) -> dict:
@@ -67,7 +74,7 @@ def run_text(engine, gen=None) -> str:
         rows = [[name, fmt_bytes(n)] for name, n in b.rows()]
         rows.append(["total / cap", f"{fmt_bytes(b.total)} / {fmt_bytes(b.cap)}"])
         lines.append(table(["budget", "size"], rows))
-        lines.append(f"slots per layer: {','.join(map(str, b.slots))}" + (" (one shared pool)" if b.split == "shared" else ""))
+        lines.append(slots_text(b.split, b.slots))
     pool = doc.get("pool")
     if pool and b.cap is not None:
         rows = [
@@ -78,8 +85,10 @@ def run_text(engine, gen=None) -> str:
         lines.append(table(["layer", "accesses", "hits", "prefetched", "misses", "hit rate"], rows))
         pf = pool["prefetch"]
         if engine.options.get("prefetch"):
+            o = engine.options
             lines.append(
-                f"prefetch: {pf['guesses']} guesses, {pf['loads']} loads, {pf['used']} used "
+                f"prefetch ({fmt_prefetch(o['prefetch'], o.get('lookahead'), o.get('prefetch_from'))}): "
+                f"{pf['guesses']} guesses, {pf['loads']} loads, {pf['used']} used "
                 f"({pct(pf['accuracy'])} accurate), {fmt_bytes(pf['wasted_bytes'])} wasted, "
                 f"{pf['hidden_s'] * 1e3:.1f} ms of page-in hidden"
                 + ("" if doc.get("reader_alive", True) else "; the reader process exited, so the engine read for itself")

@@ -45,7 +45,7 @@ class PlanResult:
     min_cap_bytes: int  # the smallest cap searched (a shared pool's with shared_pool)
     per_layer_min_cap_bytes: int  # the smallest cap of one pool per layer
     all_resident_cap_bytes: int
-    curve: dict  # {"policy": ..., "points": [{cap_bytes, slots_total, slots, prefetch, stall_share, tok_s, ...}]}
+    curve: dict  # {"policy": ..., "points": [{cap_bytes, slots_total, slots, split, prefetch, lookahead, stall_share, tok_s}]}
     layers: int  # (not in the document: the model's layers and experts per layer, for the text)
     experts: int
     note: str | None = None
@@ -82,8 +82,8 @@ class PlanResult:
         if self.recommended is not None:
             doc["mem_cap_bytes"] = self.mem_cap_bytes
             doc["slots_total"] = self.slots_total
-            doc["candidates"] = [{"split": lab, **pr.to_json()} for lab, pr in self.candidates]
-            doc["recommended"] = {"split": self.recommended_split, **self.recommended.to_json()}
+            doc["candidates"] = [prediction_json(lab, pr) for lab, pr in self.candidates]
+            doc["recommended"] = prediction_json(self.recommended_split, self.recommended)
             doc["split_comparison"] = self.split_comparison
         doc["curve"] = self.curve
         if self.target is not None:
@@ -113,6 +113,51 @@ def costs_json(costs: Costs) -> dict:
         else:
             doc[key] = value
     return doc
+
+
+def prediction_json(split: str, pr: Prediction) -> dict:
+    """One setting's prediction as every document writes a setting: the pool as ``split`` ("even", "uneven" or
+    "shared"; no ``shared`` flag beside it) and prefetch as the engine's options write it (``prefetch``, 0 for
+    none, and ``lookahead``, 1 when there is no prefetch)."""
+    doc = {"split": split, **pr.to_json()}
+    doc.pop("shared", None)
+    if not doc["prefetch"]:
+        doc["lookahead"] = 1
+    return doc
+
+
+def _curve(space: Space, policy: str, prefetches) -> tuple[list[dict], list[tuple[str, Prediction]]]:
+    """``space.curve``'s points, and the setting (split label, prediction) behind each point, so that a point can
+    name its pool and its whole prefetch setting (the points themselves carry neither the split label nor the
+    lookahead).  The setting is the one Space.curve keeps: the fastest seen so far, asking ``space.best``."""
+    seen: dict = {}
+    ask = space.best
+
+    def best(total, *args, **kwargs):
+        seen[total] = ask(total, *args, **kwargs)
+        return seen[total]
+
+    space.best = best
+    try:
+        points = space.curve(policy, prefetches)
+    finally:
+        del space.best
+    settings, kept = [], None
+    for p in points:
+        lab, pr = seen[p["slots_total"]]
+        if kept is None or pr.tok_s > kept[1].tok_s:
+            kept = (lab, pr)
+        settings.append(kept)
+    return points, settings
+
+
+def _point(point: dict, label: str, pr: Prediction) -> dict:
+    """A curve point with its pool as ``split`` and its prefetch setting whole."""
+    out = {k: v for k, v in point.items() if k != "shared"}
+    out["split"] = label
+    out["prefetch"] = pr.prefetch
+    out["lookahead"] = pr.lookahead if pr.prefetch else 1
+    return out
 
 
 def _record(model_dir: Path, tokens: int) -> Trace:
@@ -290,8 +335,8 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
     step(4, "speed against cap")
     curve_policy = rec.policy if rec else "lru"
     curve_pf = [(rec.prefetch, rec.lookahead or 1)] if rec else space.prefetches
-    curve = space.curve(curve_policy, curve_pf)
-    result.curve = {"policy": curve_policy, "points": curve}
+    curve, settings = _curve(space, curve_policy, curve_pf)
+    result.curve = {"policy": curve_policy, "points": [_point(p, *s) for p, s in zip(curve, settings)]}
     if target is not None:
         step(5, "the smallest cap for the target")
         smallest = space.smallest_cap(target, curve_policy, curve_pf, curve)

@@ -33,21 +33,23 @@ class ReplayResult:
 
     trace: dict  # what the trace holds (tokens, layers, top_k, ...) and its file
     slots: list[int]
-    pool: str  # "per-layer" or "shared"
+    split: str  # "even" (a quota per layer, the same slots for each) or "shared" (one pool for every layer)
     policies: list[str]
     expert_bytes: int | None
     results: list[dict]
     prefetch_recall: list[dict]
     baselines: list[dict] | None = None  # lru on the time-shuffled and the random-routing trace
     baseline_seed: int | None = None
-    prefetch: dict | None = None  # with prefetch: the guesses, lookahead and the records with prefetch
+    prefetch: int = 0  # the prefetch setting simulated (0: none), as the engine's options write it
+    lookahead: int = 1
+    prefetch_results: list[dict] | None = None  # with prefetch: the records with prefetch
     plot: dict | None = None  # what 'moerun replay --plot' drew (the command adds it)
 
     def to_json(self) -> dict:
         doc: dict = {
             "trace": self.trace,
             "slots": self.slots,
-            "pool": self.pool,
+            "split": self.split,
             "policies": self.policies,
             "expert_bytes": self.expert_bytes,
             "results": self.results,
@@ -56,8 +58,10 @@ class ReplayResult:
             doc["baselines"] = self.baselines
             doc["baseline_seed"] = self.baseline_seed
         doc["prefetch_recall"] = self.prefetch_recall
-        if self.prefetch is not None:
-            doc["prefetch"] = self.prefetch
+        doc["prefetch"] = self.prefetch
+        doc["lookahead"] = self.lookahead
+        if self.prefetch_results is not None:
+            doc["prefetch_results"] = self.prefetch_results
         if self.plot is not None:
             doc["plot"] = self.plot
         return doc

@@ -32,9 +32,9 @@ def _options(command: str) -> dict:
     return {s: a for a in sub._actions if a.help is not argparse.SUPPRESS for s in a.option_strings}
 
 
-def _shape(tmp_path):
+def _shape(tmp_path, layers=2, experts=4):
     p = tmp_path / "shape.json"
-    p.write_text(json.dumps({"layers": 2, "experts": 4, "top_k": 2, "expert_bytes": 1 << 20, "dense_bytes": 1 << 22,
+    p.write_text(json.dumps({"layers": layers, "experts": experts, "top_k": 2, "expert_bytes": 1 << 20, "dense_bytes": 1 << 22,
                              "expert_us": 50.0, "dense_layer_us": 100.0}))
     return p
 
@@ -253,3 +253,80 @@ def test_a_saved_probe_of_the_old_schema_in_milliseconds_is_read_as_seconds(tmp_
     warm = doc["blocks"][0]["warm"]
     assert (warm["p50_s"], warm["p95_s"], warm["p99_s"], warm["max_s"], warm["mean_s"]) == pytest.approx((1e-4, 2e-4, 3e-4, 4e-4, 1.5e-4))
     assert not [k for k in warm if k.endswith("_ms")]
+
+
+# ---------------------------------------------------------------------------- a prefetch setting and a shared pool, one way each
+
+
+def _texts_and_docs(small_model, tmp_path, capsys, shared: bool) -> tuple[dict, dict]:
+    """Text and JSON of every command that shows a pool or a prefetch setting, with both asked for."""
+    text = tmp_path / "in.txt"
+    text.write_text(_TEXT)
+    trace = tmp_path / "r.npz"
+    assert _run(capsys, "record", "--model", small_model, "--text", text, "--trace", trace, "--force")[0] == 0
+    pool = ["--shared-pool"] if shared else []
+    runs = {
+        "generate": ["generate", "--model", small_model, "--prompt", "hi", "--max-new", "6", "--mem-cap", "1GiB",
+                     *(["--slots", "2,2,2"] if not shared else []), *pool, "--prefetch", "2", "--lookahead", "2"],
+        "score": ["score", "--model", small_model, "--text", text, "--mem-cap", "1GiB", *(["--slots", "2,2,2"] if not shared else []),
+                  *pool, "--prefetch", "2", "--lookahead", "2"],
+        "replay": ["replay", "--routing", trace, "--slots", "4", *pool, "--prefetch", "2", "--lookahead", "2", "--no-baselines"],
+        "plan": ["plan", "--shape", _shape(tmp_path, layers=3, experts=8), "--routing", trace, "--mem-cap", "16MiB",
+                 "--link-speed", "1GB/s", "--evict", "lru", *pool],
+    }
+    texts, docs = {}, {}
+    for name, argv in runs.items():
+        code, out, err = _run(capsys, *argv)
+        assert code == 0, (name, err)
+        texts[name] = (out + err).replace(str(tmp_path), "TMP")  # the test's directory is named after the test
+        code, out, err = _run(capsys, *argv, "--json")
+        assert code == 0, (name, err)
+        docs[name] = json.loads(out)
+    return texts, docs
+
+
+def test_a_prefetch_setting_is_written_one_way_in_text_and_json(small_model, tmp_path, capsys):
+    import re
+
+    texts, docs = _texts_and_docs(small_model, tmp_path, capsys, shared=False)
+    for name, text in texts.items():
+        assert not re.search(r"\b\d+ ?x ?\d+\b", text), f"{name}: a prefetch setting written NxL:\n{text}"
+        assert "prefetch 2 x" not in text and "prefetch 2," not in text
+        if name != "plan":  # plan shows the settings it searched, each as its options
+            assert "--prefetch 2 --lookahead 2" in text, f"{name}:\n{text}"
+    assert re.search(r"--prefetch \d --lookahead \d", texts["plan"]) and "no prefetch" in texts["plan"]
+    # in JSON: "prefetch" (a number, 0 for none) and "lookahead" beside it, as the engine's options write them
+    g = docs["generate"]["options"]
+    assert (g["prefetch"], g["lookahead"]) == (2, 2)
+    r = docs["replay"]
+    assert (r["prefetch"], r["lookahead"]) == (2, 2) and isinstance(r["prefetch_results"], list)
+    p = docs["plan"]
+    for setting in [*p["candidates"], p["recommended"], *p["curve"]["points"]]:
+        assert isinstance(setting["prefetch"], int) and isinstance(setting["lookahead"], int)
+        if setting["prefetch"] == 0:
+            assert setting["lookahead"] == 1  # as the engine's options say it when there is no prefetch
+    assert {(c["prefetch"], c["lookahead"]) for c in p["candidates"]} >= {(0, 1), (2, 1), (2, 2)}
+
+
+def test_a_shared_pool_is_written_one_way_in_text_and_json(small_model, tmp_path, capsys):
+    import re
+
+    texts, docs = _texts_and_docs(small_model, tmp_path, capsys, shared=True)
+    for name, text in texts.items():
+        assert "shared pool" in text, f"{name}:\n{text}"
+        # every "shared" is the shared pool or its option (not "one pool shared by", "shared slots", a bare "shared")
+        others = [m.group(0) for m in re.finditer(r"\S*shared\S*(?: \S+)?", text)
+                  if not m.group(0).startswith(("shared pool", "--shared-pool", "(shared pool"))]
+        assert not others, f"{name}: {others}"
+    # in JSON: "split": "shared", as the engine's budget writes it; no "shared" flag, no "pool" naming a kind
+    assert docs["generate"]["budget"]["split"] == "shared"
+    assert docs["score"]["budget"]["split"] == "shared"
+    assert docs["replay"]["split"] == "shared"
+    p = docs["plan"]
+    assert p["recommended"]["split"] in ("shared", "even", "uneven")
+    assert any(c["split"] == "shared" for c in p["candidates"])
+    assert any(pt["split"] == "shared" for pt in p["curve"]["points"])
+    for name, doc in docs.items():
+        for path, key, value in _keys(doc):
+            assert key != "shared", f"{name}: {path}.shared"
+            assert not (key == "pool" and isinstance(value, str)), f"{name}: {path}.pool = {value!r}"

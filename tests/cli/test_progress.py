@@ -61,7 +61,7 @@ def test_a_long_replay_writes_plain_progress_lines_to_a_pipe_and_json_only_on_st
     assert all(PLAIN.match(line) and line.startswith("replay:") for line in lines), proc.stderr[-500:]
     if json_flag:
         doc = json.loads(proc.stdout)  # exactly one document: anything else on stdout would not parse
-        assert doc["pool"] == "shared"
+        assert doc["split"] == "shared"
     else:
         assert "hit rate" in proc.stdout and not re.search(r"^replay: \d+  \d+ s", proc.stdout, re.M)
 

@@ -249,13 +249,13 @@ def test_plan_with_a_shared_pool_accepts_a_cap_only_a_shared_pool_fits(tmp_path,
     assert code == 0, err
     doc = json.loads(out)
     assert doc["min_cap_bytes"] == 6 * MIB and doc["per_layer_min_cap_bytes"] == 12 * MIB
-    assert doc["slots_total"] == 4 and doc["recommended"]["shared"] and doc["split_comparison"] is None
+    assert doc["slots_total"] == 4 and doc["recommended"]["split"] == "shared" and doc["split_comparison"] is None
     assert all(c["split"] == "shared" for c in doc["candidates"])
     assert [p["slots_total"] for p in doc["curve"]["points"]] == [2, 6, *range(8, 33, 4)]  # from the shared pool's minimum
-    assert doc["curve"]["points"][0]["cap_bytes"] == 6 * MIB and doc["curve"]["points"][0]["shared"]
+    assert doc["curve"]["points"][0]["cap_bytes"] == 6 * MIB and doc["curve"]["points"][0]["split"] == "shared"
     code, out, err = _run([*common, "--shared-pool"], capsys)
     assert code == 0, err
-    assert "recommended: one shared pool" in out and "shared pool: the only kind of pool that fits this cap" in out
+    assert "recommended: shared pool, --evict" in out and "shared pool: the only kind of pool that fits this cap" in out
     code, out, err = _run(common, capsys)  # without --shared-pool the cap is too small, and the message says what fits
     assert code == 2 and out == "" and len(err.strip().splitlines()) == 1
     assert f"smallest cap that works is {12 * MIB} bytes" in err and f"--shared-pool, {6 * MIB} bytes" in err

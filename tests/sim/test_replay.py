@@ -402,11 +402,11 @@ def test_prefetch_simulation_without_guesses_equals_the_plain_replay():
 
 def test_replay_with_prefetch_reports_prefetched_hits_and_skips_the_optimum(recorded, capsys):
     doc = _replay_json(capsys, recorded[0], "--slots", "4", "--prefetch", "2", "--lookahead", "2", "--no-baselines")
-    pf = doc["prefetch"]
-    assert (pf["guesses"], pf["lookahead"]) == (2, 2)
-    assert {r["policy"] for r in pf["results"]} == {"lru", "lfu", "fifo"}
+    assert (doc["prefetch"], doc["lookahead"]) == (2, 2)  # the setting as the engine's options write it
+    pf = doc["prefetch_results"]
+    assert {r["policy"] for r in pf} == {"lru", "lfu", "fifo"}
     trace = read_trace(recorded[0])
-    for r in pf["results"]:
+    for r in pf:
         if r["layer"] == "all":
             # 2 guesses for layer 1 (from layer 0) and 4 for layer 2 (from layers 0 and 1), per token
             assert r["guesses"] == trace.n_tokens * (2 + 4)
@@ -583,7 +583,7 @@ def test_replay_of_a_live_shared_pool_run_reproduces_its_hits_and_misses(bundled
     path = tmp_path / "live.npz"
     write_trace(path, trace)
     doc = _replay_json(capsys, path, "--shared-pool", "--evict", evict, "--slots", str(size), "--no-baselines")
-    assert doc["pool"] == "shared"
+    assert doc["split"] == "shared"
     got = replay.overall(doc["results"], evict)[size]
     assert pool["misses"] > 0
     assert (got["accesses"], got["misses"], got["prefill_loads"]) == (pool["accesses"], pool["misses"], pool["prefill_loads"])
