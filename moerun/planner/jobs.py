@@ -9,6 +9,7 @@ from __future__ import annotations
 import math
 import os
 import time
+import warnings
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -274,15 +275,16 @@ def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int,
 
 def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None = None, *, target: float | None = None,
          link_speed: float | str | None = None, probe: str | os.PathLike | None = None, regime: str | None = None,
-         trace: str | os.PathLike | None = None, max_tokens: int | None = None, shape: str | os.PathLike | None = None,
+         routing: str | os.PathLike | None = None, max_tokens: int | None = None, shape: str | os.PathLike | None = None,
          evict: str | Sequence[str] | None = None, shared_pool: bool = False, recalibrate: bool = False,
-         progress: Callable[[int, str], None] | None = None, notice: Callable[[str], None] | None = None) -> PlanResult:
+         progress: Callable[[int, str], None] | None = None, notice: Callable[[str], None] | None = None,
+         trace: str | os.PathLike | None = None) -> PlanResult:
     """Predict decode speed for ``mem_cap`` and recommend slots per layer, policy and prefetch (``moerun plan``).
 
     Page-in costs come from ``link_speed`` (emulated link) or a saved ``probe`` file (its ``regime``, "warm"
-    or "cold"); routing from a ``trace`` file, or recorded now from the model's held-out text (its first
-    ``max_tokens`` tokens, default 2048); ``shape`` plans for a model described by a JSON shape file (with
-    ``trace``).  ``evict``: the policies to consider (default every online one); ``shared_pool`` also
+    or "cold"); routing from a ``routing`` trace file (the command's ``--routing``), or recorded now from the
+    model's held-out text (its first ``max_tokens`` tokens, default 2048); ``shape`` plans for a model described
+    by a JSON shape file (with ``routing``).  ``trace``: the old name of ``routing`` (a DeprecationWarning).  ``evict``: the policies to consider (default every online one); ``shared_pool`` also
     considers one pool for all layers; ``target``: also find the smallest cap reaching this tok/s.
     ``progress(step, what)`` as the work advances (steps 0 to 5); ``notice(line)`` when something the user
     should know happens on the way (a cached calibration that is not valid, measured again).
@@ -291,6 +293,13 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
         if progress is not None:
             progress(i, what)
 
+    if trace is not None:
+        if routing is not None:
+            raise BadOption("the trace to read was given twice (trace= and routing=); give it once, as routing=")
+        warnings.warn("moerun.plan(trace=...) is deprecated and goes in the next release; write routing=...",
+                      DeprecationWarning, stacklevel=2)
+        routing = trace
+    trace = routing
     inp = _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict, shared_pool)
     space, cal_note, cal = _space(inp, shared_pool, recalibrate, step, notice)
     m = inp["model"]

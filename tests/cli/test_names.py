@@ -330,3 +330,20 @@ def test_a_shared_pool_is_written_one_way_in_text_and_json(small_model, tmp_path
         for path, key, value in _keys(doc):
             assert key != "shared", f"{name}: {path}.shared"
             assert not (key == "pool" and isinstance(value, str)), f"{name}: {path}.pool = {value!r}"
+
+
+def test_the_library_plan_reads_its_trace_as_routing_and_the_old_keyword_warns(tmp_path, small_trace):
+    import warnings
+
+    import moerun
+    from moerun.errors import BadOption
+
+    common = {"mem_cap": "12MiB", "shape": _shape(tmp_path), "link_speed": "1GB/s", "evict": "lru"}
+    new = moerun.plan(routing=str(small_trace), **common)
+    with pytest.warns(DeprecationWarning, match="routing="):
+        old = moerun.plan(trace=str(small_trace), **common)
+    assert old.to_json() == new.to_json() and new.trace["file"] == str(small_trace)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        with pytest.raises(BadOption, match="given twice"):
+            moerun.plan(trace=str(small_trace), routing=str(small_trace), **common)

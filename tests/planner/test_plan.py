@@ -277,11 +277,11 @@ def test_plans_smallest_caps_are_the_engines(small_model, tmp_path):
     shared, even = (minimum_cap(*args, split, store.codec.scratch_bytes()) for split in ("shared", "even"))
     store.close()
     assert shared < even
-    result = moerun.plan(small_model, shared, trace=str(trace), link_speed="2GB/s", evict="lru", shared_pool=True)
+    result = moerun.plan(small_model, shared, routing=str(trace), link_speed="2GB/s", evict="lru", shared_pool=True)
     assert (result.min_cap_bytes, result.per_layer_min_cap_bytes) == (shared, even)
     assert result.recommended.shared and result.slots_total == 2
     with pytest.raises(ImpossibleBudget, match="shared"):
-        moerun.plan(small_model, shared - 1, trace=str(trace), link_speed="2GB/s", evict="lru", shared_pool=True)
+        moerun.plan(small_model, shared - 1, routing=str(trace), link_speed="2GB/s", evict="lru", shared_pool=True)
 
 
 # ---------------------------------------------------------------------------- speeds people can tell apart (issue 23, item 18)

@@ -46,7 +46,7 @@ def run(args) -> int:
 
     try:
         result = plan(args.model, args.mem_cap, target=args.target, link_speed=args.link_speed, probe=args.probe,
-                      regime=args.regime, trace=args.routing, max_tokens=args.max_tokens, shape=args.shape,
+                      regime=args.regime, routing=args.routing, max_tokens=args.max_tokens, shape=args.shape,
                       evict=args.evict, shared_pool=args.shared_pool, recalibrate=args.recalibrate, progress=prog.update,
                       notice=notice)
     finally:
