@@ -41,6 +41,8 @@ _LAZY = {
     "QuantizeResult": "moerun.makers.jobs",
     "synth": "moerun.makers.jobs",
     "SynthResult": "moerun.makers.jobs",
+    "synth_open": "moerun.makers.jobs",
+    "SynthOpenResult": "moerun.makers.jobs",
 }
 
 __all__ = [
@@ -63,6 +65,7 @@ __all__ = [
     "ReplayResult",
     "Sampling",
     "ScoreResult",
+    "SynthOpenResult",
     "SynthResult",
     "VerifyResult",
     "default_model_dir",
@@ -75,6 +78,7 @@ __all__ = [
     "replay",
     "score",
     "synth",
+    "synth_open",
     "verify",
 ]
 

@@ -18,13 +18,16 @@ from moerun.checks.verify import Outcome, Setting
 from moerun.checks.verify import verify as verify_settings
 from moerun.errors import BadInput, BadOption
 from moerun.files.bundled import resolve_model
+from moerun.files.ckpt_config import is_open_checkpoint
+from moerun.files.ckpt_store import open_store
 from moerun.files.config import RANDOM_NOTE as CONFIG_NOTE
 from moerun.files.config import ModelConfig
 from moerun.files.store import ModelStore
 from moerun.model.sampling import Sampling
 from moerun.model.tokenizer import Tokenizer, read_text_file
+from moerun.runtime.budget import fixed_bytes, minimum_cap
 from moerun.runtime.capcheck import cap_check, cap_warning
-from moerun.runtime.options import check_against_config, load, parse_slot_list
+from moerun.runtime.options import EngineOptions, check_against_config, load, parse_slot_list
 from moerun.units import parse_rate, parse_size
 
 RANDOM_NOTE = f"{CONFIG_NOTE} and the text is noise"  # what a run of random weights needs said
@@ -78,10 +81,73 @@ class InspectResult:
         return doc
 
 
-def inspect(model_dir: str | os.PathLike | None = None, *, check: bool = False) -> InspectResult:
+@dataclass
+class CheckpointInspectResult:
+    """What ``inspect`` finds in an open checkpoint: its architecture, shards, expert layout and spans, and the
+    bytes as stored and as the engine holds them.  ``check``: an open checkpoint records no digests."""
+
+    model_dir: str
+    config: ModelConfig  # as the engine runs it (routed layers numbered in stack order)
+    checkpoint: dict  # moerun.files.checkpoint.Checkpoint.summary()
+    first_expert: dict  # layer 0's expert 0: its parts (file, offset, bytes) and its reads
+    dense_memory_bytes: int
+    expert_bytes: int  # one routed expert as stored (what a page-in reads)
+    expert_storage: str
+    experts_total_bytes: int
+    kv_cache_bytes: int
+    scratch_bytes: int
+    min_cap_even_bytes: int
+    min_cap_shared_bytes: int
+    check: dict | None = None
+
+    @property
+    def ok(self) -> bool:
+        return self.check is None or (self.check["recorded"] and not self.check["differ"])
+
+    def to_json(self) -> dict:
+        doc = {name: getattr(self, name) for name in self.__dataclass_fields__ if name != "check"}
+        doc["config"] = self.config.to_json()
+        doc["kind"] = "open checkpoint"
+        if self.check is not None:
+            doc["check"] = self.check
+        return doc
+
+
+def _inspect_checkpoint(model_dir: Path, check: bool) -> CheckpointInspectResult:
+    store = open_store(model_dir)
+    try:
+        c, ck = store.config, store.checkpoint
+        sp = store.spans[0][0]
+        files = ck.files
+        budget_args = (c, store.dense_nbytes, store.expert_nbytes)
+        scratch = store.codec.scratch_bytes()
+        d, kv, s = fixed_bytes(c, store.dense_nbytes, scratch)
+        return CheckpointInspectResult(
+            model_dir=str(model_dir), config=c, checkpoint=ck.summary(),
+            first_expert={
+                "layer": c.routed_blocks()[0], "expert": 0,
+                "parts": [{"tensor": p.tensor, "file": files[p.file].name, "offset": p.offset, "bytes": p.nbytes,
+                           "dtype": p.dtype, "shape": list(p.shape)} for p in sp.parts],
+                "reads": [{"file": files[r.file].name, "offset": r.offset, "bytes": r.nbytes} for r in sp.reads],
+            },
+            dense_memory_bytes=store.dense_nbytes, expert_bytes=store.expert_nbytes, expert_storage=store.codec.name,
+            experts_total_bytes=store.expert_total_nbytes, kv_cache_bytes=kv, scratch_bytes=s,
+            min_cap_even_bytes=minimum_cap(*budget_args, "even", scratch),
+            min_cap_shared_bytes=minimum_cap(*budget_args, "shared", scratch),
+            check={"checked": 0, "recorded": False, "differ": []} if check else None,
+        )
+    finally:
+        store.close()
+
+
+def inspect(model_dir: str | os.PathLike | None = None, *, check: bool = False) -> InspectResult | CheckpointInspectResult:
     """What is in a model directory and where each byte lives (``moerun inspect``); every file of the directory is
-    read as the other jobs read it (BadModelFile otherwise).  ``check``: compare every tensor with its recorded digest."""
-    store = ModelStore.open(resolve_model(model_dir))
+    read as the other jobs read it (BadModelFile otherwise).  ``check``: compare every tensor with its recorded digest.
+    An open checkpoint gives a ``CheckpointInspectResult``."""
+    model_dir = resolve_model(model_dir)
+    if is_open_checkpoint(model_dir):
+        return _inspect_checkpoint(model_dir, check)
+    store = ModelStore.open(model_dir)
     try:
         doc = describe(store, check_files(store))
         doc["config"] = store.config
@@ -181,17 +247,20 @@ def _given_setting(c, settings: dict) -> list[Setting] | None:
 
 def verify(model_dir: str | os.PathLike | None = None, prompt: str | None = None, *, prompt_file=None,
            prompts: int = 3, max_new: int = 24, temperature: float = 0.8, top_p: float = 0.95, seed: int = 0,
-           progress: Callable[[int, int, str], None] | None = None, **settings) -> VerifyResult:
+           max_context: int | None = None, progress: Callable[[int, int, str], None] | None = None,
+           **settings) -> VerifyResult:
     """Run the same prompts fully resident and offloaded, and compare logits and tokens bit for bit (``moerun verify``).
 
     ``prompt`` (or the text of ``prompt_file``): one prompt; otherwise ``prompts`` held-out ones.
     ``settings``: one offloaded setting to compare, as ``load`` takes it (``mem_cap``, ``slots``, ``evict``,
     ``prefetch``, ``lookahead``, ``prefetch_from``, ``split``, ``link_speed``, ``cold``); without ``mem_cap``
     or ``slots``, verify's own set of caps, policies and prefetch settings.
+    ``max_context``: the KV cache's positions in every run, the reference included (``load``'s).
     ``progress(done, total, setting)`` before each setting.  ``ok`` is False on any difference.
     """
     model_dir = resolve_model(model_dir)
-    store = ModelStore.open(model_dir)
+    EngineOptions(max_context=max_context)  # checked before anything is opened
+    store = open_store(model_dir, max_context)
     c = store.config
     store.close()
     tok = Tokenizer.load(model_dir, c.vocab_size, c.bos_token_id)
@@ -210,7 +279,8 @@ def verify(model_dir: str | os.PathLike | None = None, prompt: str | None = None
         ids = [p[: max(1, c.max_seq_len - max_new)] for p in ids]  # our own excerpts: cut to leave room
     chosen = _given_setting(c, settings)
     sampling = Sampling(temperature, top_p, seed)
-    outcomes, info = verify_settings(model_dir, ids, chosen, max_new, sampling, progress=progress)
+    outcomes, info = verify_settings(model_dir, ids, chosen, max_new, sampling, progress=progress,
+                                     base={} if max_context is None else {"max_context": max_context})
     return VerifyResult(
         ok=all(o.ok for o in outcomes), prompts=len(ids), max_new=max_new, min_cap=info["min_cap"],
         resident_cap=info["resident_cap"], resident_slots=info["resident_slots"], outcomes=outcomes,

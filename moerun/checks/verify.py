@@ -85,21 +85,23 @@ def compare(ref, got) -> tuple[bool, bool, float]:
 
 
 def verify(model_dir, prompts: list[list[int]], settings: list[Setting] | None = None, max_new: int = 24,
-           sampling: Sampling | None = None, progress=None) -> tuple[list[Outcome], dict]:
+           sampling: Sampling | None = None, progress=None, base: dict | None = None) -> tuple[list[Outcome], dict]:
+    """Every setting's run against the resident one; ``base``: ``load`` settings of every run (max_context)."""
     sampling = sampling or Sampling(temperature=0.8, top_p=0.95, seed=0)
-    with load(model_dir, tokenizer=False) as eng:
+    base = base or {}
+    with load(model_dir, tokenizer=False, **base) as eng:
         st = eng.store
         min_cap = minimum_cap(st.config, st.dense_nbytes, st.expert_nbytes, "even", st.codec.scratch_bytes())
         full_cap = eng.budget.total
         slot = eng.budget.slot
     if settings is None:
         settings = default_settings(min_cap, full_cap, slot)
-    ref, ref_slots, _ = run_once(model_dir, {}, prompts, max_new, sampling)
+    ref, ref_slots, _ = run_once(model_dir, dict(base), prompts, max_new, sampling)
     outcomes = []
     for i, s in enumerate(settings):
         if progress:
             progress(i, len(settings), s.label)
-        got, slots, hit = run_once(model_dir, s.kwargs, prompts, max_new, sampling)
+        got, slots, hit = run_once(model_dir, {**base, **s.kwargs}, prompts, max_new, sampling)
         le, te, diff = compare(ref, got)
         outcomes.append(Outcome(s, slots, le, te, diff, hit))
     info = {"min_cap": min_cap, "resident_cap": full_cap, "resident_slots": ref_slots}

@@ -113,6 +113,9 @@ def add_memory(p) -> None:
                    help="prefetch point, with --prefetch: after a layer's attention (default; more time to hide a read) or after the whole layer (better guesses)")
     p.add_argument("--link-speed", metavar="RATE", help="emulate a slower link for page-in, e.g. 2GB/s (labelled emulated)")
     p.add_argument("--cold", action="store_true", help="drop the model file from the OS page cache first")
+    p.add_argument("--max-context", type=int, metavar="N",
+                   help="positions the KV cache holds, and so the longest prompt plus output (default: the model's "
+                        "context; an open checkpoint's, at most 4096)")
     p.set_defaults(_engine_cap=True)  # --mem-cap caps the engine: the out-of-memory line may point at it
 
 
@@ -216,6 +219,7 @@ def engine_kwargs(args) -> dict:
         "split": "shared" if args.shared_pool else "even",
         "link_speed": args.link_speed,
         "cold": args.cold,
+        "max_context": args.max_context,
     }
 
 

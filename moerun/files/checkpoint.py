@@ -228,7 +228,7 @@ def make_expert_spans(layer: int, expert: int, parts: Sequence[Span], gap_limit:
     return ExpertSpans(layer, expert, (parts[0], parts[1], parts[2]), (dst[0], dst[1], dst[2]), tuple(reads))
 
 
-def _preadv_exact(fd: int, bufs: list[memoryview], offset: int) -> None:
+def preadv_exact(fd: int, bufs: list[memoryview], offset: int) -> None:
     """Fill ``bufs`` from ``offset`` of ``fd`` with os.preadv, going on after short reads; EOFError if the file ends."""
     while bufs:
         got = os.preadv(fd, bufs, offset)
@@ -252,7 +252,7 @@ def read_expert(fds: Sequence[int], spans: ExpertSpans, dst, paths: Sequence | N
         raise ValueError(f"the destination must be a writable buffer of at least {spans.slot_nbytes} bytes, got {len(view)}")
     for r in spans.reads:
         try:
-            _preadv_exact(fds[r.file], [view[o : o + n] if o != DISCARD else _DISCARD_BUF[:n] for o, n in r.pieces], r.offset)
+            preadv_exact(fds[r.file], [view[o : o + n] if o != DISCARD else _DISCARD_BUF[:n] for o, n in r.pieces], r.offset)
         except (EOFError, OSError) as e:
             where = paths[r.file] if paths is not None else f"shard {r.file}"
             why = "file ended" if isinstance(e, EOFError) else f"read failed ({e.strerror or e})"

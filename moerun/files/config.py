@@ -19,6 +19,10 @@ CONFIG_LIMIT = 16 << 20  # bytes of a config.json (a real one is a few hundred)
 # What every output about a model with random weights (config.json "synthetic": true, made by moerun synth) says
 RANDOM_NOTE = "random weights: routing is meaningless"
 
+# the open-checkpoint fields (ModelConfig) and their defaults, which a moerun model has; to_json leaves them out
+_OPEN_DEFAULTS = {"arch": "", "dense_layers": (), "d_dense": 0, "qk_norm": "none", "qkv_bias": False, "clip_qkv": None,
+                  "shared_gate": False, "eos_token_ids": ()}
+
 _INT_FIELDS = (
     "vocab_size",
     "d_model",
@@ -56,6 +60,18 @@ class ModelConfig:
     dtype: str = "F32"
     d_shared: int = 0  # hidden width of the always-on shared expert; 0 = none
     norm_topk: bool = True  # True: chosen weights p / sum(p); False: the chosen probabilities as they are
+    # The optional parts of open checkpoints' architectures (moerun.files.ckpt_store); a moerun model has none of
+    # them, and config.json cannot ask for them.  ``n_layers`` counts the layers that route to experts (all of a
+    # moerun model's); ``dense_layers`` names the places in the stack of layers with a dense MLP of ``d_dense``
+    # instead, so the stack has ``n_blocks`` layers and the routed ones are numbered 0..n_layers-1 in order.
+    arch: str = ""  # an open checkpoint's model_type ("" for a moerun model)
+    dense_layers: tuple[int, ...] = ()
+    d_dense: int = 0
+    qk_norm: str = "none"  # "per_head" (RMSNorm of each head of q and of k) or "full" (of all of q and of k)
+    qkv_bias: bool = False
+    clip_qkv: float | None = None  # q, k and v clamped to [-clip, clip]
+    shared_gate: bool = False  # the shared expert's term is scaled by sigmoid(u @ shared_gate)
+    eos_token_ids: tuple[int, ...] = ()  # generation stops at any of these
     extra: dict = field(default_factory=dict, compare=False)
 
     @property
@@ -65,6 +81,16 @@ class ModelConfig:
     @property
     def kv_dim(self) -> int:
         return self.n_kv_heads * self.head_dim
+
+    @property
+    def n_blocks(self) -> int:
+        """Layers in the stack: the routed ones and the dense ones (each has attention and a KV cache)."""
+        return self.n_layers + len(self.dense_layers)
+
+    def routed_blocks(self) -> tuple[int, ...]:
+        """The place in the stack of each routed layer, in order (routed layer i is block routed_blocks()[i])."""
+        dense = set(self.dense_layers)
+        return tuple(b for b in range(self.n_blocks) if b not in dense)
 
     def to_json(self) -> dict:
         d = asdict(self)
@@ -78,6 +104,11 @@ class ModelConfig:
             d.pop("d_shared")
         if d["norm_topk"]:
             d.pop("norm_topk")
+        for k, default in _OPEN_DEFAULTS.items():
+            if d[k] == default:
+                d.pop(k)
+            elif isinstance(d[k], tuple):
+                d[k] = list(d[k])
         return d
 
     @classmethod

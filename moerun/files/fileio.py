@@ -28,6 +28,7 @@ import ctypes
 import errno
 import fcntl
 import os
+import re
 import shutil
 import signal
 import stat
@@ -40,7 +41,10 @@ from moerun.errors import OutputError
 
 TMP_PREFIX = ".moerun-tmp-"
 # Files a model directory written by moerun may hold; a directory holding anything else is not ours to replace.
-MODEL_FILES = frozenset({"config.json", "model.safetensors", "tokenizer.json", "heldout.txt", "CARD.md", "reference.npz"})
+MODEL_FILES = frozenset({"config.json", "model.safetensors", "tokenizer.json", "heldout.txt", "CARD.md", "reference.npz",
+                         # and those of an open checkpoint (moerun synth --open-type writes them)
+                         "model.safetensors.index.json", "generation_config.json", "tokenizer_config.json"})
+SHARD_NAME = re.compile(r"model-\d{5}-of-\d{5}\.safetensors")  # an open checkpoint's weight shards
 TEXT_LIMIT = 1 << 30  # bytes of a text file the user names (--prompt-file, --text)
 JSON_LIMIT = 64 << 20  # bytes of a small JSON document (config, probe result, shape file, calibration cache)
 _NAME_CHARS = 60  # of the destination's name kept in a temporary's name (file names are limited to 255 bytes)
@@ -398,7 +402,7 @@ def _model_dir_problem(d: Path) -> str | None:
     if "config.json" not in names:
         return "it holds no config.json"
     for e in entries:
-        if e.name not in MODEL_FILES or not e.is_file(follow_symlinks=False):
+        if (e.name not in MODEL_FILES and not SHARD_NAME.fullmatch(e.name)) or not e.is_file(follow_symlinks=False):
             return f"it holds {e.name!r}, which is not part of a model"
     return None
 

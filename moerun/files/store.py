@@ -28,6 +28,7 @@ from pathlib import Path
 import numpy as np
 
 from moerun.errors import BadModelFile, BadOption, ModelFileChanged, PageInError
+from moerun.files.ckpt_config import is_open_checkpoint
 from moerun.files.codec import Codec, codec_for, packed_dense_tensors
 from moerun.files.config import ModelConfig, expert_tensor_name
 from moerun.files.modelfile import NUMPY_DTYPES, Header, TensorInfo, expert_span, read_header
@@ -201,6 +202,7 @@ class ModelStore:
         self._map: mmap.mmap | None = None
         self._map_addr = 0
         self.dense: dict[str, np.ndarray] = {}
+        self.embed = None  # the embedding table is dense["embed"] (an open checkpoint's store reads rows on demand)
         self._dense_nbytes = 0
 
     # ---------------------------------------------------------------- opening
@@ -217,6 +219,11 @@ class ModelStore:
             raise BadModelFile(f"{model_dir}: no such model directory")
         if not model_dir.is_dir():
             raise BadModelFile(f"{model_dir}: not a directory (--model takes a model directory)")
+        if is_open_checkpoint(model_dir):  # the callers that take one open it with moerun.files.ckpt_store.open_store
+            raise BadModelFile(
+                f"{model_dir}: an open checkpoint (config.json names a model_type); this command does not run on "
+                "open checkpoints yet (generate, verify, inspect, record and score do)"
+            )
         config = ModelConfig.load(model_dir)
         header = read_header(model_dir / "model.safetensors")
         _check_dense_tensors(config, header)
@@ -327,6 +334,16 @@ class ModelStore:
         return np.frombuffer(raw, dtype=np.dtype(NUMPY_DTYPES[t.dtype]).newbyteorder("<")).reshape(t.shape).copy()
 
     # ---------------------------------------------------------------- page-in
+    @property
+    def fds(self) -> tuple[int, ...]:
+        """The weight files' open descriptors (one here), as ``read_pieces`` numbers them."""
+        return (self._fd,)
+
+    def read_pieces(self, layer: int, expert: int) -> tuple[tuple[int, int, int, int], ...]:
+        """How the reader process copies an expert: ((file, offset, nbytes, slot offset),): one range here."""
+        r = self.ranges[layer][expert]
+        return ((0, r.start, r.nbytes, 0),)
+
     def set_mechanism(self, mechanism: str) -> None:
         if mechanism not in MECHANISMS:
             raise ValueError(f"unknown page-in mechanism {mechanism!r}")

@@ -17,6 +17,7 @@ from moerun.files.config import ModelConfig
 from moerun.files.packed import QuantSpec
 from moerun.makers._card import QuantReport
 from moerun.makers.quantize import quantize_model
+from moerun.makers.synth_open import DEFAULT_SHARD, OpenShape, synthesize_open
 from moerun.makers.synthetic import BITS, synth_config, synthesize
 
 # What moerun.quantize returns: the report quantize_model makes (its to_json is the --json document).
@@ -138,6 +139,51 @@ def synth(out: str | os.PathLike, *, layers: int, experts: int, d_model: int, d_
         experts_total_bytes=doc["experts_total_bytes"], seconds=doc["seconds"], seed=doc["seed"], dtype=doc["dtype"],
         config=config, note=doc["note"],
     )
+
+
+@dataclass
+class SynthOpenResult:
+    """What ``moerun.synth_open`` wrote: an open checkpoint of random weights (``moerun synth --open-type``)."""
+
+    model_dir: str
+    model_type: str
+    files: list[str]
+    file_bytes: int
+    dtype: str
+    seconds: float
+    seed: int
+    config: dict  # the config.json written
+    note: str
+
+    def to_json(self) -> dict:
+        return dict(self.__dict__)
+
+
+def synth_open(out: str | os.PathLike, *, model_type: str, layers: int, experts: int, d_model: int, d_expert: int,
+               top_k: int = 2, heads: int | None = None, kv_heads: int | None = None, head_dim: int | None = None,
+               vocab: int = 258, context: int = 4096, untied: bool = True, d_shared: int = 0, renorm: bool = False,
+               bits: int = 16, dense_layers: tuple[int, ...] = (), dense_width: int = 0, shard_bytes: int = DEFAULT_SHARD,
+               seed: int = 0, force: bool = False, progress: Callable[[int, int], None] | None = None) -> SynthOpenResult:
+    """Write an open checkpoint of random weights of ``model_type`` at ``out`` (``moerun synth --open-type``): BF16
+    (``bits`` 16) or F32 (32), sharded at ``shard_bytes``; its text is noise and its routing meaningless."""
+    shape = synth_shape(out, layers=layers, experts=experts, d_model=d_model, d_expert=d_expert, top_k=top_k,
+                        heads=heads, kv_heads=kv_heads, head_dim=head_dim, vocab=max(vocab, 257), context=context,
+                        untied=untied, d_shared=d_shared, renorm=renorm, bits=bits, seed=seed)
+    if vocab < 258:
+        raise BadOption(f"--vocab must be at least 258 for an open checkpoint (its two special tokens and 256 bytes), got {vocab}")
+    for layer in dense_layers:
+        if not 0 <= layer < layers:
+            raise BadOption(f"--dense-layers names layer {layer}, but there are {layers} (0..{layers - 1})")
+    spec = OpenShape(
+        model_type, layers, experts, d_model, d_expert, top_k=top_k, heads=shape.n_heads, kv_heads=shape.n_kv_heads,
+        head_dim=head_dim, vocab=vocab, context=context, shared_width=d_shared, dense_layers=tuple(sorted(set(dense_layers))),
+        dense_width=dense_width, norm_topk=renorm, tied=not untied, dtype={16: "BF16", 32: "F32"}[bits],
+    )
+    try:
+        doc = synthesize_open(out, spec, seed=seed, shard_bytes=shard_bytes, progress=progress, force=force)
+    except BadModelFile as e:  # the reader's own checks of the config, phrased for options
+        raise BadOption(str(e).replace("the synthesized config.json: ", "")) from None
+    return SynthOpenResult(**doc)
 
 
 def quantize(out: str | os.PathLike, model_dir: str | os.PathLike | None = None, *, expert_bits: int = 4,

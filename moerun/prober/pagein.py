@@ -41,6 +41,7 @@ import numpy as np
 
 from moerun._version import __version__
 from moerun.errors import BadInput, BadModelFile, BadOption, OutputError
+from moerun.files.ckpt_config import is_open_checkpoint
 from moerun.files.config import RANDOM_NOTE, ModelConfig
 from moerun.files.fileio import SignalsHeld
 from moerun.files.modelfile import expert_span, read_header
@@ -139,6 +140,11 @@ def model_block(model_dir: str | os.PathLike, max_offsets: int) -> Block:
     model_dir = Path(model_dir)
     if not model_dir.is_dir():
         raise BadModelFile(f"{model_dir}: no such model directory")
+    if is_open_checkpoint(model_dir):
+        raise BadModelFile(
+            f"{model_dir}: an open checkpoint (config.json names a model_type); probe does not read the expert spans of open "
+            "checkpoints yet (probe --dir measures the storage itself)"
+        )
     config = ModelConfig.load(model_dir)
     header = read_header(model_dir / "model.safetensors")
     by_expert: dict[tuple[int, int], list] = {}

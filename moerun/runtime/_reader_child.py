@@ -1,8 +1,8 @@
 """The reader process: copies guessed experts into the shared pool for the engine (standard library only).
 
 ``moerun.runtime.reader.Reader`` starts this file as ``python -I -S reader_child.py ...``
-with four inherited descriptors: the shared memory (control words, then the
-pool's slots), the model file, and two doorbells (eventfds): one the engine
+with inherited descriptors: the shared memory (control words, then the
+pool's slots), the model's weight files (one, or an open checkpoint's shards), and two doorbells (eventfds): one the engine
 rings when this process is blocked and a request comes, one this process rings
 after each result.  The layout of the control words is defined here and
 imported by the parent, so both sides read one definition.
@@ -54,7 +54,9 @@ EXPECT = 13  # when the engine expects to ask for more (monotonic ns): a lingeri
 SLOT0 = 16  # per-slot words start here
 PER_SLOT = 8
 DONE, RESULT, START, NS, PROMOTE, CANCEL = range(6)  # offsets within a slot's words
-ENTRY = 8  # words per ring entry: slot, gen, offset, nbytes
+ENTRY = 8  # words per ring entry: slot, gen, offset, nbytes, file, at, last
+# A request is one entry or several in a row (an expert stored in several places): each copies ``nbytes`` from
+# byte ``offset`` of weight file ``file`` to byte ``at`` of the slot, and the one with ``last`` set ends it.
 OK, SKIPPED, FAILED = 1, 2, 3
 
 CHUNK = 1024 * 1024  # copies go in chunks, so a cancel or a promotion is seen within one chunk
@@ -97,23 +99,28 @@ def drain(fd: int) -> None:
 
 
 class Request:
-    __slots__ = ("slot", "gen", "offset", "nbytes", "done", "start")
+    """One expert to copy: its pieces ((file, offset, nbytes, at) each), copied in order, a chunk at a time."""
 
-    def __init__(self, words):
-        self.slot, self.gen, self.offset, self.nbytes = words
-        self.done = 0  # bytes copied so far
+    __slots__ = ("slot", "gen", "pieces", "nbytes", "piece", "done", "start")
+
+    def __init__(self, slot: int, gen: int):
+        self.slot, self.gen = slot, gen
+        self.pieces: list[tuple[int, int, int, int]] = []
+        self.nbytes = 0
+        self.piece = 0  # the piece being copied
+        self.done = 0  # bytes of it copied so far
         self.start = 0
 
 
 class Server:
-    def __init__(self, mem_fd, model_fd, wake_fd, done_fd, n_slots, slot_size, ring, mechanism, parent):
+    def __init__(self, mem_fd, model_fds, wake_fd, done_fd, n_slots, slot_size, ring, mechanism, parent):
         self.n_slots, self.slot_size, self.ring = n_slots, slot_size, ring
         self.cb = ctrl_bytes(n_slots, ring)
         self.mem = mmap.mmap(mem_fd, self.cb + n_slots * slot_size)
         mv = memoryview(self.mem)
         self.c = mv[: self.cb].cast("q")
         self.pool = mv[self.cb :]
-        self.fd = model_fd
+        self.fds = list(model_fds)
         self.wake_fd = wake_fd
         self.done_fd = done_fd
         # This process always reads with preadv, whatever the engine's own mechanism: a mapped copy
@@ -123,6 +130,7 @@ class Server:
         self.parent = parent
         self.r0 = ring_base(n_slots)
         self.pending: list[Request] = []
+        self.partial: Request | None = None  # a request whose last entry has not been taken yet
         self.seen = 0
         self.rng = None
         self.seed = None
@@ -137,7 +145,13 @@ class Server:
         h = c[HEAD]
         while self.seen < h:
             b = self.r0 + ENTRY * (self.seen % self.ring)
-            self.pending.append(Request(c[b : b + 4].tolist()))
+            slot, gen, offset, nbytes, file, at, last = c[b : b + 7].tolist()
+            r = self.partial or Request(slot, gen)
+            r.pieces.append((file, offset, nbytes, at))
+            r.nbytes += nbytes
+            self.partial = None if last else r
+            if last:
+                self.pending.append(r)
             self.seen += 1
 
     def pick(self) -> Request | None:
@@ -168,27 +182,28 @@ class Server:
             pass
 
     # ------------------------------------------------------------------ reads
-    def read(self, slot: int, off: int, n: int, at: int) -> bool:
-        """Read file bytes [off, off + n) into the slot at byte ``at`` (a short read is a failure)."""
+    def read(self, slot: int, file: int, off: int, n: int, at: int) -> bool:
+        """Read bytes [off, off + n) of weight file ``file`` into the slot at byte ``at`` (a short read is a failure)."""
         base = slot * self.slot_size + at
         dst = self.pool[base : base + n]
         try:
+            fd = self.fds[file]
             got = 0
             while got < n:
-                k = os.preadv(self.fd, [dst[got:]], off + got)
+                k = os.preadv(fd, [dst[got:]], off + got)
                 if k == 0:
                     return False  # the file ended early (it shrank)
                 got += k
             if self.cold:  # every read from the device: drop what was just read from the page cache
-                os.posix_fadvise(self.fd, off, n, os.POSIX_FADV_DONTNEED)
+                os.posix_fadvise(fd, off, n, os.POSIX_FADV_DONTNEED)
             return True
-        except (OSError, ValueError):
+        except (OSError, ValueError, IndexError):
             return False
 
     def advance(self, r: Request) -> None:
         """Copy the request's next chunk; publish the request when its last chunk is in or a read fails."""
         c = self.c
-        if r.done == 0:
+        if r.piece == 0 and r.done == 0:
             if c[DIE_AFTER] and c[READS] >= c[DIE_AFTER]:
                 os._exit(70)  # a crash with this request outstanding
             jitter = c[JITTER_US]
@@ -198,11 +213,15 @@ class Server:
                     self.rng = random.Random(self.seed)
                 time.sleep(self.rng.uniform(0, jitter) / 1e6)
             r.start = time.monotonic_ns()
-        k = min(CHUNK, r.nbytes - r.done)
-        ok = self.read(r.slot, r.offset + r.done, k, r.done)
+        file, offset, nbytes, at = r.pieces[r.piece]
+        k = min(CHUNK, nbytes - r.done)
+        ok = self.read(r.slot, file, offset + r.done, k, at + r.done)
         c[BEAT] += 1
         r.done += k
-        if ok and r.done < r.nbytes:
+        if ok and r.done == nbytes and r.piece + 1 < len(r.pieces):
+            r.piece += 1
+            r.done = 0
+        if ok and r.done < nbytes:
             return
         self.pending.remove(r)
         c[READS] += 1
@@ -280,13 +299,14 @@ def die_with_parent(parent: int) -> bool:
 
 
 def main(argv: list[str]) -> int:
-    mem_fd, model_fd, wake_fd, done_fd, n_slots, slot_size, ring = (int(a) for a in argv[:7])
+    mem_fd, wake_fd, done_fd, n_slots, slot_size, ring = (int(argv[i]) for i in (0, 2, 3, 4, 5, 6))
+    model_fds = [int(a) for a in argv[1].split(",")]
     mechanism = argv[7]
     parent = int(argv[8])
     if not die_with_parent(parent):
         return 0
     try:
-        Server(mem_fd, model_fd, wake_fd, done_fd, n_slots, slot_size, ring, mechanism, parent).run()
+        Server(mem_fd, model_fds, wake_fd, done_fd, n_slots, slot_size, ring, mechanism, parent).run()
     except KeyboardInterrupt:
         return 0
     except OSError:  # a descriptor of the engine's failed: the engine is gone or closing

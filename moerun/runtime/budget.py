@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 
 from moerun.errors import ImpossibleBudget
 from moerun.files.config import ModelConfig
-from moerun.model.transformer import KVCache
+from moerun.model.transformer import PREFILL_CHUNK, KVCache
 from moerun.units import fmt_bytes, fmt_exact
 
 SLOT_ALIGN = 4096
@@ -24,33 +24,36 @@ def slot_bytes(expert_nbytes: int) -> int:
 
 
 def scratch_bytes(config: ModelConfig, codec_scratch: int = 0) -> int:
-    """Working memory of one forward pass over a full context (float32 activations), or of loading the
-    dense weights, whichever is larger (the two never overlap in time).
+    """Working memory of one forward pass (float32 activations), or of loading the dense weights, whichever
+    is larger (the two never overlap in time).
 
-    A forward pass: residual, normed and attention output rows [T, d_model] (x4), the
-    fused q|k|v projection, attention scores and probabilities [heads, T, T]
-    (x3 for the mask and softmax temporaries), expert intermediates [T, d_expert]
-    (x3; the shared expert's [T, d_shared] are computed apart from them, so the
-    wider of the two counts), logits [T, vocab], plus the codec's dequantization buffers.
-    Loading: the largest dense tensor's file bytes while it is widened to float32 (2 per element when
-    the weights are F16) and its finiteness check (1 per element).
+    A pass is at most T = min(context, PREFILL_CHUNK) tokens (a longer prompt runs in passes,
+    moerun.model.transformer), attending to at most S = context positions: residual, normed and attention
+    output rows [T, d_model] (x4), the fused q|k|v projection, attention scores and probabilities
+    [heads, T, S] (x3 for the mask and softmax temporaries), expert intermediates [T, d_expert] (x3; the
+    shared expert's [T, d_shared] and a dense layer's [T, d_dense] are computed apart from them, so the
+    widest counts), logits [T, vocab], the rotary tables [S, head_dim], plus the codec's dequantization
+    buffers.  Loading: the largest dense tensor's file bytes while it is widened to float32 (2 per element
+    when the weights are F16) and its finiteness check (1 per element).
     """
     c = config
-    T = c.max_seq_len
+    S = c.max_seq_len
+    T = min(S, PREFILL_CHUNK)
     floats = (
         T * 4 * c.d_model
         + T * (c.q_dim + 2 * c.kv_dim)
-        + 3 * c.n_heads * T * T
-        + 3 * T * max(c.d_expert, c.d_shared)
+        + 3 * c.n_heads * T * S
+        + 3 * T * max(c.d_expert, c.d_shared, c.d_dense)
         + T * c.vocab_size
-        + T * c.head_dim  # rotary cos and sin tables
+        + S * c.head_dim  # rotary cos and sin tables
     )
     return max(4 * floats + codec_scratch, load_bytes(config))
 
 
 def load_bytes(config: ModelConfig) -> int:
-    """Transient bytes of loading the dense weights: the largest tensor's raw bytes (F16) and its check."""
-    per = 1 + (2 if config.dtype == "F16" else 0)
+    """Transient bytes of loading the dense weights: the largest tensor's raw bytes (F16, or an open checkpoint's
+    BF16) and its check."""
+    per = 1 + (2 if config.dtype in ("F16", "BF16") else 0)
     largest = max((_elements(s) for s in config.dense_shapes().values()), default=0)
     return per * largest
 

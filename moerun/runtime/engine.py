@@ -42,7 +42,7 @@ class Generation:
     prompt_ids: list[int]
     new_ids: list[int]
     text: str
-    stop: str  # "max-new" or "context-full"
+    stop: str  # "max-new", "context-full" or "eos" (the model's end-of-sequence token was generated; it is kept in new_ids)
     prefill_ns: int
     decode_ns: int
     decode_steps: int
@@ -89,7 +89,7 @@ class Engine:
         self.budget = budget
         self.experts = experts
         self.pool = experts if isinstance(experts, ExpertPool) else None
-        self.model = Transformer(store.config, store.dense)
+        self.model = Transformer(store.config, store.dense, store.embed)
         store.release_dense(f"layers.{layer}.{part}" for layer in range(store.config.n_layers)
                             for part in ("attn.wq", "attn.wk", "attn.wv"))  # now held once, fused as wqkv
         self.cache = KVCache(store.config)
@@ -181,7 +181,8 @@ class Engine:
         on_token=None,
         keep_logits: bool = False,
     ) -> Generation:
-        """Prefill the prompt, then decode up to ``max_new`` tokens (stops early when the context is full)."""
+        """Prefill the prompt, then decode up to ``max_new`` tokens (stops early when the context is full, or at
+        one of the model's end-of-sequence tokens: an open checkpoint's ``eos_token_id``)."""
         if isinstance(max_new, bool) or not isinstance(max_new, int):
             raise BadOption(f"max_new must be a whole number of tokens, got {max_new!r:.40}")
         if max_new < 0:
@@ -215,6 +216,7 @@ class Engine:
         new: list[int] = []
         pos = len(ids)
         stop = "max-new"
+        eos = set(self.config.eos_token_ids)
         decode_ns = 0
         steps = 0
         while len(new) < max_new:
@@ -222,6 +224,9 @@ class Engine:
             new.append(tok)
             if on_token is not None:
                 on_token(tok)
+            if tok in eos:
+                stop = "eos"
+                break
             if len(new) == max_new:
                 break
             if pos >= self.config.max_seq_len:

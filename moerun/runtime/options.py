@@ -18,6 +18,7 @@ import numpy as np
 from moerun import policies
 from moerun.errors import BadOption
 from moerun.files.bundled import resolve_model
+from moerun.files.ckpt_store import open_store
 from moerun.files.store import MECHANISMS, ModelStore
 from moerun.files.trace import Trace
 from moerun.model.tokenizer import Tokenizer
@@ -56,6 +57,8 @@ class EngineOptions:
     before the engine stops it and reads every expert itself (docs/design/prefetch.md).
     routing: a routing trace (path or moerun.files.trace.Trace): each layer takes its chosen
     experts and weights from it instead of its router (moerun.model.routing).
+    max_context: positions the KV cache (and a prompt) may hold: at most the model's context; None is
+    the model's context, or for an open checkpoint at most moerun.files.ckpt_store.DEFAULT_CONTEXT.
     """
 
     mem_cap: int | str | None = None
@@ -74,6 +77,7 @@ class EngineOptions:
     reader_timeout: float = STALL_TIMEOUT_S
     routing: str | os.PathLike | Trace | None = None
     cold_reads: bool = False
+    max_context: int | None = None
 
     def __post_init__(self) -> None:
         self._check_types()
@@ -97,6 +101,8 @@ class EngineOptions:
             v = getattr(self, name)
             if not _whole(v):
                 raise BadOption(f"{name} must be a whole number, got {v!r:.40}")
+        if self.max_context is not None and (not _whole(self.max_context) or self.max_context < 1):
+            raise BadOption(f"--max-context must be a positive whole number of positions, got {self.max_context!r:.40}")
         slots = self.slots
         if slots is not None and (isinstance(slots, (str, bytes)) or not hasattr(slots, "__iter__")
                                   or not all(_whole(n) for n in slots)):
@@ -200,7 +206,7 @@ def load(model_dir: str | os.PathLike | None = None, options: EngineOptions | No
 def open_engine(model_dir, o: EngineOptions) -> Engine:
     """The engine of checked options: sizes the budget, allocates the pool, starts the reader if asked."""
     watch = MemWatch()
-    store = ModelStore.open(resolve_model(model_dir))
+    store = open_store(resolve_model(model_dir), o.max_context)
     reader = None
     try:
         c = store.config

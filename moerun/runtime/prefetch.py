@@ -42,7 +42,7 @@ class GuessRule:
         self.mats: list[np.ndarray | None] = []  # per source layer: [d_model, targets * n_experts]
         for layer in range(L):
             targets = range(layer + 1, min(L, layer + 1 + lookahead))
-            cols = [model.layers[t].moe_norm[:, None] * model.layers[t].router for t in targets]
+            cols = [model.routed[t].moe_norm[:, None] * model.routed[t].router for t in targets]
             self.mats.append(np.ascontiguousarray(np.concatenate(cols, axis=1), dtype=np.float32) if cols else None)
 
     def targets(self, layer: int) -> int:

@@ -43,6 +43,7 @@ START_TIMEOUT_S = 10.0
 # Chunks are at most 1 MiB, so this allows a storage path slower than 1 MiB per 2 s.
 STALL_TIMEOUT_S = 2.0
 NAP_S = 0.05  # longest single block while waiting, so a dead reader is noticed
+MAX_PIECES = 3  # ring entries of one request at most: an expert's three parts, each read on its own
 
 
 class Reader:
@@ -52,9 +53,10 @@ class Reader:
         self.n_slots = n_slots
         self.slot_size = slot_size
         self.nbytes = store.expert_nbytes
-        self.ranges = store.ranges
+        self.pieces = store.read_pieces  # (layer, expert) -> ((file, offset, nbytes, at), ...)
         self.timeout_ns = int(timeout_s * 1e9)
-        self.ring = n_slots + 8  # a slot has at most one request outstanding, so the ring never fills
+        # a slot has at most one request outstanding, of at most MAX_PIECES entries, so the ring never fills
+        self.ring = MAX_PIECES * n_slots + 8
         self.r0 = rc.ring_base(n_slots)
         cb = rc.ctrl_bytes(n_slots, self.ring)
         total = cb + n_slots * slot_size
@@ -74,10 +76,11 @@ class Reader:
             self._wake = os.eventfd(0, flags)  # the engine rings it after each request
             self._done = os.eventfd(0, flags)  # the reader rings it after each result
             mechanism = store.mechanism + ("+cold" if store.cold_reads else "")
-            args = [self._fd, store._fd, self._wake, self._done, n_slots, slot_size, self.ring, mechanism, os.getpid()]
+            fds = tuple(store.fds)
+            args = [self._fd, ",".join(map(str, fds)), self._wake, self._done, n_slots, slot_size, self.ring, mechanism, os.getpid()]
             self.proc = subprocess.Popen(
                 [sys.executable, "-I", "-S", str(CHILD), *map(str, args)],
-                pass_fds=(self._fd, store._fd, self._wake, self._done),
+                pass_fds=(self._fd, *fds, self._wake, self._done),
                 stdin=subprocess.DEVNULL,
                 stdout=subprocess.DEVNULL,
                 stderr=subprocess.DEVNULL,
@@ -98,14 +101,19 @@ class Reader:
     # ------------------------------------------------------------------ requests
     def submit(self, slot: int, gen: int, layer: int, expert: int) -> None:
         c = self.c
-        r = self.ranges[layer][expert]
+        pieces = self.pieces(layer, expert)
         h = c[rc.HEAD]
-        b = self.r0 + rc.ENTRY * (h % self.ring)
-        c[b] = slot
-        c[b + 1] = gen
-        c[b + 2] = r.start
-        c[b + 3] = r.nbytes
-        c[rc.HEAD] = h + 1  # last: the reader takes entries up to HEAD
+        n = len(pieces)
+        for i, (file, offset, nbytes, at) in enumerate(pieces):
+            b = self.r0 + rc.ENTRY * ((h + i) % self.ring)
+            c[b] = slot
+            c[b + 1] = gen
+            c[b + 2] = offset
+            c[b + 3] = nbytes
+            c[b + 4] = file
+            c[b + 5] = at
+            c[b + 6] = i == n - 1
+        c[rc.HEAD] = h + n  # last: the reader takes entries up to HEAD
         if c[rc.BLOCKED]:  # a lingering or busy reader finds the request itself; ringing costs 12-80 us here
             try:
                 os.write(self._wake, b"\1\0\0\0\0\0\0\0")

@@ -8,6 +8,7 @@ import numpy as np
 import pytest
 
 import moerun
+from moerun.cli import main as cli
 from moerun.errors import BadOption
 from moerun.runtime.options import EngineOptions
 
@@ -53,3 +54,47 @@ def test_prefetch_on_a_one_layer_model_is_refused_for_what_it_is_not_for_a_looka
     assert main(["generate", "--model", str(one), "--prefetch", "1", "--max-new", "1", "--prompt", "a"]) == 2
     err = capsys.readouterr().err
     assert len(err.strip().splitlines()) == 1 and "one layer" in err and "--lookahead" not in err
+
+
+# ---------------------------------------------------------------------------- max_context (issue 22: the KV cache
+# holds the context the user asks for, not the model's maximum)
+
+
+def test_max_context_sizes_the_kv_cache_and_leaves_the_numbers_alone():
+    import numpy as np
+
+    full = moerun.load("pebble")
+    short = moerun.load("pebble", max_context=64)
+    try:
+        assert short.config.max_seq_len == 64 and short.budget.kv_cache * 4 == full.budget.kv_cache  # pebble's is 256
+        ids = full.tokenizer.encode("The keepers check the mesh")
+        assert np.array_equal(full.logits(ids), short.logits(ids))  # the rotary angles of a position do not depend on it
+    finally:
+        full.close()
+        short.close()
+
+
+def test_max_context_cannot_exceed_the_models_and_an_open_checkpoint_defaults_to_4096(tmp_path):
+    from moerun.files.ckpt_store import DEFAULT_CONTEXT
+    from moerun.makers.synth_open import OpenShape, synthesize_open
+
+    d = tmp_path / "ck"
+    synthesize_open(d, OpenShape("olmoe", layers=1, experts=4, hidden=64, expert_width=32, context=32768))
+    with moerun.load(d) as eng:
+        assert eng.config.max_seq_len == DEFAULT_CONTEXT == 4096
+    with moerun.load(d, max_context=100_000) as eng:
+        assert eng.config.max_seq_len == 32768
+    with moerun.load("pebble", max_context=10_000) as eng:
+        assert eng.config.max_seq_len == 256
+
+
+@pytest.mark.parametrize("bad", [0, -1, 2.5, "64", True])
+def test_a_bad_max_context_is_refused_before_anything_is_opened(bad):
+    with pytest.raises(BadOption, match="max-context"):
+        EngineOptions(max_context=bad)
+
+
+def test_a_prompt_longer_than_max_context_is_refused_in_one_line(capsys):
+    code = cli.main(["generate", "--model", "pebble", "--prompt", "word " * 200, "--max-context", "32", "--max-new", "2"])
+    out, err = capsys.readouterr()
+    assert code == 2 and out == "" and len(err.strip().splitlines()) == 1 and "32" in err

@@ -83,6 +83,51 @@ def _write_text(doc: dict, c, name: str, all_tensors: bool, out) -> None:
             out.write(f"check: all {chk['checked']} tensors match their recorded digests\n")
 
 
+def _write_checkpoint_text(doc: dict, c, out) -> None:
+    """An open checkpoint: its architecture, shards, expert layout and spans, and the bytes stored and held."""
+    ck = doc["checkpoint"]
+    a = ck["config"]
+    out.write(f"open checkpoint {Path(doc['model_dir']).name} ({doc['model_dir']}), model_type {a['model_type']}\n")
+    dense = f", {len(c.dense_layers)} dense (layers {', '.join(map(str, c.dense_layers))})" if c.dense_layers else ""
+    out.write(
+        f"{c.n_blocks} layers: {c.n_layers} routed{dense}; hidden {c.d_model}, {c.n_heads} heads ({c.n_kv_heads} KV) of "
+        f"{c.head_dim}, {c.n_experts} experts top-{c.top_k} of width {c.d_expert}, vocab {c.vocab_size}\n"
+    )
+    parts = [f"q/k norm {c.qk_norm}", "q/k/v biases" if c.qkv_bias else "no q/k/v biases",
+             f"shared expert of width {c.d_shared}, gated" if c.d_shared else "no shared expert",
+             "chosen weights renormalised" if c.norm_topk else "chosen weights as the router gives them",
+             f"context {c.max_seq_len} (the KV cache is sized for it)"]
+    out.write("; ".join(parts) + "\n")
+    out.write(f"bos {ck['bos_ids'] or 'none'}, eos {ck['eos_ids'] or 'none'}\n")
+    st = ck["sizes"]
+    rows = [
+        ["shards", f"{len(ck['shards'])} file(s), {fmt_bytes(sum(s['bytes'] for s in ck['shards']))}"],
+        ["expert layout", ", ".join(sorted({x for x in ck["layouts"] if x}))],
+        [f"one expert ({doc['expert_storage']}, as stored)", f"{doc['expert_bytes']:,} B"],
+        ["one expert (float32)", f"{st['expert_f32']:,} B"],
+        [f"all experts ({c.n_layers} x {c.n_experts}, as stored)", fmt_bytes(doc["experts_total_bytes"])],
+        ["experts straddling two files", f"{ck['experts_straddling_files']:,}"],
+        ["reads per expert page-in (at most)", str(ck["reads_per_expert"])],
+        ["dense weights (stored)", fmt_bytes(st["dense_stored"])],
+        ["dense weights (memory, float32)", fmt_bytes(doc["dense_memory_bytes"])],
+        ["embedding table (read by row, not held)" if not st["tied"] else "embedding table (tied: held)", fmt_bytes(st["embed_stored"])],
+        ["KV cache (context)", fmt_bytes(doc["kv_cache_bytes"])],
+        ["scratch", fmt_bytes(doc["scratch_bytes"])],
+        ["smallest cap, per-layer pools", f"{fmt_bytes(doc['min_cap_even_bytes'])} ({doc['min_cap_even_bytes']} B)"],
+        ["smallest cap, shared pool", f"{fmt_bytes(doc['min_cap_shared_bytes'])} ({doc['min_cap_shared_bytes']} B)"],
+    ]
+    out.write(table(["", "size"], rows) + "\n\n")
+    out.write(table(["shard", "bytes", "tensors"], [[s["file"], f"{s['bytes']:,}", str(s["tensors"])] for s in ck["shards"]], "lrr") + "\n\n")
+    fe = doc["first_expert"]
+    out.write(f"expert {fe['expert']} of layer {fe['layer']}: parts, then the reads of one page-in\n")
+    prow = [[p["tensor"], p["dtype"], "x".join(map(str, p["shape"])), p["file"], f"{p['offset']:,}", f"{p['bytes']:,}"] for p in fe["parts"]]
+    out.write(table(["tensor", "dtype", "shape", "file", "offset", "bytes"], prow, "llllrr") + "\n")
+    for r in fe["reads"]:
+        out.write(f"  read {r['bytes']:,} B at {r['offset']:,} of {r['file']}\n")
+    if doc.get("check") is not None:
+        out.write("check: an open checkpoint records no digests; nothing to verify\n")
+
+
 def run(args) -> int:
     progress = Progress("inspect --check" if args.check else "inspect")  # reading digests of a large file takes a while
     try:
@@ -92,6 +137,8 @@ def run(args) -> int:
     doc = result.to_json()
     if args.json:
         emit_json(doc)
+    elif "checkpoint" in doc:
+        _write_checkpoint_text(doc, result.config, sys.stdout)
     else:
         c = result.config
         _write_text(doc, c, c.name or Path(result.model_dir).name, args.all, sys.stdout)

@@ -6,9 +6,11 @@ import sys
 
 from moerun.cli import main as cli
 from moerun.cli.report import Progress, emit_json, table, written
-from moerun.makers.jobs import synth
+from moerun.errors import BadOption
+from moerun.files.ckpt_config import SUPPORTED_TYPES
+from moerun.makers.jobs import synth, synth_open
 from moerun.makers.synthetic import BITS, RANDOM_NOTE
-from moerun.units import fmt_bytes
+from moerun.units import fmt_bytes, parse_size
 
 HELP = (
     "write a model directory with random weights at any size (F32, or F16 with --bits 16) for page-in, "
@@ -38,15 +40,26 @@ def add_arguments(p) -> None:
     o.add_argument("--heads", type=int, metavar="N", help="attention heads (default: d_model / 64, at least 1)")
     o.add_argument("--kv-heads", type=int, metavar="N", help="key/value heads (default: as many as --heads)")
     o.add_argument("--head-dim", type=int, metavar="N", help="width of one head (default: d_model / heads)")
-    o.add_argument("--vocab", type=int, default=257, metavar="N", help="vocabulary size, at least 257 for the byte tokenizer (default 257)")
-    o.add_argument("--context", type=int, default=256, metavar="N", help="longest sequence, in tokens (default 256)")
+    o.add_argument("--vocab", type=int, metavar="N",
+                   help="vocabulary size, at least 257 for the byte tokenizer (default 257; an open checkpoint: at least and by default 258)")
+    o.add_argument("--context", type=int, metavar="N", help="longest sequence, in tokens (default 256; an open checkpoint: 4096)")
     o.add_argument("--untied", action="store_true", help="a separate lm_head instead of reusing the embedding")
     o.add_argument("--d-shared", type=int, default=0, metavar="N",
                    help="hidden width of an always-on shared expert in every layer (default 0: none)")
     o.add_argument("--no-renorm", action="store_true",
                    help="weigh the chosen experts by their router probabilities as they are, not renormalised to sum to 1")
-    p.add_argument("--bits", type=int, default=32, choices=sorted(BITS), help="16 = F16 weights, 32 = F32 (default); "
-                   "for low-bit experts run 'moerun quantize' on the result")
+    p.add_argument("--bits", type=int, choices=sorted(BITS), help="16 = F16 weights (BF16 in an open checkpoint), 32 = F32; "
+                   "default 32 (16 for an open checkpoint); for low-bit experts run 'moerun quantize' on the result")
+    k = p.add_argument_group("an open checkpoint instead (config.json with model_type, safetensors shards, tokenizer.json)")
+    k.add_argument("--open-type", choices=SUPPORTED_TYPES, metavar="TYPE",
+                   help=f"write an open checkpoint of this model_type ({', '.join(SUPPORTED_TYPES)}) in place of moerun's "
+                        "format; its lm_head is untied and its chosen weights not renormalised unless asked")
+    k.add_argument("--dense-layers", metavar="LIST", help="qwen types: layers with a dense MLP instead of experts, e.g. 0,3")
+    k.add_argument("--dense-width", type=int, default=0, metavar="N", help="hidden width of those dense MLPs")
+    k.add_argument("--shard-size", metavar="SIZE", default="4GiB",
+                   help="most weight bytes per safetensors file (default 4GiB); an expert may straddle two files")
+    k.add_argument("--tied", action="store_true", help="an open checkpoint whose lm_head is its embedding table")
+    k.add_argument("--renorm", action="store_true", help="an open checkpoint whose chosen weights are renormalised (norm_topk_prob)")
     cli.add_seed(p, "random seed")
     p.add_argument("--name", metavar="TEXT", help="model name in config.json (default: the directory name)")
     cli.add_json(p)
@@ -60,11 +73,18 @@ def run(args) -> int:
         progress.total = int(total / megabyte)
         progress.update(int(done / megabyte), "MiB written")
 
+    if args.open_type:
+        return _run_open(args, report, progress)
+    if args.dense_layers or args.dense_width or args.tied or args.renorm or args.shard_size != "4GiB":
+        progress.close()
+        raise BadOption("--dense-layers, --dense-width, --tied, --renorm and --shard-size describe an open checkpoint: "
+                        "give --open-type too")
     try:
         result = synth(args.out, layers=args.layers, experts=args.experts, d_model=args.d_model, d_expert=args.d_expert,
                        top_k=args.top_k, heads=args.heads, kv_heads=args.kv_heads, head_dim=args.head_dim,
-                       vocab=args.vocab, context=args.context, untied=args.untied, d_shared=args.d_shared,
-                       renorm=not args.no_renorm, bits=args.bits, seed=args.seed, name=args.name, force=args.force,
+                       vocab=257 if args.vocab is None else args.vocab, context=256 if args.context is None else args.context,
+                       untied=args.untied, d_shared=args.d_shared, renorm=not args.no_renorm,
+                       bits=32 if args.bits is None else args.bits, seed=args.seed, name=args.name, force=args.force,
                        progress=report)
     finally:
         progress.close()
@@ -90,3 +110,38 @@ def run(args) -> int:
     out.write(table(["", "size"], rows) + "\n")
     written("synth", "model directory", result.model_dir, f"{result.seconds:.1f} s")
     return 0
+
+
+def _run_open(args, report, progress) -> int:
+    """``--open-type``: an open checkpoint of random weights."""
+    try:
+        if args.untied or args.no_renorm or args.name:
+            raise BadOption("--untied, --no-renorm and --name describe moerun's format; an open checkpoint is untied and "
+                            "not renormalised unless --tied or --renorm says otherwise")
+        dense = tuple(parse_int_list(args.dense_layers, "--dense-layers")) if args.dense_layers else ()
+        result = synth_open(
+            args.out, model_type=args.open_type, layers=args.layers, experts=args.experts, d_model=args.d_model,
+            d_expert=args.d_expert, top_k=args.top_k, heads=args.heads, kv_heads=args.kv_heads, head_dim=args.head_dim,
+            vocab=258 if args.vocab is None else args.vocab, context=4096 if args.context is None else args.context,
+            untied=not args.tied, d_shared=args.d_shared, renorm=args.renorm, bits=16 if args.bits is None else args.bits,
+            dense_layers=dense, dense_width=args.dense_width, shard_bytes=parse_size(args.shard_size, "--shard-size"),
+            seed=args.seed, force=args.force, progress=report,
+        )
+    finally:
+        progress.close()
+    if not args.json:
+        out = sys.stdout
+        out.write(f"an open {result.model_type} checkpoint, {result.dtype}, {fmt_bytes(result.file_bytes)} in "
+                  f"{len(result.files)} file(s)\n")
+        out.write(f"note: {RANDOM_NOTE}; use it for sizes, page-in and budgets, not for policies\n")
+    else:
+        emit_json(result.to_json())
+    written("synth", "open checkpoint", result.model_dir, f"{result.seconds:.1f} s")
+    return 0
+
+
+def parse_int_list(text: str, option: str) -> list[int]:
+    try:
+        return [int(x) for x in text.split(",") if x.strip()]
+    except ValueError:
+        raise BadOption(f"{option} takes whole numbers separated by commas, got {text!r:.60}") from None

@@ -7,7 +7,6 @@ import sys
 from moerun.checks.jobs import verify
 from moerun.cli import main as cli
 from moerun.cli.report import Progress, emit_json, table
-from moerun.cli.summary import RANDOM_NOTE
 from moerun.units import fmt_bytes
 
 HELP = "run the same prompts fully resident and under several caps, policies and prefetch settings; compare bit for bit"
@@ -21,7 +20,7 @@ def add_arguments(p) -> None:
     cli.add_json(p)
 
 
-def _write_text(outcomes, n_prompts: int, max_new: int, synthetic: bool, ok: bool) -> None:
+def _write_text(outcomes, n_prompts: int, max_new: int, note: str | None, ok: bool) -> None:
     """One row a setting: its cap and slots, and whether logits and tokens were the same bits as the resident run's."""
     rows = []
     for o in outcomes:
@@ -34,8 +33,8 @@ def _write_text(outcomes, n_prompts: int, max_new: int, synthetic: bool, ok: boo
             "same" if o.tokens_equal else "DIFF",
             "-" if o.hit_rate is None else f"{100 * o.hit_rate:.1f}%",
         ])
-    if synthetic:
-        sys.stdout.write(f"note: {RANDOM_NOTE}\n")
+    if note:
+        sys.stdout.write(f"note: {note}\n")
     sys.stdout.write(
         f"reference: every expert resident; {n_prompts} prompt(s), {max_new} sampled tokens each, "
         f"logits compared as raw float32 bits\n"
@@ -49,7 +48,7 @@ def run(args) -> int:
     prog = Progress("verify")
     try:
         result = verify(args.model, args.prompt, prompt_file=args.prompt_file, prompts=args.prompts, max_new=args.max_new,
-                        temperature=args.temperature, top_p=args.top_p, seed=args.seed,
+                        temperature=args.temperature, top_p=args.top_p, seed=args.seed, max_context=args.max_context,
                         progress=lambda i, n, label: prog.update(i, f"{label}"),
                         mem_cap=args.mem_cap, evict=args.evict, prefetch=args.prefetch, lookahead=args.lookahead,
                         prefetch_from=args.prefetch_from, slots=args.slots,
@@ -59,5 +58,5 @@ def run(args) -> int:
     if args.json:
         emit_json(result.to_json())
     else:
-        _write_text(result.outcomes, result.prompts, result.max_new, result.note is not None, result.ok)
+        _write_text(result.outcomes, result.prompts, result.max_new, result.note, result.ok)
     return 0 if result.ok else 1
