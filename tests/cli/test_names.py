@@ -128,15 +128,19 @@ def _writer_argv(kind: str, model, tmp_path, dest) -> list:
         "probe": ["probe", "--sizes", "64KiB", "--runs", "1", "--dir", tmp_path, "--save", dest],
         "quantize": ["quantize", "--model", model, dest, "--no-score", "--method", "rtn"],
         "synth": ["synth", dest, "--layers", "1", "--experts", "2", "--d-model", "16", "--d-expert", "16"],
+        "synth-open": ["synth", dest, "--open-type", "qwen3_moe", "--layers", "2", "--experts", "4", "--d-model", "64",
+                       "--d-expert", "32", "--heads", "4", "--kv-heads", "2"],
     }[kind]
 
 
 @pytest.mark.parametrize("json_flag", [[], ["--json"]], ids=["text", "json"])
 @pytest.mark.parametrize(("kind", "what"), [("generate", "trace"), ("record", "trace"), ("probe", "results"),
-                                            ("quantize", "model directory"), ("synth", "model directory")])
+                                            ("quantize", "model directory"), ("synth", "model directory"),
+                                            ("synth-open", "open checkpoint")])
 def test_every_written_to_notice_goes_to_stderr_as_one_line(small_model, tmp_path, capsys, kind, what, json_flag):
-    dest = tmp_path / ("out" if kind in ("quantize", "synth") else "out.file")
+    dest = tmp_path / ("out" if kind in ("quantize", "synth", "synth-open") else "out.file")
     code, out, err = _run(capsys, *_writer_argv(kind, small_model, tmp_path, dest), *json_flag)
+    kind = kind.removesuffix("-open")
     assert code == 0, err
     if json_flag:
         json.loads(out)  # stdout is the document alone (which may name the file as data)
