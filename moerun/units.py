@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import re
 
 from moerun.errors import BadOption
@@ -92,6 +93,17 @@ def fmt_exact(n: int) -> str:
 
 def fmt_rate(bytes_per_s: float) -> str:
     return f"{bytes_per_s / 1e9:.2f} GB/s"
+
+
+def fmt_tok_s(tok_s: float) -> str:
+    """A speed for people: three significant digits, whole numbers from 100 tok/s up (0.427, 4.27, 42.7, 427,
+    4270); JSON documents keep every digit."""
+    if not tok_s > 0:
+        return "0"
+    r = float(f"{tok_s:.3g}")
+    if r >= 100:
+        return f"{tok_s:.0f}"
+    return f"{r:.{2 - math.floor(math.log10(r))}f}"
 
 
 # How a setting is written for people, the same in every command's text.  In JSON a shared pool is

@@ -7,7 +7,8 @@ these small matrices on a shared 2-core machine, and ``import moerun`` does not 
 
 Helpers: ``log`` (a line on stderr), ``session`` (one engine generating prompts in turn, the pool
 carried over), ``split_docs`` (a corpus text as documents), ``hit_rates`` (replayed hit rate per
-pool size over traces), ``best_of`` and ``per_call_ns`` (timers), ``memcpy_bandwidth``.
+pool size over traces), ``best_of`` and ``per_call_ns`` (timers), ``memcpy_bandwidth``, ``busy_processes`` and
+``stop_busy`` (CPU-bound programs beside a measurement).
 """
 
 from __future__ import annotations
@@ -154,3 +155,16 @@ def memcpy_bandwidth(nbytes: int = 64 << 20, repeats: int = 5) -> float:
     dst = np.empty_like(src)
     best, _ = best_of(lambda: np.copyto(dst, src), repeats)
     return nbytes / best
+
+
+def busy_processes(n: int) -> list:
+    """Start n plain CPU-bound busy loops (a competing program on the machine); stop them with stop_busy."""
+    import subprocess
+
+    return [subprocess.Popen([sys.executable, "-c", "while True: pass"]) for _ in range(n)]
+
+
+def stop_busy(procs: list) -> None:
+    for p in procs:
+        p.kill()
+        p.wait()

@@ -103,20 +103,6 @@ def compare_policies(a, model) -> int:
     return 0
 
 
-def busy_processes(n: int) -> list:
-    """Start n plain CPU-bound busy loops (a competing program on the machine); stop them with stop_busy."""
-    import subprocess
-    import sys
-
-    return [subprocess.Popen([sys.executable, "-c", "while True: pass"]) for _ in range(n)]
-
-
-def stop_busy(procs: list) -> None:
-    for p in procs:
-        p.kill()
-        p.wait()
-
-
 def spread(rows: list[dict]) -> dict:
     import statistics
 
@@ -192,12 +178,12 @@ def main() -> int:
         for key, kw in configs.items():
             runs[key].append(decode(model, prompt, a, **kw))
         if a.busy:
-            procs = busy_processes(a.busy)
+            procs = _bench.busy_processes(a.busy)
             try:
                 for key in busy_runs:
                     busy_runs[key].append(decode(model, prompt, a, **configs[key]))
             finally:
-                stop_busy(procs)
+                _bench.stop_busy(procs)
     import statistics
 
     best = {k: max(v, key=lambda r: r["tok_s"]) for k, v in runs.items()}

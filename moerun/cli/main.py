@@ -116,6 +116,10 @@ def add_memory(p) -> None:
     p.add_argument("--max-context", type=int, metavar="N",
                    help="positions the KV cache holds, and so the longest prompt plus output (default: the model's "
                         "context; an open checkpoint's, at most 4096)")
+    p.add_argument("--expert-slots", choices=("auto", "stored", "float32"), default="auto",
+                   help="how an open checkpoint's BF16/F16 experts are held: as stored (half the bytes, widened at each "
+                        "use) or as float32 (widened once when read); auto: float32 when every expert is resident and "
+                        "nothing is prefetched, else as stored")
     p.set_defaults(_engine_cap=True)  # --mem-cap caps the engine: the out-of-memory line may point at it
 
 
@@ -220,6 +224,7 @@ def engine_kwargs(args) -> dict:
         "link_speed": args.link_speed,
         "cold": args.cold,
         "max_context": args.max_context,
+        "expert_slots": args.expert_slots,
     }
 
 

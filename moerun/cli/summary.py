@@ -5,7 +5,7 @@ from __future__ import annotations
 from moerun.cli.report import pct, table
 from moerun.files.config import RANDOM_NOTE as config_note
 from moerun.runtime.capcheck import CAP_ALLOWANCE_BYTES, cap_check, cap_warning  # noqa: F401 (the commands' names for them)
-from moerun.units import SHARED_POOL, fmt_bytes, fmt_prefetch, fmt_rate
+from moerun.units import SHARED_POOL, fmt_bytes, fmt_prefetch, fmt_rate, fmt_tok_s
 
 NOT_ADVICE = "text from a tiny model trained on invented data; not advice"
 RANDOM_NOTE = f"{config_note} and the text is noise"  # what a generation from random weights needs said
@@ -55,12 +55,13 @@ def run_text(engine, gen=None) -> str:
     doc = run_json(engine, gen)
     lines = []
     if gen is not None:
-        speed = (f"decode {doc['decode_tok_s']:.0f} tok/s" if gen.decode_steps
+        speed = (f"decode {fmt_tok_s(doc['decode_tok_s'])} tok/s" if gen.decode_steps
                  else "no decode step timed (the last new token comes from prefill)" if gen.new_ids else "no decode step")
         lines.append(
-            f"prompt {doc['prompt_tokens']} tok, prefill {doc['prefill_tok_s']:.0f} tok/s | "
+            f"prompt {doc['prompt_tokens']} tok, prefill {fmt_tok_s(doc['prefill_tok_s'])} tok/s | "
             f"new {doc['new_tokens']} tok, {speed}"
             + (" | stopped: context full" if gen.stop == "context-full" else "")
+            + (" | stopped: end-of-sequence token" if gen.stop == "eos" else "")
         )
     b = engine.budget
     link = engine.options.get("link_speed")

@@ -197,15 +197,19 @@ def _align(n: int) -> int:
     return -(-n // SLOT_ALIGN) * SLOT_ALIGN
 
 
-def make_expert_spans(layer: int, expert: int, parts: Sequence[Span], gap_limit: int = GAP_LIMIT) -> ExpertSpans:
-    """Destination offsets (gate, up, down, each aligned) and the reads for an expert's three spans: one read per
-    run of parts in one file whose gaps are at most ``gap_limit`` bytes (at most GAP_LIMIT)."""
+def make_expert_spans(layer: int, expert: int, parts: Sequence[Span], gap_limit: int = GAP_LIMIT,
+                      dst_offsets: Sequence[int] | None = None) -> ExpertSpans:
+    """Destination offsets (gate, up, down, each aligned; or ``dst_offsets`` as given) and the reads for an expert's
+    three spans: one read per run of parts in one file whose gaps are at most ``gap_limit`` bytes (at most
+    GAP_LIMIT)."""
     gap_limit = min(gap_limit, GAP_LIMIT)
     dst = []
     pos = 0
     for p in parts:
         dst.append(pos)
         pos = _align(pos + p.nbytes)
+    if dst_offsets is not None:
+        dst = list(dst_offsets)
     order = sorted(range(3), key=lambda i: (parts[i].file, parts[i].offset))
     reads: list[Read] = []
     cur: list | None = None  # [file, offset, nbytes, pieces]

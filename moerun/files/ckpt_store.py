@@ -29,7 +29,16 @@ import numpy as np
 
 from moerun.errors import BadModelFile, BadOption, ModelFileChanged, PageInError
 from moerun.files import ckpt_tensors as names
-from moerun.files.checkpoint import STORED_DTYPES, Checkpoint, ExpertSpans, preadv_exact, read_expert, widen_into
+from moerun.files.checkpoint import (
+    SLOT_ALIGN,
+    STORED_DTYPES,
+    Checkpoint,
+    ExpertSpans,
+    make_expert_spans,
+    preadv_exact,
+    read_expert,
+    widen_into,
+)
 from moerun.files.codec import Codec
 from moerun.files.config import ModelConfig
 from moerun.files.pagecache import drop_pages, drop_problem
@@ -38,25 +47,63 @@ from moerun.files.store import file_stamp
 # An open checkpoint's KV cache is sized for this many positions (or the model's maximum, when smaller):
 # a model's maximum (32k-256k positions) would reserve gigabytes nobody asked for.
 DEFAULT_CONTEXT = 4096
-_PAGE_ALIGN = 4096  # moerun.runtime.budget.SLOT_ALIGN: a pool slot is an expert's bytes rounded up to it
+
+
+def widened_layout(spans: ExpertSpans) -> tuple[tuple[int, int, int], tuple[int, int, int], int]:
+    """Where an expert lies in a slot that holds it as float32: each part's float32 region (aligned), the offset
+    its stored bytes are read to (the upper half of the region, for a 2-byte dtype), and the slot's bytes."""
+    regions, staged = [], []
+    pos = 0
+    for p in spans.parts:
+        n = p.nbytes // STORED_DTYPES[p.dtype].itemsize
+        regions.append(pos)
+        staged.append(pos + 4 * n - p.nbytes)
+        pos = -(-(pos + 4 * n) // SLOT_ALIGN) * SLOT_ALIGN
+    return tuple(regions), tuple(staged), pos
 
 
 class CheckpointCodec(Codec):
-    """A slot holding one routed expert as stored (gate, up, down [out, in]; the offsets of the first expert's
-    span map, which every expert shares) -> float32 ``(w_gate, w_up, w_down)`` [in, out]: transposed views of
-    the slot (F32), or of scratch the parts are widened into (BF16 exactly, F16), allocated once."""
+    """A slot holding one routed expert -> float32 ``(w_gate, w_up, w_down)`` [in, out], transposed views.
 
-    def __init__(self, spans: ExpertSpans):
+    As stored (``widened`` False): the parts at the offsets of the first expert's span map (every expert shares
+    them); F32 parts are viewed in the slot, BF16 (exactly) and F16 parts widened at each use into scratch
+    allocated once.  Widened (True; BF16 and F16 only): the slot holds float32 parts (``widened_layout``); a read
+    lands in the upper half of each part and ``finish`` widens it in place, once, after the read."""
+
+    def __init__(self, spans: ExpertSpans, widened: bool = False):
         self.spans = spans
         self.dtype = spans.gate.dtype
-        self.name = self.dtype
+        self.widened = widened and self.dtype != "F32"
+        self.name = self.dtype + (", widened to float32 when read" if self.widened else "")
         self._scratch = None
-        if self.dtype != "F32":
-            self._scratch = tuple(np.empty(p.shape, np.float32) for p in spans.parts)
-            self._scratch_t = tuple(s.T for s in self._scratch)
+        if self.widened:
+            self.regions, _, self.slot_nbytes = widened_layout(spans)
+        else:
+            self.slot_nbytes = spans.slot_nbytes
+            if self.dtype != "F32":
+                self._scratch = tuple(np.empty(p.shape, np.float32) for p in spans.parts)
+                self._scratch_t = tuple(s.T for s in self._scratch)
 
     def bind(self, slot: np.ndarray):
-        return self.spans.views(slot)
+        if not self.widened:
+            return self.spans.views(slot)
+        view = memoryview(slot).cast("B")
+        return tuple(np.frombuffer(view, np.float32, _elements(p.shape), r).reshape(p.shape)
+                     for p, r in zip(self.spans.parts, self.regions))
+
+    def finish(self, slot) -> None:
+        """Widen a freshly read slot in place (widened codecs only; the stored bits sit in each part's upper half)."""
+        if not self.widened:
+            return
+        view = memoryview(slot).cast("B")
+        for p, r, at in zip(self.spans.parts, self.regions, self.spans.dst_offsets):
+            n = _elements(p.shape)
+            out = np.frombuffer(view, np.uint32, n, r)
+            staged = np.frombuffer(view, STORED_DTYPES[p.dtype], n, at)
+            if self.dtype == "BF16":  # numpy sees the overlap and reads the input through a temporary
+                np.left_shift(staged, np.uint32(16), out=out, dtype=np.uint32)
+            else:
+                np.copyto(out.view(np.float32), staged, casting="safe")
 
     def weights(self, bound):
         if self._scratch is None:
@@ -66,7 +113,16 @@ class CheckpointCodec(Codec):
         return self._scratch_t
 
     def scratch_bytes(self) -> int:
+        if self.widened:  # the temporary numpy reads an overlapping input through
+            return max(p.nbytes for p in self.spans.parts)
         return 0 if self._scratch is None else sum(s.nbytes for s in self._scratch)
+
+
+def _elements(shape) -> int:
+    n = 1
+    for s in shape:
+        n *= s
+    return n
 
 
 def read_f32(ck: Checkpoint, name: str, rows: tuple[int, int] | None = None) -> np.ndarray:
@@ -157,7 +213,7 @@ def pieces_of(spans: ExpertSpans) -> tuple[tuple[int, int, int, int], ...]:
 class CheckpointStore:
     """An opened, validated open checkpoint, serving the engine as a ``ModelStore`` does."""
 
-    def __init__(self, ck: Checkpoint, config: ModelConfig):
+    def __init__(self, ck: Checkpoint, config: ModelConfig, widen: bool = False):
         self.checkpoint = ck
         self.model_dir = ck.directory
         self.config = config
@@ -168,12 +224,15 @@ class CheckpointStore:
             for sp in row:
                 if sp.dst_offsets != first.dst_offsets or [p.dtype for p in sp.parts] != [p.dtype for p in first.parts]:
                     raise BadModelFile(f"{ck.files[sp.gate.file]}: expert {sp.expert} is not laid out like the others")
-        self.codec = CheckpointCodec(first)
+        self.codec = CheckpointCodec(first, widen)
+        if self.codec.widened:  # every read lands in the upper halves of the float32 parts
+            staged = widened_layout(first)[1]
+            self.spans = [[make_expert_spans(sp.layer, sp.expert, sp.parts, dst_offsets=staged) for sp in row]
+                          for row in self.spans]
+            self.codec = CheckpointCodec(self.spans[0][0], True)
         self._pieces = [[pieces_of(sp) for sp in row] for row in self.spans]
-        stored = first.nbytes
-        # what a page-in reads; a slot (this rounded up to a page) must also hold the parts' alignment padding
-        fits = -(-stored // _PAGE_ALIGN) * _PAGE_ALIGN >= first.slot_nbytes
-        self.expert_nbytes = stored if fits else first.slot_nbytes
+        self.expert_nbytes = first.nbytes  # what a page-in reads
+        self.slot_nbytes = self.codec.slot_nbytes  # what a slot holds: the parts as stored and aligned, or widened
         self.mechanism = "pread"
         self.link_rate: float | None = None
         self.cold_reads = False
@@ -185,11 +244,13 @@ class CheckpointStore:
 
     # ---------------------------------------------------------------- opening
     @classmethod
-    def open(cls, model_dir: str | os.PathLike, context: int = DEFAULT_CONTEXT) -> CheckpointStore:
+    def open(cls, model_dir: str | os.PathLike, context: int = DEFAULT_CONTEXT, widen: bool = False) -> CheckpointStore:
+        """``widen``: pool slots hold BF16 and F16 experts as float32, widened once when read (twice the memory of
+        a BF16 slot; no widening at each use)."""
         ck = Checkpoint.open(model_dir)
         try:
             bos = leading_special_id(ck.tokenizer_path)
-            store = cls(ck, model_config(ck, bos, context))
+            store = cls(ck, model_config(ck, bos, context), widen)
             store._load_dense()
         except BaseException:
             ck.close()
@@ -295,6 +356,10 @@ class CheckpointStore:
         self.copy_in(layer, expert, dst)
         return time.monotonic_ns() - t0
 
+    def finish_read(self, dst) -> None:
+        """Make a slot the reader process filled ready for the codec (widen it, for a widened codec)."""
+        self.codec.finish(dst)
+
     def fault(self, layer: int, expert: int, guess: bool = False) -> None:
         if self.fault_hook is not None:
             self.fault_hook(layer, expert, guess)
@@ -309,6 +374,7 @@ class CheckpointStore:
             except OSError as e:
                 raise PageInError(f"{self.path}: reading expert {expert} of layer {layer} failed ({e.strerror or e})") from None
         read_expert(self.checkpoint.fds, spans, dst, self.checkpoint.files)
+        self.codec.finish(dst)
         ns = time.monotonic_ns() - t0
         self.check_unchanged()
         if self.cold_reads and drop_problem() is None:
@@ -333,16 +399,17 @@ class CheckpointStore:
             self.close()
 
 
-def open_store(model_dir: str | os.PathLike, max_context: int | None = None):
+def open_store(model_dir: str | os.PathLike, max_context: int | None = None, widen: bool = False):
     """The store of a model directory: a ``CheckpointStore`` for an open checkpoint, else a ``ModelStore``.
 
     ``max_context``: the positions the KV cache is sized for, at most the model's own context (default: the
-    model's context; an open checkpoint's, at most DEFAULT_CONTEXT: its own is often 32k-256k positions)."""
+    model's context; an open checkpoint's, at most DEFAULT_CONTEXT: its own is often 32k-256k positions).
+    ``widen``: an open checkpoint's BF16/F16 experts are held as float32 in their slots (``CheckpointStore.open``)."""
     from moerun.files.ckpt_config import is_open_checkpoint
     from moerun.files.store import ModelStore
 
     if Path(model_dir).is_dir() and is_open_checkpoint(model_dir):
-        return CheckpointStore.open(model_dir, max_context or DEFAULT_CONTEXT)
+        return CheckpointStore.open(model_dir, max_context or DEFAULT_CONTEXT, widen)
     store = ModelStore.open(model_dir)
     if max_context is not None and max_context < store.config.max_seq_len:
         store.config = dataclasses.replace(store.config, max_seq_len=max_context)

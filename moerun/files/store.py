@@ -319,6 +319,14 @@ class ModelStore:
     def expert_total_nbytes(self) -> int:
         return self.expert_nbytes * self.config.n_layers * self.config.n_experts
 
+    @property
+    def slot_nbytes(self) -> int:
+        """What a pool slot must hold for one expert: here its bytes as stored (``expert_nbytes``)."""
+        return self.expert_nbytes
+
+    def finish_read(self, dst) -> None:
+        """Make a slot's freshly read bytes ready for the codec: nothing to do for a moerun model."""
+
     def expert_range(self, layer: int, expert: int) -> ExpertRange:
         return self.ranges[layer][expert]
 

@@ -116,9 +116,12 @@ def fixed_bytes(config: ModelConfig, dense: int, codec_scratch: int = 0) -> tupl
     return dense, KVCache.nbytes_for(config), scratch_bytes(config, codec_scratch)
 
 
-def minimum_cap(config: ModelConfig, dense: int, expert_nbytes: int, split: str | list[int] = "even", codec_scratch: int = 0) -> int:
+def minimum_cap(config: ModelConfig, dense: int, expert_nbytes: int, split: str | list[int] = "even", codec_scratch: int = 0,
+                slot_nbytes: int | None = None) -> int:
+    """The smallest cap that holds the fixed parts and the fewest slots a split needs.  ``slot_nbytes``: what one
+    slot holds when it is not the expert as stored (an open checkpoint's experts widened when read)."""
     d, kv, s = fixed_bytes(config, dense, codec_scratch)
-    per = slot_bytes(expert_nbytes)
+    per = slot_bytes(slot_nbytes or expert_nbytes)
     if split == "shared":
         need = config.top_k
     else:
@@ -133,10 +136,13 @@ def plan_budget(
     mem_cap: int | None,
     split: str | list[int] = "even",
     codec_scratch: int = 0,
+    slot_nbytes: int | None = None,
 ) -> Budget:
-    """Size the pool for ``mem_cap`` (None: every expert resident). Raises ImpossibleBudget."""
+    """Size the pool for ``mem_cap`` (None: every expert resident). Raises ImpossibleBudget.
+
+    ``slot_nbytes``: what one slot holds, when it is not the ``expert_nbytes`` a page-in reads."""
     d, kv, s = fixed_bytes(config, dense, codec_scratch)
-    per = slot_bytes(expert_nbytes)
+    per = slot_bytes(slot_nbytes or expert_nbytes)
     L, E, k = config.n_layers, config.n_experts, config.top_k
     if mem_cap is None and not isinstance(split, (list, tuple)):
         return Budget(None, d, kv, s, per, expert_nbytes, "resident", [E] * L)
@@ -158,7 +164,7 @@ def plan_budget(
             )
         b.unused = mem_cap - b.total
         return b
-    minimum = minimum_cap(config, dense, expert_nbytes, split, codec_scratch)
+    minimum = minimum_cap(config, dense, expert_nbytes, split, codec_scratch, slot_nbytes)
     if mem_cap < minimum:
         raise ImpossibleBudget(
             f"memory cap {fmt_exact(mem_cap)} is too small: dense weights, KV cache and scratch take "

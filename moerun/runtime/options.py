@@ -31,6 +31,7 @@ from moerun.runtime.sources import BareExperts, NoReuseExperts, WholeLayerExpert
 from moerun.units import parse_rate, parse_size
 
 BASELINES = {"whole-layer": WholeLayerExperts, "no-reuse": NoReuseExperts}
+EXPERT_SLOTS = ("auto", "stored", "float32")
 
 
 def _whole(v) -> bool:
@@ -59,6 +60,8 @@ class EngineOptions:
     experts and weights from it instead of its router (moerun.model.routing).
     max_context: positions the KV cache (and a prompt) may hold: at most the model's context; None is
     the model's context, or for an open checkpoint at most moerun.files.ckpt_store.DEFAULT_CONTEXT.
+    expert_slots: "auto", "stored" or "float32": how pool slots hold an open checkpoint's BF16/F16 experts
+    (``widen_experts``).
     """
 
     mem_cap: int | str | None = None
@@ -78,6 +81,7 @@ class EngineOptions:
     routing: str | os.PathLike | Trace | None = None
     cold_reads: bool = False
     max_context: int | None = None
+    expert_slots: str = "auto"
 
     def __post_init__(self) -> None:
         self._check_types()
@@ -91,7 +95,7 @@ class EngineOptions:
 
     def _check_types(self) -> None:
         """The API refuses a float lookahead or string slots with BadOption, as the CLI does."""
-        for name in ("evict", "split", "mechanism"):
+        for name in ("evict", "split", "mechanism", "expert_slots"):
             v = getattr(self, name)
             if not isinstance(v, str):
                 raise BadOption(f"{name} must be text, got {v!r:.40}")
@@ -123,6 +127,11 @@ class EngineOptions:
             raise BadOption(f"--lookahead must be at least 1, got {self.lookahead}")
         if self.mechanism not in MECHANISMS:
             raise BadOption(f"unknown page-in mechanism {self.mechanism!r}; known: {', '.join(MECHANISMS)}")
+        if self.expert_slots not in EXPERT_SLOTS:
+            raise BadOption(f"expert slots must be one of {', '.join(EXPERT_SLOTS)}, got {self.expert_slots!r:.40}")
+        if self.expert_slots == "float32" and self.prefetch > 0 and not self.bare and self.baseline is None:
+            raise BadOption("float32 expert slots do not work with --prefetch yet (the reader process writes what is "
+                            "stored, while the slot is widened in place); use --expert-slots stored")
         if self.split not in ("even", "shared"):
             raise BadOption(f"split must be 'even' or 'shared', got {self.split!r}")
         t = self.reader_timeout
@@ -203,10 +212,21 @@ def load(model_dir: str | os.PathLike | None = None, options: EngineOptions | No
     return open_engine(model_dir, options)
 
 
+def widen_experts(o: EngineOptions) -> bool:
+    """Whether an open checkpoint's BF16/F16 experts are held as float32 (widened once when read, twice the bytes
+    of a BF16 slot) rather than as stored (widened at each use).  "auto": float32 when every expert is resident
+    and there is no reader process (no cap, no slot list, no prefetch), where memory is not what is asked to be
+    saved and each use would otherwise pay the widening again; as stored under a cap, where a slot of half the
+    bytes holds twice the experts (scripts/bench_open.py has the measurements)."""
+    if o.expert_slots != "auto":
+        return o.expert_slots == "float32"
+    return o.mem_cap is None and o.slots is None and (o.prefetch == 0 or o.bare or o.baseline is not None)
+
+
 def open_engine(model_dir, o: EngineOptions) -> Engine:
     """The engine of checked options: sizes the budget, allocates the pool, starts the reader if asked."""
     watch = MemWatch()
-    store = open_store(resolve_model(model_dir), o.max_context)
+    store = open_store(resolve_model(model_dir), o.max_context, widen=widen_experts(o))
     reader = None
     try:
         c = store.config
@@ -216,7 +236,10 @@ def open_engine(model_dir, o: EngineOptions) -> Engine:
         store.cold_reads = o.cold_reads
         store.set_mechanism(o.mechanism)
         chosen_split = list(o.slots) if o.slots is not None else o.split
-        budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, o.mem_cap, chosen_split, store.codec.scratch_bytes())
+        if o.expert_slots == "float32" and not getattr(store.codec, "widened", False) and store.codec.name != "F32":
+            raise BadOption(f"float32 expert slots are for open checkpoints' BF16 and F16 experts; this model's are {store.codec.name}")
+        budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, o.mem_cap, chosen_split, store.codec.scratch_bytes(),
+                             store.slot_nbytes)
         store.link_rate = o.link_speed
         if o.prefetch > 0 and not o.bare and o.baseline is None:  # guesses are read by the reader process
             reader = Reader(store, budget.n_slots, budget.slot, o.reader_timeout)

@@ -187,6 +187,7 @@ class ExpertPool(ExpertSource):
             return
         s.dropped = False
         if result == reader_child.OK:
+            self.store.finish_read(s.buf)
             s.arrive(start + ns, ns)
             self.timing.observed(ns)
             st.bytes_in += self.store.expert_nbytes

@@ -104,7 +104,7 @@ class BareExperts(ExpertSource):
     def __init__(self, store: ModelStore):
         super().__init__(store)
         c = store.config
-        size = slot_bytes(store.expert_nbytes)
+        size = slot_bytes(store.slot_nbytes)
         block, self._raw = aligned_block(c.n_layers * c.n_experts * size)
         self.table = []
         for layer in range(c.n_layers):
@@ -126,7 +126,7 @@ class WholeLayerExperts(ExpertSource):
     def __init__(self, store: ModelStore):
         super().__init__(store)
         c = store.config
-        size = slot_bytes(store.expert_nbytes)
+        size = slot_bytes(store.slot_nbytes)
         block, self._raw = aligned_block(c.n_experts * size)
         self.slots = [block[i * size : (i + 1) * size] for i in range(c.n_experts)]
         self.bound = [store.codec.bind(s) for s in self.slots]
@@ -144,7 +144,7 @@ class NoReuseExperts(ExpertSource):
 
     def __init__(self, store: ModelStore):
         super().__init__(store)
-        size = slot_bytes(store.expert_nbytes)
+        size = slot_bytes(store.slot_nbytes)
         block, self._raw = aligned_block(size)
         self.slot = block
         self.bound = store.codec.bind(block)

@@ -21,10 +21,12 @@ import pytest
 
 import moerun
 from moerun.cli import main as cli
+from moerun.errors import BadOption
 from moerun.files.ckpt_store import CheckpointStore, open_store
 from moerun.files.store import ModelStore
 from moerun.model.sampling import Sampling
 from moerun.runtime.budget import minimum_cap
+from moerun.runtime.options import EngineOptions
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures" / "open"
 VARIANTS = sorted(p.name for p in FIXTURES.iterdir() if (p / "config.json").is_file())
@@ -35,10 +37,15 @@ def _ref(name: str):
     return np.load(FIXTURES / name / "reference.npz")
 
 
-def _caps(store) -> dict[str, int]:
-    c = store
-    args = (c.config, c.dense_nbytes, c.expert_nbytes)
-    return {"even": minimum_cap(*args, "even", c.codec.scratch_bytes()), "shared": minimum_cap(*args, "shared", c.codec.scratch_bytes())}
+def _caps(d) -> dict[str, int]:
+    """The smallest caps of the model in ``d``, its experts held as stored (what a capped run holds them as)."""
+    c = open_store(d)
+    try:
+        args = (c.config, c.dense_nbytes, c.expert_nbytes)
+        scratch = c.codec.scratch_bytes()
+        return {"even": minimum_cap(*args, "even", scratch, c.slot_nbytes), "shared": minimum_cap(*args, "shared", scratch, c.slot_nbytes)}
+    finally:
+        c.close()
 
 
 def test_there_is_a_fixture_of_every_architecture_in_f32_and_bf16():
@@ -93,7 +100,7 @@ def test_offloaded_output_is_bit_identical_to_resident(variant):
     ref = _ref(variant)
     prompt = ref["tokens_2"].tolist()
     resident = moerun.load(FIXTURES / variant)
-    caps = _caps(resident.store)
+    caps = _caps(FIXTURES / variant)
     want = resident.generate(prompt_ids=prompt, max_new=12, sampling=Sampling(temperature=0.9, seed=3), keep_logits=True)
     resident.close()
     for label, kind, settings in SETTINGS:
@@ -206,12 +213,12 @@ def test_generate_runs_on_an_open_checkpoint_from_the_command_line(capsys):
 
 
 @pytest.mark.parametrize("variant", ["qwen2_moe-bf16-sharded-v4", "qwen3_moe-bf16-fused-sharded"])
-def test_prefetch_reads_an_open_checkpoints_spans_in_the_reader_process_bit_identically(variant):
+def test_prefetch_on_an_open_checkpoint_is_bit_identical(variant):
     ref = _ref(variant)
     prompt = ref["tokens_2"].tolist()
     resident = moerun.load(FIXTURES / variant)
-    caps = _caps(resident.store)
-    caps["shared"] = (caps["shared"] + resident.budget.total) // 2  # room beside the experts a layer pins
+    caps = _caps(FIXTURES / variant)
+    caps["shared"] = caps["even"]  # a shared pool of n_layers x top_k slots: room beside the experts a layer pins
     want = resident.generate(prompt_ids=prompt, max_new=16, sampling=Sampling(temperature=0.9, seed=5), keep_logits=True)
     resident.close()
     # a slow emulated link (20 MB/s), so that guesses pay on experts this small and are read
@@ -222,7 +229,9 @@ def test_prefetch_reads_an_open_checkpoints_spans_in_the_reader_process_bit_iden
         try:
             got = eng.generate(prompt_ids=prompt, max_new=16, sampling=Sampling(temperature=0.9, seed=5), keep_logits=True)
             st = eng.pool.stats
-            assert st.prefetch_loads > 0 and st.prefetch_failed == 0 and st.prefetch_copied_here < st.prefetch_loads, settings
+            # guesses were handed to the reader (whether it or, when it was late, the compute thread copied them
+            # depends on timing: tests/runtime/test_reader.py checks the reader's copies byte for byte)
+            assert st.prefetch_loads > 0 and st.prefetch_failed == 0, settings
             assert got.new_ids == want.new_ids, settings
             assert all(np.array_equal(a, b) for a, b in zip(got.logits, want.logits)), settings
         finally:
@@ -291,7 +300,7 @@ def test_a_prompt_longer_than_one_pass_runs_in_passes_and_stays_bit_identical_of
     synthesize_open(d, OpenShape("qwen3_moe", layers=3, experts=8, hidden=64, expert_width=32, head_dim=16, context=1024), seed=2)
     ids = np.random.default_rng(0).integers(2, 258, 3 * transformer.PREFILL_CHUNK - 40).tolist()
     resident = moerun.load(d)
-    caps = _caps(resident.store)
+    caps = _caps(d)
     want = resident.generate(prompt_ids=ids, max_new=6, sampling=Sampling(seed=1), keep_logits=True)
     in_passes = resident.logits(ids)
     monkeypatch.setattr(transformer, "PREFILL_CHUNK", 10**9)
@@ -320,3 +329,58 @@ def test_the_scratch_of_a_long_context_counts_one_pass_not_the_whole_prompt():
     # the scores of one pass are 3 x heads x PREFILL_CHUNK x context floats: linear in the context past one pass
     one_pass = 3 * 8 * PREFILL_CHUNK * 4
     assert scratch_bytes(config(8192)) - scratch_bytes(config(4096)) == 4096 * (one_pass + 4 * 32)
+
+
+# ---------------------------------------------------------------------------- how slots hold BF16 experts
+
+
+@pytest.mark.parametrize("variant", ["qwen3_moe-bf16-fused-sharded", "qwen2_moe-bf16-sharded-v4", "olmoe-bf16-fused"])
+def test_experts_widened_when_read_compute_the_same_bits_as_experts_widened_at_each_use(variant):
+    ref = _ref(variant)
+    prompt = ref["tokens_1"].tolist()
+    runs = {}
+    for slots in ("float32", "stored"):
+        with moerun.load(FIXTURES / variant, expert_slots=slots) as eng:
+            gen = eng.generate(prompt_ids=prompt, max_new=6, sampling=Sampling(temperature=0.9, seed=2), keep_logits=True)
+            runs[slots] = (eng.logits(prompt), gen.new_ids, gen.logits, eng.budget.slot, eng.store.slot_nbytes, eng.store.expert_nbytes)
+    w, s = runs["float32"], runs["stored"]
+    assert np.array_equal(w[0], s[0]) and w[1] == s[1] and all(np.array_equal(a, b) for a, b in zip(w[2], s[2]))
+    assert w[4] >= 2 * s[5] and s[4] < w[4] and w[5] == s[5]  # a float32 slot holds twice the bytes a page-in reads
+
+
+def test_auto_holds_experts_as_float32_only_when_every_expert_is_resident_and_no_reader_runs():
+    from moerun.runtime.options import widen_experts
+
+    assert widen_experts(EngineOptions()) is True
+    assert widen_experts(EngineOptions(mem_cap="8MiB")) is False
+    assert widen_experts(EngineOptions(prefetch=1)) is False
+    assert widen_experts(EngineOptions(slots=[2, 2])) is False
+    assert widen_experts(EngineOptions(mem_cap="8MiB", expert_slots="float32")) is True
+    assert widen_experts(EngineOptions(expert_slots="stored")) is False
+
+
+def test_float32_slots_under_a_cap_stay_bit_identical_to_resident():
+    variant = "qwen2_moe-bf16-fused"
+    prompt = _ref(variant)["tokens_2"].tolist()
+    with moerun.load(FIXTURES / variant) as eng:
+        want = eng.generate(prompt_ids=prompt, max_new=8, sampling=Sampling(seed=4), keep_logits=True)
+        cap = eng.budget.dense + eng.budget.kv_cache + eng.budget.scratch + 2 * eng.config.top_k * eng.budget.slot
+    with moerun.load(FIXTURES / variant, mem_cap=cap, expert_slots="float32") as eng:
+        got = eng.generate(prompt_ids=prompt, max_new=8, sampling=Sampling(seed=4), keep_logits=True)
+        assert sum(eng.pool.stats.misses) > 0 and eng.budget.slots == [2, 2]
+    assert got.new_ids == want.new_ids and all(np.array_equal(a, b) for a, b in zip(got.logits, want.logits))
+
+
+def test_float32_slots_are_refused_with_the_reader_and_for_experts_they_cannot_hold(tmp_path):
+    from moerun.makers.synthetic import synth_config, synthesize
+
+    with pytest.raises(BadOption, match="prefetch"):
+        EngineOptions(mem_cap="8MiB", prefetch=1, expert_slots="float32")
+    with pytest.raises(BadOption, match="expert slots"):
+        EngineOptions(expert_slots="bf16")
+    f16 = tmp_path / "f16"
+    synthesize(f16, synth_config(layers=2, experts=4, top_k=2, dtype="F16"))
+    with pytest.raises(BadOption, match="float32 expert slots"):
+        moerun.load(f16, expert_slots="float32")
+    with moerun.load("pebble", expert_slots="float32") as eng:  # already float32: nothing to widen
+        assert eng.store.codec.name == "F32"

@@ -97,6 +97,35 @@ def test_reader_copies_the_requested_experts_byte_for_byte(small_model):
     assert copied == wanted
 
 
+@pytest.mark.parametrize("variant", ["qwen2_moe-bf16-sharded-v4", "qwen3_moe-bf16-fused-sharded", "olmoe-f32"])
+def test_reader_copies_an_open_checkpoints_experts_from_their_shards_in_pieces(variant):
+    """An expert whose parts lie in several shards (tests/fixtures/open, written by the transformers library) comes
+    out of the reader byte for byte as the compute thread's own read puts it in a slot."""
+    from pathlib import Path
+
+    from moerun.files.ckpt_store import open_store
+
+    store = open_store(Path(__file__).resolve().parent.parent / "fixtures" / "open" / variant)
+    slot_size = -(-store.slot_nbytes // 4096) * 4096
+    L, E = store.config.n_layers, store.config.n_experts
+    keys = [(layer, e) for layer in range(L) for e in range(E)]
+    reader = Reader(store, len(keys), slot_size)
+    try:
+        assert max(len(store.read_pieces(*k)) for k in keys) > 1 or variant.endswith("f32")
+        for i, (layer, e) in enumerate(keys):
+            reader.submit(i, 1, layer, e)
+        got = [reader.wait(i, 1) for i in range(len(keys))]
+        own = np.zeros(slot_size, np.uint8)
+        for i, (layer, e) in enumerate(keys):
+            own[:] = 0
+            store.copy_in(layer, e, own)
+            assert bytes(reader.block[i * slot_size : (i + 1) * slot_size]) == own.tobytes(), (layer, e)
+    finally:
+        reader.close()
+        store.close()
+    assert [g[0] for g in got] == [rc.OK] * len(keys)
+
+
 def test_a_cancelled_request_the_reader_has_not_started_is_skipped(small_model):
     store = ModelStore.open(small_model)
     slot_size = -(-store.expert_nbytes // 4096) * 4096
