@@ -106,6 +106,21 @@ def fmt_tok_s(tok_s: float) -> str:
     return f"{r:.{2 - math.floor(math.log10(r))}f}"
 
 
+# How a setting is written for people, the same in every command's text.  In JSON a shared pool is
+# ``"split": "shared"`` and a prefetch setting ``"prefetch": N, "lookahead": L`` (the engine's options).
+SHARED_POOL = "shared pool"  # one pool shared by all layers (--shared-pool)
+NO_PREFETCH = "no prefetch"
+
+
+def fmt_prefetch(prefetch: int, lookahead: int | None = None, prefetch_from: str | None = None) -> str:
+    """A prefetch setting as the options that choose it: ``--prefetch 2 --lookahead 1`` (``--prefetch-from output``
+    added when it is not the default), or ``no prefetch``."""
+    if not prefetch:
+        return NO_PREFETCH
+    text = f"--prefetch {prefetch} --lookahead {lookahead or 1}"
+    return text + (f" --prefetch-from {prefetch_from}" if prefetch_from not in (None, "attention") else "")
+
+
 def whole_number(v, lo: int = 0, hi: int = 2**62) -> bool:
     """A JSON value that is a whole number in [lo, hi] (not a bool, not 1.5, not 10**400)."""
     return isinstance(v, int) and not isinstance(v, bool) and lo <= v <= hi

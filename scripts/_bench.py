@@ -90,7 +90,7 @@ def session(model, prompts, max_new: int, seed: int, *, trace: bool = False, **k
         recorded = eng.finish_trace() if trace else None
         stats = eng.stats
         pool = stats.get("pool", {})
-        stall = pool["stall_ns"] if "stall_ns" in pool else getattr(eng.experts, "stall_ns", 0)
+        stall = pool["stall_s"] * 1e9 if "stall_s" in pool else getattr(eng.experts, "stall_ns", 0)
         slots = list(eng.budget.slots) if eng.budget is not None else None
     return {"tok_s": steps / (decode_ns / 1e9) if decode_ns else 0.0, "decode_s": decode_ns / 1e9,
             "total_s": total_ns / 1e9, "steps": steps, "tokens": tokens, "hit_rate": pool.get("hit_rate"),

@@ -112,7 +112,7 @@ def run(model, max_new: int, seed: int, **kw) -> dict:
     steps = max(1, gen.decode_steps)
     pool = stats.get("pool", {})
     ns = dict(TIMERS.ns)
-    wait = pool.get("stall_ns", 0)
+    wait = pool.get("stall_s", 0) * 1e9
     calls = sum(TIMERS.calls.values())
     ns["pool"] -= wait  # stalls happen inside weights()
     per = {p: max(0.0, (ns.get(p, 0) - TIMERS.overhead * TIMERS.calls.get(p, 0)) / steps / 1e3) for p in PARTS if p not in ("compute", "wait")}
@@ -148,7 +148,7 @@ def main() -> int:
         with moerun.load(model, tokenizer=False, mem_cap=cap) as eng:
             gen = eng.generate(prompt_ids=[0], max_new=a.max_new, sampling=Sampling(temperature=0.8, seed=a.seed))
             pool = eng.stats["pool"]
-            rate = pool["misses"] * st.expert_nbytes / max(1e-6, (gen.decode_ns - pool["stall_ns"]) / 1e9)
+            rate = pool["misses"] * st.expert_nbytes / max(1e-6, (gen.decode_ns - pool["stall_s"] * 1e9) / 1e9)
     install()
     configs = {
         "resident": {},

@@ -215,7 +215,7 @@ def main() -> int:
         "markov_hit_rate": best["markov"]["stats"]["pool"]["hit_rate"],
         "prefetch_accuracy": pf_pool["prefetch"]["accuracy"],
         "prefetch_declined": pf_pool["prefetch"]["declined"],
-        "prefetch_hidden_ms": pf_pool["prefetch"]["hidden_ns"] / 1e6,
+        "prefetch_hidden_s": pf_pool["prefetch"]["hidden_s"],
         "same_tokens_everywhere": same,
         "spread": {k: spread(v) for k, v in runs.items()},
     }
@@ -276,7 +276,7 @@ def main() -> int:
           f"{100 * rt['resident_prefetch_vs_resident']:.0f}% (goal 97%)"
           + (f"; with {a.busy} busy: prefetch vs lru {rt['prefetch_busy_vs_lru_busy']:.2f}x (goal 0.95x)" if a.busy else ""))
     print(f"prefetch accuracy {100 * (doc['prefetch_accuracy'] or 0):.1f}%, {doc['prefetch_declined']} guesses declined, "
-          f"page-in hidden {doc['prefetch_hidden_ms']:.1f} ms; tokens identical in every configuration: {same}")
+          f"page-in hidden {doc['prefetch_hidden_s'] * 1e3:.1f} ms; tokens identical in every configuration: {same}")
     return 0
 
 

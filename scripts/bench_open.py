@@ -80,6 +80,8 @@ def child_moerun(d: str, tokens: int, settings: dict) -> dict:
             "hit_rate": pool.get("hit_rate"),
             "misses": sum(ps.misses) if ps else 0,
             "expert_bytes": eng.store.expert_nbytes,
+            "slot_bytes": eng.store.slot_nbytes,
+            "expert_storage": eng.store.codec.name,
             "dense_bytes": eng.store.dense_nbytes,
             "slots": list(eng.budget.slots),
             "prefetch_loads": ps.prefetch_loads if ps else 0,
@@ -209,7 +211,7 @@ def main() -> int:
     probe = moerun.probe(sizes=[expert_bytes], work_dir=str(d.parent), runs=12).to_json()
     cold_block = next(b for b in probe["blocks"] if b["source"] == "tempfile")
     cold = cold_block.get("cold") or {}
-    cold_bw = expert_bytes / (cold["p50_ms"] / 1e3) if cold.get("verified") and cold.get("p50_ms") else None
+    cold_bw = expert_bytes / cold["p50_s"] if cold.get("verified") and cold.get("p50_s") else None
     memcpy = _bench.memcpy_bandwidth(256 << 20)
 
     configs: dict[str, tuple[str, dict]] = {"moerun resident": ("moerun", {})}
@@ -240,13 +242,14 @@ def main() -> int:
 
     res = {name: summary(rs) for name, rs in runs.items()}
     resident = runs["moerun resident"][0]
-    dense, experts_per_token = info["dense_f32_bytes"], info["layers"] * info["top_k"] * expert_bytes
+    # what a resident decode step reads: the dense float32 weights, and each chosen expert as its slot holds it
+    dense, experts_per_token = info["dense_f32_bytes"], info["layers"] * info["top_k"] * resident["slot_bytes"]
     bytes_per_token = dense + experts_per_token
     doc = {
         "machine": {"cpus": os.cpu_count(), "blas": _bench.BLAS_NOTE, "memcpy_bytes_per_s": memcpy, "cold_read_bytes_per_s": cold_bw},
         "checkpoint": {"dir": str(d), **SHAPE, "layers": a.layers, **info, "cap_bytes": cap, "note": "random weights"},
         "tokens": a.tokens, "rounds": a.rounds, "results": res,
-        "resident": {"weight_bytes_per_token": bytes_per_token,
+        "resident": {"weight_bytes_per_token": bytes_per_token, "expert_storage": resident["expert_storage"],
                      "memcpy_bound_tok_s": memcpy / bytes_per_token,
                      "share_of_memcpy_bound": res["moerun resident"]["median_tok_s"] / (memcpy / bytes_per_token)},
     }
@@ -279,7 +282,7 @@ def main() -> int:
         pf = f"{r['prefetch_loads']:.0f}/{r['prefetch_used']:.0f}" if r["prefetch_loads"] else "-"
         print(f"{name:<36}{r['median_tok_s']:>9.2f}{100 * r['spread']:>8.0f}%{hr:>10}{pf:>19}")
     rd = doc["resident"]
-    print(f"\nresident: {rd['weight_bytes_per_token'] / 1e6:.0f} MB of weights read a token; memcpy bound "
+    print(f"\nresident (experts {rd['expert_storage']}): {rd['weight_bytes_per_token'] / 1e6:.0f} MB of weights read a token; memcpy bound "
           f"{rd['memcpy_bound_tok_s']:.2f} tok/s; moerun reaches {100 * rd['share_of_memcpy_bound']:.0f}% of it")
     if "vs_reference" in rd:
         print(f"resident: moerun / transformers eager f32 = {rd['vs_reference']:.2f}x; last logits differ by at most "

@@ -847,5 +847,5 @@ def test_meta_nested_past_the_recursion_limit_is_bad_trace(tmp_path):
 def test_implausible_declared_expert_count_is_one_clear_error_in_replay(tmp_path):
     path = tmp_path / "t.npz"
     np.savez(path, experts=np.zeros((3, 1, 1), np.int16), meta=np.array(json.dumps({"n_experts": 10**30})))
-    code, out, err = _run_cli("replay", str(path), "--json")
+    code, out, err = _run_cli("replay", "--routing", str(path), "--json")
     assert code == 2 and err.strip().count("\n") == 0 and "Traceback" not in err

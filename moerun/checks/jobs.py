@@ -311,7 +311,7 @@ class ScoreResult:
     score: Score
     bytes_paged_in: int | None
     expert_loads: int | None
-    stall_ms: float | None
+    stall_s: float | None
     stats: dict  # the engine's stats but the pool's: budget, peak_rss_growth_bytes, options (and the reader's)
     link_emulated: bool
     cap_exceeded: bool | None = None  # None without a cap
@@ -330,7 +330,7 @@ class ScoreResult:
             **self.score.to_json(),
             "bytes_paged_in": self.bytes_paged_in,
             "expert_loads": self.expert_loads,
-            "stall_ms": self.stall_ms,
+            "stall_s": self.stall_s,
             **self.stats,
             "link_emulated": self.link_emulated,
         }
@@ -384,7 +384,7 @@ def score(model_dir: str | os.PathLike | None = None, text: str | os.PathLike | 
             score=result,
             bytes_paged_in=pool.get("bytes_paged_in"),
             expert_loads=pool.get("prefill_loads"),
-            stall_ms=pool.get("stall_ns", 0) / 1e6 if pool else None,
+            stall_s=pool.get("stall_s", 0.0) if pool else None,
             stats={k: v for k, v in st.items() if k != "pool"},
             link_emulated=engine.options.get("link_speed") is not None,
             cap_exceeded=chk["exceeded"] if chk is not None else None,

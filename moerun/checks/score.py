@@ -61,7 +61,7 @@ class Score:
             "predicted_tokens": self.predicted,
             "windows": self.windows,
             "tokens_through_model": self.tokens,
-            "forward_ms": self.forward_ns / 1e6,
+            "forward_s": self.forward_ns / 1e9,
             "tok_s": self.tok_s,
         }
 

@@ -15,6 +15,7 @@ from moerun.files.ckpt_store import open_store
 from moerun.model.sampling import Sampling
 from moerun.runtime.budget import minimum_cap, plan_budget
 from moerun.runtime.options import load
+from moerun.units import SHARED_POOL, fmt_prefetch
 
 
 @dataclass
@@ -44,10 +45,10 @@ def default_settings(min_cap: int, full_cap: int, slot: int) -> list[Setting]:
     return [
         *(Setting(f"smallest cap, {name}", {"mem_cap": min_cap, "evict": name}) for name in policies.names(online_only=True)),
         Setting("middle cap, lru", {"mem_cap": mid, "evict": "lru"}),
-        Setting("smallest cap, prefetch 2 x 2 layers", {"mem_cap": min_cap, "prefetch": 2, "lookahead": 2}),
-        Setting("middle cap, shared pool, prefetch 1", {"mem_cap": mid, "split": "shared", "prefetch": 1}),
-        Setting("smallest cap, shared pool, orbit", {"mem_cap": min_cap, "split": "shared", "evict": "orbit"}),
-        Setting("smallest cap, prefetch 2, link 1 GB/s (emulated)", {"mem_cap": min_cap, "prefetch": 2, "link_speed": 1e9}),
+        Setting(f"smallest cap, {fmt_prefetch(2, 2)}", {"mem_cap": min_cap, "prefetch": 2, "lookahead": 2}),
+        Setting(f"middle cap, {SHARED_POOL}, {fmt_prefetch(1, 1)}", {"mem_cap": mid, "split": "shared", "prefetch": 1}),
+        Setting(f"smallest cap, {SHARED_POOL}, orbit", {"mem_cap": min_cap, "split": "shared", "evict": "orbit"}),
+        Setting(f"smallest cap, {fmt_prefetch(2, 1)}, link 1 GB/s (emulated)", {"mem_cap": min_cap, "prefetch": 2, "link_speed": 1e9}),
     ]
 
 

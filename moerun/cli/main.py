@@ -172,6 +172,34 @@ def check_against_model(args, config) -> None:
     check_against_config(getattr(args, "prefetch", 0), getattr(args, "lookahead", None), config)
 
 
+# ---------------------------------------------------------------------------- one spelling per direction
+
+# A routing trace the command reads is ``--routing FILE`` in every command; a trace the command writes is
+# ``--trace FILE``.  Spellings replaced for this rule still work for one release, with a note on stderr.
+
+
+def add_routing(p, help: str) -> None:
+    """--routing FILE: a routing trace the command reads (the one spelling of an input trace)."""
+    p.add_argument("--routing", metavar="FILE", help=help)
+
+
+def deprecated(command: str, old: str, new: str) -> None:
+    """One line on stderr: an old spelling still works for this release; say what to write instead."""
+    sys.stderr.write(f"moerun {command}: note: {old} is deprecated and goes in the next release; write {new}\n")
+
+
+def routing_from_old(args, command: str, old_dest: str, old: str) -> None:
+    """Fold an old spelling of the input trace (in ``old_dest``) into ``args.routing``, with the deprecation note;
+    both spellings at once are refused (BadOption, exit 2)."""
+    value = getattr(args, old_dest, None)
+    if value is None:
+        return
+    if args.routing is not None:
+        raise BadOption(f"the trace to read was given twice ({old} and --routing FILE); give it once, as --routing FILE")
+    deprecated(command, old, "--routing FILE")
+    args.routing = value
+
+
 def add_json(p) -> None:
     p.add_argument("--json", action="store_true", help="print one JSON document on stdout and nothing else there")
 

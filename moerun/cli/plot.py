@@ -17,6 +17,7 @@ from moerun.errors import BadOption
 from moerun.files.fileio import atomic_path
 from moerun.files.trace import Trace
 from moerun.sim.report import overall, residency_picture
+from moerun.units import SHARED_POOL
 
 PICTURE_TOKENS = 160
 
@@ -65,8 +66,8 @@ def plot_replay(path: str | Path, trace: Trace, doc: dict, layer: int = 0, force
         by = overall(doc.get("baselines", []), baseline=key)
         if by:
             ax.plot(slots, [100 * (by[c]["hit_rate"] or 0) for c in slots], linestyle=":", marker=".", label=label)
-    shared = doc.get("pool") == "shared"
-    ax.set_xlabel("expert slots of the pool shared by all layers" if shared else "expert slots per layer")
+    shared = doc["split"] == "shared"
+    ax.set_xlabel(f"expert slots of the {SHARED_POOL} (one for all layers)" if shared else "expert slots per layer")
     ax.set_ylabel("hit rate (% of decode accesses)")
     ax.set_xticks(slots)
     ax.set_ylim(0, 100)
@@ -94,7 +95,7 @@ def plot_replay(path: str | Path, trace: Trace, doc: dict, layer: int = 0, force
             axr.set_yticks(range(E))
         misses = int((pic == 3).sum())
         used = int((pic >= 2).sum())
-        where = f"{c} shared slots" if shared else f"{c} slots"
+        where = f"{c} slots, {SHARED_POOL}" if shared else f"{c} slots"
         axr.set_title(f"layer {layer}, {name}, {where}: {misses} misses in {used} accesses", fontsize=10)
         info[f"picture_{j}"] = {"policy": name, "slots": c, "tokens": [t0, t1], "misses": misses, "accesses": used}
     fig.legend(

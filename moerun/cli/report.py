@@ -29,6 +29,13 @@ def pct(x: float | None) -> str:
     return "-" if x is None else f"{100 * x:.1f}%"
 
 
+def written(command: str, what: str, path, detail: str = "") -> None:
+    """The one "written to" notice of a command's output file or directory: one line on stderr, with or
+    without --json, so that stdout holds only the command's text or its JSON document."""
+    sys.stderr.write(f"moerun {command}: {what} written to {path}" + (f" ({detail})" if detail else "") + "\n")
+    sys.stderr.flush()
+
+
 def emit_json(doc: dict) -> None:
     sys.stdout.write(json.dumps(doc, indent=2, default=_default) + "\n")
     sys.stdout.flush()

@@ -477,7 +477,7 @@ def page_seconds(expert_bytes: int, link_speed: float | None = None, probe: dict
         raise BadInput(f"the probe file has no measured {regime} figures")
     block = min(usable, key=lambda b: abs(np.log(b["bytes"] / expert_bytes)))
     r = block[regime]
-    secs = r["p50_ms"] / 1e3 * expert_bytes / block["bytes"]
+    secs = r["p50_s"] * expert_bytes / block["bytes"]
     note = "" if r.get("verified", True) else " (unverified)"
     return secs, f"probe {regime} p50 of {block['label']}{note}, scaled to {expert_bytes} B"
 

@@ -9,6 +9,7 @@ from __future__ import annotations
 import math
 import os
 import time
+import warnings
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -47,7 +48,7 @@ class PlanResult:
     min_cap_bytes: int  # the smallest cap searched (a shared pool's with shared_pool)
     per_layer_min_cap_bytes: int  # the smallest cap of one pool per layer
     all_resident_cap_bytes: int
-    curve: dict  # {"policy": ..., "points": [{cap_bytes, slots_total, slots, prefetch, stall_share, tok_s, ...}]}
+    curve: dict  # {"policy": ..., "points": [{cap_bytes, slots_total, slots, split, prefetch, lookahead, stall_share, tok_s}]}
     layers: int  # (not in the document: the model's layers and experts per layer, for the text)
     experts: int
     note: str | None = None
@@ -67,7 +68,7 @@ class PlanResult:
     def to_json(self) -> dict:
         doc: dict = {
             "planned_for": self.planned_for,
-            "costs": self.costs.to_json(),
+            "costs": costs_json(self.costs),
             "calibration": self.calibration,
             "calibration_flags": self.calibration_flags,
             "calibration_age_s": self.calibration_age_s,
@@ -84,13 +85,82 @@ class PlanResult:
         if self.recommended is not None:
             doc["mem_cap_bytes"] = self.mem_cap_bytes
             doc["slots_total"] = self.slots_total
-            doc["candidates"] = [{"split": lab, **pr.to_json()} for lab, pr in self.candidates]
-            doc["recommended"] = {"split": self.recommended_split, **self.recommended.to_json()}
+            doc["candidates"] = [prediction_json(lab, pr) for lab, pr in self.candidates]
+            doc["recommended"] = prediction_json(self.recommended_split, self.recommended)
             doc["split_comparison"] = self.split_comparison
         doc["curve"] = self.curve
         if self.target is not None:
             doc["target"] = self.target
         return doc
+
+
+def _seconds(value, factor: float):
+    """A duration (or a list or mapping of them) in ``1 / factor`` seconds, as seconds."""
+    if isinstance(value, dict):
+        return {k: v / factor for k, v in value.items()}
+    if isinstance(value, list):
+        return [v / factor for v in value]
+    return value / factor
+
+
+def costs_json(costs: Costs) -> dict:
+    """The time model's costs with every duration in seconds, as every JSON document gives durations
+    (docs/guide/api.md, "Units"): ``attn_s``, ``expert_s``, ..., ``policy_s_per_access``.  (Costs.to_json
+    writes microseconds; the plan's document converts them here.)"""
+    doc: dict = {}
+    for key, value in costs.to_json().items():
+        if key.endswith("_us_per_access"):
+            doc[key.removesuffix("_us_per_access") + "_s_per_access"] = _seconds(value, 1e6)
+        elif key.endswith("_us"):
+            doc[key.removesuffix("_us") + "_s"] = _seconds(value, 1e6)
+        else:
+            doc[key] = value
+    return doc
+
+
+def prediction_json(split: str, pr: Prediction) -> dict:
+    """One setting's prediction as every document writes a setting: the pool as ``split`` ("even", "uneven" or
+    "shared"; no ``shared`` flag beside it) and prefetch as the engine's options write it (``prefetch``, 0 for
+    none, and ``lookahead``, 1 when there is no prefetch)."""
+    doc = {"split": split, **pr.to_json()}
+    doc.pop("shared", None)
+    if not doc["prefetch"]:
+        doc["lookahead"] = 1
+    return doc
+
+
+def _curve(space: Space, policy: str, prefetches) -> tuple[list[dict], list[tuple[str, Prediction]]]:
+    """``space.curve``'s points, and the setting (split label, prediction) behind each point, so that a point can
+    name its pool and its whole prefetch setting (the points themselves carry neither the split label nor the
+    lookahead).  The setting is the one Space.curve keeps: the fastest seen so far, asking ``space.best``."""
+    seen: dict = {}
+    ask = space.best
+
+    def best(total, *args, **kwargs):
+        seen[total] = ask(total, *args, **kwargs)
+        return seen[total]
+
+    space.best = best
+    try:
+        points = space.curve(policy, prefetches)
+    finally:
+        del space.best
+    settings, kept = [], None
+    for p in points:
+        lab, pr = seen[p["slots_total"]]
+        if kept is None or pr.tok_s > kept[1].tok_s:
+            kept = (lab, pr)
+        settings.append(kept)
+    return points, settings
+
+
+def _point(point: dict, label: str, pr: Prediction) -> dict:
+    """A curve point with its pool as ``split`` and its prefetch setting whole."""
+    out = {k: v for k, v in point.items() if k != "shared"}
+    out["split"] = label
+    out["prefetch"] = pr.prefetch
+    out["lookahead"] = pr.lookahead if pr.prefetch else 1
+    return out
 
 
 def _record(model_dir: Path, tokens: int) -> Trace:
@@ -100,7 +170,7 @@ def _record(model_dir: Path, tokens: int) -> Trace:
 
     held = model_dir / "heldout.txt"
     if not held.exists():
-        raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --trace FILE")
+        raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --routing FILE")
     with load(model_dir) as eng:
         ids = eng.tokenizer.encode_array(read_text_file(held), tokens).tolist()
         eng.start_trace()
@@ -117,8 +187,8 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
         raise BadOption("--regime has no effect without --probe FILE (the regime picks its warm or cold figures); "
                         "drop it or add --probe")
     if max_tokens is not None and trace is not None:
-        raise BadOption("--max-tokens and --trace contradict each other (--max-tokens says how much to record when "
-                        "there is no --trace); give one")
+        raise BadOption("--max-tokens and --routing contradict each other (--max-tokens says how much to record when "
+                        "there is no --routing); give one")
     if mem_cap is None and target is None:
         raise BadOption("give --mem-cap SIZE (and/or --target TOK_S)")
     if target is not None and not (target > 0 and math.isfinite(target)):
@@ -142,7 +212,7 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
         probe_doc = load_probe(probe)
     if shape:
         if not trace:
-            raise BadOption("--shape needs --trace FILE: routing of that model, in the trace import format")
+            raise BadOption("--shape needs --routing FILE: routing of that model, in the trace import format")
         sh = load_shape(shape)
         model = {"L": sh["layers"], "E": sh["experts"], "k": sh["top_k"], "expert_bytes": sh["expert_bytes"],
                  "fixed": sh["dense_bytes"] + sh.get("kv_cache_bytes", 0) + sh.get("scratch_bytes", 0),
@@ -150,7 +220,7 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
     elif model_dir and is_open_checkpoint(resolve_model(model_dir)):
         model_dir = resolve_model(model_dir)
         if not trace:
-            raise BadInput(f"{model_dir} is an open checkpoint: give a routing trace of it with --trace FILE "
+            raise BadInput(f"{model_dir} is an open checkpoint: give a routing trace of it with --routing FILE "
                            f"(moerun record --model {model_dir} --text FILE --trace FILE --mem-cap SIZE makes one)")
         sh, c = checkpoint_shape(model_dir)
         model = {"L": sh["layers"], "E": sh["experts"], "k": sh["top_k"], "expert_bytes": sh["expert_bytes"],
@@ -167,7 +237,7 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
                  "what": f"model {model_dir}", "note": RANDOM_NOTE if c.extra.get("synthetic") else None}
         store.close()
         if not trace and not (model_dir / "heldout.txt").exists():
-            raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --trace FILE")
+            raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --routing FILE")
     routing = None
     if trace:
         routing = read_trace(trace, n_experts=model["E"])
@@ -222,15 +292,16 @@ def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int,
 
 def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None = None, *, target: float | None = None,
          link_speed: float | str | None = None, probe: str | os.PathLike | None = None, regime: str | None = None,
-         trace: str | os.PathLike | None = None, max_tokens: int | None = None, shape: str | os.PathLike | None = None,
+         routing: str | os.PathLike | None = None, max_tokens: int | None = None, shape: str | os.PathLike | None = None,
          evict: str | Sequence[str] | None = None, shared_pool: bool = False, recalibrate: bool = False,
-         progress: Callable[[int, str], None] | None = None, notice: Callable[[str], None] | None = None) -> PlanResult:
+         progress: Callable[[int, str], None] | None = None, notice: Callable[[str], None] | None = None,
+         trace: str | os.PathLike | None = None) -> PlanResult:
     """Predict decode speed for ``mem_cap`` and recommend slots per layer, policy and prefetch (``moerun plan``).
 
     Page-in costs come from ``link_speed`` (emulated link) or a saved ``probe`` file (its ``regime``, "warm"
-    or "cold"); routing from a ``trace`` file, or recorded now from the model's held-out text (its first
-    ``max_tokens`` tokens, default 2048); ``shape`` plans for a model described by a JSON shape file (with
-    ``trace``).  ``evict``: the policies to consider (default every online one); ``shared_pool`` also
+    or "cold"); routing from a ``routing`` trace file (the command's ``--routing``), or recorded now from the
+    model's held-out text (its first ``max_tokens`` tokens, default 2048); ``shape`` plans for a model described
+    by a JSON shape file (with ``routing``).  ``trace``: the old name of ``routing`` (a DeprecationWarning).  ``evict``: the policies to consider (default every online one); ``shared_pool`` also
     considers one pool for all layers; ``target``: also find the smallest cap reaching this tok/s.
     ``progress(step, what)`` as the work advances (steps 0 to 5); ``notice(line)`` when something the user
     should know happens on the way (a cached calibration that is not valid, measured again).
@@ -239,6 +310,13 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
         if progress is not None:
             progress(i, what)
 
+    if trace is not None:
+        if routing is not None:
+            raise BadOption("the trace to read was given twice (trace= and routing=); give it once, as routing=")
+        warnings.warn("moerun.plan(trace=...) is deprecated and goes in the next release; write routing=...",
+                      DeprecationWarning, stacklevel=2)
+        routing = trace
+    trace = routing
     inp = _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict, shared_pool)
     space, cal_note, cal = _space(inp, shared_pool, recalibrate, step, notice)
     m = inp["model"]
@@ -283,8 +361,8 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
     step(4, "speed against cap")
     curve_policy = rec.policy if rec else "lru"
     curve_pf = [(rec.prefetch, rec.lookahead or 1)] if rec else space.prefetches
-    curve = space.curve(curve_policy, curve_pf)
-    result.curve = {"policy": curve_policy, "points": curve}
+    curve, settings = _curve(space, curve_policy, curve_pf)
+    result.curve = {"policy": curve_policy, "points": [_point(p, *s) for p, s in zip(curve, settings)]}
     if target is not None:
         step(5, "the smallest cap for the target")
         smallest = space.smallest_cap(target, curve_policy, curve_pf, curve)

@@ -1,6 +1,6 @@
 """``moerun.probe``: page-in latency and bandwidth on this machine's storage, as a library function.
 
-The result's ``to_json()`` is what ``moerun probe --json`` prints (and ``--save`` writes, schema moerun-probe/1).
+The result's ``to_json()`` is what ``moerun probe --json`` prints (and ``--save`` writes, schema moerun-probe/2).
 """
 
 from __future__ import annotations

@@ -80,19 +80,20 @@ def aligned_buffer(nbytes: int) -> np.ndarray:
 
 
 def latency_stats(ns: list[int], nbytes: int, ceiling_gb_s: float | None) -> dict:
-    """p50/p95/p99/max/mean in ms (linear interpolation between order statistics), GB/s at p50, share of the ceiling."""
+    """p50/p95/p99/max/mean in seconds (linear interpolation between order statistics), GB/s at p50, share of
+    the ceiling."""
     if not ns:
         return {k: None for k in STAT_KEYS}
-    ms = np.asarray(ns, dtype=np.float64) / 1e6
-    p50, p95, p99 = (float(np.percentile(ms, q)) for q in (50, 95, 99))
-    gb_s = nbytes / (p50 / 1e3) / 1e9 if p50 > 0 else None
+    s = np.asarray(ns, dtype=np.float64) / 1e9
+    p50, p95, p99 = (float(np.percentile(s, q)) for q in (50, 95, 99))
+    gb_s = nbytes / p50 / 1e9 if p50 > 0 else None
     share = gb_s / ceiling_gb_s if gb_s and ceiling_gb_s else None
     return {
-        "p50_ms": _r(p50),
-        "p95_ms": _r(p95),
-        "p99_ms": _r(p99),
-        "max_ms": _r(float(ms.max())),
-        "mean_ms": _r(float(ms.mean())),
+        "p50_s": _r(p50),
+        "p95_s": _r(p95),
+        "p99_s": _r(p99),
+        "max_s": _r(float(s.max())),
+        "mean_s": _r(float(s.mean())),
         "gb_s": _r(gb_s),
         "of_ceiling": _r(share),
     }
@@ -114,7 +115,7 @@ def memcpy_ceiling(nbytes: int = MEMCPY_BYTES, repeats: int = MEMCPY_REPEATS) ->
         dt = time.monotonic_ns() - t0
         best = dt if best is None else min(best, dt)
     best = max(best or 1, 1)
-    return {"method": "np.copyto", "bytes": nbytes, "repeats": repeats, "best_ms": _r(best / 1e6), "gb_s": _r(nbytes / (best / 1e9) / 1e9)}
+    return {"method": "np.copyto", "bytes": nbytes, "repeats": repeats, "best_s": _r(best / 1e9), "gb_s": _r(nbytes / (best / 1e9) / 1e9)}
 
 
 # ---------------------------------------------------------------------- blocks

@@ -1,4 +1,4 @@
-"""The saved result of ``moerun probe`` (schema moerun-probe/1): writing it, and reading it back validated.
+"""The saved result of ``moerun probe`` (schema moerun-probe/2): writing it, and reading it back validated.
 
 ``moerun plan`` takes a probe result as this machine's page-in costs, so a file is trusted
 only after every figure in it was checked (docs/design/architecture.md, invariants): blocks, regimes, runs,
@@ -15,9 +15,10 @@ from moerun.errors import BadInput, BadOption
 from moerun.files.fileio import read_json_file, write_text_atomic
 from moerun.units import finite_number, whole_number
 
-SCHEMA = "moerun-probe/1"
+SCHEMA = "moerun-probe/2"  # durations in seconds, as in every JSON document of moerun (docs/guide/api.md, "Units")
+OLD_SCHEMA = "moerun-probe/1"  # the same document with durations in milliseconds (``_ms``): read, converted
 REGIMES = ("warm", "cold")
-STAT_KEYS = ("p50_ms", "p95_ms", "p99_ms", "max_ms", "mean_ms", "gb_s", "of_ceiling")
+STAT_KEYS = ("p50_s", "p95_s", "p99_s", "max_s", "mean_s", "gb_s", "of_ceiling")
 
 
 def save_probe(path: str | os.PathLike, doc: dict, force: bool = True, inputs=()) -> None:
@@ -33,7 +34,8 @@ MAX_BLOCK = 1 << 50  # bytes of one probed block (a PiB): anything larger is not
 
 
 def validate_probe(doc: object, where: str = "probe result") -> dict:
-    """Check a probe document against schema moerun-probe/1; raise BadInput naming the first problem."""
+    """Check a probe document against schema moerun-probe/2 (a moerun-probe/1 document is converted to it
+    first: its durations in milliseconds become seconds); raise BadInput naming the first problem."""
 
     def bad(msg: str):
         raise BadInput(f"{where}: {msg}")
@@ -44,6 +46,8 @@ def validate_probe(doc: object, where: str = "probe result") -> dict:
         json.dumps(doc, ensure_ascii=False).encode("utf-8")
     except (UnicodeEncodeError, RecursionError, ValueError):
         bad("holds text that is not valid UTF-8")
+    if doc.get("schema") == OLD_SCHEMA:
+        doc = _from_milliseconds(doc)
     if doc.get("schema") != SCHEMA:
         bad(f"schema is {doc.get('schema')!r}, expected {SCHEMA!r} (written by 'moerun probe --save')")
     for key in ("machine", "ceiling"):
@@ -69,6 +73,29 @@ def validate_probe(doc: object, where: str = "probe result") -> dict:
         for r in REGIMES:
             _check_regime(b.get(r), f"{at}.{r}", r, bad)
     return doc
+
+
+def _from_milliseconds(doc: dict) -> dict:
+    """A moerun-probe/1 document as moerun-probe/2: every ``<name>_ms`` figure becomes ``<name>_s``, divided by
+    1000 (a value that is not a number is kept as it is, for the checks to name)."""
+
+    def convert(obj):
+        if not isinstance(obj, dict):
+            return obj
+        out = {}
+        for k, v in obj.items():
+            if isinstance(k, str) and k.endswith("_ms"):
+                is_number = isinstance(v, (int, float)) and not isinstance(v, bool)
+                out[k.removesuffix("_ms") + "_s"] = v / 1e3 if is_number else v
+            else:
+                out[k] = v
+        return out
+
+    new = {**doc, "schema": SCHEMA, "ceiling": convert(doc.get("ceiling"))}
+    if isinstance(doc.get("blocks"), list):
+        new["blocks"] = [{**b, **{r: convert(b.get(r)) for r in REGIMES if r in b}} if isinstance(b, dict) else b
+                         for b in doc["blocks"]]
+    return new
 
 
 def _check_regime(g: object, at: str, r: str, bad) -> None:
@@ -97,7 +124,7 @@ def _check_regime(g: object, at: str, r: str, bad) -> None:
             bad(f"{at}.{k} must be null when no run was measured")
         if n > 0 and k != "of_ceiling" and (not _num(v) or v <= 0):
             bad(f"{at}.{k} must be a positive number")
-    if n > 0 and not g["p50_ms"] <= g["p95_ms"] <= g["p99_ms"] <= g["max_ms"]:
+    if n > 0 and not g["p50_s"] <= g["p95_s"] <= g["p99_s"] <= g["max_s"]:
         bad(f"{at}: percentiles are not in order (p50 <= p95 <= p99 <= max)")
 
 
@@ -105,7 +132,7 @@ def load_probe(path: str | os.PathLike) -> dict:
     """Read and validate a file written by ``moerun probe --save``.
 
     BadOption if the path is not a readable regular file (it came from an option), BadInput if its content
-    is not a valid moerun-probe/1 document.
+    is not a valid moerun-probe/2 document (or a moerun-probe/1 one, converted).
     """
     p = Path(path)
     doc = read_json_file(p, BadInput, "probe file", missing=f"{p}: no such probe file (write one with 'moerun probe --save {p}')",

@@ -239,8 +239,8 @@ class PoolStats:
                 }
                 for i in range(self.n_layers)
             ],
-            "stall_ns": sum(self.stall_ns),
-            "pagein_ns": sum(self.pagein_ns),
+            "stall_s": sum(self.stall_ns) / 1e9,  # JSON durations are seconds (docs/guide/api.md, "Units")
+            "pagein_s": sum(self.pagein_ns) / 1e9,
             "bytes_paged_in": self.bytes_in,
             "demand_loads": self.demand_loads,
             "prefill_loads": self.prefill_loads,
@@ -255,8 +255,8 @@ class PoolStats:
                 "wasted_bytes": self.prefetch_wasted_bytes,
                 "failed": self.prefetch_failed,
                 "copied_here": self.prefetch_copied_here,
-                "pagein_ns": self.prefetch_ns,
-                "hidden_ns": self.hidden_ns,
+                "pagein_s": self.prefetch_ns / 1e9,
+                "hidden_s": self.hidden_ns / 1e9,
                 "reader_stalled": self.reader_stalled,
             },
         }

@@ -33,21 +33,23 @@ class ReplayResult:
 
     trace: dict  # what the trace holds (tokens, layers, top_k, ...) and its file
     slots: list[int]
-    pool: str  # "per-layer" or "shared"
+    split: str  # "even" (a quota per layer, the same slots for each) or "shared" (one pool for every layer)
     policies: list[str]
     expert_bytes: int | None
     results: list[dict]
     prefetch_recall: list[dict]
     baselines: list[dict] | None = None  # lru on the time-shuffled and the random-routing trace
     baseline_seed: int | None = None
-    prefetch: dict | None = None  # with prefetch: the guesses, lookahead and the records with prefetch
+    prefetch: int = 0  # the prefetch setting simulated (0: none), as the engine's options write it
+    lookahead: int = 1
+    prefetch_results: list[dict] | None = None  # with prefetch: the records with prefetch
     plot: dict | None = None  # what 'moerun replay --plot' drew (the command adds it)
 
     def to_json(self) -> dict:
         doc: dict = {
             "trace": self.trace,
             "slots": self.slots,
-            "pool": self.pool,
+            "split": self.split,
             "policies": self.policies,
             "expert_bytes": self.expert_bytes,
             "results": self.results,
@@ -56,8 +58,10 @@ class ReplayResult:
             doc["baselines"] = self.baselines
             doc["baseline_seed"] = self.baseline_seed
         doc["prefetch_recall"] = self.prefetch_recall
-        if self.prefetch is not None:
-            doc["prefetch"] = self.prefetch
+        doc["prefetch"] = self.prefetch
+        doc["lookahead"] = self.lookahead
+        if self.prefetch_results is not None:
+            doc["prefetch_results"] = self.prefetch_results
         if self.plot is not None:
             doc["plot"] = self.plot
         return doc
@@ -133,7 +137,7 @@ class RecordResult:
     guesses: int
     cross_entropy_nats_per_token: float | None
     seconds: float
-    tokens_per_s: float | None
+    tok_s: float | None
     file_bytes: int
     window_tokens: int = 0  # the model's context (not in the JSON document: the text summary says it)
 
@@ -153,7 +157,7 @@ class RecordResult:
             "guesses": self.guesses,
             "cross_entropy_nats_per_token": self.cross_entropy_nats_per_token,
             "seconds": self.seconds,
-            "tokens_per_s": self.tokens_per_s,
+            "tok_s": self.tok_s,
             "file_bytes": self.file_bytes,
         }
 
@@ -243,7 +247,7 @@ def record(trace: str | os.PathLike, model_dir: str | os.PathLike | None = None,
             guesses=int(tr.guesses.shape[3]) if tr.guesses is not None else 0,
             cross_entropy_nats_per_token=nll / predicted if predicted else None,
             seconds=elapsed,
-            tokens_per_s=tr.n_tokens / elapsed if elapsed else None,
+            tok_s=tr.n_tokens / elapsed if elapsed else None,
             file_bytes=Path(trace).stat().st_size,
             window_tokens=c.max_seq_len,
         )

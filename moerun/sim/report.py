@@ -209,7 +209,7 @@ def run_replay(
     doc: dict = {
         "trace": describe(full),
         "slots": slots,
-        "pool": "shared" if shared else "per-layer",
+        "split": "shared" if shared else "even",  # as the engine's budget says it (quotas: the same slots per layer)
         "policies": list(policy_names),
         "expert_bytes": expert_bytes,
         "results": results,
@@ -228,6 +228,7 @@ def run_replay(
         doc["baselines"] = base
         doc["baseline_seed"] = seed
     doc["prefetch_recall"] = prefetch_recall(full)
+    doc["prefetch"], doc["lookahead"] = prefetch if prefetch is not None else (0, 1)  # the engine's options' spelling
     if prefetch is not None:
         n, la = prefetch
         pf = []
@@ -239,7 +240,7 @@ def run_replay(
                 per_layer = simulate_prefetch(trace, cls, c, n, la, plans, shared)
                 pf += _records(name, {c: per_layer}, expert_bytes)
                 tick(f"{name} prefetch")
-        doc["prefetch"] = {"guesses": n, "lookahead": la, "results": pf}
+        doc["prefetch_results"] = pf
     return doc
 
 

@@ -23,6 +23,7 @@ from moerun.cli import main as cli
 from moerun.files.store import ModelStore
 from moerun.files.trace import read_trace
 from moerun.runtime.budget import minimum_cap
+from moerun.sim.jobs import record
 
 
 def _run(capsys, *argv):
@@ -375,8 +376,8 @@ def _writer(kind: str, model, tmp_path: Path, dest: Path, *extra) -> tuple:
     if kind == "replay":
         trace = tmp_path / "for-replay.npz"
         if not trace.exists():
-            assert cli.main(["record", "--model", str(model), "--text", str(text), "--trace", str(trace), "--json"]) == 0
-        return ("replay", str(trace), "--slots", "2", "--plot", str(dest), "--json", *extra)
+            record(trace, model, text)  # the library: no notice on stderr for the test to read
+        return ("replay", "--routing", str(trace), "--slots", "2", "--plot", str(dest), "--json", *extra)
     if kind == "quantize":
         return ("quantize", "--model", str(model), str(dest), "--no-score", "--method", "rtn", "--json", *extra)
     if kind == "synth":
@@ -570,7 +571,7 @@ def test_verify_refuses_the_same_contradictions(small_model, capsys):
 
 @pytest.mark.parametrize(("extra", "phrase"), [
     (("--regime", "cold", "--link-speed", "1GB/s"), "--regime has no effect without --probe"),
-    (("--max-tokens", "100", "--trace", "t.npz", "--link-speed", "1GB/s"), "contradict"),
+    (("--max-tokens", "100", "--routing", "t.npz", "--link-speed", "1GB/s"), "contradict"),
     (("--link-speed", "1GB/s", "--probe", "p.json"), "contradict"),
     (("--link-speed", "1GB/s", "--evict", ","), "--evict is empty"),
 ])

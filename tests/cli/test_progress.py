@@ -53,7 +53,7 @@ def long_trace(tmp_path_factory):
 
 @pytest.mark.parametrize("json_flag", [["--json"], []])
 def test_a_long_replay_writes_plain_progress_lines_to_a_pipe_and_json_only_on_stdout(long_trace, json_flag):
-    proc = _moerun(["replay", long_trace, "--shared-pool", "--generic", *json_flag], every="0.02")
+    proc = _moerun(["replay", "--routing", long_trace, "--shared-pool", "--generic", *json_flag], every="0.02")
     assert proc.returncode == 0, proc.stderr[-500:]
     assert "\r" not in proc.stderr and "\x1b" not in proc.stderr  # plain lines only: no live line, no escapes
     lines = proc.stderr.splitlines()
@@ -61,7 +61,7 @@ def test_a_long_replay_writes_plain_progress_lines_to_a_pipe_and_json_only_on_st
     assert all(PLAIN.match(line) and line.startswith("replay:") for line in lines), proc.stderr[-500:]
     if json_flag:
         doc = json.loads(proc.stdout)  # exactly one document: anything else on stdout would not parse
-        assert doc["pool"] == "shared"
+        assert doc["split"] == "shared"
     else:
         assert "hit rate" in proc.stdout and not re.search(r"^replay: \d+  \d+ s", proc.stdout, re.M)
 
@@ -79,7 +79,7 @@ def test_a_short_command_prints_no_progress_line(long_trace):
     # the default interval (5 s): a replay that ends sooner writes nothing to stderr, --json or not
     for json_flag in (["--json"], []):
         t0 = time.monotonic()
-        proc = _moerun(["replay", long_trace, "--slots", "2", "--evict", "lru", "--no-baselines", *json_flag], every=None)
+        proc = _moerun(["replay", "--routing", long_trace, "--slots", "2", "--evict", "lru", "--no-baselines", *json_flag], every=None)
         if time.monotonic() - t0 > report.PLAIN_EVERY_S:  # a machine too busy to show it: nothing to check
             pytest.skip("the short command took longer than the progress interval on this machine")
         assert proc.returncode == 0 and proc.stderr == "", proc.stderr[-500:]

@@ -86,7 +86,7 @@ def test_the_documented_writer_example_makes_a_trace_that_replays(tmp_path, monk
     trace = read_trace(tmp_path / "run.npz")
     assert trace.experts.shape == (40, 2, 6)
     assert trace.n_experts == 64
-    assert cli.main(["replay", str(tmp_path / "run.npz"), "--evict", "lru,optimal", "--slots", "8,16,32", "--json"]) == 0
+    assert cli.main(["replay", "--routing", str(tmp_path / "run.npz"), "--evict", "lru,optimal", "--slots", "8,16,32", "--json"]) == 0
     doc = json.loads(capsys.readouterr().out)
     assert {r["slots"] for r in doc["results"]} == {8, 16, 32}
     assert doc["expert_bytes"] == 3 * 4096 * 1408 * 2
@@ -159,7 +159,7 @@ BAD_TRACES = {
 def test_bad_trace_gives_one_stderr_line_and_exit_2(tmp_path, capsys, case):
     make, phrase = BAD_TRACES[case]
     path = make(tmp_path)
-    code = cli.main(["replay", str(path)])
+    code = cli.main(["replay", "--routing", str(path)])
     out, err = capsys.readouterr()
     assert code == 2
     assert out == ""
@@ -220,7 +220,7 @@ def test_an_archive_with_the_encryption_flag_is_a_bad_trace(tmp_path, capsys):
     path = _zip_with_flags(tmp_path / "enc.npz", {"experts": _good_experts()}, 0x1)
     with pytest.raises(BadTrace, match="encrypted"):
         read_trace(path)
-    assert cli.main(["replay", str(path)]) == 2
+    assert cli.main(["replay", "--routing", str(path)]) == 2
     assert len(capsys.readouterr().err.strip().splitlines()) == 1
 
 
@@ -272,7 +272,7 @@ def test_trace_metadata_that_is_not_utf8_is_a_bad_trace(tmp_path):
 def test_plan_refuses_a_trace_without_decode_steps(small_model, tmp_path, capsys):
     path = _save(tmp_path / "prefill.npz", experts=_good_experts(6, 3, 2), meta={"n_experts": 8, "prefill_tokens": 6})
     try:
-        code = cli.main(["plan", "--model", str(small_model), "--trace", str(path), "--mem-cap", "1GiB", "--link-speed", "1GB/s"])
+        code = cli.main(["plan", "--model", str(small_model), "--routing", str(path), "--mem-cap", "1GiB", "--link-speed", "1GB/s"])
     except SystemExit as e:
         code = e.code
     err = capsys.readouterr().err
@@ -290,12 +290,12 @@ def test_replay_prefetch_refuses_guesses_above_every_routed_expert_when_no_count
     guesses[2, 0, 0] = [1, 900]
     path = tmp_path / "t.npz"
     np.savez(path, experts=experts, guesses=guesses, meta=np.array(json.dumps({"lookahead": 1, "guesses": 2})))
-    assert main(["replay", str(path), "--prefetch", "1"]) == 2
+    assert main(["replay", "--routing", str(path), "--prefetch", "1"]) == 2
     err = capsys.readouterr().err
     assert "'guesses'" in err and len(err.strip().splitlines()) == 1
     guesses[2, 0, 0] = [1, 3]
     np.savez(path, experts=experts, guesses=guesses, meta=np.array(json.dumps({"lookahead": 1, "guesses": 2})))
-    assert main(["replay", str(path), "--prefetch", "1", "--json"]) == 0
+    assert main(["replay", "--routing", str(path), "--prefetch", "1", "--json"]) == 0
 
 
 @pytest.mark.parametrize("meta, experts_shape, phrase", [

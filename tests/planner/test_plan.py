@@ -69,7 +69,7 @@ def test_a_cap_below_the_minimum_is_refused_naming_the_smallest_cap(small_model,
     trace = tmp_path / "t.npz"
     write_trace(trace, _random_trace(np.random.default_rng(0), layers=3, experts=8))
     code, out, err = _run(["plan", "--model", str(small_model), "--mem-cap", "1000", "--link-speed", "1GB/s",
-                           "--trace", str(trace)], capsys)
+                           "--routing", str(trace)], capsys)
     assert code == 2 and out == ""
     assert len(err.strip().splitlines()) == 1 and "smallest cap that works is" in err
 
@@ -97,7 +97,7 @@ def test_a_shape_file_whose_top_k_exceeds_its_experts_is_refused(tmp_path):
 def test_a_trace_that_disagrees_with_the_shape_file_is_refused(tmp_path, capsys):
     trace = tmp_path / "t.npz"
     write_trace(trace, _random_trace(np.random.default_rng(0), layers=3, experts=4))  # 3 layers, shape says 2
-    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path)), "--trace", str(trace), "--mem-cap", "64MiB",
+    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path)), "--routing", str(trace), "--mem-cap", "64MiB",
                            "--link-speed", "1GB/s"], capsys)
     assert code == 2 and out == "" and "layers" in err
 
@@ -105,7 +105,7 @@ def test_a_trace_that_disagrees_with_the_shape_file_is_refused(tmp_path, capsys)
 def test_a_shape_file_plans_a_model_too_big_to_run_here(tmp_path, capsys):
     trace = tmp_path / "t.npz"
     write_trace(trace, _random_trace(np.random.default_rng(1), layers=2, experts=4))
-    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path)), "--trace", str(trace), "--mem-cap", "12MiB",
+    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path)), "--routing", str(trace), "--mem-cap", "12MiB",
                            "--link-speed", "1GB/s", "--json"], capsys)
     assert code == 0, err
     doc = json.loads(out)
@@ -121,7 +121,7 @@ def test_target_answers_the_smallest_cap_whose_plan_reaches_it(tmp_path, capsys)
     trace = tmp_path / "t.npz"
     write_trace(trace, _random_trace(np.random.default_rng(2), layers=4, experts=8))
     shape = _shape(tmp_path, layers=4, experts=8)
-    common = ["plan", "--shape", str(shape), "--trace", str(trace), "--link-speed", "1GB/s", "--evict", "lru", "--json"]
+    common = ["plan", "--shape", str(shape), "--routing", str(trace), "--link-speed", "1GB/s", "--evict", "lru", "--json"]
     code, out, err = _run([*common, "--mem-cap", "64MiB"], capsys)
     assert code == 0, err
     pts = json.loads(out)["curve"]["points"]
@@ -158,14 +158,14 @@ def test_a_hostile_shape_file_gives_one_line(tmp_path, capsys, text, phrase):
         path.write_text(text)
     trace = tmp_path / "t.npz"
     write_trace(trace, _random_trace(np.random.default_rng(0), layers=2, experts=4))
-    code, out, err = _run(["plan", "--shape", str(path), "--trace", str(trace), "--mem-cap", "64MiB", "--link-speed", "1GB/s"], capsys)
+    code, out, err = _run(["plan", "--shape", str(path), "--routing", str(trace), "--mem-cap", "64MiB", "--link-speed", "1GB/s"], capsys)
     assert code == 2 and out == "" and len(err.strip().splitlines()) == 1 and phrase in err
 
 
 def _probe_doc() -> dict:
-    run = {"regime": "warm", "verified": True, "reason": None, "runs": 3, "discarded": 0, "p50_ms": 0.1, "p95_ms": 0.2,
-           "p99_ms": 0.3, "max_ms": 0.4, "mean_ms": 0.15, "gb_s": 4.0, "of_ceiling": 0.5}
-    return {"schema": "moerun-probe/1", "machine": {}, "ceiling": {"gb_s": 8.0}, "runs": 3,
+    run = {"regime": "warm", "verified": True, "reason": None, "runs": 3, "discarded": 0, "p50_s": 1e-4, "p95_s": 2e-4,
+           "p99_s": 3e-4, "max_s": 4e-4, "mean_s": 1.5e-4, "gb_s": 4.0, "of_ceiling": 0.5}
+    return {"schema": "moerun-probe/2", "machine": {}, "ceiling": {"gb_s": 8.0}, "runs": 3,
             "blocks": [{"label": "64 KiB", "source": "tempfile", "bytes": 65536, "warm": run, "cold": {**run, "regime": "cold"}}]}
 
 
@@ -185,14 +185,14 @@ def test_a_hostile_probe_file_gives_one_line_in_plan(small_model, tmp_path, caps
     path.write_text(json.dumps(doc))  # ASCII JSON; a lone surrogate is spelled as the escape \\udcff
     trace = tmp_path / "t.npz"
     write_trace(trace, _random_trace(np.random.default_rng(0), layers=3, experts=8))
-    code, out, err = _run(["plan", "--model", str(small_model), "--probe", str(path), "--trace", str(trace), "--mem-cap", "1GiB"], capsys)
+    code, out, err = _run(["plan", "--model", str(small_model), "--probe", str(path), "--routing", str(trace), "--mem-cap", "1GiB"], capsys)
     assert code == 2 and out == "" and len(err.strip().splitlines()) == 1 and str(path) in err
 
 
 def test_the_curve_steps_one_slot_per_layer_as_the_docs_say(tmp_path, capsys):
     trace = tmp_path / "t.npz"
     write_trace(trace, _random_trace(np.random.default_rng(3), layers=4, experts=8))
-    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path, layers=4, experts=8)), "--trace", str(trace),
+    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path, layers=4, experts=8)), "--routing", str(trace),
                            "--mem-cap", "64MiB", "--link-speed", "1GB/s", "--evict", "lru", "--json"], capsys)
     assert code == 0, err
     totals = [p["slots_total"] for p in json.loads(out)["curve"]["points"]]
@@ -221,8 +221,8 @@ def test_bad_inputs_are_refused_before_any_calibration(small_model, tmp_path, ca
 
     bad = tmp_path / "t.npz"
     bad.write_bytes(b"not a zip archive")
-    cases = [["--mem-cap", "1GiB", "--link-speed", "1GB/s", "--trace", str(bad)],
-             ["--mem-cap", "1KiB", "--link-speed", "1GB/s", "--trace", str(bad)],
+    cases = [["--mem-cap", "1GiB", "--link-speed", "1GB/s", "--routing", str(bad)],
+             ["--mem-cap", "1KiB", "--link-speed", "1GB/s", "--routing", str(bad)],
              ["--mem-cap", "1", "--link-speed", "1GB/s"]]
     path = cache_dir() / f"calibration-{model_key(small_model)}.json"
     path.unlink(missing_ok=True)
@@ -243,19 +243,19 @@ def test_plan_with_a_shared_pool_accepts_a_cap_only_a_shared_pool_fits(tmp_path,
     # 4 layers, top-2, 1 MiB slots, 4 MiB fixed: one pool per layer needs 4 + 4 * 2 = 12 MiB, a shared pool 4 + 2 = 6 MiB
     trace = tmp_path / "t.npz"
     write_trace(trace, _random_trace(np.random.default_rng(5), layers=4, experts=8))
-    common = ["plan", "--shape", str(_shape(tmp_path, layers=4, experts=8)), "--trace", str(trace), "--link-speed", "1GB/s",
+    common = ["plan", "--shape", str(_shape(tmp_path, layers=4, experts=8)), "--routing", str(trace), "--link-speed", "1GB/s",
               "--mem-cap", "8MiB"]
     code, out, err = _run([*common, "--shared-pool", "--json"], capsys)
     assert code == 0, err
     doc = json.loads(out)
     assert doc["min_cap_bytes"] == 6 * MIB and doc["per_layer_min_cap_bytes"] == 12 * MIB
-    assert doc["slots_total"] == 4 and doc["recommended"]["shared"] and doc["split_comparison"] is None
+    assert doc["slots_total"] == 4 and doc["recommended"]["split"] == "shared" and doc["split_comparison"] is None
     assert all(c["split"] == "shared" for c in doc["candidates"])
     assert [p["slots_total"] for p in doc["curve"]["points"]] == [2, 6, *range(8, 33, 4)]  # from the shared pool's minimum
-    assert doc["curve"]["points"][0]["cap_bytes"] == 6 * MIB and doc["curve"]["points"][0]["shared"]
+    assert doc["curve"]["points"][0]["cap_bytes"] == 6 * MIB and doc["curve"]["points"][0]["split"] == "shared"
     code, out, err = _run([*common, "--shared-pool"], capsys)
     assert code == 0, err
-    assert "recommended: one shared pool" in out and "shared pool: the only kind of pool that fits this cap" in out
+    assert "recommended: shared pool, --evict" in out and "shared pool: the only kind of pool that fits this cap" in out
     code, out, err = _run(common, capsys)  # without --shared-pool the cap is too small, and the message says what fits
     assert code == 2 and out == "" and len(err.strip().splitlines()) == 1
     assert f"smallest cap that works is {12 * MIB} bytes" in err and f"--shared-pool, {6 * MIB} bytes" in err
@@ -277,11 +277,11 @@ def test_plans_smallest_caps_are_the_engines(small_model, tmp_path):
     shared, even = (minimum_cap(*args, split, store.codec.scratch_bytes()) for split in ("shared", "even"))
     store.close()
     assert shared < even
-    result = moerun.plan(small_model, shared, trace=str(trace), link_speed="2GB/s", evict="lru", shared_pool=True)
+    result = moerun.plan(small_model, shared, routing=str(trace), link_speed="2GB/s", evict="lru", shared_pool=True)
     assert (result.min_cap_bytes, result.per_layer_min_cap_bytes) == (shared, even)
     assert result.recommended.shared and result.slots_total == 2
     with pytest.raises(ImpossibleBudget, match="shared"):
-        moerun.plan(small_model, shared - 1, trace=str(trace), link_speed="2GB/s", evict="lru", shared_pool=True)
+        moerun.plan(small_model, shared - 1, routing=str(trace), link_speed="2GB/s", evict="lru", shared_pool=True)
 
 
 # ---------------------------------------------------------------------------- speeds people can tell apart (issue 23, item 18)
@@ -300,7 +300,7 @@ def test_plan_on_a_slow_model_shows_its_speeds_apart_and_keeps_full_precision_in
     trace = tmp_path / "t.npz"
     write_trace(trace, _random_trace(np.random.default_rng(6), layers=4, experts=8))
     shape = _shape(tmp_path, layers=4, experts=8, dense_layer_us=50_000.0, expert_us=9_000.0, expert_bytes=64 * MIB)
-    common = ["plan", "--shape", str(shape), "--trace", str(trace), "--link-speed", "2GB/s", "--mem-cap", "900MiB"]
+    common = ["plan", "--shape", str(shape), "--routing", str(trace), "--link-speed", "2GB/s", "--mem-cap", "900MiB"]
     code, out, err = _run(common, capsys)
     assert code == 0, err
     table_rows = out.split("best ")[1].split("recommended:")[0].strip().splitlines()[3:]
@@ -368,12 +368,12 @@ def test_identical_settings_are_shown_once():
 def test_plan_says_how_the_shared_pool_did_in_one_line(tmp_path, capsys):
     trace = tmp_path / "t.npz"
     write_trace(trace, _random_trace(np.random.default_rng(8), layers=4, experts=8))
-    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path, layers=4, experts=8)), "--trace", str(trace),
+    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path, layers=4, experts=8)), "--routing", str(trace),
                            "--link-speed", "1GB/s", "--mem-cap", "20MiB", "--shared-pool"], capsys)
     assert code == 0, err
     lines = [line for line in out.splitlines() if line.startswith("shared pool:")]
     assert len(lines) == 1
     assert any(w in lines[0] for w in ("faster than", "slower than", "as fast as")) and "one pool per layer" in lines[0]
-    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path, layers=4, experts=8)), "--trace", str(trace),
+    code, out, err = _run(["plan", "--shape", str(_shape(tmp_path, layers=4, experts=8)), "--routing", str(trace),
                            "--link-speed", "1GB/s", "--mem-cap", "20MiB"], capsys)
     assert "shared pool:" not in out  # only when asked for

@@ -36,7 +36,7 @@ def test_plan_on_an_open_checkpoint_needs_a_trace_and_says_how_to_make_one(capsy
     code = cli.main(["plan", "--model", str(FIXTURES / "olmoe-f32"), "--mem-cap", "4MiB", "--link-speed", "1GB/s"])
     out, err = capsys.readouterr()
     assert code == 2 and out == "" and len(err.strip().splitlines()) == 1 and "moerun record" in err
-    with pytest.raises(BadInput, match="--trace"):
+    with pytest.raises(BadInput, match="--routing"):
         moerun.plan(FIXTURES / "olmoe-f32", "4MiB", link_speed="1GB/s")
 
 
@@ -44,7 +44,7 @@ def test_plan_on_an_open_checkpoint_predicts_from_its_trace(tmp_path):
     d = FIXTURES / "qwen3_moe-bf16-sharded-v4"
     trace = tmp_path / "t.npz"
     moerun.record(trace, d, text=FIXTURES / "README.md", max_tokens=200)
-    result = moerun.plan(d, "1900KiB", link_speed="1GB/s", trace=trace, evict="lru")
+    result = moerun.plan(d, "1900KiB", link_speed="1GB/s", routing=trace, evict="lru")
     doc = result.to_json()
     assert doc["planned_for"].startswith("open checkpoint") and result.recommended is not None
     assert result.recommended.tok_s > 0 and "one layer of random weights" in result.calibration

@@ -103,7 +103,7 @@ def test_every_command_that_takes_evict_lists_the_installed_plugins_marked_in_it
 
 def test_a_plugin_policy_replays_from_the_command_line(site, trace, capsys):
     _install(site, "mru-plugin", "1.2", "mru_plugin", GOOD, {"mru": "mru_plugin:MostRecent"})
-    code = cli.main(["replay", str(trace), "--evict", "mru,lru", "--slots", "3", "--json", "--no-baselines"])
+    code = cli.main(["replay", "--routing", str(trace), "--evict", "mru,lru", "--slots", "3", "--json", "--no-baselines"])
     out, err = capsys.readouterr()
     assert code == 0, err
     doc = json.loads(out)
@@ -123,11 +123,11 @@ def test_a_broken_plugin_is_one_line_naming_it_and_the_built_in_policies_still_w
     with pytest.raises(BadOption, match="plug-in policy 'broken' .broken-plugin 0.1"):
         policies.get("broken")
     assert policies.get("lru") is policies.LRU
-    code = cli.main(["replay", str(trace), "--evict", "broken", "--slots", "2"])
+    code = cli.main(["replay", "--routing", str(trace), "--evict", "broken", "--slots", "2"])
     err = capsys.readouterr().err
     assert code == 2 and phrase in err and "broken-plugin 0.1" in err
     assert len(err.strip().splitlines()) == 1 and "Traceback" not in err
-    assert cli.main(["replay", str(trace), "--evict", "lru,orbit", "--slots", "2", "--json", "--no-baselines"]) == 0
+    assert cli.main(["replay", "--routing", str(trace), "--evict", "lru,orbit", "--slots", "2", "--json", "--no-baselines"]) == 0
     with pytest.raises(SystemExit):  # the help still lists it (nothing imported to list it)
         cli.main(["replay", "--help"])
     assert "broken (plug-in: broken-plugin 0.1)" in " ".join(capsys.readouterr().out.split())

@@ -95,7 +95,7 @@ def test_textbook_fault_counts_hold_for_lru_fifo_and_the_optimum():
 def test_textbook_fault_counts_hold_through_the_replay(tmp_path, capsys, generic):
     path = tmp_path / "osc.npz"
     np.savez(path, experts=np.array(SILBERSCHATZ).reshape(-1, 1, 1))
-    args = ["replay", str(path), "--json", "--evict", "fifo,optimal,lru,lrfu,markov", "--slots", "3", "--no-baselines"]
+    args = ["replay", "--routing", str(path), "--json", "--evict", "fifo,optimal,lru,lrfu,markov", "--slots", "3", "--no-baselines"]
     assert cli.main(args + (["--generic"] if generic else [])) == 0
     doc = json.loads(capsys.readouterr().out)
     misses = {name: replay.overall(doc["results"], name)[3]["misses"] for name in ("fifo", "optimal", "lru", "lrfu", "markov")}
@@ -456,7 +456,7 @@ def test_generate_and_replay_accept_the_new_policies_by_name(small_model, tmp_pa
                      "--slots", "3,3,3", "--evict", "markov", "--trace", str(path), "--json"])
     assert code == 0
     assert "markov" in capsys.readouterr().out
-    assert cli.main(["replay", str(path), "--evict", "lru,markov,lrfu,optimal", "--slots", "2-4", "--json"]) == 0
+    assert cli.main(["replay", "--routing", str(path), "--evict", "lru,markov,lrfu,optimal", "--slots", "2-4", "--json"]) == 0
     rep = json.loads(capsys.readouterr().out)
     assert {r["policy"] for r in rep["results"]} == {"lru", "markov", "lrfu", "optimal"}
 

@@ -125,11 +125,11 @@ def test_latency_stats_use_linear_interpolation_between_order_statistics():
     # Hyndman & Fan (1996), "Sample quantiles in statistical packages", definition 7
     # (numpy.percentile's default 'linear'): for 1..5, p50 = 3, p95 = 4.8, p99 = 4.96.
     s = latency_stats([1_000_000, 2_000_000, 3_000_000, 4_000_000, 5_000_000], 3_000_000, ceiling_gb_s=2.0)
-    assert s["p50_ms"] == pytest.approx(3.0)
-    assert s["p95_ms"] == pytest.approx(4.8)
-    assert s["p99_ms"] == pytest.approx(4.96)
-    assert s["max_ms"] == pytest.approx(5.0)
-    assert s["mean_ms"] == pytest.approx(3.0)
+    assert s["p50_s"] == pytest.approx(3.0e-3)
+    assert s["p95_s"] == pytest.approx(4.8e-3)
+    assert s["p99_s"] == pytest.approx(4.96e-3)
+    assert s["max_s"] == pytest.approx(5.0e-3)
+    assert s["mean_s"] == pytest.approx(3.0e-3)
     assert s["gb_s"] == pytest.approx(1.0)  # 3e6 bytes in 3 ms
     assert s["of_ceiling"] == pytest.approx(0.5)
     assert all(v is None for v in latency_stats([], 10, 2.0).values())
@@ -150,20 +150,20 @@ def test_figures_are_positive_and_regimes_are_labelled_and_separate(tmp_path):
                 assert r == "cold" and not g["verified"] and g["reason"]
                 continue
             assert g["runs"] == 5
-            assert 0 < g["p50_ms"] <= g["p95_ms"] <= g["p99_ms"] <= g["max_ms"]
+            assert 0 < g["p50_s"] <= g["p95_s"] <= g["p99_s"] <= g["max_s"]
             assert g["gb_s"] > 0 and g["of_ceiling"] > 0
             # figures carry six significant digits
             assert g["of_ceiling"] == pytest.approx(g["gb_s"] / doc["ceiling"]["gb_s"], rel=1e-4)
-            assert g["gb_s"] == pytest.approx(b["bytes"] / (g["p50_ms"] / 1e3) / 1e9, rel=1e-4)
+            assert g["gb_s"] == pytest.approx(b["bytes"] / g["p50_s"] / 1e9, rel=1e-4)
 
 
 def test_an_eight_times_larger_block_takes_longer_at_the_median(tmp_path):
     # Moving 8x the bytes: the median read time grows (about 8x); only the order is asserted.
     doc = run_probe(sizes=[MiB, 8 * MiB], runs=7, work_dir=work_dir(tmp_path))
     small, large = doc["blocks"]
-    assert large["warm"]["p50_ms"] > small["warm"]["p50_ms"]
+    assert large["warm"]["p50_s"] > small["warm"]["p50_s"]
     if small["cold"]["runs"] and large["cold"]["runs"]:
-        assert large["cold"]["p50_ms"] > small["cold"]["p50_ms"]
+        assert large["cold"]["p50_s"] > small["cold"]["p50_s"]
 
 
 def test_cold_runs_are_checked_not_resident_before_each_read(tmp_path):
@@ -203,7 +203,7 @@ def test_cold_is_not_measured_where_pages_cannot_be_dropped(tmp_path, monkeypatc
     doc = run_probe(sizes=[256 * KiB], runs=3, work_dir=work_dir(tmp_path))
     cold = doc["blocks"][0]["cold"]
     assert cold["verified"] is False and cold["runs"] == 0
-    assert cold["p50_ms"] is None and cold["gb_s"] is None
+    assert cold["p50_s"] is None and cold["gb_s"] is None
     assert "not measured" in cold["reason"]
     assert doc["blocks"][0]["warm"]["runs"] == 3
 
@@ -224,7 +224,7 @@ def test_a_drop_that_leaves_pages_resident_yields_no_cold_figure(tmp_path, monke
     doc = run_probe(sizes=[256 * KiB], runs=3, work_dir=d)
     cold = doc["blocks"][0]["cold"]
     assert cold["runs"] == 0 and cold["discarded"] >= 1 and cold["verified"] is False
-    assert cold["p50_ms"] is None
+    assert cold["p50_s"] is None
 
 
 # ---------------------------------------------------------------------- temporary files
@@ -365,8 +365,8 @@ def test_load_probe_rejects_what_a_planner_cannot_use(tmp_path):
     with pytest.raises(BadInput, match="blocks"):
         attempt({**good, "blocks": []})
     broken = json.loads(json.dumps(good))
-    del broken["blocks"][0]["cold"]["p95_ms"]
-    with pytest.raises(BadInput, match="p95_ms"):
+    del broken["blocks"][0]["cold"]["p95_s"]
+    with pytest.raises(BadInput, match="p95_s"):
         attempt(broken)
     unexplained = json.loads(json.dumps(good))
     unexplained["blocks"][0]["cold"].update(verified=False, reason=None)
@@ -374,7 +374,7 @@ def test_load_probe_rejects_what_a_planner_cannot_use(tmp_path):
         attempt(unexplained)
     disordered = json.loads(json.dumps(good))
     g = disordered["blocks"][0]["warm"]
-    g["p50_ms"], g["max_ms"] = g["max_ms"] + 1, g["p50_ms"]
+    g["p50_s"], g["max_s"] = g["max_s"] + 1, g["p50_s"]
     with pytest.raises(BadInput, match="order"):
         attempt(disordered)
 

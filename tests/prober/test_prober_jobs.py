@@ -6,14 +6,14 @@ from _jobs import as_json, cli_json
 
 import moerun
 
-# measured anew on each run: the time stamp, the copy speed (gb_s, best_ms), free memory, and every timing figure of a regime
-MEASURED_REGIME = ("p50_ms", "p95_ms", "p99_ms", "max_ms", "mean_ms", "gb_s", "of_ceiling", "discarded", "verified", "reason")
+# measured anew on each run: the time stamp, the copy speed (gb_s, best_s), free memory, and every timing figure of a regime
+MEASURED_REGIME = ("p50_s", "p95_s", "p99_s", "max_s", "mean_s", "gb_s", "of_ceiling", "discarded", "verified", "reason")
 
 
 def _stable(doc: dict) -> dict:
     doc = dict(doc)
     doc.pop("created")
-    doc["ceiling"] = {k: v for k, v in doc["ceiling"].items() if k not in ("gb_s", "best_ms")}
+    doc["ceiling"] = {k: v for k, v in doc["ceiling"].items() if k not in ("gb_s", "best_s")}
     doc["machine"] = {k: v for k, v in doc["machine"].items() if "avail" not in k}  # free memory now
     doc["blocks"] = [{k: ({m: x for m, x in v.items() if m not in MEASURED_REGIME} if k in ("warm", "cold") else v)
                       for k, v in b.items()} for b in doc["blocks"]]

@@ -36,7 +36,7 @@ BUILT_IN = (LRU, LFU, FIFO, Optimal)
 
 
 def _replay_json(capsys, path, *args) -> dict:
-    code = cli.main(["replay", str(path), "--json", *args])
+    code = cli.main(["replay", "--routing", str(path), "--json", *args])
     out, err = capsys.readouterr()
     assert code == 0, err
     return json.loads(out)
@@ -262,7 +262,7 @@ def test_replay_json_has_per_layer_and_overall_records_and_the_documented_keys(r
 
 
 def test_text_report_names_every_policy_and_baseline(recorded, capsys):
-    assert cli.main(["replay", str(recorded[0]), "--slots", "2,4", "--per-layer"]) == 0
+    assert cli.main(["replay", "--routing", str(recorded[0]), "--slots", "2,4", "--per-layer"]) == 0
     out = capsys.readouterr().out
     for phrase in ("lru", "lfu", "fifo", "optimal (offline bound)", "lru, time-shuffled", "lru, random routing", "prefetch recall", "layer 2"):
         assert phrase in out
@@ -402,11 +402,11 @@ def test_prefetch_simulation_without_guesses_equals_the_plain_replay():
 
 def test_replay_with_prefetch_reports_prefetched_hits_and_skips_the_optimum(recorded, capsys):
     doc = _replay_json(capsys, recorded[0], "--slots", "4", "--prefetch", "2", "--lookahead", "2", "--no-baselines")
-    pf = doc["prefetch"]
-    assert (pf["guesses"], pf["lookahead"]) == (2, 2)
-    assert {r["policy"] for r in pf["results"]} == {"lru", "lfu", "fifo"}
+    assert (doc["prefetch"], doc["lookahead"]) == (2, 2)  # the setting as the engine's options write it
+    pf = doc["prefetch_results"]
+    assert {r["policy"] for r in pf} == {"lru", "lfu", "fifo"}
     trace = read_trace(recorded[0])
-    for r in pf["results"]:
+    for r in pf:
         if r["layer"] == "all":
             # 2 guesses for layer 1 (from layer 0) and 4 for layer 2 (from layers 0 and 1), per token
             assert r["guesses"] == trace.n_tokens * (2 + 4)
@@ -415,7 +415,7 @@ def test_replay_with_prefetch_reports_prefetched_hits_and_skips_the_optimum(reco
 
 
 def test_prefetch_beyond_the_traces_guesses_is_refused(recorded, capsys):
-    assert cli.main(["replay", str(recorded[0]), "--prefetch", "5"]) == 2
+    assert cli.main(["replay", "--routing", str(recorded[0]), "--prefetch", "5"]) == 2
     assert "--prefetch must be 1..4" in capsys.readouterr().err
 
 
@@ -489,7 +489,7 @@ def test_a_registered_user_policy_replays_through_the_reference_path(tmp_path, c
 )
 def test_bad_replay_option_gives_one_line_and_exit_2(tmp_path, capsys, args, phrase):
     path = _reference_string_trace(tmp_path / "osc.npz", SILBERSCHATZ)
-    assert cli.main(["replay", str(path), *args]) == 2
+    assert cli.main(["replay", "--routing", str(path), *args]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and phrase in err[0]
 
@@ -526,7 +526,7 @@ def test_plot_without_matplotlib_gives_one_line_and_exit_2(tmp_path, capsys, mon
 
     monkeypatch.setattr(builtins, "__import__", no_matplotlib)
     path = _reference_string_trace(tmp_path / "osc.npz", SILBERSCHATZ)
-    assert cli.main(["replay", str(path), "--plot", str(tmp_path / "p.png")]) == 2
+    assert cli.main(["replay", "--routing", str(path), "--plot", str(tmp_path / "p.png")]) == 2
     err = capsys.readouterr().err.strip().splitlines()
     assert len(err) == 1 and "matplotlib" in err[0]
     assert not (tmp_path / "p.png").exists()
@@ -537,7 +537,7 @@ def test_plot_without_matplotlib_gives_one_line_and_exit_2(tmp_path, capsys, mon
 
 def _replay_exit(capsys, *argv) -> tuple[int, str]:
     try:
-        code = cli.main(["replay", *argv])
+        code = cli.main(["replay", "--routing", *argv])
     except SystemExit as e:  # argparse usage errors
         code = e.code
     return code, capsys.readouterr().err
@@ -583,7 +583,7 @@ def test_replay_of_a_live_shared_pool_run_reproduces_its_hits_and_misses(bundled
     path = tmp_path / "live.npz"
     write_trace(path, trace)
     doc = _replay_json(capsys, path, "--shared-pool", "--evict", evict, "--slots", str(size), "--no-baselines")
-    assert doc["pool"] == "shared"
+    assert doc["split"] == "shared"
     got = replay.overall(doc["results"], evict)[size]
     assert pool["misses"] > 0
     assert (got["accesses"], got["misses"], got["prefill_loads"]) == (pool["accesses"], pool["misses"], pool["prefill_loads"])
@@ -591,7 +591,7 @@ def test_replay_of_a_live_shared_pool_run_reproduces_its_hits_and_misses(bundled
 
 def test_replay_refuses_a_shared_pool_larger_than_every_expert_in_one_line(recorded, capsys):
     tr = read_trace(recorded[0])
-    code = cli.main(["replay", str(recorded[0]), "--shared-pool", "--slots", str(tr.n_layers * tr.n_experts + 1)])
+    code = cli.main(["replay", "--routing", str(recorded[0]), "--shared-pool", "--slots", str(tr.n_layers * tr.n_experts + 1)])
     out, err = capsys.readouterr()
     assert code == 2 and out == "" and len(err.strip().splitlines()) == 1 and "shared pool" in err
 
@@ -600,10 +600,10 @@ def test_replay_refuses_more_slots_per_layer_than_a_layer_has_experts_with_the_f
     # issue 23, item 22: --slots 9 on a trace of 8 experts per layer was accepted silently
     trace = read_trace(recorded[0])
     E = trace.n_experts
-    assert cli.main(["replay", str(recorded[0]), "--slots", str(E + 1)]) == 2
+    assert cli.main(["replay", "--routing", str(recorded[0]), "--slots", str(E + 1)]) == 2
     err = capsys.readouterr().err
     assert len(err.strip().splitlines()) == 1 and f"--slots 1-{E}" in err
-    assert cli.main(["replay", str(recorded[0]), "--slots", str(E), "--json"]) == 0
+    assert cli.main(["replay", "--routing", str(recorded[0]), "--slots", str(E), "--json"]) == 0
 
 
 # ---------------------------------------------------------------------------- state bounded by what the trace holds
@@ -672,7 +672,7 @@ def test_a_tiny_trace_declaring_a_million_experts_replays_in_a_shared_pool_under
     def cap():  # the child cannot take the machine down, whatever it tries to allocate
         resource.setrlimit(resource.RLIMIT_AS, (limit, limit))
 
-    run = subprocess.run([sys.executable, "-m", "moerun", "replay", str(path), "--shared-pool", "--evict", "orbit,lru,markov", "--json"],
+    run = subprocess.run([sys.executable, "-m", "moerun", "replay", "--routing", str(path), "--shared-pool", "--evict", "orbit,lru,markov", "--json"],
                          capture_output=True, text=True, preexec_fn=cap, timeout=300)
     assert run.returncode == 0, run.stderr
     doc = json.loads(run.stdout)
@@ -688,7 +688,7 @@ def test_out_of_memory_in_replay_names_no_option_replay_does_not_have(recorded, 
         raise MemoryError
 
     monkeypatch.setattr(jobs, "run_replay", boom)
-    code = cli.main(["replay", str(recorded[0]), "--no-baselines"])
+    code = cli.main(["replay", "--routing", str(recorded[0]), "--no-baselines"])
     err = capsys.readouterr().err
     assert code == 2 and "out of memory" in err and "--mem-cap" not in err and len(err.strip().splitlines()) == 1
 

@@ -10,7 +10,7 @@ from __future__ import annotations
 import sys
 
 from moerun.cli import main as cli
-from moerun.cli.report import Progress, emit_json
+from moerun.cli.report import Progress, emit_json, written
 from moerun.cli.summary import cap_warning, model_note, run_json, run_text
 from moerun.errors import BadOption
 from moerun.files.fileio import check_output
@@ -26,10 +26,10 @@ def add_arguments(p) -> None:
     cli.add_prompt(p)
     cli.add_memory(p)
     p.add_argument("--trace", metavar="FILE", help="write every routing decision and page-in event to FILE (.npz)")
-    p.add_argument("--routing", metavar="FILE", help="take every layer's routing from this trace instead of the routers "
-                   "(everything else is computed for real; to run large random models with a trained model's routing)")
+    cli.add_routing(p, "read every layer's routing from this trace instead of the routers "
+                       "(everything else is computed for real; to run large random models with a trained model's routing)")
     cli.add_force(p, "the --trace file")
-    p.add_argument("--quiet", action="store_true", help="print the text only, no run summary on stderr")
+    p.add_argument("--quiet", action="store_true", help="print the text only: no run summary or notices on stderr (warnings still)")
     cli.add_json(p)
 
 
@@ -96,8 +96,8 @@ def run(args) -> int:
             out.flush()
             if not args.quiet:
                 sys.stderr.write(f"\n[{model_note(engine.config)}]\n{run_text(engine, gen)}\n")
-                if args.trace:
-                    sys.stderr.write(f"trace written to {args.trace}\n")
+        if args.trace and not args.quiet:
+            written("generate", "trace", args.trace)
         if warning:
             sys.stderr.write(f"moerun generate: warning: {warning}\n")
     return 0

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import argparse
 import math
 import sys
 
@@ -10,7 +11,7 @@ from moerun.cli import main as cli
 from moerun.cli.report import Progress, emit_json, pct, table
 from moerun.planner.jobs import DEFAULT_TOKENS, plan
 from moerun.planner.search import TIE, choose, simplicity
-from moerun.units import fmt_bytes
+from moerun.units import SHARED_POOL, fmt_bytes, fmt_prefetch
 
 HELP = "predict decode tok/s for a memory cap and a link; recommend slots per layer, policy and prefetch"
 
@@ -22,10 +23,11 @@ def add_arguments(p) -> None:
     p.add_argument("--link-speed", metavar="RATE", help="page-in over a link of this speed, e.g. 2GB/s")
     p.add_argument("--probe", metavar="FILE", help="page-in times from 'moerun probe --save FILE'")
     p.add_argument("--regime", choices=("warm", "cold"), default=None, help="which probe figures to use, with --probe (default warm)")
-    p.add_argument("--trace", metavar="FILE", help="routing trace (default: recorded now from the model's held-out text)")
+    cli.add_routing(p, "routing trace to plan on (default: recorded now from the model's held-out text)")
+    p.add_argument("--trace", dest="old_trace", metavar="FILE", help=argparse.SUPPRESS)  # the old spelling of --routing
     p.add_argument("--max-tokens", type=int, default=None, metavar="N",
-                   help=f"tokens of held-out text to record when there is no --trace (default {DEFAULT_TOKENS})")
-    p.add_argument("--shape", metavar="FILE", help="plan for a model described by a JSON shape file (needs --trace)")
+                   help=f"tokens of held-out text to record when there is no --routing (default {DEFAULT_TOKENS})")
+    p.add_argument("--shape", metavar="FILE", help="plan for a model described by a JSON shape file (needs --routing)")
     p.add_argument("--evict", default=None, metavar="P,P",
                    help=cli.LazyHelp(lambda: f"policies to consider (default: every online policy, {','.join(policies.names(online_only=True))}; "
                                              f"known: {policies.listing(online_only=True)})"))
@@ -36,6 +38,7 @@ def add_arguments(p) -> None:
 
 
 def run(args) -> int:
+    cli.routing_from_old(args, "plan", "old_trace", "--trace FILE (a trace to read)")
     prog = Progress("plan")
 
     def notice(line: str) -> None:  # one line on stderr, whatever stderr is and with --json too
@@ -43,7 +46,7 @@ def run(args) -> int:
 
     try:
         result = plan(args.model, args.mem_cap, target=args.target, link_speed=args.link_speed, probe=args.probe,
-                      regime=args.regime, trace=args.trace, max_tokens=args.max_tokens, shape=args.shape,
+                      regime=args.regime, routing=args.routing, max_tokens=args.max_tokens, shape=args.shape,
                       evict=args.evict, shared_pool=args.shared_pool, recalibrate=args.recalibrate, progress=prog.update,
                       notice=notice)
     finally:
@@ -89,9 +92,15 @@ def _rows(cands, layers: int, experts: int) -> list:
     return kept
 
 
-def _how(lab: str, pr) -> str:
-    pf = f"prefetch {pr.prefetch}x{pr.lookahead}" if pr.prefetch else "no prefetch"
-    return f"{pr.policy}, {pf}" if pr.shared else f"{lab} split, {pr.policy}, {pf}"
+def _pool(lab: str, slots, shared: bool) -> str:
+    """A pool in text: the shared pool, or a split of slots per layer."""
+    return SHARED_POOL if shared else f"{lab} split {','.join(map(str, slots))}"
+
+
+def _how(lab: str, pr, pool: bool = True) -> str:
+    """A setting in text: its pool (unless ``pool`` is False), policy and prefetch."""
+    how = f"--evict {pr.policy}, {fmt_prefetch(pr.prefetch, pr.lookahead)}"
+    return f"{_pool(lab, pr.slots, pr.shared)}, {how}" if pool else how
 
 
 def _shared_line(result) -> str:
@@ -99,18 +108,18 @@ def _shared_line(result) -> str:
     shared = [c for c in result.candidates if c[1].shared]
     per_layer = [c for c in result.candidates if not c[1].shared]
     if not shared:
-        return "shared pool: no shared-pool setting was searched"
+        return f"{SHARED_POOL}: no {SHARED_POOL} setting was searched"
     lab, best = choose(shared)
     if not per_layer:
-        return (f"shared pool: the only kind of pool that fits this cap (one pool per layer needs "
-                f"{fmt_bytes(result.per_layer_min_cap_bytes)}); best {_how(lab, best)}: {speed(best.tok_s)} tok/s")
+        return (f"{SHARED_POOL}: the only kind of pool that fits this cap (one pool per layer needs "
+                f"{fmt_bytes(result.per_layer_min_cap_bytes)}); best {_how(lab, best, pool=False)}: {speed(best.tok_s)} tok/s")
     plab, other = choose(per_layer)
     ratio = best.tok_s / other.tok_s - 1 if other.tok_s else 0.0
     if abs(ratio) <= TIE:
         cmp = "as fast as"
     else:
         cmp = f"{100 * abs(ratio):.1f}% {'faster' if ratio > 0 else 'slower'} than"
-    return (f"shared pool: best {_how(lab, best)}: {speed(best.tok_s)} tok/s, {cmp} the best with one pool per layer "
+    return (f"{SHARED_POOL}: best {_how(lab, best, pool=False)}: {speed(best.tok_s)} tok/s, {cmp} the best with one pool per layer "
             f"({_how(plab, other)}: {speed(other.tok_s)} tok/s)")
 
 
@@ -128,19 +137,17 @@ def _text(out, args, result) -> None:
     searched = f", the first {tr['searched_tokens']} searched" if tr["searched_tokens"] < tr["tokens"] else ""
     smallest = fmt_bytes(result.min_cap_bytes)
     if result.min_cap_bytes != result.per_layer_min_cap_bytes:
-        smallest += f" (shared pool; one pool per layer {fmt_bytes(result.per_layer_min_cap_bytes)})"
+        smallest += f" ({SHARED_POOL}; one pool per layer {fmt_bytes(result.per_layer_min_cap_bytes)})"
     out.write(f"routing: {tr['tokens']} tokens ({tr['source']}{searched}); fixed parts {fmt_bytes(result.fixed_bytes)}, slot "
               f"{fmt_bytes(result.slot_bytes)}, smallest cap {smallest}, all resident {fmt_bytes(result.all_resident_cap_bytes)}\n\n")
     if rec is not None:
         top = _rows(cands, L, result.experts)
-        rows = [[lab, ",".join(map(str, pr.slots)), pr.policy, f"{pr.prefetch}x{pr.lookahead}" if pr.prefetch else "off",
+        rows = [[SHARED_POOL if pr.shared else lab, ",".join(map(str, pr.slots)), pr.policy, fmt_prefetch(pr.prefetch, pr.lookahead),
                  pct(pr.hit_rate), pct(pr.stall_share), speed(pr.tok_s)] for lab, pr in top[:12]]
         out.write(f"cap {fmt_bytes(doc['mem_cap_bytes'])}: {doc['slots_total']} slots; best {min(12, len(top))} of {len(top)} "
                   f"settings ({len(cands)} searched; the same setting with the same prediction shown once)\n")
         out.write(table(["split", "slots", "policy", "prefetch", "hit rate", "stall", "tok/s"], rows, "lllllrr") + "\n")
-        how = "one shared pool" if rec.shared else f"{rec_label} split {','.join(map(str, rec.slots))}"
-        out.write(f"recommended: {how}, --evict {rec.policy}, "
-                  + (f"--prefetch {rec.prefetch} --lookahead {rec.lookahead}" if rec.prefetch else "no prefetch")
+        out.write(f"recommended: {_how(rec_label, rec)}"
                   + f": {speed(rec.tok_s)} tok/s predicted, {pct(rec.stall_share)} stalled"
                   + f" (ties within {100 * TIE:g}% go to the simpler setting)\n")
         if args.shared_pool:
@@ -154,8 +161,8 @@ def _text(out, args, result) -> None:
             out.write(f"even against uneven split ({sc['policy']}, no prefetch):\n")
             out.write(table(["layer", "even slots", "hit rate", "uneven slots", "hit rate"], rows) + "\n\n")
     curve = doc["curve"]["points"]
-    rows = [[fmt_bytes(p["cap_bytes"]), p["slots_total"], "shared" if p["shared"] else ",".join(map(str, p["slots"])),
-             f"{p['prefetch']}" if p["prefetch"] else "off", pct(p["stall_share"]), speed(p["tok_s"])] for p in curve]
+    rows = [[fmt_bytes(p["cap_bytes"]), p["slots_total"], SHARED_POOL if p["split"] == "shared" else ",".join(map(str, p["slots"])),
+             fmt_prefetch(p["prefetch"], p["lookahead"]), pct(p["stall_share"]), speed(p["tok_s"])] for p in curve]
     out.write(f"predicted decode speed against cap ({doc['curve']['policy']}):\n")
     out.write(table(["cap", "slots", "split", "prefetch", "stall", "tok/s"], rows) + "\n")
     if args.target is not None:

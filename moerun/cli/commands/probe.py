@@ -5,7 +5,7 @@ from __future__ import annotations
 import sys
 
 from moerun.cli import main as cli
-from moerun.cli.report import Progress, emit_json, table
+from moerun.cli.report import Progress, emit_json, table, written
 from moerun.prober.jobs import probe
 from moerun.prober.pagein import DEFAULT_RUNS
 from moerun.units import fmt_bytes
@@ -27,14 +27,16 @@ def add_arguments(p) -> None:
     p.add_argument("--dir", metavar="DIR", help="where the temporary files go (default: a new temporary directory); "
                    "put it on the disk you mean to load models from")
     p.add_argument("--runs", type=int, default=DEFAULT_RUNS, metavar="N", help=f"timed reads per block and regime (default {DEFAULT_RUNS})")
-    p.add_argument("--save", metavar="FILE", help="also write the results to FILE (JSON, schema moerun-probe/1) for 'moerun plan'")
+    p.add_argument("--save", metavar="FILE", help="also write the results to FILE (JSON, schema moerun-probe/2) for 'moerun plan'")
     cli.add_force(p, "the --save file")
     cli.add_json(p)
 
 
-def _ms(x: float | None) -> str:
-    if x is None:
+def _ms(seconds: float | None) -> str:
+    """A duration (seconds, as the JSON holds it) in milliseconds, for the table."""
+    if seconds is None:
         return "-"
+    x = seconds * 1e3
     if x < 1:
         return f"{x:.3f}"
     if x < 100:
@@ -73,7 +75,7 @@ def render(doc: dict) -> str:
             share = "-" if g["of_ceiling"] is None else f"{100 * g['of_ceiling']:.0f}%"
             above = above or (g["of_ceiling"] or 0) > 1
             rows.append([
-                name, size, r, str(g["runs"]), _ms(g["p50_ms"]), _ms(g["p95_ms"]), _ms(g["p99_ms"]), _ms(g["max_ms"]),
+                name, size, r, str(g["runs"]), _ms(g["p50_s"]), _ms(g["p95_s"]), _ms(g["p99_s"]), _ms(g["max_s"]),
                 "-" if g["gb_s"] is None else f"{g['gb_s']:.2f}", share, _check_cell(g),
             ])
             if g["reason"]:
@@ -113,6 +115,6 @@ def run(args) -> int:
         emit_json(result.to_json())
     else:
         sys.stdout.write(render(result.to_json()))
-        if args.save:
-            sys.stdout.write(f"saved: {args.save}\n")
+    if args.save:
+        written("probe", "results", args.save)
     return 0

@@ -6,7 +6,7 @@ import shlex
 import sys
 
 from moerun.cli import main as cli
-from moerun.cli.report import Progress, emit_json, table
+from moerun.cli.report import Progress, emit_json, table, written
 from moerun.files.packed import ATTN_BITS, EXPERT_BITS, METHODS
 from moerun.makers.jobs import quantize
 from moerun.units import fmt_bytes
@@ -45,10 +45,10 @@ def run(args) -> int:
         progress.close()
     if args.json:
         emit_json(rep.to_json())
+        written("quantize", "model directory", rep.out_dir)
         return 0
     spec = rep.spec
     rows = [
-        ["written", rep.out_dir],
         ["setting", f"{spec.expert_bits}-bit experts, {'float16' if spec.attn_bits == 16 else f'{spec.attn_bits}-bit'} attention, "
                     f"{spec.method}, group {spec.group}"],
         ["model.safetensors", f"{fmt_bytes(rep.file_bytes)} (source {fmt_bytes(rep.source_file_bytes)}, "
@@ -63,4 +63,5 @@ def run(args) -> int:
                                             f"({100 * h['relative_change']:+.2f}%, {h['predicted_tokens']:,} tokens)"])
     rows.append(["time", f"{rep.seconds:.1f} s"])
     sys.stdout.write(table(["", "value"], rows, "ll") + "\n")
+    written("quantize", "model directory", rep.out_dir)
     return 0

@@ -5,7 +5,7 @@ from __future__ import annotations
 import sys
 
 from moerun.cli import main as cli
-from moerun.cli.report import Progress, emit_json
+from moerun.cli.report import Progress, emit_json, written
 from moerun.sim.jobs import record
 from moerun.units import fmt_bytes
 
@@ -25,11 +25,10 @@ def _summary_text(doc: dict, window_tokens: int) -> str:
     ce = doc["cross_entropy_nats_per_token"]
     return (
         f"routed {doc['tokens']} tokens ({doc['text_tokens']} of text in {doc['windows']} windows of up to {window_tokens}, "
-        f"each opened by the bos token) through {doc['layers']} layers in {doc['seconds']:.1f} s ({doc['tokens_per_s']:.0f} tok/s)\n"
+        f"each opened by the bos token) through {doc['layers']} layers in {doc['seconds']:.1f} s ({doc['tok_s']:.0f} tok/s)\n"
         f"{doc['expert_accesses']} expert accesses (top-{doc['top_k']} of {doc['n_experts']}); guesses for {doc['lookahead']} layers ahead, "
         f"top {doc['guesses']} each\n"
         + (f"cross-entropy on this text {ce:.4f} nats/token\n" if ce is not None else "")
-        + f"trace written to {doc['trace']} ({fmt_bytes(doc['file_bytes'])})\n"
     )
 
 
@@ -48,4 +47,5 @@ def run(args) -> int:
         emit_json(result.to_json())
     else:
         sys.stdout.write(_summary_text(result.to_json(), result.window_tokens))
+    written("record", "trace", result.trace, fmt_bytes(result.file_bytes))
     return 0

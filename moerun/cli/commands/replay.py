@@ -2,22 +2,24 @@
 
 from __future__ import annotations
 
+import argparse
 import sys
 
 from moerun import policies
 from moerun.cli import main as cli
-from moerun.cli.report import Progress, emit_json, pct, table
+from moerun.cli.report import Progress, emit_json, pct, table, written
 from moerun.errors import BadOption
 from moerun.files.fileio import check_output
 from moerun.sim.jobs import replay
 from moerun.sim.report import DEFAULT_POLICIES, overall
-from moerun.units import fmt_bytes
+from moerun.units import SHARED_POOL, fmt_bytes, fmt_prefetch
 
 HELP = "replay a routing trace through eviction policies: hit rate per layer and slot count, the offline bound, baselines, prefetch"
 
 
 def add_arguments(p) -> None:
-    p.add_argument("trace", metavar="TRACE", help="trace file (.npz) from 'moerun record', 'moerun generate --trace' or another runtime")
+    cli.add_routing(p, "the routing trace to replay (.npz) from 'moerun record', 'moerun generate --trace' or another runtime")
+    p.add_argument("old_trace", nargs="?", metavar="TRACE", help=argparse.SUPPRESS)  # the old spelling: the trace as the first argument
     p.add_argument(
         "--evict",
         default=",".join(DEFAULT_POLICIES),
@@ -67,14 +69,14 @@ def render(doc: dict, per_layer: bool = False) -> str:
         if tr["prefill_tokens"]
         else "every token as a decode step"
     )
-    shared = doc.get("pool") == "shared"
-    where = "one pool shared by all layers starts empty" if shared else "each layer's quota starts empty"
+    shared = doc["split"] == "shared"
+    where = f"one {SHARED_POOL} for all layers starts empty" if shared else "each layer's quota starts empty"
     lines.append(f"replay: {pre}; {tr['decode_accesses']} counted accesses; {where}")
     if eb is not None:
         lines.append(f"expert size {fmt_bytes(eb)} ({eb} bytes) for the bytes-moved columns")
     lines.append("")
 
-    head = ["hit rate, all layers"] + [f"{c} {'shared ' if shared else ''}slot" + ("s" if c != 1 else "") for c in slots]
+    head = [f"hit rate, all layers{', ' + SHARED_POOL if shared else ''}"] + [f"{c} slot" + ("s" if c != 1 else "") for c in slots]
     rows = []
     for name in doc["policies"]:
         by = overall(doc["results"], name)
@@ -101,7 +103,7 @@ def render(doc: dict, per_layer: bool = False) -> str:
     if per_layer:
         lines.append("")
         layers = sorted({r["layer"] for r in doc["results"] if r["layer"] != "all"})
-        head = ["policy", "shared slots" if shared else "slots"] + [f"layer {x}" for x in layers] + ["all"]
+        head = ["policy", f"slots ({SHARED_POOL})" if shared else "slots"] + [f"layer {x}" for x in layers] + ["all"]
         rows = []
         for name in doc["policies"]:
             for c in slots:
@@ -127,19 +129,20 @@ def _render_prefetch(doc: dict, shared: bool) -> list[str]:
         lines.append(table(head, rows))
         lines.append("recall: share of a layer's chosen experts among the guesses made j layers earlier for the same token")
 
-    pf = doc.get("prefetch")
-    if pf:
+    pf = doc.get("prefetch_results")
+    if pf is not None:
         lines.append("")
+        n, la = doc["prefetch"], doc["lookahead"]
         lines.append(
-            f"prefetch simulated: top {pf['guesses']} guesses for up to {pf['lookahead']} layer{'s' if pf['lookahead'] > 1 else ''} ahead, loaded at once "
-            "(no link delay), pinned as the live pool pins them"
+            f"prefetch simulated ({fmt_prefetch(n, la)}): the trace's top {n} guesses for up to {la} layer{'s' if la > 1 else ''} "
+            "ahead, loaded at once (no link delay), pinned as the live pool pins them"
         )
-        unit, factor = _unit(r["bytes_moved"] for r in pf["results"])
-        head = ["policy", "shared slots" if shared else "slots", "hit rate", "with prefetch", "prefetched hits", "guess loads", "wasted", f"{unit} moved"]
+        unit, factor = _unit(r["bytes_moved"] for r in pf)
+        head = ["policy", f"slots ({SHARED_POOL})" if shared else "slots", "hit rate", "with prefetch", "prefetched hits", "guess loads", "wasted", f"{unit} moved"]
         rows = []
         for name in doc["policies"]:
             base = overall(doc["results"], name)
-            got = overall(pf["results"], name)
+            got = overall(pf, name)
             for c in doc["slots"]:
                 if c not in got:
                     continue
@@ -155,6 +158,9 @@ def _render_prefetch(doc: dict, shared: bool) -> list[str]:
 
 
 def run(args) -> int:
+    cli.routing_from_old(args, "replay", "old_trace", "the trace as a bare argument ('moerun replay FILE')")
+    if args.routing is None:
+        raise BadOption("no routing trace given: add --routing FILE")
     cli.refuse_without(args, "plot_layer", "plot", "--plot FILE")
     plot_layer = args.plot_layer or 0
     traces = []
@@ -166,12 +172,12 @@ def run(args) -> int:
         if args.plot:
             from moerun.cli.plot import require_matplotlib
 
-            check_output(args.plot, args.force, [args.trace], "--plot")
+            check_output(args.plot, args.force, [args.routing], "--plot")
             require_matplotlib()
 
     prog = Progress("replay")
     try:
-        result = replay(args.trace, args.evict, args.slots, shared_pool=args.shared_pool, prefetch=args.prefetch,
+        result = replay(args.routing, args.evict, args.slots, shared_pool=args.shared_pool, prefetch=args.prefetch,
                         lookahead=args.lookahead, expert_bytes=args.expert_bytes, seed=args.seed,
                         baselines=not args.no_baselines, generic=args.generic,
                         progress=lambda i, n, label: prog.update(i, label), on_trace=check_plot)
@@ -180,12 +186,12 @@ def run(args) -> int:
     if args.plot:
         from moerun.cli.plot import plot_replay
 
-        result.plot = plot_replay(args.plot, traces[0], result.to_json(), plot_layer, force=args.force, inputs=[args.trace])
+        result.plot = plot_replay(args.plot, traces[0], result.to_json(), plot_layer, force=args.force, inputs=[args.routing])
     doc = result.to_json()
     if args.json:
         emit_json(doc)
     else:
         sys.stdout.write(render(doc, args.per_layer) + "\n")
-        if args.plot:
-            sys.stdout.write(f"plot written to {args.plot}\n")
+    if args.plot:
+        written("replay", "plot", args.plot)
     return 0

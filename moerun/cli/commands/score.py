@@ -8,7 +8,8 @@ from pathlib import Path
 from moerun.checks.jobs import score
 from moerun.cli import main as cli
 from moerun.cli.report import Progress, emit_json, table
-from moerun.units import fmt_bytes
+from moerun.cli.summary import slots_text
+from moerun.units import fmt_bytes, fmt_prefetch
 
 HELP = "perplexity of a text (default: the model's heldout.txt), teacher-forced in context-sized windows, with tok/s"
 
@@ -56,10 +57,11 @@ def run(args) -> int:
         ["speed", f"{r.tok_s:,.0f} tok/s ({r.forward_ns / 1e6:.0f} ms of forward passes)"],
     ]
     if b["cap_bytes"] is not None:
-        rows.append(["memory cap", f"{fmt_bytes(b['cap_bytes'])}; slots per layer {','.join(map(str, b['slots']))}"
-                     + (" (one shared pool)" if b["split"] == "shared" else "")])
+        rows.append(["memory cap", f"{fmt_bytes(b['cap_bytes'])}; {slots_text(b['split'], b['slots'])}"])
+        if options.get("prefetch"):
+            rows.append(["prefetch", fmt_prefetch(options["prefetch"], options.get("lookahead"), options.get("prefetch_from"))])
         rows.append(["page-ins", f"{doc['expert_loads'] or 0:,} experts, {fmt_bytes(doc['bytes_paged_in'] or 0)}, "
-                     f"stalled {doc['stall_ms']:.1f} ms"])
+                     f"stalled {doc['stall_s'] * 1e3:.1f} ms"])
     if options.get("link_speed") is not None:
         rows.append(["link", f"{options['link_speed'] / 1e9:.2f} GB/s (emulated)"])
     if options.get("cold"):

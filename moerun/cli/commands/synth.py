@@ -5,7 +5,7 @@ from __future__ import annotations
 import sys
 
 from moerun.cli import main as cli
-from moerun.cli.report import Progress, emit_json, table
+from moerun.cli.report import Progress, emit_json, table, written
 from moerun.errors import BadOption
 from moerun.files.ckpt_config import SUPPORTED_TYPES
 from moerun.makers.jobs import synth, synth_open
@@ -90,10 +90,10 @@ def run(args) -> int:
         progress.close()
     if args.json:
         emit_json(result.to_json())
+        written("synth", "model directory", result.model_dir, f"{result.seconds:.1f} s")
         return 0
     c = result.config
     out = sys.stdout
-    out.write(f"wrote {result.model_dir} in {result.seconds:.1f} s\n")
     out.write(f"note: {RANDOM_NOTE}; use it for sizes, page-in and budgets, not for policies\n")
     out.write(
         f"{c.n_layers} layers, d_model {c.d_model}, {c.n_heads} heads ({c.n_kv_heads} KV) of {c.head_dim}, "
@@ -108,6 +108,7 @@ def run(args) -> int:
         [f"all experts ({c.n_layers} x {c.n_experts})", f"{fmt_bytes(result.experts_total_bytes)} ({100 * share:.1f}% of the file)"],
     ]
     out.write(table(["", "size"], rows) + "\n")
+    written("synth", "model directory", result.model_dir, f"{result.seconds:.1f} s")
     return 0
 
 
@@ -128,13 +129,14 @@ def _run_open(args, report, progress) -> int:
         )
     finally:
         progress.close()
-    if args.json:
+    if not args.json:
+        out = sys.stdout
+        out.write(f"an open {result.model_type} checkpoint, {result.dtype}, {fmt_bytes(result.file_bytes)} in "
+                  f"{len(result.files)} file(s)\n")
+        out.write(f"note: {RANDOM_NOTE}; use it for sizes, page-in and budgets, not for policies\n")
+    else:
         emit_json(result.to_json())
-        return 0
-    out = sys.stdout
-    out.write(f"wrote {result.model_dir} in {result.seconds:.1f} s: an open {result.model_type} checkpoint, {result.dtype}, "
-              f"{fmt_bytes(result.file_bytes)} in {len(result.files)} file(s)\n")
-    out.write(f"note: {RANDOM_NOTE}; use it for sizes, page-in and budgets, not for policies\n")
+    written("synth", "open checkpoint", result.model_dir, f"{result.seconds:.1f} s")
     return 0
 
 
