@@ -34,5 +34,13 @@ def test_growth_up_to_the_cap_plus_the_allowance_passes_and_one_byte_more_is_fla
 
 
 def test_a_synthetic_model_says_its_routing_is_meaningless():
-    assert model_note(SimpleNamespace(extra={"synthetic": True})) == RANDOM_NOTE
-    assert model_note(SimpleNamespace(extra={})) == NOT_ADVICE
+    assert model_note(SimpleNamespace(extra={"synthetic": True}, arch="")) == RANDOM_NOTE
+    assert model_note(SimpleNamespace(extra={"synthetic": True}, arch="olmoe")) == RANDOM_NOTE
+    assert model_note(SimpleNamespace(extra={}, arch="")) == NOT_ADVICE
+
+
+def test_an_open_checkpoints_text_is_not_called_a_toys():
+    from moerun.cli.summary import OPEN_NOTE
+
+    assert model_note(SimpleNamespace(extra={}, arch="qwen3_moe")) == OPEN_NOTE
+    assert "not advice" not in OPEN_NOTE and "tiny" not in OPEN_NOTE
