@@ -140,6 +140,7 @@ class RecordResult:
     tok_s: float | None
     file_bytes: int
     window_tokens: int = 0  # the model's context (not in the JSON document: the text summary says it)
+    window_bos: bool = True  # each window opened by the bos token (not in the JSON document either)
 
     def to_json(self) -> dict:
         return {
@@ -189,12 +190,14 @@ def _finished_trace(engine, wins: list[np.ndarray], done: int, text_path: Path) 
 
 
 def record(trace: str | os.PathLike, model_dir: str | os.PathLike | None = None, text: str | os.PathLike | None = None,
-           *, max_tokens: int | None = None, force: bool = False,
-           progress: Callable[[int, int, int], None] | None = None) -> RecordResult:
+           *, max_tokens: int | None = None, force: bool = False, mem_cap: int | str | None = None,
+           max_context: int | None = None, progress: Callable[[int, int, int], None] | None = None) -> RecordResult:
     """Route a text file (default: the model's heldout.txt) through the model and write the trace (``moerun record``).
 
     Teacher-forced, window by window; an interrupted run writes the windows it routed as a partial trace.
-    ``progress(windows_done, windows_total, tokens_routed)`` after each window.
+    ``mem_cap`` and ``max_context``: the engine's (``load``), so a model larger than memory can be recorded
+    (the windows are then the context asked for).  ``progress(windows_done, windows_total, tokens_routed)``
+    after each window.
     """
     model_dir = resolve_model(model_dir)
     text_path = Path(text) if text is not None else model_dir / "heldout.txt"
@@ -205,7 +208,7 @@ def record(trace: str | os.PathLike, model_dir: str | os.PathLike | None = None,
     except OSError:
         inputs = [text_path]
     check_output(trace, force, inputs, "--trace")
-    with load(model_dir) as engine:
+    with load(model_dir, mem_cap=mem_cap, max_context=max_context) as engine:
         c = engine.config
         # read and encoded only as far as max_tokens needs, before any window is routed
         ids = engine.tokenizer.encode_file(text_path, max_tokens)
@@ -250,4 +253,5 @@ def record(trace: str | os.PathLike, model_dir: str | os.PathLike | None = None,
             tok_s=tr.n_tokens / elapsed if elapsed else None,
             file_bytes=Path(trace).stat().st_size,
             window_tokens=c.max_seq_len,
+            window_bos=c.bos_token_id is not None,
         )

@@ -52,3 +52,18 @@ def test_replay_returns_what_the_command_prints(small_model, text_file, tmp_path
     code, doc = cli_json(capsys, *argv)
     assert code == 0
     assert as_json(result.to_json()) == doc  # nothing in it is a timing
+
+
+def test_record_under_a_cap_writes_the_routing_a_resident_record_writes(tmp_path):
+    """A model larger than memory is recorded under --mem-cap: the same experts, weights and guesses, bit for bit."""
+    from pathlib import Path
+
+    d = Path(__file__).resolve().parent.parent / "fixtures" / "open" / "qwen2_moe-bf16-sharded-v4"
+    text = d.parent / "README.md"
+    moerun.record(tmp_path / "resident.npz", d, text, max_tokens=300)
+    moerun.record(tmp_path / "capped.npz", d, text, max_tokens=300, mem_cap="1900KiB")
+    a, c = read_trace(tmp_path / "resident.npz"), read_trace(tmp_path / "capped.npz")
+    assert np.array_equal(a.experts, c.experts) and np.array_equal(a.weights, c.weights)
+    assert np.array_equal(a.guesses, c.guesses)
+    short = moerun.record(tmp_path / "short.npz", d, text, max_tokens=300, mem_cap="1900KiB", max_context=96)
+    assert short.window_tokens == 96 and not short.window_bos  # this tokenizer puts no bos token before a text
