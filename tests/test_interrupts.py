@@ -531,3 +531,135 @@ def test_a_ctrl_c_the_caller_ignores_stays_ignored(tmp_path):
         if proc.poll() is None:
             proc.kill()
     assert proc.returncode == 0, err.decode()[-400:]
+
+
+# ---------------------------------------------------------------------------- at the instant of each rename
+# (issue 23: the signal tests cover the instant of each writer's rename).  Every writer installs its output with
+# one of these renames (moerun/files/fileio.py); the signal arrives right after the rename, with an older output
+# in place (replaced with --force) or none.
+
+
+def _signal_after_renames(monkeypatch, signum: int, target: Path) -> list:
+    """Each rename that installs ``target`` (an exchange, a no-replace rename or a replace) sends this process
+    ``signum`` right after it, as a signal landing in that instant would; renames of other paths (the files
+    inside a model directory being written) do not."""
+    from moerun.files import fileio
+
+    seen: list = []
+
+    def after(name, dst) -> None:
+        if Path(dst) == target:
+            seen.append(name)
+            os.kill(os.getpid(), signum)
+
+    for name in ("rename_exchange", "rename_noreplace"):
+        real = getattr(fileio, name)
+
+        def renamed_then_signalled(src, dst, *a, _real=real, _name=name, **kw):
+            out = _real(src, dst, *a, **kw)
+            if out is not False:  # an exchange the system refused renamed nothing
+                after(_name, dst)
+            return out
+
+        monkeypatch.setattr(fileio, name, renamed_then_signalled)
+    real_replace = os.replace
+
+    class _Os:
+        def __getattr__(self, attr):
+            return getattr(os, attr)
+
+        @staticmethod
+        def replace(src, dst, *a, **kw):
+            real_replace(src, dst, *a, **kw)
+            after("replace", dst)
+
+        @staticmethod
+        def rename(src, dst, *a, **kw):  # a system without an exchange moves the old output away first
+            real_rename(src, dst, *a, **kw)
+            if Path(src) == target:
+                seen.append("rename away")
+                os.kill(os.getpid(), signum)
+
+    real_rename = os.rename
+    monkeypatch.setattr(fileio, "os", _Os())
+    return seen
+
+
+@contextlib.contextmanager
+def _entry_handlers():
+    """The handlers ``moerun.cli.entry`` installs first (SIGINT: KeyboardInterrupt, SIGTERM: Terminated), for an
+    in-process ``cli.main``; this process's own put back after."""
+    from moerun.cli import _install_stop_handlers
+
+    saved = {s: signal.getsignal(s) for s in (signal.SIGINT, signal.SIGTERM)}
+    try:
+        _install_stop_handlers([])
+        yield
+    finally:
+        for s, h in saved.items():
+            signal.signal(s, h)
+
+
+def _writer_cases(tmp_path, synth_models, many_experts):
+    model = synth_models(layers=2, experts=4, top_k=2)
+    text = tmp_path / "text.txt"
+    text.write_text("fog on the mesh at dawn " * 40)
+    out = tmp_path / "out"
+    return {
+        "generate --trace": (["generate", "--model", str(model), "--prompt", "fog", "--max-new", "3", "--trace", str(out),
+                              "--quiet"], "file"),
+        "record --trace": (["record", "--model", str(model), "--text", str(text), "--trace", str(out)], "file"),
+        "probe --save": (["probe", "--sizes", "64KiB", "--runs", "2", "--dir", str(tmp_path), "--save", str(out)], "file"),
+        "synth": (["synth", str(out), "--layers", "1", "--experts", "2", "--d-model", "32", "--d-expert", "32",
+                   "--top-k", "1"], "dir"),
+        "synth --open-type": (["synth", str(out), "--open-type", "olmoe", "--layers", "1", "--experts", "2", "--d-model", "64",
+                               "--d-expert", "32", "--top-k", "1", "--heads", "4", "--kv-heads", "2"], "dir"),
+        "quantize": (["quantize", "--model", str(many_experts), str(out), "--no-score"], "dir"),
+    }
+
+
+@pytest.mark.parametrize("writer", ["generate --trace", "record --trace", "probe --save", "synth", "synth --open-type", "quantize"])
+@pytest.mark.parametrize("how", [signal.SIGINT, signal.SIGTERM], ids=["sigint", "sigterm"])
+@pytest.mark.parametrize("existing", [False, True], ids=["new", "replacing"])
+def test_a_signal_at_the_instant_of_a_writers_rename_leaves_its_output_whole_and_no_temporary(
+        tmp_path, synth_models, many_experts, monkeypatch, capsys, writer, how, existing):
+    _check_writer_at_rename(tmp_path, synth_models, many_experts, monkeypatch, capsys, writer, how, existing)
+
+
+@pytest.mark.parametrize("writer", ["synth", "quantize"])
+def test_a_signal_between_the_renames_of_a_system_without_exchange_loses_neither_output(
+        tmp_path, synth_models, many_experts, monkeypatch, capsys, writer):
+    """Without an atomic exchange (renameat2 RENAME_EXCHANGE), replacing a model directory takes two renames: the
+    old one away, the new one in.  A signal between them must not leave the path empty (both outputs lost)."""
+    from moerun.files import fileio
+
+    monkeypatch.setattr(fileio, "rename_exchange", lambda a, b: False)
+    _check_writer_at_rename(tmp_path, synth_models, many_experts, monkeypatch, capsys, writer, signal.SIGINT, True)
+
+
+def _check_writer_at_rename(tmp_path, synth_models, many_experts, monkeypatch, capsys, writer, how, existing):
+    argv, kind = _writer_cases(tmp_path, synth_models, many_experts)[writer]
+    out = tmp_path / "out"
+    if existing:  # an older output of the same kind, replaced with --force
+        assert cli.main([*argv, "--force"] if kind == "file" else argv) == 0
+        argv = [*argv, "--force"]
+    before = sorted(p.name for p in tmp_path.iterdir())
+    seen = _signal_after_renames(monkeypatch, how, out)
+    with _entry_handlers():
+        code = cli.main(argv)
+    capsys.readouterr()
+    assert seen, "the writer installed its output through one of fileio's renames"
+    assert code == (130 if how == signal.SIGINT else 143)
+    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".moerun-tmp-")]
+    assert sorted(p.name for p in tmp_path.iterdir()) == sorted(set(before) | {"out"})
+    if kind == "file":
+        assert out.is_file() and out.stat().st_size > 0
+        if writer != "probe --save":
+            from moerun.files.trace import read_trace
+
+            read_trace(out)  # whole: it reads
+    else:
+        import moerun
+
+        with moerun.load(out, tokenizer=False) as eng:  # whole: it loads
+            assert eng.config.n_layers >= 1 and eng.config.n_experts >= 2

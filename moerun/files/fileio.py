@@ -279,7 +279,9 @@ def check_output(path: str | os.PathLike, force: bool = False, inputs: Iterable 
 
 class SignalsHeld:
     """Ctrl-C and SIGTERM wait from here until ``release()``: for the instant between making a temporary
-    file or directory and entering the ``try`` that removes it, where an interruption would leave it behind.
+    file or directory and entering the ``try`` that removes it, where an interruption would leave it behind,
+    and for the renames that install an output (an interruption between two of them could leave neither the
+    old output nor the new one).
 
     Python runs signal handlers in the main thread only, between instructions; while held, the handlers
     only note the signal, and ``release()`` puts the handlers back and calls the first noted one, so its
@@ -345,7 +347,11 @@ def atomic_path(path: str | os.PathLike, suffix: str = "", force: bool = True, i
         yield tmp_path
         with open(tmp_path, "rb+") as f:
             os.fsync(f.fileno())
-        _install(tmp_path, path, force, inputs, what)
+        installing = SignalsHeld()  # a signal during the renames waits: the output is installed whole, then it acts
+        try:
+            _install(tmp_path, path, force, inputs, what)
+        finally:
+            installing.release()
     except OSError as e:
         with contextlib.suppress(OSError):
             tmp_path.unlink()
@@ -477,7 +483,11 @@ def atomic_dir(path: str | os.PathLike, force: bool = False, protect: Iterable =
         held.release()  # an interruption since mkdtemp is raised here, where the temporary is removed
         yield tmp
         _ordinary_modes(tmp)
-        _install_dir(tmp, path, force, protect, what, allow_empty)
+        installing = SignalsHeld()  # as atomic_path: the renames (and the old model's removal) are not cut short
+        try:
+            _install_dir(tmp, path, force, protect, what, allow_empty)
+        finally:
+            installing.release()
     except OSError as e:
         shutil.rmtree(tmp, ignore_errors=True)
         raise OutputError(f"{_label(path, what)}: writing failed ({_os_reason(e)}); nothing was written", e.errno) from None
