@@ -89,6 +89,22 @@ def window_nll(logits: np.ndarray, ids: np.ndarray) -> tuple[float, int]:
     return total, int(n)
 
 
+def passes_nll(passes: Iterable[np.ndarray], ids: np.ndarray) -> tuple[float, int]:
+    """``window_nll`` over logits that come a pass of rows at a time (``Engine.logits_in_passes``): each row r
+    predicts ids[r + 1]; the last row of the window predicts nothing."""
+    ids = np.asarray(ids).reshape(-1)
+    total, count, r0 = 0.0, 0, 0
+    for rows in passes:
+        n = rows.shape[0]
+        upto = min(r0 + n, ids.size - 1)  # rows that have a next token
+        if upto > r0:
+            s, k = window_nll(rows[: upto - r0], ids[r0 : upto + 1])
+            total += s
+            count += k
+        r0 += n
+    return total, count
+
+
 def text_windows(ids: Sequence[int] | np.ndarray, context: int, bos: int | None) -> list[np.ndarray]:
     """Cut a token stream into scoring windows (the rule in the module docstring)."""
     return list(iter_windows(ids, context, bos))
@@ -116,7 +132,7 @@ def score_windows(engine, windows: Iterable, on_window: Callable[[int], None] | 
     for w in windows:
         w = np.asarray(w, np.int64).reshape(-1)
         t0 = time.monotonic_ns()
-        s, k = window_nll(engine.logits(w), w)  # this window's logits are freed before the next window's are made
+        s, k = passes_nll(engine.logits_in_passes(w), w)  # one pass's logits at a time, freed before the next
         ns += time.monotonic_ns() - t0
         total += s
         n += k

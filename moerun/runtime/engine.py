@@ -9,6 +9,7 @@ the pool.  ``engine.stats`` holds the run's measured figures.
 from __future__ import annotations
 
 import time
+from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -22,7 +23,7 @@ from moerun.files.trace import TRACE_GUESSES, TRACE_LOOKAHEAD, Recorder, Trace, 
 from moerun.model.routing import ReplayedRouting
 from moerun.model.sampling import Sampler, Sampling
 from moerun.model.tokenizer import Tokenizer
-from moerun.model.transformer import NO_OBSERVER, KVCache, StepObserver, Transformer
+from moerun.model.transformer import NO_OBSERVER, PREFILL_CHUNK, KVCache, StepObserver, Transformer
 from moerun.runtime.budget import Budget
 from moerun.runtime.memwatch import MemWatch
 from moerun.runtime.pool import ExpertPool
@@ -171,6 +172,17 @@ class Engine:
         x = self.model.forward(ids, 0, self.cache, self.experts, self.routing, self._observer())
         self.store.check_unchanged()
         return self._finite(self.model.logits(x))
+
+    def logits_in_passes(self, token_ids) -> Iterator[np.ndarray]:
+        """The logits of ``logits``, ``PREFILL_CHUNK`` rows at a time: one forward pass over the sequence, then the
+        output matrix applied to one pass's rows after another, so only one pass's logits exist at once (the
+        budget's scratch counts one; a 4096-token window of a 150k vocabulary would take 2.5 GB at once)."""
+        ids = self._check_ids(token_ids)
+        self.experts.begin_step(-1)
+        x = self.model.forward(ids, 0, self.cache, self.experts, self.routing, self._observer())
+        self.store.check_unchanged()
+        for r0 in range(0, len(ids), PREFILL_CHUNK):
+            yield self._finite(self.model.logits(x[r0 : r0 + PREFILL_CHUNK]))
 
     def generate(
         self,

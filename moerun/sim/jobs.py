@@ -14,7 +14,7 @@ from pathlib import Path
 
 import numpy as np
 
-from moerun.checks.score import window_nll
+from moerun.checks.score import passes_nll
 from moerun.errors import BadInput, BadOption
 from moerun.files.bundled import resolve_model
 from moerun.files.fileio import check_output
@@ -223,7 +223,7 @@ def record(trace: str | os.PathLike, model_dir: str | os.PathLike | None = None,
         routed = 0
         try:
             for w in wins:
-                s, k = window_nll(engine.logits(w), np.asarray(w))
+                s, k = passes_nll(engine.logits_in_passes(w), np.asarray(w))
                 nll += s
                 predicted += k
                 done += 1

@@ -284,3 +284,24 @@ def test_a_measured_peak_above_the_cap_is_warned_on_stderr_and_marked_in_json(sm
         out, err = capsys.readouterr()
         assert json.loads(out)["cap_exceeded"] is True
         assert err.strip().startswith(f"moerun {command}: warning: peak resident-set growth") and "exceeded the memory cap" in err
+
+
+def test_a_long_window_is_scored_one_pass_of_logits_at_a_time_with_the_same_loss(tmp_path):
+    """A window longer than one pass (an open checkpoint's context of thousands of tokens) never holds all its
+    logits at once; the loss is the one of the whole window's logits."""
+    import numpy as np
+
+    from moerun.checks.score import passes_nll, window_nll
+    from moerun.makers.synth_open import OpenShape, synthesize_open
+    from moerun.model.transformer import PREFILL_CHUNK
+
+    d = tmp_path / "ck"
+    synthesize_open(d, OpenShape("olmoe", layers=2, experts=4, hidden=64, expert_width=32, context=1024), seed=1)
+    ids = np.random.default_rng(3).integers(2, 258, 2 * PREFILL_CHUNK + 77)
+    with moerun.load(d) as eng:
+        passes = list(eng.logits_in_passes(ids))
+        whole = eng.logits(ids)
+    assert [p.shape[0] for p in passes] == [PREFILL_CHUNK, PREFILL_CHUNK, 77]
+    got, n = passes_nll(iter(passes), ids)
+    want, m = window_nll(whole, ids)
+    assert n == m == ids.size - 1 and abs(got - want) <= 1e-6 * abs(want)
