@@ -218,6 +218,8 @@ def main() -> int:
     if not a.no_reference:
         configs["transformers eager f32"] = ("reference", {})
     configs["capped cold, lru"] = ("moerun", {"mem_cap": cap, "cold_reads": True})
+    # the same cap with float32 slots: half as many experts held, none widened at each use
+    configs["capped cold, lru, float32 slots"] = ("moerun", {"mem_cap": cap, "cold_reads": True, "expert_slots": "float32"})
     for policy, split in (("lru", "even"), ("markov", "even"), ("orbit", "shared")):
         for pf in (0, 1, 2):
             for cold in (False, True):

@@ -95,7 +95,7 @@ SETTINGS = [
 ]
 
 
-@pytest.mark.parametrize("variant", ["qwen3_moe-bf16-fused-sharded", "qwen2_moe-bf16-sharded-v4", "olmoe-f32"])
+@pytest.mark.parametrize("variant", VARIANTS)
 def test_offloaded_output_is_bit_identical_to_resident(variant):
     ref = _ref(variant)
     prompt = ref["tokens_2"].tolist()
