@@ -12,9 +12,12 @@ transposed copy is made).  The embedding table is not held: its rows are read fr
 needs them (``EmbeddingRows``), unless the output matrix is tied to it.  Everything is read with ``os.preadv``:
 nothing of the checkpoint is mapped, so no page of it counts in the resident set.
 
-Not yet here (refused with one line where asked for): the prefetch reader process (an expert's spans lie in
-several places, and the reader reads one range), the ``mmap`` page-in mechanism, and keeping dense weights in
-their stored dtype.
+Expert slots hold an expert as stored (BF16/F16 widened at each use into scratch) or, with ``widen``, as
+float32 widened once after each read (``CheckpointCodec``; both give the same bits).  The prefetch reader
+process reads an expert's pieces (``read_pieces``), one ring entry each.
+
+Not yet here (refused with one line where asked for): the ``mmap`` page-in mechanism, float32 slots with the
+prefetch reader, and keeping dense weights in their stored dtype.
 """
 
 from __future__ import annotations
