@@ -108,11 +108,12 @@ def verify(model_dir, prompts: list[list[int]], settings: list[Setting] | None =
         full_cap, slot = every.total, every.slot
     finally:
         st.close()
-    if settings is None:
-        settings = default_settings(min_cap, full_cap, slot)
+    room = int(RESIDENT_SHARE * available_memory())
+    if settings is None:  # the caps between the smallest and the whole model, as far as memory allows
+        settings = default_settings(min_cap, max(min_cap, min(full_cap, room)), slot)
     ref_kwargs = dict(base)
     reference = "resident"
-    if full_cap > RESIDENT_SHARE * available_memory():  # too large to hold whole: one layer's experts at a time
+    if full_cap > room:  # too large to hold whole: one layer's experts at a time
         ref_kwargs["baseline"] = reference = "whole-layer"
     ref, ref_slots, _ = run_once(model_dir, ref_kwargs, prompts, max_new, sampling)
     outcomes = []

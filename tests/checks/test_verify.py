@@ -82,3 +82,6 @@ def test_a_model_larger_than_free_memory_is_verified_against_one_layer_at_a_time
     monkeypatch.setattr(verify_mod, "available_memory", lambda: 1 << 20)  # 1 MiB free: pebble does not fit
     result = moerun.verify("pebble", "The keepers check the mesh", max_new=6, mem_cap="12MiB")
     assert result.reference == "whole-layer" and result.ok and result.to_json()["reference"] == "whole-layer"
+    # verify's own settings stay at caps the memory holds: here, all at the smallest
+    own = moerun.verify("pebble", "The keepers check the mesh", max_new=4)
+    assert own.ok and {o.setting.kwargs["mem_cap"] for o in own.outcomes} == {own.min_cap}
