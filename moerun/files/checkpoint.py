@@ -88,8 +88,9 @@ def decode_bf16(bits: np.ndarray) -> np.ndarray:
 
 def widen_into(src: np.ndarray, dtype: str, out: np.ndarray) -> np.ndarray:
     """Write the stored part ``src`` (dtype tag ``dtype``: BF16 as uint16 bits, F16, F32) into the float32 array
-    ``out`` of the same shape, and return ``out``.  No array is allocated: BF16 is widened by copying the bits
-    into ``out``'s 32-bit words and shifting them left by 16 in place, F16 and F32 by one casting copy."""
+    ``out`` of the same shape, and return ``out``.  No array of the tensor's size is allocated (numpy casts through a
+    buffer of its own, tens of KB): BF16 is widened by copying the bits
+    into ``out``'s 32-bit words shifted left by 16 (one pass), F16 and F32 by one casting copy."""
     if out.dtype != np.float32 or out.shape != src.shape or not out.flags.c_contiguous or not out.flags.writeable:
         raise ValueError(f"out must be a writable C-contiguous float32 array of shape {src.shape}")
     want = STORED_DTYPES.get(dtype)
@@ -97,10 +98,8 @@ def widen_into(src: np.ndarray, dtype: str, out: np.ndarray) -> np.ndarray:
         raise ValueError(f"unknown stored dtype {dtype!r} (expected one of {', '.join(STORED_DTYPES)})")
     if src.dtype != want:
         raise ValueError(f"a {dtype} part must be a {want} array, got {src.dtype}")
-    if dtype == "BF16":
-        words = out.view(np.uint32)
-        np.copyto(words, src, casting="safe")
-        np.left_shift(words, 16, out=words)
+    if dtype == "BF16":  # one pass: each 16-bit word widened and shifted into its 32-bit word
+        np.left_shift(src, np.uint32(16), out=out.view(np.uint32), dtype=np.uint32)
     else:
         np.copyto(out, src, casting="safe")
     return out
