@@ -120,6 +120,9 @@ def add_memory(p) -> None:
                    help="how an open checkpoint's BF16/F16 experts are held: as stored (half the bytes, widened at each "
                         "use) or as float32 (widened once when read); auto: float32 when every expert is resident and "
                         "nothing is prefetched, else as stored")
+    p.add_argument("--dense-weights", choices=("float32", "stored"), default="float32",
+                   help="an open checkpoint's dense matrices (attention, lm_head, shared experts): widened to float32 "
+                        "once (default), or kept as stored and widened at each use (half their memory, slower)")
     p.set_defaults(_engine_cap=True)  # --mem-cap caps the engine: the out-of-memory line may point at it
 
 
@@ -225,6 +228,7 @@ def engine_kwargs(args) -> dict:
         "cold": args.cold,
         "max_context": args.max_context,
         "expert_slots": args.expert_slots,
+        "dense_weights": args.dense_weights,
     }
 
 

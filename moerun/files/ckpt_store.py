@@ -16,8 +16,11 @@ Expert slots hold an expert as stored (BF16/F16 widened at each use into scratch
 float32 widened once after each read (``CheckpointCodec``; both give the same bits).  The prefetch reader
 process reads an expert's pieces (``read_pieces``), one ring entry each.
 
-Not yet here (refused with one line where asked for): the ``mmap`` page-in mechanism, float32 slots with the
-prefetch reader, and keeping dense weights in their stored dtype.
+Dense matrices are widened to float32 once, or with ``stored_dense`` kept as stored and widened a block of rows
+at each use (``moerun.model.operands.StoredMatrix``).
+
+Not yet here (refused with one line where asked for): the ``mmap`` page-in mechanism and float32 slots with the
+prefetch reader.
 """
 
 from __future__ import annotations
@@ -46,6 +49,7 @@ from moerun.files.codec import Codec
 from moerun.files.config import ModelConfig
 from moerun.files.pagecache import drop_pages, drop_problem
 from moerun.files.store import file_stamp
+from moerun.model.operands import BLOCK_BYTES, StoredMatrix, WidenScratch
 
 # An open checkpoint's KV cache is sized for this many positions (or the model's maximum, when smaller):
 # a model's maximum (32k-256k positions) would reserve gigabytes nobody asked for.
@@ -128,10 +132,9 @@ def _elements(shape) -> int:
     return n
 
 
-def read_f32(ck: Checkpoint, name: str, rows: tuple[int, int] | None = None) -> np.ndarray:
-    """Tensor ``name`` (or its rows [r0, r1)) widened to float32, read with ``os.preadv`` from its shard: no page
-    of the file is mapped, so nothing read stays in the resident set.  F32 is read straight into the result;
-    BF16 and F16 through a buffer of their own size."""
+def read_stored(ck: Checkpoint, name: str, rows: tuple[int, int] | None = None, into: np.ndarray | None = None) -> np.ndarray:
+    """Tensor ``name`` (or its rows [r0, r1)) as stored (BF16 as uint16 bits), read with ``os.preadv`` from its
+    shard into ``into`` or a new array: no page of the file is mapped, so nothing read stays in the resident set."""
     loc = ck.tensors[name]
     t = loc.info
     shape = t.shape
@@ -141,14 +144,31 @@ def read_f32(ck: Checkpoint, name: str, rows: tuple[int, int] | None = None) -> 
         row_bytes = t.nbytes // shape[0]
         start += r0 * row_bytes
         shape = (r1 - r0, *shape[1:])
-    out = np.empty(shape, np.float32)
-    stored = out if t.dtype == "F32" else np.empty(shape, STORED_DTYPES[t.dtype])
+    stored = np.empty(shape, STORED_DTYPES[t.dtype]) if into is None else into
     try:
         preadv_exact(ck.fds[loc.file], [memoryview(stored).cast("B")], start)
     except (EOFError, OSError) as e:
         why = "the file ended" if isinstance(e, EOFError) else f"a read failed ({e.strerror or e})"
         raise PageInError(f"{ck.files[loc.file]}: {why} while reading tensor {name!r} (changed while open?)") from None
-    return out if stored is out else widen_into(stored, t.dtype, out)
+    return stored
+
+
+def read_f32(ck: Checkpoint, name: str, rows: tuple[int, int] | None = None) -> np.ndarray:
+    """Tensor ``name`` (or its rows [r0, r1)) widened to float32 (``read_stored``): F32 is read straight into the
+    result; BF16 and F16 through a buffer of their own size."""
+    t = ck.tensors[name].info
+    shape = t.shape if rows is None else (rows[1] - rows[0], *t.shape[1:])
+    out = np.empty(shape, np.float32)
+    if t.dtype == "F32":
+        return read_stored(ck, name, rows, into=out)
+    return widen_into(read_stored(ck, name, rows), t.dtype, out)
+
+
+def stored_finite(a: np.ndarray, dtype: str) -> bool:
+    """No NaN or infinity among stored values (BF16: an exponent of all ones is one)."""
+    if dtype == "BF16":
+        return not np.any((a & np.uint16(0x7F80)) == np.uint16(0x7F80))
+    return bool(np.all(np.isfinite(a)))
 
 
 class EmbeddingRows:
@@ -217,7 +237,7 @@ def pieces_of(spans: ExpertSpans) -> tuple[tuple[int, int, int, int], ...]:
 class CheckpointStore:
     """An opened, validated open checkpoint, serving the engine as a ``ModelStore`` does."""
 
-    def __init__(self, ck: Checkpoint, config: ModelConfig, widen: bool = False):
+    def __init__(self, ck: Checkpoint, config: ModelConfig, widen: bool = False, stored_dense: bool = False):
         self.checkpoint = ck
         self.model_dir = ck.directory
         self.config = config
@@ -245,16 +265,20 @@ class CheckpointStore:
         self.dense: dict[str, np.ndarray] = {}
         self._dense_nbytes = 0
         self.embed = None
+        self.stored_dense = stored_dense  # matrices kept as stored, widened a block at a time at each use
+        self.widen_scratch: WidenScratch | None = None
 
     # ---------------------------------------------------------------- opening
     @classmethod
-    def open(cls, model_dir: str | os.PathLike, context: int = DEFAULT_CONTEXT, widen: bool = False) -> CheckpointStore:
+    def open(cls, model_dir: str | os.PathLike, context: int = DEFAULT_CONTEXT, widen: bool = False,
+             stored_dense: bool = False) -> CheckpointStore:
         """``widen``: pool slots hold BF16 and F16 experts as float32, widened once when read (twice the memory of
-        a BF16 slot; no widening at each use)."""
+        a BF16 slot; no widening at each use).  ``stored_dense``: the dense matrices stay as stored
+        (``moerun.model.operands.StoredMatrix``; half the memory, widened at each use)."""
         ck = Checkpoint.open(model_dir)
         try:
             bos = leading_special_id(ck.tokenizer_path)
-            store = cls(ck, model_config(ck, bos, context), widen)
+            store = cls(ck, model_config(ck, bos, context), widen, stored_dense)
             store._load_dense()
         except BaseException:
             ck.close()
@@ -272,6 +296,25 @@ class CheckpointStore:
         parts = [self._f32(n) for n in tensor_names]
         return np.concatenate(parts, axis=0)
 
+    def _matrix(self, tensor_names: list[str]):
+        """The [in, out] operand of one matrix (or of several stacked along out): the transposed view of its float32
+        array, or with ``stored_dense`` a ``StoredMatrix`` of its stored bits, widened a block at each use."""
+        dtype = self.checkpoint.tensors[tensor_names[0]].info.dtype
+        if not self.stored_dense or dtype == "F32" or any(self.checkpoint.tensors[n].info.dtype != dtype for n in tensor_names):
+            return self._stacked(tensor_names).T
+        parts = []
+        for n in tensor_names:
+            a = read_stored(self.checkpoint, n)
+            if not stored_finite(a, dtype):
+                raise BadModelFile(f"{self.checkpoint.files[self.checkpoint.tensors[n].file]}: tensor {n!r} holds NaN or infinite values")
+            parts.append(a)
+        stored = parts[0] if len(parts) == 1 else np.concatenate(parts, axis=0)
+        if self.widen_scratch is None:  # a block of the largest matrix, no more than BLOCK_BYTES
+            c = self.config
+            largest = max(c.vocab_size * c.d_model, (c.q_dim + 2 * c.kv_dim) * c.d_model, max(c.d_shared, c.d_dense) * c.d_model)
+            self.widen_scratch = WidenScratch(min(BLOCK_BYTES, 4 * largest))
+        return StoredMatrix(stored, dtype, self.widen_scratch)
+
     def _load_dense(self) -> None:
         ck, c = self.checkpoint, self.config
         d = self.dense
@@ -279,7 +322,7 @@ class CheckpointStore:
         if c.tied_embeddings:  # the table is also the output matrix: held whole
             d["embed"] = self._f32(names.EMBED)
         else:
-            d["lm_head"] = self._f32(names.LM_HEAD).T
+            d["lm_head"] = self._matrix([names.LM_HEAD])
             d["embed"] = None
             self.embed = EmbeddingRows(ck)
         routed = set(c.routed_blocks())
@@ -288,8 +331,8 @@ class CheckpointStore:
             a = f"{src}.self_attn"
             d[dst + "attn_norm"] = self._f32(f"{src}.input_layernorm.weight")
             d[dst + "moe_norm"] = self._f32(f"{src}.post_attention_layernorm.weight")
-            d[dst + "attn.wqkv"] = self._stacked([f"{a}.{p}_proj.weight" for p in "qkv"]).T
-            d[dst + "attn.wo"] = self._f32(f"{a}.o_proj.weight").T
+            d[dst + "attn.wqkv"] = self._matrix([f"{a}.{p}_proj.weight" for p in "qkv"])
+            d[dst + "attn.wo"] = self._matrix([f"{a}.o_proj.weight"])
             if c.qkv_bias:
                 d[dst + "attn.bqkv"] = self._stacked([f"{a}.{p}_proj.bias" for p in "qkv"])
             if c.qk_norm != "none":
@@ -299,12 +342,14 @@ class CheckpointStore:
                 d[dst + "router"] = self._f32(names.router(b)).T
                 if c.d_shared:
                     for part, mine in zip(names.PARTS, ("w_gate", "w_up", "w_down")):
-                        d[dst + "shared." + mine] = self._f32(f"{src}.mlp.shared_expert.{part}_proj.weight").T
+                        d[dst + "shared." + mine] = self._matrix([f"{src}.mlp.shared_expert.{part}_proj.weight"])
                     d[dst + "shared_gate"] = self._f32(f"{src}.mlp.shared_expert_gate.weight").T
             else:
                 for part, mine in zip(names.PARTS, ("w_gate", "w_up", "w_down")):
-                    d[dst + "mlp." + mine] = self._f32(f"{src}.mlp.{part}_proj.weight").T
+                    d[dst + "mlp." + mine] = self._matrix([f"{src}.mlp.{part}_proj.weight"])
         self._dense_nbytes = sum(a.nbytes for a in d.values() if a is not None)
+        if self.widen_scratch is not None:
+            self._dense_nbytes += self.widen_scratch.nbytes
 
     def release_dense(self, names_) -> None:
         for name in names_:
@@ -403,17 +448,19 @@ class CheckpointStore:
             self.close()
 
 
-def open_store(model_dir: str | os.PathLike, max_context: int | None = None, widen: bool = False):
+def open_store(model_dir: str | os.PathLike, max_context: int | None = None, widen: bool = False,
+               stored_dense: bool = False):
     """The store of a model directory: a ``CheckpointStore`` for an open checkpoint, else a ``ModelStore``.
 
     ``max_context``: the positions the KV cache is sized for, at most the model's own context (default: the
     model's context; an open checkpoint's, at most DEFAULT_CONTEXT: its own is often 32k-256k positions).
-    ``widen``: an open checkpoint's BF16/F16 experts are held as float32 in their slots (``CheckpointStore.open``)."""
+    ``widen``: an open checkpoint's BF16/F16 experts are held as float32 in their slots; ``stored_dense``: its
+    dense matrices stay as stored (``CheckpointStore.open``)."""
     from moerun.files.ckpt_config import is_open_checkpoint
     from moerun.files.store import ModelStore
 
     if Path(model_dir).is_dir() and is_open_checkpoint(model_dir):
-        return CheckpointStore.open(model_dir, max_context or DEFAULT_CONTEXT, widen)
+        return CheckpointStore.open(model_dir, max_context or DEFAULT_CONTEXT, widen, stored_dense)
     store = ModelStore.open(model_dir)
     if max_context is not None and max_context < store.config.max_seq_len:
         store.config = dataclasses.replace(store.config, max_seq_len=max_context)

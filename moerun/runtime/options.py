@@ -32,6 +32,7 @@ from moerun.units import parse_rate, parse_size
 
 BASELINES = {"whole-layer": WholeLayerExperts, "no-reuse": NoReuseExperts}
 EXPERT_SLOTS = ("auto", "stored", "float32")
+DENSE_WEIGHTS = ("float32", "stored")
 
 
 def _whole(v) -> bool:
@@ -61,7 +62,8 @@ class EngineOptions:
     max_context: positions the KV cache (and a prompt) may hold: at most the model's context; None is
     the model's context, or for an open checkpoint at most moerun.files.ckpt_store.DEFAULT_CONTEXT.
     expert_slots: "auto", "stored" or "float32": how pool slots hold an open checkpoint's BF16/F16 experts
-    (``widen_experts``).
+    (``widen_experts``).  dense_weights: "float32" (widened once) or "stored": an open checkpoint's dense
+    matrices kept as stored, widened a block at a time at each use (half the memory; moerun.model.operands).
     """
 
     mem_cap: int | str | None = None
@@ -82,6 +84,7 @@ class EngineOptions:
     cold_reads: bool = False
     max_context: int | None = None
     expert_slots: str = "auto"
+    dense_weights: str = "float32"
 
     def __post_init__(self) -> None:
         self._check_types()
@@ -95,7 +98,7 @@ class EngineOptions:
 
     def _check_types(self) -> None:
         """The API refuses a float lookahead or string slots with BadOption, as the CLI does."""
-        for name in ("evict", "split", "mechanism", "expert_slots"):
+        for name in ("evict", "split", "mechanism", "expert_slots", "dense_weights"):
             v = getattr(self, name)
             if not isinstance(v, str):
                 raise BadOption(f"{name} must be text, got {v!r:.40}")
@@ -127,6 +130,8 @@ class EngineOptions:
             raise BadOption(f"--lookahead must be at least 1, got {self.lookahead}")
         if self.mechanism not in MECHANISMS:
             raise BadOption(f"unknown page-in mechanism {self.mechanism!r}; known: {', '.join(MECHANISMS)}")
+        if self.dense_weights not in DENSE_WEIGHTS:
+            raise BadOption(f"dense weights must be one of {', '.join(DENSE_WEIGHTS)}, got {self.dense_weights!r:.40}")
         if self.expert_slots not in EXPERT_SLOTS:
             raise BadOption(f"expert slots must be one of {', '.join(EXPERT_SLOTS)}, got {self.expert_slots!r:.40}")
         if self.expert_slots == "float32" and self.prefetch > 0 and not self.bare and self.baseline is None:
@@ -226,7 +231,8 @@ def widen_experts(o: EngineOptions) -> bool:
 def open_engine(model_dir, o: EngineOptions) -> Engine:
     """The engine of checked options: sizes the budget, allocates the pool, starts the reader if asked."""
     watch = MemWatch()
-    store = open_store(resolve_model(model_dir), o.max_context, widen=widen_experts(o))
+    store = open_store(resolve_model(model_dir), o.max_context, widen=widen_experts(o),
+                       stored_dense=o.dense_weights == "stored")
     reader = None
     try:
         c = store.config
@@ -236,6 +242,9 @@ def open_engine(model_dir, o: EngineOptions) -> Engine:
         store.cold_reads = o.cold_reads
         store.set_mechanism(o.mechanism)
         chosen_split = list(o.slots) if o.slots is not None else o.split
+        if o.dense_weights == "stored" and not c.arch:
+            raise BadOption("--dense-weights stored is for open checkpoints (their BF16 and F16 matrices); a moerun model's "
+                            "dense weights are float32")
         if o.expert_slots == "float32" and not getattr(store.codec, "widened", False) and store.codec.name != "F32":
             raise BadOption(f"float32 expert slots are for open checkpoints' BF16 and F16 experts; this model's are {store.codec.name}")
         budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, o.mem_cap, chosen_split, store.codec.scratch_bytes(),

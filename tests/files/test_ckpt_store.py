@@ -384,3 +384,48 @@ def test_float32_slots_are_refused_with_the_reader_and_for_experts_they_cannot_h
         moerun.load(f16, expert_slots="float32")
     with moerun.load("pebble", expert_slots="float32") as eng:  # already float32: nothing to widen
         assert eng.store.codec.name == "F32"
+
+
+# ---------------------------------------------------------------------------- dense matrices kept as stored
+
+
+@pytest.mark.parametrize("variant", ["qwen3_moe-bf16-fused-sharded", "qwen2_moe-bf16-sharded-v4", "olmoe-bf16-fused"])
+def test_dense_matrices_kept_as_stored_take_less_memory_and_match_the_reference(variant):
+    ref = _ref(variant)
+    with moerun.load(FIXTURES / variant) as f32, moerun.load(FIXTURES / variant, dense_weights="stored") as kept:
+        assert kept.store.dense_nbytes < f32.store.dense_nbytes
+        for i in range(3):
+            assert np.abs(kept.logits(ref[f"tokens_{i}"].tolist()) - ref[f"logits_{i}"]).max() < 1e-3
+        want = ref["greedy_0"].tolist()
+        gen = kept.generate(prompt_ids=ref["tokens_0"].tolist(), max_new=len(want), sampling=GREEDY)
+        assert gen.new_ids == want[: len(gen.new_ids)]
+
+
+def test_dense_matrices_kept_as_stored_stay_bit_identical_offloaded():
+    variant = "qwen2_moe-bf16-sharded-v4"
+    prompt = _ref(variant)["tokens_2"].tolist()
+    st = open_store(FIXTURES / variant, stored_dense=True)
+    cap = minimum_cap(st.config, st.dense_nbytes, st.expert_nbytes, "even", st.codec.scratch_bytes(), st.slot_nbytes)
+    st.close()
+    with moerun.load(FIXTURES / variant, dense_weights="stored") as eng:
+        want = eng.generate(prompt_ids=prompt, max_new=10, sampling=Sampling(seed=6), keep_logits=True)
+    with moerun.load(FIXTURES / variant, dense_weights="stored", mem_cap=cap, evict="markov") as eng:
+        got = eng.generate(prompt_ids=prompt, max_new=10, sampling=Sampling(seed=6), keep_logits=True)
+        assert sum(eng.pool.stats.misses) > 0
+    assert got.new_ids == want.new_ids and all(np.array_equal(a, b) for a, b in zip(got.logits, want.logits))
+
+
+def test_a_stored_matrix_widens_in_blocks_and_multiplies_as_its_float32_array():
+    from moerun.files.checkpoint import decode_bf16
+    from moerun.model.operands import StoredMatrix, WidenScratch
+
+    rng = np.random.default_rng(0)
+    bits = (rng.standard_normal((700, 48)).astype(np.float32).view(np.uint32) >> 16).astype(np.uint16)
+    x = rng.standard_normal((3, 48)).astype(np.float32)
+    m = StoredMatrix(bits, "BF16", WidenScratch(4 * 48 * 64))  # 64 rows a block: 11 blocks
+    assert m.rows == 64 and m.shape == (48, 700) and m.nbytes == bits.nbytes
+    want = x @ decode_bf16(bits).T
+    got = x @ m
+    assert got.shape == (3, 700) and np.abs(got - want).max() <= 1e-5 * np.abs(want).max()
+    with pytest.raises(BadOption, match="open checkpoints"):
+        moerun.load("pebble", dense_weights="stored")
