@@ -89,6 +89,46 @@ def child_moerun(d: str, tokens: int, settings: dict) -> dict:
         }
 
 
+BREAKDOWN = {  # function (file suffix, name) -> the share it is reported under
+    ("transformer.py", "logits"): "output matrix (lm_head)",
+    ("transformer.py", "attention"): "attention",
+    ("transformer.py", "expert"): "expert products",
+    ("checkpoint.py", "widen_into"): "widening stored experts",
+    ("~", "<built-in method posix.preadv>"): "reads (preadv)",
+    ("~", "<built-in method posix.posix_fadvise>"): "page drops (cold)",
+}
+
+
+def child_breakdown(d: str, tokens: int, settings: dict) -> dict:
+    """Where a decode step's time goes (cProfile's own time of the functions in BREAKDOWN; the rest is other)."""
+    import cProfile
+    import pstats
+
+    import numpy as np
+
+    import moerun
+
+    with moerun.load(d, **settings) as eng:
+        m = eng.model
+        eng.experts.begin_step(-1)
+        m.forward(np.array(PROMPT), 0, eng.cache, eng.experts)
+        prof = cProfile.Profile()
+        t0 = time.perf_counter()
+        prof.enable()
+        for i, tok in enumerate(forced_tokens(tokens)):
+            eng.experts.begin_step(i)
+            m.logits(m.forward(np.array([tok]), len(PROMPT) + i, eng.cache, eng.experts))
+        prof.disable()
+        wall = time.perf_counter() - t0
+    out: dict = {}
+    for (file, _line, name), (_cc, _nc, tt, _ct, _callers) in pstats.Stats(prof).stats.items():
+        key = next((v for (f, n), v in BREAKDOWN.items() if n == name and (f == "~" or file.endswith(f))), None)
+        if key is not None:
+            out[key] = out.get(key, 0.0) + tt
+    out["other"] = max(0.0, wall - sum(out.values()))
+    return {"step_ms": {k: 1e3 * v / tokens for k, v in out.items()}, "total_ms": 1e3 * wall / tokens}
+
+
 def child_reference(d: str, tokens: int) -> dict:
     import torch
     import transformers
@@ -198,7 +238,10 @@ def main() -> int:
     a = ap.parse_args()
     if a.child:
         settings = json.loads(a.settings)
-        doc = child_reference(a.dir, a.tokens) if a.child == "reference" else child_moerun(a.dir, a.tokens, settings)
+        if a.child == "breakdown":
+            doc = child_breakdown(a.dir, a.tokens, settings)
+        else:
+            doc = child_reference(a.dir, a.tokens) if a.child == "reference" else child_moerun(a.dir, a.tokens, settings)
         print(json.dumps(doc))
         return 0
 
@@ -273,6 +316,13 @@ def main() -> int:
             "serial_bound_tok_s": 1.0 / (read_s + compute_s), "share_of_serial_bound": got * (read_s + compute_s),
             "overlap_bound_tok_s": 1.0 / max(read_s, compute_s),
         })
+    _bench.log("where a decode step's time goes (profiled, one run each)")
+    doc["breakdown"] = {
+        "resident": run_child("breakdown", str(d), a.tokens, {}),
+        "capped cold, lru": run_child("breakdown", str(d), a.tokens, {"mem_cap": cap, "cold_reads": True}),
+        "capped cold, lru, float32 slots": run_child("breakdown", str(d), a.tokens,
+                                                     {"mem_cap": cap, "cold_reads": True, "expert_slots": "float32"}),
+    }
     doc["guess_precision"] = {
         "this checkpoint (random weights)": guess_precision(str(d), "The keepers check the mesh at dawn " * 8, 64),
         "pebble (trained)": guess_precision("pebble", "The keepers check the mesh at dawn, and the fog comes in " * 4, 200),
@@ -304,6 +354,13 @@ def main() -> int:
                  f"storage then resident compute {cc['serial_bound_tok_s']:.2f} tok/s (reached {100 * cc['share_of_serial_bound']:.0f}%), "
                  f"both overlapped {cc['overlap_bound_tok_s']:.2f} tok/s")
     print(line)
+    print("\nwhere a decode step's time goes (ms, profiled: the profiler adds a little to each call)")
+    parts = sorted({k for b in doc["breakdown"].values() for k in b["step_ms"]})
+    names = list(doc["breakdown"])
+    print(f"{'':<28}" + "".join(f"{n:>34}" for n in names))
+    for k in parts:
+        print(f"{k:<28}" + "".join(f"{doc['breakdown'][n]['step_ms'].get(k, 0.0):>34.1f}" for n in names))
+    print(f"{'total':<28}" + "".join(f"{doc['breakdown'][n]['total_ms']:>34.1f}" for n in names))
     gp = doc["guess_precision"]
     print("next-layer guess precision (top-k guesses): " + "; ".join(
         f"{k} {'-' if v is None else f'{100 * v:.1f}%'}" for k, v in gp.items()))
