@@ -183,21 +183,23 @@ class Markov(LRFU):
         layer, e = divmod(key, self.shared_experts) if self.shared_experts else (self.layer, key)
         return math.log(self._model(layer).p(e)) + self.w * LN2 * self.log_crf(key, now)
 
-    def victim(self, candidates, now):
-        if len(candidates) == 1:
-            return candidates[0]
-        # score() up to a term common to every candidate (w * lam * ln 2 * (now - origin)), inlined
+    def _key_score(self):
+        """The value ``victim`` minimises, as a function of the key: score() up to a term common to every key
+        (w * lam * ln 2 * (now - origin)); replay's fast path reads it through ``scores``."""
         count, w, log = self.count, self.w, math.log
         if self.shared_experts:  # a shared pool: each key scored by its layer's model
             E, model = self.shared_experts, self._model
-            return min(candidates, key=lambda k: log(model(k // E).p(k % E)) + w * log(count[k]))
+            return lambda k: log(model(k // E).p(k % E)) + w * log(count[k])
         p = self._model(self.layer).p
-        best, low = None, math.inf
-        for k in candidates:
-            s = log(p(k)) + w * log(count[k])
-            if s < low:
-                best, low = k, s
-        return best
+        return lambda k: log(p(k)) + w * log(count[k])
+
+    def scores(self, keys, now):
+        return list(map(self._key_score(), keys))
+
+    def victim(self, candidates, now):
+        if len(candidates) == 1:
+            return candidates[0]
+        return min(candidates, key=self._key_score())
 
     @classmethod
     def with_params(cls, **params) -> type[Markov]:

@@ -11,6 +11,10 @@ For the built-in policies (tests/test_replay.py checks equality on random and re
   later expert may be the least recently used one, and pinning keeps it.)
 - FIFO, LFU and the optimum: one tight loop each over plain lists, choosing
   the same victim as the policy object (ties included).
+- LRFU, markov and orbit (``Policy.history_scores``): the policy object runs once along the plan and
+  its scores are written down, then a lean loop per quota reads them (``moerun.sim.tape``).
+- A pool with a slot for every key the plan holds never evicts, whatever the policy: its misses are
+  the first use of each key.
 """
 
 from __future__ import annotations
@@ -19,21 +23,11 @@ from collections.abc import Callable, Sequence
 
 import numpy as np
 
-from moerun.policies import FIFO, LFU, LRU, Optimal, Policy
+from moerun.policies import FIFO, LFU, LRFU, LRU, Markov, Optimal, Orbit, Policy
+from moerun.sim import tape
 from moerun.sim.steps import LayerPlan, generic_misses
 
-
-def _dense(keys: np.ndarray) -> tuple[np.ndarray, int]:
-    """Expert ids renumbered 0..U-1 (keeping their order), and U; ids below 256 are kept as they are."""
-    if keys.size == 0:
-        return keys.astype(np.int64), 0
-    top = int(keys.max())
-    if top < 256:
-        return keys, top + 1
-    present = np.zeros(top + 1, bool)
-    present[keys] = True
-    remap = np.cumsum(present) - 1
-    return remap[keys], int(remap[-1]) + 1
+_dense = tape.dense
 
 
 def _lru_misses(plan: LayerPlan, capacities: Sequence[int]) -> dict[int, np.ndarray]:
@@ -191,18 +185,45 @@ def _fast_optimal(plan, capacities):
     return {c: _loop_misses(plan, c, "optimal") for c in capacities}
 
 
+def _by_tape(cls: type[Policy]) -> Callable[[LayerPlan, Sequence[int]], dict[int, np.ndarray]]:
+    def fast(plan, capacities):
+        t = tape.build(plan, cls)
+        return {c: tape.misses(t, c) for c in capacities}
+
+    fast.__name__ = f"_fast_{cls.name}"
+    return fast
+
+
 # Fast paths by exact class: a subclass may change behaviour, so it takes the generic path.
 FAST_PATHS: dict[type, Callable[[LayerPlan, Sequence[int]], dict[int, np.ndarray]]] = {
     LRU: _lru_misses,
     FIFO: _fast_fifo,
     LFU: _fast_lfu,
     Optimal: _fast_optimal,
+    LRFU: _by_tape(LRFU),
+    Markov: _by_tape(Markov),
+    Orbit: _by_tape(Orbit),
 }
 
 
+def first_uses(plan: LayerPlan) -> np.ndarray:
+    """Miss flag per access of a pool that never evicts: the first access of each key."""
+    first = np.zeros(plan.n, bool)
+    if plan.n:
+        first[np.unique(plan.keys, return_index=True)[1]] = True
+    return first
+
+
 def layer_misses(plan: LayerPlan, policy_cls: type[Policy], capacities: Sequence[int], fast: bool = True) -> dict[int, np.ndarray]:
-    """Miss flag per access of one layer for each quota, by the fast path when there is one."""
+    """Miss flag per access of one pool for each quota, by the fast path when there is one."""
     f = FAST_PATHS.get(policy_cls) if fast else None
-    if f is not None:
-        return f(plan, capacities)
-    return {c: generic_misses(plan, policy_cls, c) for c in capacities}
+    if f is None:
+        return {c: generic_misses(plan, policy_cls, c) for c in capacities}
+    n_keys = int(np.unique(plan.keys).size) if plan.n else 0
+    roomy = [c for c in capacities if c >= n_keys]  # never evicts: any policy's misses are the first uses
+    out = f(plan, [c for c in capacities if c < n_keys]) if len(roomy) < len(capacities) else {}
+    if roomy:
+        first = first_uses(plan)
+        first.flags.writeable = False  # one array for every such quota
+        out.update({c: first for c in roomy})
+    return {c: out[c] for c in capacities}
