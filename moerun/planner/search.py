@@ -11,6 +11,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+import numpy as np
+
 from moerun import policies
 from moerun.errors import BadInput, BadTrace, ImpossibleBudget
 from moerun.files.trace import Trace
@@ -48,27 +50,39 @@ def hit_curves(trace: Trace, policy: str, max_slots: int) -> list[list[int]]:
 def best_split(curves: list[list[int]], total: int, low: int, high: int) -> list[int]:
     """Slots per layer (each in low..high, summing to at most ``total``) with the fewest misses.
 
-    Exact, by dynamic programming over the layers' miss curves; where every
-    curve is convex this is what greedily giving each next slot to the layer
-    that gains most would find.
+    Exact, by dynamic programming over the layers' miss curves, one array operation per slot count and
+    layer; where every curve is convex this is what greedily giving each next slot to the layer that
+    gains most would find.  Ties go as they always did: within a layer to the most slots for it, then
+    overall to the fewest slots in all (tests/planner/test_plan.py checks it against the plain loop).
     """
     L = len(curves)
     if total < L * low:
         raise ImpossibleBudget(f"{total} slots cannot give each of {L} layers {low}")
-    INF = float("inf")
-    best = {0: (0, [])}  # slots used -> (misses, split)
+    if high < low:
+        raise ImpossibleBudget(f"no slot count from {low} to {high}")
+    none = np.iinfo(np.int64).max // 4  # no split uses exactly this many slots
+    best = np.full(total + 1, none, np.int64)  # slots used -> fewest misses
+    best[0] = 0
+    picks = []  # per layer: slots used -> the slot count that layer takes
+    counts = np.arange(high, low - 1, -1)  # most slots first: np.argmin keeps the first of equal values
     for layer in range(L):
-        nxt: dict[int, tuple] = {}
-        for used, (m, split) in best.items():
-            for s in range(low, high + 1):
-                u = used + s
-                if u > total:
-                    break
-                cand = (m + curves[layer][s - 1], split + [s])
-                if cand[0] < nxt.get(u, (INF,))[0]:
-                    nxt[u] = cand
-        best = nxt
-    return min(best.values(), key=lambda v: (v[0], sum(v[1])))[1]
+        c = np.asarray(curves[layer], np.int64)
+        cand = np.full((counts.size, total + 1), none, np.int64)
+        for j, s_ in enumerate(counts.tolist()):
+            if s_ <= total:
+                prev = best[: total + 1 - s_]
+                row = cand[j, s_:]
+                np.add(prev, c[s_ - 1], out=row, where=prev < none)
+        j = np.argmin(cand, axis=0)
+        best = cand[j, np.arange(total + 1)]
+        picks.append(counts[j])
+    u = int(np.argmin(best))  # the fewest misses, then the fewest slots
+    split = []
+    for layer in range(L - 1, -1, -1):
+        s_ = int(picks[layer][u])
+        split.append(s_)
+        u -= s_
+    return split[::-1]
 
 
 def even_split(total: int, L: int, high: int) -> list[int]:

@@ -183,23 +183,28 @@ class Markov(LRFU):
         layer, e = divmod(key, self.shared_experts) if self.shared_experts else (self.layer, key)
         return math.log(self._model(layer).p(e)) + self.w * LN2 * self.log_crf(key, now)
 
-    def _key_score(self):
-        """The value ``victim`` minimises, as a function of the key: score() up to a term common to every key
-        (w * lam * ln 2 * (now - origin)); replay's fast path reads it through ``scores``."""
-        count, w, log = self.count, self.w, math.log
-        if self.shared_experts:  # a shared pool: each key scored by its layer's model
-            E, model = self.shared_experts, self._model
-            return lambda k: log(model(k // E).p(k % E)) + w * log(count[k])
-        p = self._model(self.layer).p
-        return lambda k: log(p(k)) + w * log(count[k])
-
     def scores(self, keys, now):
-        return list(map(self._key_score(), keys))
+        """The values ``victim`` minimises: score() up to a term common to every key
+        (w * lam * ln 2 * (now - origin)); replay's fast path reads them too (``history_scores``)."""
+        count, w, log = self.count, self.w, math.log
+        E = self.shared_experts
+        if not E:
+            p = self._model(self.layer).p
+            return [log(p(k)) + w * log(count[k]) for k in keys]
+        out = []
+        last = p = None
+        for k in keys:  # a shared pool: each key scored by its layer's model
+            layer, e = divmod(k, E)
+            if layer != last:
+                p, last = self._model(layer).p, layer
+            out.append(log(p(e)) + w * log(count[k]))
+        return out
 
     def victim(self, candidates, now):
         if len(candidates) == 1:
             return candidates[0]
-        return min(candidates, key=self._key_score())
+        s = self.scores(candidates, now)
+        return candidates[s.index(min(s))]  # the first of the smallest, as min() over the candidates
 
     @classmethod
     def with_params(cls, **params) -> type[Markov]:

@@ -12,7 +12,9 @@ For the built-in policies (tests/test_replay.py checks equality on random and re
 - FIFO, LFU and the optimum: one tight loop each over plain lists, choosing
   the same victim as the policy object (ties included).
 - LRFU, markov and orbit (``Policy.history_scores``): the policy object runs once along the plan and
-  its scores are written down, then a lean loop per quota reads them (``moerun.sim.tape``).
+  its scores are written down; one pass over them serves every quota no smaller than a step, as
+  LRU's ranks do (the rule keeps a smaller pool inside a larger one), unless two candidates tie;
+  otherwise a lean loop per quota reads them (``moerun.sim.tape``).
 - A pool with a slot for every key the plan holds never evicts, whatever the policy: its misses are
   the first use of each key.
 """
@@ -188,7 +190,16 @@ def _fast_optimal(plan, capacities):
 def _by_tape(cls: type[Policy]) -> Callable[[LayerPlan, Sequence[int]], dict[int, np.ndarray]]:
     def fast(plan, capacities):
         t = tape.build(plan, cls)
-        return {c: tape.misses(t, c) for c in capacities}
+        out = {}
+        big = [c for c in capacities if c >= int(plan.sizes.max(initial=1))]  # no step is split
+        if len(big) > 1:
+            d = tape.depths(t)
+            if d is not None:  # None: a tie among candidates; each quota is replayed on its own
+                out = {c: d >= c for c in big}
+        for c in capacities:
+            if c not in out:
+                out[c] = tape.misses(t, c)
+        return out
 
     fast.__name__ = f"_fast_{cls.name}"
     return fast

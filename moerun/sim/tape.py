@@ -160,3 +160,74 @@ def misses(tape: Tape, capacity: int) -> np.ndarray:
                 for d, v in zip(*again[i]):
                     score[d] = v
     return np.frombuffer(bytes(miss), np.uint8).astype(bool)
+
+
+def depths(tape: Tape) -> np.ndarray | None:
+    """Every pool size at once, for pool sizes no smaller than the largest step: per access, the
+    smallest pool in which it hits, less one (``n_keys`` for a first use), so it misses in a pool of C
+    slots iff its depth >= C.  None when two candidates tie on their score (the order ties are
+    broken in differs between pool sizes): then ``misses`` replays each size on its own.
+
+    A rule that evicts the smallest score, with scores that do not depend on the pool, keeps
+    every smaller pool's residents inside every larger one's (the rule's pinned keys, the step's,
+    count as the largest score).  So one list orders the keys such that the first C of it are a pool
+    of C slots: an access at position d hits for C > d; for the pools it misses in, the victim of a
+    pool of j + 1 slots is the smaller of the victim of j slots and the key at position j, so one
+    pass down to position d moves every pool's victim (the key that ends at d).
+    """
+    kl, st, routes, after, rescored = tape.keys, tape.starts, tape.routes, tape.after, tape.rescored
+    U = tape.n_keys
+    depth = [U] * len(kl)
+    inf = float("inf")
+    score = [0.0] * U
+    eff = [0.0] * U  # the score, or inf while the key is pinned (a key of the current step)
+    stack: list[int] = []
+    where = bytearray(U)  # in the list
+    for s in range(len(st) - 1):
+        a, b = st[s], st[s + 1]
+        r = routes[s]
+        if r is not None:
+            if type(r) is list:
+                score[:] = r
+                eff[:] = r
+            else:
+                for d, v in zip(*r):
+                    score[d] = v
+                    eff[d] = v
+        step = kl[a:b]
+        for x in step:
+            eff[x] = inf
+        again = rescored.get(s)
+        for i in range(a, b):
+            x = kl[i]
+            if where[x]:
+                d = stack.index(x)
+                depth[i] = d
+                end = d
+            else:
+                d = end = len(stack)
+                where[x] = 1
+                stack.append(x)
+            if d:
+                carry = stack[0]
+                stack[0] = x
+                c = eff[carry]
+                for j in range(1, end):
+                    y = stack[j]
+                    e = eff[y]
+                    if e < c:
+                        stack[j] = carry
+                        carry, c = y, e
+                    elif e == c and c != inf:
+                        return None
+                stack[end] = carry
+            score[x] = after[i]
+            if again is not None and i in again:
+                for d, v in zip(*again[i]):
+                    score[d] = v
+                    eff[d] = v
+                for y in step:
+                    eff[y] = inf
+        for x in step:
+            eff[x] = score[x]
+    return np.array(depth, np.int64)

@@ -46,6 +46,35 @@ def test_the_uneven_split_never_has_more_misses_than_the_even_one(seed, total):
     assert misses(uneven) <= misses(even)
 
 
+def _best_split_by_loops(curves, total, low, high):
+    """The search as it was written first, one dictionary of states per layer: the reference."""
+    INF = float("inf")
+    best = {0: (0, [])}
+    for layer in range(len(curves)):
+        nxt = {}
+        for used, (m, split) in best.items():
+            for s in range(low, high + 1):
+                u = used + s
+                if u > total:
+                    break
+                cand = (m + curves[layer][s - 1], split + [s])
+                if cand[0] < nxt.get(u, (INF,))[0]:
+                    nxt[u] = cand
+        best = nxt
+    return min(best.values(), key=lambda v: (v[0], sum(v[1])))[1]
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.integers(0, 2**31 - 1), st.integers(1, 6), st.integers(1, 9), st.integers(1, 4), st.integers(0, 3))
+def test_the_array_split_search_gives_the_loop_searchs_split_ties_included(seed, L, E, low, spare):
+    rng = np.random.default_rng(seed)
+    low = min(low, E)
+    # few distinct values, so that ties are common; not always falling, as other policies than lru may give
+    curves = rng.integers(0, 4, (L, E)).tolist() if seed % 2 else np.sort(rng.integers(0, 50, (L, E)))[:, ::-1].tolist()
+    total = L * low + spare * L
+    assert best_split(curves, total, low, E) == _best_split_by_loops(curves, total, low, E)
+
+
 def test_best_split_matches_exhaustive_search_on_a_small_case():
     curves = [[9, 5, 4, 4], [9, 8, 2, 1], [9, 6, 5, 0]]
     import itertools
