@@ -9,7 +9,9 @@ cap, decode speed against cap, and the smallest cap that reaches a target speed.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
+from typing import NamedTuple
 
 import numpy as np
 
@@ -25,7 +27,7 @@ from moerun.planner.calibration import (  # noqa: F401  (the planner's public na
 )
 from moerun.planner.timeline import Costs, Prediction, predict, step_misses  # noqa: F401
 from moerun.sim.counts import replay_counts
-from moerun.sim.steps import prefill_tokens
+from moerun.sim.steps import layer_plans, prefill_tokens
 
 PREFETCH_CANDIDATES = [(0, 1), (1, 1), (2, 1), (2, 2), (3, 1)]
 PREFETCH_POLICIES = 2  # prefetch is simulated for the policies that do best without it
@@ -110,6 +112,14 @@ def minimum_cap(fixed: int, slot: int, layers: int, top_k: int, shared: bool = F
     return fixed + (top_k if shared else layers * top_k) * slot
 
 
+class _Setting(NamedTuple):
+    """What ``simplicity`` reads of a setting not predicted yet."""
+
+    policy: str
+    prefetch: int
+    lookahead: int
+
+
 @dataclass
 class Space:
     """What the planner searches over for one model or shape."""
@@ -124,8 +134,10 @@ class Space:
     policies: list
     prefetches: list  # (guesses, lookahead) pairs
     shared: bool = False  # also consider one pool shared by all layers
+    prune: bool = True  # simulate only the settings that can win (``candidates``)
 
     def __post_init__(self):
+        self._ceilings: dict = {}
         P = prefill_tokens(self.trace)
         if self.trace.n_tokens - P > REPLAY_TOKENS:
             t = self.trace
@@ -134,13 +146,17 @@ class Space:
                                None if t.guesses is None else t.guesses[:cut], dict(t.meta), {},
                                None if t.probs is None else t.probs[:cut])
         self._steps: dict = {}
-        caps = range(1, self.experts + 1)
-        for n in self.policies:  # one replay per policy and layer serves every quota
-            for layer in range(self.layers):
-                for cap, v in step_misses(self.trace, n, layer, caps).items():
+        # no setting gives a layer fewer slots than top_k (a pool per layer needs them), so those are replayed:
+        # one replay per policy and layer serves every quota
+        caps = range(min(self.top_k, self.experts), self.experts + 1)
+        plans = layer_plans(self.trace)
+        for n in self.policies:
+            for layer, plan in enumerate(plans):
+                for cap, v in step_misses(self.trace, n, layer, caps, plan).items():
                     self._steps[(n, layer, cap)] = v
-        self.curves = {n: [[int(self._steps[(n, layer, c)][1].sum()) for c in caps] for layer in range(self.layers)]
-                       for n in self.policies}
+        # misses per layer at 1..experts slots (index s-1); below top_k, never read (0)
+        self.curves = {n: [[int(self._steps[(n, layer, c)][1].sum()) if c in caps else 0 for c in range(1, self.experts + 1)]
+                           for layer in range(self.layers)] for n in self.policies}
 
     def _predict(self, slots, policy, pf, la, shared=False) -> Prediction:
         return predict(self.trace, slots, policy, pf, la, self.costs, shared, SEARCH_TOKENS,
@@ -162,9 +178,47 @@ class Space:
     def slots_for(self, cap: int) -> int:
         return min((cap - self.fixed) // self.slot, self.layers * self.experts)
 
+    def ceiling(self, policy: str, prefetch: int) -> float:
+        """The most tok/s a simulated setting of ``policy`` (a shared pool, or prefetch) can predict, from counts
+        alone: the simulated engine's compute over the simulated tokens (every layer's compute outside its experts
+        with the pool's and the policy's bookkeeping, each chosen expert, the head), plus, for each expert first
+        chosen after the prefill, the least its arrival costs: a miss (the compute thread's copy over an emulated
+        link, its read otherwise) or, with prefetch, a guess read (``place``) if that is less.  Every other term
+        of the simulation (stalls, guesses, the reader's lateness) only adds time."""
+        got = self._ceilings.get((policy, prefetch > 0))
+        if got is None:
+            c, t = self.costs, self.trace
+            P = prefill_tokens(t)
+            T = min(t.n_tokens, P + SEARCH_TOKENS)
+            n = T - P
+            per_access = c.pool + c.policy.get(policy, 0.0)
+            chosen = t.experts[P:T] >= 0
+            compute = n * (c.head + sum(a + per_access * t.top_k for a in c.attn)) + int(chosen.sum()) * c.expert
+            keys = lambda ex: set((np.nonzero(ex >= 0)[1] * max(t.n_experts, 1) + ex[ex >= 0]).tolist())  # noqa: E731
+            cold = len(keys(t.experts[P:T]) - keys(t.experts[:P]))  # (layer, expert) pairs no prefill loaded
+            arrive = c.copy if c.emulated else c.page
+            if prefetch:
+                arrive = min(arrive, c.place)
+            time = compute + cold * max(arrive, 0.0)
+            got = self._ceilings[(policy, prefetch > 0)] = n / time * (1 + 1e-9) if time > 0 and n else float("inf")
+        return got
+
     def candidates(self, total: int, policy_names=None, prefetches=None) -> list[tuple[str, Prediction]]:
-        """Every setting for ``total`` slots: even and uneven splits (and a shared pool), each policy and prefetch."""
+        """Every setting for ``total`` slots: even and uneven splits (and a shared pool), each policy and prefetch.
+
+        Pruned (``prune``): the settings that are simulated step by step (a shared pool, prefetch) are ranked by
+        their ``ceiling`` first, and one is simulated only if it can win: if its ceiling is above every simpler
+        setting's predicted speed.  Another is left out; it could not have been recommended (a simpler setting at
+        least as fast is within TIE of the best whenever it would be), nor be the best.  So the recommendation is
+        the unpruned search's (tests/planner/test_plan.py checks it), and the list holds the settings simulated."""
         out = []
+
+        def can_win(label: str, policy: str, pf: int, la: int) -> bool:
+            if not self.prune:
+                return True
+            rank = simplicity(label, _Setting(policy, pf, la if pf else 0))
+            beaten = max((pr.tok_s for lab, pr in out if simplicity(lab, pr) < rank), default=None)
+            return beaten is None or self.ceiling(policy, pf) > beaten
         L, E, k = self.layers, self.experts, self.top_k
         names = policy_names or self.policies
         per_layer = total >= L * k  # below, only a shared pool fits
@@ -179,16 +233,18 @@ class Space:
                 for pf, la in prefetches or self.prefetches:
                     if pf:
                         for label, sl in splits[n].items():
-                            out.append((label, self._predict(sl, n, pf, la)))
+                            if can_win(label, n, pf, la):
+                                out.append((label, self._predict(sl, n, pf, la)))
         if self.shared:  # the best per-layer policies and those made for a shared pool (every policy when per-layer
             # pools do not fit), then prefetch for the best two there
             pick = ranked if not per_layer else ranked[:PREFETCH_POLICIES] + [
                 n for n in ranked[PREFETCH_POLICIES:] if getattr(policies.get(n), "for_shared_pool", False)]
-            plain = {n: self._predict([total], n, 0, 1, shared=True) for n in pick}
+            ranks = len(pick) > PREFETCH_POLICIES  # their speeds choose the policies tried with prefetch: all simulated
+            plain = {n: self._predict([total], n, 0, 1, shared=True) for n in pick if ranks or can_win("shared", n, 0, 1)}
             out += [("shared", pr) for pr in plain.values()]
-            for n in sorted(pick, key=lambda n: -plain[n].tok_s)[:PREFETCH_POLICIES]:
+            for n in sorted(pick, key=lambda n: -plain[n].tok_s if n in plain else math.inf)[:PREFETCH_POLICIES]:
                 for pf, la in prefetches or self.prefetches:
-                    if pf:
+                    if pf and can_win("shared", n, pf, la):
                         out.append(("shared", self._predict([total], n, pf, la, shared=True)))
         return out
 

@@ -10,7 +10,8 @@ For the built-in policies (tests/test_replay.py checks equality on random and re
   once.  (Pinning does change LRU's choices compared with plain LRU: a step's
   later expert may be the least recently used one, and pinning keeps it.)
 - FIFO, LFU and the optimum: one tight loop each over plain lists, choosing
-  the same victim as the policy object (ties included).
+  the same victim as the policy object (ties included); FIFO's is the first
+  resident that is not pinned.
 - LRFU, markov and orbit (``Policy.history_scores``): the policy object runs once along the plan and
   its scores are written down; one pass over them serves every quota no smaller than a step, as
   LRU's ranks do (the rule keeps a smaller pool inside a larger one), unless two candidates tie;
@@ -175,12 +176,78 @@ def _loop_misses(plan: LayerPlan, capacity: int, mode: str) -> np.ndarray:
     return np.frombuffer(bytes(miss), np.uint8).astype(bool)
 
 
+def _fifo_loop(plan: LayerPlan, capacity: int) -> np.ndarray:
+    """FIFO: the residents kept in the order they came in, which is the order of their load times, so the
+    policy's victim (the smallest load time among the candidates) is the first candidate in that order."""
+    plan = plan.split(capacity)
+    keys, U = _dense(plan.keys)
+    kl = keys.tolist()
+    st = plan.starts.tolist()
+    miss = bytearray(len(kl))
+    resident = bytearray(U)
+    res: list[int] = []
+    C = capacity
+    for s in range(len(st) - 1):
+        a, b = st[s], st[s + 1]
+        for i in range(a, b):
+            x = kl[i]
+            if resident[x]:
+                continue
+            miss[i] = 1
+            if len(res) >= C:
+                step = kl[a:b]  # pinned: never candidates
+                j = 0
+                while res[j] in step:
+                    j += 1
+                resident[res.pop(j)] = 0
+            res.append(x)
+            resident[x] = 1
+    return np.frombuffer(bytes(miss), np.uint8).astype(bool)
+
+
 def _fast_fifo(plan, capacities):
-    return {c: _loop_misses(plan, c, "fifo") for c in capacities}
+    return {c: _fifo_loop(plan, c) for c in capacities}
+
+
+def _lfu_loop(plan: LayerPlan, capacity: int) -> np.ndarray:
+    """LFU alone (``_loop_misses``'s "lfu" without the other modes' tests): score count * (n + 2) + last use."""
+    plan = plan.split(capacity)
+    keys, U = _dense(plan.keys)
+    kl = keys.tolist()
+    st = plan.starts.tolist()
+    n = len(kl)
+    miss = bytearray(n)
+    resident = bytearray(U)
+    score = [0] * U
+    res: list[int] = []
+    C = capacity
+    big = n + 2
+    get = score.__getitem__
+    for s in range(len(st) - 1):
+        a, b = st[s], st[s + 1]
+        cand = None
+        for i in range(a, b):
+            x = kl[i]
+            if resident[x]:
+                score[x] += big - (score[x] % big) + i  # one more use, last use now
+                continue
+            miss[i] = 1
+            if len(res) >= C:
+                if cand is None:
+                    step = kl[a:b]  # pinned: never candidates
+                    cand = [y for y in res if y not in step]
+                v = min(cand, key=get)
+                cand.remove(v)
+                res.remove(v)
+                resident[v] = 0
+            res.append(x)
+            resident[x] = 1
+            score[x] = big + i
+    return np.frombuffer(bytes(miss), np.uint8).astype(bool)
 
 
 def _fast_lfu(plan, capacities):
-    return {c: _loop_misses(plan, c, "lfu") for c in capacities}
+    return {c: _lfu_loop(plan, c) for c in capacities}
 
 
 def _fast_optimal(plan, capacities):
@@ -198,7 +265,7 @@ def _by_tape(cls: type[Policy]) -> Callable[[LayerPlan, Sequence[int]], dict[int
                 out = {c: d >= c for c in big}
         for c in capacities:
             if c not in out:
-                out[c] = tape.misses(t, c)
+                out[c] = tape.misses(t, c) if t.alone_exact or c in big else generic_misses(plan, cls, c)
         return out
 
     fast.__name__ = f"_fast_{cls.name}"

@@ -8,7 +8,7 @@ evicted), sees every score the reference path's policy would see at any pool siz
 them down (a *tape*) where they change:
 
 - after a step routes: the scores of its layer's keys (every key, with a pool per layer);
-- after each access: the accessed key's score;
+- after each step: its keys' scores;
 - after an access that moved ``Policy.epoch``: every key's score.
 
 ``misses`` then replays one pool size from the tape: the pool's pinning and its order of residents
@@ -50,6 +50,7 @@ class Tape:
     routes: list  # per step: None, a full score list (every key), or (dense keys, scores) after it routes
     after: list  # per access: the accessed key's score after it
     rescored: dict  # step -> {access index: (dense keys, scores)} where the epoch moved
+    alone_exact: bool = True  # False: ``misses`` is not exact for a pool smaller than some step (see ``build``)
 
 
 def build(plan: LayerPlan, cls: type[Policy]) -> Tape:
@@ -72,6 +73,7 @@ def build(plan: LayerPlan, cls: type[Policy]) -> Tape:
     routes: list = [None] * n_steps
     after = [0.0] * len(keys)
     rescored: dict = {}
+    alone_exact = True
     scores = pol.scores
     epoch = pol.epoch
     now = 0
@@ -112,8 +114,12 @@ def build(plan: LayerPlan, cls: type[Policy]) -> Tape:
             if pol.epoch != epoch:
                 epoch = pol.epoch
                 rescored.setdefault(s, {})[i] = (list(every[1]), scores(every[0], now))
-            after[i] = scores((k,), now)[0]
-    return Tape(dk, starts, U, routes, after, rescored)
+                if b - a > 1:
+                    alone_exact = False
+        # the step's keys scored once, after it: the same as after each one's access unless the epoch moved
+        # in between, which only a pool too small for the step (each key pinned alone) can see
+        after[a:b] = scores(keys[a:b], now)
+    return Tape(dk, starts, U, routes, after, rescored, alone_exact)
 
 
 def misses(tape: Tape, capacity: int) -> np.ndarray:
