@@ -26,8 +26,10 @@ from moerun.planner.calibration import (  # noqa: F401  (the planner's public na
     page_seconds,
 )
 from moerun.planner.timeline import Costs, Prediction, predict, step_misses  # noqa: F401
+from moerun.runtime.link import CHUNK
 from moerun.sim.counts import replay_counts
-from moerun.sim.steps import layer_plans, prefill_tokens
+from moerun.sim.fast import layer_misses
+from moerun.sim.steps import layer_plans, prefill_tokens, shared_plan
 
 PREFETCH_CANDIDATES = [(0, 1), (1, 1), (2, 1), (2, 2), (3, 1)]
 PREFETCH_POLICIES = 2  # prefetch is simulated for the policies that do best without it
@@ -138,6 +140,8 @@ class Space:
 
     def __post_init__(self):
         self._ceilings: dict = {}
+        self._shared_ceilings: dict = {}
+        self._shared_plan = None
         P = prefill_tokens(self.trace)
         if self.trace.n_tokens - P > REPLAY_TOKENS:
             t = self.trace
@@ -203,6 +207,41 @@ class Space:
             got = self._ceilings[(policy, prefetch > 0)] = n / time * (1 + 1e-9) if time > 0 and n else float("inf")
         return got
 
+    def shared_ceiling(self, policy: str, total: int) -> float:
+        """The most tok/s a pool of ``total`` slots shared by all layers can predict with prefetch off, from the
+        replay's misses of each layer step (the simulation's decision core without guesses: the same misses).
+        With no guesses each step's misses are booked when it routes on an idle link; the step takes at least
+        its compute with the compute thread's copy of each miss, and at least until its last miss has arrived
+        (their transfers one after the other) and been computed; with real reads, its compute and each read.
+        Rounding of the link's whole nanoseconds is allowed for."""
+        got = self._shared_ceilings.get((policy, total))
+        if got is None:
+            c, t = self.costs, self.trace
+            P = prefill_tokens(t)
+            T = min(t.n_tokens, P + SEARCH_TOKENS)
+            n = T - P
+            L = t.n_layers
+            if self._shared_plan is None:
+                self._shared_plan = shared_plan(t)
+            plan = self._shared_plan
+            C = max(total, 1)
+            miss = layer_misses(plan, policies.get(policy), [C])[C]
+            cs = np.concatenate([[0], np.cumsum(miss)])
+            m = (cs[plan.starts[1:]] - cs[plan.starts[:-1]])[plan.counted][: n * L].astype(np.float64)
+            k = plan.sizes[plan.counted][: n * L].astype(np.float64)
+            per_access = c.pool + c.policy.get(policy, 0.0)
+            attn = np.tile(np.array([a + per_access * t.top_k for a in c.attn]), n)
+            if c.emulated:
+                ns = 1e-9
+                page = c.page * (1 - 1e-6) - (c.page / ns / CHUNK + 2) * ns  # whole ns per chunk, dropped
+                arrive = np.where(m > 0, m * page - ns + c.expert, 0.0)
+                step = attn + np.maximum(k * c.expert + m * c.copy, arrive)
+            else:
+                step = attn + k * c.expert + m * c.page
+            time = float(step.sum()) + n * c.head
+            got = self._shared_ceilings[(policy, total)] = n / time * (1 + 1e-9) if time > 0 and n else math.inf
+        return got
+
     def candidates(self, total: int, policy_names=None, prefetches=None) -> list[tuple[str, Prediction]]:
         """Every setting for ``total`` slots: even and uneven splits (and a shared pool), each policy and prefetch.
 
@@ -213,12 +252,12 @@ class Space:
         the unpruned search's (tests/planner/test_plan.py checks it), and the list holds the settings simulated."""
         out = []
 
-        def can_win(label: str, policy: str, pf: int, la: int) -> bool:
+        def can_win(label: str, policy: str, pf: int, la: int, ceiling: float | None = None) -> bool:
             if not self.prune:
                 return True
             rank = simplicity(label, _Setting(policy, pf, la if pf else 0))
             beaten = max((pr.tok_s for lab, pr in out if simplicity(lab, pr) < rank), default=None)
-            return beaten is None or self.ceiling(policy, pf) > beaten
+            return beaten is None or (self.ceiling(policy, pf) if ceiling is None else ceiling) > beaten
         L, E, k = self.layers, self.experts, self.top_k
         names = policy_names or self.policies
         per_layer = total >= L * k  # below, only a shared pool fits
@@ -239,8 +278,19 @@ class Space:
             # pools do not fit), then prefetch for the best two there
             pick = ranked if not per_layer else ranked[:PREFETCH_POLICIES] + [
                 n for n in ranked[PREFETCH_POLICIES:] if getattr(policies.get(n), "for_shared_pool", False)]
-            ranks = len(pick) > PREFETCH_POLICIES  # their speeds choose the policies tried with prefetch: all simulated
-            plain = {n: self._predict([total], n, 0, 1, shared=True) for n in pick if ranks or can_win("shared", n, 0, 1)}
+            # each policy's plain shared pool is simulated if it can win, or if it may be among the best two (their
+            # speeds choose the policies tried with prefetch): not when two simulated already beat its ceiling
+            plain = {}
+            ranks = len(pick) > PREFETCH_POLICIES
+            if self.prune:
+                top = {n: self.shared_ceiling(n, total) for n in pick}
+                for n in sorted(pick, key=lambda n: -top[n]):
+                    ahead = sum(pr.tok_s > top[n] for pr in plain.values())
+                    if (ranks and ahead < PREFETCH_POLICIES) or can_win("shared", n, 0, 1, top[n]):
+                        plain[n] = self._predict([total], n, 0, 1, shared=True)
+                plain = {n: plain[n] for n in pick if n in plain}  # in the order the unpruned search lists them
+            else:
+                plain = {n: self._predict([total], n, 0, 1, shared=True) for n in pick}
             out += [("shared", pr) for pr in plain.values()]
             for n in sorted(pick, key=lambda n: -plain[n].tok_s if n in plain else math.inf)[:PREFETCH_POLICIES]:
                 for pf, la in prefetches or self.prefetches:

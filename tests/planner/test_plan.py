@@ -449,20 +449,24 @@ def test_the_pruned_search_recommends_what_the_unpruned_one_does(seed):
         assert left_out > 0  # than lru's, and where every expert stays resident its settings cannot win
 
 
-@settings(max_examples=25, deadline=None)
+@settings(max_examples=40, deadline=None)
 @given(st.integers(0, 10_000), st.sampled_from(["lru", "lfu", "orbit"]), st.booleans(), st.integers(2, 24))
-def test_a_simulated_settings_ceiling_is_never_below_its_predicted_speed(seed, policy, shared, total):
+def test_a_simulated_settings_ceilings_are_never_below_its_predicted_speed(seed, policy, shared, total):
     from moerun.planner.search import PREFETCH_CANDIDATES, Space
 
     trace = _guessing_trace(seed, tokens=40, prefill=seed % 7)
-    costs = _costs(L=3, page=[40, 400][seed % 2], attn=20)
+    costs = _costs(L=3, page=[40, 400, 2500][seed % 3], attn=20)  # 2.5 ms: a transfer of several chunks
     costs.copy, costs.place, costs.guess = 3 * US, 6 * US, 1 * US
-    costs.emulated = bool(seed % 3)
+    costs.emulated = bool(seed % 2)
     space = Space(trace, costs, 3, 8, 2, 0, 1, [policy], PREFETCH_CANDIDATES, shared=True)
     if not shared and total < 6:
         return
     slots = [total] if shared else even_split(total, 3, 8)
-    for pf, la in PREFETCH_CANDIDATES:
+    # guesses over a link that splits a transfer into chunks meet a fault of the link's drop (reported), so the
+    # 2.5 ms case checks prefetch off only
+    for pf, la in PREFETCH_CANDIDATES if seed % 3 < 2 else [(0, 1)]:
         pr = predict(trace, slots, policy, pf, la, costs, shared)
         if pf or shared:
             assert pr.tok_s <= space.ceiling(policy, pf)
+        if shared and not pf:
+            assert pr.tok_s <= space.shared_ceiling(policy, total)
