@@ -26,9 +26,10 @@ from moerun.planner.calibration import (  # noqa: F401  (the planner's public na
     page_seconds,
 )
 from moerun.planner.timeline import Costs, Prediction, predict, step_misses  # noqa: F401
+from moerun.policies import LRU
 from moerun.runtime.link import CHUNK
 from moerun.sim.counts import replay_counts
-from moerun.sim.fast import layer_misses
+from moerun.sim.fast import FAST_PATHS, layer_misses
 from moerun.sim.steps import layer_plans, prefill_tokens, shared_plan
 
 PREFETCH_CANDIDATES = [(0, 1), (1, 1), (2, 1), (2, 2), (3, 1)]
@@ -141,6 +142,7 @@ class Space:
     def __post_init__(self):
         self._ceilings: dict = {}
         self._shared_ceilings: dict = {}
+        self._shared_misses: dict = {}
         self._shared_plan = None
         P = prefill_tokens(self.trace)
         if self.trace.n_tokens - P > REPLAY_TOKENS:
@@ -224,10 +226,7 @@ class Space:
             if self._shared_plan is None:
                 self._shared_plan = shared_plan(t)
             plan = self._shared_plan
-            C = max(total, 1)
-            miss = layer_misses(plan, policies.get(policy), [C])[C]
-            cs = np.concatenate([[0], np.cumsum(miss)])
-            m = (cs[plan.starts[1:]] - cs[plan.starts[:-1]])[plan.counted][: n * L].astype(np.float64)
+            m = self._shared_step_misses(policy, max(total, 1))[: n * L].astype(np.float64)
             k = plan.sizes[plan.counted][: n * L].astype(np.float64)
             per_access = c.pool + c.policy.get(policy, 0.0)
             attn = np.tile(np.array([a + per_access * t.top_k for a in c.attn]), n)
@@ -241,6 +240,22 @@ class Space:
             time = float(step.sum()) + n * c.head
             got = self._shared_ceilings[(policy, total)] = n / time * (1 + 1e-9) if time > 0 and n else math.inf
         return got
+
+    def _shared_step_misses(self, policy: str, C: int) -> np.ndarray:
+        """Misses of each decode step of the shared pool of C slots, by replay.  A policy whose fast path serves
+        every pool size in one pass (lru, the score rules) is replayed once for every size the curve visits."""
+        got = self._shared_misses.setdefault(policy, {})
+        if C not in got:
+            cls = policies.get(policy)
+            sizes = [C]
+            if cls is LRU or (getattr(cls, "history_scores", False) and cls in FAST_PATHS):
+                L, k = self.layers, self.top_k
+                sizes = sorted({C, *range(k, L * k, L), *range(L * k, L * self.experts + 1, L)} - set(got))
+            plan = self._shared_plan
+            for c, miss in layer_misses(plan, cls, sizes).items():
+                cs = np.concatenate([[0], np.cumsum(miss)])
+                got[c] = (cs[plan.starts[1:]] - cs[plan.starts[:-1]])[plan.counted].astype(np.int32)
+        return got[C]
 
     def candidates(self, total: int, policy_names=None, prefetches=None) -> list[tuple[str, Prediction]]:
         """Every setting for ``total`` slots: even and uneven splits (and a shared pool), each policy and prefetch.
