@@ -9,7 +9,11 @@ cap, decode speed against cap, and the smallest cap that reaches a target speed.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass
+from typing import NamedTuple
+
+import numpy as np
 
 from moerun import policies
 from moerun.errors import BadInput, BadTrace, ImpossibleBudget
@@ -22,8 +26,11 @@ from moerun.planner.calibration import (  # noqa: F401  (the planner's public na
     page_seconds,
 )
 from moerun.planner.timeline import Costs, Prediction, predict, step_misses  # noqa: F401
+from moerun.policies import LRU
+from moerun.runtime.link import CHUNK
 from moerun.sim.counts import replay_counts
-from moerun.sim.steps import prefill_tokens
+from moerun.sim.fast import FAST_PATHS, layer_misses
+from moerun.sim.steps import layer_plans, prefill_tokens, shared_plan
 
 PREFETCH_CANDIDATES = [(0, 1), (1, 1), (2, 1), (2, 2), (3, 1)]
 PREFETCH_POLICIES = 2  # prefetch is simulated for the policies that do best without it
@@ -48,27 +55,39 @@ def hit_curves(trace: Trace, policy: str, max_slots: int) -> list[list[int]]:
 def best_split(curves: list[list[int]], total: int, low: int, high: int) -> list[int]:
     """Slots per layer (each in low..high, summing to at most ``total``) with the fewest misses.
 
-    Exact, by dynamic programming over the layers' miss curves; where every
-    curve is convex this is what greedily giving each next slot to the layer
-    that gains most would find.
+    Exact, by dynamic programming over the layers' miss curves, one array operation per slot count and
+    layer; where every curve is convex this is what greedily giving each next slot to the layer that
+    gains most would find.  Ties go as they always did: within a layer to the most slots for it, then
+    overall to the fewest slots in all (tests/planner/test_plan.py checks it against the plain loop).
     """
     L = len(curves)
     if total < L * low:
         raise ImpossibleBudget(f"{total} slots cannot give each of {L} layers {low}")
-    INF = float("inf")
-    best = {0: (0, [])}  # slots used -> (misses, split)
+    if high < low:
+        raise ImpossibleBudget(f"no slot count from {low} to {high}")
+    none = np.iinfo(np.int64).max // 4  # no split uses exactly this many slots
+    best = np.full(total + 1, none, np.int64)  # slots used -> fewest misses
+    best[0] = 0
+    picks = []  # per layer: slots used -> the slot count that layer takes
+    counts = np.arange(high, low - 1, -1)  # most slots first: np.argmin keeps the first of equal values
     for layer in range(L):
-        nxt: dict[int, tuple] = {}
-        for used, (m, split) in best.items():
-            for s in range(low, high + 1):
-                u = used + s
-                if u > total:
-                    break
-                cand = (m + curves[layer][s - 1], split + [s])
-                if cand[0] < nxt.get(u, (INF,))[0]:
-                    nxt[u] = cand
-        best = nxt
-    return min(best.values(), key=lambda v: (v[0], sum(v[1])))[1]
+        c = np.asarray(curves[layer], np.int64)
+        cand = np.full((counts.size, total + 1), none, np.int64)
+        for j, s_ in enumerate(counts.tolist()):
+            if s_ <= total:
+                prev = best[: total + 1 - s_]
+                row = cand[j, s_:]
+                np.add(prev, c[s_ - 1], out=row, where=prev < none)
+        j = np.argmin(cand, axis=0)
+        best = cand[j, np.arange(total + 1)]
+        picks.append(counts[j])
+    u = int(np.argmin(best))  # the fewest misses, then the fewest slots
+    split = []
+    for layer in range(L - 1, -1, -1):
+        s_ = int(picks[layer][u])
+        split.append(s_)
+        u -= s_
+    return split[::-1]
 
 
 def even_split(total: int, L: int, high: int) -> list[int]:
@@ -96,6 +115,14 @@ def minimum_cap(fixed: int, slot: int, layers: int, top_k: int, shared: bool = F
     return fixed + (top_k if shared else layers * top_k) * slot
 
 
+class _Setting(NamedTuple):
+    """What ``simplicity`` reads of a setting not predicted yet."""
+
+    policy: str
+    prefetch: int
+    lookahead: int
+
+
 @dataclass
 class Space:
     """What the planner searches over for one model or shape."""
@@ -110,8 +137,13 @@ class Space:
     policies: list
     prefetches: list  # (guesses, lookahead) pairs
     shared: bool = False  # also consider one pool shared by all layers
+    prune: bool = True  # simulate only the settings that can win (``candidates``)
 
     def __post_init__(self):
+        self._ceilings: dict = {}
+        self._shared_ceilings: dict = {}
+        self._shared_misses: dict = {}
+        self._shared_plan = None
         P = prefill_tokens(self.trace)
         if self.trace.n_tokens - P > REPLAY_TOKENS:
             t = self.trace
@@ -120,13 +152,17 @@ class Space:
                                None if t.guesses is None else t.guesses[:cut], dict(t.meta), {},
                                None if t.probs is None else t.probs[:cut])
         self._steps: dict = {}
-        caps = range(1, self.experts + 1)
-        for n in self.policies:  # one replay per policy and layer serves every quota
-            for layer in range(self.layers):
-                for cap, v in step_misses(self.trace, n, layer, caps).items():
+        # no setting gives a layer fewer slots than top_k (a pool per layer needs them), so those are replayed:
+        # one replay per policy and layer serves every quota
+        caps = range(min(self.top_k, self.experts), self.experts + 1)
+        plans = layer_plans(self.trace)
+        for n in self.policies:
+            for layer, plan in enumerate(plans):
+                for cap, v in step_misses(self.trace, n, layer, caps, plan).items():
                     self._steps[(n, layer, cap)] = v
-        self.curves = {n: [[int(self._steps[(n, layer, c)][1].sum()) for c in caps] for layer in range(self.layers)]
-                       for n in self.policies}
+        # misses per layer at 1..experts slots (index s-1); below top_k, never read (0)
+        self.curves = {n: [[int(self._steps[(n, layer, c)][1].sum()) if c in caps else 0 for c in range(1, self.experts + 1)]
+                           for layer in range(self.layers)] for n in self.policies}
 
     def _predict(self, slots, policy, pf, la, shared=False) -> Prediction:
         return predict(self.trace, slots, policy, pf, la, self.costs, shared, SEARCH_TOKENS,
@@ -148,9 +184,95 @@ class Space:
     def slots_for(self, cap: int) -> int:
         return min((cap - self.fixed) // self.slot, self.layers * self.experts)
 
+    def ceiling(self, policy: str, prefetch: int) -> float:
+        """The most tok/s a simulated setting of ``policy`` (a shared pool, or prefetch) can predict, from counts
+        alone: the simulated engine's compute over the simulated tokens (every layer's compute outside its experts
+        with the pool's and the policy's bookkeeping, each chosen expert, the head), plus, for each expert first
+        chosen after the prefill, the least its arrival costs: a miss (the compute thread's copy over an emulated
+        link, its read otherwise) or, with prefetch, a guess read (``place``) if that is less.  Every other term
+        of the simulation (stalls, guesses, the reader's lateness) only adds time."""
+        got = self._ceilings.get((policy, prefetch > 0))
+        if got is None:
+            c, t = self.costs, self.trace
+            P = prefill_tokens(t)
+            T = min(t.n_tokens, P + SEARCH_TOKENS)
+            n = T - P
+            per_access = c.pool + c.policy.get(policy, 0.0)
+            chosen = t.experts[P:T] >= 0
+            compute = n * (c.head + sum(a + per_access * t.top_k for a in c.attn)) + int(chosen.sum()) * c.expert
+            keys = lambda ex: set((np.nonzero(ex >= 0)[1] * max(t.n_experts, 1) + ex[ex >= 0]).tolist())  # noqa: E731
+            cold = len(keys(t.experts[P:T]) - keys(t.experts[:P]))  # (layer, expert) pairs no prefill loaded
+            arrive = c.copy if c.emulated else c.page
+            if prefetch:
+                arrive = min(arrive, c.place)
+            time = compute + cold * max(arrive, 0.0)
+            got = self._ceilings[(policy, prefetch > 0)] = n / time * (1 + 1e-9) if time > 0 and n else float("inf")
+        return got
+
+    def shared_ceiling(self, policy: str, total: int) -> float:
+        """The most tok/s a pool of ``total`` slots shared by all layers can predict with prefetch off, from the
+        replay's misses of each layer step (the simulation's decision core without guesses: the same misses).
+        With no guesses each step's misses are booked when it routes on an idle link; the step takes at least
+        its compute with the compute thread's copy of each miss, and at least until its last miss has arrived
+        (their transfers one after the other) and been computed; with real reads, its compute and each read.
+        Rounding of the link's whole nanoseconds is allowed for."""
+        got = self._shared_ceilings.get((policy, total))
+        if got is None:
+            c, t = self.costs, self.trace
+            P = prefill_tokens(t)
+            T = min(t.n_tokens, P + SEARCH_TOKENS)
+            n = T - P
+            L = t.n_layers
+            if self._shared_plan is None:
+                self._shared_plan = shared_plan(t)
+            plan = self._shared_plan
+            m = self._shared_step_misses(policy, max(total, 1))[: n * L].astype(np.float64)
+            k = plan.sizes[plan.counted][: n * L].astype(np.float64)
+            per_access = c.pool + c.policy.get(policy, 0.0)
+            attn = np.tile(np.array([a + per_access * t.top_k for a in c.attn]), n)
+            if c.emulated:
+                ns = 1e-9
+                page = c.page * (1 - 1e-6) - (c.page / ns / CHUNK + 2) * ns  # whole ns per chunk, dropped
+                arrive = np.where(m > 0, m * page - ns + c.expert, 0.0)
+                step = attn + np.maximum(k * c.expert + m * c.copy, arrive)
+            else:
+                step = attn + k * c.expert + m * c.page
+            time = float(step.sum()) + n * c.head
+            got = self._shared_ceilings[(policy, total)] = n / time * (1 + 1e-9) if time > 0 and n else math.inf
+        return got
+
+    def _shared_step_misses(self, policy: str, C: int) -> np.ndarray:
+        """Misses of each decode step of the shared pool of C slots, by replay.  A policy whose fast path serves
+        every pool size in one pass (lru, the score rules) is replayed once for every size the curve visits."""
+        got = self._shared_misses.setdefault(policy, {})
+        if C not in got:
+            cls = policies.get(policy)
+            sizes = [C]
+            if cls is LRU or (getattr(cls, "history_scores", False) and cls in FAST_PATHS):
+                L, k = self.layers, self.top_k
+                sizes = sorted({C, *range(k, L * k, L), *range(L * k, L * self.experts + 1, L)} - set(got))
+            plan = self._shared_plan
+            for c, miss in layer_misses(plan, cls, sizes).items():
+                cs = np.concatenate([[0], np.cumsum(miss)])
+                got[c] = (cs[plan.starts[1:]] - cs[plan.starts[:-1]])[plan.counted].astype(np.int32)
+        return got[C]
+
     def candidates(self, total: int, policy_names=None, prefetches=None) -> list[tuple[str, Prediction]]:
-        """Every setting for ``total`` slots: even and uneven splits (and a shared pool), each policy and prefetch."""
+        """Every setting for ``total`` slots: even and uneven splits (and a shared pool), each policy and prefetch.
+
+        Pruned (``prune``): the settings that are simulated step by step (a shared pool, prefetch) are ranked by
+        their ``ceiling`` first, and one is simulated only if it can win: if its ceiling is above every simpler
+        setting's predicted speed.  Another is left out; it could not have been recommended (a simpler setting at
+        least as fast is within TIE of the best whenever it would be), nor be the best.  So the recommendation is
+        the unpruned search's (tests/planner/test_plan.py checks it), and the list holds the settings simulated."""
         out = []
+
+        def can_win(label: str, policy: str, pf: int, la: int, ceiling: float | None = None) -> bool:
+            if not self.prune:
+                return True
+            rank = simplicity(label, _Setting(policy, pf, la if pf else 0))
+            beaten = max((pr.tok_s for lab, pr in out if simplicity(lab, pr) < rank), default=None)
+            return beaten is None or (self.ceiling(policy, pf) if ceiling is None else ceiling) > beaten
         L, E, k = self.layers, self.experts, self.top_k
         names = policy_names or self.policies
         per_layer = total >= L * k  # below, only a shared pool fits
@@ -165,16 +287,29 @@ class Space:
                 for pf, la in prefetches or self.prefetches:
                     if pf:
                         for label, sl in splits[n].items():
-                            out.append((label, self._predict(sl, n, pf, la)))
+                            if can_win(label, n, pf, la):
+                                out.append((label, self._predict(sl, n, pf, la)))
         if self.shared:  # the best per-layer policies and those made for a shared pool (every policy when per-layer
             # pools do not fit), then prefetch for the best two there
             pick = ranked if not per_layer else ranked[:PREFETCH_POLICIES] + [
                 n for n in ranked[PREFETCH_POLICIES:] if getattr(policies.get(n), "for_shared_pool", False)]
-            plain = {n: self._predict([total], n, 0, 1, shared=True) for n in pick}
+            # each policy's plain shared pool is simulated if it can win, or if it may be among the best two (their
+            # speeds choose the policies tried with prefetch): not when two simulated already beat its ceiling
+            plain = {}
+            ranks = len(pick) > PREFETCH_POLICIES
+            if self.prune:
+                top = {n: self.shared_ceiling(n, total) for n in pick}
+                for n in sorted(pick, key=lambda n: -top[n]):
+                    ahead = sum(pr.tok_s > top[n] for pr in plain.values())
+                    if (ranks and ahead < PREFETCH_POLICIES) or can_win("shared", n, 0, 1, top[n]):
+                        plain[n] = self._predict([total], n, 0, 1, shared=True)
+                plain = {n: plain[n] for n in pick if n in plain}  # in the order the unpruned search lists them
+            else:
+                plain = {n: self._predict([total], n, 0, 1, shared=True) for n in pick}
             out += [("shared", pr) for pr in plain.values()]
-            for n in sorted(pick, key=lambda n: -plain[n].tok_s)[:PREFETCH_POLICIES]:
+            for n in sorted(pick, key=lambda n: -plain[n].tok_s if n in plain else math.inf)[:PREFETCH_POLICIES]:
                 for pf, la in prefetches or self.prefetches:
-                    if pf:
+                    if pf and can_win("shared", n, pf, la):
                         out.append(("shared", self._predict([total], n, pf, la, shared=True)))
         return out
 

@@ -142,9 +142,10 @@ def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahea
     return _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_tokens)
 
 
-def step_misses(trace: Trace, policy: str, layer: int, capacities) -> dict:
-    """For each quota: (accesses, misses) per decode step of one layer, by replay."""
-    plan = layer_plans(trace)[layer]
+def step_misses(trace: Trace, policy: str, layer: int, capacities, plan=None) -> dict:
+    """For each quota: (accesses, misses) per decode step of one layer, by replay (``plan``: that layer's
+    ``layer_plans(trace)`` entry, if the caller holds it)."""
+    plan = plan if plan is not None else layer_plans(trace)[layer]
     flags = layer_misses(plan, policies.get(policy), list(capacities))
     counted = plan.counted_per_access()
     out = {}

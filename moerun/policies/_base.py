@@ -57,6 +57,18 @@ class Policy:
         step's first access.  The live pool and the replay both call it; prefill is not signalled.
         The arrays belong to the caller: copy what you keep."""
 
+    # Replay's fast path for score rules (moerun.sim.tape) reads these; the pool never does.
+    # ``history_scores`` True promises: ``victim`` returns the first candidate with the smallest ``scores``
+    # value; a key's score depends only on the routing and the accesses so far, never on what is resident
+    # (so ``inserted`` and ``hit`` leave the same score), and it changes only when the key is accessed,
+    # when its layer routes (``routed``), or when ``epoch`` changes (every key's at once).
+    history_scores = False
+    epoch = 0
+
+    def scores(self, keys: Sequence[Key], now: int) -> list[float]:
+        """With ``history_scores``: the values ``victim`` minimises, for these keys (each accessed before)."""
+        raise NotImplementedError
+
     def admits(self, key: Key, victim: Key, now: int) -> bool:
         """Would the policy rather hold ``key`` (a guess about to be prefetched) than ``victim`` (the
         resident it would evict for it)?  The pool asks before every prefetch that evicts.  The
@@ -221,6 +233,17 @@ class LRFU(Policy):
     def log_crf(self, key: Key, now: int) -> float:
         """log2 of the key's decayed count at ``now`` (its combined recency and frequency value)."""
         return math.log2(self.count[key]) - self.lam * (now - self.origin)
+
+    history_scores = True
+
+    @property
+    def epoch(self) -> int:
+        """Moves when the counts are rescaled (every score changes at once)."""
+        return self.origin
+
+    def scores(self, keys, now):
+        count = self.count
+        return [count[k] for k in keys]
 
     def victim(self, candidates, now):
         return min(candidates, key=self.count.__getitem__)

@@ -183,21 +183,28 @@ class Markov(LRFU):
         layer, e = divmod(key, self.shared_experts) if self.shared_experts else (self.layer, key)
         return math.log(self._model(layer).p(e)) + self.w * LN2 * self.log_crf(key, now)
 
+    def scores(self, keys, now):
+        """The values ``victim`` minimises: score() up to a term common to every key
+        (w * lam * ln 2 * (now - origin)); replay's fast path reads them too (``history_scores``)."""
+        count, w, log = self.count, self.w, math.log
+        E = self.shared_experts
+        if not E:
+            p = self._model(self.layer).p
+            return [log(p(k)) + w * log(count[k]) for k in keys]
+        out = []
+        last = p = None
+        for k in keys:  # a shared pool: each key scored by its layer's model
+            layer, e = divmod(k, E)
+            if layer != last:
+                p, last = self._model(layer).p, layer
+            out.append(log(p(e)) + w * log(count[k]))
+        return out
+
     def victim(self, candidates, now):
         if len(candidates) == 1:
             return candidates[0]
-        # score() up to a term common to every candidate (w * lam * ln 2 * (now - origin)), inlined
-        count, w, log = self.count, self.w, math.log
-        if self.shared_experts:  # a shared pool: each key scored by its layer's model
-            E, model = self.shared_experts, self._model
-            return min(candidates, key=lambda k: log(model(k // E).p(k % E)) + w * log(count[k]))
-        p = self._model(self.layer).p
-        best, low = None, math.inf
-        for k in candidates:
-            s = log(p(k)) + w * log(count[k])
-            if s < low:
-                best, low = k, s
-        return best
+        s = self.scores(candidates, now)
+        return candidates[s.index(min(s))]  # the first of the smallest, as min() over the candidates
 
     @classmethod
     def with_params(cls, **params) -> type[Markov]:

@@ -108,17 +108,20 @@ class Orbit(Policy):
 
     # ------------------------------------------------------------------ the estimate
     def _value(self, layer: int, e: int) -> float:
-        """ln q - beta * next possible use, for expert ``e`` of ``layer`` now."""
+        """ln q - beta * next possible use, for expert ``e`` of ``layer`` now.  The same arithmetic as
+        ``routed``'s rescoring, to the last bit: a key's value is then the same whether it was resident
+        when its layer last routed or came in since (replay's fast path relies on it, ``history_scores``)."""
         seen, steps, kappa = self.seen[layer], self.steps[layer], self.kappa
-        prior = (seen[e] + 1.0) / (steps + 2.0) if e < len(seen) else 1.0 / (steps + 2.0)
+        n = seen[e] if e < len(seen) else 0
         b = self.current[layer]
-        far = self.beta * self.next_use[layer]
+        far = self.next_use[layer]
         if b < 0:
-            return math.log(prior) - far
+            return math.log((n + 1.0) / (steps + 2.0)) - self.beta * far
         f = 1.0 / self.inc[layer][b]
         row = self.rows[layer][b]
         got = row[e] * f if e < len(row) else 0.0
-        return math.log(got + kappa * prior) - math.log(self.total[layer][b] * f + kappa) - far
+        low = math.log(self.total[layer][b] * f + kappa) + self.beta * far
+        return math.log(got + kappa / (steps + 2.0) * (n + 1)) - low
 
     def _weight(self, now: int) -> float:
         """LRFU's 2 ** (lam * (now - origin)), once per clock tick; rescaled before it overflows."""
@@ -236,6 +239,12 @@ class Orbit(Policy):
 
     def evicted(self, key):
         self.members[self._layer_of(key)].discard(key)
+
+    history_scores = True  # see Policy; ``_value`` and ``routed`` compute a key's value alike
+
+    def scores(self, keys, now):
+        score = self.score
+        return [score[k] for k in keys]
 
     def victim(self, candidates, now):
         return min(candidates, key=self.score.__getitem__)

@@ -10,7 +10,14 @@ For the built-in policies (tests/test_replay.py checks equality on random and re
   once.  (Pinning does change LRU's choices compared with plain LRU: a step's
   later expert may be the least recently used one, and pinning keeps it.)
 - FIFO, LFU and the optimum: one tight loop each over plain lists, choosing
-  the same victim as the policy object (ties included).
+  the same victim as the policy object (ties included); FIFO's is the first
+  resident that is not pinned.
+- LRFU, markov and orbit (``Policy.history_scores``): the policy object runs once along the plan and
+  its scores are written down; one pass over them serves every quota no smaller than a step, as
+  LRU's ranks do (the rule keeps a smaller pool inside a larger one), unless two candidates tie;
+  otherwise a lean loop per quota reads them (``moerun.sim.tape``).
+- A pool with a slot for every key the plan holds never evicts, whatever the policy: its misses are
+  the first use of each key.
 """
 
 from __future__ import annotations
@@ -19,21 +26,11 @@ from collections.abc import Callable, Sequence
 
 import numpy as np
 
-from moerun.policies import FIFO, LFU, LRU, Optimal, Policy
+from moerun.policies import FIFO, LFU, LRFU, LRU, Markov, Optimal, Orbit, Policy
+from moerun.sim import tape
 from moerun.sim.steps import LayerPlan, generic_misses
 
-
-def _dense(keys: np.ndarray) -> tuple[np.ndarray, int]:
-    """Expert ids renumbered 0..U-1 (keeping their order), and U; ids below 256 are kept as they are."""
-    if keys.size == 0:
-        return keys.astype(np.int64), 0
-    top = int(keys.max())
-    if top < 256:
-        return keys, top + 1
-    present = np.zeros(top + 1, bool)
-    present[keys] = True
-    remap = np.cumsum(present) - 1
-    return remap[keys], int(remap[-1]) + 1
+_dense = tape.dense
 
 
 def _lru_misses(plan: LayerPlan, capacities: Sequence[int]) -> dict[int, np.ndarray]:
@@ -179,16 +176,100 @@ def _loop_misses(plan: LayerPlan, capacity: int, mode: str) -> np.ndarray:
     return np.frombuffer(bytes(miss), np.uint8).astype(bool)
 
 
+def _fifo_loop(plan: LayerPlan, capacity: int) -> np.ndarray:
+    """FIFO: the residents kept in the order they came in, which is the order of their load times, so the
+    policy's victim (the smallest load time among the candidates) is the first candidate in that order."""
+    plan = plan.split(capacity)
+    keys, U = _dense(plan.keys)
+    kl = keys.tolist()
+    st = plan.starts.tolist()
+    miss = bytearray(len(kl))
+    resident = bytearray(U)
+    res: list[int] = []
+    C = capacity
+    for s in range(len(st) - 1):
+        a, b = st[s], st[s + 1]
+        for i in range(a, b):
+            x = kl[i]
+            if resident[x]:
+                continue
+            miss[i] = 1
+            if len(res) >= C:
+                step = kl[a:b]  # pinned: never candidates
+                j = 0
+                while res[j] in step:
+                    j += 1
+                resident[res.pop(j)] = 0
+            res.append(x)
+            resident[x] = 1
+    return np.frombuffer(bytes(miss), np.uint8).astype(bool)
+
+
 def _fast_fifo(plan, capacities):
-    return {c: _loop_misses(plan, c, "fifo") for c in capacities}
+    return {c: _fifo_loop(plan, c) for c in capacities}
+
+
+def _lfu_loop(plan: LayerPlan, capacity: int) -> np.ndarray:
+    """LFU alone (``_loop_misses``'s "lfu" without the other modes' tests): score count * (n + 2) + last use."""
+    plan = plan.split(capacity)
+    keys, U = _dense(plan.keys)
+    kl = keys.tolist()
+    st = plan.starts.tolist()
+    n = len(kl)
+    miss = bytearray(n)
+    resident = bytearray(U)
+    score = [0] * U
+    res: list[int] = []
+    C = capacity
+    big = n + 2
+    get = score.__getitem__
+    for s in range(len(st) - 1):
+        a, b = st[s], st[s + 1]
+        cand = None
+        for i in range(a, b):
+            x = kl[i]
+            if resident[x]:
+                score[x] += big - (score[x] % big) + i  # one more use, last use now
+                continue
+            miss[i] = 1
+            if len(res) >= C:
+                if cand is None:
+                    step = kl[a:b]  # pinned: never candidates
+                    cand = [y for y in res if y not in step]
+                v = min(cand, key=get)
+                cand.remove(v)
+                res.remove(v)
+                resident[v] = 0
+            res.append(x)
+            resident[x] = 1
+            score[x] = big + i
+    return np.frombuffer(bytes(miss), np.uint8).astype(bool)
 
 
 def _fast_lfu(plan, capacities):
-    return {c: _loop_misses(plan, c, "lfu") for c in capacities}
+    return {c: _lfu_loop(plan, c) for c in capacities}
 
 
 def _fast_optimal(plan, capacities):
     return {c: _loop_misses(plan, c, "optimal") for c in capacities}
+
+
+def _by_tape(cls: type[Policy]) -> Callable[[LayerPlan, Sequence[int]], dict[int, np.ndarray]]:
+    def fast(plan, capacities):
+        t = tape.build(plan, cls)
+        out = {}
+        big = [c for c in capacities if c >= int(plan.sizes.max(initial=1))]  # no step is split
+        if len(big) > 1:
+            d = tape.depths(t)
+            if d is not None:  # None: a tie among candidates; each quota is replayed on its own
+                out = {c: d >= c for c in big}
+        for c in capacities:
+            if c not in out:
+                out[c] = tape.misses(t, c) if t.alone_exact or c in big else generic_misses(plan, cls, c)
+        return out
+
+    fast.__name__ = f"_fast_{cls.name}"
+    return fast
 
 
 # Fast paths by exact class: a subclass may change behaviour, so it takes the generic path.
@@ -197,12 +278,30 @@ FAST_PATHS: dict[type, Callable[[LayerPlan, Sequence[int]], dict[int, np.ndarray
     FIFO: _fast_fifo,
     LFU: _fast_lfu,
     Optimal: _fast_optimal,
+    LRFU: _by_tape(LRFU),
+    Markov: _by_tape(Markov),
+    Orbit: _by_tape(Orbit),
 }
 
 
+def first_uses(plan: LayerPlan) -> np.ndarray:
+    """Miss flag per access of a pool that never evicts: the first access of each key."""
+    first = np.zeros(plan.n, bool)
+    if plan.n:
+        first[np.unique(plan.keys, return_index=True)[1]] = True
+    return first
+
+
 def layer_misses(plan: LayerPlan, policy_cls: type[Policy], capacities: Sequence[int], fast: bool = True) -> dict[int, np.ndarray]:
-    """Miss flag per access of one layer for each quota, by the fast path when there is one."""
+    """Miss flag per access of one pool for each quota, by the fast path when there is one."""
     f = FAST_PATHS.get(policy_cls) if fast else None
-    if f is not None:
-        return f(plan, capacities)
-    return {c: generic_misses(plan, policy_cls, c) for c in capacities}
+    if f is None:
+        return {c: generic_misses(plan, policy_cls, c) for c in capacities}
+    n_keys = int(np.unique(plan.keys).size) if plan.n else 0
+    roomy = [c for c in capacities if c >= n_keys]  # never evicts: any policy's misses are the first uses
+    out = f(plan, [c for c in capacities if c < n_keys]) if len(roomy) < len(capacities) else {}
+    if roomy:
+        first = first_uses(plan)
+        first.flags.writeable = False  # one array for every such quota
+        out.update({c: first for c in roomy})
+    return {c: out[c] for c in capacities}

@@ -704,3 +704,37 @@ def test_the_residency_picture_of_renumbered_ids_puts_the_same_rows_at_the_ids_t
     want = replay.residency_picture(replay.compact(sparse), 1, policy, c, 3, 60, shared)
     assert pic.shape == (5000, 57) and np.array_equal(pic[used], want[: used.size])
     assert not pic[np.setdiff1d(np.arange(5000), used)].any()
+
+
+# ---------------------------------------------------------------------------- fast paths of every shipped policy
+
+EVERY_POLICY = (LRU, LFU, FIFO, Optimal, policies.LRFU, policies.Markov, policies.Orbit)
+
+
+@settings(max_examples=120, deadline=None)
+@given(trace_params, st.booleans())
+def test_every_shipped_policy_has_a_fast_path_with_the_reference_paths_misses_in_both_pool_kinds(params, shared):
+    trace = _random_trace(*params)
+    plans = [replay.shared_plan(trace)] if shared else replay.layer_plans(trace)
+    for plan in plans:
+        caps = list(range(1, len(np.unique(plan.keys)) + 2))
+        for cls in EVERY_POLICY:
+            assert cls in replay_fast.FAST_PATHS
+            fast = replay.layer_misses(plan, cls, caps, fast=True)
+            ref = replay.layer_misses(plan, cls, caps, fast=False)
+            for c in caps:
+                assert np.array_equal(fast[c], ref[c]), (cls.name, c, shared)
+
+
+@pytest.mark.parametrize("shared", [False, True], ids=["per-layer", "shared"])
+@pytest.mark.parametrize("cls", [policies.LRFU, policies.Markov], ids=["lrfu", "markov"])
+def test_score_tapes_stay_exact_across_a_rescale_of_the_decayed_counts(cls, shared):
+    # lam 0.01: the counts are rescaled every 51,200 accesses, here inside a step of 3
+    trace = _random_trace(7, 9000, 2, 12, 3, 0.0, 3) if shared else _random_trace(7, 18000, 1, 12, 3, 0.0, 3)
+    plan = replay.shared_plan(trace) if shared else replay.layer_plans(trace)[0]
+    assert replay_fast.tape.build(plan, cls).rescored, "long enough to rescale"
+    caps = [2, 5, 9]
+    fast = replay.layer_misses(plan, cls, caps, fast=True)
+    ref = replay.layer_misses(plan, cls, caps, fast=False)
+    for c in caps:
+        assert np.array_equal(fast[c], ref[c]), c
