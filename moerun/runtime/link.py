@@ -11,7 +11,7 @@ Transfers go in chunks of at most ``chunk`` bytes.  When the channel frees,
 the next chunk goes to the first *urgent* transfer asked for by then (a layer
 waits for it: a demand read, or a guess the layer now uses), else to the first
 other one (a guess).  A guess whose layer has started without it is dropped:
-its chunks not started yet never take channel time.
+if none of its chunks has started it never takes channel time; one that has begun runs to its end.
 
 The same schedule serves the live pool (``moerun.runtime.pool``) and the planner's
 simulation (``moerun.planner.search``), so both follow one rule.  Times are integers in
@@ -101,15 +101,16 @@ class Link:
         t.urgent = True
 
     def drop(self, t: Transfer, now: int) -> bool:
-        """Nobody wants the transfer any more: its chunks not started are cancelled.  True if that
-        cancelled all of it (it never took channel time), False if some of it had started."""
+        """Nobody wants the transfer any more: if none of it has started, it is cancelled (True: it never
+        takes channel time).  One that has begun runs to its end, its later chunks included (False): the
+        callers keep its expert, which arrives, and ask when (``ends``)."""
         self.run(now)
-        if t.end >= 0:
+        if t.started:
             return False
         t.dropped = True
         if t in self.queue:
             self.queue.remove(t)
-        return not t.started
+        return True
 
     def hold(self, t: Transfer, until: int) -> None:
         """The bytes of ``t`` really arrived only at ``until`` (a read slower than the emulated link):

@@ -62,6 +62,19 @@ def test_a_dropped_guess_that_had_not_started_takes_no_link_time():
     assert link.busy_ns == 3 * MS
 
 
+def test_a_dropped_transfer_that_has_begun_runs_to_its_end_over_several_chunks():
+    # a 9 MiB expert over 1 MiB chunks (an open checkpoint's size): dropped after its first chunk, it stays booked
+    # and arrives, as the pool and the planner assume when drop says False (they keep its expert and ask when)
+    link = Link(rate=1e9, chunk=1 << 20)
+    t = link.book(9 << 20, 0, False)
+    link.run(0)
+    assert t.started and t.end < 0
+    assert link.drop(t, 1) is False
+    assert link.ends(t, 1) == link.ns(9 << 20)
+    link.run(link.ns(9 << 20))
+    assert t.end == link.ns(9 << 20) and link.busy_ns == link.ns(9 << 20)
+
+
 def test_a_read_slower_than_the_link_holds_the_channel_until_it_ends():
     link = Link(rate=1e9, chunk=1 << 30)
     a = link.book(1 * MS, 0, True)
@@ -74,3 +87,28 @@ def test_a_read_slower_than_the_link_holds_the_channel_until_it_ends():
 def test_a_link_needs_a_positive_rate():
     with pytest.raises(ValueError):
         Link(rate=0)
+
+
+def test_prefetch_over_an_emulated_link_with_experts_of_several_chunks_keeps_going(tmp_path):
+    """Experts larger than a link chunk (1 MiB): a guess dropped after its first chunk still arrives; the live pool
+    and the planner's time model used to ask when it ends and find it no longer booked (ValueError)."""
+    import numpy as np
+
+    import moerun
+    from moerun.makers.synth_open import OpenShape, synthesize_open
+    from moerun.model.sampling import Sampling
+    from moerun.runtime.budget import minimum_cap
+
+    d = tmp_path / "ck"
+    synthesize_open(d, OpenShape("olmoe", layers=3, experts=8, hidden=256, expert_width=2048, top_k=2, heads=4,
+                                 kv_heads=2, context=256), seed=1)  # 3 MiB experts
+    with moerun.load(d) as eng:
+        want = eng.generate(prompt_ids=list(range(2, 20)), max_new=24, sampling=Sampling(seed=3), keep_logits=True)
+        s = eng.store
+    with moerun.load(d, tokenizer=False, expert_slots="stored") as eng:
+        s = eng.store
+        cap = minimum_cap(s.config, s.dense_nbytes, s.expert_nbytes, "even", s.codec.scratch_bytes(), s.slot_nbytes)
+    with moerun.load(d, mem_cap=cap + 2 * s.slot_nbytes, prefetch=2, link_speed="200MB/s") as eng:
+        got = eng.generate(prompt_ids=list(range(2, 20)), max_new=24, sampling=Sampling(seed=3), keep_logits=True)
+        assert eng.pool.stats.prefetch_guesses > 0
+    assert got.new_ids == want.new_ids and all(np.array_equal(a, b) for a, b in zip(got.logits, want.logits))
