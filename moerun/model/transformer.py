@@ -157,10 +157,10 @@ class LayerWeights:
     wo: np.ndarray
     router: np.ndarray | None  # [d_model, n_experts]; None in a dense layer
     shared: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None  # the shared expert's w_gate, w_up, w_down
+    #                                                                     (a GatedShared when its term is gated)
     bqkv: np.ndarray | None = None  # [q_dim + 2*kv_dim]: the q, k and v biases (config qkv_bias)
     q_norm: np.ndarray | None = None  # [head_dim] or [q_dim] (config qk_norm)
     k_norm: np.ndarray | None = None  # [head_dim] or [kv_dim]
-    shared_gate: np.ndarray | None = None  # [d_model, 1] (config shared_gate)
     mlp: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None  # a dense layer's w_gate, w_up, w_down
 
 
@@ -225,12 +225,15 @@ class Transformer:
                 )
             routed = self.routed_of[b] is not None
             shared = tuple(dense[p + "shared." + part] for part in c.shared_shapes()) if c.d_shared and routed else None
+            gate = dense.get(p + "shared_gate") if routed else None
+            if shared is not None and gate is not None:
+                shared = GatedShared(shared, gate)
             mlp = None if routed else tuple(dense[p + "mlp." + part] for part in ("w_gate", "w_up", "w_down"))
             self.layers.append(LayerWeights(
                 dense[p + "attn_norm"], dense[p + "moe_norm"], wqkv, dense[p + "attn.wo"],
                 dense[p + "router"] if routed else None, shared,
                 bqkv=dense.get(p + "attn.bqkv"), q_norm=dense.get(p + "attn.q_norm"), k_norm=dense.get(p + "attn.k_norm"),
-                shared_gate=dense.get(p + "shared_gate") if routed else None, mlp=mlp,
+                mlp=mlp,
             ))
         self.routed = [self.layers[b] for b in self.routed_block]  # routed layer i's weights
         self.cos, self.sin = rotary_tables(c)
@@ -302,10 +305,7 @@ class Transformer:
         chosen, weights, probs = routing(layer, u)
         experts.routed(layer, chosen, weights, probs)
         observer.after_attention(layer, h)
-        shared = None
-        if w.shared is not None:
-            shared = w.shared if w.shared_gate is None else GatedShared(w.shared, w.shared_gate)
-        out = h + moe(u, layer, chosen, weights, experts, shared)
+        out = h + moe(u, layer, chosen, weights, experts, w.shared)
         experts.end_layer(layer)
         observer.after_layer(layer, out)
         return out
