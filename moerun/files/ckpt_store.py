@@ -48,7 +48,7 @@ from moerun.files.checkpoint import (
 from moerun.files.codec import Codec
 from moerun.files.config import ModelConfig
 from moerun.files.pagecache import drop_pages, drop_problem
-from moerun.files.store import file_stamp
+from moerun.files.store import file_change, file_stamp
 from moerun.model.operands import BLOCK_BYTES, StoredMatrix, WidenScratch
 
 # An open checkpoint's KV cache is sized for this many positions (or the model's maximum, when smaller):
@@ -366,22 +366,24 @@ class CheckpointStore:
         return self.expert_nbytes * self.config.n_layers * self.config.n_experts
 
     # ---------------------------------------------------------------- checks
-    def check_unchanged(self) -> None:
-        """ModelFileChanged if any shard has been written to since it was opened (``ModelStore.check_unchanged``)."""
-        for i, fd in enumerate(self.checkpoint.fds):
+    def check_unchanged(self, files=None) -> None:
+        """ModelFileChanged if any shard (of ``files``, indexes into the shards; default all) has been written to since
+        it was opened (``ModelStore.check_unchanged``)."""
+        fds = self.checkpoint.fds
+        for i in range(len(fds)) if files is None else files:
+            fd = fds[i]
             try:
                 now = file_stamp(os.fstat(fd))
             except OSError as e:
                 raise PageInError(f"{self.checkpoint.files[i]}: cannot check the file ({e.strerror or e})") from None
-            was = self._stamps[i]
-            if now == was:
-                continue
-            if now[:4] == was[:4] and now[5] != was[5]:  # only its links changed
+            what = file_change(self._stamps[i], now)
+            if what is None:
                 self._stamps[i] = now
                 continue
             raise ModelFileChanged(
-                f"{self.checkpoint.files[i]}: the checkpoint changed while this run was using it; results computed "
-                f"from it cannot be trusted. Replace a checkpoint's files by renaming new ones over them, never by writing into them"
+                f"{self.checkpoint.files[i]}: the checkpoint changed while this run was using it ({what}); results "
+                f"computed from it cannot be trusted. Replace a checkpoint's files by renaming new ones over them, never "
+                f"by writing into them"
             )
 
     # ---------------------------------------------------------------- page-in
@@ -425,7 +427,7 @@ class CheckpointStore:
         read_expert(self.checkpoint.fds, spans, dst, self.checkpoint.files)
         self.codec.finish(dst)
         ns = time.monotonic_ns() - t0
-        self.check_unchanged()
+        self.check_unchanged(spans.files)  # the shards just read (the engine checks them all after each call)
         if self.cold_reads and drop_problem() is None:
             for r in spans.reads:
                 with contextlib.suppress(OSError):

@@ -49,6 +49,19 @@ def file_stamp(st: os.stat_result) -> tuple[int, int, int, int, int, int]:
     return st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns, st.st_ctime_ns, st.st_nlink
 
 
+def file_change(was: tuple, now: tuple) -> str | None:
+    """How an opened file changed between two ``file_stamp``s, or None when no byte can have: the same stamp, or
+    only its links changed (a new file renamed over the path unlinks this one; a hard link was made or removed),
+    which moves the change time with them and no byte."""
+    if now == was or (now[:4] == was[:4] and now[5] != was[5]):
+        return None
+    if now[:2] != was[:2]:
+        return "its descriptor now names another file"
+    if now[2] != was[2]:
+        return f"{was[2]:,} bytes when opened, {now[2]:,} now"
+    return "rewritten in place: the same size, but its modification or change time moved"
+
+
 @dataclass(frozen=True)
 class ExpertRange:
     layer: int
@@ -267,20 +280,10 @@ class ModelStore:
             now = file_stamp(os.fstat(self._fd))
         except OSError as e:
             raise PageInError(f"{self.path}: cannot check the file ({e.strerror or e})") from None
-        was = self._stamp
-        if now == was:
-            return
-        if now[:4] == was[:4] and now[5] != was[5]:
-            # only its links changed (a new file renamed over the path unlinks this one; a hard link was made
-            # or removed): the change time moved with them, and no byte did
+        what = file_change(self._stamp, now)
+        if what is None:
             self._stamp = now
             return
-        if now[:2] != was[:2]:
-            what = "its descriptor now names another file"
-        elif now[2] != was[2]:
-            what = f"{was[2]:,} bytes when opened, {now[2]:,} now"
-        else:
-            what = "rewritten in place: the same size, but its modification or change time moved"
         raise ModelFileChanged(
             f"{self.path}: the model file changed while this run was using it ({what}); results computed from it "
             f"cannot be trusted. Replace a model by renaming a new file over it, never by writing into it"

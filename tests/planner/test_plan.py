@@ -317,7 +317,7 @@ def test_plans_smallest_caps_are_the_engines(small_model, tmp_path):
 
 
 def test_plan_shows_speeds_with_three_significant_digits():
-    from moerun.cli.commands.plan import speed
+    from moerun.units import fmt_tok_s as speed  # plan's text and the run summary share it
 
     cases = {4.2734: "4.27", 42.734: "42.7", 427.34: "427", 4273.4: "4273", 0.042734: "0.0427", 9.9996: "10.0",
              99.96: "100", 1.0: "1.00", 0.0: "0"}

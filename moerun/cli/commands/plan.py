@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import argparse
-import math
 import sys
 
 from moerun import policies
@@ -11,7 +10,7 @@ from moerun.cli import main as cli
 from moerun.cli.report import Progress, emit_json, pct, table
 from moerun.planner.jobs import DEFAULT_TOKENS, plan
 from moerun.planner.search import TIE, choose, simplicity
-from moerun.units import SHARED_POOL, fmt_bytes, fmt_prefetch
+from moerun.units import SHARED_POOL, fmt_bytes, fmt_prefetch, fmt_tok_s
 
 HELP = "predict decode tok/s for a memory cap and a link; recommend slots per layer, policy and prefetch"
 
@@ -59,17 +58,6 @@ def run(args) -> int:
     return code
 
 
-def speed(tok_s: float) -> str:
-    """A predicted speed for people: three significant digits, whole numbers from 100 tok/s up (4.27, 42.7, 427,
-    4270); the JSON keeps every digit."""
-    if not tok_s > 0:
-        return "0"
-    r = float(f"{tok_s:.3g}")
-    if r >= 100:
-        return f"{tok_s:.0f}"
-    return f"{r:.{2 - math.floor(math.log10(r))}f}"
-
-
 def _setting(pr, layers: int, experts: int) -> tuple:
     """What a setting does: the same for even and uneven splits with equal slots, for a shared pool and per-layer
     pools that both hold every expert, and for prefetch that reads no guess (the planner predicts it changes
@@ -82,7 +70,7 @@ def _setting(pr, layers: int, experts: int) -> tuple:
 def _rows(cands, layers: int, experts: int) -> list:
     """The settings, fastest first (as shown; the simplest first where they read the same), rows that are the same
     setting with the same prediction (within TIE) shown once, as the simplest of them."""
-    ordered = sorted(cands, key=lambda c: (-float(speed(c[1].tok_s)), simplicity(*c)))
+    ordered = sorted(cands, key=lambda c: (-float(fmt_tok_s(c[1].tok_s)), simplicity(*c)))
     kept: list = []
     for lab, pr in ordered:
         setting = _setting(pr, layers, experts)
@@ -112,15 +100,15 @@ def _shared_line(result) -> str:
     lab, best = choose(shared)
     if not per_layer:
         return (f"{SHARED_POOL}: the only kind of pool that fits this cap (one pool per layer needs "
-                f"{fmt_bytes(result.per_layer_min_cap_bytes)}); best {_how(lab, best, pool=False)}: {speed(best.tok_s)} tok/s")
+                f"{fmt_bytes(result.per_layer_min_cap_bytes)}); best {_how(lab, best, pool=False)}: {fmt_tok_s(best.tok_s)} tok/s")
     plab, other = choose(per_layer)
     ratio = best.tok_s / other.tok_s - 1 if other.tok_s else 0.0
     if abs(ratio) <= TIE:
         cmp = "as fast as"
     else:
         cmp = f"{100 * abs(ratio):.1f}% {'faster' if ratio > 0 else 'slower'} than"
-    return (f"{SHARED_POOL}: best {_how(lab, best, pool=False)}: {speed(best.tok_s)} tok/s, {cmp} the best with one pool per layer "
-            f"({_how(plab, other)}: {speed(other.tok_s)} tok/s)")
+    return (f"{SHARED_POOL}: best {_how(lab, best, pool=False)}: {fmt_tok_s(best.tok_s)} tok/s, {cmp} the best with one pool per layer "
+            f"({_how(plab, other)}: {fmt_tok_s(other.tok_s)} tok/s)")
 
 
 def _text(out, args, result) -> None:
@@ -143,12 +131,12 @@ def _text(out, args, result) -> None:
     if rec is not None:
         top = _rows(cands, L, result.experts)
         rows = [[SHARED_POOL if pr.shared else lab, ",".join(map(str, pr.slots)), pr.policy, fmt_prefetch(pr.prefetch, pr.lookahead),
-                 pct(pr.hit_rate), pct(pr.stall_share), speed(pr.tok_s)] for lab, pr in top[:12]]
+                 pct(pr.hit_rate), pct(pr.stall_share), fmt_tok_s(pr.tok_s)] for lab, pr in top[:12]]
         out.write(f"cap {fmt_bytes(doc['mem_cap_bytes'])}: {doc['slots_total']} slots; best {min(12, len(top))} of {len(top)} "
                   f"settings ({len(cands)} searched; the same setting with the same prediction shown once)\n")
         out.write(table(["split", "slots", "policy", "prefetch", "hit rate", "stall", "tok/s"], rows, "lllllrr") + "\n")
         out.write(f"recommended: {_how(rec_label, rec)}"
-                  + f": {speed(rec.tok_s)} tok/s predicted, {pct(rec.stall_share)} stalled"
+                  + f": {fmt_tok_s(rec.tok_s)} tok/s predicted, {pct(rec.stall_share)} stalled"
                   + f" (ties within {100 * TIE:g}% go to the simpler setting)\n")
         if args.shared_pool:
             out.write(_shared_line(result) + "\n")
@@ -162,7 +150,7 @@ def _text(out, args, result) -> None:
             out.write(table(["layer", "even slots", "hit rate", "uneven slots", "hit rate"], rows) + "\n\n")
     curve = doc["curve"]["points"]
     rows = [[fmt_bytes(p["cap_bytes"]), p["slots_total"], SHARED_POOL if p["split"] == "shared" else ",".join(map(str, p["slots"])),
-             fmt_prefetch(p["prefetch"], p["lookahead"]), pct(p["stall_share"]), speed(p["tok_s"])] for p in curve]
+             fmt_prefetch(p["prefetch"], p["lookahead"]), pct(p["stall_share"]), fmt_tok_s(p["tok_s"])] for p in curve]
     out.write(f"predicted decode speed against cap ({doc['curve']['policy']}):\n")
     out.write(table(["cap", "slots", "split", "prefetch", "stall", "tok/s"], rows) + "\n")
     if args.target is not None:
@@ -170,4 +158,4 @@ def _text(out, args, result) -> None:
         if t["reachable"]:
             out.write(f"target {args.target:g} tok/s: smallest cap {fmt_bytes(t['smallest_cap_bytes'])} ({t['smallest_cap_bytes']} bytes)\n")
         else:
-            out.write(f"target {args.target:g} tok/s is out of reach: at most {speed(t['best_tok_s'])} tok/s with every expert resident\n")
+            out.write(f"target {args.target:g} tok/s is out of reach: at most {fmt_tok_s(t['best_tok_s'])} tok/s with every expert resident\n")
