@@ -19,8 +19,10 @@ process reads an expert's pieces (``read_pieces``), one ring entry each.
 Dense matrices are widened to float32 once, or with ``stored_dense`` kept as stored and widened a block of rows
 at each use (``moerun.model.operands.StoredMatrix``).
 
-Not yet here (refused with one line where asked for): the ``mmap`` page-in mechanism and float32 slots with the
-prefetch reader.
+A widened slot is rewritten after its read, so the pool never reads one here while the reader process may still
+copy into it (``Codec.rewrites_slot``): it asks the reader to read that slot next and waits for it instead.
+
+Not yet here (refused with one line where asked for): the ``mmap`` page-in mechanism.
 """
 
 from __future__ import annotations
@@ -81,6 +83,7 @@ class CheckpointCodec(Codec):
         self.spans = spans
         self.dtype = spans.gate.dtype
         self.widened = widened and self.dtype != "F32"
+        self.rewrites_slot = self.widened
         self.name = self.dtype + (", widened to float32 when read" if self.widened else "")
         self._scratch = None
         if self.widened:

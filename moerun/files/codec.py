@@ -39,6 +39,9 @@ class Codec:
 
     name = "base"
     parts: tuple[Part, ...] = ()
+    # True when a slot is rewritten after its read (widened in place): a second copy of the stored bytes
+    # would then corrupt it, so the pool never reads such a slot while the reader process may still write it.
+    rewrites_slot = False
 
     def with_offsets(self, offsets: dict[str, int]) -> Codec:
         raise NotImplementedError

@@ -134,9 +134,6 @@ class EngineOptions:
             raise BadOption(f"dense weights must be one of {', '.join(DENSE_WEIGHTS)}, got {self.dense_weights!r:.40}")
         if self.expert_slots not in EXPERT_SLOTS:
             raise BadOption(f"expert slots must be one of {', '.join(EXPERT_SLOTS)}, got {self.expert_slots!r:.40}")
-        if self.expert_slots == "float32" and self.prefetch > 0 and not self.bare and self.baseline is None:
-            raise BadOption("float32 expert slots do not work with --prefetch yet (the reader process writes what is "
-                            "stored, while the slot is widened in place); use --expert-slots stored")
         if self.split not in ("even", "shared"):
             raise BadOption(f"split must be 'even' or 'shared', got {self.split!r}")
         t = self.reader_timeout

@@ -100,6 +100,10 @@ class ExpertPool(ExpertSource):
         # self.link (ExpertSource): the emulated link, owned here, or None
         self.timing = Timing(self.link.ns(store.expert_nbytes) if self.link is not None else 100_000.0)
         self._owed: list[Slot] = []  # slots read here while the reader still held them
+        # A codec that rewrites a slot after its read (an open checkpoint's experts widened to float32 in place)
+        # cannot let the reader's late copy of the same stored bytes land on the widened ones: such a slot is
+        # never read here while the reader holds it (``_take_over`` waits for the reader instead).
+        self._exclusive = getattr(store.codec, "rewrites_slot", False)
         self._pending: list[Slot] = []  # guesses booked on the emulated link, bytes not copied yet
         self._prefill = False
         self._ready = False
@@ -448,15 +452,16 @@ class ExpertPool(ExpertSource):
             margin = self.timing.copy_ns
             pending = self._pending
             while pending and time.monotonic_ns() + margin < deadline:
-                self._bring_in(pending.pop(0))
+                self._bring_in(pending.pop(0), needed=False)
         wait_until(deadline)
 
-    def _bring_in(self, s: Slot) -> None:
+    def _bring_in(self, s: Slot, needed: bool = True) -> None:
         """The one settle / take-over / copy sequence: a LOADING slot takes the reader's result if it is
-        there, else is read here (``_take_over``); a PENDING guess is copied here (``_copy``)."""
+        there, else is read here (``_take_over``); a PENDING guess is copied here (``_copy``).  A slot
+        brought in while waiting for another (not ``needed`` yet) is never waited for."""
         if s.state == LOADING:
             self._settle(s)
-            if s.state == LOADING:  # the reader has not got to it: read it here rather than wait
+            if s.state == LOADING and (needed or not self._exclusive):  # the reader has not got to it
                 self._take_over(s)
         elif s.state == PENDING:
             self._copy(s)
@@ -464,7 +469,13 @@ class ExpertPool(ExpertSource):
     def _take_over(self, s: Slot) -> None:
         """Read a LOADING guess on this thread: the reader is told to skip it, and the slot stays out of
         reach of eviction until the reader answers (it may be copying the same bytes meanwhile, which
-        is harmless: they are the same bytes)."""
+        is harmless: they are the same bytes).  A slot its codec rewrites after a read is not read here:
+        the reader is asked to read it next and waited for (its copy would land on the rewritten bytes);
+        if it skips or fails the read, the slot is left EMPTY for its layer to read."""
+        if self._exclusive:
+            self.reader.promote(s.index, s.gen)
+            self._settle(s, wait=True)
+            return
         self.reader.cancel(s.index, s.gen)
         self.store.copy_in(s.layer, s.expert, s.buf)
         self.stats.prefetch_copied_here += 1
