@@ -14,6 +14,7 @@ from moerun import policies
 from moerun.files.ckpt_store import open_store
 from moerun.model.sampling import Sampling
 from moerun.runtime.budget import minimum_cap, plan_budget
+from moerun.runtime.memwatch import RESIDENT_SHARE, available_memory
 from moerun.runtime.options import load
 from moerun.units import SHARED_POOL, fmt_prefetch
 
@@ -52,14 +53,7 @@ def default_settings(min_cap: int, full_cap: int, slot: int) -> list[Setting]:
     ]
 
 
-RESIDENT_SHARE = 0.8  # the reference runs every expert resident when that takes at most this share of free memory
-
-
-def available_memory() -> int:
-    """Bytes of memory available now (psutil)."""
-    import psutil
-
-    return int(psutil.virtual_memory().available)
+# the reference runs every expert resident when that takes at most RESIDENT_SHARE of the memory available now
 
 
 def _bits(a: np.ndarray) -> np.ndarray:

@@ -22,9 +22,10 @@ from moerun.files.config import RANDOM_NOTE
 from moerun.files.trace import Trace, read_trace
 from moerun.planner.calibration import calibrate, costs_from_calibration, costs_from_shape, describe, load_shape, page_seconds
 from moerun.planner.search import PREFETCH_CANDIDATES, Space, check_decode_steps, check_trace_shape, choose, minimum_cap
-from moerun.planner.shape_costs import checkpoint_shape, measure_shape
+from moerun.planner.shape_costs import checkpoint_shape, measure_shape, model_shape
 from moerun.planner.timeline import Costs, Prediction
 from moerun.runtime.budget import fixed_bytes, slot_bytes
+from moerun.runtime.memwatch import fits_whole
 from moerun.sim.report import parse_policies
 from moerun.units import fmt_bytes, fmt_exact, parse_rate, parse_size
 
@@ -163,7 +164,7 @@ def _point(point: dict, label: str, pr: Prediction) -> dict:
     return out
 
 
-def _record(model_dir: Path, tokens: int) -> Trace:
+def _record(model_dir: Path, tokens: int, mem_cap: int | None = None) -> Trace:
     from moerun.model.tokenizer import read_text_file
     from moerun.runtime.options import load
     from moerun.sim.jobs import windows
@@ -171,7 +172,7 @@ def _record(model_dir: Path, tokens: int) -> Trace:
     held = model_dir / "heldout.txt"
     if not held.exists():
         raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --routing FILE")
-    with load(model_dir) as eng:
+    with load(model_dir, mem_cap=mem_cap) as eng:  # routing is the same under any cap (offloaded == resident)
         ids = eng.tokenizer.encode_array(read_text_file(held), tokens).tolist()
         eng.start_trace()
         for w in windows(ids, eng.config.max_seq_len, eng.config.bos_token_id):
@@ -235,6 +236,8 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
         model = {"L": c.n_layers, "E": c.n_experts, "k": c.top_k, "expert_bytes": store.expert_nbytes,
                  "fixed": sum(fixed_bytes(c, store.dense_nbytes, store.codec.scratch_bytes())), "dir": model_dir,
                  "what": f"model {model_dir}", "note": RANDOM_NOTE if c.extra.get("synthetic") else None}
+        # too large to run whole: timed at its shape and on a few of its experts, its routing recorded under a cap
+        model["whole"] = fits_whole(model["fixed"] + c.n_layers * c.n_experts * slot_bytes(store.slot_nbytes))
         store.close()
         if not trace and not (model_dir / "heldout.txt").exists():
             raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --routing FILE")
@@ -274,6 +277,11 @@ def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int,
         timed = measure_shape(c, c.dtype)
         costs = costs_from_shape({**sh, **timed}, page, page_src, inp["emulated"])
         cal_note = f"compute times from {timed['measured']}, now"
+    elif not m["whole"]:
+        step(0, "timing one layer at the model's shape (too large to run whole here)")
+        timed = model_shape(m["dir"])
+        costs = costs_from_shape(timed, page, page_src, inp["emulated"])
+        cal_note = f"compute times from {timed['measured']}, now (the model is too large to run whole here)"
     else:
         cal = calibrate(m["dir"], recalibrate=recalibrate, progress=lambda what: step(0, f"calibrating: {what}"),
                         notice=notice)
@@ -282,7 +290,8 @@ def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int,
     trace = inp["trace"]
     if trace is None:
         step(1, "recording a routing trace from the held-out text")
-        trace = _record(m["dir"], inp["tokens"])
+        small = m["fixed"] + m["L"] * m["k"] * inp["slot"]  # the smallest cap: room enough to record routing
+        trace = _record(m["dir"], inp["tokens"], None if m["whole"] else max(small, inp["cap"] or 0))
         check_decode_steps(trace, "the recorded trace")
     step(2, "hit curves")
     pf = [pc for pc in PREFETCH_CANDIDATES if pc[0] == 0 or trace.guesses is not None]

@@ -3,7 +3,8 @@
 ``checkpoint_shape(dir)`` describes an open checkpoint for the planner without loading it: its shape and its
 bytes from the headers (``moerun.files.checkpoint``), and its compute times from ``measure_shape``, which builds
 one routed layer of the same shape and architecture (q/k norms, biases, a gated shared expert) with random
-weights and times it as a decode step runs it.  Values do not change what a matrix product costs, so random
+weights and times it as a decode step runs it.  ``model_shape(dir)`` does the same for a moerun model too large
+to run whole, timing its experts (with their stored format's decoding) on a few of its own, read one at a time.  Values do not change what a matrix product costs, so random
 weights time what the checkpoint's would; memory stays small (one layer, one expert, a slice of the output
 matrix whose time is scaled to the whole: a one-row product is bound by the bytes it reads).
 
@@ -19,12 +20,14 @@ from pathlib import Path
 
 import numpy as np
 
+from moerun.files.bundled import resolve_model
 from moerun.files.checkpoint import STORED_DTYPES, Checkpoint, widen_into
 from moerun.files.ckpt_store import DEFAULT_CONTEXT, model_config
 from moerun.files.config import ModelConfig
+from moerun.files.store import ModelStore
 from moerun.model.transformer import KVCache, Transformer, expert, rmsnorm, route, shared_term
 from moerun.planner.calibration import _sleep_lateness, micro, settle
-from moerun.runtime.budget import scratch_bytes
+from moerun.runtime.budget import fixed_bytes, scratch_bytes
 
 F32 = np.float32
 POSITION = 256  # the decode position attention is timed at (a short context: its scores are a small share)
@@ -129,3 +132,40 @@ def checkpoint_shape(model_dir: str | Path, context: int = DEFAULT_CONTEXT) -> t
         "random_weights": random,
     }
     return shape, c
+
+
+OWN_EXPERTS = 4  # a moerun model's own experts timed in turn (as decode meets them, not one kept hot in the caches)
+
+
+def model_shape(model_dir: str | Path) -> dict:
+    """A moerun model as a shape for the planner, measured within a small memory: its bytes from the store (the
+    dense weights, which every cap holds anyway), the compute outside its experts at its shape (``measure_shape``),
+    and one expert with its stored format's decoding timed on OWN_EXPERTS of its own experts of the first layer."""
+    store = ModelStore.open(resolve_model(model_dir))
+    try:
+        c = store.config
+        timed = measure_shape(c, "F32")
+        codec = store.codec
+        bound = []
+        for e in range(min(OWN_EXPERTS, c.n_experts)):
+            buf = np.zeros(store.slot_nbytes, np.uint8)
+            store.copy_in(0, e, buf)
+            bound.append(codec.bind(buf))
+        decoded = [tuple(np.array(w) for w in codec.weights(b)) for b in bound]
+        u = np.random.default_rng(2).standard_normal((1, c.d_model), dtype=F32)
+        turn = [0]
+
+        def next_of(items):
+            turn[0] = (turn[0] + 1) % len(items)
+            return items[turn[0]]
+
+        timed["expert_us"] = settle(lambda: micro(lambda: expert(u, *next_of(decoded)), 30))[0] * 1e6
+        timed["decode_us"] = settle(lambda: micro(lambda: codec.weights(next_of(bound)), 20))[0] * 1e6 \
+            if codec.name != "F32" else 0.0
+        timed["measured"] = (f"one layer of random weights at this shape, decode position {POSITION}, and "
+                             f"{len(bound)} of the model's own experts")
+        dense, kv, scratch = fixed_bytes(c, store.dense_nbytes, codec.scratch_bytes())
+        return {"layers": c.n_layers, "experts": c.n_experts, "top_k": c.top_k, "expert_bytes": store.expert_nbytes,
+                "dense_bytes": dense, "kv_cache_bytes": kv, "scratch_bytes": scratch, **timed}
+    finally:
+        store.close()

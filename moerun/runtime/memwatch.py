@@ -7,6 +7,20 @@ import os
 
 import psutil
 
+# A command that can run a model whole or part by part (verify's reference, plan's calibration) runs it whole
+# only when that takes at most this share of the memory available now.
+RESIDENT_SHARE = 0.8
+
+
+def available_memory() -> int:
+    """Bytes of memory available now (psutil)."""
+    return int(psutil.virtual_memory().available)
+
+
+def fits_whole(nbytes: int) -> bool:
+    """Whether ``nbytes`` (a model run whole) fit in RESIDENT_SHARE of the memory available now."""
+    return nbytes <= RESIDENT_SHARE * available_memory()
+
 
 def _reset_peak() -> bool:
     """Reset the kernel's peak RSS counter (Linux >= 4.0: write 5 to clear_refs)."""

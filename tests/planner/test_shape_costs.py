@@ -48,3 +48,32 @@ def test_plan_on_an_open_checkpoint_predicts_from_its_trace(tmp_path):
     doc = result.to_json()
     assert doc["planned_for"].startswith("open checkpoint") and result.recommended is not None
     assert result.recommended.tok_s > 0 and "one layer of random weights" in result.calibration
+
+
+def test_a_moerun_model_too_large_to_run_whole_is_planned_from_its_shape_under_a_cap(monkeypatch):
+    """A model that does not fit the memory available is never loaded whole: its compute is timed at its shape and
+    on a few of its own experts, and its routing is recorded under a cap."""
+    import moerun.planner.jobs as jobs
+    import moerun.runtime.options as options
+
+    monkeypatch.setattr(jobs, "fits_whole", lambda nbytes: False)
+    monkeypatch.setattr(jobs, "calibrate", lambda *a, **k: pytest.fail("the whole-model calibration ran"))
+    caps = []
+    real_load = options.load
+    monkeypatch.setattr(options, "load", lambda *a, **k: (caps.append(k.get("mem_cap")), real_load(*a, **k))[1])
+    r = moerun.plan("pebble", mem_cap="14MiB", link_speed="2GB/s", max_tokens=32)
+    assert caps and all(c is not None for c in caps)  # every engine it ran was capped
+    assert "too large to run whole" in r.to_json()["calibration"] and r.recommended is not None
+    assert r.to_json()["costs"]["expert_s"] > 0
+
+
+def test_a_moerun_models_shape_holds_the_bytes_its_engine_budgets():
+    from moerun.planner.shape_costs import model_shape
+
+    sh = model_shape("scree")
+    with moerun.load("scree", mem_cap="64MiB") as eng:
+        b = eng.budget
+        assert (sh["layers"], sh["experts"], sh["top_k"]) == (eng.config.n_layers, eng.config.n_experts, eng.config.top_k)
+        assert sh["expert_bytes"] == eng.store.expert_nbytes
+        assert sh["dense_bytes"] == b.dense and sh["kv_cache_bytes"] == b.kv_cache and sh["scratch_bytes"] == b.scratch
+    assert sh["expert_us"] > 0 and sh["decode_us"] == 0.0  # float32 experts: nothing to decode
