@@ -18,6 +18,9 @@ For the built-in policies (tests/test_replay.py checks equality on random and re
   otherwise a lean loop per quota reads them (``moerun.sim.tape``).
 - A pool with a slot for every key the plan holds never evicts, whatever the policy: its misses are
   the first use of each key.
+
+A warm start (``LayerPlan.warm``) is modelled by none of them: such a plan takes the reference path
+(``generic_misses``, which fills the pool through ``Decisions.warm``), for every policy and quota.
 """
 
 from __future__ import annotations
@@ -294,7 +297,7 @@ def first_uses(plan: LayerPlan) -> np.ndarray:
 
 def layer_misses(plan: LayerPlan, policy_cls: type[Policy], capacities: Sequence[int], fast: bool = True) -> dict[int, np.ndarray]:
     """Miss flag per access of one pool for each quota, by the fast path when there is one."""
-    f = FAST_PATHS.get(policy_cls) if fast else None
+    f = FAST_PATHS.get(policy_cls) if fast and not plan.warm else None
     if f is None:
         return {c: generic_misses(plan, policy_cls, c) for c in capacities}
     n_keys = int(np.unique(plan.keys).size) if plan.n else 0
