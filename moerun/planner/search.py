@@ -27,10 +27,10 @@ from moerun.planner.calibration import (  # noqa: F401  (the planner's public na
 )
 from moerun.planner.timeline import Costs, Prediction, predict, step_misses  # noqa: F401
 from moerun.policies import LRU
+from moerun.runtime.decisions import hottest
 from moerun.runtime.link import CHUNK
 from moerun.sim.counts import replay_counts
 from moerun.sim.fast import FAST_PATHS, layer_misses
-from moerun.runtime.decisions import hottest
 from moerun.sim.steps import layer_plans, prefill_tokens, shared_plan, warm_plans
 
 PREFETCH_CANDIDATES = [(0, 1), (1, 1), (2, 1), (2, 2), (3, 1)]
@@ -266,7 +266,7 @@ class Space:
         if C not in got:
             cls = policies.get(policy)
             sizes = [C]
-            if not self.warm and (cls is LRU or (getattr(cls, "history_scores", False) and cls in FAST_PATHS)):
+            if cls is LRU or (not self.warm and getattr(cls, "history_scores", False) and cls in FAST_PATHS):
                 L, k = self.layers, self.top_k
                 sizes = sorted({C, *range(k, L * k, L), *range(L * k, L * self.experts + 1, L)} - set(got))
             plan = self._shared_plan

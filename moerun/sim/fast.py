@@ -19,8 +19,9 @@ For the built-in policies (tests/test_replay.py checks equality on random and re
 - A pool with a slot for every key the plan holds never evicts, whatever the policy: its misses are
   the first use of each key.
 
-A warm start (``LayerPlan.warm``) is modelled by none of them: such a plan takes the reference path
-(``generic_misses``, which fills the pool through ``Decisions.warm``), for every policy and quota.
+A warm start (``LayerPlan.warm``, filled by ``Decisions.warm``): for LRU, FIFO and LFU the fill is the
+same as a prefix of uncounted accesses, each pinned alone, of every key the profile used, coldest first
+(``_warm_prefix``); the other policies take the reference path (``generic_misses``) for such a plan.
 """
 
 from __future__ import annotations
@@ -295,8 +296,39 @@ def first_uses(plan: LayerPlan) -> np.ndarray:
     return first
 
 
+def _warm_prefix(plan: LayerPlan) -> LayerPlan:
+    """The plan with its warm start written as accesses before its first step: every key of ``plan.warm``,
+    coldest first, each a step of its own, not counted.
+
+    For LRU, FIFO and LFU this is the fill of every quota at once.  During the prefix each key is accessed
+    once and never again, so each rule evicts the key that came in first (LRU: last used first; FIFO: loaded
+    first; LFU: one use each, the tie to the least recent): a quota of C holds the last C of the prefix
+    afterwards, the C hottest, which is what ``Decisions.warm`` fills, with the same order of last uses and
+    loads and one use each.  A key evicted during the prefix leaves nothing behind that these rules read
+    (its time and count are set anew when it comes back).  Its accesses are never counted."""
+    E = plan.shared_experts  # 0 for a layer's plan: its keys are the expert ids
+    keys = [layer * E + e for layer, e in reversed(plan.warm)]
+    n = len(keys)
+    layers = None
+    if plan.layers is not None:
+        layers = np.concatenate([np.array([layer for layer, _ in reversed(plan.warm)], np.int64), plan.layers])
+    return LayerPlan(np.concatenate([np.array(keys, np.int64), plan.keys.astype(np.int64)]),
+                     np.concatenate([np.ones(n, plan.sizes.dtype), plan.sizes]),
+                     np.concatenate([np.zeros(n, bool), plan.counted]),
+                     np.concatenate([np.zeros(n, plan.token.dtype), plan.token]), plan.layer, plan.probs, layers,
+                     plan.shared_experts, plan.n_experts)
+
+
+PREFIX_EXACT = (LRU, FIFO, LFU)  # a warm start is a prefix of accesses for these (``_warm_prefix``)
+
+
 def layer_misses(plan: LayerPlan, policy_cls: type[Policy], capacities: Sequence[int], fast: bool = True) -> dict[int, np.ndarray]:
     """Miss flag per access of one pool for each quota, by the fast path when there is one."""
+    if plan.warm and fast:
+        if policy_cls not in PREFIX_EXACT:
+            return {c: generic_misses(plan, policy_cls, c) for c in capacities}
+        n = len(plan.warm)
+        return {c: m[n:] for c, m in layer_misses(_warm_prefix(plan), policy_cls, capacities).items()}
     f = FAST_PATHS.get(policy_cls) if fast and not plan.warm else None
     if f is None:
         return {c: generic_misses(plan, policy_cls, c) for c in capacities}

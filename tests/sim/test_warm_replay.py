@@ -7,6 +7,7 @@ import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
+from test_replay import _random_trace, trace_params
 
 import moerun
 from moerun.files.profile import Profile, counts_of, read_profile
@@ -15,8 +16,6 @@ from moerun.model.sampling import Sampling
 from moerun.policies import FIFO, LFU, LRU, Optimal
 from moerun.sim import report as replay
 from moerun.sim.report import run_replay
-
-from test_replay import _random_trace, trace_params
 
 
 def _profile(counts, trace) -> Profile:
