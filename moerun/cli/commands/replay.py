@@ -167,6 +167,8 @@ def run(args) -> int:
     if args.routing is None:
         raise BadOption("no routing trace given: add --routing FILE")
     cli.refuse_without(args, "plot_layer", "plot", "--plot FILE")
+    if args.plot and args.warm_from:
+        raise BadOption("--plot draws pools that start empty; it does not draw a warm start yet: drop --plot or --warm-from")
     plot_layer = args.plot_layer or 0
     traces = []
 
