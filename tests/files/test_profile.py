@@ -125,3 +125,19 @@ def test_load_refuses_a_profile_of_another_model_and_a_warm_start_without_a_pool
         moerun.load(pebble, bare=True, warm_from=tmp_path / "scree.json")
     with pytest.raises(BadOption, match="warm_from"):
         moerun.load(pebble, warm_from=3)
+
+
+def test_profile_refuses_routing_options_with_a_trace_and_an_existing_output(pebble, pebble_profile, tmp_path, capsys):
+    d, _ = pebble_profile
+    for argv, phrase in (
+        (["--from-trace", d / "t.npz", "--text", d / "good.json"], "give one or the other"),
+        (["--from-trace", d / "t.npz", "--max-tokens", "5"], "give one or the other"),
+        (["--from-trace", tmp_path / "none.npz"], "no such"),
+    ):
+        capsys.readouterr()
+        code = cli.main(["profile", "--model", str(pebble), "--out", str(tmp_path / "p.json"), *map(str, argv)])
+        out, err = capsys.readouterr()
+        assert code == 2 and err.count("\n") == 1 and phrase in err, (argv, err)
+    assert not (tmp_path / "p.json").exists()
+    code = cli.main(["profile", "--model", str(pebble), "--out", str(d / "good.json"), "--from-trace", str(d / "t.npz")])
+    assert code == 2 and "already exists" in capsys.readouterr().err
