@@ -53,6 +53,8 @@ def _lru_misses(plan: LayerPlan, capacities: Sequence[int]) -> dict[int, np.ndar
     and before the start of i's step: that count is the rank of x in the
     "last use" row at the step start, computed here for all steps at once.
     """
+    if plan.warm:
+        raise ValueError("a warm plan goes through layer_misses (its fill as a prefix of accesses)")
     out: dict[int, np.ndarray] = {}
     maxstep = int(plan.sizes.max(initial=0))
     groups: dict[int, list[int]] = {}

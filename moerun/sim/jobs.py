@@ -301,6 +301,21 @@ class ProfileResult:
         }
 
 
+def _config_only(model_dir: Path):
+    """The model's ModelConfig from its config.json (an open checkpoint: and its headers), no weight read."""
+    from moerun.files.ckpt_config import is_open_checkpoint
+
+    if is_open_checkpoint(model_dir):
+        from moerun.files.checkpoint import Checkpoint
+        from moerun.files.ckpt_store import model_config
+
+        with Checkpoint.open(model_dir, require_tokenizer=False) as ck:
+            return model_config(ck, None)
+    from moerun.files.config import ModelConfig
+
+    return ModelConfig.load(model_dir)
+
+
 def profile(out: str | os.PathLike, model_dir: str | os.PathLike | None = None, text: str | os.PathLike | None = None,
             *, from_trace: str | os.PathLike | None = None, max_tokens: int | None = None, force: bool = False,
             mem_cap: int | str | None = None, max_context: int | None = None,
@@ -327,13 +342,7 @@ def profile(out: str | os.PathLike, model_dir: str | os.PathLike | None = None, 
     t0 = time.monotonic_ns()
     settings: dict = {}
     if from_trace is not None:
-        from moerun.files.ckpt_store import open_store
-
-        store = open_store(model_dir)
-        try:
-            c = store.config
-        finally:
-            store.close()
+        c = _config_only(model_dir)
         tr = read_trace(from_trace, model=(c.n_layers, c.n_experts, c.top_k))
         experts = tr.experts
         tokens = tr.n_tokens
