@@ -19,9 +19,9 @@ For the built-in policies (tests/test_replay.py checks equality on random and re
 - A pool with a slot for every key the plan holds never evicts, whatever the policy: its misses are
   the first use of each key.
 
-A warm start (``LayerPlan.warm``, filled by ``Decisions.warm``): for LRU, FIFO and LFU the fill is the
-same as a prefix of uncounted accesses, each pinned alone, of every key the profile used, coldest first
-(``_warm_prefix``); the other policies take the reference path (``generic_misses``) for such a plan.
+A warm start (``LayerPlan.warm``, filled by ``Decisions.warm``) is written as uncounted accesses before the
+plan's first step (``_warm_misses``), and the counters above run on that plan: one prefix for every quota
+(LRU, FIFO, LFU) or one per quota (the optimum, the score rules).
 """
 
 from __future__ import annotations
@@ -31,8 +31,9 @@ from collections.abc import Callable, Sequence
 import numpy as np
 
 from moerun.policies import FIFO, LFU, LRFU, LRU, Markov, Optimal, Orbit, Policy
+from moerun.runtime.residency import Residency
 from moerun.sim import tape
-from moerun.sim.steps import LayerPlan, generic_misses
+from moerun.sim.steps import LayerPlan, decisions_over, generic_misses
 
 _dense = tape.dense
 
@@ -298,39 +299,51 @@ def first_uses(plan: LayerPlan) -> np.ndarray:
     return first
 
 
-def _warm_prefix(plan: LayerPlan) -> LayerPlan:
-    """The plan with its warm start written as accesses before its first step: every key of ``plan.warm``,
-    coldest first, each a step of its own, not counted.
-
-    For LRU, FIFO and LFU this is the fill of every quota at once.  During the prefix each key is accessed
-    once and never again, so each rule evicts the key that came in first (LRU: last used first; FIFO: loaded
-    first; LFU: one use each, the tie to the least recent): a quota of C holds the last C of the prefix
-    afterwards, the C hottest, which is what ``Decisions.warm`` fills, with the same order of last uses and
-    loads and one use each.  A key evicted during the prefix leaves nothing behind that these rules read
-    (its time and count are set anew when it comes back).  Its accesses are never counted."""
+def _warm_prefix(plan: LayerPlan, pairs: list) -> LayerPlan:
+    """The plan with ``pairs`` (``(layer, expert)``, in order) accessed before its first step, each a step of its
+    own, not counted, and no warm start left to make."""
     E = plan.shared_experts  # 0 for a layer's plan: its keys are the expert ids
-    keys = [layer * E + e for layer, e in reversed(plan.warm)]
-    n = len(keys)
+    n = len(pairs)
+    keys = np.array([layer * E + e for layer, e in pairs], np.int64)
     layers = None
     if plan.layers is not None:
-        layers = np.concatenate([np.array([layer for layer, _ in reversed(plan.warm)], np.int64), plan.layers])
-    return LayerPlan(np.concatenate([np.array(keys, np.int64), plan.keys.astype(np.int64)]),
-                     np.concatenate([np.ones(n, plan.sizes.dtype), plan.sizes]),
-                     np.concatenate([np.zeros(n, bool), plan.counted]),
-                     np.concatenate([np.zeros(n, plan.token.dtype), plan.token]), plan.layer, plan.probs, layers,
-                     plan.shared_experts, plan.n_experts)
+        layers = np.concatenate([np.array([layer for layer, _ in pairs], np.int64), plan.layers])
+    return LayerPlan(np.concatenate([keys, plan.keys.astype(np.int64)]), np.concatenate([np.ones(n, plan.sizes.dtype), plan.sizes]),
+                     np.concatenate([np.zeros(n, bool), plan.counted]), np.concatenate([np.zeros(n, plan.token.dtype), plan.token]),
+                     plan.layer, plan.probs, layers, plan.shared_experts, plan.n_experts)
 
 
-PREFIX_EXACT = (LRU, FIFO, LFU)  # a warm start is a prefix of accesses for these (``_warm_prefix``)
+# For these rules one prefix serves every quota: every key the profile used, coldest first.  During it each key is
+# accessed once and never again, so each evicts the key that came in first (LRU: used last longest ago; FIFO:
+# loaded first; LFU: one use each, the tie to the least recent): a quota of C holds the last C afterwards, the C
+# hottest, which is what ``Decisions.warm`` fills, with the same order of last uses and loads and one use each;
+# a key evicted during the prefix leaves nothing these rules read (its time and count are set anew when it returns).
+PREFIX_EXACT = (LRU, FIFO, LFU)
+
+
+def _warm_misses(plan: LayerPlan, policy_cls: type[Policy], capacities: Sequence[int]) -> dict[int, np.ndarray]:
+    """A warm plan's misses by the fast paths: its fill written as accesses before its first step.  A fill is
+    accesses of distinct keys, nothing pinned, into an empty pool with room for them (``Decisions.warm``), so a
+    prefix of exactly those keys, each a step of its own and not counted (no ``Policy.routed``, as the fill), is
+    the same fill for any policy; the offline optimum's access sequence begins with them too, as
+    ``steps.plan_decisions`` makes it.  LRU, FIFO and LFU take one prefix for every quota (``PREFIX_EXACT``);
+    every other rule one prefix per quota, its keys chosen by the decision core (``Decisions.warm_keys``)."""
+    if policy_cls in PREFIX_EXACT:
+        pairs = list(reversed(plan.warm))
+        return {c: m[len(pairs):] for c, m in layer_misses(_warm_prefix(plan, pairs), policy_cls, capacities).items()}
+    space = plan.key_space
+    out = {}
+    for c in capacities:
+        cap = min(c, max(space, 1)) if space is not None else c  # as plan_decisions sizes the pool
+        pairs = decisions_over(plan, Residency(cap, LRU())).warm_keys(plan.warm)  # which keys: not the policy's choice
+        out[c] = layer_misses(_warm_prefix(plan, pairs), policy_cls, [c])[c][len(pairs):]
+    return out
 
 
 def layer_misses(plan: LayerPlan, policy_cls: type[Policy], capacities: Sequence[int], fast: bool = True) -> dict[int, np.ndarray]:
     """Miss flag per access of one pool for each quota, by the fast path when there is one."""
-    if plan.warm and fast:
-        if policy_cls not in PREFIX_EXACT:
-            return {c: generic_misses(plan, policy_cls, c) for c in capacities}
-        n = len(plan.warm)
-        return {c: m[n:] for c, m in layer_misses(_warm_prefix(plan), policy_cls, capacities).items()}
+    if plan.warm and fast and policy_cls in FAST_PATHS:
+        return _warm_misses(plan, policy_cls, capacities)
     f = FAST_PATHS.get(policy_cls) if fast and not plan.warm else None
     if f is None:
         return {c: generic_misses(plan, policy_cls, c) for c in capacities}
