@@ -21,7 +21,7 @@ For the built-in policies (tests/test_replay.py checks equality on random and re
 
 A warm start (``LayerPlan.warm``, filled by ``Decisions.warm``) is written as uncounted accesses before the
 plan's first step (``_warm_misses``), and the counters above run on that plan: one prefix for every quota
-(LRU, FIFO, LFU) or one per quota (the optimum, the score rules).
+(LRU, FIFO, LFU) or one per quota (the optimum); the score rules take the reference path for it.
 """
 
 from __future__ import annotations
@@ -327,7 +327,11 @@ def _warm_misses(plan: LayerPlan, policy_cls: type[Policy], capacities: Sequence
     prefix of exactly those keys, each a step of its own and not counted (no ``Policy.routed``, as the fill), is
     the same fill for any policy; the offline optimum's access sequence begins with them too, as
     ``steps.plan_decisions`` makes it.  LRU, FIFO and LFU take one prefix for every quota (``PREFIX_EXACT``);
-    every other rule one prefix per quota, its keys chosen by the decision core (``Decisions.warm_keys``)."""
+    the optimum one prefix per quota, its keys chosen by the decision core (``Decisions.warm_keys``).  The score
+    rules take the reference path: a tape per quota (one pass of the policy each, and the tape's replay) measured
+    slower than the reference path's one pass per quota (docs/research/measurements.md, "Warm starts")."""
+    if getattr(policy_cls, "history_scores", False):
+        return {c: generic_misses(plan, policy_cls, c) for c in capacities}
     if policy_cls in PREFIX_EXACT:
         pairs = list(reversed(plan.warm))
         return {c: m[len(pairs):] for c, m in layer_misses(_warm_prefix(plan, pairs), policy_cls, capacities).items()}
