@@ -310,6 +310,7 @@ class Engine:
             "lookahead": self.options.get("lookahead", 1),
             "link_speed_emulated": self.options.get("link_speed"),
             "partial": partial,
+            **({"warm_from": self.options["warm_from"]} if self.options.get("warm_from") else {}),
             **({"synthetic": True, "note": RANDOM_NOTE} if self.config.extra.get("synthetic") else {}),
             **(extra or {}),
         }

@@ -112,7 +112,7 @@ def replay(trace: str | os.PathLike, evict: str | Sequence[str] = tuple(DEFAULT_
 # ---------------------------------------------------------------------------------------------- record
 
 # Keys of the engine's trace metadata that describe a live pool, not a teacher-forced pass.
-_LIVE_ONLY = ("evict", "slots", "split", "prefetch", "lookahead", "link_speed_emulated")
+_LIVE_ONLY = ("evict", "slots", "split", "prefetch", "lookahead", "link_speed_emulated", "warm_from")
 
 
 def windows(ids, max_seq_len: int, bos: int | None) -> list[np.ndarray]:

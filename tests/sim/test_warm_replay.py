@@ -100,6 +100,7 @@ def test_replay_with_the_profile_reproduces_a_live_warm_runs_hits_and_misses(peb
         pool = eng.stats["pool"]
         slots = list(eng.budget.slots)
     trace = read_trace(tmp_path / "live.npz")
+    assert trace.meta["warm_from"] == str(tmp_path / "p.json")
     prof = read_profile(tmp_path / "p.json")
     for fast in (True, False):
         if split == "even":
@@ -152,3 +153,16 @@ def test_a_profile_naming_experts_the_trace_never_uses_still_fills_them(cls):
     doc = run_replay(trace, [cls.name], [1, 2], baselines=False, fast=True, warm=warm)
     by = replay.overall(doc["results"], cls.name)
     assert (by[1]["misses"], by[2]["misses"]) == (2, 2)
+
+
+def test_replay_with_a_warm_start_returns_what_the_command_prints(pebble, tmp_path, capsys):
+    from _jobs import as_json, cli_json
+
+    moerun.record(tmp_path / "t.npz", pebble, max_tokens=150)
+    moerun.profile(tmp_path / "p.json", pebble, max_tokens=60)
+    result = moerun.replay(str(tmp_path / "t.npz"), "lru,optimal", "2-5", shared_pool=False, prefetch=1,
+                           warm_from=str(tmp_path / "p.json"))
+    code, doc = cli_json(capsys, "replay", "--routing", tmp_path / "t.npz", "--evict", "lru,optimal", "--slots", "2-5",
+                         "--prefetch", 1, "--warm-from", tmp_path / "p.json")
+    assert code == 0 and doc["warm_from"]["source"] == "text"
+    assert as_json(result.to_json()) == doc  # nothing in it is a timing
