@@ -1,7 +1,7 @@
 """moerun: a CPU-only reference engine and workbench for offloaded mixture-of-experts inference.
 
 The public API (docs/guide/api.md): ``load`` and ``EngineOptions`` for the engine, and one function
-per job of the command line (``plan``, ``replay``, ``record``, ``verify``, ``score``, ``probe``,
+per job of the command line (``plan``, ``replay``, ``record``, ``profile``, ``verify``, ``score``, ``probe``,
 ``quantize``, ``synth``), each returning a result whose ``to_json()`` is what the command's ``--json``
 prints.  Names are imported on first use (PEP 562), so ``import moerun`` loads neither numpy nor an
 offline tool, and changes no environment variable (BLAS threads: docs/guide/api.md).
@@ -27,6 +27,8 @@ _LAZY = {
     "PlanResult": "moerun.planner.jobs",
     "probe": "moerun.prober.jobs",
     "ProbeResult": "moerun.prober.jobs",
+    "profile": "moerun.sim.jobs",
+    "ProfileResult": "moerun.sim.jobs",
     "record": "moerun.sim.jobs",
     "RecordResult": "moerun.sim.jobs",
     "replay": "moerun.sim.jobs",
@@ -60,6 +62,7 @@ __all__ = [
     "OutputError",
     "PlanResult",
     "ProbeResult",
+    "ProfileResult",
     "QuantizeResult",
     "RecordResult",
     "ReplayResult",
@@ -73,6 +76,7 @@ __all__ = [
     "load",
     "plan",
     "probe",
+    "profile",
     "quantize",
     "record",
     "replay",

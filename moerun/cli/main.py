@@ -21,7 +21,7 @@ from moerun.files.bundled import DEFAULT, bundled_models, resolve_model
 # numpy loads (the console script and ``python -m moerun`` import this module, then call entry()).
 BLAS_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
 
-COMMANDS = ["generate", "verify", "inspect", "probe", "synth", "record", "replay", "quantize", "score", "plan"]
+COMMANDS = ["generate", "verify", "inspect", "probe", "synth", "record", "profile", "replay", "quantize", "score", "plan"]
 
 
 class ArgParser(argparse.ArgumentParser):

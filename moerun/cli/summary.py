@@ -80,6 +80,9 @@ def run_text(engine, gen=None) -> str:
         lines.append(table(["budget", "size"], rows))
         lines.append(slots_text(b.split, b.slots))
     pool = doc.get("pool")
+    if pool and engine.options.get("warm_from"):
+        lines.append(f"warm start from {engine.options['warm_from']}: {pool['warm_loads']} experts read before the first "
+                     f"token in {pool['warm_s'] * 1e3:.1f} ms (part of the prefill time)")
     if pool and b.cap is not None:
         rows = [
             [str(p["layer"]), p["accesses"], p["hits"], p["prefetch_hits"], p["misses"], pct(p["hit_rate"])]

@@ -60,6 +60,7 @@ class PlanResult:
     recommended: Prediction | None = None
     split_comparison: dict | None = None  # None when only a shared pool fits the cap
     target: dict | None = None  # {"tok_s", "smallest_cap_bytes", "reachable", "best_tok_s"}
+    warm_from: dict | None = None  # the routing profile every setting starts warm from (None: cold starts)
 
     @property
     def ok(self) -> bool:
@@ -81,6 +82,8 @@ class PlanResult:
             "per_layer_min_cap_bytes": self.per_layer_min_cap_bytes,
             "all_resident_cap_bytes": self.all_resident_cap_bytes,
         }
+        if self.warm_from is not None:
+            doc["warm_from"] = self.warm_from
         if self.note:
             doc["note"] = self.note
         if self.recommended is not None:
@@ -180,7 +183,8 @@ def _record(model_dir: Path, tokens: int, mem_cap: int | None = None) -> Trace:
         return eng.finish_trace(extra={"source": "record", "text": str(held), "prefill_tokens": 0})
 
 
-def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict, shared_pool) -> dict:
+def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict, shared_pool,
+            warm_from=None) -> dict:
     """Every input checked before any work: options, probe, shape, model, trace, cap (then calibration)."""
     if link_speed is not None and probe is not None:
         raise BadOption("--link-speed and --probe contradict each other (both say how fast a page-in is); give one")
@@ -235,12 +239,19 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
         c = store.config
         model = {"L": c.n_layers, "E": c.n_experts, "k": c.top_k, "expert_bytes": store.expert_nbytes,
                  "fixed": sum(fixed_bytes(c, store.dense_nbytes, store.codec.scratch_bytes())), "dir": model_dir,
+                 "d_model": c.d_model,
                  "what": f"model {model_dir}", "note": RANDOM_NOTE if c.extra.get("synthetic") else None}
         # too large to run whole: timed at its shape and on a few of its experts, its routing recorded under a cap
         model["whole"] = fits_whole(model["fixed"] + c.n_layers * c.n_experts * slot_bytes(store.slot_nbytes))
         store.close()
         if not trace and not (model_dir / "heldout.txt").exists():
             raise BadInput(f"{model_dir} has no heldout.txt; give a routing trace with --routing FILE")
+    warm = None
+    if warm_from is not None:
+        from moerun.files.profile import read_profile
+
+        warm = read_profile(warm_from)
+        warm.check_model(model["L"], model["E"], model["k"], model.get("d_model"), model["what"])
     routing = None
     if trace:
         routing = read_trace(trace, n_experts=model["E"])
@@ -260,7 +271,7 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
         )
     page = page_seconds(model["expert_bytes"], rate, probe_doc, regime or "warm")
     return {"names": names, "cap": cap, "tokens": tokens, "model": model, "trace": routing, "slot": slot, "page": page,
-            "emulated": rate is not None}
+            "emulated": rate is not None, "warm": warm}
 
 
 def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int, str], None],
@@ -295,7 +306,9 @@ def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int,
         check_decode_steps(trace, "the recorded trace")
     step(2, "hit curves")
     pf = [pc for pc in PREFETCH_CANDIDATES if pc[0] == 0 or trace.guesses is not None]
-    space = Space(trace, costs, m["L"], m["E"], m["k"], m["fixed"], inp["slot"], inp["names"], pf, bool(shared_pool))
+    warm = inp.get("warm")
+    space = Space(trace, costs, m["L"], m["E"], m["k"], m["fixed"], inp["slot"], inp["names"], pf, bool(shared_pool),
+                  profile=warm.counts if warm is not None else None)
     return space, cal_note, cal
 
 
@@ -304,7 +317,7 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
          routing: str | os.PathLike | None = None, max_tokens: int | None = None, shape: str | os.PathLike | None = None,
          evict: str | Sequence[str] | None = None, shared_pool: bool = False, recalibrate: bool = False,
          progress: Callable[[int, str], None] | None = None, notice: Callable[[str], None] | None = None,
-         trace: str | os.PathLike | None = None) -> PlanResult:
+         trace: str | os.PathLike | None = None, warm_from=None) -> PlanResult:
     """Predict decode speed for ``mem_cap`` and recommend slots per layer, policy and prefetch (``moerun plan``).
 
     Page-in costs come from ``link_speed`` (emulated link) or a saved ``probe`` file (its ``regime``, "warm"
@@ -312,6 +325,8 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
     model's held-out text (its first ``max_tokens`` tokens, default 2048); ``shape`` plans for a model described
     by a JSON shape file (with ``routing``).  ``trace``: the old name of ``routing`` (a DeprecationWarning).  ``evict``: the policies to consider (default every online one); ``shared_pool`` also
     considers one pool for all layers; ``target``: also find the smallest cap reaching this tok/s.
+    ``warm_from``: a routing profile (path or Profile, ``moerun profile``): every setting is predicted with a warm
+    start from it (``Decisions.warm``), and its counts give one more split of slots per layer ("profile").
     ``progress(step, what)`` as the work advances (steps 0 to 5); ``notice(line)`` when something the user
     should know happens on the way (a cached calibration that is not valid, measured again).
     """
@@ -326,7 +341,8 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
                       DeprecationWarning, stacklevel=2)
         routing = trace
     trace = routing
-    inp = _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict, shared_pool)
+    inp = _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_tokens, shape, evict, shared_pool,
+                  warm_from)
     space, cal_note, cal = _space(inp, shared_pool, recalibrate, step, notice)
     m = inp["model"]
     result = PlanResult(
@@ -349,6 +365,10 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
         experts=space.experts,
         note=m["note"],
     )
+    if inp["warm"] is not None:
+        from moerun.sim.report import warm_json
+
+        result.warm_from = warm_json(inp["warm"])
     rec = None
     if inp["cap"] is not None:
         step(3, "settings for the cap")

@@ -27,10 +27,11 @@ from moerun.planner.calibration import (  # noqa: F401  (the planner's public na
 )
 from moerun.planner.timeline import Costs, Prediction, predict, step_misses  # noqa: F401
 from moerun.policies import LRU
+from moerun.runtime.decisions import hottest
 from moerun.runtime.link import CHUNK
 from moerun.sim.counts import replay_counts
 from moerun.sim.fast import FAST_PATHS, layer_misses
-from moerun.sim.steps import layer_plans, prefill_tokens, shared_plan
+from moerun.sim.steps import layer_plans, prefill_tokens, shared_plan, warm_plans
 
 PREFETCH_CANDIDATES = [(0, 1), (1, 1), (2, 1), (2, 2), (3, 1)]
 PREFETCH_POLICIES = 2  # prefetch is simulated for the policies that do best without it
@@ -42,7 +43,7 @@ REPLAY_TOKENS = 6144  # decode tokens of the trace the search replays (the first
 # a speed; the costs the prediction rests on are measured to 5% (calibration.SPREAD).  The figure itself: common
 # practice, no source.
 TIE = 0.005
-SPLITS = ("even", "shared", "uneven")  # simplest first: no option, one flag, a slot count per layer
+SPLITS = ("even", "shared", "uneven", "profile")  # simplest first: no option, one flag, a slot count per layer
 
 
 def hit_curves(trace: Trace, policy: str, max_slots: int) -> list[list[int]]:
@@ -88,6 +89,17 @@ def best_split(curves: list[list[int]], total: int, low: int, high: int) -> list
         split.append(s_)
         u -= s_
     return split[::-1]
+
+
+def profile_curves(counts) -> list[list[int]]:
+    """Misses per layer for 1..experts slots (index s-1) by a routing profile's counts alone: a layer holding its
+    s most used experts misses every use of the others (the profile has no order of uses; what a warm start
+    fills is exactly those s).  ``best_split`` over these gives the profile's slots per layer."""
+    out = []
+    for row in np.asarray(counts, np.int64):
+        top = np.sort(row)[::-1]
+        out.append((int(row.sum()) - np.cumsum(top)).tolist())
+    return out
 
 
 def even_split(total: int, L: int, high: int) -> list[int]:
@@ -138,8 +150,12 @@ class Space:
     prefetches: list  # (guesses, lookahead) pairs
     shared: bool = False  # also consider one pool shared by all layers
     prune: bool = True  # simulate only the settings that can win (``candidates``)
+    # a routing profile's counts [layers][experts]: every setting starts warm from it (``Decisions.warm``), and its
+    # counts give one more per-layer split, "profile" (``profile_curves``); None: cold starts, no such split
+    profile: np.ndarray | None = None
 
     def __post_init__(self):
+        self.warm = hottest(self.profile) if self.profile is not None else None
         self._ceilings: dict = {}
         self._shared_ceilings: dict = {}
         self._shared_misses: dict = {}
@@ -155,7 +171,7 @@ class Space:
         # no setting gives a layer fewer slots than top_k (a pool per layer needs them), so those are replayed:
         # one replay per policy and layer serves every quota
         caps = range(min(self.top_k, self.experts), self.experts + 1)
-        plans = layer_plans(self.trace)
+        plans = warm_plans(layer_plans(self.trace), self.warm)
         for n in self.policies:
             for layer, plan in enumerate(plans):
                 for cap, v in step_misses(self.trace, n, layer, caps, plan).items():
@@ -166,7 +182,7 @@ class Space:
 
     def _predict(self, slots, policy, pf, la, shared=False) -> Prediction:
         return predict(self.trace, slots, policy, pf, la, self.costs, shared, SEARCH_TOKENS,
-                       lambda layer, cap: self._steps[(policy, layer, cap)])
+                       lambda layer, cap: self._steps[(policy, layer, cap)], self.warm)
 
     @property
     def min_cap(self) -> int:
@@ -201,7 +217,9 @@ class Space:
             chosen = t.experts[P:T] >= 0
             compute = n * (c.head + sum(a + per_access * t.top_k for a in c.attn)) + int(chosen.sum()) * c.expert
             keys = lambda ex: set((np.nonzero(ex >= 0)[1] * max(t.n_experts, 1) + ex[ex >= 0]).tolist())  # noqa: E731
-            cold = len(keys(t.experts[P:T]) - keys(t.experts[:P]))  # (layer, expert) pairs no prefill loaded
+            warmed = set() if self.warm is None else {layer * max(t.n_experts, 1) + e for layer, e in self.warm}
+            # (layer, expert) pairs no prefill loaded (nor a warm start may have: it fills at most these)
+            cold = len(keys(t.experts[P:T]) - keys(t.experts[:P]) - warmed)
             arrive = c.copy if c.emulated else c.page
             if prefetch:
                 arrive = min(arrive, c.place)
@@ -224,7 +242,7 @@ class Space:
             n = T - P
             L = t.n_layers
             if self._shared_plan is None:
-                self._shared_plan = shared_plan(t)
+                self._shared_plan = warm_plans([shared_plan(t)], self.warm)[0]
             plan = self._shared_plan
             m = self._shared_step_misses(policy, max(total, 1))[: n * L].astype(np.float64)
             k = plan.sizes[plan.counted][: n * L].astype(np.float64)
@@ -248,7 +266,7 @@ class Space:
         if C not in got:
             cls = policies.get(policy)
             sizes = [C]
-            if cls is LRU or (getattr(cls, "history_scores", False) and cls in FAST_PATHS):
+            if cls is LRU or (not self.warm and getattr(cls, "history_scores", False) and cls in FAST_PATHS):
                 L, k = self.layers, self.top_k
                 sizes = sorted({C, *range(k, L * k, L), *range(L * k, L * self.experts + 1, L)} - set(got))
             plan = self._shared_plan
@@ -279,6 +297,10 @@ class Space:
         ranked = list(names)
         if per_layer:
             splits = {n: {"even": even_split(total, L, E), "uneven": best_split(self.curves[n], total, k, E)} for n in names}
+            if self.profile is not None:
+                by_profile = best_split(profile_curves(self.profile), total, k, E)
+                for n in names:
+                    splits[n]["profile"] = by_profile
             for n in names:
                 for label, sl in splits[n].items():
                     out.append((label, self._predict(sl, n, 0, 1)))

@@ -36,11 +36,11 @@ import numpy as np
 from moerun import policies
 from moerun.errors import BadOption, BadTrace
 from moerun.files.trace import Trace
-from moerun.runtime.decisions import Placed, Quotas, Shared, prefill_schedule
+from moerun.runtime.decisions import Placed, Quotas, Shared, make_decisions, prefill_schedule
 from moerun.runtime.guesses import Timing, guess_pays, worth_guessing
 from moerun.runtime.link import Link
 from moerun.sim.fast import layer_misses
-from moerun.sim.steps import layer_plans, plan_policy, prefill_tokens
+from moerun.sim.steps import layer_plans, plan_policy, prefill_tokens, warm_plans
 
 SIM_TOKENS = 4096  # decode tokens simulated step by step (the additive path takes every token)
 
@@ -98,6 +98,8 @@ class Prediction:
     per_layer_hit_rate: list[float] = field(default_factory=list)
     shared: bool = False
     tokens: int = 0  # decode tokens the prediction covers
+    warm_loads: int = 0  # experts a warm start reads before the first token (0: a cold start)
+    warm_s: float = 0.0  # their reads: once per run, before the first token, not in ``step_s``
 
     @property
     def hit_rate(self) -> float:
@@ -130,22 +132,38 @@ def _check(trace: Trace, slots: list[int], prefetch: int, lookahead: int, costs:
 
 
 def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahead: int, costs: Costs,
-            shared: bool = False, max_tokens: int = SIM_TOKENS, step_misses=None) -> Prediction:
+            shared: bool = False, max_tokens: int = SIM_TOKENS, step_misses=None, warm=None) -> Prediction:
     """Predict decode tok/s along ``trace`` (prefill tokens only warm the pool) for one setting.
 
     ``step_misses(layer, slots)``, if given, returns that layer's (accesses, misses) per decode step for a
-    quota (a cache the planner's search keeps); otherwise they are replayed here."""
+    quota (a cache the planner's search keeps); otherwise they are replayed here.  ``warm``: a warm start's
+    ``(layer, expert)`` pairs, hottest first (``decisions.hottest`` of a profile): the pool is filled from them
+    before the first step (``Decisions.warm``, as the live pool and replay fill it); the cache ``step_misses``
+    must then be of replays with the same warm start.  The fill's reads are ``warm_s``, once per run."""
     _check(trace, slots, prefetch, lookahead, costs, shared)
     policies.get(policy)
     if not prefetch and not shared:
-        return _additive(trace, slots, policy, costs, step_misses)
-    return _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_tokens)
+        pr = _additive(trace, slots, policy, costs, step_misses, warm)
+    else:
+        pr = _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_tokens, warm)
+    if warm:
+        pr.warm_loads = warm_loads(trace, slots, shared, warm)
+        pr.warm_s = pr.warm_loads * costs.page  # read one after the other (over a link: its transfers in a row)
+    return pr
 
 
-def step_misses(trace: Trace, policy: str, layer: int, capacities, plan=None) -> dict:
+def warm_loads(trace: Trace, slots: list[int], shared: bool, warm) -> int:
+    """Experts a warm start fills into this pool (``Decisions.warm_keys``)."""
+    L, E = trace.n_layers, max(trace.n_experts, 1)
+    core = make_decisions(lambda _: policies.LRU(), [max(s, 1) for s in slots], L, E, shared)
+    return len(core.warm_keys(warm))
+
+
+def step_misses(trace: Trace, policy: str, layer: int, capacities, plan=None, warm=None) -> dict:
     """For each quota: (accesses, misses) per decode step of one layer, by replay (``plan``: that layer's
-    ``layer_plans(trace)`` entry, if the caller holds it)."""
-    plan = plan if plan is not None else layer_plans(trace)[layer]
+    ``layer_plans(trace)`` entry, if the caller holds it, with its warm start; else ``warm``, as ``predict``'s)."""
+    if plan is None:
+        plan = warm_plans([layer_plans(trace)[layer]], warm)[0]
     flags = layer_misses(plan, policies.get(policy), list(capacities))
     counted = plan.counted_per_access()
     out = {}
@@ -182,7 +200,7 @@ def layer_step_ns(k: int, misses: int, c: dict) -> tuple[float, float]:
     return now, stall
 
 
-def _additive(trace: Trace, slots: list[int], policy: str, costs: Costs, cached=None) -> Prediction:
+def _additive(trace: Trace, slots: list[int], policy: str, costs: Costs, cached=None, warm=None) -> Prediction:
     k = trace.top_k
     P = prefill_tokens(trace)
     per_access = costs.pool + costs.policy.get(policy, 0.0)
@@ -191,7 +209,8 @@ def _additive(trace: Trace, slots: list[int], policy: str, costs: Costs, cached=
     accesses = misses = 0
     layer_hit = []
     for layer in range(trace.n_layers):
-        sizes, per_step = cached(layer, slots[layer]) if cached else step_misses(trace, policy, layer, [slots[layer]])[slots[layer]]
+        sizes, per_step = (cached(layer, slots[layer]) if cached else
+                           step_misses(trace, policy, layer, [slots[layer]], warm=warm)[slots[layer]])
         c = {"attn": costs.attn[layer] + per_access * k, "expert": costs.expert, "page": costs.page, "copy": costs.copy,
              "wait": costs.wait, "emulated": costs.emulated}
         for n in np.unique(sizes):
@@ -218,7 +237,7 @@ class _Sim:
     """The simulated engine: the pool's decisions (``moerun.runtime.decisions``) on simulated time, the
     link or the reader's queue, and the clock (ns)."""
 
-    def __init__(self, trace, slots, policy, costs, shared, prefetch):
+    def __init__(self, trace, slots, policy, costs, shared, prefetch, warm=None):
         L, E = trace.n_layers, max(trace.n_experts, 1)
         cls = policies.get(policy)
         self.L, self.E, self.k = L, E, trace.top_k
@@ -227,6 +246,8 @@ class _Sim:
         else:
             plans = layer_plans(trace)
             self.core = Quotas([max(s, 1) for s in slots], [plan_policy(cls, plan) for plan in plans])
+        if warm:
+            self.core.warm(warm)  # untimed here: the fill is ``Prediction.warm_s``, once per run
         ns = 1e9
         self.c = {name: getattr(costs, name) * ns for name in ("expert", "head", "page", "wait", "copy", "guess", "place")}
         self.attn = [a * ns + (costs.pool + costs.policy.get(policy, 0.0)) * ns * self.k for a in costs.attn]
@@ -356,11 +377,11 @@ class _Sim:
         self.core.done()
 
 
-def _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_tokens) -> Prediction:
+def _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_tokens, warm=None) -> Prediction:
     L = trace.n_layers
     P = prefill_tokens(trace)
     T = min(trace.n_tokens, P + max_tokens)
-    sim = _Sim(trace, slots, policy, costs, shared, prefetch)
+    sim = _Sim(trace, slots, policy, costs, shared, prefetch, warm)
     ex = trace.experts.tolist()
     for layer in range(L):  # prefill: each layer's distinct experts once, ascending, pinned alone (as the pool does)
         sim.prefill(layer, (ex[t][layer] for t in range(P)))

@@ -16,6 +16,9 @@ loads are instant and always pay.
 
 ``Quotas`` is a pool per layer (keys are expert ids), ``Shared`` one pool for every layer (keys are
 ``layer * n_experts + expert``; a guess never evicts an expert the current layer computes).
+
+A warm start (``warm``) fills an empty pool with the hottest experts of a profile before the first
+step, the same fill for all three drivers (``hottest`` ranks the profile's counts).
 """
 
 from __future__ import annotations
@@ -59,6 +62,15 @@ def prefill_schedule(rows: Iterable[Iterable[int]]) -> list[int]:
     """The prefill block of one layer: each distinct expert of its tokens' rows once, ascending (-1 is
     padding).  Each is then accessed pinned alone (``Decisions.prefill``)."""
     return sorted({e for row in rows for e in row if e >= 0})
+
+
+def hottest(counts) -> list[tuple[int, int]]:
+    """The ``(layer, expert)`` pairs of a profile's counts ([layers][experts], whole numbers) that were used at
+    all, hottest first: the most uses first, ties to the lower layer, then the lower expert id.  ``warm``
+    fills from the front of this ranking (each layer from its own pairs, in the same order)."""
+    pairs = [(-int(n), layer, e) for layer, row in enumerate(counts) for e, n in enumerate(row) if n > 0]
+    pairs.sort()
+    return [(layer, e) for _, layer, e in pairs]
 
 
 class Decisions:
@@ -167,6 +179,38 @@ class Decisions:
     def done(self) -> None:
         """The layer being computed is finished: nothing is pinned."""
         self.pinned = ()
+
+    # ------------------------------------------------------------------ warm start
+    def warm_keys(self, ranked: Sequence[tuple[int, int]]) -> list[tuple[int, int]]:
+        """The ``(layer, expert)`` pairs ``warm`` fills from ``ranked`` (hottest first, ``hottest``), in the order
+        it fills them: a pool per layer takes the first ``capacity`` of its own layer's pairs, a shared pool the
+        first ``capacity`` of all; then they are taken coldest first, so that the hottest comes in last."""
+        taken: dict[int, int] = {}  # id of a Residency -> pairs taken for it
+        out = []
+        for layer, e in ranked:
+            r = self.res_of[layer]
+            n = taken.get(id(r), 0)
+            if n < r.capacity:
+                taken[id(r)] = n + 1
+                out.append((layer, e))
+        out.reverse()
+        return out
+
+    def warm(self, ranked: Sequence[tuple[int, int]]) -> list[tuple[int, int, int]]:
+        """Fill an empty pool before the first step from ``ranked`` (``hottest`` of a profile): each pair of
+        ``warm_keys`` is accessed in turn, nothing pinned, as if the run had used it just before its first
+        step, coldest first: the policy is told ``inserted`` at its own clock tick (the clock advances by one
+        per pair), so to a recency rule the hottest is the most recent, and to the offline optimum (whose
+        access sequence then starts with these keys) each key's next use is its first use in the run.  The
+        pool has room for every pair, so nothing is evicted.  Returns ``(layer, expert, slot)`` per pair filled,
+        in that order (the live pool reads each expert into its slot)."""
+        out = []
+        for layer, e in self.warm_keys(ranked):
+            hit, slot, victim = self.res_of[layer].access(self.base[layer] + e, ())
+            if hit or victim is not None:  # distinct pairs into an empty pool with room for them: neither happens
+                raise RuntimeError("a warm start fills an empty pool with distinct experts: no hit, no eviction")
+            out.append((layer, e, slot))
+        return out
 
     # ------------------------------------------------------------------ guesses
     def place(self, target: int, guesses: Sequence[int], pays: Callable[[], bool] | None = None) -> Iterator[Placed | Declined]:

@@ -106,6 +106,25 @@ class Engine:
             self.prefetcher = Prefetcher(self.pool, rule, options["prefetch"], options["lookahead"], reader,
                                          self.prefetch_from)
         self.routing = None  # the forward pass's routing: None for the model's own routers, or a ReplayedRouting
+        self._warm: list | None = None  # a warm start not made yet: (layer, expert) pairs, hottest first
+
+    def warm_from(self, profile) -> None:
+        """Fill the pool from a routing profile (moerun.files.profile) before the next pass (``warm_start``)."""
+        from moerun.runtime.decisions import hottest
+
+        if self.pool is None:
+            raise BadOption("a warm start fills the expert pool; this engine has none")
+        self._warm = hottest(profile.counts)
+        self.options["warm_from"] = profile.path or "routing profile"
+
+    def warm_start(self) -> int:
+        """Make the warm start now, if one is waiting: the experts read (0 if none).  ``generate`` calls it inside
+        its first call's prefill time (so the fill is part of the time to the first token and of ``prefill_s``),
+        ``logits`` before its pass; its own time is ``stats["pool"]["warm_s"]``."""
+        if self._warm is None:
+            return 0
+        ranked, self._warm = self._warm, None
+        return self.pool.warm(ranked)
 
     def replay_routing(self, routing) -> None:
         """Take every layer's routing from a trace (a path or a Trace) from now on (moerun.model.routing)."""
@@ -168,6 +187,7 @@ class Engine:
     def logits(self, token_ids) -> np.ndarray:
         """Float32 logits [len, vocab_size] from one forward pass over the sequence."""
         ids = self._check_ids(token_ids)
+        self.warm_start()
         self.experts.begin_step(-1)
         x = self.model.forward(ids, 0, self.cache, self.experts, self.routing, self._observer())
         self.store.check_unchanged()
@@ -178,6 +198,7 @@ class Engine:
         output matrix applied to one pass's rows after another, so only one pass's logits exist at once (the
         budget's scratch counts one; a 4096-token window of a 150k vocabulary would take 2.5 GB at once)."""
         ids = self._check_ids(token_ids)
+        self.warm_start()
         self.experts.begin_step(-1)
         x = self.model.forward(ids, 0, self.cache, self.experts, self.routing, self._observer())
         self.store.check_unchanged()
@@ -211,6 +232,7 @@ class Engine:
         sampler = Sampler(sampling or Sampling())
         kept: list[np.ndarray] = []
         t0 = time.monotonic_ns()
+        self.warm_start()  # charged to the prefill: part of the time to the first token
         observer = self._observer()
         self.experts.begin_step(-1)
         x = self.model.forward(ids, 0, self.cache, self.experts, self.routing, observer)
@@ -288,6 +310,7 @@ class Engine:
             "lookahead": self.options.get("lookahead", 1),
             "link_speed_emulated": self.options.get("link_speed"),
             "partial": partial,
+            **({"warm_from": self.options["warm_from"]} if self.options.get("warm_from") else {}),
             **({"synthetic": True, "note": RANDOM_NOTE} if self.config.extra.get("synthetic") else {}),
             **(extra or {}),
         }

@@ -19,6 +19,7 @@ from moerun import policies
 from moerun.errors import BadOption
 from moerun.files.bundled import resolve_model
 from moerun.files.ckpt_store import open_store
+from moerun.files.profile import Profile, read_profile
 from moerun.files.store import MECHANISMS, ModelStore
 from moerun.files.trace import Trace
 from moerun.model.tokenizer import Tokenizer
@@ -64,6 +65,8 @@ class EngineOptions:
     expert_slots: "auto", "stored" or "float32": how pool slots hold an open checkpoint's BF16/F16 experts
     (``widen_experts``).  dense_weights: "float32" (widened once) or "stored": an open checkpoint's dense
     matrices kept as stored, widened a block at a time at each use (half the memory; moerun.model.operands).
+    warm_from: a routing profile (path or moerun.files.profile.Profile): the pool is filled with each layer's
+    hottest experts (a shared pool: the hottest of all) before the first pass (``Engine.warm_start``).
     """
 
     mem_cap: int | str | None = None
@@ -85,6 +88,7 @@ class EngineOptions:
     max_context: int | None = None
     expert_slots: str = "auto"
     dense_weights: str = "float32"
+    warm_from: str | os.PathLike | Profile | None = None
 
     def __post_init__(self) -> None:
         self._check_types()
@@ -143,6 +147,11 @@ class EngineOptions:
             raise BadOption("slots (per-layer quotas) and split='shared' (one pool for every layer) contradict each other; give one")
         if self.baseline is not None and self.baseline not in BASELINES:
             raise BadOption(f"unknown baseline {self.baseline!r}; known: {', '.join(BASELINES)}")
+        w = self.warm_from
+        if w is not None and not isinstance(w, (str, os.PathLike, Profile)):
+            raise BadOption(f"warm_from must be a path to a routing profile (or a Profile), got {type(w).__name__}")
+        if w is not None and (self.bare or self.baseline is not None):
+            raise BadOption("a warm start fills the expert pool; --bare and the baselines have none")
 
     def engine_dict(self) -> dict:
         """The settings as ``Engine.options`` (and ``engine.stats["options"]``) show them."""
@@ -159,6 +168,7 @@ class EngineOptions:
             "bare": self.bare,
             "baseline": self.baseline,
             "routing": None,
+            "warm_from": None,
         }
 
 
@@ -228,6 +238,7 @@ def widen_experts(o: EngineOptions) -> bool:
 def open_engine(model_dir, o: EngineOptions) -> Engine:
     """The engine of checked options: sizes the budget, allocates the pool, starts the reader if asked."""
     watch = MemWatch()
+    profile = read_profile(o.warm_from) if o.warm_from is not None else None  # before the model is opened
     store = open_store(resolve_model(model_dir), o.max_context, widen=widen_experts(o),
                        stored_dense=o.dense_weights == "stored")
     reader = None
@@ -253,6 +264,9 @@ def open_engine(model_dir, o: EngineOptions) -> Engine:
         engine = Engine(store, tok, budget, experts, reader, watch, o.engine_dict())
         if o.routing is not None:
             engine.replay_routing(o.routing)
+        if profile is not None:
+            profile.check_config(c)
+            engine.warm_from(profile)
         return engine
     except BaseException:
         if reader is not None:

@@ -154,6 +154,40 @@ class ExpertPool(ExpertSource):
                 {e: Event(HIT, self.res_of[layer].slot_of[self.key(layer, e)]) for e in range(E)} for layer in range(c.n_layers)
             ]
 
+    def warm(self, ranked) -> int:
+        """A warm start: the decision core fills the empty pool from ``ranked`` (``decisions.hottest`` of a
+        profile; ``Decisions.warm`` decides which experts, in which order, into which slots), and each is read
+        here, on the compute thread, before the first step.  With an emulated link every read is booked on it
+        and the fill ends when the last transfer has.  Its time is ``stats.warm_ns`` (the engine charges it to
+        the first pass, see ``Engine.warm_start``); its bytes are ``warm_loads`` experts, apart from the
+        demand and guess reads of ``bytes_in``.  Returns the experts read."""
+        if self._all_resident is not None:
+            return 0  # every expert is resident already
+        t0 = time.monotonic_ns()
+        link, nbytes = self.link, self.store.expert_nbytes
+        last = None
+        filled = self.core.warm(ranked)
+        for layer, e, slot in filled:
+            s = self.slots[slot]
+            s.claim(layer, e, self.res_of[layer])
+            if link is not None:
+                last = link.book(nbytes, time.monotonic_ns(), True)
+            try:
+                ns = self.store.copy_in(layer, e, s.buf)
+            except BaseException:
+                self.core.forget(layer, self.key(layer, e))
+                s.clear()
+                raise
+            s.fill(time.monotonic_ns(), ns)
+        if last is not None:
+            now = time.monotonic_ns()
+            end = max(link.ends(last, now), now)
+            wait_until(end)
+            link.run(end)
+        self.stats.warm_loads += len(filled)
+        self.stats.warm_ns += time.monotonic_ns() - t0
+        return len(filled)
+
     def _usable_at(self, s: Slot, now: int) -> int:
         """When a READY slot's bytes may be used: the end of its emulated transfer, or when they arrived."""
         t = s.transfer

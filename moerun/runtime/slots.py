@@ -214,6 +214,8 @@ class PoolStats:
     prefetch_ns: int = 0  # the reader's copy time of guesses
     hidden_ns: int = 0  # transfer time of used guesses that no layer waited for
     reader_stalled: bool = False
+    warm_loads: int = 0  # experts read by a warm start, before the first step (moerun.runtime.decisions.Decisions.warm)
+    warm_ns: int = 0  # the warm start's time: its reads (and, with an emulated link, their transfers)
 
     def __post_init__(self):
         for name in ("accesses", "hits", "prefetch_hits", "misses", "stall_ns", "pagein_ns"):
@@ -242,6 +244,8 @@ class PoolStats:
             "stall_s": sum(self.stall_ns) / 1e9,  # JSON durations are seconds (docs/guide/api.md, "Units")
             "pagein_s": sum(self.pagein_ns) / 1e9,
             "bytes_paged_in": self.bytes_in,
+            "warm_loads": self.warm_loads,
+            "warm_s": self.warm_ns / 1e9,
             "demand_loads": self.demand_loads,
             "prefill_loads": self.prefill_loads,
             "prefetch": {

@@ -18,6 +18,10 @@ For the built-in policies (tests/test_replay.py checks equality on random and re
   otherwise a lean loop per quota reads them (``moerun.sim.tape``).
 - A pool with a slot for every key the plan holds never evicts, whatever the policy: its misses are
   the first use of each key.
+
+A warm start (``LayerPlan.warm``, filled by ``Decisions.warm``) is written as uncounted accesses before the
+plan's first step (``_warm_misses``), and the counters above run on that plan: one prefix for every quota
+(LRU, FIFO, LFU) or one per quota (the optimum); the score rules take the reference path for it.
 """
 
 from __future__ import annotations
@@ -27,8 +31,9 @@ from collections.abc import Callable, Sequence
 import numpy as np
 
 from moerun.policies import FIFO, LFU, LRFU, LRU, Markov, Optimal, Orbit, Policy
+from moerun.runtime.residency import Residency
 from moerun.sim import tape
-from moerun.sim.steps import LayerPlan, generic_misses
+from moerun.sim.steps import LayerPlan, decisions_over, generic_misses
 
 _dense = tape.dense
 
@@ -49,6 +54,8 @@ def _lru_misses(plan: LayerPlan, capacities: Sequence[int]) -> dict[int, np.ndar
     and before the start of i's step: that count is the rank of x in the
     "last use" row at the step start, computed here for all steps at once.
     """
+    if plan.warm:
+        raise ValueError("a warm plan goes through layer_misses (its fill as a prefix of accesses)")
     out: dict[int, np.ndarray] = {}
     maxstep = int(plan.sizes.max(initial=0))
     groups: dict[int, list[int]] = {}
@@ -292,9 +299,56 @@ def first_uses(plan: LayerPlan) -> np.ndarray:
     return first
 
 
+def _warm_prefix(plan: LayerPlan, pairs: list) -> LayerPlan:
+    """The plan with ``pairs`` (``(layer, expert)``, in order) accessed before its first step, each a step of its
+    own, not counted, and no warm start left to make."""
+    E = plan.shared_experts  # 0 for a layer's plan: its keys are the expert ids
+    n = len(pairs)
+    keys = np.array([layer * E + e for layer, e in pairs], np.int64)
+    layers = None
+    if plan.layers is not None:
+        layers = np.concatenate([np.array([layer for layer, _ in pairs], np.int64), plan.layers])
+    return LayerPlan(np.concatenate([keys, plan.keys.astype(np.int64)]), np.concatenate([np.ones(n, plan.sizes.dtype), plan.sizes]),
+                     np.concatenate([np.zeros(n, bool), plan.counted]), np.concatenate([np.zeros(n, plan.token.dtype), plan.token]),
+                     plan.layer, plan.probs, layers, plan.shared_experts, plan.n_experts)
+
+
+# For these rules one prefix serves every quota: every key the profile used, coldest first.  During it each key is
+# accessed once and never again, so each evicts the key that came in first (LRU: used last longest ago; FIFO:
+# loaded first; LFU: one use each, the tie to the least recent): a quota of C holds the last C afterwards, the C
+# hottest, which is what ``Decisions.warm`` fills, with the same order of last uses and loads and one use each;
+# a key evicted during the prefix leaves nothing these rules read (its time and count are set anew when it returns).
+PREFIX_EXACT = (LRU, FIFO, LFU)
+
+
+def _warm_misses(plan: LayerPlan, policy_cls: type[Policy], capacities: Sequence[int]) -> dict[int, np.ndarray]:
+    """A warm plan's misses by the fast paths: its fill written as accesses before its first step.  A fill is
+    accesses of distinct keys, nothing pinned, into an empty pool with room for them (``Decisions.warm``), so a
+    prefix of exactly those keys, each a step of its own and not counted (no ``Policy.routed``, as the fill), is
+    the same fill for any policy; the offline optimum's access sequence begins with them too, as
+    ``steps.plan_decisions`` makes it.  LRU, FIFO and LFU take one prefix for every quota (``PREFIX_EXACT``);
+    the optimum one prefix per quota, its keys chosen by the decision core (``Decisions.warm_keys``).  The score
+    rules take the reference path: a tape per quota (one pass of the policy each, and the tape's replay) measured
+    slower than the reference path's one pass per quota (docs/research/measurements.md, "Warm starts")."""
+    if getattr(policy_cls, "history_scores", False):
+        return {c: generic_misses(plan, policy_cls, c) for c in capacities}
+    if policy_cls in PREFIX_EXACT:
+        pairs = list(reversed(plan.warm))
+        return {c: m[len(pairs):] for c, m in layer_misses(_warm_prefix(plan, pairs), policy_cls, capacities).items()}
+    space = plan.key_space
+    out = {}
+    for c in capacities:
+        cap = min(c, max(space, 1)) if space is not None else c  # as plan_decisions sizes the pool
+        pairs = decisions_over(plan, Residency(cap, LRU())).warm_keys(plan.warm)  # which keys: not the policy's choice
+        out[c] = layer_misses(_warm_prefix(plan, pairs), policy_cls, [c])[c][len(pairs):]
+    return out
+
+
 def layer_misses(plan: LayerPlan, policy_cls: type[Policy], capacities: Sequence[int], fast: bool = True) -> dict[int, np.ndarray]:
     """Miss flag per access of one pool for each quota, by the fast path when there is one."""
-    f = FAST_PATHS.get(policy_cls) if fast else None
+    if plan.warm and fast and policy_cls in FAST_PATHS:
+        return _warm_misses(plan, policy_cls, capacities)
+    f = FAST_PATHS.get(policy_cls) if fast and not plan.warm else None
     if f is None:
         return {c: generic_misses(plan, policy_cls, c) for c in capacities}
     n_keys = int(np.unique(plan.keys).size) if plan.n else 0

@@ -44,6 +44,7 @@ class ReplayResult:
     lookahead: int = 1
     prefetch_results: list[dict] | None = None  # with prefetch: the records with prefetch
     plot: dict | None = None  # what 'moerun replay --plot' drew (the command adds it)
+    warm_from: dict | None = None  # the routing profile every pool was filled from first (None: cold starts)
 
     def to_json(self) -> dict:
         doc: dict = {
@@ -54,6 +55,8 @@ class ReplayResult:
             "expert_bytes": self.expert_bytes,
             "results": self.results,
         }
+        if self.warm_from is not None:
+            doc["warm_from"] = self.warm_from
         if self.baselines is not None:
             doc["baselines"] = self.baselines
             doc["baseline_seed"] = self.baseline_seed
@@ -71,14 +74,15 @@ def replay(trace: str | os.PathLike, evict: str | Sequence[str] = tuple(DEFAULT_
            *, shared_pool: bool = False, prefetch: int = 0, lookahead: int | None = None,
            expert_bytes: int | str | None = None, seed: int = 0, baselines: bool = True, generic: bool = False,
            progress: Callable[[int, int, str], None] | None = None,
-           on_trace: Callable[[Trace], None] | None = None) -> ReplayResult:
+           on_trace: Callable[[Trace], None] | None = None, warm_from=None) -> ReplayResult:
     """Replay a routing trace file through eviction policies (``moerun replay``).
 
     ``evict``: policy names (a list, or "lru,lfu"); ``slots``: slots per layer to try (a list, or "1-8"),
     with ``shared_pool`` sizes of one pool shared by all layers.  ``prefetch``/``lookahead``: also simulate
     prefetch with the trace's top-N guesses.  ``baselines``: lru on a time-shuffled and a random-routing
     trace (seeded by ``seed``).  ``generic``: the reference path only.  ``progress(done, total, what)``
-    after each unit of work; ``on_trace(trace)`` once the trace is read, before any replaying.
+    after each unit of work; ``on_trace(trace)`` once the trace is read, before any replaying.  ``warm_from``: a
+    routing profile (path or Profile, ``moerun profile``): every pool is filled from it before the first step.
     """
     names = parse_policies(evict if isinstance(evict, str) else ",".join(evict))
     if slots is not None:
@@ -92,12 +96,15 @@ def replay(trace: str | os.PathLike, evict: str | Sequence[str] = tuple(DEFAULT_
     eb = parse_size(expert_bytes, "expert size") if expert_bytes is not None else None
     if eb is not None and eb <= 0:
         raise BadOption("--expert-bytes must be more than zero")
+    from moerun.files.profile import read_profile
+
+    warm = read_profile(warm_from) if warm_from is not None else None
     tr = read_trace(trace)
     if on_trace is not None:
         on_trace(tr)
     doc = run_replay(tr, names, slots, expert_bytes=eb, seed=seed,
                      prefetch=(prefetch, lookahead or 1) if prefetch else None,
-                     baselines=baselines, fast=not generic, shared=shared_pool, progress=progress)
+                     baselines=baselines, fast=not generic, shared=shared_pool, progress=progress, warm=warm)
     doc["trace"]["file"] = str(trace) if isinstance(trace, os.PathLike) else trace
     return ReplayResult(**doc)
 
@@ -105,7 +112,7 @@ def replay(trace: str | os.PathLike, evict: str | Sequence[str] = tuple(DEFAULT_
 # ---------------------------------------------------------------------------------------------- record
 
 # Keys of the engine's trace metadata that describe a live pool, not a teacher-forced pass.
-_LIVE_ONLY = ("evict", "slots", "split", "prefetch", "lookahead", "link_speed_emulated")
+_LIVE_ONLY = ("evict", "slots", "split", "prefetch", "lookahead", "link_speed_emulated", "warm_from")
 
 
 def windows(ids, max_seq_len: int, bos: int | None) -> list[np.ndarray]:
@@ -255,3 +262,119 @@ def record(trace: str | os.PathLike, model_dir: str | os.PathLike | None = None,
             window_tokens=c.max_seq_len,
             window_bos=c.bos_token_id is not None,
         )
+
+
+# ---------------------------------------------------------------------------------------------- profile
+
+
+@dataclass
+class ProfileResult:
+    """What ``moerun.profile`` counted and wrote."""
+
+    profile: str  # the file written
+    model: str
+    source: str  # "text" (routed now) or "trace" (counted from a trace file)
+    file: str  # the text or the trace the counts came from
+    tokens: int
+    layers: int
+    experts: int
+    top_k: int
+    expert_accesses: int
+    used: int  # (layer, expert) pairs used at least once
+    hottest: list  # per layer: the most used expert and its share of that layer's accesses
+    seconds: float
+
+    def to_json(self) -> dict:
+        return {
+            "profile": self.profile,
+            "model": self.model,
+            "source": self.source,
+            "file": self.file,
+            "tokens": self.tokens,
+            "layers": self.layers,
+            "experts": self.experts,
+            "top_k": self.top_k,
+            "expert_accesses": self.expert_accesses,
+            "used": self.used,
+            "hottest": self.hottest,
+            "seconds": self.seconds,
+        }
+
+
+def _config_only(model_dir: Path):
+    """The model's ModelConfig from its config.json (an open checkpoint: and its headers), no weight read."""
+    from moerun.files.ckpt_config import is_open_checkpoint
+
+    if is_open_checkpoint(model_dir):
+        from moerun.files.checkpoint import Checkpoint
+        from moerun.files.ckpt_store import model_config
+
+        with Checkpoint.open(model_dir, require_tokenizer=False) as ck:
+            return model_config(ck, None)
+    from moerun.files.config import ModelConfig
+
+    return ModelConfig.load(model_dir)
+
+
+def profile(out: str | os.PathLike, model_dir: str | os.PathLike | None = None, text: str | os.PathLike | None = None,
+            *, from_trace: str | os.PathLike | None = None, max_tokens: int | None = None, force: bool = False,
+            mem_cap: int | str | None = None, max_context: int | None = None,
+            progress: Callable[[int, int, int], None] | None = None) -> ProfileResult:
+    """Count how often each layer chose each expert and write a routing profile (``moerun profile``;
+    moerun.files.profile has the format).  The counts come from a text routed through the model now, window by
+    window and teacher-forced as ``record`` routes it (default: the model's heldout.txt), or, with ``from_trace``,
+    from a routing trace of this model, with no model run.  ``progress(windows_done, windows_total, tokens)``."""
+    from moerun.files.profile import Profile, counts_of, file_digest, identity, write_profile
+
+    model_dir = resolve_model(model_dir)
+    if from_trace is not None and (text is not None or max_tokens is not None or mem_cap is not None or max_context is not None):
+        raise BadOption("--from-trace counts a trace that exists: --text, --max-tokens, --mem-cap and --max-context "
+                        "are for routing a text; give one or the other")
+    try:
+        inputs = [p for p in model_dir.iterdir() if p.is_file()]
+    except OSError:
+        inputs = []
+    src = Path(from_trace) if from_trace is not None else Path(text) if text is not None else model_dir / "heldout.txt"
+    if from_trace is None and text is None and not src.exists():
+        raise BadInput(f"{model_dir} has no heldout.txt; name a text with --text FILE")
+    inputs.append(src)
+    check_output(out, force, inputs, "--out")
+    t0 = time.monotonic_ns()
+    settings: dict = {}
+    if from_trace is not None:
+        c = _config_only(model_dir)
+        tr = read_trace(from_trace, model=(c.n_layers, c.n_experts, c.top_k))
+        experts = tr.experts
+        tokens = tr.n_tokens
+        settings = {"trace_source": tr.meta.get("source"), "partial": bool(tr.meta.get("partial", False))}
+        kind = "trace"
+    else:
+        with load(model_dir, mem_cap=mem_cap, max_context=max_context) as engine:
+            c = engine.config
+            ids = engine.tokenizer.encode_file(src, max_tokens)
+            if not ids.size:
+                raise BadInput(f"{src}: no tokens to route (the text is empty)")
+            wins = windows(ids, c.max_seq_len, c.bos_token_id)
+            engine.start_trace(n_guesses=1)
+            routed = 0
+            for i, w in enumerate(wins):
+                engine.logits(w)
+                routed += len(w)
+                if progress is not None:
+                    progress(i + 1, len(wins), routed)
+            experts = engine.finish_trace().experts
+        tokens = int(experts.shape[0])
+        settings = {"max_tokens": max_tokens, "windows": len(wins), "window_tokens": c.max_seq_len,
+                    "bos_per_window": c.bos_token_id is not None}
+        kind = "text"
+    counts = counts_of(experts, c.n_experts)
+    prof = Profile(counts, identity(c), {"kind": kind, "file": str(src), "blake2b": file_digest(src, "file"), "tokens": tokens},
+                   settings)
+    write_profile(out, prof, force=force, inputs=inputs)
+    per_layer = counts.sum(axis=1)
+    hottest = [{"layer": layer, "expert": int(row.argmax()), "share": float(row.max() / n) if n else None}
+               for layer, (row, n) in enumerate(zip(counts, per_layer))]
+    return ProfileResult(
+        profile=str(out) if isinstance(out, os.PathLike) else out, model=c.name, source=kind, file=str(src),
+        tokens=tokens, layers=c.n_layers, experts=c.n_experts, top_k=c.top_k, expert_accesses=int(counts.sum()),
+        used=int((counts > 0).sum()), hottest=hottest, seconds=(time.monotonic_ns() - t0) / 1e9)

@@ -13,8 +13,9 @@ from collections.abc import Callable, Sequence
 import numpy as np
 
 from moerun import policies
-from moerun.errors import BadOption, BadTrace
+from moerun.errors import BadInput, BadOption, BadTrace
 from moerun.files.trace import Trace
+from moerun.runtime.decisions import hottest
 from moerun.sim.counts import (
     Counts,
     count_layer,
@@ -37,6 +38,7 @@ from moerun.sim.steps import (
     shared_plan,
     used_ids,
     walk,
+    warm_plans,
 )
 
 __all__ = ["DEFAULT_POLICIES", "FAST_PATHS", "RECALL_GUESSES", "RECALL_LOOKAHEAD", "Counts", "LayerPlan", "PrefetchCounts", "compact", "count_layer",
@@ -173,11 +175,14 @@ def run_replay(
     fast: bool = True,
     progress: Callable[[int, int, str], None] | None = None,
     shared: bool = False,
+    warm=None,
 ) -> dict:
     """Everything ``moerun replay`` reports, as one JSON-ready document.
 
     ``shared``: one pool shared by all layers, ``slots`` its sizes (default: 10%, 25%, 50% and all of
-    the experts), replayed in the live engine's order; otherwise ``slots`` are per-layer quotas."""
+    the experts), replayed in the live engine's order; otherwise ``slots`` are per-layer quotas.
+    ``warm``: a routing profile (moerun.files.profile.Profile): every pool of the policies replayed (with
+    prefetch too) is filled from it first (``Decisions.warm``); the baselines start empty."""
     if trace.n_tokens == 0:
         raise BadTrace("the trace holds no tokens")
     E = trace.n_experts
@@ -191,8 +196,12 @@ def run_replay(
         eb = trace.meta.get("expert_bytes")
         expert_bytes = eb if isinstance(eb, int) and not isinstance(eb, bool) and eb > 0 else None
     full = trace
-    trace = compact(trace)  # the state of every policy and pool is sized by the experts the trace uses
+    keep = warm_ids(warm, trace) if warm is not None else None
+    trace = compact(trace, keep)  # the state of every policy and pool is sized by the experts the trace uses
     plans = [shared_plan(trace)] if shared else layer_plans(trace)
+    if warm is not None:
+        used = used_ids(full) if keep is None else np.union1d(used_ids(full), keep)  # compact's renumbering
+        warm_plans(plans, hottest(warm.counts[:, used] if used.size else warm.counts[:, :0]))
     units = len(policy_names) + (2 if baselines else 0) + (len([p for p in policy_names if getattr(policies.get(p), "online", True)]) * len(slots) if prefetch else 0)
     done = 0
 
@@ -214,6 +223,8 @@ def run_replay(
         "expert_bytes": expert_bytes,
         "results": results,
     }
+    if warm is not None:
+        doc["warm_from"] = warm_json(warm)
     if baselines:
         base = []
         for label, make in (
@@ -242,6 +253,22 @@ def run_replay(
                 tick(f"{name} prefetch")
         doc["prefetch_results"] = pf
     return doc
+
+
+def warm_ids(warm, trace: Trace) -> np.ndarray:
+    """The expert ids a warm start can fill (used at all in the profile), once the profile is checked against the
+    trace: the same layers and top_k, and at least the experts the trace names (BadInput otherwise)."""
+    m = warm.model
+    if warm.layers != trace.n_layers or m.get("top_k") != trace.top_k or warm.experts < trace.n_experts:
+        raise BadInput(f"{warm.where()}: a profile of another model ({warm.layers} layers, top_{m.get('top_k')} of "
+                       f"{warm.experts}; the trace: {trace.n_layers} layers, top_{trace.top_k} of {trace.n_experts})")
+    return np.nonzero(warm.counts.sum(axis=0) > 0)[0]
+
+
+def warm_json(warm) -> dict:
+    """What a result says of the profile a warm start came from."""
+    return {"file": warm.path, "source": warm.source.get("kind"), "text": warm.source.get("file"),
+            "tokens": warm.source.get("tokens"), "used": int((warm.counts > 0).sum())}
 
 
 def overall(records: list[dict], policy: str | None = None, baseline: str | None = None) -> dict[int, dict]:

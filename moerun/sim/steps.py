@@ -55,6 +55,9 @@ class LayerPlan:
     layers: np.ndarray | None = None  # int [n_steps] the layer of each step (a shared plan), None: ``layer``
     shared_experts: int = 0  # a shared plan: experts per layer (key = layer * shared_experts + expert); 0 otherwise
     n_experts: int = 0  # a layer's plan: the experts of its layer, guesses included (0: not known)
+    # a warm start (``warm_plans``): the (layer, expert) pairs of a profile, hottest first, that this pool is filled
+    # from before its first step (``Decisions.warm``); None: it starts empty
+    warm: list | None = None
 
     @property
     def n(self) -> int:
@@ -90,14 +93,14 @@ class LayerPlan:
         sizes = np.where(np.repeat(big, n_each), 1, np.repeat(self.sizes, n_each))
         layers = np.repeat(self.layers, n_each) if self.layers is not None else None
         return LayerPlan(self.keys, sizes, np.repeat(self.counted, n_each), np.repeat(self.token, n_each), self.layer, self.probs,
-                         layers, self.shared_experts, self.n_experts)
+                         layers, self.shared_experts, self.n_experts, self.warm)
 
     @property
     def n_keys(self) -> int:
         """Size of the key space (a policy's per-key lists)."""
         if self.shared_experts:
             return (int(self.layers.max(initial=0)) + 1) * self.shared_experts  # every layer has a step per token
-        return int(self.keys.max(initial=-1)) + 1
+        return max(int(self.keys.max(initial=-1)), max((e for _, e in self.warm or ()), default=-1)) + 1
 
     @property
     def key_space(self) -> int | None:
@@ -131,7 +134,7 @@ def used_ids(trace: Trace) -> np.ndarray:
     return np.unique(np.concatenate(parts))
 
 
-def compact(trace: Trace) -> Trace:
+def compact(trace: Trace, keep: np.ndarray | None = None) -> Trace:
     """The trace with its expert ids renumbered 0..U-1 in ascending order, U the ids it routes to or guesses
     (``meta.n_experts`` becomes U; ``probs`` keeps those columns); the trace itself when it uses every id.
 
@@ -139,9 +142,12 @@ def compact(trace: Trace) -> Trace:
     8 KB may declare 2**20 experts).  The counts are unchanged: the renumbering keeps the order of the ids,
     which is all that a policy's tie-breaks and the access order read (``orbit`` buckets its decisions by
     labels of first use, not by id), tests/sim/test_replay.py checks it for every policy and both pool kinds.
+    ``keep``: more ids to keep (a warm start's), whether the trace uses them or not.
     """
     ex = trace.experts
     used = used_ids(trace)
+    if keep is not None and keep.size:
+        used = np.union1d(used, keep)
     if used.size == trace.n_experts and (used.size == 0 or used[-1] == used.size - 1):
         return trace
     lut = np.full(int(used[-1]) + 2 if used.size else 1, -1, np.int64)  # lut[-1]: the padding stays -1
@@ -228,6 +234,19 @@ def shared_plan(trace: Trace) -> LayerPlan:
     return LayerPlan(cat(keys), cat(sizes), cat(counted), cat(token), 0, trace.probs, cat(layers), E)
 
 
+def warm_plans(plans: list[LayerPlan], ranked: list[tuple[int, int]] | None) -> list[LayerPlan]:
+    """Give each plan its warm start: ``ranked`` (``decisions.hottest`` of a profile, ids as the plans' trace
+    numbers them) whole for a shared plan, a layer's own pairs for that layer's plan; None: every pool starts empty."""
+    for plan in plans:
+        if ranked is None:
+            plan.warm = None
+        elif plan.layers is not None:
+            plan.warm = list(ranked)
+        else:
+            plan.warm = [(layer, e) for layer, e in ranked if layer == plan.layer]
+    return plans
+
+
 def layer_plans(trace: Trace) -> list[LayerPlan]:
     P = prefill_tokens(trace)
     dt = _key_dtype(trace.experts)
@@ -290,11 +309,19 @@ def walk(plan: LayerPlan, core: Decisions | Residency, before: Callable[[int], N
 
 def plan_decisions(plan: LayerPlan, policy_cls: type[Policy], capacity: int) -> Decisions:
     """The decision core replaying one plan: a shared plan's pool, or one layer's quota.  A pool of more
-    slots than keys it can hold is made with as many as it can hold: it never evicts either way."""
+    slots than keys it can hold is made with as many as it can hold: it never evicts either way.  With a
+    warm start (``plan.warm``) the pool is filled first (``Decisions.warm``); an offline policy's access
+    sequence then starts with the keys filled, in the order they are filled."""
     space = plan.key_space
     if space is not None:
         capacity = min(capacity, max(space, 1))
-    return decisions_over(plan, Residency(capacity, plan_policy(policy_cls, plan)))
+    core = decisions_over(plan, Residency(capacity, plan_policy(policy_cls, plan)))
+    if plan.warm:
+        if not getattr(policy_cls, "online", True):
+            fill = [core.key(layer, e) for layer, e in core.warm_keys(plan.warm)]
+            core.res_of[0].policy = make_policy(policy_cls, plan.n_keys, plan.shared_experts, fill + plan.keys.tolist())
+        core.warm(plan.warm)
+    return core
 
 
 def decisions_over(plan: LayerPlan, res: Residency) -> Decisions:

@@ -54,7 +54,11 @@ class Tape:
 
 
 def build(plan: LayerPlan, cls: type[Policy]) -> Tape:
-    """The scores of a ``history_scores`` policy along ``plan``, one pass for every pool size."""
+    """The scores of a ``history_scores`` policy along ``plan``, one pass for every pool size.  A tape models no
+    warm start (its one policy object would see the fill of every pool size at once): ``fast.layer_misses``
+    replays a warm plan on the reference path instead, and a warm plan given here is refused."""
+    if plan.warm:
+        raise ValueError("a tape models no warm start; replay a warm plan on the reference path (fast.layer_misses)")
     pol = plan_policy(cls, plan)
     keys = plan.keys.tolist()
     dk, U = dense(plan.keys)

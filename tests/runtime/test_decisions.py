@@ -26,11 +26,12 @@ from moerun.planner import timeline
 from moerun.planner.search import Costs
 from moerun.policies import LRU
 from moerun.runtime.budget import Budget, slot_bytes
-from moerun.runtime.decisions import NO_ROOM, REFUSED, RESIDENT, Placed, Quotas, Shared, prefill_schedule
+from moerun.runtime.decisions import NO_ROOM, REFUSED, RESIDENT, Placed, Quotas, Shared, hottest, prefill_schedule
 from moerun.runtime.pool import ExpertPool
 from moerun.runtime.prefetch import Prefetcher
 from moerun.sim import prefetch as sim_prefetch
-from moerun.sim.steps import layer_plans, plan_decisions, shared_plan, walk
+from moerun.sim import steps
+from moerun.sim.steps import layer_plans, plan_decisions, shared_plan, walk, warm_plans
 
 
 class OddRefusingLRU(LRU):
@@ -121,7 +122,13 @@ def _record(core, log):
             log.append(("drop", layer, tuple(out)))
         return out
 
-    core.serve, core.step, core.prefill, core.place, core.meet = rserve, rstep, rprefill, rplace, rmeet
+    def rwarm(ranked):  # a warm start: each key filled, in order
+        out = warm(ranked)
+        log.extend(("warm", layer, core.key(layer, e)) for layer, e, _ in out)
+        return out
+
+    warm = core.warm
+    core.serve, core.step, core.prefill, core.place, core.meet, core.warm = rserve, rstep, rprefill, rplace, rmeet, rwarm
     return core
 
 
@@ -146,13 +153,15 @@ class _TraceRule:
         return [[e for e in self.g[self.t][layer][j - 1][:n] if e >= 0] for j in range(1, min(self.lookahead, self.L - 1 - layer) + 1)]
 
 
-def _pool_record(store, trace, slots, policy, shared, n_guesses, lookahead):
+def _pool_record(store, trace, slots, policy, shared, n_guesses, lookahead, warm=None):
     L = store.config.n_layers
     budget = Budget(None, 0, 0, 0, slot_bytes(store.expert_nbytes), store.expert_nbytes, "shared" if shared else "list", list(slots))
     store.link_rate = 1e18 if n_guesses else None  # a link whose transfers take no time (ns rounds down to 0)
     pool = ExpertPool(store, budget, policy)
     log = []
     _record(pool.core, log)
+    if warm is not None:
+        pool.warm(warm)
     prefetcher = None
     if n_guesses:
         pool.place_ns = -(10**15)  # a guess that costs less than nothing: every guess is read
@@ -186,27 +195,28 @@ def _pool_record(store, trace, slots, policy, shared, n_guesses, lookahead):
     return log
 
 
-def _planner_record(trace, slots, policy, shared, n_guesses, lookahead):
+def _planner_record(trace, slots, policy, shared, n_guesses, lookahead, warm=None):
     log = []
     L = trace.n_layers
     costs = Costs([10e-6] * L, 2e-6, 3e-6, 1e-9, "test", 0.0, emulated=True)  # page-ins of 1 ns: they always pay
     with mock.patch.object(timeline, "Quotas", lambda *a: _record(Quotas(*a), log)), \
             mock.patch.object(timeline, "Shared", lambda *a: _record(Shared(*a), log)):
-        timeline._simulate(trace, list(slots), policy, n_guesses, lookahead, costs, shared, 10**9)
+        timeline._simulate(trace, list(slots), policy, n_guesses, lookahead, costs, shared, 10**9, warm)
     return log
 
 
-def _replay_record(trace, slots, policy, shared, n_guesses, lookahead):
+def _replay_record(trace, slots, policy, shared, n_guesses, lookahead, warm=None):
     log = []
     cls = policies.get(policy)
-    if n_guesses:
-        real = sim_prefetch.plan_decisions
-        with mock.patch.object(sim_prefetch, "plan_decisions", lambda *a: _record(real(*a), log)):
-            sim_prefetch.simulate_prefetch(trace, cls, slots[0], n_guesses, lookahead, shared=shared)
-        return log
-    for plan in [shared_plan(trace)] if shared else layer_plans(trace):
-        for _ in walk(plan, _record(plan_decisions(plan, cls, slots[0]), log)):
-            pass
+    plans = warm_plans([shared_plan(trace)] if shared else layer_plans(trace), warm)
+    real = steps.decisions_over  # the core plan_decisions makes (and warms): recorded from its first decision
+    with mock.patch.object(steps, "decisions_over", lambda *a: _record(real(*a), log)):
+        if n_guesses:
+            sim_prefetch.simulate_prefetch(trace, cls, slots[0], n_guesses, lookahead, plans, shared)
+            return log
+        for plan in plans:
+            for _ in walk(plan, plan_decisions(plan, cls, slots[0])):
+                pass
     return log
 
 
@@ -233,7 +243,10 @@ def routings(draw, shared):
     probs /= probs.sum(axis=-1, keepdims=True)
     trace = Trace(ex.astype(np.int64), guesses=guesses.astype(np.int64), meta={"n_experts": E, "prefill_tokens": P}, probs=probs)
     slots = [draw(st.integers(k, L * E))] if shared else [draw(st.integers(k, E))] * L
-    return trace, slots, draw(st.sampled_from(POLICIES)), draw(st.integers(1, 3)), draw(st.integers(1, 2))
+    warm = None
+    if draw(st.booleans()):  # a warm start from random counts (Decisions.warm)
+        warm = hottest(rng.integers(0, 5, (L, E)) * (rng.random((L, E)) < 0.6))
+    return trace, slots, draw(st.sampled_from(POLICIES)), draw(st.integers(1, 3)), draw(st.integers(1, 2)), warm
 
 
 @pytest.mark.parametrize("prefetch", [False, True], ids=["no prefetch", "prefetch"])
@@ -245,15 +258,20 @@ def test_pool_replay_and_planner_agree_step_by_step_on_random_routing(pebble_sto
     @given(routings(shared))
     def check(case):
         ran.append(1)
-        trace, slots, policy, n_guesses, lookahead = case
+        trace, slots, policy, n_guesses, lookahead, warm = case
         n = n_guesses if prefetch else 0
         with ExitStack() as stack:
             stack.enter_context(mock.patch.dict(policies._REGISTRY, {OddRefusingLRU.name: OddRefusingLRU}))
-            pool = _pool_record(pebble_store, trace, slots, policy, shared, n, lookahead)
-            planner = _planner_record(trace, slots, policy, shared, n, lookahead)
-            replay = _replay_record(trace, slots, policy, shared, n, lookahead)
+            pool = _pool_record(pebble_store, trace, slots, policy, shared, n, lookahead, warm)
+            planner = _planner_record(trace, slots, policy, shared, n, lookahead, warm)
+            replay = _replay_record(trace, slots, policy, shared, n, lookahead, warm)
         assert _per_pool(pool, shared) == _per_pool(planner, shared) == _per_pool(replay, shared)
         assert any(e[0] == "step" for e in pool)
+        if warm:
+            assert any(e[0] == "warm" for e in pool)
+            warmed.append(1)
 
+    warmed = []
     check()
+    assert warmed  # some of them warm
     assert len(ran) >= 200  # random routings, each driven through all three

@@ -28,6 +28,9 @@ def add_arguments(p) -> None:
     p.add_argument("--trace", metavar="FILE", help="write every routing decision and page-in event to FILE (.npz)")
     cli.add_routing(p, "read every layer's routing from this trace instead of the routers "
                        "(everything else is computed for real; to run large random models with a trained model's routing)")
+    p.add_argument("--warm-from", metavar="FILE",
+                   help="fill the expert pool with the hottest experts of this routing profile ('moerun profile') "
+                        "before the first token; the fill's time is part of the prefill time")
     cli.add_force(p, "the --trace file")
     p.add_argument("--quiet", action="store_true", help="print the text only: no run summary or notices on stderr (warnings still)")
     cli.add_json(p)
@@ -37,11 +40,12 @@ def run(args) -> int:
     if args.max_new < 0:  # refuse before loading the model or echoing the prompt
         raise BadOption(f"--max-new must be zero or more, got {args.max_new}")
     cli.check_prompt_file(args)  # read once the model (its tokenizer and context) is known
-    inputs = cli.model_files(args.model) + ([args.prompt_file] if args.prompt_file else []) + ([args.routing] if args.routing else [])
+    inputs = (cli.model_files(args.model) + ([args.prompt_file] if args.prompt_file else []) + ([args.routing] if args.routing else [])
+              + ([args.warm_from] if args.warm_from else []))
     if args.trace:
         check_output(args.trace, args.force, inputs, "--trace")
     sampling = Sampling(args.temperature, args.top_p, args.seed)
-    engine = load(**cli.engine_kwargs(args), routing=args.routing)
+    engine = load(**cli.engine_kwargs(args), routing=args.routing, warm_from=args.warm_from)
     stream = not args.json
     new: list[int] = []
     out = sys.stdout

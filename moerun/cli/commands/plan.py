@@ -32,6 +32,9 @@ def add_arguments(p) -> None:
                                              f"known: {policies.listing(online_only=True)})"))
     p.add_argument("--shared-pool", action="store_true",
                    help="also consider one pool shared by all layers (it fits caps down to top_k slots)")
+    p.add_argument("--warm-from", metavar="FILE",
+                   help="predict every setting with a warm start from this routing profile ('moerun profile'), and "
+                        "also consider its slots per layer (the 'profile' split)")
     p.add_argument("--recalibrate", action="store_true", help="measure compute times again instead of using the cache")
     cli.add_json(p)
 
@@ -47,7 +50,7 @@ def run(args) -> int:
         result = plan(args.model, args.mem_cap, target=args.target, link_speed=args.link_speed, probe=args.probe,
                       regime=args.regime, routing=args.routing, max_tokens=args.max_tokens, shape=args.shape,
                       evict=args.evict, shared_pool=args.shared_pool, recalibrate=args.recalibrate, progress=prog.update,
-                      notice=notice)
+                      notice=notice, warm_from=args.warm_from)
     finally:
         prog.close()
     code = 0 if result.ok else 1
@@ -127,7 +130,12 @@ def _text(out, args, result) -> None:
     if result.min_cap_bytes != result.per_layer_min_cap_bytes:
         smallest += f" ({SHARED_POOL}; one pool per layer {fmt_bytes(result.per_layer_min_cap_bytes)})"
     out.write(f"routing: {tr['tokens']} tokens ({tr['source']}{searched}); fixed parts {fmt_bytes(result.fixed_bytes)}, slot "
-              f"{fmt_bytes(result.slot_bytes)}, smallest cap {smallest}, all resident {fmt_bytes(result.all_resident_cap_bytes)}\n\n")
+              f"{fmt_bytes(result.slot_bytes)}, smallest cap {smallest}, all resident {fmt_bytes(result.all_resident_cap_bytes)}\n")
+    w = doc.get("warm_from")
+    if w:
+        loads = f"; the recommended setting reads {rec.warm_loads} experts first ({rec.warm_s * 1e3:.1f} ms, once)" if rec else ""
+        out.write(f"warm start from {w['file']} ({w['source']} of {w['tokens']} tokens){loads}\n")
+    out.write("\n")
     if rec is not None:
         top = _rows(cands, L, result.experts)
         rows = [[SHARED_POOL if pr.shared else lab, ",".join(map(str, pr.slots)), pr.policy, fmt_prefetch(pr.prefetch, pr.lookahead),

@@ -40,6 +40,9 @@ def add_arguments(p) -> None:
     p.add_argument("--plot", metavar="FILE.png", help="draw hit rate against slots, and one layer's residency over time (needs matplotlib)")
     cli.add_force(p, "the --plot file")
     p.add_argument("--plot-layer", type=int, default=None, metavar="N", help="layer shown in the residency picture, with --plot (default 0)")
+    p.add_argument("--warm-from", metavar="FILE",
+                   help="fill every pool with the hottest experts of this routing profile ('moerun profile') before the "
+                        "first step, as 'generate --warm-from' does (the baselines start empty)")
     p.add_argument("--generic", action="store_true", help="use only the reference path (Residency + policy objects), never a fast path")
     cli.add_json(p)
 
@@ -70,7 +73,9 @@ def render(doc: dict, per_layer: bool = False) -> str:
         else "every token as a decode step"
     )
     shared = doc["split"] == "shared"
-    where = f"one {SHARED_POOL} for all layers starts empty" if shared else "each layer's quota starts empty"
+    warm = doc.get("warm_from")
+    start = f"is filled from {warm['file']} first" if warm else "starts empty"
+    where = f"one {SHARED_POOL} for all layers {start}" if shared else f"each layer's quota {start}"
     lines.append(f"replay: {pre}; {tr['decode_accesses']} counted accesses; {where}")
     if eb is not None:
         lines.append(f"expert size {fmt_bytes(eb)} ({eb} bytes) for the bytes-moved columns")
@@ -162,6 +167,8 @@ def run(args) -> int:
     if args.routing is None:
         raise BadOption("no routing trace given: add --routing FILE")
     cli.refuse_without(args, "plot_layer", "plot", "--plot FILE")
+    if args.plot and args.warm_from:
+        raise BadOption("--plot draws pools that start empty; it does not draw a warm start yet: drop --plot or --warm-from")
     plot_layer = args.plot_layer or 0
     traces = []
 
@@ -179,7 +186,7 @@ def run(args) -> int:
     try:
         result = replay(args.routing, args.evict, args.slots, shared_pool=args.shared_pool, prefetch=args.prefetch,
                         lookahead=args.lookahead, expert_bytes=args.expert_bytes, seed=args.seed,
-                        baselines=not args.no_baselines, generic=args.generic,
+                        baselines=not args.no_baselines, generic=args.generic, warm_from=args.warm_from,
                         progress=lambda i, n, label: prog.update(i, label), on_trace=check_plot)
     finally:
         prog.close()
