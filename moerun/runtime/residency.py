@@ -52,10 +52,9 @@ class Residency:
         """The key the policy would evict to make room (None while a slot is free). Raises NoVictim."""
         if self.free:
             return None
-        candidates = self.candidates(pinned)
-        if not candidates:
+        victim = self.policy.pick(self.slot_of, pinned, self.busy, self.now)
+        if victim is None:
             raise NoVictim
-        victim = self.policy.victim(candidates, self.now)
         if victim not in self.slot_of or victim in pinned or victim in self.busy:
             raise RuntimeError(f"policy {self.policy.name!r} chose {victim!r}, which is not an evictable resident")
         return victim
@@ -83,33 +82,38 @@ class Residency:
 
     def access_step(self, keys: list[Key], pinned: Collection[Key], done: list | None = None) -> list:
         """Serve a step's accesses in order, as ``access`` does one: ``[(hit, slot, victim), ...]``.
-        ``done`` continues a step that raised NoVictim (its results so far)."""
+        ``done`` continues a step that raised NoVictim (its results so far).
+
+        The decode path: the policy's hooks are looked up once per step, not per access, and the clock is
+        stored once per step."""
         out = done if done is not None else []
-        slot_of, policy = self.slot_of, self.policy
-        for i in range(len(out), len(keys)):
-            key = keys[i]
-            now = self.now
-            slot = slot_of.get(key)
-            if slot is not None:
-                policy.hit(key, now)
-                out.append((True, slot, None))
-            else:
-                if self.free:  # victim() and _take_slot(), inline: the decode path
-                    slot, victim = self.free.pop(), None
+        slot_of, policy, free, busy = self.slot_of, self.policy, self.free, self.busy
+        hit, inserted, pick = policy.hit, policy.inserted, policy.pick
+        now = self.now
+        try:
+            for i in range(len(out), len(keys)):
+                key = keys[i]
+                slot = slot_of.get(key)
+                if slot is not None:
+                    hit(key, now)
+                    out.append((True, slot, None))
                 else:
-                    busy = self.busy
-                    candidates = [k for k in slot_of if k not in pinned and k not in busy]
-                    if not candidates:
-                        raise NoVictim(out)
-                    victim = policy.victim(candidates, now)
-                    if victim not in slot_of or victim in pinned or victim in busy:
-                        raise RuntimeError(f"policy {policy.name!r} chose {victim!r}, which is not an evictable resident")
-                    policy.evicted(victim)
-                    slot = slot_of.pop(victim)
-                slot_of[key] = slot
-                policy.inserted(key, now)
-                out.append((False, slot, victim))
-            self.now = now + 1
+                    if free:  # victim() and _take_slot(), inline
+                        slot, victim = free.pop(), None
+                    else:
+                        victim = pick(slot_of, pinned, busy, now)
+                        if victim is None:
+                            raise NoVictim(out)
+                        if victim not in slot_of or victim in pinned or victim in busy:
+                            raise RuntimeError(f"policy {policy.name!r} chose {victim!r}, which is not an evictable resident")
+                        policy.evicted(victim)
+                        slot = slot_of.pop(victim)
+                    slot_of[key] = slot
+                    inserted(key, now)
+                    out.append((False, slot, victim))
+                now += 1
+        finally:
+            self.now = now  # the accesses served (all of them, or those before an exception)
         return out
 
     def insert(self, key: Key, pinned: Collection[Key] = ()) -> tuple[int, Key | None]:
