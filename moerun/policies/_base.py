@@ -149,8 +149,10 @@ class LRU(Policy):
         self.order: dict[Key, None] = {}  # resident keys, least recently used first
 
     def inserted(self, key, now):
-        grow(self.last, key)
-        self.last[key] = now
+        last = self.last
+        if key >= len(last):
+            grow(last, key)
+        last[key] = now
         order = self.order
         order.pop(key, None)
         order[key] = None
@@ -196,8 +198,10 @@ class FIFO(Policy):
         self.loaded = [0] * n_keys
 
     def inserted(self, key, now):
-        grow(self.loaded, key)
-        self.loaded[key] = now
+        loaded = self.loaded
+        if key >= len(loaded):
+            grow(loaded, key)
+        loaded[key] = now
 
     def victim(self, candidates, now):
         return min(candidates, key=self.loaded.__getitem__)

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 from collections import OrderedDict
 
+import numpy as np
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
@@ -224,8 +225,15 @@ class _RefResidency:
         self.free.append(slot)
 
 
+# lam 5: the counts of lrfu, markov and orbit are rescaled every 100 or so accesses (at most about 150 in a
+# stream, too few for a resident count to underflow), so the kept scores' refresh on a rescale is exercised
+_RESCALING = {cls: cls.with_params(lam=5.0) if hasattr(cls, "with_params") else type("LRFU5", (cls,), {"lam": 5.0})
+              for cls in (LRFU, Markov, Orbit)}
 _FAST_AND_REFERENCE = {"lru": (LRU, _RefLRU), "fifo": (FIFO, _RefFIFO), "lfu": (LFU, _RefLFU), "lrfu": (LRFU, _RefLRFU),
-                       "markov": (Markov, _general(Markov)), "orbit": (Orbit, _general(Orbit))}
+                       "markov": (Markov, _general(Markov)), "orbit": (Orbit, _general(Orbit)),
+                       "lrfu-rescaling": (_RESCALING[LRFU], type("RefLRFU5", (_RefLRFU,), {"lam": 5.0})),
+                       "markov-rescaling": (_RESCALING[Markov], _general(_RESCALING[Markov])),
+                       "orbit-rescaling": (_RESCALING[Orbit], _general(_RESCALING[Orbit]))}
 
 
 def _drive(res, ops, n_layers, n_experts, shared, out):
@@ -358,3 +366,25 @@ def test_first_min_puts_back_the_scores_it_masks_even_for_a_key_both_pinned_and_
     assert first_min(resident, score, (3, 1), {0, 2}) is None  # every resident is pinned or busy
     assert score == [0.5, 0.25, 0.75, 0.1]
     assert first_min({}, score, (), set()) is None
+
+
+@pytest.mark.parametrize("name", ["lrfu-rescaling", "markov-rescaling", "orbit-rescaling"])
+@pytest.mark.parametrize("seed", [1, 2, 3])
+def test_long_streams_with_rescaled_counts_make_the_victims_of_the_reference_path(name, seed):
+    rng = np.random.default_rng(seed)
+    n_layers, n_experts, k = 3, 4, 2
+    ops = []
+    for _ in range(500):
+        layer = int(rng.integers(n_layers))
+        ops.append(("step", layer, sorted(rng.choice(n_experts, size=k, replace=False).tolist())))
+        if rng.random() < 0.2:
+            e = int(rng.integers(n_experts))
+            ops.append(("guess", layer * n_experts + e, ()))
+    fast_cls, ref_cls = _FAST_AND_REFERENCE[name]
+    got, want = [], []
+    fast = Residency(5, make_policy(fast_cls, n_layers * n_experts, n_experts))
+    ref = _RefResidency(5, make_policy(ref_cls, n_layers * n_experts, n_experts))
+    _drive(fast, ops, n_layers, n_experts, True, got)
+    _drive(ref, ops, n_layers, n_experts, True, want)
+    assert fast.policy.origin > 0  # the counts were rescaled along the way
+    assert got == want and fast.slot_of == ref.slot_of
