@@ -84,24 +84,31 @@ class Residency:
         """Serve a step's accesses in order, as ``access`` does one: ``[(hit, slot, victim), ...]``.
         ``done`` continues a step that raised NoVictim (its results so far).
 
-        The decode path: the policy's hooks are looked up once per step, not per access, and the clock is
-        stored once per step."""
-        out = done if done is not None else []
-        slot_of, policy, free, busy = self.slot_of, self.policy, self.free, self.busy
-        hit, inserted, pick = policy.hit, policy.inserted, policy.pick
+        The decode path: looked up once per step, not per access (the policy's ``hit``, ``out.append``),
+        and the clock stored once per step."""
+        if done is None:
+            out = []
+            todo = keys
+        else:
+            out = done
+            todo = keys[len(done):]
+        slot_of, policy = self.slot_of, self.policy
+        hit = policy.hit
+        append = out.append
         now = self.now
         try:
-            for i in range(len(out), len(keys)):
-                key = keys[i]
+            for key in todo:
                 slot = slot_of.get(key)
                 if slot is not None:
                     hit(key, now)
-                    out.append((True, slot, None))
+                    append((True, slot, None))
                 else:
+                    free = self.free
                     if free:  # victim() and _take_slot(), inline
                         slot, victim = free.pop(), None
                     else:
-                        victim = pick(slot_of, pinned, busy, now)
+                        busy = self.busy
+                        victim = policy.pick(slot_of, pinned, busy, now)
                         if victim is None:
                             raise NoVictim(out)
                         if victim not in slot_of or victim in pinned or victim in busy:
@@ -109,8 +116,8 @@ class Residency:
                         policy.evicted(victim)
                         slot = slot_of.pop(victim)
                     slot_of[key] = slot
-                    inserted(key, now)
-                    out.append((False, slot, victim))
+                    policy.inserted(key, now)
+                    append((False, slot, victim))
                 now += 1
         finally:
             self.now = now  # the accesses served (all of them, or those before an exception)
