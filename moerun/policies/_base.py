@@ -14,6 +14,7 @@ import numpy as np
 
 Key = int
 LN2 = math.log(2.0)
+_RANK = 1 << 62  # lfu's count weighs this much against its last access
 
 
 def first_min(resident: Iterable[Key], score: list, pinned: Collection[Key], busy: Collection[Key], top=math.inf) -> Key | None:
@@ -226,27 +227,29 @@ class LFU(Policy):
         super().__init__(n_keys, shared_experts)
         self.count = [0] * n_keys
         self.last = [0] * n_keys
-        self.rank = [(0, 0)] * n_keys  # (count, last): what the victim is the first smallest of
+        # count * 2**62 + last: ordered as (count, last) is (the clock never reaches 2**62 accesses), and
+        # compared as one integer; what the victim is the first smallest of
+        self.rank = [0] * n_keys
 
     def inserted(self, key, now):
         if key >= len(self.rank):
             grow(self.count, key)
             grow(self.last, key)
-            grow(self.rank, key, (0, 0))
+            grow(self.rank, key)
         self.count[key] = 1
         self.last[key] = now
-        self.rank[key] = (1, now)
+        self.rank[key] = _RANK + now
 
     def hit(self, key, now):
         c = self.count[key] = self.count[key] + 1
         self.last[key] = now
-        self.rank[key] = (c, now)
+        self.rank[key] = c * _RANK + now
 
     def victim(self, candidates, now):
         return min(candidates, key=self.rank.__getitem__)
 
     def pick(self, resident, pinned, busy, now):
-        return first_min(resident, self.rank, pinned, busy, (math.inf,))
+        return first_min(resident, self.rank, pinned, busy)
 
 
 class Optimal(Policy):
