@@ -10,7 +10,10 @@ computed).  See docs/design/policy-interface.md.
 State lives in plain lists indexed by key, so a notification is a list store
 and a victim is one ``min`` over the candidates: no per-access allocation.
 Lists grow on insertion (a hit is always on an inserted key), so a policy made
-without ``n_keys`` works for any small non-negative keys.
+without ``n_keys`` works for any small non-negative keys.  The pool asks for a
+victim through ``Policy.pick``, which lists the candidates and asks ``victim``;
+the built-in rules override it to reach the same key without that list
+(docs/design/policy-interface.md).
 
 Writing a policy::
 

@@ -8,12 +8,36 @@ from __future__ import annotations
 
 import inspect
 import math
-from collections.abc import Sequence
+from collections.abc import Collection, Iterable, Sequence
 
 import numpy as np
 
 Key = int
 LN2 = math.log(2.0)
+_RANK = 1 << 62  # lfu's count weighs this much against its last access
+
+
+def first_min(resident: Iterable[Key], score: list, pinned: Collection[Key], busy: Collection[Key], top=math.inf) -> Key | None:
+    """The first key of ``resident`` with the smallest ``score[key]`` that is neither pinned nor busy (None:
+    every key is): what ``min(candidates, key=score.__getitem__)`` gives over the list of candidates, without
+    making that list.  The first smallest of all, if evictable, is the first smallest of any subset that
+    keeps the order; if not, the pinned and busy residents' scores are set to ``top`` (above every score)
+    for a second ``min`` and put back."""
+    if not resident:
+        return None
+    get = score.__getitem__
+    key = min(resident, key=get)
+    if key not in pinned and key not in busy:
+        return key
+    held = [(k, score[k]) for k in (*pinned, *busy) if k in resident]
+    for k, _ in held:
+        score[k] = top
+    try:
+        key = min(resident, key=get)
+    finally:
+        for k, v in held:  # read before any was masked: a key both pinned and busy gets its own score back
+            score[k] = v
+    return None if key in pinned or key in busy else key
 
 
 def grow(values: list, key: int, fill=0) -> None:
@@ -49,6 +73,26 @@ class Policy:
     def victim(self, candidates: Sequence[Key], now: int) -> Key:
         """Pick one of ``candidates`` (resident, evictable; never empty) to evict."""
         raise NotImplementedError
+
+    def pick(self, resident: Collection[Key], pinned: Collection[Key], busy: Collection[Key], now: int) -> Key | None:
+        """The victim among ``resident`` (the resident keys, in insertion order) that is in neither ``pinned``
+        nor ``busy``; None when every one is.  This is what the pool calls: the default makes the list of
+        candidates and asks ``victim``, the general path every policy may rely on.  A built-in rule whose
+        victim is the first smallest of a list of scores overrides it to skip making that list
+        (``first_min``), or keeps its residents in the order its victims come in (``lru``, ``fifo``).
+        Such a ``pick`` relies on the methods ``pick_relies_on`` names: a subclass that overrides one of
+        them and not ``pick`` gets the general path back (``__init_subclass__``), so its own ``victim``
+        is asked."""
+        candidates = [k for k in resident if k not in pinned and k not in busy]
+        return self.victim(candidates, now) if candidates else None
+
+    pick_relies_on: tuple[str, ...] = ("victim",)
+
+    def __init_subclass__(cls, **kwargs):
+        super().__init_subclass__(**kwargs)
+        if "pick" not in cls.__dict__ and any(name in cls.__dict__ for name in cls.pick_relies_on):
+            cls.pick = Policy.pick  # a rule of its own: the general path asks its victim()
+            cls.pick_relies_on = ("victim",)
 
     def routed(self, layer: int, chosen: Sequence[int], probs: np.ndarray | None, now: int) -> None:
         """Optional per-step signal, before a decode step's accesses: the layer, its chosen expert ids
@@ -90,23 +134,59 @@ def make_policy(cls: type[Policy], n_keys: int = 0, shared_experts: int = 0, fut
 
 
 class LRU(Policy):
-    """Least recently used: evict the key whose last access is oldest."""
+    """Least recently used: evict the key whose last access is oldest.
+
+    ``order`` holds the resident keys from the least to the most recently used (an access moves its
+    key to the end), so the victim is found at the front instead of by a scan: the first evictable key
+    there, or, when evictable keys tie on their last access (a guess placed at the clock of the access
+    that follows), the first of them in the pool's insertion order, as ``min`` over the candidates."""
 
     name = "lru"
+    pick_relies_on = ("victim", "inserted", "hit", "evicted")
 
     def __init__(self, n_keys: int = 0, shared_experts: int = 0):
         super().__init__(n_keys, shared_experts)
         self.last = [0] * n_keys
+        self.order: dict[Key, None] = {}  # resident keys, least recently used first
 
     def inserted(self, key, now):
-        grow(self.last, key)
-        self.last[key] = now
+        last = self.last
+        if key >= len(last):
+            grow(last, key)
+        last[key] = now
+        order = self.order
+        order.pop(key, None)
+        order[key] = None
 
     def hit(self, key, now):
         self.last[key] = now
+        order = self.order
+        order.pop(key, None)
+        order[key] = None
+
+    def evicted(self, key):
+        self.order.pop(key, None)
 
     def victim(self, candidates, now):
         return min(candidates, key=self.last.__getitem__)
+
+    def pick(self, resident, pinned, busy, now):
+        last = self.last
+        best = tied = None
+        t = 0
+        for k in self.order:  # last access ascending
+            if best is not None and last[k] != t:
+                break
+            if k in pinned or k in busy:
+                continue
+            if best is None:
+                best, t = k, last[k]
+            else:
+                tied = [best, k] if tied is None else [*tied, k]
+        if tied is not None:  # the first of them in insertion order, as min() over the candidates
+            tied = set(tied)
+            return next(k for k in resident if k in tied)
+        return best
 
 
 class FIFO(Policy):
@@ -119,11 +199,23 @@ class FIFO(Policy):
         self.loaded = [0] * n_keys
 
     def inserted(self, key, now):
-        grow(self.loaded, key)
-        self.loaded[key] = now
+        loaded = self.loaded
+        if key >= len(loaded):
+            grow(loaded, key)
+        loaded[key] = now
 
     def victim(self, candidates, now):
         return min(candidates, key=self.loaded.__getitem__)
+
+    pick_relies_on = ("victim", "inserted")
+
+    def pick(self, resident, pinned, busy, now):
+        # the pool's residents are in insertion order and ``loaded`` is the clock at insertion, which never
+        # goes back: the first evictable resident is the first smallest, as min() over the candidates
+        for k in resident:
+            if k not in pinned and k not in busy:
+                return k
+        return None
 
 
 class LFU(Policy):
@@ -135,20 +227,29 @@ class LFU(Policy):
         super().__init__(n_keys, shared_experts)
         self.count = [0] * n_keys
         self.last = [0] * n_keys
+        # count * 2**62 + last: ordered as (count, last) is (the clock never reaches 2**62 accesses), and
+        # compared as one integer; what the victim is the first smallest of
+        self.rank = [0] * n_keys
 
     def inserted(self, key, now):
-        grow(self.count, key)
-        grow(self.last, key)
+        if key >= len(self.rank):
+            grow(self.count, key)
+            grow(self.last, key)
+            grow(self.rank, key)
         self.count[key] = 1
         self.last[key] = now
+        self.rank[key] = _RANK + now
 
     def hit(self, key, now):
-        self.count[key] += 1
+        c = self.count[key] = self.count[key] + 1
         self.last[key] = now
+        self.rank[key] = c * _RANK + now
 
     def victim(self, candidates, now):
-        count, last = self.count, self.last
-        return min(candidates, key=lambda k: (count[k], last[k]))
+        return min(candidates, key=self.rank.__getitem__)
+
+    def pick(self, resident, pinned, busy, now):
+        return first_min(resident, self.rank, pinned, busy)
 
 
 class Optimal(Policy):
@@ -180,6 +281,13 @@ class Optimal(Policy):
 
     def victim(self, candidates, now):
         return max(candidates, key=self.upcoming.__getitem__)
+
+    def pick(self, resident, pinned, busy, now):
+        get = self.upcoming.__getitem__  # the first largest, as max() over the candidates (see first_min)
+        key = max(resident, key=get, default=None)
+        if key is not None and (key in pinned or key in busy):
+            return max([k for k in resident if k not in pinned and k not in busy], key=get, default=None)
+        return key
 
 
 class LRFU(Policy):
@@ -247,3 +355,6 @@ class LRFU(Policy):
 
     def victim(self, candidates, now):
         return min(candidates, key=self.count.__getitem__)
+
+    def pick(self, resident, pinned, busy, now):
+        return first_min(resident, self.count, pinned, busy)

@@ -5,7 +5,7 @@ from __future__ import annotations
 import array
 import math
 
-from moerun.policies._base import LN2, LRFU, Key, grow
+from moerun.policies._base import LN2, LRFU, Key, Policy, first_min, grow
 
 
 class _RoutingModel:
@@ -164,6 +164,14 @@ class Markov(LRFU):
         super().__init__(n_keys, shared_experts)
         self.models: dict = {}
         self.layer = None  # the layer of a per-layer pool's keys: the last one routed
+        # A shared pool keeps each resident key's score (``pick``): the two terms of ``scores``, log p, set
+        # when the key comes in and each time its layer routes (p changes only then), and w * ln count, set
+        # when the key is accessed and when the counts are rescaled; and their sum.
+        self.members: dict[int, set] = {}  # layer -> its resident keys
+        self.logp = [0.0] * n_keys
+        self.wlc = [0.0] * n_keys
+        self.kept = [0.0] * n_keys
+        self._origin = 0  # the counts' origin when ``wlc`` was last right for every resident key
 
     def _model(self, layer) -> _RoutingModel:
         m = self.models.get(layer)
@@ -177,6 +185,52 @@ class Markov(LRFU):
         if m is None:
             m = self._model(layer)
         m.step(tuple(chosen))
+        members = self.members.get(layer) if self.shared_experts else None
+        if members:  # the layer's resident keys: log p anew (the same arithmetic as ``scores``)
+            p, log, base = m.p, math.log, layer * self.shared_experts
+            logp, wlc, kept = self.logp, self.wlc, self.kept
+            for k in members:
+                lp = logp[k] = log(p(k - base))
+                kept[k] = lp + wlc[k]
+
+    def _keep(self, key: Key, inserted: bool) -> None:
+        """A shared pool's key was accessed (``inserted``: it came in): its kept score anew."""
+        count, w, log = self.count, self.w, math.log
+        if self.origin != self._origin:  # the counts were rescaled: every resident key's frequency term
+            self._origin = self.origin
+            wlc, kept, logp = self.wlc, self.kept, self.logp
+            for members in self.members.values():
+                for k in members:
+                    kept[k] = logp[k] + (wc := w * log(count[k]))
+                    wlc[k] = wc
+        if key >= len(self.kept):
+            for values in (self.logp, self.wlc, self.kept):
+                grow(values, key, 0.0)
+        if inserted:
+            layer, e = divmod(key, self.shared_experts)
+            members = self.members.get(layer)
+            if members is None:
+                members = self.members[layer] = set()
+            members.add(key)
+            self.logp[key] = log(self._model(layer).p(e))
+        wc = self.wlc[key] = w * log(count[key])
+        self.kept[key] = self.logp[key] + wc
+
+    def inserted(self, key, now):
+        LRFU.inserted(self, key, now)
+        if self.shared_experts:
+            self._keep(key, True)
+
+    def hit(self, key, now):
+        LRFU.inserted(self, key, now)
+        if self.shared_experts:
+            self._keep(key, False)
+
+    def evicted(self, key):
+        if self.shared_experts:
+            members = self.members.get(key // self.shared_experts)
+            if members is not None:
+                members.discard(key)
 
     def score(self, key: Key, now: int) -> float:
         """log p(key needed soon) + w * ln crf(key); the smallest is evicted."""
@@ -205,6 +259,15 @@ class Markov(LRFU):
             return candidates[0]
         s = self.scores(candidates, now)
         return candidates[s.index(min(s))]  # the first of the smallest, as min() over the candidates
+
+    pick_relies_on = ("victim", "scores", "score", "inserted", "hit", "evicted", "routed")
+
+    def pick(self, resident, pinned, busy, now):
+        """A shared pool: the first smallest kept score (the values ``scores`` gives, kept up to date per
+        key); a pool of one layer asks ``victim`` (its few candidates are scored when asked)."""
+        if self.shared_experts:
+            return first_min(resident, self.kept, pinned, busy)
+        return Policy.pick(self, resident, pinned, busy, now)
 
     @classmethod
     def with_params(cls, **params) -> type[Markov]:

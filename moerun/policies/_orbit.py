@@ -6,7 +6,7 @@ import math
 from array import array
 from collections import deque
 
-from moerun.policies._base import LN2, Policy, grow
+from moerun.policies._base import LN2, Policy, first_min, grow
 
 
 class Orbit(Policy):
@@ -248,6 +248,9 @@ class Orbit(Policy):
 
     def victim(self, candidates, now):
         return min(candidates, key=self.score.__getitem__)
+
+    def pick(self, resident, pinned, busy, now):
+        return first_min(resident, self.score, pinned, busy)
 
     @classmethod
     def with_params(cls, **params) -> type[Orbit]:

@@ -105,7 +105,7 @@ class Decisions:
         None: they are worked out only if the policy listens)."""
         base = self.base[layer]
         if keys is None:
-            keys = tuple(ids) if not base else tuple(base + e for e in ids)
+            keys = tuple(ids) if not base else tuple([base + e for e in ids])
         self.pinned = keys
         if self.signals:
             r = self.res_of[layer]
@@ -156,7 +156,7 @@ class Decisions:
         """``route`` then ``serve``, in one call (the live pool's decode path).  On NoVictim the step is
         routed and ``done`` served: go on with ``serve(layer, done)``."""
         base = self.base[layer]
-        keys = self.pinned = tuple(ids) if not base else tuple(base + e for e in ids)
+        keys = self.pinned = tuple(ids) if not base else tuple([base + e for e in ids])
         r = self.res_of[layer]
         if self.signals:
             r.policy.routed(layer, ids, probs, r.now)

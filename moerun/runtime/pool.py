@@ -334,7 +334,7 @@ class ExpertPool(ExpertSource):
             st.hits[layer] += k
             self._events = self._all_resident[layer]
             return
-        ids = chosen[0].tolist()
+        ids = chosen.tolist()[0]  # one call, no view of the row
         r = self.res_of[layer]
         core = self.core
         now = time.monotonic_ns()
@@ -350,7 +350,7 @@ class ExpertPool(ExpertSource):
         misses = prefetched = 0
         ready = True  # every chosen expert usable now: compute_order has nothing to sort
         try:  # pins them, the optional per-step signal (Policy.routed), the accesses
-            served = core.step(layer, ids, probs[0])
+            served = core.step(layer, ids, probs[0] if core.signals else None)
         except NoVictim as e:  # a background read is outstanding in every free slot; one will finish
             served = self._serve(layer, r, core.pinned, e.done)
         for e, (hit, slot, victim) in zip(ids, served):
@@ -358,9 +358,9 @@ class ExpertPool(ExpertSource):
             if not hit:
                 if victim is not None and (s.guess or s.transfer is not None):
                     self._evicted(s)  # its bookkeeping (a plain resident needs none)
-                s.claim(layer, e, r)  # read by weights() when the layer needs it
-                # on its way from now, with an emulated link
-                s.transfer = link.book(self.store.expert_nbytes, now, True) if link is not None else None
+                s.claim(layer, e, r)  # read by weights() when the layer needs it (claim clears its transfer)
+                if link is not None:  # on its way from now, with an emulated link
+                    s.transfer = link.book(self.store.expert_nbytes, now, True)
                 ev = events[e] = s.event
                 ev.kind = MISS
                 ev.pagein_ns = ev.stall_ns = 0
@@ -403,16 +403,21 @@ class ExpertPool(ExpertSource):
         ev = self._events
         now = time.monotonic_ns()
         ready = []
+        rest = []
         slots = self.slots
         for j, e in enumerate(ids):
             s = slots[ev[e].slot]
             if s.state == LOADING:
                 self._settle(s)
-            if s.state == READY and self._usable_at(s, now) <= now:
-                ready.append(j)
-        if len(ready) == len(ids):
+            if s.state == READY:
+                t = s.transfer  # _usable_at, inline
+                if (s.ready_at if t is None else t.end if t.end >= 0 else self.link.ends(t, now)) <= now:
+                    ready.append(j)
+                    continue
+            rest.append(j)
+        if not rest:
             return range(len(ids))
-        return ready + [j for j in range(len(ids)) if j not in ready]
+        return ready + rest
 
     def weights(self, layer: int, expert: int):
         ev = self._events.get(expert)

@@ -52,10 +52,9 @@ class Residency:
         """The key the policy would evict to make room (None while a slot is free). Raises NoVictim."""
         if self.free:
             return None
-        candidates = self.candidates(pinned)
-        if not candidates:
+        victim = self.policy.pick(self.slot_of, pinned, self.busy, self.now)
+        if victim is None:
             raise NoVictim
-        victim = self.policy.victim(candidates, self.now)
         if victim not in self.slot_of or victim in pinned or victim in self.busy:
             raise RuntimeError(f"policy {self.policy.name!r} chose {victim!r}, which is not an evictable resident")
         return victim
@@ -83,33 +82,45 @@ class Residency:
 
     def access_step(self, keys: list[Key], pinned: Collection[Key], done: list | None = None) -> list:
         """Serve a step's accesses in order, as ``access`` does one: ``[(hit, slot, victim), ...]``.
-        ``done`` continues a step that raised NoVictim (its results so far)."""
-        out = done if done is not None else []
+        ``done`` continues a step that raised NoVictim (its results so far).
+
+        The decode path: looked up once per step, not per access (the policy's ``hit``, ``out.append``),
+        and the clock stored once per step."""
+        if done is None:
+            out = []
+            todo = keys
+        else:
+            out = done
+            todo = keys[len(done):]
         slot_of, policy = self.slot_of, self.policy
-        for i in range(len(out), len(keys)):
-            key = keys[i]
-            now = self.now
-            slot = slot_of.get(key)
-            if slot is not None:
-                policy.hit(key, now)
-                out.append((True, slot, None))
-            else:
-                if self.free:  # victim() and _take_slot(), inline: the decode path
-                    slot, victim = self.free.pop(), None
+        hit = policy.hit
+        append = out.append
+        now = self.now
+        try:
+            for key in todo:
+                slot = slot_of.get(key)
+                if slot is not None:
+                    hit(key, now)
+                    append((True, slot, None))
                 else:
-                    busy = self.busy
-                    candidates = [k for k in slot_of if k not in pinned and k not in busy]
-                    if not candidates:
-                        raise NoVictim(out)
-                    victim = policy.victim(candidates, now)
-                    if victim not in slot_of or victim in pinned or victim in busy:
-                        raise RuntimeError(f"policy {policy.name!r} chose {victim!r}, which is not an evictable resident")
-                    policy.evicted(victim)
-                    slot = slot_of.pop(victim)
-                slot_of[key] = slot
-                policy.inserted(key, now)
-                out.append((False, slot, victim))
-            self.now = now + 1
+                    free = self.free
+                    if free:  # victim() and _take_slot(), inline
+                        slot, victim = free.pop(), None
+                    else:
+                        busy = self.busy
+                        victim = policy.pick(slot_of, pinned, busy, now)
+                        if victim is None:
+                            raise NoVictim(out)
+                        if victim not in slot_of or victim in pinned or victim in busy:
+                            raise RuntimeError(f"policy {policy.name!r} chose {victim!r}, which is not an evictable resident")
+                        policy.evicted(victim)
+                        slot = slot_of.pop(victim)
+                    slot_of[key] = slot
+                    policy.inserted(key, now)
+                    append((False, slot, victim))
+                now += 1
+        finally:
+            self.now = now  # the accesses served (all of them, or those before an exception)
         return out
 
     def insert(self, key: Key, pinned: Collection[Key] = ()) -> tuple[int, Key | None]:

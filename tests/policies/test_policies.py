@@ -31,7 +31,7 @@ from moerun.cli import main as cli
 from moerun.errors import BadTrace
 from moerun.files.trace import Trace, read_trace, write_trace
 from moerun.model.sampling import Sampling
-from moerun.policies import FIFO, LFU, LRFU, LRU, Markov, Optimal, Orbit, Policy
+from moerun.policies import FIFO, LFU, LRFU, LRU, Markov, Optimal, Orbit, Policy, grow
 from moerun.runtime.budget import minimum_cap
 from moerun.runtime.residency import Residency
 from moerun.sim import report as replay
@@ -378,7 +378,7 @@ def resident_reference(small_model):
     return prompt, _generate(small_model, prompt)
 
 
-@pytest.mark.parametrize("evict", ["markov", "lrfu", "orbit"])
+@pytest.mark.parametrize("evict", ["markov", "lrfu", "orbit", "lru", "fifo", "lfu"])
 @pytest.mark.parametrize("prefetch", [0, 2], ids=["no-prefetch", "prefetch-2"])
 @pytest.mark.parametrize("split", ["even", "shared"])
 def test_capped_run_with_a_learned_policy_equals_resident_bit_for_bit(small_model, resident_reference, evict, prefetch, split):
@@ -395,6 +395,44 @@ def test_capped_run_with_a_learned_policy_equals_resident_bit_for_bit(small_mode
         assert got[3]["pool"]["misses"] > 0  # the cap made the policy work
         if prefetch:
             assert got[3]["reader_alive"]
+
+
+class _DocumentedMostRecent(Policy):
+    """docs/design/policy-interface.md's example (``victim`` only, no ``pick``): the pool asks it on the
+    general path, a list of candidates per victim.  ``asked`` counts its victims, over every object."""
+
+    name = "test-doc-mru"
+    asked = 0
+
+    def __init__(self, n_keys=0, shared_experts=0):
+        super().__init__(n_keys, shared_experts)
+        self.last = [0] * n_keys
+
+    def inserted(self, key, now):
+        grow(self.last, key)
+        self.last[key] = now
+
+    def hit(self, key, now):
+        self.last[key] = now
+
+    def victim(self, candidates, now):
+        type(self).asked += 1
+        return max(candidates, key=self.last.__getitem__)
+
+
+@pytest.mark.parametrize("split", ["even", "shared"])
+def test_a_user_policy_written_to_the_documented_interface_runs_live_bit_for_bit(small_model, resident_reference, split,
+                                                                              monkeypatch):
+    monkeypatch.setitem(policies._REGISTRY, _DocumentedMostRecent.name, _DocumentedMostRecent)
+    monkeypatch.setattr(_DocumentedMostRecent, "asked", 0)
+    prompt, ref = resident_reference
+    with moerun.load(small_model, tokenizer=False) as eng:
+        lo = minimum_cap(eng.store.config, eng.store.dense_nbytes, eng.store.expert_nbytes, split)
+    got = _generate(small_model, prompt, mem_cap=lo, split=split, evict=_DocumentedMostRecent.name)
+    assert np.array_equal(_bits(ref[0]), _bits(got[0])) and ref[1] == got[1]
+    assert np.array_equal(_bits(ref[2]), _bits(got[2]))
+    assert got[3]["pool"]["misses"] > 0
+    assert _DocumentedMostRecent.pick is Policy.pick and _DocumentedMostRecent.asked > 0  # its own victim() decided
 
 
 @pytest.mark.parametrize("prompt_len", [7, 1], ids=["prompt-7", "prompt-1"])
