@@ -130,7 +130,7 @@ def _measured_section(r: QuantReport) -> list[str]:
     h = r.heldout
     if h:
         lines += [
-            f"| held-out perplexity, source (heldout.txt, {h['predicted_tokens']:,} tokens) | {h['source']['perplexity']:.4f} |",
+            f"| held-out perplexity, source ({h.get('text', 'heldout.txt')}, {h['predicted_tokens']:,} tokens) | {h['source']['perplexity']:.4f} |",
             f"| held-out perplexity, this model (same tokens) | {h['quantized']['perplexity']:.4f} "
             f"({100 * h['relative_change']:+.2f} %) |",
             "",

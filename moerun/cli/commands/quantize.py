@@ -25,7 +25,9 @@ def add_arguments(p) -> None:
     p.add_argument("--method", choices=METHODS, default="hqq", help="rtn = round to nearest; hqq = half-quadratic zero-point refinement (default)")
     cli.add_force_dir(p, ", and never the source")
     p.add_argument("--no-score", action="store_true", help="skip measuring held-out perplexity of source and result for the card")
-    cli.add_max_tokens(p, "score only the first N tokens of heldout.txt (default: all)")
+    p.add_argument("--text", metavar="FILE", help="held-out text to measure perplexity on (default: the model's heldout.txt; "
+                                                  "an open checkpoint has none and needs this or --no-score)")
+    cli.add_max_tokens(p, "score only the first N tokens of the text (default: all)")
     cli.add_json(p)
 
 
@@ -40,7 +42,7 @@ def run(args) -> int:
     try:
         rep = quantize(args.out, args.model, expert_bits=args.expert_bits, attn_bits=args.attn_bits, group=args.group,
                        method=args.method, force=args.force, score=not args.no_score, max_tokens=args.max_tokens,
-                       progress=on_progress, command=command)
+                       progress=on_progress, command=command, text=args.text)
     finally:
         progress.close()
     if args.json:
@@ -60,7 +62,7 @@ def run(args) -> int:
     if rep.heldout:
         h = rep.heldout
         rows.append(["held-out perplexity", f"{h['quantized']['perplexity']:.4f} vs source {h['source']['perplexity']:.4f} "
-                                            f"({100 * h['relative_change']:+.2f}%, {h['predicted_tokens']:,} tokens)"])
+                                            f"({100 * h['relative_change']:+.2f}%, {h['predicted_tokens']:,} tokens of {h['text']})"])
     rows.append(["time", f"{rep.seconds:.1f} s"])
     sys.stdout.write(table(["", "value"], rows, "ll") + "\n")
     written("quantize", "model directory", rep.out_dir)
