@@ -238,7 +238,7 @@ class ModelStore:
         if is_open_checkpoint(model_dir):  # the callers that take one open it with moerun.files.ckpt_store.open_store
             raise BadModelFile(
                 f"{model_dir}: an open checkpoint (config.json names a model_type); this command does not run on "
-                "open checkpoints yet (generate, verify, inspect, probe, plan, record and score do)"
+                "open checkpoints yet (generate, verify, inspect, probe, plan, record, score and quantize do)"
             )
         config = ModelConfig.load(model_dir)
         header = read_header(model_dir / "model.safetensors")
