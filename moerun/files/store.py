@@ -194,6 +194,32 @@ def _expert_ranges(config: ModelConfig, header: Header, codec: Codec) -> tuple[l
     return ranges, layout or {}
 
 
+class _EmbeddingRows:
+    """``rows[ids]`` -> float32 [len(ids), d_model]: the embedding rows of ``ids``, each read from the weights file
+    (``ModelStore._read``, os.pread: nothing is mapped) and widened when asked for; the table is never held."""
+
+    def __init__(self, store: ModelStore, t: TensorInfo):
+        self.store = store
+        self.t = t
+        self.row_bytes = t.nbytes // t.shape[0]
+
+    def __getitem__(self, ids) -> np.ndarray:
+        ids = np.atleast_1d(np.asarray(ids))
+        t = self.t
+        out = np.empty((ids.size, t.shape[1]), np.float32)
+        for i, tok in enumerate(ids.tolist()):
+            if not 0 <= tok < t.shape[0]:
+                raise IndexError(f"token {tok} out of range 0..{t.shape[0] - 1}")
+            raw = self.store._read(t.start + int(tok) * self.row_bytes, self.row_bytes)
+            if t.dtype == "F32":
+                out[i] = np.frombuffer(raw, "<f4")
+            else:
+                widen_into(np.frombuffer(raw, STORED_DTYPES[t.dtype]), t.dtype, out[i])
+            if not np.all(np.isfinite(out[i])):
+                raise BadModelFile(f"{self.store.path}: tensor 'embed' holds NaN or infinite values (row {tok})")
+        return out
+
+
 class ModelStore:
     """A validated, opened model directory (weights file, config, paths)."""
 
@@ -218,7 +244,9 @@ class ModelStore:
         self._map: mmap.mmap | None = None
         self._map_addr = 0
         self.dense: dict[str, np.ndarray] = {}
-        self.embed = None  # the embedding table is dense["embed"] (an open checkpoint's store reads rows on demand)
+        # the embedding table is dense["embed"]; an open checkpoint's store, and this one for a model quantized from an
+        # untied one, read rows on demand (dense["embed"] is None then)
+        self.embed = None
         self._dense_nbytes = 0
 
     # ---------------------------------------------------------------- opening
@@ -294,7 +322,14 @@ class ModelStore:
 
     def _load_dense(self) -> None:
         packed = packed_dense_tensors(self.config)
+        rows_on_demand = bool(self.config.arch) and not self.config.tied_embeddings
         for name in self.config.dense_shapes():
+            if name == "embed" and rows_on_demand:
+                # a model quantized from an open checkpoint reads embedding rows when a token needs them, as the
+                # checkpoint's store does: the table (150k x 2048 is 1.2 GB as float32) is never held
+                self.dense["embed"] = None
+                self.embed = _EmbeddingRows(self, self.header.tensors["embed"])
+                continue
             if name in packed:  # a quantized attention matrix, dequantized once here
                 self.dense[name] = read_packed_dense(self.config, self.header, name, packed[name], self._read)
                 continue
@@ -306,7 +341,7 @@ class ModelStore:
                 self.dense[name] = self._read_widened(t)
             if not np.all(np.isfinite(self.dense[name])):
                 raise BadModelFile(f"{self.path}: tensor {name!r} holds NaN or infinite values")
-        self._dense_nbytes = sum(a.nbytes for a in self.dense.values())
+        self._dense_nbytes = sum(a.nbytes for a in self.dense.values() if a is not None)
 
     def _read_widened(self, t: TensorInfo) -> np.ndarray:
         """A 16-bit (F16 or BF16) tensor as a new float32 array, read and widened WIDEN_CHUNK elements at a time: the

@@ -350,6 +350,7 @@ class _Writer:
         self.expert_errors = _ErrorSum()
         self.attn = {f"layers.{b}.attn.{p}" for b in range(c.n_blocks) for p in ATTN_PARTS}
         self.make: dict[str, object] = {}
+        self.attn_dtype = "F16"
         shapes = {}
         tags = {}
         for name, shape in c.dense_shapes().items():
@@ -359,6 +360,7 @@ class _Writer:
                 self.make[name] = (self._as_stored, name)
             elif spec.attn_bits == 16:
                 tags[name], shapes[name] = ("BF16" if stored == "BF16" else "F16"), shape
+                self.attn_dtype = tags[name]
                 self.make[name] = (self._attn16, name)
             else:
                 blob = BlobLayout((tuple(shape),), spec.attn_bits, spec.group)
@@ -495,6 +497,7 @@ def quantize_model(
                 expert_rel_rms=writer.expert_errors.relative_rms,
                 attn_rel_rms=writer.attn_errors.relative_rms,
                 seconds=0.0,
+                attn_dtype=writer.attn_dtype,
             )
             del writer
             source.close()  # scoring opens the source again, as an engine

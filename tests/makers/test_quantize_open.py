@@ -184,6 +184,20 @@ def test_an_expert_straddling_two_shards_dequantizes_within_half_a_step_of_its_b
         assert np.all(np.abs(d - w) <= step / 2 + 1e-4 * step + 1e-6 * np.abs(w))
 
 
+def test_the_embedding_table_of_an_untied_model_is_read_a_row_at_a_time_exactly(quantized):
+    variant = "qwen3_moe-bf16-fused-sharded"
+    assert not json.loads((FIXTURES / variant / "config.json").read_text())["tie_word_embeddings"]
+    want = _stored_tensor(FIXTURES / variant, "model.embed_tokens.weight")
+    store = ModelStore.open(quantized(variant, 4))
+    try:
+        assert store.dense["embed"] is None and "embed" in store.header.tensors
+        ids = [0, 5, 287, 5]
+        assert np.array_equal(store.embed[ids], want[ids])
+        assert store.dense_nbytes == sum(a.nbytes for a in store.dense.values() if a is not None)  # the table not counted
+    finally:
+        store.close()
+
+
 # ---------------------------------------------------------------------------- exactness
 
 

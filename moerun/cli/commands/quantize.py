@@ -31,6 +31,12 @@ def add_arguments(p) -> None:
     cli.add_json(p)
 
 
+def _attn(rep) -> str:
+    if rep.spec.attn_bits != 16:
+        return f"{rep.spec.attn_bits}-bit"
+    return "float16" if rep.attn_dtype == "F16" else "BF16 (as stored)"
+
+
 def run(args) -> int:
     progress = Progress("quantizing experts")
     command = "moerun " + shlex.join(sys.argv[1:]) if sys.argv and sys.argv[0].endswith(("moerun", "__main__.py")) else None
@@ -51,7 +57,7 @@ def run(args) -> int:
         return 0
     spec = rep.spec
     rows = [
-        ["setting", f"{spec.expert_bits}-bit experts, {'float16' if spec.attn_bits == 16 else f'{spec.attn_bits}-bit'} attention, "
+        ["setting", f"{spec.expert_bits}-bit experts, {_attn(rep)} attention, "
                     f"{spec.method}, group {spec.group}"],
         ["model.safetensors", f"{fmt_bytes(rep.file_bytes)} (source {fmt_bytes(rep.source_file_bytes)}, "
                               f"{100 * rep.file_bytes / rep.source_file_bytes:.1f}%)"],
