@@ -198,6 +198,17 @@ def test_the_embedding_table_of_an_untied_model_is_read_a_row_at_a_time_exactly(
         store.close()
 
 
+def test_inspect_names_the_architecture_of_a_quantized_checkpoint(quantized, capsys):
+    q = quantized("qwen3_moe-bf16-fused-sharded", 4)
+    assert cli.main(["inspect", "--model", str(q), "--check"]) == 0
+    out = capsys.readouterr().out
+    assert "3 layers (2 routed)" in out and "from a qwen3_moe checkpoint: 1 dense layer(s) (layers 1, width 64)" in out
+    assert "q/k norm per_head" in out and "eos [1]" in out
+    assert cli.main(["inspect", "--model", str(q), "--json"]) == 0
+    doc = json.loads(capsys.readouterr().out)
+    assert doc["config"]["arch"] == "qwen3_moe" and doc["config"]["dense_layers"] == [1]
+
+
 # ---------------------------------------------------------------------------- exactness
 
 
