@@ -40,7 +40,7 @@ import numpy as np
 
 from moerun._version import __version__
 from moerun.checks.score import score_text
-from moerun.errors import BadModelFile, BadOption
+from moerun.errors import BadInput, BadModelFile, BadOption
 from moerun.files.checkpoint import Checkpoint, widen_into
 from moerun.files.ckpt_config import is_open_checkpoint
 from moerun.files.ckpt_store import (
@@ -75,7 +75,7 @@ from moerun.files.packed import (
 from moerun.files.store import ModelStore
 from moerun.makers._card import QuantReport, card_text, setting_tag
 from moerun.makers.synthetic import write_tensors_streaming
-from moerun.model.tokenizer import read_text_file
+from moerun.model.tokenizer import Tokenizer, read_text_file
 from moerun.runtime.options import load
 
 # scoring a model quantized from an open checkpoint (and its source) runs each with this many times top_k pool slots
@@ -480,6 +480,12 @@ def quantize_model(
                 raise BadOption(f"--text {text}: no such file")
             if not (text_path.exists() and source.tokenizer is not None and Path(source.tokenizer).exists()):
                 text_path = None
+        ids = None
+        if text_path is not None and source.open_checkpoint:  # tokenized now: a bad text fails before the long part
+            tok = Tokenizer(Path(source.tokenizer), c.vocab_size, c.bos_token_id)
+            ids = tok.encode_file(text_path, score_tokens)
+            if ids.size < 2:
+                raise BadInput(f"{text_path}: the text has too few tokens to score")
         # OUT may not be, contain or lie inside the source; it is built beside itself and appears whole
         # (moerun.files.fileio.atomic_dir: without force nothing at OUT is replaced, with force the old model is
         # exchanged for the new one in one step)
@@ -503,7 +509,7 @@ def quantize_model(
             source.close()  # scoring opens the source again, as an engine
             if text_path is not None:
                 slots = [min(c.n_experts, SCORE_SLOTS * c.top_k)] * c.n_layers if source.open_checkpoint else None
-                report.heldout = score_pair(src, tmp, score_tokens, text_path, slots)
+                report.heldout = score_pair(src, tmp, score_tokens, text_path, slots, ids)
             report.seconds = time.monotonic() - t_start
             write_text_atomic(tmp / "CARD.md", _card(report, c, src, command))
         return report
@@ -512,19 +518,19 @@ def quantize_model(
 
 
 def score_pair(src: Path, quantized: Path, max_tokens: int | None, text_path: Path | None = None,
-               slots: list[int] | None = None) -> dict:
+               slots: list[int] | None = None, ids: np.ndarray | None = None) -> dict:
     """Held-out perplexity of the source and the quantized model on the same tokens, and the relative change.
 
-    ``text_path``: the text (default the source's heldout.txt).  ``slots``: pool slots per layer for both models, their
-    experts read as needed (the engine is bit-exact either way), so that a model larger than memory is scored within
-    it; None keeps every expert resident."""
+    ``text_path``: the text (default the source's heldout.txt); ``ids``: its tokens, when the caller has them.
+    ``slots``: pool slots per layer for both models, their experts read as needed (the engine is bit-exact either way),
+    so that a model larger than memory is scored within it; None keeps every expert resident."""
     text_path = src / "heldout.txt" if text_path is None else Path(text_path)
-    text = read_text_file(text_path)
+    text = read_text_file(text_path) if ids is None else None
     doc = {}
     settings = {} if slots is None else {"slots": slots}
     for key, path in (("source", src), ("quantized", quantized)):
         with load(path, **settings) as eng:
-            r = score_text(eng, text, max_tokens)
+            r = score_text(eng, text, max_tokens, ids=ids)
             doc[key] = {"perplexity": r.perplexity, "cross_entropy_nats": r.cross_entropy, "tok_s": r.tok_s}
             doc["predicted_tokens"] = r.predicted
     doc["relative_change"] = doc["quantized"]["perplexity"] / doc["source"]["perplexity"] - 1

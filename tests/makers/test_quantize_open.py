@@ -166,6 +166,23 @@ def test_8_bit_attention_of_a_checkpoint_is_packed_and_stays_near_the_source(tmp
     assert np.array_equal(got.argmax(axis=1), want.argmax(axis=1))
 
 
+def test_clip_qkv_is_carried_and_computed(tmp_path):
+    # the olmoe fixture has no clip; with one set small enough to bite, the quantized model must clip as the
+    # checkpoint does (the logits differ from the unclipped ones by far more than 8-bit quantization moves them)
+    src = tmp_path / "ck"
+    shutil.copytree(FIXTURES / "olmoe-f32", src)
+    raw = json.loads((src / "config.json").read_text())
+    raw["clip_qkv"] = 0.05
+    (src / "config.json").write_text(json.dumps(raw))
+    out = tmp_path / "q"
+    quantize(out, src, expert_bits=8, method="rtn", score=False)
+    assert ModelConfig.load(out).clip_qkv == 0.05
+    ids = np.load(FIXTURES / "olmoe-f32" / "reference.npz")["tokens_0"]
+    with moerun.load(src) as a, moerun.load(out) as b, moerun.load(FIXTURES / "olmoe-f32") as plain:
+        want, got, unclipped = a.logits(ids), b.logits(ids), plain.logits(ids)
+    assert np.abs(got - want).max() < 0.1 * want.std() < np.abs(unclipped - want).max()
+
+
 @pytest.mark.parametrize("variant", VARIANTS)
 def test_at_8_bits_every_expert_weight_is_within_half_a_step_of_the_source(quantized, variant):
     # rtn's guarantee (round to nearest: a value inside the grid's range lands within half a step of its code's
@@ -263,16 +280,20 @@ def test_the_command_scores_source_and_result_on_the_text_given(tmp_path, capsys
     assert "held.txt" in card and f"{h['quantized']['perplexity']:.4f}" in card
 
 
-@pytest.mark.parametrize("case", ["no text", "bits", "exists", "inside", "truncated shard", "corrupt header"])
+@pytest.mark.parametrize("case", ["no text", "bad text", "bits", "exists", "inside", "truncated shard", "corrupt header"])
 def test_bad_input_is_one_line_exit_2_and_nothing_is_left(tmp_path, capsys, case):
     src = tmp_path / "ck"
     shutil.copytree(FIXTURES / "olmoe-bf16-sharded-v4", src)
     out = tmp_path / "q"
     args = ["quantize", "--model", str(src), str(out), "--no-score", "--method", "rtn"]
-    want = {"no text": "--text", "bits": "--expert-bits", "exists": "--force", "inside": "inside",
+    want = {"no text": "--text", "bad text": "UTF-8", "bits": "--expert-bits", "exists": "--force", "inside": "inside",
             "truncated shard": "model-00003-of-00009", "corrupt header": "model-00005-of-00009"}[case]
     if case == "no text":
         args.remove("--no-score")
+    elif case == "bad text":  # refused before anything is quantized
+        args.remove("--no-score")
+        (tmp_path / "t.txt").write_bytes(b"fog \xff\xfe nets")
+        args += ["--text", str(tmp_path / "t.txt")]
     elif case == "bits":
         args += ["--expert-bits", "5"]
     elif case == "exists":  # a model directory (it has a config.json): replaced only with --force
