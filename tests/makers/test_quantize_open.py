@@ -230,6 +230,13 @@ def test_the_embedding_table_of_an_untied_model_is_read_a_row_at_a_time_exactly(
         store.close()
 
 
+def test_dense_weights_kept_as_stored_is_refused_for_a_quantized_checkpoint_in_one_line(quantized):
+    # its dense matrices are held as float32 (ModelStore); the option would otherwise be silently ignored
+    with pytest.raises(moerun.errors.BadOption, match="quantized checkpoint") as e:
+        moerun.load(quantized("olmoe-bf16-fused", 4), dense_weights="stored")
+    assert len(str(e.value).splitlines()) == 1
+
+
 def test_inspect_names_the_architecture_of_a_quantized_checkpoint(quantized, capsys):
     q = quantized("qwen3_moe-bf16-fused-sharded", 4)
     assert cli.main(["inspect", "--model", str(q), "--check"]) == 0
