@@ -458,7 +458,8 @@ def quantize_model(
     resident).  Dense tensors other than attention (the shared expert's too) keep the source's dtype; attention is
     16-bit (attn_bits 16) or packed like the experts.  ``score``: measure the perplexity of source and result on
     ``text`` (a file; default the source's heldout.txt, which an open checkpoint does not have) for the card, its
-    first ``score_tokens`` tokens if given, each model run with its experts offloaded (``SCORE_SLOTS``).
+    first ``score_tokens`` tokens if given; from an open checkpoint each model runs with SCORE_SLOTS x top_k pool
+    slots a layer, its experts read as needed (a moerun model's run resident, as before).
     ``on_progress(done, total)`` is called after each expert.
     """
     t_start = time.monotonic()
