@@ -90,7 +90,7 @@ def describe(store: ModelStore, files: dict) -> dict:
     first = min(r.start for r in flat)
     end = max(r.start + r.nbytes for r in flat)
     dense_end = max(h.tensors[n].end for n in dense_names)
-    shared_names = [f"layers.{layer}.shared.{part}" for layer in range(c.n_layers) for part in c.shared_shapes()]
+    shared_names = [f"layers.{b}.shared.{part}" for b in c.routed_blocks() for part in c.shared_shapes()]
     # moerun's writer puts dense tensors first, then experts in layer, expert order;
     # other writers (the safetensors library sorts by name) interleave them
     in_order = dense_end <= first and all(a.start + a.nbytes <= b.start for a, b in zip(flat, flat[1:]))

@@ -237,6 +237,40 @@ def pieces_of(spans: ExpertSpans) -> tuple[tuple[int, int, int, int], ...]:
     return tuple(tuple(x) for x in out)
 
 
+def moerun_sources(config: ModelConfig) -> dict[str, tuple[tuple[str, ...], bool]]:
+    """Where each dense tensor of a moerun file (``ModelConfig.dense_shapes``, its names) comes from in the checkpoint
+    ``config`` describes: ``{moerun name: (checkpoint tensors, stacked along their first axis; transposed)}``;
+    transposed: the checkpoint's [out, in] matrix is the moerun file's (in, out)."""
+    out: dict[str, tuple[tuple[str, ...], bool]] = {"embed": ((names.EMBED,), False), "final_norm": ((names.FINAL_NORM,), False)}
+    if not config.tied_embeddings:
+        out["lm_head"] = ((names.LM_HEAD,), True)
+    routed = set(config.routed_blocks())
+    mine = dict(zip(("w_gate", "w_up", "w_down"), names.PARTS))
+    for b in range(config.n_blocks):
+        src, dst = f"model.layers.{b}", f"layers.{b}."
+        a = f"{src}.self_attn"
+        out[dst + "attn_norm"] = ((f"{src}.input_layernorm.weight",), False)
+        out[dst + "moe_norm"] = ((f"{src}.post_attention_layernorm.weight",), False)
+        for p in "qkvo":
+            out[dst + f"attn.w{p}"] = ((f"{a}.{p}_proj.weight",), True)
+        if config.qkv_bias:
+            out[dst + "attn.bqkv"] = (tuple(f"{a}.{p}_proj.bias" for p in "qkv"), False)
+        if config.qk_norm != "none":
+            out[dst + "attn.q_norm"] = ((f"{a}.q_norm.weight",), False)
+            out[dst + "attn.k_norm"] = ((f"{a}.k_norm.weight",), False)
+        if b in routed:
+            out[dst + "router"] = ((names.router(b),), True)
+            if config.d_shared:
+                for part, theirs in mine.items():
+                    out[dst + "shared." + part] = ((f"{src}.mlp.shared_expert.{theirs}_proj.weight",), True)
+                if config.shared_gate:
+                    out[dst + "shared_gate"] = ((f"{src}.mlp.shared_expert_gate.weight",), True)
+        else:
+            for part, theirs in mine.items():
+                out[dst + "mlp." + part] = ((f"{src}.mlp.{theirs}_proj.weight",), True)
+    return out
+
+
 class CheckpointStore:
     """An opened, validated open checkpoint, serving the engine as a ``ModelStore`` does."""
 
@@ -458,7 +492,8 @@ def open_store(model_dir: str | os.PathLike, max_context: int | None = None, wid
     """The store of a model directory: a ``CheckpointStore`` for an open checkpoint, else a ``ModelStore``.
 
     ``max_context``: the positions the KV cache is sized for, at most the model's own context (default: the
-    model's context; an open checkpoint's, at most DEFAULT_CONTEXT: its own is often 32k-256k positions).
+    model's context; an open checkpoint's, or a model quantized from one, at most DEFAULT_CONTEXT: its own is often
+    32k-256k positions).
     ``widen``: an open checkpoint's BF16/F16 experts are held as float32 in their slots; ``stored_dense``: its
     dense matrices stay as stored (``CheckpointStore.open``)."""
     from moerun.files.ckpt_config import is_open_checkpoint
@@ -467,6 +502,8 @@ def open_store(model_dir: str | os.PathLike, max_context: int | None = None, wid
     if Path(model_dir).is_dir() and is_open_checkpoint(model_dir):
         return CheckpointStore.open(model_dir, max_context or DEFAULT_CONTEXT, widen, stored_dense)
     store = ModelStore.open(model_dir)
+    if max_context is None and store.config.arch:  # quantized from an open checkpoint: sized as the checkpoint is
+        max_context = DEFAULT_CONTEXT
     if max_context is not None and max_context < store.config.max_seq_len:
         store.config = dataclasses.replace(store.config, max_seq_len=max_context)
     return store

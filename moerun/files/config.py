@@ -19,7 +19,9 @@ CONFIG_LIMIT = 16 << 20  # bytes of a config.json (a real one is a few hundred)
 # What every output about a model with random weights (config.json "synthetic": true, made by moerun synth) says
 RANDOM_NOTE = "random weights: routing is meaningless"
 
-# the open-checkpoint fields (ModelConfig) and their defaults, which a moerun model has; to_json leaves them out
+# the open-checkpoint fields (ModelConfig) and their defaults, which a moerun model has; to_json leaves them out, and
+# from_dict reads them when a config.json has them (a model quantized from an open checkpoint, moerun-packed/2)
+QK_NORMS = ("none", "per_head", "full")
 _OPEN_DEFAULTS = {"arch": "", "dense_layers": (), "d_dense": 0, "qk_norm": "none", "qkv_bias": False, "clip_qkv": None,
                   "shared_gate": False, "eos_token_ids": ()}
 
@@ -60,8 +62,9 @@ class ModelConfig:
     dtype: str = "F32"
     d_shared: int = 0  # hidden width of the always-on shared expert; 0 = none
     norm_topk: bool = True  # True: chosen weights p / sum(p); False: the chosen probabilities as they are
-    # The optional parts of open checkpoints' architectures (moerun.files.ckpt_store); a moerun model has none of
-    # them, and config.json cannot ask for them.  ``n_layers`` counts the layers that route to experts (all of a
+    # The optional parts of open checkpoints' architectures (moerun.files.ckpt_store); a model made by train or synth
+    # has none of them; a model quantized from an open checkpoint records them in its config.json (the tensors
+    # they imply are in ``dense_shapes``).  ``n_layers`` counts the layers that route to experts (all of a
     # moerun model's); ``dense_layers`` names the places in the stack of layers with a dense MLP of ``d_dense``
     # instead, so the stack has ``n_blocks`` layers and the routed ones are numbered 0..n_layers-1 in order.
     arch: str = ""  # an open checkpoint's model_type ("" for a moerun model)
@@ -155,7 +158,8 @@ class ModelConfig:
         norm_topk = raw.get("norm_topk", True)
         if not isinstance(norm_topk, bool):
             raise BadModelFile(f"{where}: norm_topk must be true (renormalise the chosen weights) or false, got {norm_topk!r:.40}")
-        implied = vals["n_layers"] * (7 + 3 * vals["n_experts"] + (3 if d_shared else 0))
+        n_dense = len(raw["dense_layers"]) if isinstance(raw.get("dense_layers"), list) else 0
+        implied = vals["n_layers"] * (7 + 3 * vals["n_experts"] + (3 if d_shared else 0)) + n_dense * 12
         if implied > MAX_TENSORS:  # refuse before anything enumerates them (a 200-byte config could ask for billions)
             raise BadModelFile(
                 f"{where}: n_layers {vals['n_layers']} x n_experts {vals['n_experts']} implies {implied:,} tensors, "
@@ -168,11 +172,12 @@ class ModelConfig:
             raise BadModelFile(f"{where}: bos_token_id must be a token id below vocab_size, got {bos!r}")
         dtype = raw.get("dtype", "F32")
         name = raw.get("name", "")
+        arch = _arch_fields(raw, vals, d_shared, where)
         known = {*_INT_FIELDS, "rope_theta", "norm_eps", "tied_embeddings", "format", "name", "bos_token_id", "dtype",
-                 "d_shared", "norm_topk"}
+                 "d_shared", "norm_topk", *_OPEN_DEFAULTS}
         extra = {k: v for k, v in raw.items() if k not in known}
         return cls(**vals, format=fmt, name=str(name), bos_token_id=bos, dtype=str(dtype), d_shared=d_shared,
-                   norm_topk=norm_topk, extra=extra)
+                   norm_topk=norm_topk, **arch, extra=extra)
 
     @classmethod
     def load(cls, model_dir: Path) -> ModelConfig:
@@ -187,25 +192,52 @@ class ModelConfig:
             raise BadModelFile(f"{path}: not valid JSON (nested too deeply)") from None
         return cls.from_dict(raw, where=str(path))
 
-    # Expected dense tensors and their shapes (docs/design/architecture.md, model spec).
+    # Expected dense tensors and their shapes (docs/design/architecture.md, model spec; docs/design/file-formats.md has
+    # the table).  These are the moerun names of every dense tensor, the ones the Transformer takes; ``layers.{b}.``
+    # numbers the stack (block b), which for a model without dense layers is the routed layer's number too.  Beyond
+    # the seven of every layer, an open checkpoint's architecture adds (when its config says so): the q, k and v biases
+    # fused as ``attn.bqkv`` [q_dim + 2 kv_dim]; ``attn.q_norm`` and ``attn.k_norm`` ([head_dim] per head, or
+    # [q_dim] / [kv_dim] over the whole of q / k); the shared expert's gate ``shared_gate`` [d_model, 1]; and in a
+    # dense layer, in place of the router, a SwiGLU MLP ``mlp.w_gate``, ``mlp.w_up`` [d_model, d_dense] and
+    # ``mlp.w_down`` [d_dense, d_model].  Matrices are (in, out).
     def dense_shapes(self) -> dict[str, tuple[int, ...]]:
         d = self.d_model
         shapes: dict[str, tuple[int, ...]] = {"embed": (self.vocab_size, d), "final_norm": (d,)}
         if not self.tied_embeddings:
             shapes["lm_head"] = (d, self.vocab_size)
-        for layer in range(self.n_layers):
-            p = f"layers.{layer}."
+        dense = set(self.dense_layers)
+        for block in range(self.n_blocks):
+            p = f"layers.{block}."
             shapes[p + "attn_norm"] = (d,)
             shapes[p + "moe_norm"] = (d,)
             shapes[p + "attn.wq"] = (d, self.q_dim)
             shapes[p + "attn.wk"] = (d, self.kv_dim)
             shapes[p + "attn.wv"] = (d, self.kv_dim)
             shapes[p + "attn.wo"] = (self.q_dim, d)
+            if self.qkv_bias:
+                shapes[p + "attn.bqkv"] = (self.q_dim + 2 * self.kv_dim,)
+            if self.qk_norm == "per_head":
+                shapes[p + "attn.q_norm"] = (self.head_dim,)
+                shapes[p + "attn.k_norm"] = (self.head_dim,)
+            elif self.qk_norm == "full":
+                shapes[p + "attn.q_norm"] = (self.q_dim,)
+                shapes[p + "attn.k_norm"] = (self.kv_dim,)
+            if block in dense:
+                for part, shape in _swiglu_shapes(d, self.d_dense).items():
+                    shapes[p + "mlp." + part] = shape
+                continue
             shapes[p + "router"] = (d, self.n_experts)
             if self.d_shared:  # the shared expert is dense: always resident, part of the fixed budget
                 for part, shape in self.shared_shapes().items():
                     shapes[p + "shared." + part] = shape
+                if self.shared_gate:
+                    shapes[p + "shared_gate"] = (d, 1)
         return shapes
+
+    def expert_name(self, layer: int, expert: int, part: str) -> str:
+        """The tensor name of routed layer ``layer``'s expert part in a moerun file: named by its block."""
+        block = self.routed_blocks()[layer] if self.dense_layers else layer
+        return expert_tensor_name(block, expert, part)
 
     def expert_shapes(self) -> dict[str, tuple[int, int]]:
         """Shapes of one expert's matrices, keyed by the suffix after ``experts.{e}.``."""
@@ -214,6 +246,53 @@ class ModelConfig:
     def shared_shapes(self) -> dict[str, tuple[int, int]]:
         """Shapes of the shared expert's matrices, keyed by the suffix after ``shared.`` (empty when d_shared is 0)."""
         return _swiglu_shapes(self.d_model, self.d_shared) if self.d_shared else {}
+
+
+def _arch_fields(raw: dict, vals: dict, d_shared: int, where: str) -> dict:
+    """The open-checkpoint fields of a config.json that has them, checked (their defaults for those it lacks)."""
+    out: dict = {}
+    arch = raw.get("arch", "")
+    if not isinstance(arch, str):
+        raise BadModelFile(f"{where}: arch must be text (the model_type of the checkpoint it came from), got {arch!r:.40}")
+    out["arch"] = arch
+    n_layers = vals["n_layers"]
+    dl = raw.get("dense_layers", [])
+    if not isinstance(dl, list) or any(isinstance(b, bool) or not isinstance(b, int) for b in dl):
+        raise BadModelFile(f"{where}: dense_layers must be a list of layer numbers, got {dl!r:.60}")
+    n_blocks = n_layers + len(dl)
+    if len(set(dl)) != len(dl) or any(not 0 <= b < n_blocks for b in dl) or dl != sorted(dl):
+        raise BadModelFile(f"{where}: dense_layers must be distinct, increasing layer numbers below {n_blocks}, got {dl!r:.60}")
+    out["dense_layers"] = tuple(dl)
+    d_dense = raw.get("d_dense", 0)
+    if isinstance(d_dense, bool) or not isinstance(d_dense, int) or d_dense < 0 or (dl and not d_dense):
+        raise BadModelFile(f"{where}: d_dense must be a positive whole number when there are dense_layers, got {d_dense!r:.40}")
+    out["d_dense"] = d_dense
+    qk = raw.get("qk_norm", "none")
+    if qk not in QK_NORMS:
+        raise BadModelFile(f"{where}: qk_norm must be one of {', '.join(QK_NORMS)}, got {qk!r:.40}")
+    out["qk_norm"] = qk
+    for key in ("qkv_bias", "shared_gate"):
+        v = raw.get(key, False)
+        if not isinstance(v, bool):
+            raise BadModelFile(f"{where}: {key} must be true or false, got {v!r:.40}")
+        out[key] = v
+    if out["shared_gate"] and not d_shared:
+        raise BadModelFile(f"{where}: shared_gate is true but there is no shared expert (d_shared is 0)")
+    clip = raw.get("clip_qkv")
+    try:
+        ok = clip is None or (not isinstance(clip, bool) and isinstance(clip, (int, float)) and math.isfinite(float(clip))
+                              and 0 < clip <= FLOAT32_MAX)
+    except OverflowError:
+        ok = False
+    if not ok:
+        raise BadModelFile(f"{where}: clip_qkv must be null or a positive number, got {clip!r:.40}")
+    out["clip_qkv"] = None if clip is None else float(clip)
+    eos = raw.get("eos_token_ids", [])
+    if not isinstance(eos, list) or any(isinstance(t, bool) or not isinstance(t, int) or not 0 <= t < vals["vocab_size"]
+                                        for t in eos):
+        raise BadModelFile(f"{where}: eos_token_ids must be a list of token ids below vocab_size, got {eos!r:.60}")
+    out["eos_token_ids"] = tuple(eos)
+    return out
 
 
 def _swiglu_shapes(d_model: int, width: int) -> dict[str, tuple[int, int]]:

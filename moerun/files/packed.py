@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 
 import numpy as np
 
@@ -30,6 +30,11 @@ from moerun.files.config import ModelConfig
 from moerun.files.modelfile import Header
 
 FORMAT = "moerun-packed/1"
+# A model quantized from an open checkpoint: config.json records the architecture's fields (arch, dense_layers,
+# qk_norm, ...) and the weights file holds the tensors they imply (moerun.files.config.ModelConfig.dense_shapes).
+# Its own tag, so that a moerun that knows only FORMAT refuses it instead of computing without those parts.
+FORMAT_ARCH = "moerun-packed/2"
+FORMATS = (FORMAT, FORMAT_ARCH)
 EXPERT_BITS = (8, 4, 3, 2)
 ATTN_BITS = (16, 8, 4)
 METHODS = ("rtn", "hqq")
@@ -63,10 +68,11 @@ class QuantSpec:
     group: int = 64
     method: str = "rtn"
     hqq: dict = field(default_factory=lambda: {"p": HQQ_P, "beta": HQQ_BETA, "kappa": HQQ_KAPPA, "iters": HQQ_ITERS})
+    format: str = FORMAT  # FORMAT_ARCH for a model with an open checkpoint's architecture fields
 
     def to_json(self) -> dict:
         doc = {
-            "format": FORMAT,
+            "format": self.format,
             "method": self.method,
             "expert_bits": self.expert_bits,
             "attn_bits": self.attn_bits,
@@ -101,15 +107,30 @@ class QuantSpec:
         where = "config.json: quant entry: "
         if not isinstance(raw, dict):
             raise BadModelFile(f"{where}expected a JSON object, got {type(raw).__name__}")
-        if raw.get("format") != FORMAT:
-            raise BadModelFile(f"{where}unknown format {raw.get('format')!r} (this moerun reads {FORMAT!r})")
+        fmt = raw.get("format")
+        if fmt not in FORMATS:
+            raise BadModelFile(f"{where}unknown format {fmt!r} (this moerun reads {' and '.join(map(repr, FORMATS))})")
+        if fmt == FORMAT and has_arch_fields(config):
+            raise BadModelFile(f"{where}format {FORMAT!r} cannot carry the architecture fields config.json has "
+                               f"(arch {config.arch!r}...); a model quantized from an open checkpoint says {FORMAT_ARCH!r}")
         if raw.get("params_dtype", PARAMS_DTYPE) != PARAMS_DTYPE:
             raise BadModelFile(f"{where}params_dtype must be {PARAMS_DTYPE!r}, got {raw.get('params_dtype')!r}")
         if raw.get("group_axis", "input") != "input":
             raise BadModelFile(f"{where}group_axis must be 'input', got {raw.get('group_axis')!r}")
-        return cls.checked(
+        spec = cls.checked(
             raw.get("expert_bits"), raw.get("attn_bits", 16), raw.get("group"), raw.get("method", "rtn"), BadModelFile, where
         )
+        return replace(spec, format=fmt)
+
+    def for_config(self, config: ModelConfig) -> QuantSpec:
+        """This setting with the format tag a quantized copy of a model of ``config`` records."""
+        return replace(self, format=FORMAT_ARCH if has_arch_fields(config) else FORMAT)
+
+
+def has_arch_fields(config: ModelConfig) -> bool:
+    """Whether ``config`` has any of an open checkpoint's architecture fields (then it is written as FORMAT_ARCH)."""
+    return bool(config.arch or config.dense_layers or config.qk_norm != "none" or config.qkv_bias
+                or config.clip_qkv is not None or config.shared_gate or config.eos_token_ids)
 
 
 _RECORDED_KEYS = ("format", "method", "expert_bits", "attn_bits", "group", "group_axis", "params_dtype", "hqq")
@@ -148,11 +169,11 @@ def packed_dense_names(config: ModelConfig) -> dict[str, str]:
     spec = QuantSpec.from_config(config)
     if spec.attn_bits == 16:
         return {}
-    return {f"layers.{layer}.attn.{p}": f"layers.{layer}.attn.{p}.packed" for layer in range(config.n_layers) for p in ATTN_PARTS}
+    return {f"layers.{b}.attn.{p}": f"layers.{b}.attn.{p}.packed" for b in range(config.n_blocks) for p in ATTN_PARTS}
 
 
 def expert_blob_name(layer: int, expert: int) -> str:
-    """The one tensor a quantized file stores an expert as."""
+    """The one tensor a quantized file stores an expert as (``layer``: its block, ``ModelConfig.expert_name``)."""
     return f"layers.{layer}.experts.{expert}.packed"
 
 

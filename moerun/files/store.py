@@ -28,9 +28,10 @@ from pathlib import Path
 import numpy as np
 
 from moerun.errors import BadModelFile, BadOption, ModelFileChanged, PageInError
+from moerun.files.checkpoint import STORED_DTYPES, widen_into
 from moerun.files.ckpt_config import is_open_checkpoint
 from moerun.files.codec import Codec, codec_for, packed_dense_tensors
-from moerun.files.config import ModelConfig, expert_tensor_name
+from moerun.files.config import ModelConfig
 from moerun.files.modelfile import NUMPY_DTYPES, Header, TensorInfo, expert_span, read_header
 from moerun.files.packed import read_packed_dense, recorded_quant_problem
 from moerun.files.pagecache import drop_pages, drop_problem
@@ -40,6 +41,8 @@ PAGE = mmap.PAGESIZE
 # (fault_around_bytes, default 64 KiB; a multiple of the page size).
 FAULT_AROUND = max(PAGE, 64 * 1024)
 MECHANISMS = ("pread", "mmap")
+DENSE_DTYPES = ("F32", "F16", "BF16")  # BF16: a model quantized from an open checkpoint keeps its dense tensors as stored
+WIDEN_CHUNK = 1 << 20  # elements of a 16-bit dense tensor read and widened at a time (2 MiB read, 4 MiB written)
 
 
 def file_stamp(st: os.stat_result) -> tuple[int, int, int, int, int, int]:
@@ -146,8 +149,8 @@ def _check_dense_tensors(config: ModelConfig, header: Header) -> None:
             raise BadModelFile(f"{header.path}: missing tensor {name!r}")
         if t.shape != shape:
             raise BadModelFile(f"{header.path}: tensor {name!r} has shape {list(t.shape)}, config.json implies {list(shape)}")
-        if t.dtype not in ("F32", "F16"):
-            raise BadModelFile(f"{header.path}: tensor {name!r} has dtype {t.dtype}; dense weights must be F32 or F16")
+        if t.dtype not in DENSE_DTYPES:
+            raise BadModelFile(f"{header.path}: tensor {name!r} has dtype {t.dtype}; dense weights must be F32, F16 or BF16")
     if not config.d_shared:
         stray = next((n for n in tensors if n.startswith("layers.") and ".shared." in n), None)
         if stray is not None:  # computing without it would silently give other numbers
@@ -169,7 +172,7 @@ def _expert_ranges(config: ModelConfig, header: Header, codec: Codec) -> tuple[l
         for e in range(config.n_experts):
             infos: list[tuple[TensorInfo, object]] = []
             for part in codec.parts:
-                name = expert_tensor_name(layer, e, part.suffix)
+                name = config.expert_name(layer, e, part.suffix)
                 t = tensors.get(name)
                 if t is None:
                     raise BadModelFile(f"{header.path}: missing tensor {name!r}")
@@ -189,6 +192,32 @@ def _expert_ranges(config: ModelConfig, header: Header, codec: Codec) -> tuple[l
             row.append(ExpertRange(layer, e, start, nbytes))
         ranges.append(row)
     return ranges, layout or {}
+
+
+class _EmbeddingRows:
+    """``rows[ids]`` -> float32 [len(ids), d_model]: the embedding rows of ``ids``, each read from the weights file
+    (``ModelStore._read``, os.pread: nothing is mapped) and widened when asked for; the table is never held."""
+
+    def __init__(self, store: ModelStore, t: TensorInfo):
+        self.store = store
+        self.t = t
+        self.row_bytes = t.nbytes // t.shape[0]
+
+    def __getitem__(self, ids) -> np.ndarray:
+        ids = np.atleast_1d(np.asarray(ids))
+        t = self.t
+        out = np.empty((ids.size, t.shape[1]), np.float32)
+        for i, tok in enumerate(ids.tolist()):
+            if not 0 <= tok < t.shape[0]:
+                raise IndexError(f"token {tok} out of range 0..{t.shape[0] - 1}")
+            raw = self.store._read(t.start + int(tok) * self.row_bytes, self.row_bytes)
+            if t.dtype == "F32":
+                out[i] = np.frombuffer(raw, "<f4")
+            else:
+                widen_into(np.frombuffer(raw, STORED_DTYPES[t.dtype]), t.dtype, out[i])
+            if not np.all(np.isfinite(out[i])):
+                raise BadModelFile(f"{self.store.path}: tensor 'embed' holds NaN or infinite values (row {tok})")
+        return out
 
 
 class ModelStore:
@@ -215,7 +244,9 @@ class ModelStore:
         self._map: mmap.mmap | None = None
         self._map_addr = 0
         self.dense: dict[str, np.ndarray] = {}
-        self.embed = None  # the embedding table is dense["embed"] (an open checkpoint's store reads rows on demand)
+        # the embedding table is dense["embed"]; an open checkpoint's store, and this one for a model quantized from an
+        # untied one, read rows on demand (dense["embed"] is None then)
+        self.embed = None
         self._dense_nbytes = 0
 
     # ---------------------------------------------------------------- opening
@@ -235,7 +266,7 @@ class ModelStore:
         if is_open_checkpoint(model_dir):  # the callers that take one open it with moerun.files.ckpt_store.open_store
             raise BadModelFile(
                 f"{model_dir}: an open checkpoint (config.json names a model_type); this command does not run on "
-                "open checkpoints yet (generate, verify, inspect, probe, plan, record and score do)"
+                "open checkpoints yet (generate, verify, inspect, probe, plan, record, score and quantize do)"
             )
         config = ModelConfig.load(model_dir)
         header = read_header(model_dir / "model.safetensors")
@@ -243,7 +274,7 @@ class ModelStore:
         problem = recorded_quant_problem(config, header.metadata)
         if problem is not None:  # decoding with another layout than the one written would give other numbers
             raise BadModelFile(f"{header.path}: {problem}")
-        first = header.tensors.get(expert_tensor_name(0, 0, "w_gate"))
+        first = header.tensors.get(config.expert_name(0, 0, "w_gate"))
         expert_dtype = first.dtype if first is not None and first.dtype in ("F32", "F16") else "F32"
         codec = codec_for(config, expert_dtype)
         ranges, layout = _expert_ranges(config, header, codec)
@@ -291,17 +322,38 @@ class ModelStore:
 
     def _load_dense(self) -> None:
         packed = packed_dense_tensors(self.config)
+        rows_on_demand = bool(self.config.arch) and not self.config.tied_embeddings
         for name in self.config.dense_shapes():
+            if name == "embed" and rows_on_demand:
+                # a model quantized from an open checkpoint reads embedding rows when a token needs them, as the
+                # checkpoint's store does: the table (150k x 2048 is 1.2 GB as float32) is never held
+                self.dense["embed"] = None
+                self.embed = _EmbeddingRows(self, self.header.tensors["embed"])
+                continue
             if name in packed:  # a quantized attention matrix, dequantized once here
                 self.dense[name] = read_packed_dense(self.config, self.header, name, packed[name], self._read)
                 continue
             t = self.header.tensors[name]
-            raw = self._read(t.start, t.nbytes)
-            arr = np.frombuffer(raw, dtype=np.dtype(NUMPY_DTYPES[t.dtype]).newbyteorder("<")).reshape(t.shape)
-            self.dense[name] = np.ascontiguousarray(arr, dtype=np.float32)
+            if t.dtype == "F32":  # the bytes read are the array: held once
+                raw = self._read(t.start, t.nbytes)
+                self.dense[name] = np.frombuffer(raw, dtype="<f4").reshape(t.shape)
+            else:
+                self.dense[name] = self._read_widened(t)
             if not np.all(np.isfinite(self.dense[name])):
                 raise BadModelFile(f"{self.path}: tensor {name!r} holds NaN or infinite values")
-        self._dense_nbytes = sum(a.nbytes for a in self.dense.values())
+        self._dense_nbytes = sum(a.nbytes for a in self.dense.values() if a is not None)
+
+    def _read_widened(self, t: TensorInfo) -> np.ndarray:
+        """A 16-bit (F16 or BF16) tensor as a new float32 array, read and widened WIDEN_CHUNK elements at a time: the
+        stored bytes are never held whole beside the float32 copy (an embedding table of 150k x 2048 would be 0.6
+        GB of them)."""
+        out = np.empty(t.shape, np.float32)
+        flat = out.reshape(-1)
+        for i in range(0, flat.size, WIDEN_CHUNK):
+            n = min(WIDEN_CHUNK, flat.size - i)
+            src = np.frombuffer(self._read(t.start + 2 * i, 2 * n), STORED_DTYPES[t.dtype])
+            widen_into(src, t.dtype, flat[i : i + n])
+        return out
 
     def release_dense(self, names) -> None:
         """Let go of dense weights the model now holds in another form (the engine fuses wq, wk, wv into one matrix).
@@ -339,10 +391,11 @@ class ModelStore:
         return self._read(t.start, t.nbytes) if t.nbytes else b""
 
     def read_tensor(self, name: str) -> np.ndarray:
-        """Any tensor of the file as a numpy array (a copy), for inspection and tests."""
+        """Any tensor of the file as a numpy array (a copy; BF16 as its uint16 bits), for inspection and tests."""
         t = self.header.tensors[name]
         raw = self.tensor_bytes(name)
-        return np.frombuffer(raw, dtype=np.dtype(NUMPY_DTYPES[t.dtype]).newbyteorder("<")).reshape(t.shape).copy()
+        dtype = STORED_DTYPES["BF16"] if t.dtype == "BF16" else np.dtype(NUMPY_DTYPES[t.dtype]).newbyteorder("<")
+        return np.frombuffer(raw, dtype=dtype).reshape(t.shape).copy()
 
     # ---------------------------------------------------------------- page-in
     @property

@@ -32,6 +32,7 @@ class QuantReport:
     attn_rel_rms: float  # the same for attention (float16 rounding when attn_bits is 16)
     seconds: float
     heldout: dict | None = None  # perplexities measured in the same run
+    attn_dtype: str = "F16"  # how attention is stored at attn_bits 16: F16, or BF16 kept from a BF16 source
 
     def to_json(self) -> dict:
         return {
@@ -46,6 +47,7 @@ class QuantReport:
             "attn_rel_rms_error": self.attn_rel_rms,
             "seconds": self.seconds,
             "heldout": self.heldout,
+            "attn_dtype": self.attn_dtype if self.spec.attn_bits == 16 else "U8",
         }
 
 
@@ -90,10 +92,11 @@ def _method_text(s: QuantSpec) -> str:
     )
 
 
-def _how_section(s: QuantSpec, c: ModelConfig) -> list[str]:
+def _how_section(s: QuantSpec, c: ModelConfig, attn_dtype: str = "F16") -> list[str]:
     """The card's "How": the formula, the method, attention and what keeps its dtype (memory use included)."""
     attn = (
-        "Attention matrices are stored as float16."
+        ("Attention matrices are stored as float16." if attn_dtype == "F16" else
+         "Attention matrices keep the source's BF16 (as small as float16, and exact).")
         if s.attn_bits == 16
         else f"Attention matrices are quantized the same way to {s.attn_bits} bits and dequantized once at load."
     ) + " Either way the engine holds attention as float32 in memory: this choice changes the file, not the memory use."
@@ -110,6 +113,7 @@ def _how_section(s: QuantSpec, c: ModelConfig) -> list[str]:
         attn,
         "",
         ("Embeddings, norms, routers and the shared expert (dense, always resident)" if c.d_shared else "Embeddings, norms and routers")
+        + (", and the parts of its architecture (q/k norms, biases, the shared expert's gate, dense layers)" if c.arch else "")
         + " keep the source's dtype. Each expert is one uint8 tensor "
         "`layers.{l}.experts.{e}.packed`; the byte layout is in docs/design/quant.md of moerun.",
     ]
@@ -130,7 +134,7 @@ def _measured_section(r: QuantReport) -> list[str]:
     h = r.heldout
     if h:
         lines += [
-            f"| held-out perplexity, source (heldout.txt, {h['predicted_tokens']:,} tokens) | {h['source']['perplexity']:.4f} |",
+            f"| held-out perplexity, source ({h.get('text', 'heldout.txt')}, {h['predicted_tokens']:,} tokens) | {h['source']['perplexity']:.4f} |",
             f"| held-out perplexity, this model (same tokens) | {h['quantized']['perplexity']:.4f} "
             f"({100 * h['relative_change']:+.2f} %) |",
             "",
@@ -176,13 +180,13 @@ def card_text(r: QuantReport, c: ModelConfig, src, command: str | None, when: st
     )
     lines = [
         f"# {name}, quantized: {s.expert_bits}-bit experts ({s.method}), "
-        + ("float16 attention" if s.attn_bits == 16 else f"{s.attn_bits}-bit attention"),
+        + (("float16" if r.attn_dtype == "F16" else "BF16") + " attention" if s.attn_bits == 16 else f"{s.attn_bits}-bit attention"),
         "",
         f"Made from `{src}` ({name}) by moerun {version} on {when} ({machine}), in {r.seconds:.1f} s:",
         "",
         f"    {cmd}",
         "",
-        *_how_section(s, c),
+        *_how_section(s, c, r.attn_dtype),
         "",
         *_measured_section(r),
         *_bench_section(r),

@@ -189,17 +189,22 @@ def synth_open(out: str | os.PathLike, *, model_type: str, layers: int, experts:
 def quantize(out: str | os.PathLike, model_dir: str | os.PathLike | None = None, *, expert_bits: int = 4,
              attn_bits: int = 16, group: int = 64, method: str = "hqq", force: bool = False, score: bool = True,
              max_tokens: int | None = None, progress: Callable[[int, int], None] | None = None,
-             command: str | None = None) -> QuantizeResult:
-    """Write a quantized copy of ``model_dir`` (default: the bundled model) to ``out`` (``moerun quantize``).
+             command: str | None = None, text: str | os.PathLike | None = None) -> QuantizeResult:
+    """Write a quantized copy of ``model_dir`` (default: the bundled model; a moerun model or an open checkpoint) to
+    ``out`` (``moerun quantize``).
 
-    ``score``: measure held-out perplexity of source and result for the card (its first ``max_tokens``
-    tokens, if given).  ``progress(done, total)`` is called after each expert; ``command`` is recorded
+    ``score``: measure the perplexity of source and result for the card on ``text`` (default the model's
+    heldout.txt; an open checkpoint has none, and needs ``text`` or ``score=False``), its first ``max_tokens``
+    tokens if given.  ``progress(done, total)`` is called after each expert; ``command`` is recorded
     in CARD.md as the command that made the copy.
     """
     spec = QuantSpec.checked(expert_bits, attn_bits, group, method, BadOption)
     if max_tokens is not None and not score:
         raise BadOption("--max-tokens and --no-score contradict each other (--max-tokens says how much of heldout.txt "
                         "to score, --no-score skips scoring); give one")
+    if text is not None and not score:
+        raise BadOption("--text and --no-score contradict each other (--text names the text to score, --no-score "
+                        "skips scoring); give one")
     src = resolve_model(model_dir)
     return quantize_model(src, out, spec, force=force, score=score, score_tokens=max_tokens, on_progress=progress,
-                          command=command)
+                          command=command, text=text)

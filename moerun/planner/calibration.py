@@ -75,7 +75,7 @@ class Floors:
     computed from float32 matrices whatever its stored format; its stored bytes are at least ``MIN_STORED_BITS`` per
     weight."""
 
-    attn: tuple[float, ...]  # per layer: attention, norms, router and the shared expert
+    attn: tuple[float, ...]  # per routed layer: attention, norms, router and the shared expert (and dense layers before it)
     head: float  # final norm and output projection
     expert: float  # one expert's three float32 matrices
     copy: float  # one expert's stored bytes
@@ -94,7 +94,13 @@ class Floors:
 
         shapes = c.dense_shapes()
         elements = lambda names: sum(int(np.prod(shapes[n])) for n in names)  # noqa: E731
-        attn = tuple(at_least(4 * elements([n for n in shapes if n.startswith(f"layers.{layer}.")])) for layer in range(c.n_layers))
+        # a routed layer's dense tensors, and those of the dense layers (a model quantized from an open checkpoint)
+        # between it and the routed layer before it; the dense layers after the last routed one count with it
+        routed = c.routed_blocks()
+        spans = [range(routed[i - 1] + 1 if i else 0, b + 1) for i, b in enumerate(routed)]
+        spans[-1] = range(spans[-1].start, c.n_blocks)
+        attn = tuple(at_least(4 * elements([n for n in shapes if n.split(".")[0] == "layers" and int(n.split(".")[1]) in blocks]))
+                     for blocks in spans)
         head = at_least(4 * elements(["final_norm", "embed" if c.tied_embeddings else "lm_head"]))
         weights = sum(a * b for a, b in c.expert_shapes().values())
         guess = at_least(4 * c.d_model * c.n_experts) if c.n_layers > 1 else 0.0

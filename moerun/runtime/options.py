@@ -250,9 +250,9 @@ def open_engine(model_dir, o: EngineOptions) -> Engine:
         store.cold_reads = o.cold_reads
         store.set_mechanism(o.mechanism)
         chosen_split = list(o.slots) if o.slots is not None else o.split
-        if o.dense_weights == "stored" and not c.arch:
-            raise BadOption("--dense-weights stored is for open checkpoints (their BF16 and F16 matrices); a moerun model's "
-                            "dense weights are float32")
+        if o.dense_weights == "stored" and not getattr(store, "stored_dense", False):
+            raise BadOption("--dense-weights stored is for open checkpoints read in place (their BF16 and F16 matrices); a "
+                            "moerun model's dense weights are held as float32, a quantized checkpoint's too")
         if o.expert_slots == "float32" and not getattr(store.codec, "widened", False) and store.codec.name != "F32":
             raise BadOption(f"float32 expert slots are for open checkpoints' BF16 and F16 experts; this model's are {store.codec.name}")
         budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, o.mem_cap, chosen_split, store.codec.scratch_bytes(),

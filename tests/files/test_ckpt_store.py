@@ -21,7 +21,7 @@ import pytest
 
 import moerun
 from moerun.cli import main as cli
-from moerun.errors import BadOption, ModelFileChanged
+from moerun.errors import BadModelFile, BadOption, ModelFileChanged
 from moerun.files.ckpt_store import CheckpointStore, open_store
 from moerun.files.store import ModelStore
 from moerun.model.sampling import Sampling
@@ -238,13 +238,17 @@ def test_prefetch_on_an_open_checkpoint_is_bit_identical(variant):
             eng.close()
 
 
-def test_a_command_that_does_not_take_open_checkpoints_yet_says_so_in_one_line(capsys, tmp_path):
+def test_the_moerun_model_store_refuses_an_open_checkpoint_in_one_line_naming_the_commands_that_take_one():
+    with pytest.raises(BadModelFile, match="open checkpoint") as e:
+        ModelStore.open(FIXTURES / "olmoe-f32")
+    assert len(str(e.value).splitlines()) == 1 and "quantize" in str(e.value)
+
+
+def test_quantize_asks_for_a_text_to_score_an_open_checkpoint_on_in_one_line(capsys, tmp_path):
     code = cli.main(["quantize", "--model", str(FIXTURES / "olmoe-f32"), str(tmp_path / "q")])
     out, err = capsys.readouterr()
-    assert code == 2 and len(err.strip().splitlines()) == 1 and "open checkpoint" in err
+    assert code == 2 and len(err.strip().splitlines()) == 1 and "--text FILE" in err and "--no-score" in err
     assert not (tmp_path / "q").exists()
-    with pytest.raises(Exception, match="open checkpoint"):
-        ModelStore.open(FIXTURES / "olmoe-f32")
 
 
 @pytest.fixture

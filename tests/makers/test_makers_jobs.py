@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from pathlib import Path
+
 from _jobs import as_json, cli_json, without
 
 import moerun
@@ -27,3 +29,20 @@ def test_quantize_returns_what_the_command_prints(small_model, tmp_path, capsys)
                          "--no-score", "--force")
     assert code == 0
     assert without(as_json(result.to_json()), "seconds") == without(doc, "seconds")  # seconds: the time of each run
+
+
+def test_quantize_of_an_open_checkpoint_returns_what_the_command_prints(tmp_path, capsys):
+    src = Path(__file__).resolve().parents[1] / "fixtures" / "open" / "qwen2_moe-bf16-sharded-v4"
+    text = tmp_path / "t.txt"
+    text.write_text("The fog nets on the ridge caught water before dawn; the keepers logged the yield.\n")
+    out = tmp_path / "q"
+    result = moerun.quantize(out, src, expert_bits=8, method="rtn", text=text)
+    code, doc = cli_json(capsys, "quantize", "--model", src, out, "--expert-bits", 8, "--method", "rtn",
+                         "--text", text, "--force")
+    assert code == 0 and doc["quant"]["format"] == "moerun-packed/2" and doc["heldout"]["text"] == "t.txt"
+    # seconds and tok_s: the time of each run
+    a, b = as_json(result.to_json()), doc
+    for d in (a, b):
+        for key in ("source", "quantized"):
+            d["heldout"][key].pop("tok_s")
+    assert without(a, "seconds") == without(b, "seconds")

@@ -47,7 +47,8 @@ def _write_text(doc: dict, c, name: str, all_tensors: bool, out) -> None:
     if doc.get("note"):
         out.write(f"note: {doc['note']}\n")
     out.write(
-        f"{c.n_layers} layers, d_model {c.d_model}, {c.n_heads} heads ({c.n_kv_heads} KV) of {c.head_dim}, "
+        (f"{c.n_blocks} layers ({c.n_layers} routed)" if c.dense_layers else f"{c.n_layers} layers")
+        + f", d_model {c.d_model}, {c.n_heads} heads ({c.n_kv_heads} KV) of {c.head_dim}, "
         f"{c.n_experts} experts top-{c.top_k}, d_expert {c.d_expert}, vocab {c.vocab_size}, context {c.max_seq_len}\n"
     )
     out.write(
@@ -55,6 +56,14 @@ def _write_text(doc: dict, c, name: str, all_tensors: bool, out) -> None:
         + f"; norm_topk {str(c.norm_topk).lower()} (chosen weights "
         + ("renormalised to sum to 1)\n" if c.norm_topk else "are the router probabilities as they are)\n")
     )
+    if c.arch:  # quantized from an open checkpoint: the parts of its architecture
+        dense = f"{len(c.dense_layers)} dense layer(s) (layers {', '.join(map(str, c.dense_layers))}, width {c.d_dense})" if c.dense_layers else "no dense layers"
+        parts = [f"from a {c.arch} checkpoint: {dense}", f"q/k norm {c.qk_norm}",
+                 "q/k/v biases" if c.qkv_bias else "no q/k/v biases",
+                 *([f"q/k/v clipped to {c.clip_qkv:g}"] if c.clip_qkv is not None else []),
+                 *(["the shared expert gated"] if c.shared_gate else []),
+                 f"bos {c.bos_token_id if c.bos_token_id is not None else 'none'}, eos {list(c.eos_token_ids) or 'none'}"]
+        out.write("; ".join(parts) + "\n")
     out.write(table(["", "size"], _size_rows(doc, c)) + "\n\n")
     out.write("files: " + "; ".join(f"{k} {v}" for k, v in doc["files"].items()) + "\n")
     first, end = doc["experts_region"]

@@ -25,8 +25,16 @@ def add_arguments(p) -> None:
     p.add_argument("--method", choices=METHODS, default="hqq", help="rtn = round to nearest; hqq = half-quadratic zero-point refinement (default)")
     cli.add_force_dir(p, ", and never the source")
     p.add_argument("--no-score", action="store_true", help="skip measuring held-out perplexity of source and result for the card")
-    cli.add_max_tokens(p, "score only the first N tokens of heldout.txt (default: all)")
+    p.add_argument("--text", metavar="FILE", help="held-out text to measure perplexity on (default: the model's heldout.txt; "
+                                                  "an open checkpoint has none and needs this or --no-score)")
+    cli.add_max_tokens(p, "score only the first N tokens of the text (default: all)")
     cli.add_json(p)
+
+
+def _attn(rep) -> str:
+    if rep.spec.attn_bits != 16:
+        return f"{rep.spec.attn_bits}-bit"
+    return "float16" if rep.attn_dtype == "F16" else "BF16 (as stored)"
 
 
 def run(args) -> int:
@@ -40,7 +48,7 @@ def run(args) -> int:
     try:
         rep = quantize(args.out, args.model, expert_bits=args.expert_bits, attn_bits=args.attn_bits, group=args.group,
                        method=args.method, force=args.force, score=not args.no_score, max_tokens=args.max_tokens,
-                       progress=on_progress, command=command)
+                       progress=on_progress, command=command, text=args.text)
     finally:
         progress.close()
     if args.json:
@@ -49,7 +57,7 @@ def run(args) -> int:
         return 0
     spec = rep.spec
     rows = [
-        ["setting", f"{spec.expert_bits}-bit experts, {'float16' if spec.attn_bits == 16 else f'{spec.attn_bits}-bit'} attention, "
+        ["setting", f"{spec.expert_bits}-bit experts, {_attn(rep)} attention, "
                     f"{spec.method}, group {spec.group}"],
         ["model.safetensors", f"{fmt_bytes(rep.file_bytes)} (source {fmt_bytes(rep.source_file_bytes)}, "
                               f"{100 * rep.file_bytes / rep.source_file_bytes:.1f}%)"],
@@ -60,7 +68,7 @@ def run(args) -> int:
     if rep.heldout:
         h = rep.heldout
         rows.append(["held-out perplexity", f"{h['quantized']['perplexity']:.4f} vs source {h['source']['perplexity']:.4f} "
-                                            f"({100 * h['relative_change']:+.2f}%, {h['predicted_tokens']:,} tokens)"])
+                                            f"({100 * h['relative_change']:+.2f}%, {h['predicted_tokens']:,} tokens of {h['text']})"])
     rows.append(["time", f"{rep.seconds:.1f} s"])
     sys.stdout.write(table(["", "value"], rows, "ll") + "\n")
     written("quantize", "model directory", rep.out_dir)
