@@ -20,8 +20,10 @@ from moerun.files.bundled import resolve_model
 from moerun.files.ckpt_config import is_open_checkpoint
 from moerun.files.config import RANDOM_NOTE
 from moerun.files.trace import Trace, read_trace
+from moerun.planner import selfcheck
 from moerun.planner.calibration import calibrate, costs_from_calibration, costs_from_shape, describe, load_shape, page_seconds
 from moerun.planner.search import PREFETCH_CANDIDATES, Space, check_decode_steps, check_trace_shape, choose, minimum_cap
+from moerun.planner.selfcheck import PlanCheck
 from moerun.planner.shape_costs import checkpoint_shape, measure_shape, model_shape
 from moerun.planner.timeline import Costs, Prediction
 from moerun.runtime.budget import fixed_bytes, slot_bytes
@@ -61,6 +63,7 @@ class PlanResult:
     split_comparison: dict | None = None  # None when only a shared pool fits the cap
     target: dict | None = None  # {"tok_s", "smallest_cap_bytes", "reachable", "best_tok_s"}
     warm_from: dict | None = None  # the routing profile every setting starts warm from (None: cold starts)
+    check: PlanCheck | None = None  # the recommendation run here, predicted against measured (``--no-check``: None)
 
     @property
     def ok(self) -> bool:
@@ -84,6 +87,8 @@ class PlanResult:
         }
         if self.warm_from is not None:
             doc["warm_from"] = self.warm_from
+        if self.check is not None:
+            doc["check"] = self.check.to_json()
         if self.note:
             doc["note"] = self.note
         if self.recommended is not None:
@@ -229,7 +234,7 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
                            f"(moerun record --model {model_dir} --text FILE --trace FILE --mem-cap SIZE makes one)")
         sh, c = checkpoint_shape(model_dir)
         model = {"L": sh["layers"], "E": sh["experts"], "k": sh["top_k"], "expert_bytes": sh["expert_bytes"],
-                 "fixed": sh["dense_bytes"] + sh["kv_cache_bytes"] + sh["scratch_bytes"], "checkpoint": (sh, c),
+                 "fixed": sh["dense_bytes"] + sh["kv_cache_bytes"] + sh["scratch_bytes"], "checkpoint": (sh, c), "dir": model_dir,
                  "what": f"open checkpoint {model_dir}", "note": RANDOM_NOTE if sh["random_weights"] else None}
     else:
         from moerun.files.store import ModelStore
@@ -271,7 +276,8 @@ def _inputs(model_dir, mem_cap, target, link_speed, probe, regime, trace, max_to
         )
     page = page_seconds(model["expert_bytes"], rate, probe_doc, regime or "warm")
     return {"names": names, "cap": cap, "tokens": tokens, "model": model, "trace": routing, "slot": slot, "page": page,
-            "emulated": rate is not None, "warm": warm}
+            "emulated": rate is not None, "warm": warm, "rate": rate,
+            "cold": probe_doc is not None and regime == "cold"}
 
 
 def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int, str], None],
@@ -312,12 +318,33 @@ def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int,
     return space, cal_note, cal
 
 
+def _self_check(inp: dict, space: Space, total: int, label: str, rec: Prediction, cands: list, warm_from,
+                step: Callable[[int, str], None]) -> tuple:
+    """Run the recommendation here (``moerun.planner.selfcheck``); when it disagrees with its prediction beyond the
+    runs' noise, correct the compute costs and search again.  Returns the check and the (new) choice."""
+    m = inp["model"]
+    prompt, what = selfcheck.prompt_ids(m["dir"])
+    extra = {"warm_from": warm_from} if warm_from is not None else {}
+    chk = selfcheck.measure(m["dir"], rec, inp["cap"], prompt, inp["rate"], inp["cold"],
+                            progress=lambda i, n: step(3, f"checking the recommendation: run {i + 1} of {n}"), **extra)
+    chk.prompt = what
+    if not chk.agrees:
+        factor = selfcheck.compute_factor(rec, chk.measured_tok_s)
+        if factor is not None:
+            step(3, "settings for the cap, with the corrected costs")
+            space.set_costs(selfcheck.scaled_costs(space.costs, factor))
+            cands = space.candidates(total)
+            label, rec = choose(cands)
+            chk.factor, chk.corrected_tok_s = factor, rec.tok_s
+    return chk, label, rec, cands
+
+
 def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None = None, *, target: float | None = None,
          link_speed: float | str | None = None, probe: str | os.PathLike | None = None, regime: str | None = None,
          routing: str | os.PathLike | None = None, max_tokens: int | None = None, shape: str | os.PathLike | None = None,
          evict: str | Sequence[str] | None = None, shared_pool: bool = False, recalibrate: bool = False,
          progress: Callable[[int, str], None] | None = None, notice: Callable[[str], None] | None = None,
-         trace: str | os.PathLike | None = None, warm_from=None) -> PlanResult:
+         trace: str | os.PathLike | None = None, warm_from=None, check: bool = True) -> PlanResult:
     """Predict decode speed for ``mem_cap`` and recommend slots per layer, policy and prefetch (``moerun plan``).
 
     Page-in costs come from ``link_speed`` (emulated link) or a saved ``probe`` file (its ``regime``, "warm"
@@ -327,6 +354,8 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
     considers one pool for all layers; ``target``: also find the smallest cap reaching this tok/s.
     ``warm_from``: a routing profile (path or Profile, ``moerun profile``): every setting is predicted with a warm
     start from it (``Decisions.warm``), and its counts give one more split of slots per layer ("profile").
+    ``check``: run the recommendation here, the way generate would, and compare (``moerun.planner.selfcheck``);
+    when the two disagree beyond the runs' noise, the compute costs are corrected and the search made again.
     ``progress(step, what)`` as the work advances (steps 0 to 5); ``notice(line)`` when something the user
     should know happens on the way (a cached calibration that is not valid, measured again).
     """
@@ -375,6 +404,10 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
         total = space.slots_for(inp["cap"])
         cands = space.candidates(total)
         rec_label, rec = choose(cands)
+        if check and "dir" in m:
+            chk, rec_label, rec, cands = _self_check(inp, space, total, rec_label, rec, cands, warm_from, step)
+            result.check = chk
+            result.costs = space.costs
         result.mem_cap_bytes = inp["cap"]
         result.slots_total = total
         result.candidates = cands

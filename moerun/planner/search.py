@@ -180,6 +180,12 @@ class Space:
         self.curves = {n: [[int(self._steps[(n, layer, c)][1].sum()) if c in caps else 0 for c in range(1, self.experts + 1)]
                            for layer in range(self.layers)] for n in self.policies}
 
+    def set_costs(self, costs: Costs) -> None:
+        """Predict with ``costs`` from now on (the speed ceilings the search prunes by are measured again)."""
+        self.costs = costs
+        self._ceilings.clear()
+        self._shared_ceilings.clear()
+
     def _predict(self, slots, policy, pf, la, shared=False) -> Prediction:
         return predict(self.trace, slots, policy, pf, la, self.costs, shared, SEARCH_TOKENS,
                        lambda layer, cap: self._steps[(policy, layer, cap)], self.warm)

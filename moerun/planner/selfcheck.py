@@ -38,6 +38,7 @@ class PlanCheck:
     runs_hit_rate: list[float]
     predicted_hit_rate: float
     tokens_per_run: int
+    prompt: str = ""  # what the runs started from
     factor: float | None = None  # the compute costs' correction, when one was made
     corrected_tok_s: float | None = None  # the recommendation's prediction with corrected costs
 
@@ -71,9 +72,39 @@ class PlanCheck:
             "predicted_hit_rate": self.predicted_hit_rate,
             "measured_hit_rate": statistics.median(self.runs_hit_rate) if self.runs_hit_rate else None,
             "tokens_per_run": self.tokens_per_run,
+            "prompt": self.prompt,
             "correction_factor": self.factor,
             "corrected_tok_s": self.corrected_tok_s,
         }
+
+
+PROMPT_TOKENS = 32  # of the model's held-out text, the prompt of every run
+
+
+def prompt_ids(model_dir, n: int = PROMPT_TOKENS) -> tuple[list[int], str]:
+    """The runs' prompt and what it is: the first ``n`` tokens of the model's held-out text, else its BOS token
+    alone (an open checkpoint, or a model without text or tokenizer)."""
+    from pathlib import Path
+
+    from moerun.files.ckpt_config import is_open_checkpoint
+    from moerun.files.config import ModelConfig
+    from moerun.model.tokenizer import Tokenizer, read_text_file
+
+    d = Path(model_dir)
+    held = d / "heldout.txt"
+    if not is_open_checkpoint(d):
+        c = ModelConfig.load(d)
+        if held.is_file() and (d / "tokenizer.json").is_file():
+            ids = Tokenizer.load(d, c.vocab_size, c.bos_token_id).encode_array(read_text_file(held), n).tolist()
+            if ids:
+                return ids, f"the first {len(ids)} tokens of {held.name}"
+        return [c.bos_token_id if c.bos_token_id is not None else 0], "one start token"
+    from moerun.files.checkpoint import Checkpoint
+    from moerun.files.ckpt_store import leading_special_id, model_config
+
+    with Checkpoint.open(d) as ck:  # its headers only: nothing of the weights is read
+        bos = model_config(ck, leading_special_id(ck.tokenizer_path)).bos_token_id
+    return [bos if bos is not None else 0], "one start token"
 
 
 def engine_kwargs(pr: Prediction, cap: int, link_speed: float | None, cold: bool) -> dict:
@@ -109,10 +140,11 @@ def run_once(model_dir, kwargs: dict, prompt_ids: list[int], max_new: int, seed:
 
 
 def measure(model_dir, pr: Prediction, cap: int, prompt_ids: list[int], link_speed: float | None = None,
-            cold: bool = False, rounds: int = ROUNDS, progress=None) -> PlanCheck:
-    """Run the prediction's setting ``rounds`` times (``progress(i, rounds)`` before each) and compare."""
+            cold: bool = False, rounds: int = ROUNDS, progress=None, **extra) -> PlanCheck:
+    """Run the prediction's setting ``rounds`` times (``progress(i, rounds)`` before each) and compare.
+    ``extra``: more ``moerun.load`` settings (a warm start)."""
     n = tokens_per_run(pr.tok_s)
-    kw = engine_kwargs(pr, cap, link_speed, cold)
+    kw = {**engine_kwargs(pr, cap, link_speed, cold), **extra}
     speeds, hits = [], []
     for i in range(rounds):
         if progress is not None:

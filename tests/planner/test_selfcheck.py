@@ -43,6 +43,7 @@ def test_engine_settings_of_a_prediction():
     assert selfcheck.tokens_per_run(1.0) == selfcheck.MIN_TOKENS and selfcheck.tokens_per_run(1e6) == selfcheck.MAX_TOKENS
 
 
+@pytest.mark.plan_runs
 def test_a_check_of_costs_made_wrong_on_purpose_disagrees_and_its_correction_comes_closer(tmp_path):
     """Costs doubled on purpose: the check's runs give about half the predicted step's compute, it says they
     disagree, and the prediction with the corrected costs lies nearer the measured speed than the wrong one."""
@@ -60,3 +61,36 @@ def test_a_check_of_costs_made_wrong_on_purpose_disagrees_and_its_correction_com
     fixed = predict(trace, rec.slots, rec.policy, rec.prefetch, rec.lookahead, selfcheck.scaled_costs(wrong, f), rec.shared)
     assert abs(fixed.tok_s / chk.measured_tok_s - 1) < abs(chk.error)
     assert dataclasses.asdict(chk) and chk.to_json()["agrees"] is False
+
+
+@pytest.mark.plan_runs
+def test_plan_runs_its_recommendation_and_reports_it(capsys):
+    """The command's check line and the library's document: runs of the recommended setting, the measured speed,
+    its spread and the prompt; --no-check leaves them out."""
+    from moerun.cli import main as cli
+
+    r = moerun.plan("pebble", mem_cap="14MiB", link_speed="2GB/s", evict="lru", max_tokens=64)
+    ck = r.to_json()["check"]
+    assert len(ck["runs_tok_s"]) == selfcheck.ROUNDS and all(v > 0 for v in ck["runs_tok_s"])
+    assert ck["prompt"].startswith("the first 32 tokens of heldout.txt")
+    assert ck["predicted_tok_s"] > 0 and ck["measured_tok_s"] == sorted(ck["runs_tok_s"])[1]
+    if ck["agrees"]:
+        assert ck["correction_factor"] is None
+    else:  # corrected: the recommendation's prediction is the corrected one
+        assert ck["corrected_tok_s"] == r.recommended.tok_s
+    code = cli.main(["plan", "--mem-cap", "14MiB", "--link-speed", "2GB/s", "--evict", "lru", "--max-tokens", "64"])
+    out = capsys.readouterr().out
+    assert code == 0 and "checked: 3 runs of" in out
+    code = cli.main(["plan", "--mem-cap", "14MiB", "--link-speed", "2GB/s", "--evict", "lru", "--max-tokens", "64", "--no-check"])
+    out = capsys.readouterr().out
+    assert code == 0 and "checked:" not in out
+    assert "check" not in moerun.plan("pebble", mem_cap="14MiB", link_speed="2GB/s", evict="lru", max_tokens=64,
+                                      check=False).to_json()
+
+
+def test_an_open_checkpoint_is_checked_from_its_start_token():
+    from pathlib import Path
+
+    d = Path(__file__).resolve().parent.parent / "fixtures" / "open" / "olmoe-f32"
+    ids, what = selfcheck.prompt_ids(d)
+    assert what == "one start token" and len(ids) == 1

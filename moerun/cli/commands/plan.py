@@ -8,6 +8,7 @@ import sys
 from moerun import policies
 from moerun.cli import main as cli
 from moerun.cli.report import Progress, emit_json, pct, table
+from moerun.planner import selfcheck
 from moerun.planner.jobs import DEFAULT_TOKENS, plan
 from moerun.planner.search import TIE, choose, simplicity
 from moerun.units import SHARED_POOL, fmt_bytes, fmt_prefetch, fmt_tok_s
@@ -35,6 +36,9 @@ def add_arguments(p) -> None:
     p.add_argument("--warm-from", metavar="FILE",
                    help="predict every setting with a warm start from this routing profile ('moerun profile'), and "
                         "also consider its slots per layer (the 'profile' split)")
+    p.add_argument("--no-check", action="store_true",
+                   help="do not run the recommendation to check its prediction (by default it runs "
+                        f"{selfcheck.ROUNDS} times, about {selfcheck.RUN_S:g} s each)")
     p.add_argument("--recalibrate", action="store_true", help="measure compute times again instead of using the cache")
     cli.add_json(p)
 
@@ -50,7 +54,7 @@ def run(args) -> int:
         result = plan(args.model, args.mem_cap, target=args.target, link_speed=args.link_speed, probe=args.probe,
                       regime=args.regime, routing=args.routing, max_tokens=args.max_tokens, shape=args.shape,
                       evict=args.evict, shared_pool=args.shared_pool, recalibrate=args.recalibrate, progress=prog.update,
-                      notice=notice, warm_from=args.warm_from)
+                      notice=notice, warm_from=args.warm_from, check=not args.no_check)
     finally:
         prog.close()
     code = 0 if result.ok else 1
@@ -114,6 +118,21 @@ def _shared_line(result) -> str:
             f"({_how(plab, other)}: {fmt_tok_s(other.tok_s)} tok/s)")
 
 
+def _check_line(ck: dict) -> str:
+    """The self-check in one or two lines: measured against predicted, and the correction if one was made."""
+    runs = len(ck["runs_tok_s"])
+    line = (f"checked: {runs} runs of {ck['tokens_per_run']} tokens from {ck['prompt']} gave {fmt_tok_s(ck['measured_tok_s'])} "
+            f"tok/s (spread {100 * ck['spread']:.0f}%; hit rate {pct(ck['measured_hit_rate'])} against {pct(ck['predicted_hit_rate'])} "
+            f"predicted) against {fmt_tok_s(ck['predicted_tok_s'])} predicted: ")
+    if ck["agrees"]:
+        return line + "they agree within the noise"
+    line += f"{100 * abs(ck['error']):.0f}% {'too fast' if ck['error'] > 0 else 'too slow'}, beyond the noise"
+    if ck["correction_factor"] is None:
+        return line + "; the compute costs cannot explain it, so nothing was corrected"
+    return (line + f"\n  compute costs corrected by x{ck['correction_factor']:.2f} and the settings searched again (the "
+            f"table and the recommendation above); the recommendation now predicts {fmt_tok_s(ck['corrected_tok_s'])} tok/s")
+
+
 def _text(out, args, result) -> None:
     doc = result.to_json()
     L, c = result.layers, result.costs
@@ -146,6 +165,8 @@ def _text(out, args, result) -> None:
         out.write(f"recommended: {_how(rec_label, rec)}"
                   + f": {fmt_tok_s(rec.tok_s)} tok/s predicted, {pct(rec.stall_share)} stalled"
                   + f" (ties within {100 * TIE:g}% go to the simpler setting)\n")
+        if doc.get("check"):
+            out.write(_check_line(doc["check"]) + "\n")
         if args.shared_pool:
             out.write(_shared_line(result) + "\n")
         out.write("\n")
