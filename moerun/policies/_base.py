@@ -290,6 +290,16 @@ class Optimal(Policy):
         return key
 
 
+SMALLEST_COUNT = math.ulp(0.0)  # 2**-1074: the smallest positive float
+
+
+def rescaled(count: list[float], scale: float) -> list[float]:
+    """Decayed counts times ``scale`` (< 1), a count that was above zero kept above zero: one left unused long
+    enough would otherwise underflow to 0.0, which means "never seen" and has no logarithm (markov and the log
+    CRF take one).  Such counts were already the smallest there are; they stay so, tied."""
+    return [(c * scale) or (SMALLEST_COUNT if c else 0.0) for c in count]
+
+
 class LRFU(Policy):
     """Least recently/frequently used: evict the key with the smallest decayed access count.
 
@@ -321,8 +331,7 @@ class LRFU(Policy):
         if now != self._tick:
             x = self.lam * (now - self.origin)
             if x > 512.0:  # rescale everything before the factor overflows a float
-                scale = 2.0**-x
-                self.count = [c * scale for c in self.count]
+                self.count = rescaled(self.count, 2.0**-x)
                 self.origin = now
                 x = 0.0
             self._tick = now

@@ -6,7 +6,7 @@ import math
 from array import array
 from collections import deque
 
-from moerun.policies._base import LN2, Policy, first_min, grow
+from moerun.policies._base import LN2, Policy, first_min, grow, rescaled
 
 
 class Orbit(Policy):
@@ -128,8 +128,7 @@ class Orbit(Policy):
         if now != self._tick:
             x = self.lam * (now - self.origin)
             if x > 512.0:
-                scale = 2.0**-x
-                self.count = [c * scale for c in self.count]
+                self.count = rescaled(self.count, 2.0**-x)
                 self.shift += x * LN2
                 self.origin = now
                 x = 0.0

@@ -8,6 +8,7 @@ and in range, a prefetch insert does not move the clock.
 
 from __future__ import annotations
 
+import math
 from collections import OrderedDict
 
 import numpy as np
@@ -388,3 +389,20 @@ def test_long_streams_with_rescaled_counts_make_the_victims_of_the_reference_pat
     _drive(ref, ops, n_layers, n_experts, True, want)
     assert fast.policy.origin > 0  # the counts were rescaled along the way
     assert got == want and fast.slot_of == ref.slot_of
+
+
+@pytest.mark.parametrize("name", ["lrfu-rescaling", "markov-rescaling", "orbit-rescaling"])
+def test_a_resident_left_unused_until_its_count_underflows_stays_scorable(name):
+    """A key that stays resident but unused for longer than its decayed count can hold (about 1,074 / lam
+    accesses: a float's smallest subnormal is 2**-1074) keeps a count above zero, so the scores that take its
+    logarithm (markov's, the log CRF) stay finite; before, a long run of a large shared pool crashed on log(0)."""
+    cls = _FAST_AND_REFERENCE[name][0]
+    n_layers, n_experts = 3, 4
+    res = Residency(5, make_policy(cls, n_layers * n_experts, n_experts))
+    ops = [("step", 2, [3])] + [("step", 0, [e, (e + 1) % 4]) for e in range(4)] * 150  # key 11, then layer 0 only
+    got = []
+    _drive(res, ops, n_layers, n_experts, True, got)
+    pol = res.policy
+    assert 11 in res.slot_of and pol.origin > 0 and pol.count[11] > 0.0
+    if name != "orbit-rescaling":  # (orbit keeps no log CRF)
+        assert math.isfinite(pol.log_crf(11, res.now))
