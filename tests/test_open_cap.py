@@ -9,12 +9,10 @@ opened (what the cap does not cover: the interpreter and its libraries).
 
 from __future__ import annotations
 
-import subprocess
 import sys
-import time
 
-import psutil
 import pytest
+from _rss_watch import peak_of_child
 
 from moerun.files.ckpt_store import open_store
 from moerun.makers.synth_open import OpenShape, synthesize_open
@@ -56,27 +54,8 @@ def test_a_checkpoint_over_1_gb_runs_within_its_cap_measured_from_outside(big_ch
     finally:
         store.close()
     assert cap < experts_bytes / 2  # the cap really cannot hold the model
-    child = subprocess.Popen([sys.executable, "-c", CHILD, str(big_checkpoint), str(cap)],
-                             stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
-    try:
-        assert child.stdout.readline().strip() == "ready"
-        proc = psutil.Process(child.pid)
-        baseline = proc.memory_info().rss
-        child.stdin.write("go\n")
-        child.stdin.flush()
-        peak = baseline
-        while child.poll() is None:
-            try:
-                peak = max(peak, proc.memory_info().rss)
-            except psutil.NoSuchProcess:
-                break
-            time.sleep(0.003)
-        out = child.stdout.read()
-    finally:
-        if child.poll() is None:
-            child.kill()
-        child.wait()
-    assert child.returncode == 0, out
+    code, out, baseline, peak = peak_of_child([sys.executable, "-c", CHILD, str(big_checkpoint), str(cap)])
+    assert code == 0, out
     done = out.split()
     assert done[0] == "done" and int(done[2]) > 0  # it generated, and paged experts in under the cap
     print(f"peak growth {peak - baseline:,} B, cap {cap:,} B")

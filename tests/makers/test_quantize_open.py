@@ -10,14 +10,12 @@ from __future__ import annotations
 import json
 import shutil
 import struct
-import subprocess
 import sys
-import time
 from pathlib import Path
 
 import numpy as np
-import psutil
 import pytest
+from _rss_watch import peak_of_child
 
 import moerun
 from moerun.checks.jobs import verify
@@ -378,25 +376,6 @@ def test_quantizing_a_checkpoint_of_300_mb_keeps_the_resident_set_far_below_it(t
                       shared_width=512, context=1024, vocab=4096)
     size = synthesize_open(ck, shape, seed=3, shard_bytes=100 << 20)["file_bytes"]
     assert size > 300_000_000
-    child = subprocess.Popen([sys.executable, "-c", CHILD, str(tmp_path / "q"), str(ck)],
-                             stdin=subprocess.PIPE, stdout=subprocess.PIPE, text=True)
-    try:
-        assert child.stdout.readline().strip() == "ready"
-        proc = psutil.Process(child.pid)
-        baseline = proc.memory_info().rss
-        child.stdin.write("go\n")
-        child.stdin.flush()
-        peak = baseline
-        while child.poll() is None:
-            try:
-                peak = max(peak, proc.memory_info().rss)
-            except psutil.NoSuchProcess:
-                break
-            time.sleep(0.003)
-        out = child.stdout.read()
-    finally:
-        if child.poll() is None:
-            child.kill()
-        child.wait()
-    assert child.returncode == 0 and "done" in out
+    code, out, baseline, peak = peak_of_child([sys.executable, "-c", CHILD, str(tmp_path / "q"), str(ck)])
+    assert code == 0 and "done" in out
     assert peak - baseline < size / 4, (peak - baseline, size)
