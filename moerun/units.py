@@ -112,9 +112,9 @@ SHARED_POOL = "shared pool"  # one pool shared by all layers (--shared-pool)
 NO_PREFETCH = "no prefetch"
 
 
-def fmt_prefetch(prefetch: int, lookahead: int | None = None, prefetch_from: str | None = None) -> str:
-    """A prefetch setting as the options that choose it: ``--prefetch 2 --lookahead 1`` (``--prefetch-from output``
-    added when it is not the default), or ``no prefetch``."""
+def fmt_prefetch(prefetch: int | str, lookahead: int | None = None, prefetch_from: str | None = None) -> str:
+    """A prefetch setting as the options that choose it: ``--prefetch 2 --lookahead 1`` or ``--prefetch auto
+    --lookahead 1`` (``--prefetch-from output`` added when it is not the default), or ``no prefetch``."""
     if not prefetch:
         return NO_PREFETCH
     text = f"--prefetch {prefetch} --lookahead {lookahead or 1}"

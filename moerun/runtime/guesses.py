@@ -71,3 +71,83 @@ def guess_pays(timing: Timing, read_ns: float, arrival_ns: float, need_ns: float
 def worth_guessing(timing: Timing, read_ns: float, place_ns: float) -> bool:
     """Could any guess pay, even one that arrives in time?  If not, the prefetch point is skipped."""
     return timing.precision * read_ns > place_ns + timing.late * timing.copy_ns
+
+
+# ---------------------------------------------------------------------------- prefetch auto: an account per layer
+
+AUTO_GUESSES = 2  # guesses per layer with --prefetch auto (at most the experts per layer)
+TRIAL_READS = 8  # guess reads a layer's account is judged over
+REST_FIRST = 32  # prefetch points a layer goes without guessing after its first losing trial
+REST_MAX = 1024  # the longest rest: each losing trial in a row doubles it up to here
+EVICT_HORIZON = 4  # steps within which a miss on an expert a guess evicted is charged to that guess's layer
+
+
+class Account:
+    """What each layer's guesses saved against what they cost, in nanoseconds of the compute thread, and
+    whether that layer guesses at all (``--prefetch auto``).
+
+    A guess read is charged what placing and handing it over costs (``read``); a guess a layer then used
+    is credited the read time it saved that layer, less any wait for it (``used``: the wait avoided,
+    negative when the guess arrived later than a read of its own would have); a miss on an expert that a
+    guess evicted within ``EVICT_HORIZON`` steps is charged one read (``missed``).  After ``TRIAL_READS``
+    reads a layer's balance is judged: at or above zero it goes on (a new trial); below zero the layer
+    rests, guessing nothing for ``REST_FIRST`` of its prefetch points, twice that after another losing
+    trial, up to ``REST_MAX``, then tries again.  The live pool and the planner's time model drive the same
+    object with their own clocks (measured, or simulated)."""
+
+    __slots__ = ("balance", "reads", "rest", "rest_len", "victims", "skipped", "rests")
+
+    def __init__(self, n_layers: int):
+        self.balance = [0.0] * n_layers
+        self.reads = [0] * n_layers  # guess reads of the current trial
+        self.rest = [0] * n_layers  # prefetch points still to rest
+        self.rest_len = [REST_FIRST] * n_layers  # the next rest's length
+        self.victims: dict = {}  # key a guess evicted -> (the guess's layer, step)
+        self.skipped = 0  # guesses not made because their layer rested
+        self.rests = 0  # losing trials (rests begun)
+
+    def open(self, layer: int, n_guesses: int = 0) -> bool:
+        """Does ``layer`` guess at this prefetch point?  (Each call is one of its prefetch points; a layer at
+        rest counts ``n_guesses`` as skipped.)"""
+        if self.rest[layer]:
+            self.rest[layer] -= 1
+            self.skipped += n_guesses
+            return False
+        if self.reads[layer] >= TRIAL_READS:
+            losing = self.balance[layer] < 0
+            self.balance[layer] = 0.0
+            self.reads[layer] = 0
+            if losing:
+                self.rest[layer] = self.rest_len[layer] - 1  # this point is the first one rested
+                self.rest_len[layer] = min(REST_MAX, 2 * self.rest_len[layer])
+                self.rests += 1
+                self.skipped += n_guesses
+                return False
+            self.rest_len[layer] = REST_FIRST
+        return True
+
+    def read(self, layer: int, cost_ns: float, victim=None, step: int = 0) -> None:
+        """A guess for ``layer`` was read, costing the compute thread ``cost_ns``; it evicted ``victim`` (a key
+        unique across layers; None: a free slot, or a guess no layer had used) at decode step ``step``."""
+        self.reads[layer] += 1
+        self.balance[layer] -= cost_ns
+        if victim is not None:
+            victims = self.victims
+            if len(victims) >= 4096:  # forget what is past the horizon
+                for k in [k for k, (_, s) in victims.items() if step - s > EVICT_HORIZON]:
+                    del victims[k]
+            victims[victim] = (layer, step)
+
+    def used(self, layer: int, saved_ns: float) -> None:
+        """A guess for ``layer`` was used: it saved the layer ``saved_ns`` of waiting (negative: it cost)."""
+        self.balance[layer] += saved_ns
+
+    def missed(self, key, step: int, read_ns: float) -> None:
+        """A miss on ``key`` at ``step``: if a guess evicted it within the horizon, that guess's layer pays a read."""
+        got = self.victims.pop(key, None)
+        if got is not None and step - got[1] <= EVICT_HORIZON:
+            self.balance[got[0]] -= read_ns
+
+    def resting(self) -> list[int]:
+        """The layers at rest now."""
+        return [layer for layer, n in enumerate(self.rest) if n]
