@@ -16,6 +16,7 @@ import sys
 from moerun._version import __version__
 from moerun.errors import EXIT_INTERRUPTED, EXIT_TERMINATED, BadInput, BadOption, MoerunError, OutputError, Terminated
 from moerun.files.bundled import DEFAULT, bundled_models, resolve_model
+from moerun.runtime.guesses import AUTO_GUESSES
 
 # This module imports nothing that imports numpy at its top: entry() chooses the BLAS threads before
 # numpy loads (the console script and ``python -m moerun`` import this module, then call entry()).
@@ -99,7 +100,18 @@ class LazyHelp(str):
         return self.make()
 
 
-def add_memory(p) -> None:
+def prefetch_setting(text: str):
+    """--prefetch's value: ``auto`` or a whole number of guesses per layer (its range is checked with the others)."""
+    if text == "auto":
+        return "auto"
+    try:
+        return int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected auto or a whole number of guesses, got {text!r}") from None
+
+
+def add_memory(p, prefetch="auto") -> None:
+    """The engine's memory options; ``prefetch`` is --prefetch's default (a check that compares runs passes 0)."""
     from moerun import policies
 
     p.add_argument("--mem-cap", metavar="SIZE", help="memory cap for dense weights + KV cache + scratch + expert pool (48MiB, 1.5GB, bytes); default: every expert resident")
@@ -107,7 +119,10 @@ def add_memory(p) -> None:
     p.add_argument("--shared-pool", action="store_true", help="one pool shared by all layers instead of per-layer quotas")
     p.add_argument("--evict", default="lru", metavar="POLICY",
                    help=LazyHelp(lambda: f"eviction policy: {policies.listing(online_only=True)} (default lru)"))
-    p.add_argument("--prefetch", type=int, default=0, metavar="N", help="speculative guesses per layer (0 = off, at most the experts per layer)")
+    p.add_argument("--prefetch", type=prefetch_setting, default=prefetch, metavar="N|auto",
+                   help="speculative guesses per layer: 0 = off, N (at most the experts per layer), or auto: "
+                        f"{AUTO_GUESSES} guesses where the pool cannot hold every expert, each layer's kept only while "
+                        f"they save more wait than they cost (default {prefetch})")
     p.add_argument("--lookahead", type=int, default=None, metavar="L", help="layers ahead to guess, with --prefetch (default 1)")
     p.add_argument("--prefetch-from", choices=("attention", "output"), default=None,
                    help="prefetch point, with --prefetch: after a layer's attention (default; more time to hide a read) or after the whole layer (better guesses)")

@@ -93,11 +93,14 @@ def run_text(engine, gen=None) -> str:
         pf = pool["prefetch"]
         if engine.options.get("prefetch"):
             o = engine.options
+            auto = o.get("prefetch_auto")
             lines.append(
-                f"prefetch ({fmt_prefetch(o['prefetch'], o.get('lookahead'), o.get('prefetch_from'))}): "
-                f"{pf['guesses']} guesses, {pf['loads']} loads, {pf['used']} used "
-                f"({pct(pf['accuracy'])} accurate), {fmt_bytes(pf['wasted_bytes'])} wasted, "
-                f"{pf['hidden_s'] * 1e3:.1f} ms of page-in hidden"
+                f"prefetch ({fmt_prefetch('auto' if auto else o['prefetch'], o.get('lookahead'), o.get('prefetch_from'))}): "
+                f"{pf['guesses']} guesses, {pf['loads']} read, {pf['used']} used "
+                f"({pct(pf['accuracy'])} accurate), {pf['wasted']} wasted ({fmt_bytes(pf['wasted_bytes'])}), "
+                + (f"{pf['skipped']} skipped in {pf['rests']} rest{'' if pf['rests'] == 1 else 's'} of layers "
+                   "whose guesses did not pay, " if auto else "")
+                + f"{pf['hidden_s'] * 1e3:.1f} ms of page-in hidden"
                 + ("" if doc.get("reader_alive", True) else "; the reader process exited, so the engine read for itself")
             )
         stall = doc.get("stall_share")

@@ -89,13 +89,14 @@ class Account:
     A guess read is charged what placing and handing it over costs (``read``); a guess a layer then used
     is credited the read time it saved that layer, less any wait for it (``used``: the wait avoided,
     negative when the guess arrived later than a read of its own would have); a miss on an expert that a
-    guess evicted within ``EVICT_HORIZON`` steps is charged one read (``missed``).  After ``TRIAL_READS``
+    guess evicted within ``EVICT_HORIZON`` steps is charged one read (``missed``), unless that guess was used
+    (its layer would have read it anyway and evicted the same expert for it).  After ``TRIAL_READS``
     reads a layer's balance is judged: at or above zero it goes on (a new trial); below zero the layer
     rests, guessing nothing for ``REST_FIRST`` of its prefetch points, twice that after another losing
     trial, up to ``REST_MAX``, then tries again.  The live pool and the planner's time model drive the same
     object with their own clocks (measured, or simulated)."""
 
-    __slots__ = ("balance", "reads", "rest", "rest_len", "victims", "skipped", "rests")
+    __slots__ = ("balance", "reads", "rest", "rest_len", "victims", "evicted_by", "skipped", "rests")
 
     def __init__(self, n_layers: int):
         self.balance = [0.0] * n_layers
@@ -103,6 +104,7 @@ class Account:
         self.rest = [0] * n_layers  # prefetch points still to rest
         self.rest_len = [REST_FIRST] * n_layers  # the next rest's length
         self.victims: dict = {}  # key a guess evicted -> (the guess's layer, step)
+        self.evicted_by: dict = {}  # key of a guess not used yet -> the key it evicted
         self.skipped = 0  # guesses not made because their layer rested
         self.rests = 0  # losing trials (rests begun)
 
@@ -126,9 +128,10 @@ class Account:
             self.rest_len[layer] = REST_FIRST
         return True
 
-    def read(self, layer: int, cost_ns: float, victim=None, step: int = 0) -> None:
-        """A guess for ``layer`` was read, costing the compute thread ``cost_ns``; it evicted ``victim`` (a key
-        unique across layers; None: a free slot, or a guess no layer had used) at decode step ``step``."""
+    def read(self, layer: int, cost_ns: float, victim=None, step: int = 0, key=None) -> None:
+        """A guess (``key``) for ``layer`` was read, costing the compute thread ``cost_ns``; it evicted ``victim``
+        at decode step ``step`` (None: a free slot, or a guess no layer had used).  Keys are unique across
+        layers (``layer * n_experts + expert``)."""
         self.reads[layer] += 1
         self.balance[layer] -= cost_ns
         if victim is not None:
@@ -136,11 +139,19 @@ class Account:
             if len(victims) >= 4096:  # forget what is past the horizon
                 for k in [k for k, (_, s) in victims.items() if step - s > EVICT_HORIZON]:
                     del victims[k]
+                self.evicted_by = {g: v for g, v in self.evicted_by.items() if v in victims}
             victims[victim] = (layer, step)
+            if key is not None:
+                self.evicted_by[key] = victim
 
-    def used(self, layer: int, saved_ns: float) -> None:
-        """A guess for ``layer`` was used: it saved the layer ``saved_ns`` of waiting (negative: it cost)."""
+    def used(self, layer: int, saved_ns: float, key=None) -> None:
+        """A guess (``key``) for ``layer`` was used: it saved the layer ``saved_ns`` of waiting (negative: it
+        cost).  What it evicted is no longer charged to it."""
         self.balance[layer] += saved_ns
+        if key is not None and self.evicted_by:
+            victim = self.evicted_by.pop(key, None)
+            if victim is not None:
+                self.victims.pop(victim, None)
 
     def missed(self, key, step: int, read_ns: float) -> None:
         """A miss on ``key`` at ``step``: if a guess evicted it within the horizon, that guess's layer pays a read."""

@@ -25,6 +25,7 @@ from moerun.files.trace import Trace
 from moerun.model.tokenizer import Tokenizer
 from moerun.runtime.budget import Budget, plan_budget
 from moerun.runtime.engine import Engine
+from moerun.runtime.guesses import AUTO_GUESSES
 from moerun.runtime.memwatch import MemWatch
 from moerun.runtime.pool import ExpertPool
 from moerun.runtime.reader import STALL_TIMEOUT_S, Reader
@@ -47,7 +48,9 @@ class EngineOptions:
     mem_cap: bytes (or "48MiB") for dense weights + KV cache + scratch + expert pool; None keeps
     every expert resident (stored as bytes once checked).  slots: explicit slots per layer
     (overrides split; stored as a tuple).  split: "even" per-layer quotas or "shared".
-    evict: the eviction policy's name (moerun.policies).  prefetch: guesses per layer (0 = off);
+    evict: the eviction policy's name (moerun.policies).  prefetch: guesses per layer (0 = off), or "auto":
+    moerun.runtime.guesses.AUTO_GUESSES guesses where the pool cannot hold every expert, each layer's guesses
+    kept only while its account shows they pay (moerun.runtime.guesses.Account; ``prefetch_guesses``);
     lookahead: layers ahead; prefetch_from: "attention" or "output", the point the guesses are made.
     link_speed: bytes/s (or "2GB/s") of an emulated slower link (stored as bytes/s).
     cold: drop the model file from the page cache once, first.  cold_reads: every expert read
@@ -71,7 +74,7 @@ class EngineOptions:
 
     mem_cap: int | str | None = None
     evict: str = "lru"
-    prefetch: int = 0
+    prefetch: int | str = 0
     lookahead: int = 1
     prefetch_from: str = "attention"
     slots: tuple[int, ...] | None = None
@@ -110,8 +113,10 @@ class EngineOptions:
             raise BadOption(f"baseline must be text or None, got {self.baseline!r:.40}")
         for name in ("prefetch", "lookahead"):
             v = getattr(self, name)
+            if name == "prefetch" and isinstance(v, str) and v == "auto":
+                continue
             if not _whole(v):
-                raise BadOption(f"{name} must be a whole number, got {v!r:.40}")
+                raise BadOption(f"{name} must be a whole number{' or auto' if name == 'prefetch' else ''}, got {v!r:.40}")
         if self.max_context is not None and (not _whole(self.max_context) or self.max_context < 1):
             raise BadOption(f"--max-context must be a positive whole number of positions, got {self.max_context!r:.40}")
         slots = self.slots
@@ -126,7 +131,7 @@ class EngineOptions:
     def _check_values(self) -> None:
         """Each setting against what it may be: one BadOption naming the first one out of range."""
         policies.get(self.evict)
-        if self.prefetch < 0:
+        if self.prefetch != "auto" and self.prefetch < 0:
             raise BadOption(f"--prefetch must be 0 (off) or a positive number of guesses, got {self.prefetch}")
         if self.prefetch_from not in ("attention", "output"):
             raise BadOption(f"prefetch point must be 'attention' or 'output', got {self.prefetch_from!r}")
@@ -159,6 +164,7 @@ class EngineOptions:
             "mem_cap": self.mem_cap,
             "evict": self.evict,
             "prefetch": self.prefetch,
+            "prefetch_auto": self.prefetch == "auto",
             "lookahead": self.lookahead,
             "prefetch_from": self.prefetch_from,
             "link_speed": self.link_speed,
@@ -185,8 +191,13 @@ def parse_slot_list(text: str | None) -> list[int] | None:
     return slots
 
 
-def check_against_config(prefetch: int, lookahead: int | None, config) -> None:
-    """The prefetch settings only the model can refute: more guesses than experts, guesses past the last layer."""
+def check_against_config(prefetch: int | str, lookahead: int | None, config) -> None:
+    """The prefetch settings only the model can refute: more guesses than experts, guesses past the last layer.
+    ``auto`` fits any model (it guesses nothing where there is no later layer); a lookahead given with it is checked."""
+    if prefetch == "auto":
+        if lookahead is None or config.n_layers == 1:
+            return
+        prefetch = 1
     prefetch = prefetch or 0
     if prefetch > config.n_experts:
         raise BadOption(f"--prefetch {prefetch} is more than the model's {config.n_experts} experts per layer")
@@ -232,7 +243,22 @@ def widen_experts(o: EngineOptions) -> bool:
     bytes holds twice the experts (scripts/bench_open.py has the measurements)."""
     if o.expert_slots != "auto":
         return o.expert_slots == "float32"
-    return o.mem_cap is None and o.slots is None and (o.prefetch == 0 or o.bare or o.baseline is not None)
+    return o.mem_cap is None and o.slots is None and (o.prefetch in (0, "auto") or o.bare or o.baseline is not None)
+
+
+def prefetch_guesses(o: EngineOptions, config, budget: Budget) -> int:
+    """Guesses per layer the engine makes: ``prefetch`` as given, or for "auto" AUTO_GUESSES (at most the experts
+    per layer) where a guess can save a read: a pool that cannot hold every expert, a model of more than one layer,
+    and neither --bare nor a baseline; else none (and no reader process)."""
+    if o.bare or o.baseline is not None:
+        return 0
+    if o.prefetch != "auto":
+        return o.prefetch
+    if config.n_layers < 2 or (o.mem_cap is None and o.slots is None):
+        return 0
+    if sum(budget.slots) >= config.n_layers * config.n_experts:
+        return 0
+    return min(AUTO_GUESSES, config.n_experts)
 
 
 def open_engine(model_dir, o: EngineOptions) -> Engine:
@@ -258,10 +284,13 @@ def open_engine(model_dir, o: EngineOptions) -> Engine:
         budget = plan_budget(c, store.dense_nbytes, store.expert_nbytes, o.mem_cap, chosen_split, store.codec.scratch_bytes(),
                              store.slot_nbytes)
         store.link_rate = o.link_speed
-        if o.prefetch > 0 and not o.bare and o.baseline is None:  # guesses are read by the reader process
+        guesses = prefetch_guesses(o, c, budget)
+        if guesses > 0:  # guesses are read by the reader process
             reader = Reader(store, budget.n_slots, budget.slot, o.reader_timeout)
         experts = _expert_source(store, budget, o.evict, reader, o.bare, o.baseline, o.mem_cap is None)
-        engine = Engine(store, tok, budget, experts, reader, watch, o.engine_dict())
+        options = o.engine_dict()
+        options["prefetch"] = guesses  # as made: "auto" is options["prefetch_auto"]
+        engine = Engine(store, tok, budget, experts, reader, watch, options)
         if o.routing is not None:
             engine.replay_routing(o.routing)
         if profile is not None:

@@ -109,6 +109,7 @@ class ExpertPool(ExpertSource):
         self._ready = False
         self._events: dict = {}
         self._all_resident = None  # set by preload_all when every expert is resident
+        self.account = None  # with --prefetch auto: what each layer's guesses saved and cost (moerun.runtime.guesses)
 
     # ------------------------------------------------------------------ keys
     def key(self, layer: int, expert: int) -> int:
@@ -263,6 +264,7 @@ class ExpertPool(ExpertSource):
             self.timing.outcome(False)
             if read if read is not None else s.state != PENDING:
                 self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
+                self.stats.prefetch_wasted += 1
         self.core.forget(s.layer, self.key(s.layer, s.expert))
         s.clear()
 
@@ -280,6 +282,7 @@ class ExpertPool(ExpertSource):
         for its new expert (``Slot.claim``)."""
         if s.guess:
             self.stats.prefetch_wasted_bytes += self.store.expert_nbytes
+            self.stats.prefetch_wasted += 1
             self.timing.outcome(False)
         if s.transfer is not None and s.transfer.end < 0:
             self.link.drop(s.transfer, time.monotonic_ns())
@@ -356,6 +359,8 @@ class ExpertPool(ExpertSource):
         for e, (hit, slot, victim) in zip(ids, served):
             s = slots[slot]
             if not hit:
+                if self.account is not None and self.account.victims:  # a guess evicted it lately?
+                    self.account.missed(layer * self.config.n_experts + e, self.step, self._read_ns())
                 if victim is not None and (s.guess or s.transfer is not None):
                     self._evicted(s)  # its bookkeeping (a plain resident needs none)
                 s.claim(layer, e, r)  # read by weights() when the layer needs it (claim clears its transfer)
@@ -430,11 +435,15 @@ class ExpertPool(ExpertSource):
         if s.state == READY and s.transfer is None:
             if kind == PREFETCHED:
                 self._hidden(s, time.monotonic_ns())
+                if self.account is not None:
+                    self.account.used(layer, self._read_ns(), layer * self.config.n_experts + expert)  # a whole read saved
             return self.codec.weights(s.bound)
         t0 = time.monotonic_ns()
         if s.state == READY and self._usable_at(s, t0) <= t0:
             if kind == PREFETCHED:
                 self._hidden(s, t0)
+                if self.account is not None:
+                    self.account.used(layer, self._read_ns(), layer * self.config.n_experts + expert)
             s.transfer = None  # arrived: later uses need not ask the link
             return self.codec.weights(s.bound)
         if s.state == LOADING or s.state == PENDING:
@@ -446,6 +455,8 @@ class ExpertPool(ExpertSource):
             if kind == PREFETCHED:
                 self._hidden(s, t0)
         stall = time.monotonic_ns() - t0
+        if kind == PREFETCHED and self.account is not None:
+            self.account.used(layer, self._read_ns() - stall, layer * self.config.n_experts + expert)  # the wait avoided (negative: the guess made it longer)
         ev.stall_ns = stall
         self.stats.stall_ns[layer] += stall
         s.transfer = None  # arrived: later uses need not ask the link
@@ -655,6 +666,7 @@ class ExpertPool(ExpertSource):
         need_at = timing.need_at(now, target - self.progress)
         read = self._read_ns()
         link, nbytes, slots, r = self.link, self.store.expert_nbytes, self.slots, self.res_of[layer]
+        account, E = self.account, self.config.n_experts
 
         def pays() -> bool:
             return guess_pays(timing, read, self._arrival(now), need_at, self.place_ns)
@@ -667,6 +679,9 @@ class ExpertPool(ExpertSource):
                     st.prefetch_declined += 1
                 continue
             s = slots[out.slot]
+            if account is not None:  # charged its placing; a plain resident it evicted is watched for a miss
+                victim = None if out.victim is None or out.wasted else out.victim + (0 if self.shared else layer * E)
+                account.read(layer, self.place_ns, victim, self.step, out.key + (0 if self.shared else layer * E))
             if out.victim is not None:
                 self._evicted(s)
             s.claim(layer, out.key - self.base[layer], r)

@@ -21,6 +21,11 @@ needs it and the policy would rather hold it than what it evicts
 (``ExpertPool.prefetch``); a wrong one costs bandwidth, a failed one is
 forgotten and the layer reads the expert itself; if the reader process dies or
 stalls, the engine carries on with its own reads.
+
+With ``--prefetch auto`` the pool keeps an account per layer of what its guesses saved
+against what they cost (``moerun.runtime.guesses.Account``); a layer whose account
+is losing is not guessed for, and the rule is not applied at a point where no layer
+ahead is guessed for.
 """
 
 from __future__ import annotations
@@ -112,10 +117,17 @@ class Prefetcher:
         pool = self.pool
         if not pool.worth_guessing():
             return
+        account = pool.account
+        if account is not None:  # prefetch auto: only the layers whose guesses pay, the rule only if any does
+            ahead = self.rule.targets(layer)
+            open_ = [account.open(layer + j, self.n) for j in range(1, ahead + 1)]
+            if not any(open_):
+                return
         base = pool.step * pool.config.n_layers
         pool.prefetch_point()
         for j, guesses in enumerate(self.rule.top(layer, h, self.n), 1):
-            pool.prefetch(layer + j, guesses, base + layer + j)
+            if account is None or open_[j - 1]:
+                pool.prefetch(layer + j, guesses, base + layer + j)
 
     @property
     def alive(self) -> bool:

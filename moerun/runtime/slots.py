@@ -216,6 +216,8 @@ class PoolStats:
     reader_stalled: bool = False
     warm_loads: int = 0  # experts read by a warm start, before the first step (moerun.runtime.decisions.Decisions.warm)
     warm_ns: int = 0  # the warm start's time: its reads (and, with an emulated link, their transfers)
+    prefetch_wasted: int = 0  # guesses read and then evicted or dropped before any use
+    account: object = None  # with --prefetch auto: the pool's moerun.runtime.guesses.Account
 
     def __post_init__(self):
         for name in ("accesses", "hits", "prefetch_hits", "misses", "stall_ns", "pagein_ns"):
@@ -262,5 +264,10 @@ class PoolStats:
                 "pagein_s": self.prefetch_ns / 1e9,
                 "hidden_s": self.hidden_ns / 1e9,
                 "reader_stalled": self.reader_stalled,
+                "wasted": self.prefetch_wasted,
+                "auto": self.account is not None,
+                "skipped": self.account.skipped if self.account is not None else 0,
+                "rests": self.account.rests if self.account is not None else 0,
+                "resting_layers": self.account.resting() if self.account is not None else [],
             },
         }

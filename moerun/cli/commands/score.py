@@ -20,7 +20,7 @@ def add_arguments(p) -> None:
     cli.add_max_tokens(p, "score only the first N tokens of the text")
     p.add_argument("--plain-windows", action="store_true",
                    help="windows of max_seq_len tokens with no bos inserted, first token of each not predicted")
-    cli.add_memory(p)
+    cli.add_memory(p, prefetch=0)
     cli.add_json(p)
 
 
@@ -59,7 +59,8 @@ def run(args) -> int:
     if b["cap_bytes"] is not None:
         rows.append(["memory cap", f"{fmt_bytes(b['cap_bytes'])}; {slots_text(b['split'], b['slots'])}"])
         if options.get("prefetch"):
-            rows.append(["prefetch", fmt_prefetch(options["prefetch"], options.get("lookahead"), options.get("prefetch_from"))])
+            rows.append(["prefetch", fmt_prefetch("auto" if options.get("prefetch_auto") else options["prefetch"],
+                                                  options.get("lookahead"), options.get("prefetch_from"))])
         rows.append(["page-ins", f"{doc['expert_loads'] or 0:,} experts, {fmt_bytes(doc['bytes_paged_in'] or 0)}, "
                      f"stalled {doc['stall_s'] * 1e3:.1f} ms"])
     if options.get("link_speed") is not None:

@@ -15,7 +15,7 @@ HELP = "run the same prompts fully resident and under several caps, policies and
 def add_arguments(p) -> None:
     cli.add_model(p)
     cli.add_prompt(p, max_new_default=24)
-    cli.add_memory(p)
+    cli.add_memory(p, prefetch=0)
     p.add_argument("--prompts", type=int, default=3, metavar="N", help="held-out prompts to use when no --prompt is given (default 3)")
     cli.add_json(p)
 
