@@ -60,19 +60,41 @@ def split_docs(text: str) -> list[str]:
     return text.splitlines(keepends=True)
 
 
-def session(model, prompts, max_new: int, seed: int, *, trace: bool = False, **kw) -> dict:
+class OracleRule:
+    """A guess rule that knows the future: for each layer ahead, the experts that layer will choose, read from the
+    run's own routing trace (the engine replays that trace, which changes no number: tests/model/test_routing.py).
+    The upper bound of what a guess rule can give through the same engine (``session(..., oracle=trace)``)."""
+
+    def __init__(self, eng, rule, trace):
+        self.eng, self.rule = eng, rule
+        self.rows = trace.experts.tolist()
+
+    def targets(self, layer):
+        return self.rule.targets(layer)
+
+    def top(self, layer, h, n):
+        row = self.rows[self.eng.routing.cursor % len(self.rows)]
+        return [[e for e in row[layer + j] if e >= 0][:n] for j in range(1, self.targets(layer) + 1)]
+
+
+def session(model, prompts, max_new: int, seed: int, *, trace: bool = False, oracle=None, **kw) -> dict:
     """One engine generating ``prompts`` one after another (pool and policy carry over).
 
     A prompt is a string, or a list of token ids (then pass ``tokenizer=False``). Sampling is at
     temperature 0.8, seeded ``seed + i`` for the i-th prompt. Returns decode tok/s and seconds,
     decode steps, the new tokens per prompt, the pool's hit rate, misses and stall seconds (the
     bare source's stall without a pool), the engine's stats, the budget's slots and, with
-    ``trace=True``, the recorded trace. ``kw`` goes to ``moerun.load``.
+    ``trace=True``, the recorded trace. ``kw`` goes to ``moerun.load``.  ``oracle``: the routing trace of the same
+    session (recorded with ``trace=True``): the engine replays it and guesses with ``OracleRule``.
     """
     import moerun
     from moerun.model.sampling import Sampling
 
+    if oracle is not None:
+        kw["routing"] = oracle
     with moerun.load(model, **kw) as eng:
+        if oracle is not None and eng.prefetcher is not None:
+            eng.prefetcher.rule = OracleRule(eng, eng.prefetcher.rule, oracle)
         if trace:
             eng.start_trace()
         steps = decode_ns = total_ns = 0

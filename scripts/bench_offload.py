@@ -7,13 +7,16 @@ One run, same prompt, seed and cap for every configuration:
   whole-layer  each time a layer runs, all of its experts are paged in
   no-reuse     only the chosen experts are paged in, every time, no cache
   lru          the pool under the cap, LRU eviction
-  prefetch     the pool under the cap, LRU + speculative prefetch
+  prefetch     the pool under the cap, LRU + speculative prefetch (--prefetch N guesses)
+  auto         the same with --prefetch auto (each layer guesses only while its guesses pay)
+  oracle       LRU + prefetch whose guesses are the experts the layers will choose (the
+               run's own routing replayed): the most any guess rule could give
   markov       the pool under the cap, markov eviction (with and without prefetch)
 The cap is about a third of the expert bytes (plus dense weights, KV cache and
 scratch).  The link speed is emulated (sleeping page-ins) and chosen from a
 calibration run so that LRU alone spends about half of its decode time stalled.
-Then LRU and LRU + prefetch again with ``--busy N`` CPU-bound processes of our own
-running beside them, and a table of both at other links (``--links``).
+Then LRU, LRU + prefetch and auto again with ``--busy 1,2`` CPU-bound processes of our
+own running beside them, and a table of the three at other links (``--links``).
 
 With ``--evict lru,markov`` it compares eviction policies instead, live: a cap of
 ``--slots-per-layer`` experts per layer, one session per run (one engine, every
@@ -123,7 +126,7 @@ def main() -> int:
     ap.add_argument("--prefetch-from", default="attention", choices=("attention", "output"))
     ap.add_argument("--link-speed", default=None, help="fix the emulated link instead of calibrating it")
     ap.add_argument("--links", default="1GB/s,2GB/s,3GB/s,6GB/s", help="links of the per-link table ('' for none)")
-    ap.add_argument("--busy", type=int, default=1, help="CPU-bound processes of our own beside the busy rows (0: no busy rows)")
+    ap.add_argument("--busy", default="1,2", help="counts of CPU-bound processes of our own beside the busy rows ('' or 0: none)")
     ap.add_argument("--repeats", type=int, default=7, help="runs per configuration, interleaved; median, best and spread are kept")
     ap.add_argument("--evict", default=None, help="compare these eviction policies live instead, e.g. lru,markov")
     ap.add_argument("--slots-per-layer", type=int, default=4, help="with --evict: expert slots per layer (default 4)")
@@ -156,7 +159,9 @@ def main() -> int:
             rates.append(misses * st.expert_nbytes / max(compute_s, 1e-6))
         rate = max(rates)
     pf = {"prefetch": a.prefetch, "lookahead": a.lookahead, "prefetch_from": a.prefetch_from}
+    auto = {**pf, "prefetch": "auto"}
     link = {"link_speed": rate}
+    oracle = _bench.session(model, [prompt] * a.gens, a.max_new, a.seed, trace=True)["trace"]  # the routing to foresee
     configs = {
         "bare": {"bare": True},
         "resident": {},
@@ -165,6 +170,8 @@ def main() -> int:
         "no_reuse": {"baseline": "no-reuse", **link},
         "lru": {"mem_cap": cap, **link},
         "prefetch": {"mem_cap": cap, **pf, **link},
+        "auto": {"mem_cap": cap, **auto, **link},
+        "oracle": {"mem_cap": cap, **pf, **link, "oracle": oracle},
         "markov": {"mem_cap": cap, "evict": "markov", **link},
         "markov_prefetch": {"mem_cap": cap, "evict": "markov", **pf, **link},
     }
@@ -172,18 +179,21 @@ def main() -> int:
     for r in links:
         configs[f"lru@{r:g}"] = {"mem_cap": cap, "link_speed": r}
         configs[f"prefetch@{r:g}"] = {"mem_cap": cap, **pf, "link_speed": r}
+        configs[f"auto@{r:g}"] = {"mem_cap": cap, **auto, "link_speed": r}
     runs: dict = {k: [] for k in configs}
-    busy_runs: dict = {"lru": [], "prefetch": []}
-    for _ in range(a.repeats):  # interleaved, so a slow spell of a shared machine hits every configuration alike
+    busy = [int(n) for n in a.busy.split(",") if n.strip() and int(n) > 0]
+    busy_runs: dict = {f"{key}+{n}": [] for n in busy for key in ("lru", "prefetch", "auto")}
+    for i in range(a.repeats):  # interleaved, so a slow spell of a shared machine hits every configuration alike
         for key, kw in configs.items():
             runs[key].append(decode(model, prompt, a, **kw))
-        if a.busy:
-            procs = _bench.busy_processes(a.busy)
+        for n in busy:
+            procs = _bench.busy_processes(n)
             try:
-                for key in busy_runs:
-                    busy_runs[key].append(decode(model, prompt, a, **configs[key]))
+                for key in ("lru", "prefetch", "auto"):
+                    busy_runs[f"{key}+{n}"].append(decode(model, prompt, a, **configs[key]))
             finally:
                 _bench.stop_busy(procs)
+        _bench.log(f"round {i + 1} of {a.repeats} done")
     import statistics
 
     best = {k: max(v, key=lambda r: r["tok_s"]) for k, v in runs.items()}
@@ -207,7 +217,7 @@ def main() -> int:
         "lookahead": a.lookahead,
         "prefetch_from": a.prefetch_from,
         "repeats_interleaved": a.repeats,
-        "busy_processes": a.busy,
+        "busy_processes": busy,
         "lru_stall_share": best["lru"]["stall_s"] / best["lru"]["total_s"],
         "prefetch_stall_share": best["prefetch"]["stall_s"] / best["prefetch"]["total_s"],
         "lru_hit_rate": lru_pool["hit_rate"],
@@ -220,21 +230,28 @@ def main() -> int:
         "spread": {k: spread(v) for k, v in runs.items()},
     }
     doc["tok_s_is"] = "median of the interleaved runs (best and spread under spread)"
+    auto_pool = best["auto"]["stats"]["pool"]["prefetch"]
+    doc["auto_counters"] = {k: auto_pool[k] for k in ("loads", "used", "wasted", "skipped", "rests")}
     for key in configs:
         if "@" not in key:
             doc[f"{key}_tok_s"] = median[key]
-    if a.busy:
-        for key, rows in busy_runs.items():
-            doc[f"{key}_busy_tok_s"] = statistics.median(r["tok_s"] for r in rows)
-            doc["spread"][f"{key}_busy"] = spread(rows)
+    for key, rows in busy_runs.items():
+        doc[f"{key}_busy_tok_s"] = statistics.median(r["tok_s"] for r in rows)
+        doc["spread"][f"{key}_busy"] = spread(rows)
     doc["per_link"] = [
         {"link_bytes_s": r, "lru_tok_s": median[f"lru@{r:g}"], "prefetch_tok_s": median[f"prefetch@{r:g}"],
+         "auto_tok_s": median[f"auto@{r:g}"],
          "lru_stall_share": best[f"lru@{r:g}"]["stall_s"] / best[f"lru@{r:g}"]["total_s"],
-         "prefetch_vs_lru": median[f"prefetch@{r:g}"] / median[f"lru@{r:g}"]}
+         "prefetch_vs_lru": median[f"prefetch@{r:g}"] / median[f"lru@{r:g}"],
+         "auto_vs_lru": median[f"auto@{r:g}"] / median[f"lru@{r:g}"]}
         for r in links
     ]
+    gain = doc["oracle_tok_s"] - doc["lru_tok_s"]
     doc["ratios"] = {
         "prefetch_vs_lru": doc["prefetch_tok_s"] / doc["lru_tok_s"],
+        "auto_vs_lru": doc["auto_tok_s"] / doc["lru_tok_s"],
+        "oracle_vs_lru": doc["oracle_tok_s"] / doc["lru_tok_s"],
+        "auto_share_of_oracle_gain": (doc["auto_tok_s"] - doc["lru_tok_s"]) / gain if gain > 0 else None,
         "markov_vs_lru": doc["markov_tok_s"] / doc["lru_tok_s"],
         "markov_prefetch_vs_lru": doc["markov_prefetch_tok_s"] / doc["lru_tok_s"],
         "prefetch_vs_whole_layer": doc["prefetch_tok_s"] / doc["whole_layer_tok_s"],
@@ -242,8 +259,10 @@ def main() -> int:
         "resident_vs_bare": doc["resident_tok_s"] / doc["bare_tok_s"],
         "resident_prefetch_vs_resident": doc["resident_prefetch_tok_s"] / doc["resident_tok_s"],
     }
-    if a.busy:
-        doc["ratios"]["prefetch_busy_vs_lru_busy"] = doc["prefetch_busy_tok_s"] / doc["lru_busy_tok_s"]
+    for n in busy:
+        lru_b = doc[f"lru+{n}_busy_tok_s"]
+        doc["ratios"][f"prefetch_vs_lru_with_{n}_busy"] = doc[f"prefetch+{n}_busy_tok_s"] / lru_b
+        doc["ratios"][f"auto_vs_lru_with_{n}_busy"] = doc[f"auto+{n}_busy_tok_s"] / lru_b
     if a.json:
         print(json.dumps(doc, indent=2))
         return 0
@@ -259,22 +278,28 @@ def main() -> int:
         share = r["stall_s"] / r["total_s"] if r["total_s"] else 0
         print(f"{label:<18}{median[key]:>14.0f}{100 * doc['spread'][key]['spread']:>8.0f}%{100 * share:>12.1f}%"
               f"{'' if hr is None else f'{100 * hr:.1f}%':>10}")
-    if a.busy:
-        for key in busy_runs:
-            sp = doc["spread"][f"{key}_busy"]
-            print(f"{key + ' + busy':<18}{doc[key + '_busy_tok_s']:>14.0f}{100 * sp['spread']:>8.0f}%   ({a.busy} busy process"
-                  f"{'es' if a.busy > 1 else ''} of our own beside it)")
+    for key in busy_runs:
+        sp = doc["spread"][f"{key}_busy"]
+        name, n = key.split("+")
+        print(f"{name + f' + {n} busy':<18}{doc[key + '_busy_tok_s']:>14.0f}{100 * sp['spread']:>8.0f}%   "
+              f"({n} busy process{'es' if int(n) > 1 else ''} of our own beside it)")
     if links:
-        print(f"{'link (emulated)':<18}{'lru tok/s':>11}{'stall':>8}{'prefetch':>10}{'vs lru':>8}")
+        print(f"{'link (emulated)':<18}{'lru tok/s':>11}{'stall':>8}{'prefetch':>10}{'vs lru':>8}{'auto':>8}{'vs lru':>8}")
         for row in doc["per_link"]:
             print(f"{row['link_bytes_s'] / 1e9:>9.1f} GB/s     {row['lru_tok_s']:>11.0f}{100 * row['lru_stall_share']:>7.0f}%"
-                  f"{row['prefetch_tok_s']:>10.0f}{row['prefetch_vs_lru']:>7.2f}x")
+                  f"{row['prefetch_tok_s']:>10.0f}{row['prefetch_vs_lru']:>7.2f}x{row['auto_tok_s']:>8.0f}{row['auto_vs_lru']:>7.2f}x")
     rt = doc["ratios"]
     print(f"lru+prefetch vs lru {rt['prefetch_vs_lru']:.2f}x (goal 1.15x), vs whole-layer {rt['prefetch_vs_whole_layer']:.2f}x "
           f"(goal 3.5x), vs no-reuse {rt['prefetch_vs_no_reuse']:.2f}x; markov vs lru {rt['markov_vs_lru']:.2f}x (goal 1.08x); "
           f"resident/bare {100 * rt['resident_vs_bare']:.0f}% (goal 90%); resident with prefetch on / without "
           f"{100 * rt['resident_prefetch_vs_resident']:.0f}% (goal 97%)"
-          + (f"; with {a.busy} busy: prefetch vs lru {rt['prefetch_busy_vs_lru_busy']:.2f}x (goal 0.95x)" if a.busy else ""))
+          + "".join(f"; with {n} busy: prefetch vs lru {rt[f'prefetch_vs_lru_with_{n}_busy']:.2f}x, auto vs lru "
+                    f"{rt[f'auto_vs_lru_with_{n}_busy']:.2f}x" for n in busy))
+    share = rt["auto_share_of_oracle_gain"]
+    print(f"auto vs lru {rt['auto_vs_lru']:.2f}x (goal at least 1.0x at every link and load); oracle guesses vs lru "
+          f"{rt['oracle_vs_lru']:.2f}x; auto's share of the oracle's gain "
+          + (f"{100 * share:.0f}% (goal 80%)" if share is not None else "- (the oracle gained nothing)")
+          + f"; auto's counters {doc['auto_counters']}")
     print(f"prefetch accuracy {100 * (doc['prefetch_accuracy'] or 0):.1f}%, {doc['prefetch_declined']} guesses declined, "
           f"page-in hidden {doc['prefetch_hidden_s'] * 1e3:.1f} ms; tokens identical in every configuration: {same}")
     return 0

@@ -99,7 +99,9 @@ def run_text(engine, gen=None) -> str:
                 f"{pf['guesses']} guesses, {pf['loads']} read, {pf['used']} used "
                 f"({pct(pf['accuracy'])} accurate), {pf['wasted']} wasted ({fmt_bytes(pf['wasted_bytes'])}), "
                 + (f"{pf['skipped']} skipped in {pf['rests']} rest{'' if pf['rests'] == 1 else 's'} of layers "
-                   "whose guesses did not pay, " if auto else "")
+                   f"whose guesses did not pay, guessing in {pf['steps_guessing']} of "
+                   f"{pf['steps_guessing'] + pf['steps_not_guessing']} decode steps (off where timed steps were faster "
+                   "without), " if auto else "")
                 + f"{pf['hidden_s'] * 1e3:.1f} ms of page-in hidden"
                 + ("" if doc.get("reader_alive", True) else "; the reader process exited, so the engine read for itself")
             )

@@ -25,7 +25,7 @@ from moerun.model.sampling import Sampler, Sampling
 from moerun.model.tokenizer import Tokenizer
 from moerun.model.transformer import NO_OBSERVER, PREFILL_CHUNK, KVCache, StepObserver, Transformer
 from moerun.runtime.budget import Budget
-from moerun.runtime.guesses import Account
+from moerun.runtime.guesses import Account, Gate
 from moerun.runtime.memwatch import MemWatch
 from moerun.runtime.pool import ExpertPool
 from moerun.runtime.prefetch import GuessRule, Prefetcher
@@ -104,10 +104,11 @@ class Engine:
         self.prefetcher = None
         if self.pool is not None and options.get("prefetch"):
             rule = GuessRule(self.model, options["lookahead"])
-            if options.get("prefetch_auto"):  # each layer's guesses kept only while they pay
-                self.pool.account = self.pool.stats.account = Account(store.config.n_layers)
             self.prefetcher = Prefetcher(self.pool, rule, options["prefetch"], options["lookahead"], reader,
                                          self.prefetch_from)
+            if options.get("prefetch_auto"):  # each layer's guesses kept only while they pay, and only while steps gain
+                self.pool.account = self.pool.stats.account = Account(store.config.n_layers)
+                self.prefetcher.gate = self.pool.stats.gate = Gate()
         self.routing = None  # the forward pass's routing: None for the model's own routers, or a ReplayedRouting
         self._warm: list | None = None  # a warm start not made yet: (layer, expert) pairs, hottest first
 

@@ -77,6 +77,7 @@ def worth_guessing(timing: Timing, read_ns: float, place_ns: float) -> bool:
 
 AUTO_GUESSES = 2  # guesses per layer with --prefetch auto (at most the experts per layer)
 TRIAL_READS = 8  # guess reads a layer's account is judged over
+TRIAL_POINTS = 32  # or its prefetch points, if fewer of its guesses were read by then
 REST_FIRST = 32  # prefetch points a layer goes without guessing after its first losing trial
 REST_MAX = 1024  # the longest rest: each losing trial in a row doubles it up to here
 EVICT_HORIZON = 4  # steps within which a miss on an expert a guess evicted is charged to that guess's layer
@@ -86,21 +87,25 @@ class Account:
     """What each layer's guesses saved against what they cost, in nanoseconds of the compute thread, and
     whether that layer guesses at all (``--prefetch auto``).
 
-    A guess read is charged what placing and handing it over costs (``read``); a guess a layer then used
-    is credited the read time it saved that layer, less any wait for it (``used``: the wait avoided,
-    negative when the guess arrived later than a read of its own would have); a miss on an expert that a
-    guess evicted within ``EVICT_HORIZON`` steps is charged one read (``missed``), unless that guess was used
-    (its layer would have read it anyway and evicted the same expert for it).  After ``TRIAL_READS``
-    reads a layer's balance is judged: at or above zero it goes on (a new trial); below zero the layer
-    rests, guessing nothing for ``REST_FIRST`` of its prefetch points, twice that after another losing
-    trial, up to ``REST_MAX``, then tries again.  The live pool and the planner's time model drive the same
-    object with their own clocks (measured, or simulated)."""
+    Charged: each prefetch point where the layer guesses, its share of that point's time on the compute thread
+    (``charge``: the guess rule and the placing); each guess read, what the reader's copy costs the compute
+    thread beside that (``read``); a miss on an expert that a guess evicted within ``EVICT_HORIZON`` steps, one
+    read (``missed``), unless that guess was used (its layer would have read it anyway and evicted the same
+    expert for it).  Credited: each guess a layer used, the read time it saved that layer less any wait for it
+    (``used``: the wait avoided, negative when the guess arrived later than a read of its own would have).
 
-    __slots__ = ("balance", "reads", "rest", "rest_len", "victims", "evicted_by", "skipped", "rests")
+    A trial is ``TRIAL_READS`` guess reads, or ``TRIAL_POINTS`` prefetch points if fewer guesses were read by
+    then.  At its end the layer's balance is judged: at or above zero it goes on (a new trial); below zero the
+    layer rests, guessing nothing for ``REST_FIRST`` of its prefetch points, twice that after another losing
+    trial in a row, up to ``REST_MAX``, then tries again.  The live pool and the planner's time model drive the
+    same object with their own clocks (measured, or simulated)."""
+
+    __slots__ = ("balance", "reads", "points", "rest", "rest_len", "victims", "evicted_by", "skipped", "rests")
 
     def __init__(self, n_layers: int):
         self.balance = [0.0] * n_layers
         self.reads = [0] * n_layers  # guess reads of the current trial
+        self.points = [0] * n_layers  # prefetch points of the current trial
         self.rest = [0] * n_layers  # prefetch points still to rest
         self.rest_len = [REST_FIRST] * n_layers  # the next rest's length
         self.victims: dict = {}  # key a guess evicted -> (the guess's layer, step)
@@ -115,10 +120,10 @@ class Account:
             self.rest[layer] -= 1
             self.skipped += n_guesses
             return False
-        if self.reads[layer] >= TRIAL_READS:
+        if self.reads[layer] >= TRIAL_READS or self.points[layer] >= TRIAL_POINTS:
             losing = self.balance[layer] < 0
             self.balance[layer] = 0.0
-            self.reads[layer] = 0
+            self.reads[layer] = self.points[layer] = 0
             if losing:
                 self.rest[layer] = self.rest_len[layer] - 1  # this point is the first one rested
                 self.rest_len[layer] = min(REST_MAX, 2 * self.rest_len[layer])
@@ -126,7 +131,12 @@ class Account:
                 self.skipped += n_guesses
                 return False
             self.rest_len[layer] = REST_FIRST
+        self.points[layer] += 1
         return True
+
+    def charge(self, layer: int, ns: float) -> None:
+        """``layer``'s share of a prefetch point's time on the compute thread."""
+        self.balance[layer] -= ns
 
     def read(self, layer: int, cost_ns: float, victim=None, step: int = 0, key=None) -> None:
         """A guess (``key``) for ``layer`` was read, costing the compute thread ``cost_ns``; it evicted ``victim``
@@ -162,3 +172,74 @@ class Account:
     def resting(self) -> list[int]:
         """The layers at rest now."""
         return [layer for layer, n in enumerate(self.rest) if n]
+
+
+# ---------------------------------------------------------------------------- prefetch auto: guessing at all?
+
+GATE_STEPS = 16  # decode steps of one probe phase (guessing on, or off)
+GATE_ROUNDS = 2  # on/off phase pairs of one probe
+HOLD_FIRST = 128  # decode steps a probe's verdict holds before the next probe
+HOLD_MAX = 2048  # the longest hold: each verdict the same as the last doubles it up to here
+
+
+class Gate:
+    """Whether the engine guesses at all, judged by what the user waits for: decode steps timed with guessing on
+    against steps with it off (``--prefetch auto``).
+
+    The per-layer ``Account`` sees what it can attribute to a layer; what it cannot (the reader process taking a
+    core from the compute thread on a busy machine, the cache misses its copies cause) shows in the step time.  So a
+    probe runs ``GATE_ROUNDS`` pairs of phases of ``GATE_STEPS`` decode steps each, guessing on then off, and
+    compares the median step time of each; the faster holds for ``HOLD_FIRST`` steps, twice as long each time the
+    next probe gives the same verdict (up to ``HOLD_MAX``), then the engine probes again.  ``tick`` is called once
+    per decode step, at its start; ``valid=False`` (a prefill, say, since the last tick) leaves that gap unmeasured.
+    The live pool ticks it with the wall clock, the planner's time model with simulated time."""
+
+    __slots__ = ("probing", "on", "left", "phases", "samples", "hold_len", "last", "verdicts", "steps_on", "steps_off")
+
+    def __init__(self):
+        self.probing = True
+        self.on = True  # whether the current step guesses
+        self.left = GATE_STEPS + 1  # steps left in this phase or hold (the first tick measures nothing)
+        self.phases = 0  # probe phases finished
+        self.samples: dict[bool, list[float]] = {True: [], False: []}
+        self.hold_len = {True: HOLD_FIRST, False: HOLD_FIRST}
+        self.last = 0.0  # the last tick's time
+        self.verdicts: list[bool] = []  # each probe's verdict: guessing on (True) or off
+        self.steps_on = self.steps_off = 0
+
+    def tick(self, now: float, valid: bool = True) -> bool:
+        """A decode step begins at ``now`` (ns): does it guess?"""
+        if self.probing and self.last and valid:
+            self.samples[self.on].append(now - self.last)
+        self.last = now
+        self.left -= 1
+        if self.left <= 0:
+            self._next()
+        if self.on:
+            self.steps_on += 1
+        else:
+            self.steps_off += 1
+        return self.on
+
+    def _next(self) -> None:
+        if not self.probing:  # a hold is over: probe again, guessing on first
+            self.probing, self.on, self.left, self.phases = True, True, GATE_STEPS, 0
+            self.samples = {True: [], False: []}
+            return
+        self.phases += 1
+        if self.phases < 2 * GATE_ROUNDS:
+            self.on, self.left = not self.on, GATE_STEPS
+            return
+        on, off = self.samples[True], self.samples[False]
+        verdict = not off or (bool(on) and _median(on) < _median(off))
+        self.probing, self.on = False, verdict
+        self.left = self.hold_len[verdict]
+        self.hold_len[verdict] = min(HOLD_MAX, 2 * self.hold_len[verdict])
+        self.hold_len[not verdict] = HOLD_FIRST
+        self.verdicts.append(verdict)
+
+
+def _median(xs: list[float]) -> float:
+    s = sorted(xs)
+    n = len(s)
+    return s[n // 2] if n % 2 else (s[n // 2 - 1] + s[n // 2]) / 2

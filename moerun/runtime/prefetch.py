@@ -25,12 +25,15 @@ stalls, the engine carries on with its own reads.
 With ``--prefetch auto`` the pool keeps an account per layer of what its guesses saved
 against what they cost (``moerun.runtime.guesses.Account``); a layer whose account
 is losing is not guessed for, and the rule is not applied at a point where no layer
-ahead is guessed for.
+ahead is guessed for.  Above the accounts, a gate (``moerun.runtime.guesses.Gate``)
+times decode steps with guessing on against steps with it off, and turns guessing
+off for a while where it makes steps slower.
 """
 
 from __future__ import annotations
 
 import heapq
+import time
 
 import numpy as np
 
@@ -103,9 +106,14 @@ class Prefetcher:
         self.lookahead = lookahead
         self.reader = reader
         self.at_output = at == "output"
+        self.gate = None  # with --prefetch auto: whether this decode step guesses at all (moerun.runtime.guesses.Gate)
+        self._on = True
+        self._gap = False  # a pass of more than one token since the gate's last tick
 
     def after_attention(self, layer: int, h: np.ndarray) -> None:
-        if not self.at_output and h.shape[0] == 1:
+        if h.shape[0] != 1:
+            self._gap = True
+        elif not self.at_output:
             self.point(layer, h)
 
     def after_layer(self, layer: int, x: np.ndarray) -> None:
@@ -115,10 +123,17 @@ class Prefetcher:
     def point(self, layer: int, h: np.ndarray) -> None:
         """Layer ``layer``'s prefetch point (compute thread, one token)."""
         pool = self.pool
+        if self.gate is not None:
+            if layer == 0:  # a decode step begins
+                self._on = self.gate.tick(time.perf_counter_ns(), not self._gap)
+                self._gap = False
+            if not self._on:
+                return
         if not pool.worth_guessing():
             return
         account = pool.account
         if account is not None:  # prefetch auto: only the layers whose guesses pay, the rule only if any does
+            t0 = time.perf_counter_ns()
             ahead = self.rule.targets(layer)
             open_ = [account.open(layer + j, self.n) for j in range(1, ahead + 1)]
             if not any(open_):
@@ -128,6 +143,11 @@ class Prefetcher:
         for j, guesses in enumerate(self.rule.top(layer, h, self.n), 1):
             if account is None or open_[j - 1]:
                 pool.prefetch(layer + j, guesses, base + layer + j)
+        if account is not None:  # the point's time, shared by the layers it guessed for
+            share = (time.perf_counter_ns() - t0) / sum(open_)
+            for j, on in enumerate(open_, 1):
+                if on:
+                    account.charge(layer + j, share)
 
     @property
     def alive(self) -> bool:

@@ -218,6 +218,7 @@ class PoolStats:
     warm_ns: int = 0  # the warm start's time: its reads (and, with an emulated link, their transfers)
     prefetch_wasted: int = 0  # guesses read and then evicted or dropped before any use
     account: object = None  # with --prefetch auto: the pool's moerun.runtime.guesses.Account
+    gate: object = None  # with --prefetch auto: the prefetcher's moerun.runtime.guesses.Gate
 
     def __post_init__(self):
         for name in ("accesses", "hits", "prefetch_hits", "misses", "stall_ns", "pagein_ns"):
@@ -269,5 +270,9 @@ class PoolStats:
                 "skipped": self.account.skipped if self.account is not None else 0,
                 "rests": self.account.rests if self.account is not None else 0,
                 "resting_layers": self.account.resting() if self.account is not None else [],
+                "steps_guessing": self.gate.steps_on if self.gate is not None else None,
+                "steps_not_guessing": self.gate.steps_off if self.gate is not None else None,
+                "probes": len(self.gate.verdicts) if self.gate is not None else 0,
+                "probe_verdicts_on": sum(self.gate.verdicts) if self.gate is not None else 0,
             },
         }

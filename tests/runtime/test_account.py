@@ -20,7 +20,20 @@ from moerun.errors import BadOption
 from moerun.files.trace import Trace
 from moerun.model.sampling import Sampling
 from moerun.runtime import pool as pool_module
-from moerun.runtime.guesses import AUTO_GUESSES, EVICT_HORIZON, REST_FIRST, REST_MAX, TRIAL_READS, Account
+from moerun.runtime.guesses import (
+    AUTO_GUESSES,
+    EVICT_HORIZON,
+    GATE_ROUNDS,
+    GATE_STEPS,
+    HOLD_FIRST,
+    HOLD_MAX,
+    REST_FIRST,
+    REST_MAX,
+    TRIAL_POINTS,
+    TRIAL_READS,
+    Account,
+    Gate,
+)
 
 SAMPLING = Sampling(temperature=0.8, top_p=0.95, seed=3)
 
@@ -80,6 +93,61 @@ def test_a_miss_on_what_an_unused_guess_evicted_is_charged_within_the_horizon_an
     acct.read(0, 0.0, victim=3, step=0, key=2)
     acct.missed(3, EVICT_HORIZON + 1, read_ns=500.0)  # past the horizon: not charged
     assert acct.balance[0] == 0.0
+
+
+def test_a_layer_whose_guesses_are_all_declined_is_judged_on_its_prefetch_points_alone():
+    acct = Account(2)
+    for _ in range(TRIAL_POINTS):
+        assert acct.open(1, 2)
+        acct.charge(1, 30.0)  # the guess rule ran; nothing was read
+    assert not acct.open(1, 2) and acct.rests == 1
+
+
+def _drive(gate: Gate, steps: int, on_ns: float, off_ns: float) -> list[bool]:
+    """Tick the gate over ``steps`` decode steps that take ``on_ns`` when guessing, ``off_ns`` when not."""
+    now, out = 1.0, []
+    for _ in range(steps):
+        on = gate.tick(now)
+        out.append(on)
+        now += on_ns if on else off_ns
+    return out
+
+
+def test_the_gate_probes_on_and_off_in_turn_and_holds_the_faster():
+    probe = 2 * GATE_ROUNDS * GATE_STEPS
+    gate = Gate()
+    seen = _drive(gate, probe + HOLD_FIRST, on_ns=900.0, off_ns=1000.0)
+    assert seen[:GATE_STEPS] == [True] * GATE_STEPS and seen[GATE_STEPS] is False
+    assert seen[2 * GATE_STEPS] is True and seen[3 * GATE_STEPS] is False  # the rounds alternate
+    assert gate.verdicts == [True] and all(seen[probe:])  # guessing made steps faster: it holds on
+    gate = Gate()
+    seen = _drive(gate, probe + HOLD_FIRST, on_ns=1100.0, off_ns=1000.0)
+    assert gate.verdicts == [False] and not any(seen[probe:])  # slower with guesses: off for the hold
+
+
+def _holds(seen: list[bool]) -> list[int]:
+    """The lengths of the holds in a run of ticks whose verdicts were all off: the runs of off steps longer than a
+    probe phase."""
+    out, n = [], 0
+    for on in seen + [True]:
+        if on:
+            if n > GATE_STEPS:
+                out.append(n - GATE_STEPS)  # a probe's last phase (off) runs straight into its hold
+            n = 0
+        else:
+            n += 1
+    return out
+
+
+def test_the_same_verdict_again_doubles_the_hold_up_to_its_longest_and_a_new_verdict_starts_short():
+    gate = Gate()
+    seen = _drive(gate, 8 * HOLD_MAX, on_ns=1100.0, off_ns=1000.0)
+    assert set(gate.verdicts) == {False}
+    holds = _holds(seen)
+    assert holds[:3] == [HOLD_FIRST, 2 * HOLD_FIRST, 4 * HOLD_FIRST] and HOLD_MAX in holds
+    assert max(holds) == HOLD_MAX
+    _drive(gate, 4 * HOLD_MAX, on_ns=900.0, off_ns=1000.0)  # now guessing pays
+    assert gate.verdicts[-1] is True and gate.hold_len[False] == HOLD_FIRST
 
 
 # ---------------------------------------------------------------------------- in the live engine
