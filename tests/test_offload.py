@@ -80,7 +80,7 @@ def offload_settings(draw):
     kind = draw(st.sampled_from(["even", "shared", "list"]))
     kw = {
         "evict": draw(st.sampled_from(["lru", "lfu", "fifo", "lrfu", "markov", "orbit"])),
-        "prefetch": draw(st.integers(0, 3)),
+        "prefetch": draw(st.sampled_from([0, 1, 2, 3, "auto"])),
         "lookahead": draw(st.integers(1, 3)),
         "link_speed": draw(st.sampled_from([None, 2e8, 1e9])),  # emulated link, bytes/s
         "mechanism": draw(st.sampled_from(["pread", "mmap"])),
@@ -117,7 +117,7 @@ def test_capped_logits_and_tokens_equal_resident_bit_for_bit(property_models, ca
 
     got = _run(m["dir"], prompt, sampling, setup=setup, **kw)
     _assert_same(m["ref"][key], got)
-    if kw.get("prefetch"):
+    if got[3]["options"]["prefetch"]:  # guesses made (auto makes none where every expert fits)
         assert got[3]["reader_alive"]
 
 

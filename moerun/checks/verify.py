@@ -41,7 +41,7 @@ class Outcome:
 
 def default_settings(min_cap: int, full_cap: int, slot: int) -> list[Setting]:
     """The default set: every online policy at the smallest cap (moerun.policies.names), then other caps,
-    a shared pool, prefetch and an emulated link."""
+    a shared pool, prefetch (fixed and auto) and an emulated link."""
     mid = (min_cap + full_cap) // 2
     return [
         *(Setting(f"smallest cap, {name}", {"mem_cap": min_cap, "evict": name}) for name in policies.names(online_only=True)),
@@ -50,6 +50,8 @@ def default_settings(min_cap: int, full_cap: int, slot: int) -> list[Setting]:
         Setting(f"middle cap, {SHARED_POOL}, {fmt_prefetch(1, 1)}", {"mem_cap": mid, "split": "shared", "prefetch": 1}),
         Setting(f"smallest cap, {SHARED_POOL}, orbit", {"mem_cap": min_cap, "split": "shared", "evict": "orbit"}),
         Setting(f"smallest cap, {fmt_prefetch(2, 1)}, link 1 GB/s (emulated)", {"mem_cap": min_cap, "prefetch": 2, "link_speed": 1e9}),
+        Setting(f"smallest cap, {fmt_prefetch('auto', 1)}, link 1 GB/s (emulated)",
+                {"mem_cap": min_cap, "prefetch": "auto", "link_speed": 1e9}),
     ]
 
 

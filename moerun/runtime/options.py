@@ -28,7 +28,7 @@ from moerun.runtime.engine import Engine
 from moerun.runtime.guesses import AUTO_GUESSES
 from moerun.runtime.memwatch import MemWatch
 from moerun.runtime.pool import ExpertPool
-from moerun.runtime.reader import STALL_TIMEOUT_S, Reader
+from moerun.runtime.reader import STALL_TIMEOUT_S, Reader, reader_possible
 from moerun.runtime.sources import BareExperts, NoReuseExperts, WholeLayerExperts
 from moerun.units import parse_rate, parse_size
 
@@ -254,7 +254,7 @@ def prefetch_guesses(o: EngineOptions, config, budget: Budget) -> int:
         return 0
     if o.prefetch != "auto":
         return o.prefetch
-    if config.n_layers < 2 or (o.mem_cap is None and o.slots is None):
+    if config.n_layers < 2 or (o.mem_cap is None and o.slots is None) or not reader_possible():
         return 0
     if sum(budget.slots) >= config.n_layers * config.n_experts:
         return 0

@@ -46,9 +46,14 @@ NAP_S = 0.05  # longest single block while waiting, so a dead reader is noticed
 MAX_PIECES = 3  # ring entries of one request at most: an expert's three parts, each read on its own
 
 
+def reader_possible() -> bool:
+    """Can the reader process run here (Linux: ``memfd_create`` and ``eventfd``)?"""
+    return hasattr(os, "memfd_create") and hasattr(os, "eventfd")
+
+
 class Reader:
     def __init__(self, store, n_slots: int, slot_size: int, timeout_s: float = STALL_TIMEOUT_S):
-        if not (hasattr(os, "memfd_create") and hasattr(os, "eventfd")):
+        if not reader_possible():
             raise BadOption("--prefetch needs Linux (memfd_create, eventfd) for its reader process; run without --prefetch")
         self.n_slots = n_slots
         self.slot_size = slot_size

@@ -551,10 +551,11 @@ def test_synth_into_a_directory_whose_name_is_not_utf8_is_refused_before_writing
 
 @pytest.mark.parametrize(("extra", "phrase"), [
     (("--mem-cap", "1GiB", "--slots", "3,3,3", "--shared-pool"), "contradict"),
-    (("--lookahead", "2"), "--lookahead has no effect without --prefetch"),
-    (("--prefetch-from", "output"), "--prefetch-from has no effect without --prefetch"),
+    (("--prefetch", "0", "--lookahead", "2"), "--lookahead has no effect without --prefetch"),
+    (("--prefetch", "0", "--prefetch-from", "output"), "--prefetch-from has no effect without --prefetch"),
     (("--prefetch", "9"), "more than the model's 8 experts"),
     (("--prefetch", "2", "--lookahead", "3"), "past the last layer"),
+    (("--prefetch", "auto", "--lookahead", "3"), "past the last layer"),
 ])
 def test_contradictory_memory_options_are_refused_with_one_line(small_model, capsys, extra, phrase):
     for command in ("generate", "score"):
