@@ -22,7 +22,7 @@ from moerun.files.config import RANDOM_NOTE
 from moerun.files.trace import Trace, read_trace
 from moerun.planner import selfcheck
 from moerun.planner.calibration import calibrate, costs_from_calibration, costs_from_shape, describe, load_shape, page_seconds
-from moerun.planner.search import PREFETCH_CANDIDATES, Space, check_decode_steps, check_trace_shape, choose, minimum_cap
+from moerun.planner.search import Space, check_decode_steps, check_trace_shape, choose, minimum_cap, prefetch_candidates
 from moerun.planner.selfcheck import PlanCheck
 from moerun.planner.shape_costs import checkpoint_shape, measure_shape, model_shape
 from moerun.planner.timeline import Costs, Prediction
@@ -130,7 +130,8 @@ def costs_json(costs: Costs) -> dict:
 def prediction_json(split: str, pr: Prediction) -> dict:
     """One setting's prediction as every document writes a setting: the pool as ``split`` ("even", "uneven" or
     "shared"; no ``shared`` flag beside it) and prefetch as the engine's options write it (``prefetch``, 0 for
-    none, and ``lookahead``, 1 when there is no prefetch)."""
+    none or "auto" for prefetch auto, and ``lookahead``, 1 when there is no prefetch).  Prefetch auto's account
+    adds ``skipped`` and ``rests`` (0 for the other settings)."""
     doc = {"split": split, **pr.to_json()}
     doc.pop("shared", None)
     if not doc["prefetch"]:
@@ -167,7 +168,7 @@ def _point(point: dict, label: str, pr: Prediction) -> dict:
     """A curve point with its pool as ``split`` and its prefetch setting whole."""
     out = {k: v for k, v in point.items() if k != "shared"}
     out["split"] = label
-    out["prefetch"] = pr.prefetch
+    out["prefetch"] = pr.prefetch_setting
     out["lookahead"] = pr.lookahead if pr.prefetch else 1
     return out
 
@@ -311,7 +312,7 @@ def _space(inp: dict, shared_pool: bool, recalibrate: bool, step: Callable[[int,
         trace = _record(m["dir"], inp["tokens"], None if m["whole"] else max(small, inp["cap"] or 0))
         check_decode_steps(trace, "the recorded trace")
     step(2, "hit curves")
-    pf = [pc for pc in PREFETCH_CANDIDATES if pc[0] == 0 or trace.guesses is not None]
+    pf = prefetch_candidates(trace)
     warm = inp.get("warm")
     space = Space(trace, costs, m["L"], m["E"], m["k"], m["fixed"], inp["slot"], inp["names"], pf, bool(shared_pool),
                   profile=warm.counts if warm is not None else None)
@@ -422,7 +423,7 @@ def plan(model_dir: str | os.PathLike | None = None, mem_cap: int | str | None =
                 for lab, pr in pick.items()}}
     step(4, "speed against cap")
     curve_policy = rec.policy if rec else "lru"
-    curve_pf = [(rec.prefetch, rec.lookahead or 1)] if rec else space.prefetches
+    curve_pf = [(rec.prefetch_setting, rec.lookahead or 1)] if rec else space.prefetches
     curve, settings = _curve(space, curve_policy, curve_pf)
     result.curve = {"policy": curve_policy, "points": [_point(p, *s) for p, s in zip(curve, settings)]}
     if target is not None:

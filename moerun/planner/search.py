@@ -3,8 +3,9 @@
 ``moerun.planner.timeline`` simulates decode along a routing trace for one setting (slots per layer or a
 shared pool, policy, prefetch) with costs measured by ``moerun.planner.calibration``.  This module
 searches the settings a user chooses from: how to split a number of slots between the layers
-(evenly, or by the layers' miss curves), which policy, how much prefetch; the best setting for a
-cap, decode speed against cap, and the smallest cap that reaches a target speed.
+(evenly, or by the layers' miss curves), which policy, how much prefetch (a fixed number of guesses, or
+``--prefetch auto``: ``AUTO``); the best setting for a cap, decode speed against cap, and the smallest cap
+that reaches a target speed.
 """
 
 from __future__ import annotations
@@ -28,12 +29,15 @@ from moerun.planner.calibration import (  # noqa: F401  (the planner's public na
 from moerun.planner.timeline import Costs, Prediction, predict, step_misses  # noqa: F401
 from moerun.policies import LRU
 from moerun.runtime.decisions import hottest
+from moerun.runtime.guesses import AUTO_GUESSES
 from moerun.runtime.link import CHUNK
 from moerun.sim.counts import replay_counts
 from moerun.sim.fast import FAST_PATHS, layer_misses
 from moerun.sim.steps import layer_plans, prefill_tokens, shared_plan, warm_plans
 
 PREFETCH_CANDIDATES = [(0, 1), (1, 1), (2, 1), (2, 2), (3, 1)]
+AUTO = "auto"  # a prefetch candidate ``(AUTO, lookahead)``: --prefetch auto, AUTO_GUESSES guesses (at most the experts)
+AUTO_CANDIDATE = (AUTO, 1)
 PREFETCH_POLICIES = 2  # prefetch is simulated for the policies that do best without it
 SEARCH_TOKENS = 2048  # decode tokens each prefetch setting is simulated over in the search
 REPLAY_TOKENS = 6144  # decode tokens of the trace the search replays (the first ones): a long trace plans in seconds
@@ -107,12 +111,21 @@ def even_split(total: int, L: int, high: int) -> list[int]:
     return [min(high, base + (1 if i < extra else 0)) for i in range(L)]
 
 
+def prefetch_candidates(trace: Trace) -> list:
+    """The prefetch settings searched on ``trace``: off; the fixed ones (``PREFETCH_CANDIDATES``) if it holds guesses;
+    and prefetch auto (``AUTO_CANDIDATE``) if it also has more than one layer (with one, auto guesses nothing)."""
+    if trace.guesses is None:
+        return [pc for pc in PREFETCH_CANDIDATES if pc[0] == 0]
+    return list(PREFETCH_CANDIDATES) + ([AUTO_CANDIDATE] if trace.n_layers > 1 else [])
+
+
 def simplicity(label: str, pr: Prediction) -> tuple:
-    """Sorts settings simplest first: prefetch off, then fewer guesses and layers ahead; an even split, a shared
-    pool, an uneven split; the engine's default policy (lru), then the others in their registered order."""
+    """Sorts settings simplest first: prefetch off, then fewer guesses and layers ahead, prefetch auto just after the
+    fixed setting of as many guesses and layers ahead; an even split, a shared pool, an uneven split; the engine's
+    default policy (lru), then the others in their registered order."""
     order = policies.names()
     rank = 0 if pr.policy == "lru" else 1 + (order.index(pr.policy) if pr.policy in order else len(order))
-    return (pr.prefetch > 0, pr.prefetch, pr.lookahead, SPLITS.index(label) if label in SPLITS else len(SPLITS), rank)
+    return (pr.prefetch > 0, pr.prefetch, pr.lookahead, pr.auto, SPLITS.index(label) if label in SPLITS else len(SPLITS), rank)
 
 
 def choose(cands: list[tuple[str, Prediction]]) -> tuple[str, Prediction]:
@@ -133,6 +146,7 @@ class _Setting(NamedTuple):
     policy: str
     prefetch: int
     lookahead: int
+    auto: bool = False
 
 
 @dataclass
@@ -147,7 +161,7 @@ class Space:
     fixed: int  # bytes: dense weights, KV cache, scratch
     slot: int  # bytes per slot
     policies: list
-    prefetches: list  # (guesses, lookahead) pairs
+    prefetches: list  # (guesses, lookahead) pairs; (AUTO, lookahead) for prefetch auto
     shared: bool = False  # also consider one pool shared by all layers
     prune: bool = True  # simulate only the settings that can win (``candidates``)
     # a routing profile's counts [layers][experts]: every setting starts warm from it (``Decisions.warm``), and its
@@ -186,9 +200,20 @@ class Space:
         self._ceilings.clear()
         self._shared_ceilings.clear()
 
-    def _predict(self, slots, policy, pf, la, shared=False) -> Prediction:
+    def _predict(self, slots, policy, pf, la, shared=False, auto=False) -> Prediction:
         return predict(self.trace, slots, policy, pf, la, self.costs, shared, SEARCH_TOKENS,
-                       lambda layer, cap: self._steps[(policy, layer, cap)], self.warm)
+                       lambda layer, cap: self._steps[(policy, layer, cap)], self.warm, auto)
+
+    def _prefetch(self, pf, la) -> tuple[int, int, bool] | None:
+        """A prefetch candidate as ``predict`` takes it: (guesses, lookahead, auto).  (AUTO, lookahead) is the
+        engine's AUTO_GUESSES guesses (at most the experts per layer); None where the trace cannot plan it (no
+        guesses, one layer, or fewer guesses or layers ahead recorded than it makes)."""
+        if pf != AUTO:
+            return pf, la, False
+        n, g = min(AUTO_GUESSES, self.experts), self.trace.guesses
+        if g is None or self.layers < 2 or g.shape[3] < n or g.shape[2] < la:
+            return None
+        return n, la, True
 
     @property
     def min_cap(self) -> int:
@@ -291,14 +316,16 @@ class Space:
         the unpruned search's (tests/planner/test_plan.py checks it), and the list holds the settings simulated."""
         out = []
 
-        def can_win(label: str, policy: str, pf: int, la: int, ceiling: float | None = None) -> bool:
+        def can_win(label: str, policy: str, pf: int, la: int, ceiling: float | None = None, auto: bool = False) -> bool:
             if not self.prune:
                 return True
-            rank = simplicity(label, _Setting(policy, pf, la if pf else 0))
+            rank = simplicity(label, _Setting(policy, pf, la if pf else 0, auto))
             beaten = max((pr.tok_s for lab, pr in out if simplicity(lab, pr) < rank), default=None)
             return beaten is None or (self.ceiling(policy, pf) if ceiling is None else ceiling) > beaten
         L, E, k = self.layers, self.experts, self.top_k
         names = policy_names or self.policies
+        # the prefetch settings tried, as (guesses, lookahead, auto), off left out (every split is predicted without)
+        settings = [st for st in (self._prefetch(pf, la) for pf, la in prefetches or self.prefetches) if st and st[0]]
         per_layer = total >= L * k  # below, only a shared pool fits
         ranked = list(names)
         if per_layer:
@@ -312,11 +339,10 @@ class Space:
                     out.append((label, self._predict(sl, n, 0, 1)))
             ranked = sorted(names, key=lambda n: -max(pr.tok_s for _, pr in out if pr.policy == n))
             for n in ranked[:PREFETCH_POLICIES]:
-                for pf, la in prefetches or self.prefetches:
-                    if pf:
-                        for label, sl in splits[n].items():
-                            if can_win(label, n, pf, la):
-                                out.append((label, self._predict(sl, n, pf, la)))
+                for pf, la, auto in settings:
+                    for label, sl in splits[n].items():
+                        if can_win(label, n, pf, la, auto=auto):
+                            out.append((label, self._predict(sl, n, pf, la, auto=auto)))
         if self.shared:  # the best per-layer policies and those made for a shared pool (every policy when per-layer
             # pools do not fit), then prefetch for the best two there
             pick = ranked if not per_layer else ranked[:PREFETCH_POLICIES] + [
@@ -336,9 +362,9 @@ class Space:
                 plain = {n: self._predict([total], n, 0, 1, shared=True) for n in pick}
             out += [("shared", pr) for pr in plain.values()]
             for n in sorted(pick, key=lambda n: -plain[n].tok_s if n in plain else math.inf)[:PREFETCH_POLICIES]:
-                for pf, la in prefetches or self.prefetches:
-                    if pf and can_win("shared", n, pf, la):
-                        out.append(("shared", self._predict([total], n, pf, la, shared=True)))
+                for pf, la, auto in settings:
+                    if can_win("shared", n, pf, la, auto=auto):
+                        out.append(("shared", self._predict([total], n, pf, la, shared=True, auto=auto)))
         return out
 
     def best(self, total: int, policy_names=None, prefetches=None) -> tuple[str, Prediction]:
@@ -356,7 +382,8 @@ class Space:
             if best is None or pr.tok_s > best.tok_s:
                 best = pr
             out.append({"cap_bytes": self.fixed + total * self.slot, "slots_total": total, "tok_s": best.tok_s,
-                        "slots": best.slots, "shared": best.shared, "prefetch": best.prefetch, "stall_share": best.stall_share})
+                        "slots": best.slots, "shared": best.shared, "prefetch": best.prefetch_setting,
+                        "stall_share": best.stall_share})
         return out
 
     def smallest_cap(self, target: float, policy: str, prefetches, curve: list[dict]) -> int | None:

@@ -108,8 +108,8 @@ def prompt_ids(model_dir, n: int = PROMPT_TOKENS) -> tuple[list[int], str]:
 
 
 def engine_kwargs(pr: Prediction, cap: int, link_speed: float | None, cold: bool) -> dict:
-    """``moerun.load`` settings of a prediction, under ``cap``."""
-    kw: dict = {"mem_cap": cap, "evict": pr.policy, "prefetch": pr.prefetch, "tokenizer": False}
+    """``moerun.load`` settings of a prediction, under ``cap`` (``prefetch="auto"`` for a prediction of prefetch auto)."""
+    kw: dict = {"mem_cap": cap, "evict": pr.policy, "prefetch": pr.prefetch_setting, "tokenizer": False}
     if pr.prefetch:
         kw["lookahead"] = pr.lookahead or 1
     if pr.shared:

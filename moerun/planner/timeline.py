@@ -21,6 +21,14 @@ decode token and layer:
   bytes are the reader's: there when their transfer ends;
 - then the head (final norm, output projection, sampling).
 
+With ``auto`` (``--prefetch auto``) the simulation keeps the live pool's account of each layer's guesses
+(``moerun.runtime.guesses.Account``) and drives it as the pool does, in simulated ns: at a prefetch point
+that the per-guess judgement lets through, each layer ahead is asked ``open`` (a resting layer is not
+guessed for; where none is open the guess rule is not run either); each guess read is charged ``place``
+and the plain resident it evicted is watched (``read``); a guess its layer used is credited one page-in
+less that expert's wait (``used``); a miss on an expert a guess evicted charges that guess's layer one
+page-in (``missed``).  A pool that holds every expert makes no guesses, as the engine makes none.
+
 With prefetch off and a pool per layer, every layer step depends only on how many of its
 accesses missed, so the prediction is a sum over the replay's miss counts (``_additive``),
 which is exact for this model and fast on long traces; otherwise the simulation walks the
@@ -37,7 +45,7 @@ from moerun import policies
 from moerun.errors import BadOption, BadTrace
 from moerun.files.trace import Trace
 from moerun.runtime.decisions import Placed, Quotas, Shared, make_decisions, prefill_schedule
-from moerun.runtime.guesses import Timing, guess_pays, worth_guessing
+from moerun.runtime.guesses import Account, Timing, guess_pays, worth_guessing
 from moerun.runtime.link import Link
 from moerun.sim.fast import layer_misses
 from moerun.sim.steps import layer_plans, plan_policy, prefill_tokens, warm_plans
@@ -100,6 +108,14 @@ class Prediction:
     tokens: int = 0  # decode tokens the prediction covers
     warm_loads: int = 0  # experts a warm start reads before the first token (0: a cold start)
     warm_s: float = 0.0  # their reads: once per run, before the first token, not in ``step_s``
+    auto: bool = False  # --prefetch auto: ``prefetch`` guesses per layer, each layer's kept while its account pays
+    skipped: int = 0  # (auto) guesses not made because their layer rested
+    rests: int = 0  # (auto) rests begun: trials a layer's guesses lost
+
+    @property
+    def prefetch_setting(self) -> int | str:
+        """``--prefetch`` as the engine takes it: "auto", or the guesses per layer (0: off)."""
+        return "auto" if self.auto else self.prefetch
 
     @property
     def hit_rate(self) -> float:
@@ -110,14 +126,20 @@ class Prediction:
         return self.stall_s / self.step_s if self.step_s else 0.0
 
     def to_json(self) -> dict:
+        """Every field, prefetch as the engine's options write it (``"prefetch": "auto"`` for auto, no ``auto`` key)."""
         d = asdict(self)
+        d["prefetch"] = self.prefetch_setting
+        del d["auto"]
         d["hit_rate"] = self.hit_rate
         d["stall_share"] = self.stall_share
         return d
 
 
-def _check(trace: Trace, slots: list[int], prefetch: int, lookahead: int, costs: Costs, shared: bool) -> None:
+def _check(trace: Trace, slots: list[int], prefetch: int, lookahead: int, costs: Costs, shared: bool,
+           auto: bool = False) -> None:
     L = trace.n_layers
+    if auto and not prefetch:
+        raise BadOption("prefetch auto is planned with its guesses per layer (moerun.runtime.guesses.AUTO_GUESSES), got 0")
     if len(slots) != (1 if shared else L):
         raise BadOption(f"{len(slots)} slot counts for a trace of {L} layers" + (" (a shared pool takes one)" if shared else ""))
     if len(costs.attn) != L:
@@ -132,20 +154,24 @@ def _check(trace: Trace, slots: list[int], prefetch: int, lookahead: int, costs:
 
 
 def predict(trace: Trace, slots: list[int], policy: str, prefetch: int, lookahead: int, costs: Costs,
-            shared: bool = False, max_tokens: int = SIM_TOKENS, step_misses=None, warm=None) -> Prediction:
+            shared: bool = False, max_tokens: int = SIM_TOKENS, step_misses=None, warm=None, auto: bool = False) -> Prediction:
     """Predict decode tok/s along ``trace`` (prefill tokens only warm the pool) for one setting.
 
     ``step_misses(layer, slots)``, if given, returns that layer's (accesses, misses) per decode step for a
     quota (a cache the planner's search keeps); otherwise they are replayed here.  ``warm``: a warm start's
     ``(layer, expert)`` pairs, hottest first (``decisions.hottest`` of a profile): the pool is filled from them
     before the first step (``Decisions.warm``, as the live pool and replay fill it); the cache ``step_misses``
-    must then be of replays with the same warm start.  The fill's reads are ``warm_s``, once per run."""
-    _check(trace, slots, prefetch, lookahead, costs, shared)
+    must then be of replays with the same warm start.  The fill's reads are ``warm_s``, once per run.
+
+    ``auto``: ``--prefetch auto`` with ``prefetch`` guesses per layer (the engine's AUTO_GUESSES, at most the
+    experts per layer): each layer's guesses are kept only while its account shows they pay (the module
+    docstring); the prediction's ``skipped`` and ``rests`` count what the account held back."""
+    _check(trace, slots, prefetch, lookahead, costs, shared, auto)
     policies.get(policy)
     if not prefetch and not shared:
         pr = _additive(trace, slots, policy, costs, step_misses, warm)
     else:
-        pr = _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_tokens, warm)
+        pr = _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_tokens, warm, auto)
     if warm:
         pr.warm_loads = warm_loads(trace, slots, shared, warm)
         pr.warm_s = pr.warm_loads * costs.page  # read one after the other (over a link: its transfers in a row)
@@ -237,7 +263,7 @@ class _Sim:
     """The simulated engine: the pool's decisions (``moerun.runtime.decisions``) on simulated time, the
     link or the reader's queue, and the clock (ns)."""
 
-    def __init__(self, trace, slots, policy, costs, shared, prefetch, warm=None):
+    def __init__(self, trace, slots, policy, costs, shared, prefetch, warm=None, auto=False):
         L, E = trace.n_layers, max(trace.n_experts, 1)
         cls = policies.get(policy)
         self.L, self.E, self.k = L, E, trace.top_k
@@ -263,6 +289,8 @@ class _Sim:
         self.now = 0.0
         self.stall = 0.0
         self.loads = 0
+        self.account = Account(L) if auto else None  # prefetch auto: each layer's guesses, saved against cost
+        self.credit: list = []  # (auto) the guesses the layer being computed used, as keys of ``arrive``
 
     def arrival(self, key: int) -> float:
         """When a key's bytes are (or will be) there: its transfer's end, or the reader's; 0 if there."""
@@ -278,10 +306,12 @@ class _Sim:
             core.prefill(layer, e)
         core.done()
 
-    def access_layer(self, layer: int, chosen: list[int], probs) -> tuple[list, set]:
+    def access_layer(self, layer: int, chosen: list[int], probs, step: int = 0) -> tuple[list, set]:
         """The layer's routing: drop its unchosen guesses, access its experts; returns the experts (as keys
-        of ``arrive``) whose bytes may not be there yet, and those that missed."""
-        core, link, timing, arrive = self.core, self.link, self.timing, self.arrive
+        of ``arrive``) whose bytes may not be there yet, and those that missed.  With an account, a miss on
+        an expert a guess evicted is charged to that guess's layer, and the guesses used are kept in
+        ``credit`` for ``experts`` (which knows their waits)."""
+        core, link, timing, arrive, account = self.core, self.link, self.timing, self.arrive, self.account
         now = int(self.now)
         off = self.off[layer]
 
@@ -300,6 +330,7 @@ class _Sim:
         out = core.serve(layer)
         used, wasted = core.used, core.wasted
         waiting, missing = [], set()
+        credit = self.credit = [] if account is not None else self.credit
         for key, (hit, _, victim) in zip(keys, out):
             if victim is not None:
                 if victim in wasted:
@@ -309,20 +340,26 @@ class _Sim:
             if hit:
                 if key - off in used:
                     timing.outcome(True)
+                    if account is not None:
+                        credit.append(key)
                     a = arrive.get(key)
                     if link is not None and a is not None and a.end < 0:
                         link.promote(a, now)
                 if key in arrive:
                     waiting.append(key)
             else:
+                if account is not None and account.victims:  # a guess evicted it lately?
+                    account.missed(key, step, self.c["page"])
                 missing.add(key)
                 arrive[key] = link.book(self.page, now, True) if link is not None else None
                 waiting.append(key)
         return waiting, missing
 
-    def place(self, layer: int, target: int, guesses: list[int]) -> None:
-        """The prefetch point of ``layer``: its guesses for ``target``, read if they pay (moerun.runtime.guesses)."""
+    def place(self, layer: int, target: int, guesses: list[int], step: int = 0) -> None:
+        """The prefetch point of ``layer``: its guesses for ``target``, read if they pay (moerun.runtime.guesses);
+        with an account, each read is charged to ``target`` and a plain resident it evicted watched for a miss."""
         t = self.timing
+        account = self.account
         need = t.need_at(self.now, target - layer)
 
         def pays() -> bool:
@@ -337,6 +374,9 @@ class _Sim:
             if type(out) is not Placed:
                 continue
             key = out.key + off
+            if account is not None:  # as the pool: a free slot, or a guess no layer used, is not watched for a miss
+                victim = None if out.victim is None or out.wasted else out.victim + off
+                account.read(target, self.c["place"], victim, step, key)
             if out.victim is not None:
                 if out.wasted:
                     t.outcome(False)
@@ -349,10 +389,12 @@ class _Sim:
                 self.reader_free = max(self.reader_free, self.now) + self.page
                 self.arrive[key] = self.reader_free
 
-    def experts(self, waiting: list[int], k: int, missing: set) -> None:
-        """Compute the layer's experts: those there first, then the others as they arrive; then the layer is done."""
+    def experts(self, waiting: list[int], k: int, missing: set, layer: int = 0) -> None:
+        """Compute the layer's experts: those there first, then the others as they arrive; then the layer is done.
+        With an account, each guess the layer used is credited one page-in less its own wait."""
         c = self.c
         now = self.now
+        waits = {} if self.credit else None
         late = [(0.0 if key in missing and not self.emulated else self.arrival(key), key) for key in waiting]
         behind = sorted((a, key) for a, key in late if a > now or key in missing)
         for a, key in late:
@@ -370,18 +412,27 @@ class _Sim:
                     a = now
             if a > now:
                 self.stall += a - now + c["wait"]
+                if waits is not None:
+                    waits[key] = a - now + c["wait"]
                 now = a + c["wait"]
             now += c["expert"]
             self.arrive.pop(key, None)
+        if waits is not None:
+            for key in self.credit:
+                self.account.used(layer, c["page"] - waits.get(key, 0.0), key)
+            self.credit = []
         self.now = now
         self.core.done()
 
 
-def _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_tokens, warm=None) -> Prediction:
+def _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_tokens, warm=None, auto=False) -> Prediction:
     L = trace.n_layers
     P = prefill_tokens(trace)
     T = min(trace.n_tokens, P + max_tokens)
-    sim = _Sim(trace, slots, policy, costs, shared, prefetch, warm)
+    sim = _Sim(trace, slots, policy, costs, shared, prefetch, warm, auto)
+    account = sim.account
+    # prefetch auto guesses nothing where the pool holds every expert (moerun.runtime.options.prefetch_guesses)
+    guessing = prefetch and not (auto and sum(slots) >= L * max(trace.n_experts, 1))
     ex = trace.experts.tolist()
     for layer in range(L):  # prefill: each layer's distinct experts once, ascending, pinned alone (as the pool does)
         sim.prefill(layer, (ex[t][layer] for t in range(P)))
@@ -393,22 +444,26 @@ def _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_toke
         for layer in range(L):
             sim.now += sim.attn[layer]
             chosen = sorted(e for e in ex[t][layer] if e >= 0)
-            waiting, missing = sim.access_layer(layer, chosen, probs[t, layer] if probs is not None else None)
+            waiting, missing = sim.access_layer(layer, chosen, probs[t, layer] if probs is not None else None, t)
             m = len(missing)
             accesses += len(chosen)
             misses += m
             layer_acc[layer] += len(chosen)
             layer_miss[layer] += m
-            if prefetch and worth_guessing(sim.timing, sim.c["page"], sim.c["place"]):
-                sim.now += sim.c["guess"]
-                sim.timing.mark = int(sim.now)
-                for j in range(1, lookahead + 1):
-                    if layer + j < L:
-                        sim.place(layer, layer + j, [e for e in g[t][layer][j - 1][:prefetch] if e >= 0])
-            sim.experts(waiting, len(chosen), missing)
+            if guessing and worth_guessing(sim.timing, sim.c["page"], sim.c["place"]):
+                ahead = range(layer + 1, min(L, layer + lookahead + 1))
+                if account is not None:  # as the live prefetch point: every layer ahead asked, the open ones guessed
+                    ahead = [target for target in ahead if account.open(target, prefetch)]
+                if account is None or ahead:  # none open: the guess rule is not run either
+                    sim.now += sim.c["guess"]
+                    sim.timing.mark = int(sim.now)
+                    for target in ahead:
+                        sim.place(layer, target, [e for e in g[t][layer][target - layer - 1][:prefetch] if e >= 0], t)
+            sim.experts(waiting, len(chosen), missing, layer)
         sim.now += sim.c["head"]
     n = T - P
     step_s = sim.now / 1e9 / n if n else 0.0
     return Prediction(list(slots), policy, prefetch, lookahead if prefetch else 0, 1 / step_s if step_s else 0.0, step_s,
                       sim.stall / 1e9 / n if n else 0.0, accesses, misses, sim.loads,
-                      [1 - mm / a if a else 0.0 for mm, a in zip(layer_miss, layer_acc)], shared, n)
+                      [1 - mm / a if a else 0.0 for mm, a in zip(layer_miss, layer_acc)], shared, n,
+                      auto=bool(auto), skipped=account.skipped if account else 0, rests=account.rests if account else 0)

@@ -299,14 +299,14 @@ def test_a_prefetch_setting_is_written_one_way_in_text_and_json(small_model, tmp
         if name != "plan":  # plan shows the settings it searched, each as its options
             assert "--prefetch 2 --lookahead 2" in text, f"{name}:\n{text}"
     assert re.search(r"--prefetch \d --lookahead \d", texts["plan"]) and "no prefetch" in texts["plan"]
-    # in JSON: "prefetch" (a number, 0 for none) and "lookahead" beside it, as the engine's options write them
+    # in JSON: "prefetch" (a number, 0 for none, or "auto") and "lookahead" beside it, as the engine's options write them
     g = docs["generate"]["options"]
     assert (g["prefetch"], g["lookahead"]) == (2, 2)
     r = docs["replay"]
     assert (r["prefetch"], r["lookahead"]) == (2, 2) and isinstance(r["prefetch_results"], list)
     p = docs["plan"]
     for setting in [*p["candidates"], p["recommended"], *p["curve"]["points"]]:
-        assert isinstance(setting["prefetch"], int) and isinstance(setting["lookahead"], int)
+        assert (isinstance(setting["prefetch"], int) or setting["prefetch"] == "auto") and isinstance(setting["lookahead"], int)
         if setting["prefetch"] == 0:
             assert setting["lookahead"] == 1  # as the engine's options say it when there is no prefetch
     assert {(c["prefetch"], c["lookahead"]) for c in p["candidates"]} >= {(0, 1), (2, 1), (2, 2)}

@@ -428,23 +428,25 @@ def _guessing_trace(seed, tokens=90, layers=3, experts=8, k=2, prefill=0):
 
 @pytest.mark.parametrize("seed", range(4))
 def test_the_pruned_search_recommends_what_the_unpruned_one_does(seed):
-    from moerun.planner.search import PREFETCH_CANDIDATES, Space, choose
+    from moerun.planner.search import Space, choose, prefetch_candidates
 
     trace = _guessing_trace(seed, prefill=30 if seed % 2 else 0)
     costs = _costs(L=3, page=[40, 400][seed % 2], attn=20)
     costs.copy, costs.place, costs.guess = 3 * US, 6 * US, 1 * US
     costs.policy = {"lfu": 0.5 * US, "orbit": 4 * US}
     names = ["lru", "lfu", "fifo", "orbit"] if seed < 2 else ["lru", "orbit"]
-    pruned = Space(trace, costs, 3, 8, 2, 0, 1, names, PREFETCH_CANDIDATES, shared=True)
-    full = Space(trace, costs, 3, 8, 2, 0, 1, names, PREFETCH_CANDIDATES, shared=True, prune=False)
+    pf = prefetch_candidates(trace)  # prefetch auto among them
+    pruned = Space(trace, costs, 3, 8, 2, 0, 1, names, pf, shared=True)
+    full = Space(trace, costs, 3, 8, 2, 0, 1, names, pf, shared=True, prune=False)
     left_out = 0
     for total in (2, 4, 6, 9, 13, 18, 24):
         a, b = pruned.candidates(total), full.candidates(total)
         assert choose(a) == choose(b), total
         assert all(c in b for c in a)  # the same predictions, fewer of them
         left_out += len(b) - len(a)
-    curve = [{k: v for k, v in p.items()} for p in pruned.curve("orbit", PREFETCH_CANDIDATES)]
-    assert curve == full.curve("orbit", PREFETCH_CANDIDATES)
+    assert any(pr.auto for lab, pr in full.candidates(9))
+    curve = [{k: v for k, v in p.items()} for p in pruned.curve("orbit", pf)]
+    assert curve == full.curve("orbit", pf)
     if seed >= 2:  # two policies: every shared setting is ranked by its ceiling; orbit's bookkeeping costs more
         assert left_out > 0  # than lru's, and where every expert stays resident its settings cannot win
 
@@ -464,8 +466,8 @@ def test_a_simulated_settings_ceilings_are_never_below_its_predicted_speed(seed,
     slots = [total] if shared else even_split(total, 3, 8)
     # guesses over a link that splits a transfer into chunks meet a fault of the link's drop (reported), so the
     # 2.5 ms case checks prefetch off only
-    for pf, la in PREFETCH_CANDIDATES if seed % 3 < 2 else [(0, 1)]:
-        pr = predict(trace, slots, policy, pf, la, costs, shared)
+    for pf, la, auto in [(pf, la, False) for pf, la in PREFETCH_CANDIDATES] + [(2, 1, True)] if seed % 3 < 2 else [(0, 1, False)]:
+        pr = predict(trace, slots, policy, pf, la, costs, shared, auto=auto)
         if pf or shared:
             assert pr.tok_s <= space.ceiling(policy, pf)
         if shared and not pf:

@@ -38,6 +38,10 @@ def test_scaled_costs_scale_compute_and_keep_page_ins():
 def test_engine_settings_of_a_prediction():
     kw = selfcheck.engine_kwargs(_pred(prefetch=2, lookahead=2), 1 << 24, 2e9, False)
     assert kw["slots"] == [3, 3, 3, 3] and kw["prefetch"] == 2 and kw["lookahead"] == 2 and kw["link_speed"] == 2e9
+    kw = selfcheck.engine_kwargs(_pred(prefetch=2, lookahead=1, auto=True), 1 << 24, None, False)
+    assert kw["prefetch"] == "auto" and kw["lookahead"] == 1  # prefetch auto runs as the engine's option
+    off = selfcheck.engine_kwargs(_pred(), 1 << 24, None, False)
+    assert off["prefetch"] == 0 and "lookahead" not in off  # off said outright: the engine's default is auto
     kw = selfcheck.engine_kwargs(_pred(shared=True, slots=[12]), 1 << 24, None, True)
     assert kw["split"] == "shared" and "slots" not in kw and kw["cold_reads"] and "link_speed" not in kw
     assert selfcheck.tokens_per_run(1.0) == selfcheck.MIN_TOKENS and selfcheck.tokens_per_run(1e6) == selfcheck.MAX_TOKENS

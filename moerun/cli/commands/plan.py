@@ -68,10 +68,11 @@ def run(args) -> int:
 def _setting(pr, layers: int, experts: int) -> tuple:
     """What a setting does: the same for even and uneven splits with equal slots, for a shared pool and per-layer
     pools that both hold every expert, and for prefetch that reads no guess (the planner predicts it changes
-    nothing but the guess rule's cost)."""
+    nothing but the guess rule's cost).  Prefetch auto is a setting of its own beside the fixed one of as many
+    guesses, even where its account never rested a layer."""
     everything = sum(pr.slots) >= layers * experts if pr.shared else all(s >= experts for s in pr.slots)
     pool = "all resident" if everything else (pr.shared, tuple(pr.slots))
-    return (pool, pr.policy, (pr.prefetch, pr.lookahead) if pr.prefetch and pr.prefetch_loads else None)
+    return (pool, pr.policy, (pr.prefetch_setting, pr.lookahead) if pr.prefetch and pr.prefetch_loads else None)
 
 
 def _rows(cands, layers: int, experts: int) -> list:
@@ -94,7 +95,7 @@ def _pool(lab: str, slots, shared: bool) -> str:
 
 def _how(lab: str, pr, pool: bool = True) -> str:
     """A setting in text: its pool (unless ``pool`` is False), policy and prefetch."""
-    how = f"--evict {pr.policy}, {fmt_prefetch(pr.prefetch, pr.lookahead)}"
+    how = f"--evict {pr.policy}, {fmt_prefetch(pr.prefetch_setting, pr.lookahead)}"
     return f"{_pool(lab, pr.slots, pr.shared)}, {how}" if pool else how
 
 
@@ -116,6 +117,14 @@ def _shared_line(result) -> str:
         cmp = f"{100 * abs(ratio):.1f}% {'faster' if ratio > 0 else 'slower'} than"
     return (f"{SHARED_POOL}: best {_how(lab, best, pool=False)}: {fmt_tok_s(best.tok_s)} tok/s, {cmp} the best with one pool per layer "
             f"({_how(plab, other)}: {fmt_tok_s(other.tok_s)} tok/s)")
+
+
+def _auto_line(pr) -> str:
+    """What prefetch auto's account did in the prediction, in one line."""
+    if not pr.rests:
+        return f"prefetch auto: no layer rested in the prediction (no trial of its guesses lost); {pr.prefetch_loads} guesses read"
+    return (f"prefetch auto: layers rested {pr.rests} times in the prediction (a trial of their guesses lost); "
+            f"{pr.skipped} guesses skipped, {pr.prefetch_loads} read")
 
 
 def _check_line(ck: dict) -> str:
@@ -157,7 +166,7 @@ def _text(out, args, result) -> None:
     out.write("\n")
     if rec is not None:
         top = _rows(cands, L, result.experts)
-        rows = [[SHARED_POOL if pr.shared else lab, ",".join(map(str, pr.slots)), pr.policy, fmt_prefetch(pr.prefetch, pr.lookahead),
+        rows = [[SHARED_POOL if pr.shared else lab, ",".join(map(str, pr.slots)), pr.policy, fmt_prefetch(pr.prefetch_setting, pr.lookahead),
                  pct(pr.hit_rate), pct(pr.stall_share), fmt_tok_s(pr.tok_s)] for lab, pr in top[:12]]
         out.write(f"cap {fmt_bytes(doc['mem_cap_bytes'])}: {doc['slots_total']} slots; best {min(12, len(top))} of {len(top)} "
                   f"settings ({len(cands)} searched; the same setting with the same prediction shown once)\n")
@@ -165,6 +174,8 @@ def _text(out, args, result) -> None:
         out.write(f"recommended: {_how(rec_label, rec)}"
                   + f": {fmt_tok_s(rec.tok_s)} tok/s predicted, {pct(rec.stall_share)} stalled"
                   + f" (ties within {100 * TIE:g}% go to the simpler setting)\n")
+        if rec.auto:
+            out.write(_auto_line(rec) + "\n")
         if doc.get("check"):
             out.write(_check_line(doc["check"]) + "\n")
         if args.shared_pool:
