@@ -27,7 +27,10 @@ that the per-guess judgement lets through, each layer ahead is asked ``open`` (a
 guessed for; where none is open the guess rule is not run either); each guess read is charged ``place``
 and the plain resident it evicted is watched (``read``); a guess its layer used is credited one page-in
 less that expert's wait (``used``); a miss on an expert a guess evicted charges that guess's layer one
-page-in (``missed``).  A pool that holds every expert makes no guesses, as the engine makes none.
+page-in (``missed``); each open layer is charged its share of the point's guess rule (``charge``).
+Above the accounts the live engine's gate (``moerun.runtime.guesses.Gate``) is ticked at the start of
+each decode step with simulated time: steps it holds off guess nothing.  A pool that holds every expert
+makes no guesses, as the engine makes none.
 
 With prefetch off and a pool per layer, every layer step depends only on how many of its
 accesses missed, so the prediction is a sum over the replay's miss counts (``_additive``),
@@ -45,7 +48,7 @@ from moerun import policies
 from moerun.errors import BadOption, BadTrace
 from moerun.files.trace import Trace
 from moerun.runtime.decisions import Placed, Quotas, Shared, make_decisions, prefill_schedule
-from moerun.runtime.guesses import Account, Timing, guess_pays, worth_guessing
+from moerun.runtime.guesses import Account, Gate, Timing, guess_pays, worth_guessing
 from moerun.runtime.link import Link
 from moerun.sim.fast import layer_misses
 from moerun.sim.steps import layer_plans, plan_policy, prefill_tokens, warm_plans
@@ -440,7 +443,11 @@ def _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_toke
     probs = trace.probs
     accesses = misses = 0
     layer_acc, layer_miss = [0] * L, [0] * L
+    gate = Gate() if account is not None and guessing else None  # prefetch auto: does this step guess at all?
+    on = True
     for t in range(P, T):
+        if gate is not None:  # the live engine ticks it at layer 0's prefetch point, once a decode step
+            on = gate.tick(sim.now)
         for layer in range(L):
             sim.now += sim.attn[layer]
             chosen = sorted(e for e in ex[t][layer] if e >= 0)
@@ -450,12 +457,15 @@ def _simulate(trace, slots, policy, prefetch, lookahead, costs, shared, max_toke
             misses += m
             layer_acc[layer] += len(chosen)
             layer_miss[layer] += m
-            if guessing and worth_guessing(sim.timing, sim.c["page"], sim.c["place"]):
+            if guessing and on and worth_guessing(sim.timing, sim.c["page"], sim.c["place"]):
                 ahead = range(layer + 1, min(L, layer + lookahead + 1))
                 if account is not None:  # as the live prefetch point: every layer ahead asked, the open ones guessed
                     ahead = [target for target in ahead if account.open(target, prefetch)]
                 if account is None or ahead:  # none open: the guess rule is not run either
                     sim.now += sim.c["guess"]
+                    if account is not None:  # the point's time, shared by the layers it guesses for (as live)
+                        for target in ahead:
+                            account.charge(target, sim.c["guess"] / len(ahead))
                     sim.timing.mark = int(sim.now)
                     for target in ahead:
                         sim.place(layer, target, [e for e in g[t][layer][target - layer - 1][:prefetch] if e >= 0], t)

@@ -61,8 +61,9 @@ def test_useless_guesses_rest_their_layers_and_auto_stays_near_prefetch_off(seed
 @pytest.mark.parametrize("emulated", [True, False], ids=["emulated link", "real reads"])
 def test_perfect_guesses_on_a_slow_link_keep_every_layer_guessing(emulated):
     # Every guess is what its layer then chooses and a read takes 20 times a layer's attention: the guesses pay, no
-    # layer rests, and auto is fixed prefetch of as many guesses.  (Not to the last digit: at the last layer, with no
-    # layer ahead, auto runs no prefetch point, as the engine, where the fixed setting's model runs the guess rule.)
+    # layer rests, and auto is fixed prefetch of as many guesses but for the steps the gate's probes spend with
+    # guessing off (and at the last layer, with no layer ahead, auto runs no prefetch point, as the engine, where the
+    # fixed setting's model runs the guess rule).
     trace = _guessed(0, right=lambda layer: True)
     costs = _link_costs(page=400, emulated=emulated)
     slots = [4, 4, 4]
@@ -70,8 +71,9 @@ def test_perfect_guesses_on_a_slow_link_keep_every_layer_guessing(emulated):
     fixed = predict(trace, slots, "lru", AUTO_GUESSES, 1, costs)
     auto = predict(trace, slots, "lru", AUTO_GUESSES, 1, costs, auto=True)
     assert auto.rests == 0 and auto.skipped == 0 and auto.prefetch_loads > 0
-    assert auto.tok_s == pytest.approx(fixed.tok_s, rel=TIE)  # a tie to the search
-    assert auto.tok_s > off.tok_s * (1 + TIE)  # the guesses did hide reads
+    assert fixed.tok_s > off.tok_s * (1 + TIE)  # the guesses did hide reads
+    # auto gives most of that gain: all but what the gate's probes cost (their steps with guessing off)
+    assert off.tok_s + 0.8 * (fixed.tok_s - off.tok_s) <= auto.tok_s <= fixed.tok_s * (1 + TIE)
 
 
 class _Untouchable:
