@@ -9,6 +9,8 @@ simulated); ``guess_pays`` and ``worth_guessing`` are the judgement itself.
 
 from __future__ import annotations
 
+from statistics import median
+
 
 class Timing:
     """Running averages (1/8 or 1/16 weight) the pool judges guesses by: one read's time, one copy's
@@ -231,15 +233,9 @@ class Gate:
             self.on, self.left = not self.on, GATE_STEPS
             return
         on, off = self.samples[True], self.samples[False]
-        verdict = not off or (bool(on) and _median(on) < _median(off))
+        verdict = not off or (bool(on) and median(on) < median(off))
         self.probing, self.on = False, verdict
         self.left = self.hold_len[verdict]
         self.hold_len[verdict] = min(HOLD_MAX, 2 * self.hold_len[verdict])
         self.hold_len[not verdict] = HOLD_FIRST
         self.verdicts.append(verdict)
-
-
-def _median(xs: list[float]) -> float:
-    s = sorted(xs)
-    n = len(s)
-    return s[n // 2] if n % 2 else (s[n // 2 - 1] + s[n // 2]) / 2

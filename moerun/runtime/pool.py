@@ -436,14 +436,14 @@ class ExpertPool(ExpertSource):
             if kind == PREFETCHED:
                 self._hidden(s, time.monotonic_ns())
                 if self.account is not None:
-                    self.account.used(layer, self._read_ns(), layer * self.config.n_experts + expert)  # a whole read saved
+                    self._credit(layer, expert, 0)  # a whole read saved
             return self.codec.weights(s.bound)
         t0 = time.monotonic_ns()
         if s.state == READY and self._usable_at(s, t0) <= t0:
             if kind == PREFETCHED:
                 self._hidden(s, t0)
                 if self.account is not None:
-                    self.account.used(layer, self._read_ns(), layer * self.config.n_experts + expert)
+                    self._credit(layer, expert, 0)
             s.transfer = None  # arrived: later uses need not ask the link
             return self.codec.weights(s.bound)
         if s.state == LOADING or s.state == PENDING:
@@ -456,11 +456,16 @@ class ExpertPool(ExpertSource):
                 self._hidden(s, t0)
         stall = time.monotonic_ns() - t0
         if kind == PREFETCHED and self.account is not None:
-            self.account.used(layer, self._read_ns() - stall, layer * self.config.n_experts + expert)  # the wait avoided (negative: the guess made it longer)
+            self._credit(layer, expert, stall)
         ev.stall_ns = stall
         self.stats.stall_ns[layer] += stall
         s.transfer = None  # arrived: later uses need not ask the link
         return self.codec.weights(s.bound)
+
+    def _credit(self, layer: int, expert: int, stall: int) -> None:
+        """A used guess's account entry: the read it saved its layer, less the wait for it (negative: it made the
+        wait longer)."""
+        self.account.used(layer, self._read_ns() - stall, layer * self.config.n_experts + expert)
 
     def _hidden(self, s: Slot, asked: int) -> None:
         """A used guess: the part of its transfer (or read) done before its layer asked for it was hidden."""
@@ -680,8 +685,9 @@ class ExpertPool(ExpertSource):
                 continue
             s = slots[out.slot]
             if account is not None:  # charged its placing; a plain resident it evicted is watched for a miss
-                victim = None if out.victim is None or out.wasted else out.victim + (0 if self.shared else layer * E)
-                account.read(layer, self.place_ns, victim, self.step, out.key + (0 if self.shared else layer * E))
+                off = layer * E - self.base[layer]  # to keys unique across layers, in either pool kind
+                victim = None if out.victim is None or out.wasted else out.victim + off
+                account.read(layer, self.place_ns, victim, self.step, out.key + off)
             if out.victim is not None:
                 self._evicted(s)
             s.claim(layer, out.key - self.base[layer], r)
